@@ -1,0 +1,191 @@
+"""Daemon configuration: YAML in, frozen validated section objects out.
+
+Validation uses pydantic (strict types, unknown keys rejected) and every error becomes one
+:class:`~brimline.daemon.errors.ConfigError` line that names the file, the line, the key path
+and the offending value, e.g.::
+
+    config/demo.yaml line 12: loading.gap_db='9.8': Input should be a valid number
+
+Each section is a frozen model; the code that owns a section's meaning documents its keys in the
+model's field descriptions. Cross-section checks live in ``Config``'s validators.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any, Literal, Optional
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+
+from brimline.daemon.errors import ConfigError
+
+__all__ = [
+    "Section",
+    "LoadingSection",
+    "Config",
+    "load_config",
+    "read_yaml",
+    "parse_section",
+]
+
+
+class Section(BaseModel):
+    """Base of every config section: frozen, strict types, unknown keys rejected."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+
+
+# --------------------------------------------------------------------------- loading
+
+
+class LoadingSection(Section):
+    """``loading:`` how per-tone SNR becomes bits and power."""
+
+    mode: Literal["rate", "margin", "waterfill"] = Field(
+        "rate", description="rate: most bits in the budget; margin: target_bits with most margin")
+    bits: list[int] = Field(
+        default_factory=lambda: list(range(0, 9)),
+        description="allowed bits per tone, ascending, starting at 0")
+    gap_db: Optional[float] = Field(
+        None, description="SNR gap in dB; when absent it follows from target_ser")
+    target_ser: float = Field(1e-7, description="target symbol error rate for the uncoded gap")
+    coding_gain_db: float = Field(0.0, description="coding gain subtracted from the gap, dB")
+    margin_db: float = Field(3.0, description="target noise margin added to the gap, dB")
+    budget_db: float = Field(0.0, description="total power relative to N tones at nominal, dB")
+    cap_db: float = Field(math.inf, description="per-tone power ceiling relative to nominal, dB")
+    target_bits: Optional[int] = Field(None, description="bits per symbol for mode: margin")
+
+    @field_validator("bits")
+    @classmethod
+    def _bits_ok(cls, v: list[int]) -> list[int]:
+        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 15:
+            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 15")
+        return v
+
+    @field_validator("target_ser")
+    @classmethod
+    def _ser_ok(cls, v: float) -> float:
+        if not 0.0 < v < 0.5:
+            raise ValueError(f"target_ser={v} must be in (0, 0.5)")
+        return v
+
+
+# --------------------------------------------------------------------------- whole file
+
+
+class Config(Section):
+    """The whole daemon config. Sections not written in the file take their defaults."""
+
+    loading: LoadingSection = Field(default_factory=LoadingSection)
+
+
+# --------------------------------------------------------------------------- machinery
+
+
+def _key_lines(node: yaml.Node, prefix: tuple = ()) -> dict[tuple, int]:
+    """Map each key path in a composed YAML tree to its 1-based line number."""
+    lines: dict[tuple, int] = {}
+    if isinstance(node, yaml.MappingNode):
+        for key_node, value_node in node.value:
+            path = prefix + (str(key_node.value),)
+            lines[path] = key_node.start_mark.line + 1
+            lines.update(_key_lines(value_node, path))
+    elif isinstance(node, yaml.SequenceNode):
+        for i, item in enumerate(node.value):
+            lines[prefix + (str(i),)] = item.start_mark.line + 1
+            lines.update(_key_lines(item, prefix + (str(i),)))
+    return lines
+
+
+def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
+    """Read a YAML mapping from ``path``; return it with a key-path -> line table.
+
+    Raises
+    ------
+    ConfigError
+        Missing file, a directory, unreadable text, a YAML syntax error (with its line) or a
+        top level that is not a mapping.
+    """
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{p}: no such config file") from None
+    except IsADirectoryError:
+        raise ConfigError(f"{p}: is a directory, not a config file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{p}: cannot read config: {exc}") from exc
+    try:
+        node = yaml.compose(text, Loader=yaml.SafeLoader)
+        data = yaml.safe_load(text)
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        line = f" line {mark.line + 1}" if mark is not None else ""
+        raise ConfigError(f"{p}{line}: YAML syntax error: {exc.problem or exc}") from exc
+    except yaml.YAMLError as exc:
+        raise ConfigError(f"{p}: YAML error: {exc}") from exc
+    if data is None:
+        data = {}
+    if not isinstance(data, dict):
+        raise ConfigError(f"{p}: top level must be a mapping of sections, got "
+                          f"{type(data).__name__}")
+    return data, (_key_lines(node) if node is not None else {})
+
+
+def _explain(exc: ValidationError, where: str, lines: dict[tuple, int],
+             prefix: tuple = ()) -> ConfigError:
+    err = exc.errors()[0]
+    loc = prefix + tuple(str(x) for x in err["loc"])
+    key = ".".join(loc) if loc else "(top level)"
+    line = None
+    for n in range(len(loc), 0, -1):  # the deepest key that exists in the file
+        line = lines.get(loc[:n])
+        if line is not None:
+            break
+    at = f"{where} line {line}" if line is not None else where
+    msg = err["msg"].removeprefix("Value error, ")
+    if err["type"] == "extra_forbidden":
+        return ConfigError(f"{at}: unknown key {key}")
+    if err["type"] == "missing":
+        return ConfigError(f"{at}: missing key {key}")
+    return ConfigError(f"{at}: {key}={err.get('input')!r}: {msg}")
+
+
+def parse_section(model: type[Section], data: Any, *, where: str, name: str,
+                  lines: dict[tuple, int] | None = None) -> Section:
+    """Validate one section's mapping into ``model``; errors name ``name.key``."""
+    if data is None:
+        data = {}
+    if not isinstance(data, dict):
+        raise ConfigError(f"{where}: {name} must be a mapping, got {type(data).__name__}")
+    try:
+        return model.model_validate(data)
+    except ValidationError as exc:
+        raise _explain(exc, where, lines or {}, (name,)) from None
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a daemon config file.
+
+    Parameters
+    ----------
+    path : str or Path
+        YAML file with the sections of :class:`Config`.
+
+    Returns
+    -------
+    Config
+        Frozen, validated configuration.
+
+    Raises
+    ------
+    ConfigError
+        One line naming the file, line, key path and value of the first problem.
+    """
+    data, lines = read_yaml(path)
+    try:
+        return Config.model_validate(data)
+    except ValidationError as exc:
+        raise _explain(exc, str(path), lines) from None
