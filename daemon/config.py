@@ -72,13 +72,80 @@ class LoadingSection(Section):
         return v
 
 
+# --------------------------------------------------------------------------- link and drivers
+# Each driver subsection's fields are exactly that driver's constructor keyword arguments.
+
+
+class LinkSection(Section):
+    """``link:`` tone plan and frame format (see brimline.drivers.ofdm)."""
+
+
+class SimSection(Section):
+    """``driver.sim:`` the simulated link (brimline.drivers.sim)."""
+
+
+class IqSection(Section):
+    """``driver.iq:`` recorded IQ through the receiver DSP (brimline.drivers.iq)."""
+
+
+class RadioSection(Section):
+    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.iio)."""
+
+
+class ReplaySection(Section):
+    """``driver.replay:`` a recorded estimate log (brimline.drivers.replay)."""
+
+
+class DriverSection(Section):
+    """``driver:`` which source of estimates runs, and its settings."""
+
+    kind: Literal["sim", "iq", "radio", "replay"] = "sim"
+    sim: SimSection = Field(default_factory=SimSection)
+    iq: Optional[IqSection] = None
+    radio: Optional[RadioSection] = None
+    replay: Optional[ReplaySection] = None
+
+
+# --------------------------------------------------------------------------- estimator, change
+
+
+class EstimatorSection(Section):
+    """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator)."""
+
+
+class ChangeSection(Section):
+    """``change:`` change control: margins, dwell times, bit swaps, emergency."""
+
+
+# --------------------------------------------------------------------------- publish, status, record
+
+
+class PublishSection(Section):
+    """``publish:`` map, snapshot, heartbeat and acknowledgement sockets."""
+
+
+class StatusSection(Section):
+    """``status:`` the operators' status stream."""
+
+
+class RecordSection(Section):
+    """``record:`` what the daemon records, and where."""
+
+
 # --------------------------------------------------------------------------- whole file
 
 
 class Config(Section):
     """The whole daemon config. Sections not written in the file take their defaults."""
 
+    link: LinkSection = Field(default_factory=LinkSection)
+    driver: DriverSection = Field(default_factory=DriverSection)
+    estimator: EstimatorSection = Field(default_factory=EstimatorSection)
     loading: LoadingSection = Field(default_factory=LoadingSection)
+    change: ChangeSection = Field(default_factory=ChangeSection)
+    publish: PublishSection = Field(default_factory=PublishSection)
+    status: StatusSection = Field(default_factory=StatusSection)
+    record: RecordSection = Field(default_factory=RecordSection)
 
 
 # --------------------------------------------------------------------------- machinery

@@ -1,0 +1,37 @@
+"""Config loading: every error is one line naming file, line, key path and value."""
+
+import pytest
+
+from brimline.daemon.config import load_config
+from brimline.daemon.errors import ConfigError
+
+
+def _write(tmp_path, text):
+    p = tmp_path / "c.yaml"
+    p.write_text(text)
+    return p
+
+
+def test_empty_file_gives_defaults(tmp_path):
+    cfg = load_config(_write(tmp_path, ""))
+    assert cfg.loading.mode == "rate"
+
+
+@pytest.mark.parametrize("text, match", [
+    ("loading:\n  gap_db: '9.8'\n", r"line 2: loading.gap_db='9.8'"),
+    ("loading:\n  bogus: 1\n", r"line 2: unknown key loading.bogus"),
+    ("loading:\n  mode: fast\n", r"loading.mode='fast'"),
+    ("loading: [1, 2\n", r"line \d+: YAML syntax error"),
+    ("- a\n- b\n", r"top level must be a mapping"),
+    ("loading:\n  bits: [0, 2, 1]\n", r"loading.bits=\[0, 2, 1\]"),
+])
+def test_bad_configs_name_the_key(tmp_path, text, match):
+    with pytest.raises(ConfigError, match=match):
+        load_config(_write(tmp_path, text))
+
+
+def test_missing_and_directory(tmp_path):
+    with pytest.raises(ConfigError, match="no such config file"):
+        load_config(tmp_path / "nope.yaml")
+    with pytest.raises(ConfigError, match="is a directory"):
+        load_config(tmp_path)
