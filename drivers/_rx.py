@@ -4,7 +4,8 @@ One call of :meth:`Receiver.receive` turns a block of complex baseband samples i
 :class:`RxFrame`. Steps (all vectorized; one batched FFT per frame):
 
 1. **Timing and fractional offset** (Schmidl and Cox, IEEE Trans. Commun. 45(12), 1997): the
-   metric ``M(d) = |P(d)|^2 / R(d)^2`` of the two-halves sync symbol, first on a grid of
+   metric ``M(d) = |P(d)|^2 / R(d)^2`` of the two-halves sync symbol, with ``R`` the mean energy
+   of both halves (so ``M <= 1`` also where a burst starts or ends), first on a grid of
    ``B``-sample blocks (block sums and a cumulative sum, so the search costs two passes over the
    block), then exactly around the first coarse peak above ``sync_threshold``. The frame start is
    the middle of the metric's 90 % plateau, which lies inside the cyclic prefix; the fractional
@@ -12,7 +13,8 @@ One call of :meth:`Receiver.receive` turns a block of complex baseband samples i
 2. **Integer offset**: the differential pattern between sync and first training symbol, searched
    over even bin shifts within ``cfo_range_tones`` (Schmidl and Cox, sec. III).
 3. **Fine offset**: the phase advance between the identical training symbols (baseline of one
-   symbol) fixes the per-symbol phase step; pilots then remove each data symbol's common phase.
+   symbol) fixes the per-symbol phase step; a straight line through the data symbols' pilot
+   phases removes what remains.
 4. **Channel and noise**: data-aided least squares per tone over every symbol whose tone values
    are known: the training symbols, the header (after its CRC passes) and the data symbols (hard
    decisions, two passes), ``H = sum(conj(X) Y) / sum(|X|^2)``; the residual ``S = sum|Y - H X|^2``
@@ -156,6 +158,10 @@ class Receiver:
         self._pilots = fmt.pilots.astype(np.float32)
         self._scramble = fmt.scramble.astype(np.float32)
         self._reps = fmt.header_reps
+        self._passes = 1
+        self._data_index = np.arange(plan.data_symbols, dtype=np.float64)
+        self._data_index_spread = max(
+            float(np.sum((self._data_index - self._data_index.mean()) ** 2)), 1.0)
         self._times = np.arange(1 + plan.train_symbols + plan.data_symbols,
                                 dtype=np.float32)[:, None]
         default = _MapTables(np.full(plan.data_tones.size, int(default_bits)),
@@ -219,7 +225,7 @@ class Receiver:
         if count <= 0:
             return None
         pc = cz[lb:lb + count] - cz[:count]
-        rc = ce[2 * lb:2 * lb + count] - ce[lb:lb + count]
+        rc = 0.5 * (ce[2 * lb:2 * lb + count] - ce[:count])
         mc = (pc.real ** 2 + pc.imag ** 2) / np.maximum(rc * rc, 1e-30)
         above = np.flatnonzero(mc > self.sync_threshold)
         if above.size == 0:
@@ -232,10 +238,10 @@ class Receiver:
         if hi <= lo:
             return None
         zc = np.concatenate(([0], np.cumsum(z[lo:hi + half].astype(np.complex128))))
-        ec = np.concatenate(([0], np.cumsum(e[lo + half:hi + 2 * half].astype(np.float64))))
+        ec = np.concatenate(([0], np.cumsum(e[lo:hi + 2 * half].astype(np.float64))))
         width = hi - lo + 1
         pf = zc[half:half + width] - zc[:width]
-        rf = ec[half:half + width] - ec[:width]
+        rf = 0.5 * (ec[2 * half:2 * half + width] - ec[:width])
         mf = (pf.real ** 2 + pf.imag ** 2) / np.maximum(rf * rf, 1e-30)
         top = int(np.argmax(mf))
         low = mf < 0.9 * mf[top]
@@ -271,11 +277,16 @@ class Receiver:
         reps = self._reps * HEADER_BITS
         soft_bits = soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)
         header_ok, seq, counter = decode_header((soft_bits < 0).astype(np.uint8))
-        # Data symbols: remove each one's common phase using the pilots.
+        # Data symbols: remove the residual phase drift measured on the pilots. A straight line
+        # through the per-symbol common phases follows a residual offset with far less noise
+        # than each symbol's own phase.
         yd = y[2 + t:]
         ref = np.conj(h_train[fmt.pilot_pos]) * self._pilots
-        cpe = np.sum(yd[:, fmt.pilot_pos] * ref, axis=1)
-        yd *= (np.conj(cpe) / np.maximum(np.abs(cpe), 1e-30)).astype(np.complex64)[:, None]
+        cpe = np.unwrap(np.angle(np.sum(yd[:, fmt.pilot_pos] * ref, axis=1)))
+        k = self._data_index
+        slope = np.dot(k - k.mean(), cpe - cpe.mean()) / self._data_index_spread
+        drift = cpe.mean() + slope * (k - k.mean())
+        yd *= np.exp(-1j * drift).astype(np.complex64)[:, None]
         # Least squares over every symbol with known tone values: training, header, data.
         dp = fmt.data_pos
         rows = y[1:, dp]  # (training + header + data, data tones), a copy
@@ -290,9 +301,11 @@ class Receiver:
         values = None
         if tables is not None:
             h_rows = np.broadcast_to(h_train[dp], rows.shape)
-            for _ in range(2):  # decide, refit with the decisions, decide again
+            for _ in range(self._passes):  # decide; refit without each symbol; decide again
                 x[t + 1:], i_idx, q_idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables)
-                h, h_rows = _fit(rows, x, self._times, linear=True)
+                h, h_rows = _fit(rows, x, self._times, linear=True, leave_one_out=True)
+            x[t + 1:], i_idx, q_idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables)
+            h, h_rows = _fit(rows, x, self._times, linear=True)
             used, params = known + plan.data_symbols, 2
             values = (_GRAY[i_idx.astype(np.int64)] << tables.b_q) | _GRAY[q_idx.astype(np.int64)]
         else:
@@ -355,11 +368,15 @@ class Receiver:
         return x_hat.astype(np.complex64), i_idx, q_idx
 
 
-def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool):
+def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool,
+         leave_one_out: bool = False):
     """Per-tone least-squares channel ``h + slope (n - centroid)`` over symbol rows.
 
     Returns the channel at each tone's centroid time (what the estimate reports) and the fitted
-    channel per row. ``linear=False`` fits a constant.
+    channel per row. ``linear=False`` fits a constant. With ``leave_one_out`` the per-row channel
+    is the fit *without* that row (exact, from the leverage ``q``:
+    ``H_-i = (H_i - q_i y_i / x_i) / (1 - q_i)``), so a symbol's own, possibly wrong, decision
+    cannot pull the channel it is decided with.
     """
     energy = _power(x)
     a_sum = np.maximum(energy.sum(axis=0), 1e-30)
@@ -370,9 +387,15 @@ def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool):
         return h, np.broadcast_to(h, rows.shape)
     weighted = times * energy
     centroid = weighted.sum(axis=0) / a_sum
-    spread = np.maximum((times * weighted).sum(axis=0) - centroid * weighted.sum(axis=0), 1e-30)
-    slope = ((times * corr).sum(axis=0) - centroid * u) / spread
-    return h, h + slope * (times - centroid)
+    offset = times - centroid
+    spread = np.maximum((offset * offset * energy).sum(axis=0), 1e-30)
+    slope = (offset * corr).sum(axis=0) / spread
+    h_rows = h + slope * offset
+    if leave_one_out:
+        leverage = energy * (1.0 / a_sum + offset * offset / spread)
+        ratio = np.divide(rows, x, out=np.zeros_like(rows), where=energy > 0)
+        h_rows = (h_rows - leverage * ratio) / np.maximum(1.0 - leverage, 1e-6)
+    return h, h_rows
 
 
 def _power(x: np.ndarray) -> np.ndarray:
