@@ -127,7 +127,7 @@ def write_sigmf(path: str | Path, samples: np.ndarray, *, sample_rate_hz: float,
                 description: str = "") -> tuple[Path, Path]:
     """Write complex samples as a SigMF recording; returns ``(meta_path, data_path)``.
 
-    ``ci16_le`` stores ``round(x * 32767)``, saturating at the integer limits (which is how a
+    ``ci16_le`` stores ``round(x * 32767)``, saturating at +-32767 (which is how a
     receiver's ADC clips).
     """
     if datatype not in _DTYPES:
@@ -137,7 +137,7 @@ def write_sigmf(path: str | Path, samples: np.ndarray, *, sample_rate_hz: float,
     if datatype == "ci16_le":
         pairs = np.empty(2 * x.size, np.float64)
         pairs[0::2], pairs[1::2] = x.real, x.imag
-        raw = np.clip(np.rint(pairs * CI16_FULL_SCALE), -32768, 32767).astype("<i2")
+        raw = np.clip(np.rint(pairs * CI16_FULL_SCALE), -32767, 32767).astype("<i2")
     else:
         raw = x.astype("<c8")
     capture = {"core:sample_start": 0}
