@@ -77,8 +77,8 @@ class RxFrame:
         Whether the data symbols were demodulated (the map was known).
     channel, noise_var, snr_db : ndarray or None
         Per data tone: channel at nominal power, noise variance and SNR in dB.
-    values : ndarray of int64 or None
-        Decided symbol values, shape (data symbols, data tones), when the map was known.
+    decided : tuple or None
+        Decided (I level, Q level, Q bits) indices when the map was known; see ``values``.
     symbols_used : int
         Symbols per tone in the least-squares estimate.
     """
@@ -95,8 +95,16 @@ class RxFrame:
     channel: np.ndarray | None = None
     noise_var: np.ndarray | None = None
     snr_db: np.ndarray | None = None
-    values: np.ndarray | None = None
+    decided: tuple | None = None
     symbols_used: int = 0
+
+    @property
+    def values(self) -> np.ndarray | None:
+        """Decided symbol values, shape (data symbols, data tones), when the map was known."""
+        if self.decided is None:
+            return None
+        i_idx, q_idx, b_q = self.decided
+        return (_GRAY[i_idx] << b_q) | _GRAY[q_idx]
 
     @property
     def has_estimate(self) -> bool:
@@ -115,8 +123,16 @@ class _MapTables:
         self.b_q = b_q
         gain = scale * np.sqrt(np.where(self.bits > 0, power_lin, 0.0))
         self.gain = gain.astype(np.float32)
-        self.inv_gain = np.divide(1.0, gain, out=np.zeros_like(gain), where=gain > 0).astype(
-            np.float32)
+        inv_gain = np.divide(1.0, gain, out=np.zeros_like(gain), where=gain > 0)
+        # Interleaved (I, Q) per tone, matching a complex64 array viewed as float32 pairs:
+        # index = rint(z / (2 gain) + (M - 1) / 2), clipped to [0, M - 1]; point = 2 gain index
+        # - gain (M - 1).
+        top = np.stack([m_i - 1, m_q - 1], axis=-1).astype(np.float64)
+        self.top = top.astype(np.float32)
+        self.half_inv_gain = np.repeat(0.5 * inv_gain, 2).reshape(-1, 2).astype(np.float32)
+        self.half_top = (0.5 * top).astype(np.float32)
+        self.two_gain = np.repeat(2.0 * gain, 2).reshape(-1, 2).astype(np.float32)
+        self.gain_top = (gain[:, None] * top).astype(np.float32)
 
 
 class Receiver:
@@ -150,6 +166,7 @@ class Receiver:
         self.clip_fraction = float(clip_fraction)
         self._half = n // 2
         self._block = max(8, min(32, self._half // 8))
+        self._decimate = self._block // 8
         self._phase_ramp = (-2j * np.pi * np.arange(n) / n)
         g = math.ceil(plan.cfo_range_tones / 2)
         self._shifts = 2 * np.arange(-g, g + 1)
@@ -163,9 +180,9 @@ class Receiver:
         self._reps = fmt.header_reps
         self._passes = 1
         self._sym_index = np.arange(plan.n_symbols)
-        self._data_index = np.arange(plan.data_symbols, dtype=np.float64)
-        self._data_index_spread = max(
-            float(np.sum((self._data_index - self._data_index.mean()) ** 2)), 1.0)
+        index = np.arange(plan.data_symbols, dtype=np.float64)
+        self._data_offsets = index - index.mean()
+        self._data_index_spread = max(float(np.sum(self._data_offsets ** 2)), 1.0)
         self._times = np.arange(1 + plan.train_symbols + plan.data_symbols,
                                 dtype=np.float32)[:, None]
         default = _MapTables(np.full(plan.data_tones.size, int(default_bits)),
@@ -174,7 +191,8 @@ class Receiver:
 
     # ------------------------------------------------------------------ public
 
-    def receive(self, block: np.ndarray, lookup: MapLookup | None = None) -> RxFrame:
+    def receive(self, block: np.ndarray, lookup: MapLookup | None = None, *,
+                demodulate: bool = True) -> RxFrame:
         """Find the first frame in ``block`` and estimate the channel from it.
 
         Parameters
@@ -184,6 +202,9 @@ class Receiver:
         lookup : callable, optional
             ``lookup(map_seq) -> (bits, power_lin)`` for maps other than the default; without
             it (or when it returns None) the estimate uses the training symbols and header only.
+        demodulate : bool
+            Also make the final data decisions (``RxFrame.decided``, a second decision pass with
+            the leave-one-out channel). The estimate does not depend on it.
 
         Returns
         -------
@@ -211,7 +232,7 @@ class Receiver:
             writeable=False)
         derotate = np.exp(self._phase_ramp * eps_frac).astype(np.complex64)
         spectra = np.fft.fft(windows * derotate, axis=1)
-        return self._estimate(r, d0, end, metric, eps_frac, spectra, lookup)
+        return self._estimate(r, d0, end, metric, eps_frac, spectra, lookup, demodulate)
 
     # ------------------------------------------------------------------ steps
 
@@ -219,12 +240,17 @@ class Receiver:
         """Return (start, metric, P) of the first frame, (-1, best metric, 0) or None."""
         half, b = self._half, self._block
         cp = self.plan.cp_len
-        z = np.conj(r[:-half]) * r[half:]
-        e = r.real * r.real + r.imag * r.imag
-        lb = half // b
-        nz, ne = z.size // b, e.size // b
-        cz = np.concatenate(([0], np.cumsum(z[:nz * b].reshape(nz, b).sum(axis=1))))
-        ce = np.concatenate(([0], np.cumsum(e[:ne * b].reshape(ne, b).sum(axis=1))))
+        # Coarse metric on every dec-th sample, summed over blocks of b samples.
+        dec = self._decimate
+        zd = np.conj(r[0:r.size - half:dec]) * r[half::dec]
+        ed = np.abs(r[::dec])
+        ed *= ed
+        lb, bd = half // b, b // dec
+        nz, ne = zd.size // bd, ed.size // bd
+        cz = np.zeros(nz + 1, np.complex128)
+        np.cumsum(zd[:nz * bd].reshape(nz, bd).sum(axis=1), out=cz[1:])
+        ce = np.zeros(ne + 1, np.float64)
+        np.cumsum(ed[:ne * bd].reshape(ne, bd).sum(axis=1), out=ce[1:])
         count = min(nz - lb, ne - 2 * lb) + 1
         if count <= 0:
             return None
@@ -237,12 +263,14 @@ class Receiver:
         first = above[0]
         stop = min(first + (half + cp) // b + 2, count)
         peak = first + int(np.argmax(mc[first:stop]))
+        # Exact metric at every sample around the coarse peak.
         lo = max(0, peak * b - cp - 2 * b)
         hi = min(peak * b + cp + 2 * b, r.size - 2 * half)
         if hi <= lo:
             return None
-        zc = np.concatenate(([0], np.cumsum(z[lo:hi + half].astype(np.complex128))))
-        ec = np.concatenate(([0], np.cumsum(e[lo:hi + 2 * half].astype(np.float64))))
+        seg = r[lo:hi + 2 * half].astype(np.complex128)
+        zc = np.concatenate(([0], np.cumsum(np.conj(seg[:-half]) * seg[half:])))
+        ec = np.concatenate(([0], np.cumsum(seg.real ** 2 + seg.imag ** 2)))
         width = hi - lo + 1
         pf = zc[half:half + width] - zc[:width]
         rf = 0.5 * (ec[2 * half:2 * half + width] - ec[:width])
@@ -256,7 +284,7 @@ class Receiver:
         d = (left + right) // 2
         return lo + d, float(mf[d]), complex(pf[d])
 
-    def _estimate(self, r, d0, end, metric, eps_frac, spectra, lookup) -> RxFrame:
+    def _estimate(self, r, d0, end, metric, eps_frac, spectra, lookup, demodulate) -> RxFrame:
         plan, fmt = self.plan, self.format
         n, s, t = plan.fft_size, plan.symbol_len, plan.train_symbols
         # Integer offset: even shift maximizing the sync/training differential correlation.
@@ -285,11 +313,13 @@ class Receiver:
         # than each symbol's own phase.
         y_pilot = np.take(spectra[t + 2:], bins[fmt.pilot_pos], axis=1)
         ref = np.conj(h_train[fmt.pilot_pos]) * self._pilots
-        cpe = np.unwrap(np.angle(np.sum(y_pilot * ref, axis=1) * phase[t + 2:]))
-        k = self._data_index
-        slope = np.dot(k - k.mean(), cpe - cpe.mean()) / self._data_index_spread
+        common = np.sum(y_pilot * ref, axis=1) * phase[t + 2:]
+        steps = np.angle(common[1:] * np.conj(common[:-1]))  # unwrapped phase differences
+        cpe = np.concatenate(([np.angle(common[0])], steps)).cumsum()
+        k = self._data_offsets
+        slope = np.dot(k, cpe) / self._data_index_spread
         row_phase = phase[1:].copy()
-        row_phase[t + 1:] *= np.exp(-1j * (cpe.mean() + slope * (k - k.mean())))
+        row_phase[t + 1:] *= np.exp(-1j * (cpe.mean() + slope * k))
         # Least squares over every symbol with known tone values: training, header, data.
         dp = fmt.data_pos
         rows = np.take(spectra[1:], bins[dp], axis=1)  # (training + header + data, data tones)
@@ -304,21 +334,18 @@ class Receiver:
         known = t + int(header_ok)
         values = None
         if tables is not None:
-            h_rows = np.broadcast_to(h_train[dp], rows.shape)
-            for _ in range(self._passes):  # decide; refit without each symbol; decide again
-                x[t + 1:], i_idx, q_idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables)
-                h, h_rows = _fit(rows, x, self._times, linear=True, leave_one_out=t + 1)
-            x[t + 1:], i_idx, q_idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables)
-            h, h_rows = _fit(rows, x, self._times, linear=True)
-            used, params = known + plan.data_symbols, 2
-            values = (_GRAY[i_idx.astype(np.int64)] << tables.b_q) | _GRAY[q_idx.astype(np.int64)]
+            # Decide with the training channel; fit level and slope with those decisions (the
+            # estimate); decide again with the leave-one-out channel (the demodulated data).
+            x[t + 1:] = self._decide(rows[t + 1:], h_train[dp], tables)[0]  # h: one per tone
+            h, h_rows, residual = _fit(rows, x, self._times, linear=True,
+                                       leave_one_out=t + 1 if demodulate else None)
+            used, params, decided = known + plan.data_symbols, 2, None
+            if demodulate:
+                idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables)[1].astype(np.uint8)
+                decided = (idx[..., 0], idx[..., 1], tables.b_q)
         else:
-            h, h_rows = _fit(rows[:t + 1], x[:t + 1], self._times[:t + 1], linear=False)
-            rows, x = rows[:t + 1], x[:t + 1]
-            used, params = known, 1
-        err = h_rows * x
-        np.subtract(rows, err, out=err)
-        residual = _power(err).sum(axis=0)
+            h, _, residual = _fit(rows[:t + 1], x[:t + 1], self._times[:t + 1], linear=False)
+            used, params, decided = known, 1, None
         # S ~ sigma^2 Gamma(N - params): E[1/S] = 1 / ((N - params - 1) sigma^2).
         noise_var = np.maximum(residual / max(used - params - 1, 1), 1e-30)
         snr_db = 10.0 * np.log10(np.maximum(_power(h) / noise_var, 1e-30))
@@ -334,7 +361,7 @@ class Receiver:
             cfo_hz=cfo_tones * plan.tone_spacing_hz, header_ok=header_ok,
             map_seq=seq if header_ok else -1, counter=counter if header_ok else -1,
             map_known=tables is not None, channel=h, noise_var=noise_var, snr_db=snr_db,
-            values=values, symbols_used=used)
+            decided=decided, symbols_used=used)
 
     # ------------------------------------------------------------------ helpers
 
@@ -364,61 +391,72 @@ class Receiver:
 
     @staticmethod
     def _decide(y: np.ndarray, h: np.ndarray, tables: _MapTables):
-        """Hard decisions on every data tone at once; returns (points, I index, Q index).
+        """Hard decisions on every data tone at once; returns (points, I and Q level indices).
 
-        ``fmax``/``fmin`` rather than ``clip`` so that a NaN sample decides to a valid index.
+        Works on the complex arrays viewed as interleaved float32 (I, Q) pairs, so each step is
+        one pass for both axes. ``fmax``/``fmin`` rather than ``clip`` so that a NaN sample
+        decides to a valid index.
         """
-        z = y / h
-        i_idx = z.real * tables.inv_gain
-        q_idx = z.imag * tables.inv_gain
-        for idx, top in ((i_idx, tables.m_i1), (q_idx, tables.m_q1)):
-            idx += top
-            idx *= 0.5
-            np.rint(idx, out=idx)
-            np.fmax(idx, 0.0, out=idx)
-            np.fmin(idx, top, out=idx)
-        x_hat = np.empty(y.shape, np.complex64)
-        x_hat.real = (2.0 * i_idx - tables.m_i1) * tables.gain
-        x_hat.imag = (2.0 * q_idx - tables.m_q1) * tables.gain
-        return x_hat, i_idx, q_idx
+        z = y * (1.0 / h) if h.ndim == 1 else y / h
+        idx = z.view(np.float32).reshape(*z.shape, 2)
+        idx *= tables.half_inv_gain
+        idx += tables.half_top
+        np.rint(idx, out=idx)
+        np.fmax(idx, 0.0, out=idx)
+        np.fmin(idx, tables.top, out=idx)
+        points = idx * tables.two_gain
+        points -= tables.gain_top
+        return points.view(np.complex64).reshape(z.shape), idx
 
 
 def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool,
          leave_one_out: int | None = None):
-    """Per-tone least-squares channel ``h + slope (n - centroid)`` over symbol rows.
+    """Per-tone least-squares channel ``h0 + slope (n - n_mean)`` over symbol rows.
 
-    Returns the channel at each tone's centroid time (what the estimate reports) and the fitted
-    channel per row. ``linear=False`` fits a constant. With ``leave_one_out=k`` the channel of
-    rows ``k:`` is the fit *without* that row (exact, from the leverage ``q``:
-    ``H_-i = (H_i - q_i y_i / x_i) / (1 - q_i)``), so a symbol's own, possibly wrong, decision
-    cannot pull the channel it is decided with.
+    Returns ``(h, h_rows, residual)``: the channel at each tone's energy centroid in time (what
+    the estimate reports), the channel per row and the residual energy ``sum |y - h_n x|^2`` per
+    tone. ``linear=False`` fits a constant. With ``leave_one_out=k`` the channel of rows ``k:``
+    is the fit *without* that row, exact from the leverage ``q_i = |x_i|^2 w_i``:
+    ``H_-i = (H_i - w_i conj(x_i) y_i) / (1 - q_i)``, so a symbol's own, possibly wrong,
+    decision cannot pull the channel it is decided with.
     """
+    # Weighted sums over rows are matrix products (BLAS), not broadcasts against a column.
     energy = np.abs(x)
     energy *= energy
-    a_sum = np.maximum(energy.sum(axis=0), 1e-30)
     corr = rows * np.conj(x)
-    h = corr.sum(axis=0) / a_sum
+    ones = np.ones(rows.shape[0], np.float32)
+    a = np.maximum(ones @ energy, 1e-30)
+    u = ones.astype(np.complex64) @ corr
     if not linear:
-        return h, np.broadcast_to(h, rows.shape)
-    centroid = (times * energy).sum(axis=0) / a_sum
-    offset = times - centroid
-    weighted = offset * energy
-    spread = np.maximum((weighted * offset).sum(axis=0), 1e-30)
-    slope = (corr * offset).sum(axis=0) / spread
-    h_rows = slope * offset
-    h_rows += h
-    if leave_one_out is not None:
+        h = u / a
+        h_rows = np.broadcast_to(h, rows.shape)
+    else:
+        o = (times - times.mean())[:, 0]  # the same time offsets for every tone
+        o2 = o * o
+        b = o @ energy
+        c = o2 @ energy
+        v = o.astype(np.complex64) @ corr
+        det = np.maximum(a * c - b * b, 1e-30)
+        h0 = (c * u - b * v) / det
+        slope = (a * v - b * u) / det
+        basis = np.stack([ones, o], axis=1).astype(np.complex64)
+        h_rows = basis @ np.stack([h0, slope]).astype(np.complex64)
+        h = h0 + slope * (b / a)
+    err = h_rows * x
+    np.subtract(rows, err, out=err)
+    residual = ones @ _power(err)
+    if linear and leave_one_out is not None:
         k = leave_one_out
-        e, o = energy[k:], offset[k:]
-        leverage = o * o
-        leverage *= 1.0 / spread
-        leverage += 1.0 / a_sum
-        ratio = corr[k:] / np.maximum(e, 1e-30)  # y / x where x != 0, else 0
-        leverage *= e
+        quad = np.stack([o2[k:], o[k:], ones[k:]], axis=1)
+        w = quad @ np.stack([a / det, -2.0 * b / det, c / det]).astype(np.float32)
         part = h_rows[k:]
-        part -= leverage * ratio
-        part /= np.maximum(1.0 - leverage, 1e-6)
-    return h, h_rows
+        part -= corr[k:] * w.astype(np.complex64)
+        w *= energy[k:]
+        np.subtract(1.0, w, out=w)
+        np.maximum(w, 1e-6, out=w)
+        np.divide(1.0, w, out=w)
+        part *= w.astype(np.complex64)
+    return h, h_rows, residual
 
 
 def _power(x: np.ndarray) -> np.ndarray:
