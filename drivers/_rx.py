@@ -242,8 +242,10 @@ class Receiver:
         cp = self.plan.cp_len
         # Coarse metric on every dec-th sample, summed over blocks of b samples.
         dec = self._decimate
-        zd = np.conj(r[0:r.size - half:dec]) * r[half::dec]
-        ed = np.abs(r[::dec])
+        rd = r[::dec].copy() if dec > 1 else r
+        hd = half // dec
+        zd = np.conj(rd[:-hd]) * rd[hd:]
+        ed = np.abs(rd)
         ed *= ed
         lb, bd = half // b, b // dec
         nz, ne = zd.size // bd, ed.size // bd
@@ -295,7 +297,7 @@ class Receiver:
         bins = (fmt.used_bins + shift) % n
         # Per-symbol phase step from the identical training symbols (all offsets together).
         head = np.take(spectra[1:t + 2], bins, axis=1)  # training symbols and header
-        theta = float(np.angle(np.vdot(head[:t - 1], head[1:t])))
+        theta = float(np.angle(np.sum(np.conj(head[:t - 1]) * head[1:t])))
         expected = 2 * np.pi * (eps_frac * s + shift * plan.cp_len) / n
         eps_fine = math.remainder(theta - expected, 2 * np.pi) * n / (2 * np.pi * s)
         cfo_tones = eps_frac + shift + eps_fine
@@ -420,35 +422,37 @@ def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool,
     ``H_-i = (H_i - w_i conj(x_i) y_i) / (1 - q_i)``, so a symbol's own, possibly wrong,
     decision cannot pull the channel it is decided with.
     """
-    # Weighted sums over rows are matrix products (BLAS), not broadcasts against a column.
+    # Complex arrays times a real column go through their float32 views: same-type loops,
+    # no casts, no BLAS threads for these small products.
     energy = np.abs(x)
     energy *= energy
     corr = rows * np.conj(x)
-    ones = np.ones(rows.shape[0], np.float32)
-    a = np.maximum(ones @ energy, 1e-30)
-    u = ones.astype(np.complex64) @ corr
+    a = np.maximum(energy.sum(axis=0), 1e-30)
+    u = corr.sum(axis=0)
     if not linear:
         h = u / a
         h_rows = np.broadcast_to(h, rows.shape)
     else:
-        o = (times - times.mean())[:, 0]  # the same time offsets for every tone
+        o = times - times.mean()  # a column: the same time offsets for every tone
         o2 = o * o
-        b = o @ energy
-        c = o2 @ energy
-        v = o.astype(np.complex64) @ corr
+        b = (energy * o).sum(axis=0)
+        c = (energy * o2).sum(axis=0)
+        v = _as_complex((_as_pairs(corr) * o).sum(axis=0))
         det = np.maximum(a * c - b * b, 1e-30)
-        h0 = (c * u - b * v) / det
-        slope = (a * v - b * u) / det
-        basis = np.stack([ones, o], axis=1).astype(np.complex64)
-        h_rows = basis @ np.stack([h0, slope]).astype(np.complex64)
+        h0 = ((c * u - b * v) / det).astype(np.complex64)
+        slope = ((a * v - b * u) / det).astype(np.complex64)
+        pairs = _as_pairs(slope) * o
+        pairs += _as_pairs(h0)
+        h_rows = _as_complex(pairs)
         h = h0 + slope * (b / a)
     err = h_rows * x
     np.subtract(rows, err, out=err)
-    residual = ones @ _power(err)
+    residual = _power(err).sum(axis=0)
     if linear and leave_one_out is not None:
         k = leave_one_out
-        quad = np.stack([o2[k:], o[k:], ones[k:]], axis=1)
-        w = quad @ np.stack([a / det, -2.0 * b / det, c / det]).astype(np.float32)
+        w = o2[k:] * (a / det).astype(np.float32)
+        w -= o[k:] * (2.0 * b / det).astype(np.float32)
+        w += (c / det).astype(np.float32)
         part = h_rows[k:]
         part -= corr[k:] * w.astype(np.complex64)
         w *= energy[k:]
@@ -457,6 +461,16 @@ def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool,
         np.divide(1.0, w, out=w)
         part *= w.astype(np.complex64)
     return h, h_rows, residual
+
+
+def _as_pairs(z: np.ndarray) -> np.ndarray:
+    """A complex64 array's float32 view, (..., n) -> (..., 2n) interleaved I, Q."""
+    return z.view(np.float32)
+
+
+def _as_complex(pairs: np.ndarray) -> np.ndarray:
+    """Inverse of :func:`_as_pairs` (contiguous float32 (..., 2n) -> complex64 (..., n))."""
+    return np.ascontiguousarray(pairs, dtype=np.float32).view(np.complex64)
 
 
 def _power(x: np.ndarray) -> np.ndarray:
@@ -472,6 +486,8 @@ class FrameScanner:
     ----------
     receiver : Receiver
         The receiver DSP.
+    demodulate : bool
+        Make the final data decisions too (not needed for estimates).
 
     Notes
     -----
@@ -479,8 +495,9 @@ class FrameScanner:
     every possible frame start is searched with the whole frame inside the window.
     """
 
-    def __init__(self, receiver: Receiver) -> None:
+    def __init__(self, receiver: Receiver, *, demodulate: bool = False) -> None:
         self.receiver = receiver
+        self.demodulate = bool(demodulate)
         self._buffer = np.zeros(0, np.complex64)
         self._offset = 0  # absolute index of self._buffer[0]
 
@@ -500,7 +517,7 @@ class FrameScanner:
         window = 2 * self.receiver.plan.frame_len
         pos, out = 0, []
         while buf.size - pos >= (window if not final else 1):
-            res = self.receiver.receive(buf[pos:pos + window], lookup)
+            res = self.receiver.receive(buf[pos:pos + window], lookup, demodulate=self.demodulate)
             at_end = pos + window >= buf.size
             if res.reason == "truncated" and not (final and at_end):
                 if res.start < 0 or res.end <= 0:
