@@ -163,6 +163,24 @@ class SimDriver(Driver):
         self.counters["frames"] += 1
         return estimate_from(res, plan=self.plan, frame=i, time_s=self.start_s + t_s)
 
+    def capture(self, n_frames: int, *, gap_samples: int = 0) -> np.ndarray:
+        """Baseband samples of the next ``n_frames`` frames as a receiver would record them.
+
+        Each frame is followed by ``gap_samples`` of noise; the channel still advances by
+        ``1 / frame_rate_hz`` per frame, so a capture is short while the fading is realistic.
+        Frames carry the default map (for recordings, which do not store maps).
+        """
+        seq, bits, power = map_arrays(self.plan, None, self.default_bits)
+        pieces = []
+        for _ in range(int(n_frames)):
+            i = self._index
+            self._index += 1
+            sent = self.transmitter.frame(bits=bits, power_lin=power, map_seq=seq, counter=i,
+                                          rng=self.rng)
+            pieces.append(self.channel.transmit(sent.samples, self.frame_time_s(i),
+                                                tail_samples=gap_samples))
+        return np.concatenate(pieces) if pieces else np.zeros(0, np.complex64)
+
     def _frames(self) -> Iterator[Estimate]:
         t0 = time.monotonic() - self.frame_time_s(self._index)
         while not self.closed:
