@@ -75,6 +75,8 @@ def _as_snr(snr) -> np.ndarray:
         raise InputError(f"snr must be an array of numbers, got {type(snr).__name__}") from None
     if arr.ndim != 1:
         raise InputError(f"snr must be 1-D (one value per tone), got shape {arr.shape}")
+    if arr.size and arr.min() >= 0.0 and math.isfinite(float(arr.sum())):
+        return arr  # the usual case, in two cheap passes
     bad = ~(np.isfinite(arr) & (arr >= 0.0))
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
@@ -370,11 +372,17 @@ def waterfill(snr, *, gap_db: float = 0.0, budget_db: float = 0.0,
 
 @dataclass(frozen=True)
 class _Tones:
-    """Per-frame quantities of the tones, derived from the SNR and the loader's tables."""
+    """Per-frame quantities of the tones, derived from the SNR and the loader's tables.
 
-    unit: np.ndarray      # gap / snr: power per unit of (2**b - 1); 0 where a tone cannot load
-    log_unit: np.ndarray  # log2(unit); +inf where a tone cannot load
-    top: np.ndarray       # highest step index allowed by the ceiling (index into the bit set)
+    A tone that cannot take even its first step within the ceiling and the whole budget is
+    *unloadable*: ``unit`` 0, ``log_unit`` +inf, ``top`` 0.
+    """
+
+    unit: np.ndarray      # gap / snr: power per unit of (2**b - 1)
+    log_unit: np.ndarray  # log2(unit)
+    top: np.ndarray       # highest index into the bit set the ceiling (and budget) allow
+    top_f: np.ndarray     # top as float64, for the unit-step search
+    unit_sum: float       # sum(unit): the energy of n steps is dot(unit, 2**n) - unit_sum
 
 
 class Loader:
@@ -458,9 +466,7 @@ class Loader:
             self._key_spacing = float(np.diff(self._step_key).min())
         else:
             self._key_spacing = 1.0
-        # A tone with SNR s may take step index j when u * (2**b_j - 1) <= cap, i.e.
-        # 2**b_j - 1 <= cap * s / gap.
-        self._cap_over_gap = self._cap / self._gap
+        self._log2_gap = math.log2(self._gap)
 
     def __repr__(self) -> str:
         return (f"Loader(mode={self.mode!r}, bits={self.bits.tolist()}, gap_db={self.gap_db}, "
@@ -469,31 +475,51 @@ class Loader:
 
     # ---------------------------------------------------------------- per-tone helpers
 
-    def _tones(self, snr: np.ndarray) -> _Tones:
-        loadable = snr > 0.0
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            room = np.where(loadable, snr * self._cap_over_gap, 0.0)
-            unit = np.where(loadable, self._gap / snr, 0.0)
-            log_unit = np.where(loadable, np.log2(unit), np.inf)
-        top = np.searchsorted(self._energy, room, side="right") - 1
-        top[top < 0] = 0
-        unloadable = top == 0
-        if unloadable.any():
-            unit = np.where(unloadable, 0.0, unit)
-            log_unit = np.where(unloadable, np.inf, log_unit)
-        return _Tones(unit=unit, log_unit=log_unit, top=top)
+    def _tones(self, snr: np.ndarray, budget: float) -> _Tones:
+        with np.errstate(divide="ignore"):
+            log_unit = self._log2_gap - np.log2(snr)  # +inf where the SNR is 0
+            unit = self._gap / snr
+        # Step j is allowed when unit * (2**b_j - 1) fits the ceiling and the whole budget.
+        # Excluding tones that could never load also keeps unit_sum small next to the budget,
+        # so the energy formula of _energy_of loses nothing to cancellation.
+        if math.isfinite(self._cap):
+            room = min(self._cap, budget) / unit
+            top = np.searchsorted(self._energy, room, side="right") - 1
+        else:  # only the budget limits a tone: drop those that cannot afford the first step
+            top = np.where(unit * self._energy[1] <= budget, self.bits.size - 1, 0) \
+                if self.bits.size > 1 else np.zeros(unit.size, dtype=np.int64)
+        if not top.all():
+            dead = top == 0
+            unit[dead] = 0.0
+            log_unit[dead] = np.inf
+        return _Tones(unit=unit, log_unit=log_unit, top=top, top_f=top.astype(np.float64),
+                      unit_sum=float(unit.sum()))
 
     def _steps_at(self, tones: _Tones, t: float) -> np.ndarray:
-        """Steps each tone takes at threshold ``t`` (log2 of the cost per bit), capped."""
+        """Steps each tone takes at threshold ``t`` (log2 of the cost per bit), capped.
+
+        Unit-step sets return float64 counts (exact integers) for the cheap energy formula.
+        """
         if self._unit_steps:  # keys are 0, 1, 2, ...: a floor does the search
-            n = np.floor(t - tones.log_unit)
-            n += 1.0
-            np.maximum(n, 0.0, out=n)
-            n = n.astype(np.int64)
-        else:
-            n = np.searchsorted(self._step_key, t - tones.log_unit, side="right")
+            n = np.subtract(t + 1.0, tones.log_unit)
+            np.floor(n, out=n)
+            np.maximum(n, 0.0, out=n)  # two ufuncs are cheaper than np.clip here
+            np.minimum(n, tones.top_f, out=n)
+            return n
+        n = np.searchsorted(self._step_key, t - tones.log_unit, side="right")
         np.minimum(n, tones.top, out=n)
         return n
+
+    def _energy_of(self, tones: _Tones, n: np.ndarray) -> float:
+        """Total required power of ``n`` steps per tone, linear."""
+        if self._unit_steps:
+            return float(np.dot(tones.unit, np.exp2(n))) - tones.unit_sum
+        return float(np.dot(tones.unit, self._energy[n]))
+
+    def _bits_of(self, n: np.ndarray) -> int:
+        if self._unit_steps:
+            return int(n.sum())
+        return int(self.bits[n].sum())
 
     def required_power(self, bits, snr) -> np.ndarray:
         """Power each tone needs for its bits: ``gap * (2**bits - 1) / snr`` (0 for 0 bits).
@@ -544,73 +570,124 @@ class Loader:
 
     # ---------------------------------------------------------------- searches
 
-    def _bracket(self, tones: _Tones, measure, limit: float):
-        """Bisect the threshold until no tone has two steps inside ``(lo, hi]``.
+    def _bracket(self, tones: _Tones, measure, limit: float, guess: float):
+        """Narrow the threshold until no tone has two steps inside ``(lo, hi]``.
 
-        ``measure(n)`` is nondecreasing in the steps ``n``; returns ``(n_lo, n_hi)`` with
-        ``measure(n_lo) <= limit < measure(n_hi)``, or ``(top, None)`` when everything fits.
+        ``measure(n)`` is nondecreasing in the steps ``n``. Returns ``(n_lo, n_hi, m_lo)`` with
+        ``m_lo = measure(n_lo) <= limit < measure(n_hi)``, or ``(top, None, measure(top))`` when
+        everything fits. The search starts at ``guess`` and widens by doubling until it holds the limit, bisects
+        until the bracket is narrower than the key spacing, then takes one interpolated probe
+        so that the final sort sees few tones. The guess and the probe only save work: any
+        bracket with the invariant gives the same exact answer.
         """
-        top = tones.top
-        if measure(top) <= limit:
-            return top, None
-        live = top > 0
-        lu = tones.log_unit[live]
-        lo = float((lu + self._step_key[0]).min()) - 1.0
-        hi = float((lu + self._step_key[top[live] - 1]).max())
-        n_lo = np.zeros_like(top)
-        n_hi = top
-        width = self._key_spacing
-        while hi - lo >= width:
+        top = tones.top_f if self._unit_steps else tones.top
+        live = tones.top > 0
+        if not live.any():
+            return top, None, 0.0
+        spacing = self._key_spacing
+        t = guess
+        n = self._steps_at(tones, t)
+        m = measure(n)
+        step = 0.5 * spacing
+        if m <= limit:  # walk up until over the limit (or everything fits)
+            lo, n_lo, m_lo = t, n, m
+            # the threshold past which every tone is full
+            key_top = tones.log_unit + (tones.top_f - 1.0 if self._unit_steps
+                                        else self._step_key[tones.top - 1])
+            t_max = float(key_top.max() if live.all() else key_top[live].max())
+            while True:
+                t = lo + step
+                if t >= t_max:
+                    m = measure(top)
+                    if m <= limit:
+                        return top, None, m
+                    hi, n_hi, m_hi = t_max, top, m
+                    break
+                n = self._steps_at(tones, t)
+                m = measure(n)
+                if m > limit:
+                    hi, n_hi, m_hi = t, n, m
+                    break
+                lo, n_lo, m_lo = t, n, m
+                step *= 2.0
+        else:  # walk down until within the limit (nothing loaded always is)
+            hi, n_hi, m_hi = t, n, m
+            # the threshold below which no tone takes a step
+            t_min = float(tones.log_unit.min()) + float(self._step_key[0]) - 1.0
+            while True:
+                t = hi - step
+                if t <= t_min:
+                    lo, n_lo, m_lo = t_min, np.zeros_like(top), 0.0
+                    break
+                n = self._steps_at(tones, t)
+                m = measure(n)
+                if m <= limit:
+                    lo, n_lo, m_lo = t, n, m
+                    break
+                hi, n_hi, m_hi = t, n, m
+                step *= 2.0
+        while hi - lo >= spacing:
             mid = 0.5 * (lo + hi)
             n = self._steps_at(tones, mid)
-            if measure(n) <= limit:
-                lo, n_lo = mid, n
+            m = measure(n)
+            if m <= limit:
+                lo, n_lo, m_lo = mid, n, m
             else:
-                hi, n_hi = mid, n
-        return n_lo, n_hi
+                hi, n_hi, m_hi = mid, n, m
+        width = hi - lo
+        t = lo + width * (limit - m_lo) / (m_hi - m_lo)
+        t = min(max(t, lo + 0.02 * width), hi - 0.02 * width)
+        n = self._steps_at(tones, t)
+        m = measure(n)
+        if m <= limit:
+            n_lo, m_lo = n, m
+        else:
+            n_hi = n
+        return n_lo, n_hi, m_lo
 
     def _candidates(self, tones: _Tones, n_lo: np.ndarray, n_hi: np.ndarray):
-        """Tones with a step inside the bracket, in efficiency order (ties by tone index)."""
+        """Tones with a step inside the bracket and that step's index, in efficiency order."""
         idx = np.flatnonzero(n_hi > n_lo)
-        j = n_lo[idx]
+        j = n_lo[idx].astype(np.int64)
         key = tones.log_unit[idx] + self._step_key[j]
-        order = np.argsort(key, kind="stable")
-        idx, j = idx[order], j[order]
-        return idx, j
+        order = np.argsort(key)
+        return idx[order], j[order]
 
     def _rate_steps(self, tones: _Tones, budget: float) -> np.ndarray:
         """Steps per tone of the rate-maximising allocation (see the class notes)."""
-        energy, unit = self._energy, tones.unit
-
-        def spent(n):
-            return float(np.dot(unit, energy[n]))
-
-        n_lo, n_hi = self._bracket(tones, spent, budget)
-        if n_hi is None:
-            return n_lo
-        idx, j = self._candidates(tones, n_lo, n_hi)
-        cost = unit[idx] * self._step_energy[j]
-        room = budget - spent(n_lo)
-        take = int(np.searchsorted(np.cumsum(cost), room, side="right"))
-        n = n_lo.copy()
-        n[idx[:take]] += 1
-        return n
+        live = max(int(np.count_nonzero(tones.top)), 1)
+        # At threshold t a tone's energy is below twice its last step, so about
+        # 1.44 * 2**t on average (mean of 2**(1 - u), u uniform): a first guess only.
+        guess = math.log2((budget + tones.unit_sum) / (1.4427 * live * self._step_bits.max()))
+        n_lo, n_hi, spent = self._bracket(tones, lambda n: self._energy_of(tones, n), budget,
+                                          guess)
+        if n_hi is not None:
+            idx, j = self._candidates(tones, n_lo, n_hi)
+            cost = tones.unit[idx] * self._step_energy[j]
+            room = budget - spent
+            take = int(np.searchsorted(np.cumsum(cost), room, side="right"))
+            n_lo = n_lo.copy()
+            n_lo[idx[:take]] += 1
+        return n_lo.astype(np.int64)
 
     def _margin_steps(self, tones: _Tones, target: int) -> np.ndarray:
-        """Steps per tone of the least-power allocation with exactly ``target`` bits."""
-        bits = self.bits
+        """Steps per tone of the least-power allocation with exactly ``target`` bits.
 
-        def count(n):
-            return int(bits[n].sum())
-
-        n_lo, n_hi = self._bracket(tones, count, target)
-        if n_hi is None:  # the caller checked that the ceilings allow the target
-            return n_lo
+        The caller has checked that the ceilings allow ``target`` bits.
+        """
+        live = tones.top > 0
+        n_live = max(int(np.count_nonzero(live)), 1)
+        # A tone takes about t - log2(unit) + 1 unit steps at threshold t: a first guess only.
+        guess = (target / self._step_bits.mean() + float(tones.log_unit[live].sum())) / n_live \
+            - 1.0 if live.any() else 0.0
+        n_lo, n_hi, count = self._bracket(tones, self._bits_of, target, guess)
+        if n_hi is None:
+            return n_lo.astype(np.int64)
         idx, j = self._candidates(tones, n_lo, n_hi)
         size = self._step_bits[j]
-        rest = target - count(n_lo)
+        rest = target - count
         take = int(np.searchsorted(np.cumsum(size), rest, side="right"))
-        n = n_lo.copy()
+        n = n_lo.astype(np.int64)
         n[idx[:take]] += 1
         rest -= int(size[:take].sum())
         if rest:
@@ -671,8 +748,8 @@ class Loader:
     def rate(self, snr) -> Allocation:
         """Rate mode for ``snr``, whatever ``mode`` this loader was built with."""
         snr = _as_snr(snr)
-        tones = self._tones(snr)
         budget = self._budget(snr.size)
+        tones = self._tones(snr, budget)
         n = self._rate_steps(tones, budget)
         return self._allocation(tones, n, budget, scale=False)
 
@@ -690,8 +767,8 @@ class Loader:
                 or target_bits < 0:
             raise InputError(f"target_bits={target_bits!r} must be an integer >= 0")
         target = int(target_bits)
-        tones = self._tones(snr)
         budget = self._budget(snr.size)
+        tones = self._tones(snr, budget)
         if target > int(self.bits[tones.top].sum()):
             self._raise_infeasible(target, tones, budget)
         n = self._margin_steps(tones, target)
