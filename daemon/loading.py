@@ -80,7 +80,7 @@ def _as_snr(snr) -> np.ndarray:
     bad = ~(np.isfinite(arr) & (arr >= 0.0))
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
-        raise InputError(f"snr[{i}]={arr[i]!r} must be finite and >= 0 (linear SNR)")
+        raise InputError(f"snr[{i}]={float(arr[i])!r} must be finite and >= 0 (linear SNR)")
     return arr
 
 
@@ -223,7 +223,12 @@ def _gray_pam_bit_errors(m: int, x: np.ndarray) -> np.ndarray:
     lo = np.where(levels[None, :] == 0, -np.inf, offs - 1.0)
     hi = np.where(levels[None, :] == m - 1, np.inf, offs + 1.0)
     xx = x.reshape(-1, 1, 1)
-    prob = _qfunc(lo * xx) - _qfunc(hi * xx)  # P(noise / (d/2) in (lo, hi)) scaled by x
+    # P(lo x < Z < hi x) for a standard normal Z, from the near tail so nothing cancels
+    # (the error terms are tiny at high SNR; the straddling interval has Hamming distance 0).
+    with np.errstate(invalid="ignore"):
+        below = special.ndtr(hi * xx) - special.ndtr(lo * xx)
+        above = _qfunc(lo * xx) - _qfunc(hi * xx)
+    prob = np.where(hi <= 0, below, above)
     errs = (prob * ham).sum(axis=(1, 2)) / m
     return errs.reshape(x.shape)
 
@@ -309,9 +314,10 @@ def _water_level(floor_lin: np.ndarray, budget: float, cap: float) -> float:
     pts = points[order]
     slope = np.cumsum(delta[order])  # slope just after each breakpoint
     filled = np.concatenate([[0.0], np.cumsum(slope[:-1] * np.diff(pts))])  # total at each point
-    k = int(np.searchsorted(filled, budget, side="right")) - 1
-    if slope[k] <= 0.0:  # budget equals a plateau's total: the plateau's start fits exactly
+    k = int(np.searchsorted(filled, budget, side="left"))  # first breakpoint reaching it
+    if k < pts.size and filled[k] == budget:  # also the start of a plateau at the budget
         return float(pts[k])
+    k -= 1  # the budget lies inside the segment after breakpoint k, whose slope is > 0
     return float(pts[k] + (budget - filled[k]) / slope[k])
 
 
@@ -462,6 +468,8 @@ class Loader:
         self._step_bits = np.diff(self.bits)           # (J-1,)
         self._step_key = np.log2(self._step_energy / self._step_bits)  # log2 cost per bit
         self._unit_steps = bool(np.all(self._step_bits == 1))
+        self._max_step = int(self._step_bits.max()) if self._step_bits.size else 1
+        self._mean_step = float(self._step_bits.mean()) if self._step_bits.size else 1.0
         if self._step_key.size > 1:
             self._key_spacing = float(np.diff(self._step_key).min())
         else:
@@ -658,7 +666,7 @@ class Loader:
         live = max(int(np.count_nonzero(tones.top)), 1)
         # At threshold t a tone's energy is below twice its last step, so about
         # 1.44 * 2**t on average (mean of 2**(1 - u), u uniform): a first guess only.
-        guess = math.log2((budget + tones.unit_sum) / (1.4427 * live * self._step_bits.max()))
+        guess = math.log2((budget + tones.unit_sum) / (1.4427 * live * self._max_step))
         n_lo, n_hi, spent = self._bracket(tones, lambda n: self._energy_of(tones, n), budget,
                                           guess)
         if n_hi is not None:
@@ -678,7 +686,7 @@ class Loader:
         live = tones.top > 0
         n_live = max(int(np.count_nonzero(live)), 1)
         # A tone takes about t - log2(unit) + 1 unit steps at threshold t: a first guess only.
-        guess = (target / self._step_bits.mean() + float(tones.log_unit[live].sum())) / n_live \
+        guess = (target / self._mean_step + float(tones.log_unit[live].sum())) / n_live \
             - 1.0 if live.any() else 0.0
         n_lo, n_hi, count = self._bracket(tones, self._bits_of, target, guess)
         if n_hi is None:
@@ -691,10 +699,11 @@ class Loader:
         n[idx[:take]] += 1
         rest -= int(size[:take].sum())
         if rest:
-            n = self._fill_remainder(tones, n, rest)
+            n = self._fill_remainder(tones, n, rest, target)
         return n
 
-    def _fill_remainder(self, tones: _Tones, n: np.ndarray, rest: int) -> np.ndarray:
+    def _fill_remainder(self, tones: _Tones, n: np.ndarray, rest: int,
+                        target: int) -> np.ndarray:
         """Add exactly ``rest`` bits (less than one step) at the least extra power found.
 
         Options: one step of exactly ``rest`` bits on some tone, or a step of ``s`` bits up on
@@ -726,8 +735,9 @@ class Loader:
                     if a != b and up_cost[a] - dn_save[b] < best_cost:
                         best_cost, best = float(up_cost[a] - dn_save[b]), (int(a), int(b))
         if best is None:
-            raise InfeasibleError(f"target_bits cannot be reached exactly with bits="
-                                  f"{self.bits.tolist()} (short by {rest})")
+            raise InfeasibleError(f"target_bits={target} cannot be reached "
+                                  f"exactly with bits={self.bits.tolist()} on these tones "
+                                  f"(short by {rest})")
         n = n.copy()
         n[best[0]] += 1
         if best[1] is not None:
@@ -778,6 +788,10 @@ class Loader:
 
     def _raise_infeasible(self, target: int, tones: _Tones, budget: float):
         best = int(self.bits[self._rate_steps(tones, budget)].sum())
+        if best >= target:  # only with holes in the bit set: see the class notes
+            raise InfeasibleError(f"target_bits={target} with bits={self.bits.tolist()} does "
+                                  f"not fit the budget (budget_db={self.budget_db:g}) in the "
+                                  f"near-minimal allocation; rate mode reaches {best} bits")
         raise InfeasibleError(f"target_bits={target} is more than the {best} bits the budget "
                               f"(budget_db={self.budget_db:g}) and ceilings "
                               f"(cap_db={self.cap_db:g}) allow")
