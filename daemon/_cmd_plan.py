@@ -6,9 +6,12 @@ comments (whole-line or trailing) are ignored, and the first non-comment line ma
 read as well. The loading settings come from the ``loading:`` section of a daemon config
 (``--config``, the whole file is validated) or its defaults; flags override them.
 
-``--json`` prints one object; numbers that are not finite (``margin_db`` when nothing is loaded,
-``water_level`` when no tone can take power) are written as ``null`` so that the output is strict
-JSON.
+``--json`` prints one object: the settings used, then ``bits``, ``power``, ``total_bits``,
+``total_power`` and ``margin_db`` of the allocation (0-bit tones carry no power), and in waterfill
+mode also ``waterfill_power`` (the continuous water-filling powers, before rounding bits down),
+``water_level`` and ``capacity_bits``. Numbers that are not finite (``margin_db`` when nothing is
+loaded, ``water_level`` when no tone can take power, ``cap_db`` when there is no ceiling) are
+written as ``null`` so that the output is strict JSON.
 """
 
 from __future__ import annotations
@@ -274,7 +277,7 @@ def run(args) -> int:
             "margin_db": _finite_or_none(alloc.margin_db),
         }
         if wf is not None:
-            out["power"] = wf.power.tolist()
+            out["waterfill_power"] = wf.power.tolist()
             out["water_level"] = _finite_or_none(wf.water_level)
             out["capacity_bits"] = wf.capacity_bits
         print(json.dumps(out, allow_nan=False))

@@ -46,6 +46,10 @@ __all__ = [
 #: Largest bits per tone the loaders accept (65536-QAM).
 MAX_BITS = 16
 
+#: Largest magnitude accepted for a dB setting (gap, budget, ceiling, margin): far beyond any
+#: link, and small enough that every linear value stays a normal float.
+DB_LIMIT = 300.0
+
 #: Nearest-neighbour count used by the gap formula: a large square QAM is two PAM dimensions and
 #: an inner PAM point has two neighbours (the per-dimension count of the gap approximation,
 #: Cioffi's DMT notes ch. 1; from memory for the form). With it a symbol error rate of 1e-7 gives
@@ -64,6 +68,8 @@ def _finite_db(name: str, value, *, allow_pos_inf: bool = False) -> float:
     if math.isnan(v) or v == -math.inf or (v == math.inf and not allow_pos_inf):
         what = "finite or +inf" if allow_pos_inf else "finite"
         raise InputError(f"{name}={value!r} must be {what}")
+    if math.isfinite(v) and abs(v) > DB_LIMIT:
+        raise InputError(f"{name}={value!r} is beyond +-{DB_LIMIT:g} dB")
     return v
 
 
@@ -438,6 +444,10 @@ class Loader:
 
     Rate mode does not spread leftover power: loaded tones get their required power and
     ``margin_db`` reports the headroom.
+
+    The settings are fixed once built (attributes ``mode``, ``bits``, ``gap_db``,
+    ``budget_db``, ``cap_db``, ``target_bits`` are read-only); build another loader to change
+    them. Calls keep no state, so one loader may serve many threads.
     """
 
     def __init__(self, *, mode: str = "rate", bits: Iterable[int] = range(9), gap_db: float,
@@ -475,6 +485,15 @@ class Loader:
         else:
             self._key_spacing = 1.0
         self._log2_gap = math.log2(self._gap)
+        for table in (self.bits, self._energy, self._step_energy, self._step_bits,
+                      self._step_key):
+            table.setflags(write=False)
+        self._frozen = True
+
+    def __setattr__(self, name: str, value) -> None:
+        if getattr(self, "_frozen", False):  # the tables follow from the settings
+            raise AttributeError(f"Loader settings are fixed; build a new Loader to change {name}")
+        object.__setattr__(self, name, value)
 
     def __repr__(self) -> str:
         return (f"Loader(mode={self.mode!r}, bits={self.bits.tolist()}, gap_db={self.gap_db}, "

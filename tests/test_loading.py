@@ -563,3 +563,44 @@ def test_waterfill_invariants(snr, budget_db, cap_db, gap_db):
 def test_module_exports():
     for name in loading.__all__:
         assert hasattr(loading, name)
+
+
+class TestPrivateSearches:
+    """The hard searches, called directly."""
+
+    def test_bracket_invariant_and_guess_independence(self, rng):
+        """Whatever the starting guess, the bracket holds the budget with at most one step per
+        tone inside it, and the final allocation is the same."""
+        for bits in (range(11), HOLES):
+            ld = Loader(bits=bits, gap_db=9.8, cap_db=6.0)
+            snr = frequency_selective(rng, 500)
+            budget = ld._budget(snr.size)
+            tones = ld._tones(snr, budget)
+            results = []
+            for guess in (-60.0, -3.0, 0.0, 4.0, 60.0):
+                n_lo, n_hi, spent = ld._bracket(
+                    tones, lambda n: ld._energy_of(tones, n), budget, guess)
+                assert spent == pytest.approx(ld._energy_of(tones, n_lo))
+                assert spent <= budget < ld._energy_of(tones, n_hi)
+                assert set(np.unique(n_hi - n_lo).tolist()) <= {0, 1}
+                results.append(ld._rate_steps(tones, budget))
+            for r in results[1:]:
+                np.testing.assert_array_equal(r, results[0])
+
+    def test_margin_steps_hit_the_target(self, rng):
+        ld = Loader(bits=range(13), gap_db=9.8)
+        snr = frequency_selective(rng, 300)
+        tones = ld._tones(snr, ld._budget(snr.size))
+        for target in (0, 1, 17, 1000, 2500):
+            assert int(ld._margin_steps(tones, target).sum()) == target
+
+    def test_loader_is_read_only(self):
+        ld = Loader(gap_db=9.8)
+        with pytest.raises(AttributeError, match="build a new Loader"):
+            ld.gap_db = 3.0
+        with pytest.raises(ValueError):
+            ld.bits[0] = 1
+
+    def test_db_settings_are_bounded(self):
+        with pytest.raises(InputError, match=r"gap_db=1000.0 is beyond"):
+            Loader(gap_db=1000.0)

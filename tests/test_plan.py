@@ -85,8 +85,10 @@ class TestModesAndFlags:
         wf = waterfill(10 ** (read_snr_db(DEMO) / 10), gap_db=0.0, cap_db=3.0)
         assert doc["water_level"] == pytest.approx(wf.water_level)
         assert doc["capacity_bits"] == pytest.approx(wf.capacity_bits)
-        assert doc["power"] == pytest.approx(wf.power.tolist())
+        assert doc["waterfill_power"] == pytest.approx(wf.power.tolist())
         assert doc["cap_db"] == 3.0
+        assert doc["total_power"] == pytest.approx(sum(doc["power"]))
+        assert all(p == 0 for b, p in zip(doc["bits"], doc["power"]) if b == 0)
 
     def test_text_output_of_each_mode(self, capsys):
         for extra in ([], ["--mode", "margin", "--target-bits", "900"], ["--mode", "waterfill"]):
