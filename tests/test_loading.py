@@ -326,6 +326,21 @@ class TestRate:
             need = Loader(bits=range(11), gap_db=9.8).required_power(g, snr)
             assert a.total_power == pytest.approx(need.sum(), rel=1e-9)
 
+    def test_efficient_and_e_tight(self, rng):
+        """Campello's optimality conditions (ICC 1999): *efficient* (no bit moved from one tone
+        to another lowers the power: the dearest last increment costs no more than the cheapest
+        next one) and *E-tight* (no further increment fits the power left)."""
+        for cap_db in (math.inf, 4.0):
+            snr = frequency_selective(rng, 400)
+            a = load_rate(snr, bits=range(11), gap_db=9.8, cap_db=cap_db)
+            unit = lin(9.8) / snr
+            last = np.where(a.bits > 0, unit * 2.0 ** (a.bits - 1), -np.inf)
+            nxt_bits = a.bits + 1
+            can_grow = (nxt_bits <= 10) & (unit * (2.0 ** nxt_bits - 1) <= lin(cap_db))
+            nxt = np.where(can_grow, unit * 2.0 ** a.bits, np.inf)
+            assert last.max() <= nxt.min() * (1 + 1e-12)
+            assert nxt.min() > 400 - a.total_power
+
     def test_margin_is_the_headroom(self, rng):
         snr = frequency_selective(rng, 128)
         a = load_rate(snr, bits=range(9), gap_db=9.8, budget_db=0.0, cap_db=2.0)
