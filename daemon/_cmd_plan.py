@@ -293,11 +293,12 @@ def run(args) -> int:
         + (f", target {section.target_bits} bits" if section.mode == "margin" else ""),
         f"  gap        {_gap_text(section, gap_db)}",
         f"  bits       {_bits_text(list(section.bits))} per tone",
-        f"  power      budget {section.budget_db:g} dB ({budget:g} x nominal), ceiling {cap_text}",
+        f"  power      budget {section.budget_db:g} dB ({budget:.4g} x nominal tone power), "
+        f"ceiling {cap_text}",
         "",
         f"  carries    {alloc.total_bits} bits per symbol on {loaded} tones ({idle} idle), "
         f"mean {alloc.total_bits / snr.size:.2f} bits per tone",
-        f"  uses       {alloc.total_power:.4g} of {budget:g} x nominal power "
+        f"  uses       {alloc.total_power:.4g} of {budget:.4g} x nominal "
         f"({10 * math.log10(max(alloc.total_power, 1e-300) / budget):+.2f} dB of the budget)"
         if alloc.total_power > 0 else "  uses       no power",
         (f"  margin     {alloc.margin_db:.2f} dB on every loaded tone, "
