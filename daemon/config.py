@@ -17,13 +17,17 @@ from pathlib import Path
 from typing import Any, Literal, Optional
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import (BaseModel, ConfigDict, Field, ValidationError, field_validator,
+                      model_validator)
 
 from brimline.daemon.errors import ConfigError
 
 __all__ = [
     "Section",
     "LoadingSection",
+    "PublishSection",
+    "StatusSection",
+    "RecordSection",
     "Config",
     "load_config",
     "read_yaml",
@@ -120,16 +124,126 @@ class ChangeSection(Section):
 # --------------------------------------------------------------------------- publish, status, record
 
 
+_ENDPOINT_SCHEMES = ("tcp://", "ipc://", "inproc://")
+
+
+def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
+    if v is not None and (not v.startswith(_ENDPOINT_SCHEMES) or len(v) <= len("tcp://")):
+        raise ValueError(f"{key}={v!r} must be a ZeroMQ endpoint such as tcp://127.0.0.1:7341")
+    return v
+
+
+def _positive(key: str, v: float) -> float:
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{key}={v} must be finite and > 0")
+    return v
+
+
 class PublishSection(Section):
-    """``publish:`` map, snapshot, heartbeat and acknowledgement sockets."""
+    """``publish:`` map, snapshot, heartbeat and acknowledgement sockets.
+
+    Fields are the keyword arguments of ``brimline.daemon.publisher.MapPublisher`` (which also
+    takes ``context`` and ``epoch`` from the service). Endpoints are where the daemon binds;
+    keep them on 127.0.0.1 unless CURVE is on.
+    """
+
+    map_endpoint: str = Field("tcp://127.0.0.1:7341",
+                              description="PUB for maps and heartbeats (bind)")
+    snapshot_endpoint: str = Field("tcp://127.0.0.1:7342",
+                                   description="ROUTER answering current-map requests (bind)")
+    ack_endpoint: Optional[str] = Field("tcp://127.0.0.1:7344",
+                                        description="PULL for transmitter acks; null for none")
+    heartbeat_s: float = Field(0.5, description="heartbeat interval, seconds")
+    map_hwm: int = Field(1000, description="map PUB send high-water mark, messages")
+    linger_s: float = Field(1.0, description="time unsent maps are kept at shutdown, seconds")
+    curve_secret_key: Optional[str] = Field(
+        None, description="daemon's .key_secret file (brimline keys); turns CURVE on")
+    curve_clients_dir: Optional[str] = Field(
+        None, description="folder of authorised clients' .key files; null admits any client "
+                          "that knows the daemon's public key")
+
+    @field_validator("map_endpoint", "snapshot_endpoint", "ack_endpoint")
+    @classmethod
+    def _endpoints(cls, v, info):
+        return _endpoint_ok(info.field_name, v)
+
+    @field_validator("heartbeat_s")
+    @classmethod
+    def _heartbeat(cls, v):
+        return _positive("heartbeat_s", v)
+
+    @field_validator("linger_s")
+    @classmethod
+    def _linger(cls, v):
+        if not (math.isfinite(v) and v >= 0):
+            raise ValueError(f"linger_s={v} must be finite and >= 0")
+        return v
+
+    @field_validator("map_hwm")
+    @classmethod
+    def _hwm(cls, v):
+        if v < 1:
+            raise ValueError(f"map_hwm={v} must be >= 1")
+        return v
+
+    @model_validator(mode="after")
+    def _curve_pair(self):
+        if self.curve_clients_dir is not None and self.curve_secret_key is None:
+            raise ValueError("curve_clients_dir needs curve_secret_key")
+        return self
 
 
 class StatusSection(Section):
-    """``status:`` the operators' status stream."""
+    """``status:`` the operators' status stream.
+
+    Fields are the keyword arguments of ``brimline.daemon.publisher.StatusPublisher`` (which
+    also takes ``curve`` and ``context`` from the service).
+    """
+
+    endpoint: str = Field("tcp://127.0.0.1:7343", description="status PUB (bind)")
+    rate_hz: float = Field(4.0, description="periodic status messages per second")
+    hwm: int = Field(10, description="send high-water mark per subscriber, messages; small so "
+                                     "a stalled watcher costs nothing")
+
+    @field_validator("endpoint")
+    @classmethod
+    def _endpoint(cls, v):
+        return _endpoint_ok("endpoint", v)
+
+    @field_validator("rate_hz")
+    @classmethod
+    def _rate(cls, v):
+        return _positive("rate_hz", v)
+
+    @field_validator("hwm")
+    @classmethod
+    def _hwm(cls, v):
+        if v < 1:
+            raise ValueError(f"hwm={v} must be >= 1")
+        return v
 
 
 class RecordSection(Section):
-    """``record:`` what the daemon records, and where."""
+    """``record:`` what the daemon records, and where.
+
+    Fields are the keyword arguments of ``brimline.daemon.recording.RecordWriter`` (which also
+    takes ``meta``); ``path: null`` records nothing.
+    """
+
+    path: Optional[str] = Field(None, description="recording file to create; null for none")
+    topics: Optional[list[str]] = Field(
+        default_factory=lambda: ["estimate", "map", "decision", "status"],
+        description="topics to record; null for all")
+    max_bytes: Optional[int] = Field(
+        None, description="start a new file NAME.0001.EXT, ... beyond this size, bytes")
+    fsync: bool = Field(False, description="fsync every record (survives power loss, slower)")
+
+    @field_validator("max_bytes")
+    @classmethod
+    def _max_bytes(cls, v):
+        if v is not None and v < 1024:
+            raise ValueError(f"max_bytes={v} must be >= 1024")
+        return v
 
 
 # --------------------------------------------------------------------------- whole file
