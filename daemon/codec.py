@@ -182,7 +182,7 @@ def _le_part(value: Any, dtype: str | None, name: str) -> tuple[memoryview, dict
         dtype = dt.str
         if dtype not in _ALLOWED_DTYPES:
             raise TypeError(f"{name}: dtype {arr.dtype} cannot be encoded")
-    arr = np.ascontiguousarray(arr, dtype=np.dtype(dtype))
+    arr = np.asarray(arr, dtype=np.dtype(dtype), order="C")  # keeps 0-d shapes
     view = memoryview(arr.reshape(-1).view(np.uint8))
     return view, {"name": name, "dtype": dtype, "shape": list(arr.shape)}
 
@@ -407,6 +407,12 @@ def decode(frames: Sequence[Any]) -> tuple[str, Any]:
     if not isinstance(fields, dict):
         raise ProtocolError(f"{topic}: header 'fields' must be an object")
     parts = views[2:]
+    specs = header["arrays"]
+    if not isinstance(specs, list):
+        raise ProtocolError(f"{kind}: header 'arrays' must be a list")
+    if len(parts) != len(specs):
+        raise ProtocolError(f"{kind}: header lists {len(specs)} arrays but the message has "
+                            f"{len(parts)} array parts")
     crc = 0
     for part in parts:
         crc = zlib.crc32(part, crc)
