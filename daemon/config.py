@@ -64,8 +64,8 @@ class LoadingSection(Section):
     @field_validator("bits")
     @classmethod
     def _bits_ok(cls, v: list[int]) -> list[int]:
-        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 15:
-            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 15")
+        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 16:
+            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 16")
         return v
 
     @field_validator("target_ser")
@@ -74,6 +74,51 @@ class LoadingSection(Section):
         if not 0.0 < v < 0.5:
             raise ValueError(f"target_ser={v} must be in (0, 0.5)")
         return v
+
+    @field_validator("gap_db", "coding_gain_db", "margin_db", "budget_db")
+    @classmethod
+    def _finite_db(cls, v: Optional[float], info) -> Optional[float]:
+        if v is not None and not math.isfinite(v):
+            raise ValueError(f"{info.field_name}={v} must be finite")
+        return v
+
+    @field_validator("cap_db")
+    @classmethod
+    def _cap_ok(cls, v: float) -> float:
+        if math.isnan(v) or v == -math.inf:
+            raise ValueError(f"cap_db={v} must be finite or +inf (.inf)")
+        return v
+
+    @field_validator("target_bits")
+    @classmethod
+    def _target_ok(cls, v: Optional[int]) -> Optional[int]:
+        if v is not None and v < 0:
+            raise ValueError(f"target_bits={v} must be >= 0")
+        return v
+
+    @model_validator(mode="after")
+    def _margin_needs_target(self) -> "LoadingSection":
+        if self.mode == "margin" and self.target_bits is None:
+            raise ValueError("mode: margin needs target_bits")
+        return self
+
+    def effective_gap_db(self) -> float:
+        """The gap the loader uses, dB: ``gap_db`` (or the uncoded-QAM gap of ``target_ser``),
+        minus ``coding_gain_db``, plus ``margin_db``."""
+        from brimline.daemon.loading import qam_gap_db
+
+        if self.gap_db is not None:
+            return self.gap_db - self.coding_gain_db + self.margin_db
+        return qam_gap_db(self.target_ser, coding_gain_db=self.coding_gain_db,
+                          margin_db=self.margin_db)
+
+    def loader(self):
+        """Build the :class:`brimline.daemon.loading.Loader` this section describes."""
+        from brimline.daemon.loading import Loader
+
+        return Loader(mode=self.mode, bits=self.bits, gap_db=self.effective_gap_db(),
+                      budget_db=self.budget_db, cap_db=self.cap_db,
+                      target_bits=self.target_bits)
 
 
 # --------------------------------------------------------------------------- link and drivers
