@@ -126,19 +126,136 @@ class LoadingSection(Section):
 
 
 class LinkSection(Section):
-    """``link:`` tone plan and frame format (see brimline.drivers.ofdm)."""
+    """``link:`` tone plan and frame format; the keys are ``brimline.drivers.ofdm.make_plan``'s.
+
+    Checks that involve several keys (pilots inside the used band, cyclic prefix shorter than the
+    FFT, ...) are made in key order by ``brimline.drivers.ofdm.check_link``.
+    """
+
+    fft_size: int = Field(256, description="FFT length in samples (power of two, >= 128)")
+    cp_len: int = Field(32, description="cyclic prefix in samples")
+    sample_rate_hz: float = Field(3.84e6, description="complex sample rate, Hz")
+    used_tones_half: int = Field(
+        100, description="used tones on each side of DC (bins -U..-1 and 1..U)")
+    pilot_spacing: int = Field(
+        8, description="every n-th used tone from the band edge inwards is a pilot")
+    train_symbols: int = Field(2, description="identical full-band training symbols per frame")
+    data_symbols: int = Field(12, description="data symbols per frame")
+    max_bits: int = Field(10, description="largest constellation, bits per tone")
+    cfo_range_tones: int = Field(8, description="largest frequency offset searched, tone spacings")
+    center_hz: Optional[float] = Field(None, description="radio centre frequency, Hz")
+
+    # Defaults are checked too: fft_size 128 with the default used_tones_half must fail here.
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True, validate_default=True)
+
+    @field_validator("*")
+    @classmethod
+    def _consistent(cls, v, info):
+        from brimline.drivers.ofdm import check_link  # the one place these rules live
+
+        try:
+            check_link(info.field_name, v, info.data)
+        except ValueError as exc:  # the message starts with "key=value"; the caller adds it
+            raise ValueError(str(exc).split(" ", 1)[1]) from None
+        return v
+
+
+class FadeEventSection(Section):
+    """One entry of ``driver.sim.events``: a sudden fade of a band of tones."""
+
+    start_s: float = Field(description="simulated time the fade starts, s")
+    stop_s: Optional[float] = Field(None, description="time it ends, s (absent: never)")
+    first_tone: int = Field(description="first faded tone, signed FFT bin")
+    last_tone: int = Field(description="last faded tone, signed FFT bin (inclusive)")
+    depth_db: float = Field(20.0, description="attenuation, dB")
+
+    @field_validator("last_tone")
+    @classmethod
+    def _band(cls, v, info):
+        first = info.data.get("first_tone")
+        if first is not None and v < first:
+            raise ValueError(f"last_tone={v} must be >= first_tone={first}")
+        return v
 
 
 class SimSection(Section):
-    """``driver.sim:`` the simulated link (brimline.drivers.sim)."""
+    """``driver.sim:`` the simulated link; keys are ``brimline.drivers.sim.SimDriver``'s."""
+
+    profile: Literal["awgn", "flat", "epa", "eva", "etu", "ped_a", "ped_b", "veh_a",
+                     "indoor_a"] = Field("epa", description="multipath profile")
+    doppler_hz: float = Field(5.0, description="maximum Doppler shift, Hz")
+    snr_db: float = Field(25.0, description="per-tone SNR on a unit channel, dB")
+    cfo_hz: float = Field(1500.0, description="carrier frequency offset, Hz")
+    lead_max_samples: int = Field(
+        64, description="random noise-only samples before each frame (timing offset), max")
+    interferer_tone: Optional[float] = Field(
+        None, description="narrowband interferer position, signed tone (may be fractional)")
+    interferer_db: float = Field(0.0, description="interferer power relative to a nominal tone, dB")
+    drift_db: float = Field(0.0, description="slow gain drift, peak deviation, dB")
+    drift_period_s: float = Field(60.0, description="period of the gain drift, s")
+    events: list[FadeEventSection] = Field(
+        default_factory=list, description="sudden band fades (adaptation tests)")
+    frame_rate_hz: float = Field(50.0, description="frames per second")
+    realtime: bool = Field(True, description="pace frames in real time (else as fast as possible)")
+    start_s: float = Field(0.0, description="time_s of frame 0, s")
+    seed: int = Field(1, description="seed of the simulation's random generator")
+    default_bits: int = Field(2, description="bits per tone while no map has been received")
+    max_frames: Optional[int] = Field(None, description="stop after this many frames")
+    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+
+    @field_validator("frame_rate_hz", "drift_period_s")
+    @classmethod
+    def _positive(cls, v, info):
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"{info.field_name}={v} must be positive")
+        return v
+
+    @field_validator("doppler_hz", "lead_max_samples")
+    @classmethod
+    def _not_negative(cls, v, info):
+        if not v >= 0:
+            raise ValueError(f"{info.field_name}={v} must be >= 0")
+        return v
+
+    @field_validator("sync_threshold")
+    @classmethod
+    def _threshold(cls, v):
+        if not 0.0 < v < 1.0:
+            raise ValueError(f"sync_threshold={v} must be in (0, 1)")
+        return v
 
 
 class IqSection(Section):
-    """``driver.iq:`` recorded IQ through the receiver DSP (brimline.drivers.iq)."""
+    """``driver.iq:`` a SigMF IQ recording through the receiver (brimline.drivers.iq)."""
+
+    path: str = Field(description="the recording: NAME, NAME.sigmf-meta or NAME.sigmf-data")
+    default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
+    start_s: float = Field(0.0, description="time_s of the recording's first sample, s")
+    realtime: bool = Field(False, description="pace frames at the recording's own rate")
+    max_frames: Optional[int] = Field(None, description="stop after this many frames")
+    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
 
 
 class RadioSection(Section):
-    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.iio)."""
+    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.iio); tuning is ``link.center_hz``."""
+
+    uri: str = Field("ip:192.168.2.1", description="libiio context URI of the radio")
+    device: str = Field("Pluto", description="pyadi-iio class name of the device")
+    rx_gain_db: float = Field(30.0, description="manual receive gain, dB")
+    tx_attenuation_db: float = Field(
+        30.0, description="transmit attenuation, dB (>= 0; more is less power)")
+    transmit: bool = Field(
+        False, description="also send frames of the default map from this radio (loopback)")
+    buffer_frames: int = Field(4, description="frames per receive buffer")
+    default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
+    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+
+    @field_validator("tx_attenuation_db")
+    @classmethod
+    def _attenuation(cls, v):
+        if not 0.0 <= v <= 89.75:
+            raise ValueError(f"tx_attenuation_db={v} must be in [0, 89.75]")
+        return v
 
 
 class ReplaySection(Section):
