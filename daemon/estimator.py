@@ -37,7 +37,9 @@ Why these choices:
   change control after exactly ``confirm_frames`` frames. A frame with more than
   ``frame_outlier_fraction`` of its tones outside their gates (impulse noise, a clipped frame) is a
   whole-frame outlier: no tone is smoothed with it, but its pending evidence counts, so a real
-  drop of the whole band still gets through after ``confirm_frames`` frames.
+  drop of the whole band still gets through after ``confirm_frames`` frames. After a gap of
+  ``tau_s * ln 2`` or more the new frame outweighs the old state, which says little about it any
+  more, so no gate applies.
 * **Across tones**, the tracked values are averaged with neighbours within ``tone_window`` tones
   only where they agree within ``tone_agree_db`` (a sigma filter): a notch or an interferer deeper
   than that stays intact; a shallower one cannot be told from estimation noise and is flattened
@@ -264,8 +266,11 @@ class Estimator:
         gate = np.sqrt(self._var_db2)
         gate *= self.outlier_sigmas
         np.maximum(gate, self.outlier_db, out=gate)
-        out = np.abs(d) > gate
-        n_out = int(np.count_nonzero(out))
+        if alpha < 0.5:
+            out = np.abs(d) > gate
+            n_out = int(np.count_nonzero(out))
+        else:  # after a gap of tau_s * ln 2 or more the new frame outweighs the old state
+            n_out = 0
         self._seen_s = estimate.time_s
         if n_out == 0:
             confirmed = None
