@@ -227,7 +227,7 @@ class ChangeControl:
 
         if (n_low and n_low >= self.emergency_fraction * n_loaded) \
                 or drop_db >= self.emergency_drop_db:
-            what = (f"{n_low} of {n_loaded} loaded tones below downshift margin "
+            what = (f"{n_low} of {_tones(n_loaded)} loaded below downshift margin "
                     f"({worst_text}), mean SNR {-drop_db:+.1f} dB")
             if rate_wait > 0:
                 return self._hold("held_rate", f"emergency pending: {what}; map rate limit "
@@ -238,7 +238,7 @@ class ChangeControl:
                                f"{note}", now_s, mean_db)
 
         if n_low:
-            what = f"{n_low} tones below downshift margin ({worst_text})"
+            what = f"{_tones(n_low)} below downshift margin ({worst_text})"
             wait = max(self.down_dwell_s - since_map, rate_wait)
             if wait > 0:
                 key = "held_dwell" if self.down_dwell_s - since_map >= rate_wait else "held_rate"
@@ -248,7 +248,7 @@ class ChangeControl:
                 alloc, changed = swap
                 delta = alloc.total_bits - cur.total_bits
                 return self._adopt(DecisionKind.BIT_SWAP, alloc,
-                                   f"bit swap: {what}; {changed} tones changed, {delta:+d} bits",
+                                   f"bit swap: {what}; {_tones(changed)} changed, {delta:+d} bits",
                                    now_s, mean_db)
             alloc, note = self._load(snr)
             return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {what}{note}", now_s,
@@ -373,6 +373,10 @@ class ChangeControl:
         alloc = Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
                            total_power=total_power, margin_db=margin_db)
         return alloc, int(np.count_nonzero((cur.bits != bits) | (cur.power != power)))
+
+
+def _tones(n: int) -> str:
+    return f"{n} tone" if n == 1 else f"{n} tones"
 
 
 def _uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:

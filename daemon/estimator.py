@@ -12,7 +12,8 @@ Per tone and per accepted frame, with ``x`` the frame's SNR in dB and ``m`` the 
     |d| > max(outlier_db, outlier_sigmas * std)  -> outlier, held back (see below)
     m    += alpha * d
     var   = (1 - beta) var + beta * d**2 * (2 - alpha) / 2,   beta = 1 - exp(-dt / std_tau_s)
-    std   = sqrt(var);  effective = m - backoff_sigmas * std
+    P     = (1 - alpha)**2 P + alpha**2 var          variance of m itself
+    effective = m - backoff_sigmas * sqrt(var + P)
 
 Why these choices:
 
@@ -30,7 +31,10 @@ Why these choices:
   sigma**2 around a constant, the EWMA itself has variance ``sigma**2 * alpha / (2 - alpha)``, so
   ``E[d**2] = 2 sigma**2 / (2 - alpha)``. ``std_db`` is thus the spread of a single frame's SNR about
   the tracked value (estimation noise plus fast channel variation): the amount by which the SNR
-  the transmitter meets can differ from the tracked one, hence the back-off.
+  the transmitter meets can differ from the tracked one, hence the back-off. ``P`` adds the
+  uncertainty of the tracked value itself, large right after the first frame (as large as
+  ``std_init_db``) and small once many frames are averaged, so a map made from the first few
+  frames is made with a wider back-off and does not need repairs as the average settles.
 * **Outliers**: a tone outside its gate is not smoothed in but held as *pending*. When
   ``confirm_frames`` consecutive frames deviate on the same side and agree with each other (within
   the gate), the change is real and the tone jumps to their mean, so a deep sudden drop reaches
@@ -162,6 +166,7 @@ class Estimator:
         self._accepted_now_s = math.nan
         self._mean_db = None
         self._var_db2 = None
+        self._mean_var_db2 = None
         self._pend_sum = None
         self._pend_n = None
         self._pend_sign = None
@@ -174,6 +179,7 @@ class Estimator:
         self._center_hz = estimate.center_hz
         self._mean_db = x.copy()
         self._var_db2 = np.full(n, self.std_init_db ** 2)
+        self._mean_var_db2 = self._var_db2.copy()
         self._pend_sum = np.zeros(n)
         self._pend_n = np.zeros(n, dtype=np.int64)
         self._pend_sign = np.zeros(n)
@@ -303,13 +309,21 @@ class Estimator:
         new_var = d * d
         new_var *= beta * (2.0 - alpha) / 2.0
         new_var += (1.0 - beta) * var
+        # Variance of the tracked value itself: (1 - a)**2 P + a**2 sigma**2 per frame.
+        new_mean_var = self._mean_var_db2 * (1.0 - alpha) ** 2
+        new_mean_var += alpha * alpha * new_var
         if n_out:
             np.copyto(var, new_var, where=~out)
+            np.copyto(self._mean_var_db2, new_mean_var, where=~out)
         else:
             self._var_db2 = new_var
+            self._mean_var_db2 = new_mean_var
         mean += alpha * d
         if confirmed is not None and n_confirmed:
             np.copyto(mean, confirmed_mean, where=confirmed)
+            # As uncertain as a fresh seed: the wider back-off right after a big change keeps
+            # the map made on it from needing repairs as the new level settles.
+            np.copyto(self._mean_var_db2, var, where=confirmed)
         self._time_s = estimate.time_s
         self._accepted_now_s = float(now_s)
         self._frames += 1
@@ -336,9 +350,12 @@ class Estimator:
         if self.tone_window > 0 and snr_db.size > 1:
             snr_db = _agree_smooth(snr_db, self.tone_window, self.tone_agree_db)
         std_db = np.sqrt(self._var_db2)
+        mean_std_db = np.sqrt(self._mean_var_db2)
+        spread = np.hypot(std_db, mean_std_db)
+        spread *= self.backoff_sigmas
         return Tracked(
             plan_id=self._plan_id, tone_index=self._tones, snr_db=snr_db, std_db=std_db,
-            effective_snr_db=snr_db - self.backoff_sigmas * std_db,
+            effective_snr_db=snr_db - spread, mean_std_db=mean_std_db,
             age_s=max(0.0, float(now_s) - self._accepted_now_s), frames=self._frames,
             center_hz=self._center_hz, time_s=self._time_s)
 

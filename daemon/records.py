@@ -363,11 +363,15 @@ class Tracked:
         Per-tone standard deviation of a single frame's SNR about the smoothed value, dB
         (estimation noise plus fast channel variation).
     effective_snr_db : ndarray of float64
-        ``snr_db`` backed off by the configured number of ``std_db``; what loading uses, dB.
+        ``snr_db`` backed off by the configured number of ``hypot(std_db, mean_std_db)``; what
+        loading uses, dB.
     age_s : float
         Time since the last accepted frame, seconds (``now_s`` of the caller's clock).
     frames : int
         Frames accepted since tracking last started (first frame, reset, plan or tuning change).
+    mean_std_db : ndarray of float64 or None
+        Standard deviation of ``snr_db`` itself (uncertainty of the tracked value), dB; None
+        fills zeros.
     center_hz : float
         Radio tuning of the tracked frames in hertz (NaN when unknown).
     time_s : float
@@ -381,13 +385,16 @@ class Tracked:
     effective_snr_db: np.ndarray
     age_s: float
     frames: int
+    mean_std_db: np.ndarray = None
     center_hz: float = math.nan
     time_s: float = math.nan
 
     def __post_init__(self) -> None:
         tones = frozen_array(self.tone_index, np.int16, "tone_index")
         _set(self, "tone_index", tones)
-        for name in ("snr_db", "std_db", "effective_snr_db"):
+        if self.mean_std_db is None:
+            _set(self, "mean_std_db", np.zeros(tones.size))
+        for name in ("snr_db", "std_db", "effective_snr_db", "mean_std_db"):
             arr = frozen_array(getattr(self, name), np.float64, name)
             if arr.shape != tones.shape:
                 raise ValueError(f"{name} has {arr.size} tones, tone_index has {tones.size}")

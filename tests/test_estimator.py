@@ -157,7 +157,22 @@ class TestUncertainty:
         for i in range(50):
             est.update(frame(i * 0.01, 20 + rng.normal(0, 1, N)), i * 0.01)
         tr = est.tracked(0.5)
-        np.testing.assert_allclose(tr.effective_snr_db, tr.snr_db - 2.5 * tr.std_db)
+        np.testing.assert_allclose(tr.effective_snr_db,
+                                   tr.snr_db - 2.5 * np.hypot(tr.std_db, tr.mean_std_db))
+        assert (tr.mean_std_db < tr.std_db).all()
+
+    def test_tracked_value_uncertainty_shrinks_as_frames_average(self, rng):
+        """One frame: the tracked value is as uncertain as std_init_db; in steady state its
+        variance is the EWMA variance sigma**2 * a / (2 - a) (see test_smoothed_spread...)."""
+        est = quiet(tau_s=0.25, std_init_db=3.0)
+        est.update(frame(0.0, 20.0), 0.0)
+        np.testing.assert_allclose(est.tracked(0.0).mean_std_db, 3.0)
+        for i in range(1, 1500):
+            est.update(frame(i * 0.01, 20 + rng.normal(0, 1, N)), i * 0.01)
+        tr = est.tracked(15.0)
+        a = 1 - math.exp(-0.01 / 0.25)
+        # injected sigma is 1 dB; 3 % covers the spread of the learnt variance over 64 tones
+        assert tr.mean_std_db.mean() == pytest.approx(math.sqrt(a / (2 - a)), rel=0.03)
 
     def test_noisy_tones_get_a_lower_effective_snr(self, rng):
         est = quiet()
