@@ -2,7 +2,7 @@
 
 The SNR file holds one per-tone SNR in dB per line, in tone order. Blank lines and ``#``
 comments (whole-line or trailing) are ignored, and the first non-comment line may be a header
-(any line that is not a number). A ``.npy`` file holding a 1-D numeric array of SNRs in dB is
+(a line that starts with a letter and is not a number; ``1O.5`` is an error, not a header). A ``.npy`` file holding a 1-D numeric array of SNRs in dB is
 read as well. The loading settings come from the ``loading:`` section of a daemon config
 (``--config``, the whole file is validated) or its defaults; flags override them.
 
@@ -118,7 +118,7 @@ def read_snr_db(path: str | Path) -> np.ndarray:
         try:
             value = float(line)
         except ValueError:
-            if not seen_content:  # the optional header line
+            if not seen_content and line[0].isalpha():  # the optional header line
                 seen_content = True
                 continue
             raise InputError(f"{p} line {number}: {line!r} is not an SNR in dB") from None

@@ -173,6 +173,7 @@ def test_chart_shape():
     ("inf.txt", "10\n-inf\n", [], r"inf.txt line 2: SNR -inf dB must be finite"),
     ("text.txt", "header\n10\nabc\n", [], r"text.txt line 3: 'abc' is not an SNR in dB"),
     ("huge.txt", "10\n900\n", [], r"line 2: SNR 900.0 dB is beyond"),
+    ("typo.txt", "# x\n1O.5\n12\n", [], r"typo.txt line 2: '1O.5' is not an SNR in dB"),
     ("ok.txt", "10\n20\n", ["--bits", "0,3,2"], r"--bits='0,3,2' must be ascending"),
     ("ok.txt", "10\n20\n", ["--mode", "margin"], r"--mode margin needs --target-bits"),
     ("ok.txt", "10\n20\n", ["--mode", "margin", "--target-bits", "40"],
