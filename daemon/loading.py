@@ -81,8 +81,9 @@ def _as_snr(snr) -> np.ndarray:
         raise InputError(f"snr must be an array of numbers, got {type(snr).__name__}") from None
     if arr.ndim != 1:
         raise InputError(f"snr must be 1-D (one value per tone), got shape {arr.shape}")
-    if arr.size and arr.min() >= 0.0 and math.isfinite(float(arr.sum())):
-        return arr  # the usual case, in two cheap passes
+    with np.errstate(over="ignore"):
+        if arr.size and arr.min() >= 0.0 and math.isfinite(float(arr.sum())):
+            return arr  # the usual case, in two cheap passes
     bad = ~(np.isfinite(arr) & (arr >= 0.0))
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
@@ -766,7 +767,32 @@ class Loader:
     # ---------------------------------------------------------------- calls
 
     def __call__(self, snr) -> Allocation:
-        """Load one frame: the allocation for the per-tone linear SNR ``snr`` (N,)."""
+        """Load one frame.
+
+        Parameters
+        ----------
+        snr : array_like of float
+            Linear per-tone SNR at nominal power, (N,), finite and >= 0.
+
+        Returns
+        -------
+        Allocation
+            Bits and powers per tone in this loader's mode.
+
+        Raises
+        ------
+        InputError
+            A NaN, infinite or negative SNR, or an array that is not 1-D.
+        InfeasibleError
+            Margin mode only: ``target_bits`` does not fit the budget and ceilings.
+
+        Examples
+        --------
+        >>> loader = Loader(bits=range(11), gap_db=9.8)
+        >>> alloc = loader(np.array([1000.0, 100.0, 10.0, 0.0]))
+        >>> alloc.bits.tolist(), round(alloc.margin_db, 2)
+        ([7, 4, 1, 0], 0.46)
+        """
         snr = _as_snr(snr)
         if self.mode == "rate":
             return self.rate(snr)

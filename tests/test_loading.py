@@ -619,3 +619,11 @@ class TestPrivateSearches:
     def test_db_settings_are_bounded(self):
         with pytest.raises(InputError, match=r"gap_db=1000.0 is beyond"):
             Loader(gap_db=1000.0)
+
+
+def test_docstring_examples():
+    """The examples in the module's docstrings run and print what they say."""
+    import doctest
+
+    result = doctest.testmod(loading, optionflags=doctest.NORMALIZE_WHITESPACE)
+    assert result.attempted >= 3 and result.failed == 0
