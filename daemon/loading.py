@@ -21,6 +21,7 @@ vectorized passes over the tones plus one small sort. The hard searches are priv
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 from typing import Iterable
@@ -91,19 +92,56 @@ def _as_snr(snr) -> np.ndarray:
     return arr
 
 
-def _as_bit_set(bits) -> np.ndarray:
-    """Validate an allowed-bits set: integers, strictly ascending, starting at 0, <= MAX_BITS."""
+@dataclass(frozen=True)
+class _BitTables:
+    """Per-bit tables of one allowed-bits set, shared by every loader that uses the set."""
+
+    bits: np.ndarray         # (J,) allowed bits, ascending from 0
+    energy: np.ndarray       # (J,) 2**b - 1: a tone's power in units of gap/snr
+    step_energy: np.ndarray  # (J-1,) energy of the step from bits[j] to bits[j+1]
+    step_bits: np.ndarray    # (J-1,) bits gained by that step
+    step_key: np.ndarray     # (J-1,) log2 of the step's energy per bit (increasing)
+    unit_steps: bool         # consecutive bits: every step is one bit
+    max_step: int
+    mean_step: float
+    key_spacing: float       # smallest gap between consecutive step keys
+
+
+def _as_bit_set(bits) -> _BitTables:
+    """Validate an allowed-bits set (integers, strictly ascending, from 0, <= MAX_BITS) and
+    return its tables."""
     try:
-        values = list(bits)
+        values = tuple(bits)
     except TypeError:
         raise InputError(f"bits={bits!r} must be a list of integers") from None
     if not values or not all(isinstance(b, (int, np.integer)) and not isinstance(b, bool)
                              for b in values):
-        raise InputError(f"bits={values!r} must be a non-empty list of integers")
-    arr = np.array(values, dtype=np.int64)
-    if arr[0] != 0 or np.any(np.diff(arr) <= 0) or arr[-1] > MAX_BITS:
-        raise InputError(f"bits={values!r} must be ascending, start at 0 and stay <= {MAX_BITS}")
-    return arr
+        raise InputError(f"bits={list(values)!r} must be a non-empty list of integers")
+    values = tuple(int(b) for b in values)
+    if values[0] != 0 or any(b <= a for a, b in zip(values, values[1:])) \
+            or values[-1] > MAX_BITS:
+        raise InputError(f"bits={list(values)!r} must be ascending, start at 0 and stay "
+                         f"<= {MAX_BITS}")
+    return _bit_tables(values)
+
+
+@functools.lru_cache(maxsize=64)
+def _bit_tables(values: tuple[int, ...]) -> _BitTables:
+    bits = np.array(values, dtype=np.int64)
+    levels = np.ldexp(1.0, bits)
+    step_energy = np.diff(levels)
+    step_bits = np.diff(bits)
+    step_key = np.log2(step_energy / step_bits)
+    tables = _BitTables(
+        bits=bits, energy=levels - 1.0, step_energy=step_energy, step_bits=step_bits,
+        step_key=step_key, unit_steps=bool(np.all(step_bits == 1)),
+        max_step=int(step_bits.max()) if step_bits.size else 1,
+        mean_step=float(step_bits.mean()) if step_bits.size else 1.0,
+        key_spacing=float(np.diff(step_key).min()) if step_key.size > 1 else 1.0)
+    for table in (tables.bits, tables.energy, tables.step_energy, tables.step_bits,
+                  tables.step_key):
+        table.setflags(write=False)
+    return tables
 
 
 # --------------------------------------------------------------------------- gap and error rates
@@ -456,11 +494,10 @@ class Loader:
                  target_bits: int | None = None) -> None:
         if mode not in ("rate", "margin", "waterfill"):
             raise InputError(f"mode={mode!r} must be one of rate, margin, waterfill")
-        self.mode = mode
-        self.bits = _as_bit_set(bits)
-        self.gap_db = _finite_db("gap_db", gap_db)
-        self.budget_db = _finite_db("budget_db", budget_db)
-        self.cap_db = _finite_db("cap_db", cap_db, allow_pos_inf=True)
+        tables = _as_bit_set(bits)
+        gap_db = _finite_db("gap_db", gap_db)
+        budget_db = _finite_db("budget_db", budget_db)
+        cap_db = _finite_db("cap_db", cap_db, allow_pos_inf=True)
         if target_bits is not None:
             if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
                     or target_bits < 0:
@@ -468,27 +505,19 @@ class Loader:
             target_bits = int(target_bits)
         if mode == "margin" and target_bits is None:
             raise InputError("target_bits is required with mode='margin'")
-        self.target_bits = target_bits
-        self._gap = 10.0 ** (self.gap_db / 10.0)
-        self._per_tone_budget = 10.0 ** (self.budget_db / 10.0)
-        self._cap = 10.0 ** (self.cap_db / 10.0)
-        # Tables over the bit set: energy in units of u for each allowed b, and the steps.
-        levels = np.ldexp(1.0, self.bits)
-        self._energy = levels - 1.0                   # (J,)  2**b - 1
-        self._step_energy = np.diff(levels)            # (J-1,)
-        self._step_bits = np.diff(self.bits)           # (J-1,)
-        self._step_key = np.log2(self._step_energy / self._step_bits)  # log2 cost per bit
-        self._unit_steps = bool(np.all(self._step_bits == 1))
-        self._max_step = int(self._step_bits.max()) if self._step_bits.size else 1
-        self._mean_step = float(self._step_bits.mean()) if self._step_bits.size else 1.0
-        if self._step_key.size > 1:
-            self._key_spacing = float(np.diff(self._step_key).min())
-        else:
-            self._key_spacing = 1.0
-        self._log2_gap = math.log2(self._gap)
-        for table in (self.bits, self._energy, self._step_energy, self._step_bits,
-                      self._step_key):
-            table.setflags(write=False)
+        gap = 10.0 ** (gap_db / 10.0)
+        settings = {
+            "mode": mode, "bits": tables.bits, "gap_db": gap_db, "budget_db": budget_db,
+            "cap_db": cap_db, "target_bits": target_bits,
+            "_gap": gap, "_log2_gap": math.log2(gap),
+            "_per_tone_budget": 10.0 ** (budget_db / 10.0), "_cap": 10.0 ** (cap_db / 10.0),
+            # Tables over the bit set (cached per set, read-only): see _BitTables.
+            "_energy": tables.energy, "_step_energy": tables.step_energy,
+            "_step_bits": tables.step_bits, "_step_key": tables.step_key,
+            "_unit_steps": tables.unit_steps, "_max_step": tables.max_step,
+            "_mean_step": tables.mean_step, "_key_spacing": tables.key_spacing,
+        }
+        self.__dict__.update(settings)
         self._frozen = True
 
     def __setattr__(self, name: str, value) -> None:
