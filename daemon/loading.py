@@ -539,17 +539,24 @@ class Loader:
         # Step j is allowed when unit * (2**b_j - 1) fits the ceiling and the whole budget.
         # Excluding tones that could never load also keeps unit_sum small next to the budget,
         # so the energy formula of _energy_of loses nothing to cancellation.
-        if math.isfinite(self._cap):
+        last = self.bits.size - 1
+        if math.isfinite(self._cap) or last == 0:
             room = min(self._cap, budget) / unit
             top = np.searchsorted(self._energy, room, side="right") - 1
-        else:  # only the budget limits a tone: drop those that cannot afford the first step
-            top = np.where(unit * self._energy[1] <= budget, self.bits.size - 1, 0) \
-                if self.bits.size > 1 else np.zeros(unit.size, dtype=np.int64)
-        if not top.all():
             dead = top == 0
+            top_f = top.astype(np.float64)
+        else:  # only the budget limits a tone: drop those that cannot afford the first step
+            dead = unit > budget / self._energy[1]
+            if dead.any():
+                top = np.where(dead, 0, last)
+                top_f = top.astype(np.float64)
+            else:
+                top = np.full(unit.size, last, dtype=np.int64)
+                top_f = np.full(unit.size, float(last))
+        if dead.any():
             unit[dead] = 0.0
             log_unit[dead] = np.inf
-        return _Tones(unit=unit, log_unit=log_unit, top=top, top_f=top.astype(np.float64),
+        return _Tones(unit=unit, log_unit=log_unit, top=top, top_f=top_f,
                       unit_sum=float(unit.sum()))
 
     def _steps_at(self, tones: _Tones, t: float) -> np.ndarray:
@@ -824,14 +831,16 @@ class Loader:
         """
         snr = _as_snr(snr)
         if self.mode == "rate":
-            return self.rate(snr)
+            return self._rate(snr)
         if self.mode == "margin":
-            return self.margin(snr, self.target_bits)
+            return self._margin_mode(snr, self.target_bits)
         return self.quantized_waterfill(snr)
 
     def rate(self, snr) -> Allocation:
         """Rate mode for ``snr``, whatever ``mode`` this loader was built with."""
-        snr = _as_snr(snr)
+        return self._rate(_as_snr(snr))
+
+    def _rate(self, snr: np.ndarray) -> Allocation:
         budget = self._budget(snr.size)
         tones = self._tones(snr, budget)
         n = self._rate_steps(tones, budget)
@@ -846,7 +855,9 @@ class Loader:
             When ``target_bits`` exceeds the most bits the budget and ceilings allow; the
             message gives both numbers.
         """
-        snr = _as_snr(snr)
+        return self._margin_mode(_as_snr(snr), target_bits)
+
+    def _margin_mode(self, snr: np.ndarray, target_bits: int) -> Allocation:
         if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
                 or target_bits < 0:
             raise InputError(f"target_bits={target_bits!r} must be an integer >= 0")
@@ -888,7 +899,7 @@ class Loader:
 
     def _allocation(self, tones: _Tones, n: np.ndarray, budget: float, *,
                     scale: bool) -> Allocation:
-        bits = self.bits[n]
+        bits = n if self._unit_steps else self.bits[n]  # with unit steps, index = bits
         need = tones.unit * self._energy[n]
         margin_db = self._margin(need, budget)
         power = need * 10.0 ** (margin_db / 10.0) if (scale and math.isfinite(margin_db)) \
