@@ -325,3 +325,50 @@ def test_plain_pyzmq_snippet_in_developers_md(pub):
         for name in ("sub", "req"):
             if name in ns:
                 ns[name].close(linger=0)
+
+
+class TestSections:
+    """Each section's keys are exactly its object's keyword arguments."""
+
+    @pytest.mark.parametrize("section, cls, extra", [
+        ("PublishSection", MapPublisher, {"context", "epoch"}),
+        ("StatusSection", StatusPublisher, {"context", "curve", "linger_s"}),
+    ])
+    def test_keys_are_constructor_kwargs(self, section, cls, extra):
+        import inspect
+
+        from brimline.daemon import config
+        fields = set(getattr(config, section).model_fields)
+        params = set(inspect.signature(cls).parameters)
+        assert fields == params - extra
+
+    def test_built_from_sections(self, ctx):
+        from brimline.daemon.config import PublishSection, StatusSection
+        pub_s = PublishSection(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT,
+                               ack_endpoint=None, linger_s=0.0)
+        with MapPublisher(**pub_s.model_dump(), context=ctx) as p, \
+                StatusPublisher(**StatusSection(endpoint=ANY_PORT).model_dump(),
+                                curve=p.curve, context=ctx) as sp:
+            assert p.ack_socket is None and sp.endpoint.startswith("tcp://127.0.0.1:")
+
+    @pytest.mark.parametrize("data, match", [
+        ({"map_endpoint": "localhost:7341"}, r"publish.map_endpoint='localhost:7341'"),
+        ({"heartbeat_s": 0}, r"publish.heartbeat_s=0: heartbeat_s=0.0 must be finite and > 0"),
+        ({"curve_clients_dir": "clients"}, "curve_clients_dir needs curve_secret_key"),
+        ({"hearbeat_s": 1.0}, "unknown key publish.hearbeat_s"),
+    ])
+    def test_publish_errors_name_the_key(self, data, match):
+        from brimline.daemon.config import PublishSection, parse_section
+        from brimline.daemon.errors import ConfigError
+        with pytest.raises(ConfigError, match=match):
+            parse_section(PublishSection, data, where="demo.yaml", name="publish")
+
+    @pytest.mark.parametrize("data, match", [
+        ({"rate_hz": -1.0}, "rate_hz=-1.0 must be finite and > 0"),
+        ({"hwm": 0}, "hwm=0 must be >= 1"),
+    ])
+    def test_status_errors_name_the_key(self, data, match):
+        from brimline.daemon.config import StatusSection, parse_section
+        from brimline.daemon.errors import ConfigError
+        with pytest.raises(ConfigError, match=match):
+            parse_section(StatusSection, data, where="demo.yaml", name="status")
