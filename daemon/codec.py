@@ -239,6 +239,8 @@ def encode(topic: str, record: Any) -> list[bytes | memoryview]:
     ------
     TypeError
         When the record or a value in it cannot be encoded (a bug in the caller).
+    ValueError
+        When a field the record type requires finite is not (e.g. NaN in ``power_lin``).
     """
     if not topic or not topic.isascii():
         raise TypeError(f"topic {topic!r} must be a non-empty ASCII string")
@@ -261,6 +263,10 @@ def encode(topic: str, record: Any) -> list[bytes | memoryview]:
         if schema is None:
             raise TypeError(f"codec cannot encode a {type(record).__name__}")
         kind = schema.name
+        for name in schema.finite:  # refuse to send what every decoder would refuse
+            v = getattr(record, name)
+            if not (math.isfinite(v) if isinstance(v, float) else np.isfinite(v).all()):
+                raise ValueError(f"{kind}.{name} must be finite to be encoded")
         fields = {name: _json_scalar(getattr(record, name), f"{kind}.{name}")
                   for name in schema.scalars}
         for name, dtype in schema.arrays.items():

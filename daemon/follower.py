@@ -210,6 +210,30 @@ class Follower:
             raise
         self._request_snapshot()
 
+    @classmethod
+    def for_daemon(cls, publish, loading, *, plan: TonePlan, **kwargs) -> "Follower":
+        """A follower of the daemon configured by ``publish`` and ``loading`` sections.
+
+        Endpoints come from ``publish`` (a wildcard host becomes 127.0.0.1), the allowed bits,
+        budget and cap from ``loading``, ``heartbeat_timeout_s`` defaults to four heartbeat
+        intervals. ``kwargs`` override or add any constructor argument (``on_map``,
+        ``context``, CURVE key files, ``clock``).
+        """
+        def here(ep):
+            if ep is None:
+                return None
+            for wild in ("tcp://*:", "tcp://0.0.0.0:"):
+                if ep.startswith(wild):
+                    return "tcp://127.0.0.1:" + ep[len(wild):]
+            return ep
+        args = dict(plan=plan, map_endpoint=here(publish.map_endpoint),
+                    snapshot_endpoint=here(publish.snapshot_endpoint),
+                    ack_endpoint=here(publish.ack_endpoint), bits=list(loading.bits),
+                    budget_db=loading.budget_db, cap_db=loading.cap_db,
+                    heartbeat_timeout_s=4 * publish.heartbeat_s)
+        args.update(kwargs)
+        return cls(**args)
+
     # ------------------------------------------------------------------ public
 
     @property
@@ -343,6 +367,10 @@ class Follower:
         topic, record = decoded
         if topic != codec.TOPIC_SNAPSHOT:
             self.counters["malformed"] += 1
+            return None
+        if isinstance(record, dict) and "error" in record:
+            self.counters["snapshot_errors"] += 1  # still pending: resent after the timeout
+            self.last_rejection = f"snapshot refused: {record['error']}"
             return None
         self._snapshot_sent_s = None
         self.counters["snapshots"] += 1

@@ -239,3 +239,8 @@ class TestEncodeErrors:
     def test_bad_topic(self):
         with pytest.raises(TypeError, match="ASCII"):
             codec.encode("", {})
+
+
+def test_encode_refuses_what_decoders_would_refuse():
+    with pytest.raises(ValueError, match="load_map.power_lin must be finite to be encoded"):
+        codec.encode("map", _map(power_lin=[np.nan, 0, 1, 1, 0, 1]))

@@ -249,3 +249,21 @@ class TestLifecycle:
     def test_bad_timeouts(self, pub, ctx, kw, match):
         with pytest.raises(ValueError, match=match):
             _follower(pub, ctx, **kw)
+
+
+def test_for_daemon_takes_endpoints_and_limits_from_the_sections(pub, ctx):
+    from brimline.daemon.config import LoadingSection, PublishSection
+    publish = PublishSection(map_endpoint=pub.map_endpoint.replace("127.0.0.1", "*"),
+                             snapshot_endpoint=pub.snapshot_endpoint, ack_endpoint=None,
+                             heartbeat_s=0.25)
+    loading = LoadingSection(bits=[0, 2, 4], budget_db=-3.0)
+    pub.publish(make_map(1, bits=2, power=0.45))  # 48 x 0.45 = 21.6 < 48 x 10^-0.3 = 24.06
+    with Follower.for_daemon(publish, loading, plan=PLAN, context=ctx) as f:
+        assert f.heartbeat_timeout_s == 1.0
+        _sync(pub, f, 1)
+        _subscribed(pub, f)
+        pub.publish(make_map(2, bits=2, power=0.55))  # 26.4 > 24.06: over the -3 dB budget
+        pub.publish(make_map(3, bits=6, power=0.3))  # 6 bits not in the allowed set
+        assert until(lambda: f.counters["rejected"] == 2, step=lambda: f.poll(0.005))
+        assert f.counters["rejected:over_budget"] == 1 and f.counters["rejected:bits"] == 1
+        assert f.current.seq == 1

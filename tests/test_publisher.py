@@ -278,6 +278,46 @@ class TestCurve:
             good.close()
             stranger.close()
 
+    def test_status_shares_the_curve_setup(self, keys, ctx):
+        from brimline.daemon.security import apply_client
+        with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT, ack_endpoint=None,
+                          linger_s=0, context=ctx,
+                          curve_secret_key=str(keys / "daemon/daemon.key_secret"),
+                          curve_clients_dir=str(keys / "clients")) as pub, \
+                StatusPublisher(endpoint=ANY_PORT, curve=pub.curve) as sp:
+            watchers = {}
+            for name, secret in (("tx", keys / "clients/tx.key_secret"),
+                                 ("mallory", keys / "strangers/mallory.key_secret"),
+                                 ("plain", None)):
+                s = ctx.socket(zmq.SUB)
+                s.setsockopt(zmq.LINGER, 0)
+                s.setsockopt(zmq.SUBSCRIBE, b"")
+                if secret is not None:
+                    apply_client(s, server_key_file=keys / "daemon/daemon.key",
+                                 client_secret_file=secret)
+                s.connect(sp.endpoint)
+                watchers[name] = (s, [])
+
+            def step():
+                sp.publish({"state": "tracking"})
+                for s, got in watchers.values():
+                    if s.poll(1):
+                        got.append(s.recv_multipart())
+            assert until(lambda: len(watchers["tx"][1]) > 3, step=step)
+            until(lambda: False, 0.2, step=step)
+            assert watchers["mallory"][1] == [] and watchers["plain"][1] == []
+            for s, _ in watchers.values():
+                s.close()
+        with pytest.raises(ValueError, match="another zmq.Context"):
+            with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT,
+                              ack_endpoint=None, linger_s=0, context=ctx,
+                              curve_secret_key=str(keys / "daemon/daemon.key_secret")) as pub:
+                other = zmq.Context()
+                try:
+                    StatusPublisher(endpoint=ANY_PORT, curve=pub.curve, context=other)
+                finally:
+                    other.term()
+
     def test_server_needs_a_secret_key_file(self, keys, ctx):
         with pytest.raises(InputError, match="holds no secret key"):
             MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT, ack_endpoint=None,
