@@ -31,7 +31,7 @@ from brimline.daemon import __version__, codec
 from brimline.daemon.errors import ProtocolError, RecordingError
 
 __all__ = ["MAGIC", "RecordWriter", "RecordReader", "TornRecordWarning", "TOPIC_META",
-           "pack_record", "recording_paths"]
+           "pack_record", "recording_paths", "read_recording"]
 
 MAGIC = b"BRIMLOG\x01"
 TOPIC_META = "meta"
@@ -87,6 +87,23 @@ def recording_paths(path: str | Path) -> list[Path]:
             return out
         out.append(nxt)
         i += 1
+
+
+def read_recording(path: str | Path, *,
+                   topics: Iterable[str] | None = None) -> Iterator[tuple[str, Any]]:
+    """``(topic, record)`` from ``path`` and its rotated continuations, in order.
+
+    Raises
+    ------
+    RecordingError
+        When ``path`` does not exist, or as :class:`RecordReader` does.
+    """
+    paths = recording_paths(path)
+    if not paths:
+        raise RecordingError(f"{path}: no such recording")
+    for p in paths:
+        with RecordReader(p, topics=topics) as reader:
+            yield from reader
 
 
 def _rotated(path: Path, index: int) -> Path:

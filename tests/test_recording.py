@@ -13,7 +13,7 @@ from brimline.daemon import codec
 from brimline.daemon.errors import RecordingError
 from brimline.daemon.records import Estimate, LoadMap
 from brimline.daemon.recording import (MAGIC, RecordReader, RecordWriter, TornRecordWarning,
-                                       recording_paths)
+                                       read_recording, recording_paths)
 from protocol_helpers import make_map, wifi_like_plan
 
 
@@ -86,6 +86,7 @@ class TestRoundTrip:
             with RecordReader(p) as r:
                 items += list(r)
         assert len(items) == 90
+        assert [t for t, _ in read_recording(path, topics=["map"])] == ["map"] * 30
         assert [m.seq for t, m in items if t == "map"] == list(range(30))
 
     def test_closed_writer(self, tmp_path):
@@ -171,6 +172,8 @@ class TestDamage:
     def test_missing_file(self, tmp_path):
         with pytest.raises(RecordingError, match="cannot open recording"):
             RecordReader(tmp_path / "nope.brl")
+        with pytest.raises(RecordingError, match="no such recording"):
+            list(read_recording(tmp_path / "nope.brl"))
 
 
 def test_a_killed_writer_loses_at_most_the_record_being_written(tmp_path):
