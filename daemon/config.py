@@ -28,6 +28,8 @@ __all__ = [
     "PublishSection",
     "StatusSection",
     "RecordSection",
+    "EstimatorSection",
+    "ChangeSection",
     "Config",
     "load_config",
     "read_yaml",
@@ -64,8 +66,8 @@ class LoadingSection(Section):
     @field_validator("bits")
     @classmethod
     def _bits_ok(cls, v: list[int]) -> list[int]:
-        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 15:
-            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 15")
+        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 16:
+            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 16")
         return v
 
     @field_validator("target_ser")
@@ -75,25 +77,187 @@ class LoadingSection(Section):
             raise ValueError(f"target_ser={v} must be in (0, 0.5)")
         return v
 
+    @field_validator("gap_db", "coding_gain_db", "margin_db", "budget_db")
+    @classmethod
+    def _finite_db(cls, v: Optional[float], info) -> Optional[float]:
+        if v is not None and not math.isfinite(v):
+            raise ValueError(f"{info.field_name}={v} must be finite")
+        return v
+
+    @field_validator("cap_db")
+    @classmethod
+    def _cap_ok(cls, v: float) -> float:
+        if math.isnan(v) or v == -math.inf:
+            raise ValueError(f"cap_db={v} must be finite or +inf (.inf)")
+        return v
+
+    @field_validator("target_bits")
+    @classmethod
+    def _target_ok(cls, v: Optional[int]) -> Optional[int]:
+        if v is not None and v < 0:
+            raise ValueError(f"target_bits={v} must be >= 0")
+        return v
+
+    @model_validator(mode="after")
+    def _margin_needs_target(self) -> "LoadingSection":
+        if self.mode == "margin" and self.target_bits is None:
+            raise ValueError("mode: margin needs target_bits")
+        return self
+
+    def effective_gap_db(self) -> float:
+        """The gap the loader uses, dB: ``gap_db`` (or the uncoded-QAM gap of ``target_ser``),
+        minus ``coding_gain_db``, plus ``margin_db``."""
+        from brimline.daemon.loading import qam_gap_db
+
+        if self.gap_db is not None:
+            return self.gap_db - self.coding_gain_db + self.margin_db
+        return qam_gap_db(self.target_ser, coding_gain_db=self.coding_gain_db,
+                          margin_db=self.margin_db)
+
+    def loader(self):
+        """Build the :class:`brimline.daemon.loading.Loader` this section describes."""
+        from brimline.daemon.loading import Loader
+
+        return Loader(mode=self.mode, bits=self.bits, gap_db=self.effective_gap_db(),
+                      budget_db=self.budget_db, cap_db=self.cap_db,
+                      target_bits=self.target_bits)
+
 
 # --------------------------------------------------------------------------- link and drivers
 # Each driver subsection's fields are exactly that driver's constructor keyword arguments.
 
 
 class LinkSection(Section):
-    """``link:`` tone plan and frame format (see brimline.drivers.ofdm)."""
+    """``link:`` tone plan and frame format; the keys are ``brimline.drivers.ofdm.make_plan``'s.
+
+    Checks that involve several keys (pilots inside the used band, cyclic prefix shorter than the
+    FFT, ...) are made in key order by ``brimline.drivers.ofdm.check_link``.
+    """
+
+    fft_size: int = Field(256, description="FFT length in samples (power of two, >= 128)")
+    cp_len: int = Field(32, description="cyclic prefix in samples")
+    sample_rate_hz: float = Field(3.84e6, description="complex sample rate, Hz")
+    used_tones_half: int = Field(
+        100, description="used tones on each side of DC (bins -U..-1 and 1..U)")
+    pilot_spacing: int = Field(
+        8, description="every n-th used tone from the band edge inwards is a pilot")
+    train_symbols: int = Field(2, description="identical full-band training symbols per frame")
+    data_symbols: int = Field(12, description="data symbols per frame")
+    max_bits: int = Field(10, description="largest constellation, bits per tone")
+    cfo_range_tones: int = Field(8, description="largest frequency offset searched, tone spacings")
+    center_hz: Optional[float] = Field(None, description="radio centre frequency, Hz")
+
+    # Defaults are checked too: fft_size 128 with the default used_tones_half must fail here.
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True, validate_default=True)
+
+    @field_validator("*")
+    @classmethod
+    def _consistent(cls, v, info):
+        from brimline.drivers.ofdm import check_link  # the one place these rules live
+
+        try:
+            check_link(info.field_name, v, info.data)
+        except ValueError as exc:  # the message starts with "key=value"; the caller adds it
+            raise ValueError(str(exc).split(" ", 1)[1]) from None
+        return v
+
+
+class FadeEventSection(Section):
+    """One entry of ``driver.sim.events``: a sudden fade of a band of tones."""
+
+    start_s: float = Field(description="simulated time the fade starts, s")
+    stop_s: Optional[float] = Field(None, description="time it ends, s (absent: never)")
+    first_tone: int = Field(description="first faded tone, signed FFT bin")
+    last_tone: int = Field(description="last faded tone, signed FFT bin (inclusive)")
+    depth_db: float = Field(20.0, description="attenuation, dB")
+
+    @field_validator("last_tone")
+    @classmethod
+    def _band(cls, v, info):
+        first = info.data.get("first_tone")
+        if first is not None and v < first:
+            raise ValueError(f"last_tone={v} must be >= first_tone={first}")
+        return v
 
 
 class SimSection(Section):
-    """``driver.sim:`` the simulated link (brimline.drivers.sim)."""
+    """``driver.sim:`` the simulated link; keys are ``brimline.drivers.sim.SimDriver``'s."""
+
+    profile: Literal["awgn", "flat", "epa", "eva", "etu", "ped_a", "ped_b", "veh_a",
+                     "indoor_a"] = Field("epa", description="multipath profile")
+    doppler_hz: float = Field(5.0, description="maximum Doppler shift, Hz")
+    snr_db: float = Field(25.0, description="per-tone SNR on a unit channel, dB")
+    cfo_hz: float = Field(1500.0, description="carrier frequency offset, Hz")
+    lead_max_samples: int = Field(
+        64, description="random noise-only samples before each frame (timing offset), max")
+    interferer_tone: Optional[float] = Field(
+        None, description="narrowband interferer position, signed tone (may be fractional)")
+    interferer_db: float = Field(0.0, description="interferer power relative to a nominal tone, dB")
+    drift_db: float = Field(0.0, description="slow gain drift, peak deviation, dB")
+    drift_period_s: float = Field(60.0, description="period of the gain drift, s")
+    events: list[FadeEventSection] = Field(
+        default_factory=list, description="sudden band fades (adaptation tests)")
+    frame_rate_hz: float = Field(50.0, description="frames per second")
+    realtime: bool = Field(True, description="pace frames in real time (else as fast as possible)")
+    start_s: float = Field(0.0, description="time_s of frame 0, s")
+    seed: int = Field(1, description="seed of the simulation's random generator")
+    default_bits: int = Field(2, description="bits per tone while no map has been received")
+    max_frames: Optional[int] = Field(None, description="stop after this many frames")
+    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+
+    @field_validator("frame_rate_hz", "drift_period_s")
+    @classmethod
+    def _positive(cls, v, info):
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"{info.field_name}={v} must be positive")
+        return v
+
+    @field_validator("doppler_hz", "lead_max_samples")
+    @classmethod
+    def _not_negative(cls, v, info):
+        if not v >= 0:
+            raise ValueError(f"{info.field_name}={v} must be >= 0")
+        return v
+
+    @field_validator("sync_threshold")
+    @classmethod
+    def _threshold(cls, v):
+        if not 0.0 < v < 1.0:
+            raise ValueError(f"sync_threshold={v} must be in (0, 1)")
+        return v
 
 
 class IqSection(Section):
-    """``driver.iq:`` recorded IQ through the receiver DSP (brimline.drivers.iq)."""
+    """``driver.iq:`` a SigMF IQ recording through the receiver (brimline.drivers.iq)."""
+
+    path: str = Field(description="the recording: NAME, NAME.sigmf-meta or NAME.sigmf-data")
+    default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
+    start_s: float = Field(0.0, description="time_s of the recording's first sample, s")
+    realtime: bool = Field(False, description="pace frames at the recording's own rate")
+    max_frames: Optional[int] = Field(None, description="stop after this many frames")
+    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
 
 
 class RadioSection(Section):
-    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.iio)."""
+    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.iio); tuning is ``link.center_hz``."""
+
+    uri: str = Field("ip:192.168.2.1", description="libiio context URI of the radio")
+    device: str = Field("Pluto", description="pyadi-iio class name of the device")
+    rx_gain_db: float = Field(30.0, description="manual receive gain, dB")
+    tx_attenuation_db: float = Field(
+        30.0, description="transmit attenuation, dB (>= 0; more is less power)")
+    transmit: bool = Field(
+        False, description="also send frames of the default map from this radio (loopback)")
+    buffer_frames: int = Field(4, description="frames per receive buffer")
+    default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
+    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+
+    @field_validator("tx_attenuation_db")
+    @classmethod
+    def _attenuation(cls, v):
+        if not 0.0 <= v <= 89.75:
+            raise ValueError(f"tx_attenuation_db={v} must be in [0, 89.75]")
+        return v
 
 
 class ReplaySection(Section):
@@ -113,12 +277,165 @@ class DriverSection(Section):
 # --------------------------------------------------------------------------- estimator, change
 
 
+def _positive(name: str, v: float) -> float:
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{name}={v} must be a positive finite number")
+    return v
+
+
+def _non_negative(name: str, v: float) -> float:
+    if not (math.isfinite(v) and v >= 0):
+        raise ValueError(f"{name}={v} must be a finite number >= 0")
+    return v
+
+
 class EstimatorSection(Section):
-    """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator)."""
+    """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator.Estimator).
+
+    Defaults suit a slowly fading indoor link (people moving, Doppler of a hertz or two, so a
+    coherence time of a few hundred milliseconds) estimated at tens to hundreds of frames per
+    second with about 1 dB of per-frame estimation noise.
+    """
+
+    tau_s: float = Field(
+        0.25, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
+    std_tau_s: float = Field(
+        2.0, description="time constant of the per-tone variance tracker, s")
+    std_init_db: float = Field(
+        3.0, description="uncertainty (std, dB) given to a tone before its variance is learnt")
+    backoff_sigmas: float = Field(
+        1.0, description="effective SNR = smoothed SNR minus this many std, so noisy tones "
+                         "carry fewer bits")
+    outlier_db: float = Field(
+        6.0, description="smallest gate, dB: a tone further than this (and than "
+                         "outlier_sigmas std) from its tracked value is held as an outlier")
+    outlier_sigmas: float = Field(
+        4.0, description="gate width in per-tone std; the wider of this and outlier_db applies")
+    confirm_frames: int = Field(
+        3, description="consecutive agreeing outlier frames after which a tone's change is "
+                       "accepted as real and the tone jumps to it")
+    frame_outlier_fraction: float = Field(
+        0.5, description="a frame with more than this fraction of tones outside their gate is "
+                         "a whole-frame outlier (counted; no tone is smoothed with it)")
+    stale_s: float = Field(
+        5.0, description="after a gap longer than this between accepted frames, tracking "
+                         "starts afresh from the next frame, s")
+    tone_window: int = Field(
+        1, description="half-width in tones of the smoothing across neighbours (0: off)")
+    tone_agree_db: float = Field(
+        1.0, description="neighbours are averaged in only where their smoothed SNR is within "
+                         "this of the tone's, dB; deeper notches and interferers stay intact")
+
+    @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s")
+    @classmethod
+    def _positive_ok(cls, v: float, info) -> float:
+        return _positive(info.field_name, v)
+
+    @field_validator("backoff_sigmas", "outlier_sigmas", "tone_agree_db")
+    @classmethod
+    def _non_negative_ok(cls, v: float, info) -> float:
+        return _non_negative(info.field_name, v)
+
+    @field_validator("confirm_frames")
+    @classmethod
+    def _confirm_ok(cls, v: int) -> int:
+        if not 1 <= v <= 100:
+            raise ValueError(f"confirm_frames={v} must be in [1, 100]")
+        return v
+
+    @field_validator("frame_outlier_fraction")
+    @classmethod
+    def _fraction_ok(cls, v: float) -> float:
+        if not 0.0 < v <= 1.0:
+            raise ValueError(f"frame_outlier_fraction={v} must be in (0, 1]")
+        return v
+
+    @field_validator("tone_window")
+    @classmethod
+    def _window_ok(cls, v: int) -> int:
+        if not 0 <= v <= 16:
+            raise ValueError(f"tone_window={v} must be in [0, 16]")
+        return v
 
 
 class ChangeSection(Section):
-    """``change:`` change control: margins, dwell times, bit swaps, emergency."""
+    """``change:`` change control (brimline.daemon.change.ChangeControl).
+
+    Margins are per-tone margins of the current map under the tracked effective SNR, in dB
+    relative to the loading gap (which already includes ``loading.margin_db``): 0 dB means a
+    tone sits exactly at the loading target. Upgrades are slower and need more evidence than
+    downgrades, after the separate upshift/downshift margins and minimum times of DSL online
+    reconfiguration.
+    """
+
+    downshift_margin_db: float = Field(
+        -1.5, description="a loaded tone whose margin falls below this forces a new map, dB")
+    upshift_margin_db: float = Field(
+        1.5, description="an upgrade is made only when a map loaded with this much extra "
+                         "margin on every tone still gains min_gain_bits, dB")
+    min_gain_bits: int = Field(
+        4, description="smallest gain in bits per symbol worth an upgrade")
+    down_dwell_s: float = Field(
+        0.1, description="minimum time since the last map before a downgrade, s")
+    up_dwell_s: float = Field(
+        5.0, description="minimum time since the last map before an upgrade, s")
+    upgrade_check_s: float = Field(
+        0.25, description="after the upgrade dwell, how often an upgrade is evaluated, s")
+    max_maps_per_s: float = Field(
+        10.0, description="no two maps closer than 1/this, emergencies included, 1/s")
+    swap_max_tones: int = Field(
+        16, description="a bit swap changes at most this many tones; larger changes reload")
+    swap_max_loss_bits: int = Field(
+        4, description="a bit swap may lose at most this many bits per symbol, else reload")
+    emergency_fraction: float = Field(
+        0.25, description="this fraction of loaded tones below the downshift margin at once "
+                          "triggers an emergency downshift")
+    emergency_drop_db: float = Field(
+        6.0, description="a drop of the mean tracked SNR by this much since the current map "
+                         "triggers an emergency downshift, dB")
+    emergency_margin_db: float = Field(
+        3.0, description="extra margin of the emergency map, dB (recovered by upgrades)")
+
+    @field_validator("down_dwell_s", "up_dwell_s", "upgrade_check_s", "emergency_margin_db")
+    @classmethod
+    def _non_negative_ok(cls, v: float, info) -> float:
+        return _non_negative(info.field_name, v)
+
+    @field_validator("max_maps_per_s", "emergency_drop_db")
+    @classmethod
+    def _positive_ok(cls, v: float, info) -> float:
+        return _positive(info.field_name, v)
+
+    @field_validator("downshift_margin_db", "upshift_margin_db")
+    @classmethod
+    def _finite_ok(cls, v: float, info) -> float:
+        if not math.isfinite(v):
+            raise ValueError(f"{info.field_name}={v} must be finite")
+        return v
+
+    @field_validator("min_gain_bits", "swap_max_tones", "swap_max_loss_bits")
+    @classmethod
+    def _count_ok(cls, v: int, info) -> int:
+        if v < 0:
+            raise ValueError(f"{info.field_name}={v} must be >= 0")
+        return v
+
+    @field_validator("emergency_fraction")
+    @classmethod
+    def _fraction_ok(cls, v: float) -> float:
+        if not 0.0 < v <= 1.0:
+            raise ValueError(f"emergency_fraction={v} must be in (0, 1]")
+        return v
+
+    @model_validator(mode="after")
+    def _margins_ordered(self) -> "ChangeSection":
+        if self.downshift_margin_db >= self.upshift_margin_db:
+            raise ValueError(f"downshift_margin_db={self.downshift_margin_db} must be below "
+                             f"upshift_margin_db={self.upshift_margin_db}")
+        if self.up_dwell_s < self.down_dwell_s:
+            raise ValueError(f"up_dwell_s={self.up_dwell_s} must be >= "
+                             f"down_dwell_s={self.down_dwell_s}")
+        return self
 
 
 # --------------------------------------------------------------------------- publish, status, record
