@@ -396,7 +396,7 @@ def decode(frames: Sequence[Any]) -> tuple[str, Any]:
         raise ProtocolError(f"{topic}: header of {views[1].nbytes} bytes is too large")
     try:
         header = json.loads(bytes(views[1]).decode("utf-8"))
-    except (UnicodeDecodeError, ValueError) as exc:
+    except (UnicodeDecodeError, ValueError, RecursionError) as exc:  # nesting bombs too
         raise ProtocolError(f"{topic}: header is not JSON: {exc}") from None
     if not isinstance(header, dict):
         raise ProtocolError(f"{topic}: header is not a JSON object")
