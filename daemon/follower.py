@@ -241,6 +241,11 @@ class Follower:
         """True once a snapshot reply has been used (and no new one is awaited)."""
         return self._snapshot_sent_s is None and self._epoch is not None
 
+    @property
+    def held_updates(self) -> int:
+        """Map updates received while a snapshot reply is awaited (applied after it if newer)."""
+        return len(self._held)
+
     def stale(self, now_s: float | None = None) -> bool:
         """True when nothing was heard from the daemon for ``heartbeat_timeout_s``."""
         now = self._clock() if now_s is None else now_s

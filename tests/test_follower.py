@@ -190,12 +190,13 @@ class TestHandOver:
             assert request[1:] == [b"", b"snapshot"]
             for seq in (1, 2, 3):
                 xpub.send_multipart(codec.encode("map", make_map(seq)))
-            assert until(lambda: len(f._held) == 3, step=lambda: f.poll(0.005))
+            assert until(lambda: f.held_updates == 3, step=lambda: f.poll(0.005))
             assert f.current is None  # held until the snapshot says where we are
             router.send_multipart(request[:2] + codec.encode("snapshot", make_map(2)))
             assert until(lambda: f.current is not None and f.current.seq == 3,
                          step=lambda: f.poll(0.005))
             assert f.counters["old_dropped"] == 2 and f.counters["maps"] == 2
+            assert f.held_updates == 0
             xpub.send_multipart([b"map", b"not json"])
             assert until(lambda: f.counters["malformed"] == 1, step=lambda: f.poll(0.005))
             assert f.current.seq == 3
