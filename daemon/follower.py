@@ -382,7 +382,7 @@ class Follower:
         adopted = None
         if isinstance(record, LoadMap):
             if record.epoch != self._epoch or record.seq > self._seq:
-                if record.epoch != self._epoch and self._epoch is not None:
+                if record.epoch != self._epoch and self._epoch:  # "" / None: not known yet
                     self.counters["epoch_changes"] += 1
                 self._epoch, self._seq = record.epoch, record.seq
                 adopted = self._adopt(record)
@@ -421,7 +421,8 @@ class Follower:
 
     def _follow(self, load_map: LoadMap) -> LoadMap | None:
         if load_map.epoch != self._epoch:
-            self.counters["epoch_changes"] += 1
+            if self._epoch:  # "" / None: the daemon had not named its epoch yet
+                self.counters["epoch_changes"] += 1
         elif load_map.seq <= self._seq:
             self.counters["old_dropped"] += 1
             return None

@@ -268,3 +268,14 @@ def test_for_daemon_takes_endpoints_and_limits_from_the_sections(pub, ctx):
         assert until(lambda: f.counters["rejected"] == 2, step=lambda: f.poll(0.005))
         assert f.counters["rejected:over_budget"] == 1 and f.counters["rejected:bits"] == 1
         assert f.current.seq == 1
+
+
+def test_first_map_after_an_unnamed_epoch_is_not_an_epoch_change(ctx):
+    with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT, ack_endpoint=None,
+                      linger_s=0.0, context=ctx) as pub:  # no epoch given: heartbeats say ""
+        with _follower(pub, ctx) as f:
+            assert until(lambda: f.synced, step=lambda: (pub.handle_snapshot(), f.poll(0.005)))
+            _subscribed(pub, f)
+            pub.publish(make_map(0, epoch="e9"))
+            assert until(lambda: f.current is not None, step=lambda: f.poll(0.005))
+            assert f.counters["epoch_changes"] == 0
