@@ -382,10 +382,7 @@ class Follower:
         adopted = None
         if isinstance(record, LoadMap):
             if record.epoch != self._epoch or record.seq > self._seq:
-                if record.epoch != self._epoch and self._epoch:  # "" / None: not known yet
-                    self.counters["epoch_changes"] += 1
-                self._epoch, self._seq = record.epoch, record.seq
-                adopted = self._adopt(record)
+                adopted = self._take(record)
             else:
                 self.counters["old_dropped"] += 1
         elif isinstance(record, dict) and isinstance(record.get("seq"), int):
@@ -420,14 +417,22 @@ class Follower:
         return None
 
     def _follow(self, load_map: LoadMap) -> LoadMap | None:
-        if load_map.epoch != self._epoch:
-            if self._epoch:  # "" / None: the daemon had not named its epoch yet
-                self.counters["epoch_changes"] += 1
-        elif load_map.seq <= self._seq:
+        same = load_map.epoch == self._epoch
+        if same and load_map.seq <= self._seq:
             self.counters["old_dropped"] += 1
             return None
-        elif load_map.seq > self._seq + 1:
+        if same and load_map.seq > self._seq + 1:
             self.counters["gaps"] += 1
             self._request_snapshot()
-        self._epoch, self._seq = load_map.epoch, load_map.seq
-        return self._adopt(load_map)
+        return self._take(load_map)
+
+    def _take(self, load_map: LoadMap) -> LoadMap | None:
+        """Check and adopt a map already known to be newer. Within the epoch the seq is used
+        up even when the map is refused; a refused map of another epoch moves nothing."""
+        same = load_map.epoch == self._epoch
+        adopted = self._adopt(load_map)
+        if adopted is not None or same:
+            if not same and self._epoch:  # "" / None: the daemon had not named its epoch
+                self.counters["epoch_changes"] += 1
+            self._epoch, self._seq = load_map.epoch, load_map.seq
+        return adopted

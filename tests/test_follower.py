@@ -279,3 +279,61 @@ def test_first_map_after_an_unnamed_epoch_is_not_an_epoch_change(ctx):
             pub.publish(make_map(0, epoch="e9"))
             assert until(lambda: f.current is not None, step=lambda: f.poll(0.005))
             assert f.counters["epoch_changes"] == 0
+
+
+class TestOrderProperty:
+    """Whatever order, repeats, gaps, epochs and bad maps a daemon sends, the maps a follower
+    hands on are all valid and, within an epoch, strictly increasing in seq."""
+
+    @pytest.fixture(scope="class")
+    def daemon(self):
+        context = zmq.Context()
+        xpub, router = context.socket(zmq.XPUB), context.socket(zmq.ROUTER)
+        for s in (xpub, router):
+            s.setsockopt(zmq.LINGER, 0)
+            s.bind("tcp://127.0.0.1:*")
+        yield context, xpub, router
+        context.destroy(linger=0)
+
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+
+    @settings(max_examples=25, deadline=None)
+    @given(events=st.lists(st.tuples(st.sampled_from(["a", "b"]), st.integers(0, 12),
+                                     st.booleans()), min_size=1, max_size=25))
+    def test_adopted_maps_are_valid_and_ordered(self, daemon, events):
+        context, xpub, router = daemon
+        adopted = []
+        f = Follower(plan=PLAN, context=context, on_map=adopted.append,
+                     map_endpoint=xpub.getsockopt(zmq.LAST_ENDPOINT).decode(),
+                     snapshot_endpoint=router.getsockopt(zmq.LAST_ENDPOINT).decode())
+        current = [None]
+
+        def serve():
+            while router.poll(0):
+                req = router.recv_multipart()
+                body = current[0] if current[0] is not None else {"epoch": "", "seq": -1}
+                router.send_multipart(req[:2] + codec.encode("snapshot", body))
+            while xpub.poll(0):
+                xpub.recv()
+            f.poll(0.002)
+        try:
+            assert until(lambda: f.synced, step=serve)
+            while f.counters["heartbeats"] == 0:  # subscription in place
+                xpub.send_multipart(codec.encode("heartbeat", {"epoch": "", "seq": -1}))
+                serve()
+            for epoch, seq, ok in events:
+                m = make_map(seq, epoch=epoch, power=0.9 if ok else 1.5)
+                current[0] = m
+                xpub.send_multipart(codec.encode("map", m))
+                serve()
+            n = f.counters["heartbeats"]
+            xpub.send_multipart(codec.encode("heartbeat", {"epoch": "", "seq": -1}))
+            assert until(lambda: f.counters["heartbeats"] > n and f.synced, step=serve)
+        finally:
+            f.close()
+        for m in adopted:
+            assert check_map(m, plan_id=PLAN.plan_id, tone_index=PLAN.data_tones,
+                             bits=range(9), budget_lin=48.0, cap_lin=np.inf) is None
+        for a, b in zip(adopted, adopted[1:]):
+            assert a.epoch != b.epoch or b.seq > a.seq
