@@ -5,6 +5,8 @@ import math
 import numpy as np
 import pytest
 import zmq
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from brimline.daemon import codec
 from brimline.daemon.follower import Follower, check_map
@@ -281,22 +283,21 @@ def test_first_map_after_an_unnamed_epoch_is_not_an_epoch_change(ctx):
             assert f.counters["epoch_changes"] == 0
 
 
+@pytest.fixture(scope="module")
+def daemon():
+    """A scripted daemon (XPUB + ROUTER) shared by the property examples."""
+    context = zmq.Context()
+    xpub, router = context.socket(zmq.XPUB), context.socket(zmq.ROUTER)
+    for s in (xpub, router):
+        s.setsockopt(zmq.LINGER, 0)
+        s.bind("tcp://127.0.0.1:*")
+    yield context, xpub, router
+    context.destroy(linger=0)
+
+
 class TestOrderProperty:
     """Whatever order, repeats, gaps, epochs and bad maps a daemon sends, the maps a follower
     hands on are all valid and, within an epoch, strictly increasing in seq."""
-
-    @pytest.fixture(scope="class")
-    def daemon(self):
-        context = zmq.Context()
-        xpub, router = context.socket(zmq.XPUB), context.socket(zmq.ROUTER)
-        for s in (xpub, router):
-            s.setsockopt(zmq.LINGER, 0)
-            s.bind("tcp://127.0.0.1:*")
-        yield context, xpub, router
-        context.destroy(linger=0)
-
-    from hypothesis import given, settings
-    from hypothesis import strategies as st
 
     @settings(max_examples=25, deadline=None)
     @given(events=st.lists(st.tuples(st.sampled_from(["a", "b"]), st.integers(0, 12),
