@@ -64,6 +64,7 @@ __all__ = [
     "register_record",
     "record_types",
     "type_name",
+    "byte_view",
 ]
 
 #: Version written into every header; a decoder refuses any other.
@@ -285,14 +286,25 @@ def encode(topic: str, record: Any) -> list[bytes | memoryview]:
 # --------------------------------------------------------------------------- decode
 
 
-def _buffer(frame: Any) -> memoryview:
-    """A byte view of a frame given as bytes, memoryview or zmq.Frame."""
+def byte_view(frame: Any) -> memoryview:
+    """A flat byte view of a frame given as bytes, memoryview, zmq.Frame or ndarray.
+
+    Raises
+    ------
+    ProtocolError
+        When ``frame`` does not expose a buffer.
+    """
     buf = getattr(frame, "buffer", frame)  # zmq.Frame exposes .buffer
     try:
         view = memoryview(buf)
     except TypeError:
         raise ProtocolError(f"frame of type {type(frame).__name__} is not bytes") from None
-    return view.cast("B") if view.format != "B" or view.ndim != 1 else view
+    if view.format == "B" and view.ndim == 1:
+        return view
+    try:
+        return view.cast("B")
+    except TypeError:  # formats memoryview cannot cast (complex, non-contiguous): copy
+        return memoryview(view.tobytes())
 
 
 def _float(value: Any, where: str) -> float:
@@ -385,7 +397,7 @@ def decode(frames: Sequence[Any]) -> tuple[str, Any]:
     """
     if len(frames) < 2:
         raise ProtocolError(f"message has {len(frames)} parts, needs at least topic and header")
-    views = [_buffer(f) for f in frames]
+    views = [byte_view(f) for f in frames]
     try:
         topic = bytes(views[0]).decode("ascii")
     except UnicodeDecodeError:

@@ -47,7 +47,7 @@ class TornRecordWarning(UserWarning):
 
 def pack_record(frames: Sequence[Any]) -> bytes:
     """One record's bytes (length, CRC, body) for a list of frames."""
-    views = [memoryview(getattr(f, "buffer", f)).cast("B") for f in frames]
+    views = [codec.byte_view(f) for f in frames]
     if len(views) > 0xFFFF:
         raise ValueError(f"a record holds at most 65535 frames, got {len(views)}")
     body = bytearray(_U16.pack(len(views)))
@@ -197,7 +197,7 @@ class RecordWriter:
     def write_frames(self, frames: Sequence[Any]) -> bool:
         """Append an already encoded message (e.g. what ``MapPublisher.publish`` returned)."""
         self._check_open()
-        topic = bytes(memoryview(getattr(frames[0], "buffer", frames[0]))).decode("ascii")
+        topic = bytes(codec.byte_view(frames[0])).decode("ascii", "replace")
         if not self.wants(topic):
             self.skipped += 1
             return False

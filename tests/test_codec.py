@@ -257,3 +257,10 @@ class TestEncodeErrors:
 def test_encode_refuses_what_decoders_would_refuse():
     with pytest.raises(ValueError, match="load_map.power_lin must be finite to be encoded"):
         codec.encode("map", _map(power_lin=[np.nan, 0, 1, 1, 0, 1]))
+
+
+def test_frames_may_be_numpy_arrays_of_any_dtype():
+    frames = codec.encode("estimate", _estimate())
+    as_arrays = frames[:2] + [np.frombuffer(f, dtype=d) for f, d in
+                              zip(frames[2:], ["<i2", "<c8", "<f4", "<f4"])]
+    _assert_same(codec.decode(as_arrays)[1], _estimate())
