@@ -450,7 +450,7 @@ def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
     return v
 
 
-def _positive(key: str, v: float) -> float:
+def _finite_positive(key: str, v: float) -> float:
     if not (math.isfinite(v) and v > 0):
         raise ValueError(f"{key}={v} must be finite and > 0")
     return v
@@ -487,7 +487,7 @@ class PublishSection(Section):
     @field_validator("heartbeat_s")
     @classmethod
     def _heartbeat(cls, v):
-        return _positive("heartbeat_s", v)
+        return _finite_positive("heartbeat_s", v)
 
     @field_validator("linger_s")
     @classmethod
@@ -530,7 +530,7 @@ class StatusSection(Section):
     @field_validator("rate_hz")
     @classmethod
     def _rate(cls, v):
-        return _positive("rate_hz", v)
+        return _finite_positive("rate_hz", v)
 
     @field_validator("hwm")
     @classmethod
