@@ -18,44 +18,8 @@ from hypothesis import strategies as st
 from brimline.daemon.change import ChangeControl
 from brimline.daemon.config import ChangeSection
 from brimline.daemon.estimator import Estimator
+from brimline.daemon.loading import Loader
 from brimline.daemon.records import DecisionKind, Estimate, Tracked
-
-try:
-    from brimline.daemon.loading import Loader
-except ImportError:  # the loading engine has not landed yet: a stand-in with its contract
-    from brimline.daemon.records import Allocation
-
-    class Loader:
-        """Stand-in: each tone takes the most bits an equal share of the budget carries."""
-
-        def __init__(self, *, mode="rate", bits=range(9), gap_db, budget_db=0.0,
-                     cap_db=math.inf, target_bits=None):
-            self.mode, self.bits = mode, np.asarray(list(bits), dtype=np.int64)
-            self.gap_db, self.budget_db, self.cap_db = gap_db, budget_db, cap_db
-            self.target_bits = target_bits
-            self._gap = 10 ** (gap_db / 10)
-
-        def required_power(self, bits, snr):
-            b = np.asarray(bits, dtype=np.int64)
-            return np.where(b > 0, self._gap * (2.0 ** b - 1) / np.asarray(snr, float), 0.0)
-
-        def tone_margin_db(self, bits, power, snr):
-            need = self.required_power(bits, snr)
-            with np.errstate(divide="ignore"):
-                return np.where(need > 0, 10 * np.log10(power / np.where(need > 0, need, 1)),
-                                np.inf)
-
-        def __call__(self, snr):
-            snr = np.asarray(snr, float)
-            share = min(10 ** (self.budget_db / 10), 10 ** (self.cap_db / 10))
-            room = share * snr / self._gap
-            j = np.searchsorted(2.0 ** self.bits - 1, room, side="right") - 1
-            bits = self.bits[np.maximum(j, 0)]
-            power = self.required_power(bits, snr)
-            total = float(power.sum())
-            return Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
-                              total_power=total, margin_db=math.inf if total == 0 else
-                              10 * math.log10(snr.size * share / total))
 
 GAP_DB = 12.8   # common-practice uncoded QAM gap 9.8 dB at SER 1e-7 plus a 3 dB target margin
 N = 128
