@@ -116,7 +116,9 @@ class ChangeControl:
         self.upgrade_check_s = float(upgrade_check_s)
         self.max_maps_per_s = float(max_maps_per_s)
         self.swap_max_tones = int(swap_max_tones)
-        if getattr(loader, "mode", "rate") == "margin":
+        # Margin mode carries exactly its target: a swap must neither lose nor gain bits.
+        self._exact_rate = getattr(loader, "mode", "rate") == "margin"
+        if self._exact_rate:
             swap_max_loss_bits = 0
         self.swap_max_loss_bits = int(swap_max_loss_bits)
         self.emergency_fraction = float(emergency_fraction)
@@ -371,7 +373,8 @@ class ChangeControl:
                            else np.inf)
         n_changed = int(np.count_nonzero(changed))
         loss = int(cur.total_bits - bits.sum())
-        if n_changed > self.swap_max_tones or loss > self.swap_max_loss_bits:
+        if n_changed > self.swap_max_tones or loss > self.swap_max_loss_bits \
+                or (self._exact_rate and loss != 0):
             return None
         total_power = float(power.sum())
         if total_power > budget * (1 + 1e-9) or (power > self._cap_lin * (1 + 1e-9)).any():

@@ -28,10 +28,10 @@ Why these choices:
   exactly the effect of ``k`` frames of the same value, and after a gap of several ``tau_s`` the old
   state is all but forgotten. Beyond ``stale_s`` tracking starts afresh (the variance too).
 * **Variance of the innovation**, corrected by ``(2 - alpha) / 2``: with iid noise of variance
-  sigma**2 around a constant, the EWMA itself has variance ``sigma**2 * alpha / (2 - alpha)``, so
-  ``E[d**2] = 2 sigma**2 / (2 - alpha)``. ``std_db`` is thus the spread of a single frame's SNR about
-  the tracked value (estimation noise plus fast channel variation): the amount by which the SNR
-  the transmitter meets can differ from the tracked one, hence the back-off. ``P`` adds the
+  sigma**2 around a constant, the EWMA itself has variance ``sigma**2 * alpha / (2 - alpha)``,
+  so ``E[d**2] = 2 sigma**2 / (2 - alpha)``. ``std_db`` is thus the spread of a single frame's
+  SNR about the tracked value (estimation noise plus fast channel variation): the amount by which
+  the SNR the transmitter meets can differ from the tracked one, hence the back-off. ``P`` adds the
   uncertainty of the tracked value itself, large right after the first frame (as large as
   ``std_init_db``) and small once many frames are averaged, so a map made from the first few
   frames is made with a wider back-off and does not need repairs as the average settles.

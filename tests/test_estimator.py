@@ -16,7 +16,8 @@ import numpy as np
 import pytest
 from scipy.signal import lfilter
 
-from brimline.daemon.config import EstimatorSection
+from brimline.daemon.config import EstimatorSection, load_config
+from brimline.daemon.errors import ConfigError
 from brimline.daemon.estimator import REJECT_REASONS, Estimator, _agree_smooth
 from brimline.daemon.records import Estimate
 
@@ -59,6 +60,16 @@ class TestConfig:
             Estimator(**kwargs)
         with pytest.raises(Exception, match=match):
             EstimatorSection(**kwargs)
+
+
+    def test_yaml_errors_name_the_key(self, tmp_path):
+        path = tmp_path / "c.yaml"
+        path.write_text("estimator:\n  tau_s: 0.5\n  outlier_db: -3\n")
+        with pytest.raises(ConfigError, match=r"line 3: estimator.outlier_db=-3"):
+            load_config(path)
+        path.write_text("estimator:\n  tau_s: 1\n  tone_window: 2\n")
+        cfg = load_config(path)
+        assert Estimator(**cfg.estimator.model_dump()).tone_window == 2
 
 
 class TestTimeSmoothing:
