@@ -414,3 +414,43 @@ def test_published_maps_meet_the_constraints_and_thresholds(scenario):
             assert d.tones_changed <= cc.swap_max_tones
             assert prev.total_bits - alloc.total_bits <= cc.swap_max_loss_bits
         last_map_t = t
+
+
+# ----------------------------------------------------------------------------- on the link model
+
+
+def test_band_fade_on_the_simulated_link_gets_a_new_map_quickly():
+    """The link model's transmitter, static EVA channel (3GPP TS 36.101 Table B.2.1-3) and
+    receiver feed the estimator; a sudden 15 dB fade of 41 tones at t = 3 s must give a new map
+    within confirm_frames + 2 frames (one frame may straddle the fade), with no loaded tone below
+    the downshift margin afterwards and no further change on the then static channel."""
+    from brimline.drivers.ofdm import make_plan
+    from brimline.drivers.sim import SimDriver
+
+    plan = make_plan()
+    fade = dict(start_s=3.0, first_tone=20, last_tone=60, depth_db=15.0)
+    sim = SimDriver(plan=plan, profile="eva", doppler_hz=0.0, snr_db=28.0, realtime=False,
+                    seed=4, frame_rate_hz=FPS, events=[fade])
+    est = Estimator()
+    ld = loader()
+    cc = ChangeControl(ld)
+    log = []
+    for _ in range(int(4.5 * FPS)):
+        e = sim.step()
+        if e is None:
+            continue
+        est.update(e, e.time_s)
+        log.append((e.time_s, cc.decide(est.tracked(e.time_s), e.time_s)))
+    before = [d for t, d in log if 1.0 <= t < 3.0 and d.kind is not DecisionKind.KEEP]
+    assert before == [], [d.reason for d in before]
+    after = [(t, d) for t, d in log if t >= 3.0 and d.kind is not DecisionKind.KEEP]
+    assert after, "no new map after the fade"
+    t_first, first = after[0]
+    assert t_first <= 3.0 + (est.confirm_frames + 1) / FPS + 1e-9, first.reason
+    assert all(t < t_first + 0.5 for t, _ in after), [d.reason for _, d in after]
+    alloc = cc.current
+    tr = est.tracked(4.5)
+    margins = ld.tone_margin_db(alloc.bits, alloc.power, 10 ** (tr.effective_snr_db / 10))
+    assert margins.min() >= cc.downshift_margin_db
+    faded = (plan.data_tones >= 20) & (plan.data_tones <= 60)
+    assert alloc.bits[faded].mean() < 0.6 * log[0][1].allocation.bits[faded].mean()
