@@ -300,7 +300,7 @@ class EstimatorSection(Section):
     tau_s: float = Field(
         0.25, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
     std_tau_s: float = Field(
-        2.0, description="time constant of the per-tone variance tracker, s")
+        1.0, description="time constant of the per-tone variance tracker, s")
     std_init_db: float = Field(
         3.0, description="uncertainty (std, dB) given to a tone before its variance is learnt")
     backoff_sigmas: float = Field(
