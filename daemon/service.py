@@ -567,9 +567,136 @@ class Service:
 
 
 class _Io:
-    """The protocol objects of the main thread, behind the few calls the loop needs."""
+    """The protocol objects of the main thread, behind the few calls the loop needs.
 
-    heartbeat_period_s = 0.5
+    Owns the map publisher (maps, heartbeats, snapshots, acknowledgements), the status publisher,
+    the state store and the recorder. Everything here runs on the main thread.
+    """
 
     def __init__(self, config: Config, context: zmq.Context, plan) -> None:
-        raise NotImplementedError("protocol wiring lands with the protocol part")
+        from brimline.daemon.publisher import MapPublisher, StatusPublisher
+
+        self._config = config
+        self._context = context
+        self._plan = plan
+        self.maps = None
+        self.status = None
+        self.state = None
+        self.recorder = None
+        self._closed = False
+        try:
+            self.maps = MapPublisher(context=context, **config.publish.model_dump())
+            self.status = StatusPublisher(context=context, curve=self.maps.curve,
+                                          **config.status.model_dump())
+            self.state = _open_state(config)
+            self.recorder = _open_recorder(config, plan)
+        except BaseException:
+            self.close(None)
+            raise
+
+    # -- state
+    def restore(self) -> tuple[str, int, LoadMap | None]:
+        """Epoch, next sequence number and the saved map (None when there is none)."""
+        if self.state is None:
+            return _new_epoch(), 0, None
+        epoch, next_seq, saved = self.state.load()
+        if saved is not None and saved.plan_id != self._plan.plan_id:
+            log.warning("saved map is for tone plan %s, this config's is %s: not restored",
+                        saved.plan_id, self._plan.plan_id)
+            saved = None
+        return epoch, next_seq, saved
+
+    def save_state(self, m: LoadMap) -> None:
+        if self.state is not None:
+            self.state.save(m)
+
+    # -- maps
+    def publish_map(self, m: LoadMap, *, prime: bool = False) -> None:
+        if prime:
+            self.maps.prime(m)
+        else:
+            self.maps.publish(m)
+
+    def heartbeat_due(self, wall_s: float) -> float:
+        """Send a heartbeat if due; seconds until the next one."""
+        return self.maps.tick(wall_s)
+
+    def poll_sockets(self) -> list:
+        return [s for s in (self.maps.snapshot_socket, self.maps.ack_socket) if s is not None]
+
+    def handle(self, sock) -> list[dict]:
+        if sock is self.maps.snapshot_socket:
+            self.maps.handle_snapshot()
+            return []
+        return self.maps.poll_acks()
+
+    def endpoints(self) -> dict[str, str]:
+        return {"maps": self.maps.map_endpoint, "snapshots": self.maps.snapshot_endpoint,
+                "acks": self.maps.ack_endpoint, "status": self.status.endpoint}
+
+    def follower_factory(self) -> Callable[[], Any]:
+        """A function that makes a Follower of this daemon's maps (call it on its own thread)."""
+        from brimline.daemon.follower import Follower
+
+        ld = self._config.loading
+        kwargs = dict(plan=self._plan, map_endpoint=self.maps.map_endpoint,
+                      snapshot_endpoint=self.maps.snapshot_endpoint,
+                      ack_endpoint=self.maps.ack_endpoint, bits=list(ld.bits),
+                      budget_db=ld.budget_db, cap_db=ld.cap_db, context=self._context)
+        return lambda: Follower(**kwargs)
+
+    # -- status
+    def status_due(self, wall_s: float) -> bool:
+        return self.status.due(wall_s)
+
+    def publish_status(self, st: dict) -> None:
+        self.status.publish(st)
+
+    # -- recording
+    def record_estimate(self, est: Estimate) -> None:
+        if self.recorder is not None:
+            self.recorder.write(codec.TOPIC_ESTIMATE, est)
+
+    def record_map(self, m: LoadMap) -> None:
+        if self.recorder is not None:
+            self.recorder.write(codec.TOPIC_MAP, m)
+
+    def close(self, last_map: LoadMap | None) -> None:
+        """Save state, close the recording (flushed), then the sockets. Idempotent."""
+        if self._closed:
+            return
+        self._closed = True
+        if self.state is not None and last_map is not None:
+            try:
+                self.state.save(last_map)
+            except BrimlineError as exc:
+                log.error("state not saved: %s", exc)
+        if self.recorder is not None:
+            self.recorder.close()
+        for obj in (self.status, self.maps):
+            if obj is not None:
+                obj.close()
+
+
+def _new_epoch() -> str:
+    import secrets
+
+    return secrets.token_hex(4)
+
+
+def _open_state(config: Config):
+    path = config.service.state_path
+    if path is None:
+        return None
+    from brimline.daemon.state import StateStore
+
+    return StateStore(path)
+
+
+def _open_recorder(config: Config, plan):
+    section = config.record.model_dump()
+    if section.get("path") is None:
+        return None
+    from brimline.daemon.recording import RecordWriter
+
+    return RecordWriter(meta={"plan_id": plan.plan_id}, **section)

@@ -65,27 +65,29 @@ class ReplayDriver(Driver):
         self._clock = clock
         # Open once now so a file that is not a recording is a SourceError at start.
         try:
-            with _open_reader(self.path) as reader:
-                reader.__iter__
+            with _open_reader(self.path):
+                pass
         except RecordingError as exc:
             raise SourceError(f"replay: {exc}") from exc
 
     def _read_pass(self) -> Iterator[Estimate]:
-        from brimline.daemon import recording
-
+        """One pass over the file's estimates; damage is counted, never raised."""
+        reader = None
         try:
-            with _open_reader(self.path) as reader:
-                for item in reader:
-                    record = item[1] if isinstance(item, tuple) else getattr(item, "record", item)
-                    if isinstance(record, Estimate):
-                        yield record
-                for reason, count in _reader_problems(reader).items():
-                    self.counters[reason] += count
-        except RecordingError as exc:
-            # Damage in the middle of a file: keep what came before, count the rest as lost.
+            reader = _open_reader(self.path)
+            for _topic, record in reader:
+                if isinstance(record, Estimate):
+                    yield record
+                else:
+                    self.counters["not_estimates"] += 1
+        except RecordingError:
+            # Damage in the middle of a file: what came before was replayed; stop this pass.
             self.counters["damaged"] += 1
-            recording  # noqa: B018 - imported for its errors
-            del exc
+        finally:
+            if reader is not None:
+                if reader.torn:
+                    self.counters["torn"] += reader.torn
+                reader.close()
 
     def _frames(self) -> Iterator[Estimate]:
         t_offset, f_offset = 0.0, 0
@@ -130,14 +132,7 @@ def _shifted(est: Estimate, t_offset: float, f_offset: int) -> Estimate:
 
 
 def _open_reader(path: Path):
+    from brimline.daemon.codec import TOPIC_ESTIMATE
     from brimline.daemon.recording import RecordReader
 
-    return RecordReader(path)
-
-
-def _reader_problems(reader) -> dict[str, int]:
-    counters = getattr(reader, "counters", None)
-    if counters:
-        return {k: int(v) for k, v in dict(counters).items() if k in ("torn", "damaged") and v}
-    torn = getattr(reader, "torn", 0)
-    return {"torn": int(torn)} if torn else {}
+    return RecordReader(path, topics=[TOPIC_ESTIMATE])
