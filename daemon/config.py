@@ -205,7 +205,6 @@ class ServiceSection(Section):
 
     lead_frames: int = Field(
         4, description="a new map takes effect this many frames after the last frame seen")
-    status_period_s: float = Field(0.5, description="time between status messages, s")
     clock: Literal["auto", "source", "monotonic"] = Field(
         "auto", description="time fed to estimator and change control: source = the estimates' "
         "time_s, monotonic = the daemon's clock; auto = monotonic for radio, source otherwise")
@@ -222,7 +221,7 @@ class ServiceSection(Section):
             raise ValueError(f"lead_frames={v} must be in [0, 10000]")
         return v
 
-    @field_validator("status_period_s", "poll_s", "driver_join_s")
+    @field_validator("poll_s", "driver_join_s")
     @classmethod
     def _positive_s(cls, v: float, info) -> float:
         if not (math.isfinite(v) and v > 0):

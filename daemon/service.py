@@ -119,7 +119,10 @@ class FollowerMapProvider:
             return None
         if self._follower is None:
             self._follower = self._make()
-        self._follower.poll(0)
+        adopted = self._follower.poll(0)
+        if adopted is not None:
+            # The simulated transmitter applies a map at its effective frame: say so.
+            self._follower.ack(adopted.effective_frame, adopted.created_s, adopted.seq)
         return self._follower.current
 
     @property
@@ -206,8 +209,6 @@ class Service:
         self._provider: FollowerMapProvider | None = None
         self._started = False
         self._closed = False
-        self._next_status_wall = 0.0
-        self._next_heartbeat_wall = 0.0
 
     # ------------------------------------------------------------------ life cycle
 
@@ -241,7 +242,7 @@ class Service:
             if restored is not None:
                 self.current_map = restored
                 self.current_kind = "restored"
-                self._io.publish_map(restored)
+                self._io.publish_map(restored, prime=True)
                 log.info("restored map seq %d (epoch %s) from %s", restored.seq, self.epoch,
                          self.config.service.state_path)
             self._rx = self._context.socket(zmq.PAIR)
@@ -262,8 +263,6 @@ class Service:
             self.close()
             raise
         self._started_wall = self._clock()
-        self._next_status_wall = self._started_wall
-        self._next_heartbeat_wall = self._started_wall
         self._thread = threading.Thread(target=self._driver_main, name="brimline-driver",
                                         daemon=True)
         self._thread.start()
@@ -383,17 +382,17 @@ class Service:
         return bool(self._rx.poll(0, zmq.POLLIN))
 
     def step(self, timeout_s: float = 0.05) -> dict | None:
-        """Wait up to ``timeout_s`` for input, handle it, and run the due timers.
+        """Wait up to ``timeout_s`` for input, handle it, and run what is due.
 
         Returns
         -------
         dict or None
             The status message when one was published in this step.
         """
-        wall = self._clock()
-        due = min(self._next_status_wall, self._next_heartbeat_wall)
-        timeout = max(0.0, min(timeout_s, due - wall))
-        events = dict(self._poller.poll(int(math.ceil(timeout * 1000))))
+        # Heartbeats first: the call sends one if due and says when the next is due, which
+        # bounds the poll so heartbeats stay on time however quiet the sockets are.
+        timeout = min(timeout_s, self._io.heartbeat_due(self._clock()))
+        events = dict(self._poller.poll(int(math.ceil(max(0.0, timeout) * 1000))))
         if self._rx in events:
             for _ in range(256):  # bounded so timers stay on time under a flood
                 try:
@@ -405,7 +404,12 @@ class Service:
             if sock in events:
                 for ack in self._io.handle(sock):
                     self._note_ack(ack)
-        return self._timers()
+        # Staleness while the source is silent.
+        if self.driver_state in ("running", "failed"):
+            self._check_stale(self.core_now())
+        if self._io.status_due(self._clock()):
+            return self.publish_status()
+        return None
 
     def _handle_inproc(self, frames) -> None:
         if bytes(frames[0].buffer if hasattr(frames[0], "buffer") else frames[0]) == _CONTROL:
@@ -517,21 +521,12 @@ class Service:
         return m
 
     def _note_ack(self, ack: dict) -> None:
-        name = str(ack.get("follower", "follower"))
-        self.acks[name] = {"seq": int(ack.get("seq", -1)), "wall": self._clock()}
-
-    def _timers(self) -> dict | None:
-        wall = self._clock()
-        if wall >= self._next_heartbeat_wall:
-            self._io.heartbeat(self.current_map)
-            self._next_heartbeat_wall = wall + self._io.heartbeat_period_s
-        # Staleness while the source is silent.
-        if self.driver_state in ("running", "failed"):
-            self._check_stale(self.core_now())
-        if wall >= self._next_status_wall:
-            self._next_status_wall = wall + self.config.service.status_period_s
-            return self.publish_status()
-        return None
+        # Acknowledgements carry no follower name (PUSH/PULL); they are summed as one stream.
+        entry = self.acks.setdefault("followers", {"seq": -1, "count": 0, "wall": 0.0})
+        entry["seq"] = max(entry["seq"], int(ack.get("seq", -1)))
+        entry["frame"] = int(ack.get("frame", -1))
+        entry["count"] += 1
+        entry["wall"] = self._clock()
 
     def status(self) -> dict:
         """The status message for the current state (see :mod:`brimline.daemon.status`)."""
