@@ -591,15 +591,19 @@ class _Io:
 
     # -- state
     def restore(self) -> tuple[str, int, LoadMap | None]:
-        """Epoch, next sequence number and the saved map (None when there is none)."""
-        if self.state is None:
-            return _new_epoch(), 0, None
-        epoch, next_seq, saved = self.state.load()
-        if saved is not None and saved.plan_id != self._plan.plan_id:
+        """Epoch, next sequence number and the saved map (a fresh epoch when none is saved)."""
+        from brimline.daemon.state import new_epoch
+
+        saved = self.state.load() if self.state is not None else None
+        if saved is None:
+            return new_epoch(), 0, None
+        m = saved.load_map
+        if m.plan_id != self._plan.plan_id:
+            # Same epoch and sequence continue, but a map for another tone plan is not served.
             log.warning("saved map is for tone plan %s, this config's is %s: not restored",
-                        saved.plan_id, self._plan.plan_id)
-            saved = None
-        return epoch, next_seq, saved
+                        m.plan_id, self._plan.plan_id)
+            m = None
+        return saved.epoch, saved.next_seq, m
 
     def save_state(self, m: LoadMap) -> None:
         if self.state is not None:
@@ -671,12 +675,6 @@ class _Io:
         for obj in (self.status, self.maps):
             if obj is not None:
                 obj.close()
-
-
-def _new_epoch() -> str:
-    import secrets
-
-    return secrets.token_hex(4)
 
 
 def _open_state(config: Config):
