@@ -188,6 +188,7 @@ class Service:
         self.maps_published: collections.Counter[str] = collections.Counter()
         self.changes: collections.deque[Change] = collections.deque(maxlen=_HISTORY)
         self.frames = {"received": 0, "accepted": 0, "decode_errors": 0, "last_frame": -1}
+        self.rejected: collections.Counter[str] = collections.Counter()  # by estimator reason
         self.driver_state = "starting"
         self.driver_error: str | None = None
         self.fallback_active = False
@@ -458,6 +459,7 @@ class Service:
             published = self._enter_fallback(self._last_valid_s + stale_after)
         rejected = self.estimator.update(estimate, now_s)
         if rejected is not None:
+            self.rejected[rejected] += 1
             self._check_stale(now_s)
             return published
         self.frames["accepted"] += 1
@@ -516,8 +518,8 @@ class Service:
         self.current_map, self.current_kind = m, kind
         self.maps_published[kind] += 1
         self.changes.append(Change(now_s, kind, reason, m.seq))
-        log.info("map seq %d %s: %s (%d bits/symbol, margin %.1f dB)", m.seq, kind, reason,
-                 m.total_bits, m.margin_db)
+        log.info("map %d (%s, %d bits/symbol, margin %.1f dB): %s", m.seq, kind, m.total_bits,
+                 m.margin_db, reason)
         return m
 
     def _note_ack(self, ack: dict) -> None:
@@ -534,15 +536,14 @@ class Service:
         now = self.core_now()
         tracked = self._last_tracked
         age = None if self._last_valid_s is None else max(0.0, now - self._last_valid_s)
-        rejected = dict(getattr(self.estimator, "counters", {}))
-        for k in ("accepted", "frames", "updates"):
-            rejected.pop(k, None)
+        tracking = {k: v for k, v in self.estimator.counters.items()
+                    if k not in self.rejected and k != "accepted"}
         return build_status(
             time_s=now, epoch=self.epoch,
             driver={"name": getattr(self.driver, "name", "driver"), "state": self.driver_state,
                     "error": self.driver_error,
                     "counters": dict(getattr(self.driver, "counters", {}))},
-            frames={**self.frames, "rejected": rejected},
+            frames={**self.frames, "rejected": dict(self.rejected), "tracking": tracking},
             estimate_age_s=age,
             tone_index=None if tracked is None else tracked.tone_index,
             snr_db=None if tracked is None else tracked.snr_db,

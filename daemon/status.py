@@ -9,7 +9,8 @@ Layout of the message (version 1)::
 
     {"type": "status", "version": 1, "time_s": ..., "epoch": "...",
      "driver": {"name", "state", "error", "counters"},
-     "frames": {"received", "accepted", "rejected": {reason: n}, "decode_errors", "last_frame"},
+     "frames": {"received", "accepted", "rejected": {reason: n}, "decode_errors", "last_frame",
+                "tracking": {counter: n}},   # estimator's tone outliers, jumps, resets
      "estimate_age_s": float | None,
      "band": {"tone_first", "tone_last", "tones", "columns", "snr_db": [...], "bits": [...],
               "power_db": [...]},
@@ -140,7 +141,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
         and ``counters`` (mapping reason -> count) of the estimate source.
     frames : mapping
         ``received``, ``accepted``, ``rejected`` (mapping reason -> count), ``decode_errors``,
-        ``last_frame``.
+        ``last_frame`` and optionally ``tracking`` (estimator counters that are not frame
+        rejections: tone outliers held back, confirmed jumps, resets).
     estimate_age_s : float or None
         Age of the newest accepted estimate, s (None before the first).
     tone_index, snr_db : ndarray or None
@@ -216,7 +218,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                    "rejected": {str(k): int(v) for k, v in
                                 dict(frames.get("rejected", {})).items() if v},
                    "decode_errors": int(frames.get("decode_errors", 0)),
-                   "last_frame": int(frames.get("last_frame", -1))},
+                   "last_frame": int(frames.get("last_frame", -1)),
+                   "tracking": {str(k): int(v) for k, v in
+                                dict(frames.get("tracking", {})).items() if v}},
         "estimate_age_s": finite(estimate_age_s),
         "band": band,
         "rate": {"bits_per_symbol": bits_per_symbol, "rate_bps": finite(rate_bps, 1)},
