@@ -201,6 +201,7 @@ class Service:
         self._last_arrival_s: float | None = None  # source time and monotonic arrival of the
         self._last_arrival_wall: float | None = None  # newest estimate (staleness while silent)
         self._last_tracked = None
+        self._core_floor_s = -math.inf
         self._started_wall = 0.0
         self._thread: threading.Thread | None = None
         self._inproc_addr = f"inproc://brimline-estimates-{id(self):x}"
@@ -444,7 +445,12 @@ class Service:
             The map published for this estimate (the fallback map when the estimate revealed
             a stale gap and nothing newer replaced it), or None.
         """
-        now_s = estimate.time_s if self.clock_mode == "source" else self._clock()
+        if self.clock_mode == "source":
+            # Never earlier than a time already given to the core (a fallback sent while a
+            # non-paced source was silent used extrapolated time).
+            now_s = max(estimate.time_s, self._core_floor_s)
+        else:
+            now_s = self._clock()
         self.frames["received"] += 1
         self.frames["last_frame"] = max(self.frames["last_frame"], estimate.frame)
         self._last_arrival_s = now_s
@@ -493,6 +499,7 @@ class Service:
                            total_bits=n * fb.bits, total_power=n * p_lin, margin_db=math.nan)
         reason = (f"no valid estimate for {fb.stale_after_s:g} s: safe map "
                   f"({fb.bits} bits, {fb.power_db:+g} dB on every tone)")
+        self._core_floor_s = max(self._core_floor_s, now_s)
         self.change.force(alloc, DecisionKind.FALLBACK, reason, now_s)
         self.estimator.reset("stale")
         self.fallback_active = True

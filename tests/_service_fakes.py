@@ -40,6 +40,12 @@ class ScriptedDriver(Driver):
         Raise ``RuntimeError`` instead of yielding this frame (a driver bug).
     bad_every : int or None
         Every ``bad_every``-th frame has NaN SNR on all tones (dropped by the estimator).
+    gate : threading.Event or None
+        Wait for it before the first frame (lets a test connect followers first).
+    hold_at : int or None
+        Before frame ``hold_at``, wait for ``release`` (a source that goes silent).
+    release : threading.Event or None
+        See ``hold_at``.
     """
 
     name = "scripted"
@@ -47,7 +53,8 @@ class ScriptedDriver(Driver):
     def __init__(self, plan, *, frames: int = 200, frame_s: float = 0.01, snr_db: float = 25.0,
                  fades: Sequence[tuple] = (), gaps: Sequence[tuple] = (), seed: int = 7,
                  fail_at: int | None = None, bad_every: int | None = None,
-                 t0_s: float = 0.0, frame0: int = 0) -> None:
+                 t0_s: float = 0.0, frame0: int = 0, gate=None, hold_at: int | None = None,
+                 release=None) -> None:
         super().__init__()
         self.plan = plan
         self.n_frames = frames
@@ -60,6 +67,9 @@ class ScriptedDriver(Driver):
         self.bad_every = bad_every
         self.t0_s = t0_s
         self.frame0 = frame0
+        self.gate = gate
+        self.hold_at = hold_at
+        self.release = release
 
     def snr_at(self, t_s: float) -> np.ndarray:
         n = self.plan.data_tones.size
@@ -73,9 +83,17 @@ class ScriptedDriver(Driver):
         rng = np.random.default_rng(self.seed)
         tones = self.plan.data_tones
         noise_var = np.full(tones.size, 1e-2)
+        if self.gate is not None:
+            while not self.gate.wait(0.05):
+                if self.closed:
+                    return
         for k in range(self.n_frames):
             if self.closed:
                 return
+            if self.hold_at is not None and k == self.hold_at:
+                while not self.release.wait(0.05):
+                    if self.closed:
+                        return
             t = self.t0_s + k * self.frame_s
             jitter = rng.normal(0.0, 0.3, tones.size)
             if any(a <= t < b for a, b in self.gaps):
