@@ -100,14 +100,16 @@ class TestRestart:
         saved = StateStore(cfg.service.state_path).load()
         assert saved.epoch == epoch and saved.seq == last_seq
 
+        gate = threading.Event()
         drv = ScriptedDriver(plan, frames=150, fades=[(0.5, 60, 90, 12.0)], t0_s=10.0,
-                             frame0=1000)
+                             frame0=1000, gate=gate)
         with Service(cfg, driver=drv) as second:
             assert second.epoch == epoch
             assert second.current_map is not None and second.current_map.seq == last_seq
             with _follower(second) as f:  # the restored map is served to late joiners
                 assert _pump(second, [f], until=lambda: f.current is not None, timeout_s=1.0)
                 assert f.current.seq == last_seq
+            gate.set()
             assert _pump(second, until=lambda: _drained(second))
             new = [c.seq for c in second.changes]
         assert new and new[0] > last_seq and new == sorted(set(new))
