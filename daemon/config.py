@@ -29,6 +29,9 @@ __all__ = [
     "ReplaySection",
     "FallbackSection",
     "ServiceSection",
+    "PublishSection",
+    "StatusSection",
+    "RecordSection",
     "Config",
     "KeyProblem",
     "load_config",
@@ -66,8 +69,8 @@ class LoadingSection(Section):
     @field_validator("bits")
     @classmethod
     def _bits_ok(cls, v: list[int]) -> list[int]:
-        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 15:
-            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 15")
+        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 16:
+            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 16")
         return v
 
     @field_validator("target_ser")
@@ -77,25 +80,187 @@ class LoadingSection(Section):
             raise ValueError(f"target_ser={v} must be in (0, 0.5)")
         return v
 
+    @field_validator("gap_db", "coding_gain_db", "margin_db", "budget_db")
+    @classmethod
+    def _finite_db(cls, v: Optional[float], info) -> Optional[float]:
+        if v is not None and not math.isfinite(v):
+            raise ValueError(f"{info.field_name}={v} must be finite")
+        return v
+
+    @field_validator("cap_db")
+    @classmethod
+    def _cap_ok(cls, v: float) -> float:
+        if math.isnan(v) or v == -math.inf:
+            raise ValueError(f"cap_db={v} must be finite or +inf (.inf)")
+        return v
+
+    @field_validator("target_bits")
+    @classmethod
+    def _target_ok(cls, v: Optional[int]) -> Optional[int]:
+        if v is not None and v < 0:
+            raise ValueError(f"target_bits={v} must be >= 0")
+        return v
+
+    @model_validator(mode="after")
+    def _margin_needs_target(self) -> "LoadingSection":
+        if self.mode == "margin" and self.target_bits is None:
+            raise ValueError("mode: margin needs target_bits")
+        return self
+
+    def effective_gap_db(self) -> float:
+        """The gap the loader uses, dB: ``gap_db`` (or the uncoded-QAM gap of ``target_ser``),
+        minus ``coding_gain_db``, plus ``margin_db``."""
+        from brimline.daemon.loading import qam_gap_db
+
+        if self.gap_db is not None:
+            return self.gap_db - self.coding_gain_db + self.margin_db
+        return qam_gap_db(self.target_ser, coding_gain_db=self.coding_gain_db,
+                          margin_db=self.margin_db)
+
+    def loader(self):
+        """Build the :class:`brimline.daemon.loading.Loader` this section describes."""
+        from brimline.daemon.loading import Loader
+
+        return Loader(mode=self.mode, bits=self.bits, gap_db=self.effective_gap_db(),
+                      budget_db=self.budget_db, cap_db=self.cap_db,
+                      target_bits=self.target_bits)
+
 
 # --------------------------------------------------------------------------- link and drivers
 # Each driver subsection's fields are exactly that driver's constructor keyword arguments.
 
 
 class LinkSection(Section):
-    """``link:`` tone plan and frame format (see brimline.drivers.ofdm)."""
+    """``link:`` tone plan and frame format; the keys are ``brimline.drivers.ofdm.make_plan``'s.
+
+    Checks that involve several keys (pilots inside the used band, cyclic prefix shorter than the
+    FFT, ...) are made in key order by ``brimline.drivers.ofdm.check_link``.
+    """
+
+    fft_size: int = Field(256, description="FFT length in samples (power of two, >= 128)")
+    cp_len: int = Field(32, description="cyclic prefix in samples")
+    sample_rate_hz: float = Field(3.84e6, description="complex sample rate, Hz")
+    used_tones_half: int = Field(
+        100, description="used tones on each side of DC (bins -U..-1 and 1..U)")
+    pilot_spacing: int = Field(
+        8, description="every n-th used tone from the band edge inwards is a pilot")
+    train_symbols: int = Field(2, description="identical full-band training symbols per frame")
+    data_symbols: int = Field(12, description="data symbols per frame")
+    max_bits: int = Field(10, description="largest constellation, bits per tone")
+    cfo_range_tones: int = Field(8, description="largest frequency offset searched, tone spacings")
+    center_hz: Optional[float] = Field(None, description="radio centre frequency, Hz")
+
+    # Defaults are checked too: fft_size 128 with the default used_tones_half must fail here.
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True, validate_default=True)
+
+    @field_validator("*")
+    @classmethod
+    def _consistent(cls, v, info):
+        from brimline.drivers.ofdm import check_link  # the one place these rules live
+
+        try:
+            check_link(info.field_name, v, info.data)
+        except ValueError as exc:  # the message starts with "key=value"; the caller adds it
+            raise ValueError(str(exc).split(" ", 1)[1]) from None
+        return v
+
+
+class FadeEventSection(Section):
+    """One entry of ``driver.sim.events``: a sudden fade of a band of tones."""
+
+    start_s: float = Field(description="simulated time the fade starts, s")
+    stop_s: Optional[float] = Field(None, description="time it ends, s (absent: never)")
+    first_tone: int = Field(description="first faded tone, signed FFT bin")
+    last_tone: int = Field(description="last faded tone, signed FFT bin (inclusive)")
+    depth_db: float = Field(20.0, description="attenuation, dB")
+
+    @field_validator("last_tone")
+    @classmethod
+    def _band(cls, v, info):
+        first = info.data.get("first_tone")
+        if first is not None and v < first:
+            raise ValueError(f"last_tone={v} must be >= first_tone={first}")
+        return v
 
 
 class SimSection(Section):
-    """``driver.sim:`` the simulated link (brimline.drivers.sim)."""
+    """``driver.sim:`` the simulated link; keys are ``brimline.drivers.sim.SimDriver``'s."""
+
+    profile: Literal["awgn", "flat", "epa", "eva", "etu", "ped_a", "ped_b", "veh_a",
+                     "indoor_a"] = Field("epa", description="multipath profile")
+    doppler_hz: float = Field(5.0, description="maximum Doppler shift, Hz")
+    snr_db: float = Field(25.0, description="per-tone SNR on a unit channel, dB")
+    cfo_hz: float = Field(1500.0, description="carrier frequency offset, Hz")
+    lead_max_samples: int = Field(
+        64, description="random noise-only samples before each frame (timing offset), max")
+    interferer_tone: Optional[float] = Field(
+        None, description="narrowband interferer position, signed tone (may be fractional)")
+    interferer_db: float = Field(0.0, description="interferer power relative to a nominal tone, dB")
+    drift_db: float = Field(0.0, description="slow gain drift, peak deviation, dB")
+    drift_period_s: float = Field(60.0, description="period of the gain drift, s")
+    events: list[FadeEventSection] = Field(
+        default_factory=list, description="sudden band fades (adaptation tests)")
+    frame_rate_hz: float = Field(50.0, description="frames per second")
+    realtime: bool = Field(True, description="pace frames in real time (else as fast as possible)")
+    start_s: float = Field(0.0, description="time_s of frame 0, s")
+    seed: int = Field(1, description="seed of the simulation's random generator")
+    default_bits: int = Field(2, description="bits per tone while no map has been received")
+    max_frames: Optional[int] = Field(None, description="stop after this many frames")
+    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+
+    @field_validator("frame_rate_hz", "drift_period_s")
+    @classmethod
+    def _positive(cls, v, info):
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"{info.field_name}={v} must be positive")
+        return v
+
+    @field_validator("doppler_hz", "lead_max_samples")
+    @classmethod
+    def _not_negative(cls, v, info):
+        if not v >= 0:
+            raise ValueError(f"{info.field_name}={v} must be >= 0")
+        return v
+
+    @field_validator("sync_threshold")
+    @classmethod
+    def _threshold(cls, v):
+        if not 0.0 < v < 1.0:
+            raise ValueError(f"sync_threshold={v} must be in (0, 1)")
+        return v
 
 
 class IqSection(Section):
-    """``driver.iq:`` recorded IQ through the receiver DSP (brimline.drivers.iq)."""
+    """``driver.iq:`` a SigMF IQ recording through the receiver (brimline.drivers.iq)."""
+
+    path: str = Field(description="the recording: NAME, NAME.sigmf-meta or NAME.sigmf-data")
+    default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
+    start_s: float = Field(0.0, description="time_s of the recording's first sample, s")
+    realtime: bool = Field(False, description="pace frames at the recording's own rate")
+    max_frames: Optional[int] = Field(None, description="stop after this many frames")
+    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
 
 
 class RadioSection(Section):
-    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.iio)."""
+    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.iio); tuning is ``link.center_hz``."""
+
+    uri: str = Field("ip:192.168.2.1", description="libiio context URI of the radio")
+    device: str = Field("Pluto", description="pyadi-iio class name of the device")
+    rx_gain_db: float = Field(30.0, description="manual receive gain, dB")
+    tx_attenuation_db: float = Field(
+        30.0, description="transmit attenuation, dB (>= 0; more is less power)")
+    transmit: bool = Field(
+        False, description="also send frames of the default map from this radio (loopback)")
+    buffer_frames: int = Field(4, description="frames per receive buffer")
+    default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
+    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+
+    @field_validator("tx_attenuation_db")
+    @classmethod
+    def _attenuation(cls, v):
+        if not 0.0 <= v <= 89.75:
+            raise ValueError(f"tx_attenuation_db={v} must be in [0, 89.75]")
+        return v
 
 
 class ReplaySection(Section):
@@ -157,16 +322,126 @@ class ChangeSection(Section):
 # --------------------------------------------------------------------------- publish, status, record
 
 
+_ENDPOINT_SCHEMES = ("tcp://", "ipc://", "inproc://")
+
+
+def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
+    if v is not None and (not v.startswith(_ENDPOINT_SCHEMES) or len(v) <= len("tcp://")):
+        raise ValueError(f"{key}={v!r} must be a ZeroMQ endpoint such as tcp://127.0.0.1:7341")
+    return v
+
+
+def _positive(key: str, v: float) -> float:
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{key}={v} must be finite and > 0")
+    return v
+
+
 class PublishSection(Section):
-    """``publish:`` map, snapshot, heartbeat and acknowledgement sockets."""
+    """``publish:`` map, snapshot, heartbeat and acknowledgement sockets.
+
+    Fields are the keyword arguments of ``brimline.daemon.publisher.MapPublisher`` (which also
+    takes ``context`` and ``epoch`` from the service). Endpoints are where the daemon binds;
+    keep them on 127.0.0.1 unless CURVE is on.
+    """
+
+    map_endpoint: str = Field("tcp://127.0.0.1:7341",
+                              description="PUB for maps and heartbeats (bind)")
+    snapshot_endpoint: str = Field("tcp://127.0.0.1:7342",
+                                   description="ROUTER answering current-map requests (bind)")
+    ack_endpoint: Optional[str] = Field("tcp://127.0.0.1:7344",
+                                        description="PULL for transmitter acks; null for none")
+    heartbeat_s: float = Field(0.5, description="heartbeat interval, seconds")
+    map_hwm: int = Field(1000, description="map PUB send high-water mark, messages")
+    linger_s: float = Field(1.0, description="time unsent maps are kept at shutdown, seconds")
+    curve_secret_key: Optional[str] = Field(
+        None, description="daemon's .key_secret file (brimline keys); turns CURVE on")
+    curve_clients_dir: Optional[str] = Field(
+        None, description="folder of authorised clients' .key files; null admits any client "
+                          "that knows the daemon's public key")
+
+    @field_validator("map_endpoint", "snapshot_endpoint", "ack_endpoint")
+    @classmethod
+    def _endpoints(cls, v, info):
+        return _endpoint_ok(info.field_name, v)
+
+    @field_validator("heartbeat_s")
+    @classmethod
+    def _heartbeat(cls, v):
+        return _positive("heartbeat_s", v)
+
+    @field_validator("linger_s")
+    @classmethod
+    def _linger(cls, v):
+        if not (math.isfinite(v) and v >= 0):
+            raise ValueError(f"linger_s={v} must be finite and >= 0")
+        return v
+
+    @field_validator("map_hwm")
+    @classmethod
+    def _hwm(cls, v):
+        if v < 1:
+            raise ValueError(f"map_hwm={v} must be >= 1")
+        return v
+
+    @model_validator(mode="after")
+    def _curve_pair(self):
+        if self.curve_clients_dir is not None and self.curve_secret_key is None:
+            raise ValueError("curve_clients_dir needs curve_secret_key")
+        return self
 
 
 class StatusSection(Section):
-    """``status:`` the operators' status stream."""
+    """``status:`` the operators' status stream.
+
+    Fields are the keyword arguments of ``brimline.daemon.publisher.StatusPublisher`` (which
+    also takes ``curve`` and ``context`` from the service).
+    """
+
+    endpoint: str = Field("tcp://127.0.0.1:7343", description="status PUB (bind)")
+    rate_hz: float = Field(4.0, description="periodic status messages per second")
+    hwm: int = Field(10, description="send high-water mark per subscriber, messages; small so "
+                                     "a stalled watcher costs nothing")
+
+    @field_validator("endpoint")
+    @classmethod
+    def _endpoint(cls, v):
+        return _endpoint_ok("endpoint", v)
+
+    @field_validator("rate_hz")
+    @classmethod
+    def _rate(cls, v):
+        return _positive("rate_hz", v)
+
+    @field_validator("hwm")
+    @classmethod
+    def _hwm(cls, v):
+        if v < 1:
+            raise ValueError(f"hwm={v} must be >= 1")
+        return v
 
 
 class RecordSection(Section):
-    """``record:`` what the daemon records, and where."""
+    """``record:`` what the daemon records, and where.
+
+    Fields are the keyword arguments of ``brimline.daemon.recording.RecordWriter`` (which also
+    takes ``meta``); ``path: null`` records nothing.
+    """
+
+    path: Optional[str] = Field(None, description="recording file to create; null for none")
+    topics: Optional[list[str]] = Field(
+        default_factory=lambda: ["estimate", "map", "decision", "status"],
+        description="topics to record; null for all")
+    max_bytes: Optional[int] = Field(
+        None, description="start a new file NAME.0001.EXT, ... beyond this size, bytes")
+    fsync: bool = Field(False, description="fsync every record (survives power loss, slower)")
+
+    @field_validator("max_bytes")
+    @classmethod
+    def _max_bytes(cls, v):
+        if v is not None and v < 1024:
+            raise ValueError(f"max_bytes={v} must be >= 1024")
+        return v
 
 
 # --------------------------------------------------------------------------- whole file
