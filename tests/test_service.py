@@ -264,3 +264,30 @@ def _plan(cfg):
     from brimline.drivers.ofdm import make_plan
 
     return make_plan(**cfg.link.model_dump())
+
+
+class TestClosedLoop:
+    def test_sim_daemon_follower_adapts_to_a_fade(self):
+        """sim -> daemon -> follower and back: the simulated transmitter follows the maps
+        through a real Follower on loopback, acknowledges them, and after a 20 dB fade of a band
+        the maps carry fewer bits there (loading with an SNR gap: b = log2(1 + SNR/gap), so a
+        20 dB loss costs about 20 / 3.01 = 6.6 bits on a tone that had them)."""
+        sim = {"profile": "awgn", "doppler_hz": 0.0, "snr_db": 27.0, "realtime": False,
+               "max_frames": 160, "frame_rate_hz": 50.0, "seed": 5,
+               "events": [{"start_s": 1.2, "first_tone": -90, "last_tone": -30,
+                           "depth_db": 20.0}]}
+        cfg = loopback_config(driver={"kind": "sim", "sim": sim},
+                              estimator={"tau_s": 0.5, "tone_window": 2},
+                              change={"up_dwell_s": 0.5, "downshift_margin_db": -3.0})
+        with Service(cfg) as svc:
+            assert _pump(svc, until=lambda: _drained(svc), timeout_s=20.0)
+            tones = svc.plan.data_tones
+            band = (tones >= -90) & (tones <= -30)
+            before = [c for c in svc.changes if c.time_s < 1.2]
+            assert before, "no map before the fade"
+            final = svc.current_map
+            assert final.created_s > 1.2
+            assert svc.acks and svc.acks["followers"]["count"] >= 1  # the transmitter followed
+            assert final.bits[band].mean() < final.bits[~band].mean() - 3
+            assert any(c.kind in ("emergency", "reload", "bit_swap") and c.time_s >= 1.2
+                       for c in svc.changes)
