@@ -32,6 +32,8 @@ __all__ = [
     "PublishSection",
     "StatusSection",
     "RecordSection",
+    "EstimatorSection",
+    "ChangeSection",
     "Config",
     "KeyProblem",
     "load_config",
@@ -311,12 +313,165 @@ class DriverSection(Section):
 # --------------------------------------------------------------------------- estimator, change
 
 
+def _positive(name: str, v: float) -> float:
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{name}={v} must be a positive finite number")
+    return v
+
+
+def _non_negative(name: str, v: float) -> float:
+    if not (math.isfinite(v) and v >= 0):
+        raise ValueError(f"{name}={v} must be a finite number >= 0")
+    return v
+
+
 class EstimatorSection(Section):
-    """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator)."""
+    """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator.Estimator).
+
+    Defaults suit a slowly fading indoor link (people moving, Doppler of a hertz or two, so a
+    coherence time of a few hundred milliseconds) estimated at tens to hundreds of frames per
+    second with about 1 dB of per-frame estimation noise.
+    """
+
+    tau_s: float = Field(
+        0.25, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
+    std_tau_s: float = Field(
+        2.0, description="time constant of the per-tone variance tracker, s")
+    std_init_db: float = Field(
+        3.0, description="uncertainty (std, dB) given to a tone before its variance is learnt")
+    backoff_sigmas: float = Field(
+        1.0, description="effective SNR = smoothed SNR minus this many std, so noisy tones "
+                         "carry fewer bits")
+    outlier_db: float = Field(
+        6.0, description="smallest gate, dB: a tone further than this (and than "
+                         "outlier_sigmas std) from its tracked value is held as an outlier")
+    outlier_sigmas: float = Field(
+        4.0, description="gate width in per-tone std; the wider of this and outlier_db applies")
+    confirm_frames: int = Field(
+        3, description="consecutive agreeing outlier frames after which a tone's change is "
+                       "accepted as real and the tone jumps to it")
+    frame_outlier_fraction: float = Field(
+        0.5, description="a frame with more than this fraction of tones outside their gate is "
+                         "a whole-frame outlier (counted; no tone is smoothed with it)")
+    stale_s: float = Field(
+        5.0, description="after a gap longer than this between accepted frames, tracking "
+                         "starts afresh from the next frame, s")
+    tone_window: int = Field(
+        1, description="half-width in tones of the smoothing across neighbours (0: off)")
+    tone_agree_db: float = Field(
+        1.0, description="neighbours are averaged in only where their smoothed SNR is within "
+                         "this of the tone's, dB; deeper notches and interferers stay intact")
+
+    @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s")
+    @classmethod
+    def _positive_ok(cls, v: float, info) -> float:
+        return _positive(info.field_name, v)
+
+    @field_validator("backoff_sigmas", "outlier_sigmas", "tone_agree_db")
+    @classmethod
+    def _non_negative_ok(cls, v: float, info) -> float:
+        return _non_negative(info.field_name, v)
+
+    @field_validator("confirm_frames")
+    @classmethod
+    def _confirm_ok(cls, v: int) -> int:
+        if not 1 <= v <= 100:
+            raise ValueError(f"confirm_frames={v} must be in [1, 100]")
+        return v
+
+    @field_validator("frame_outlier_fraction")
+    @classmethod
+    def _fraction_ok(cls, v: float) -> float:
+        if not 0.0 < v <= 1.0:
+            raise ValueError(f"frame_outlier_fraction={v} must be in (0, 1]")
+        return v
+
+    @field_validator("tone_window")
+    @classmethod
+    def _window_ok(cls, v: int) -> int:
+        if not 0 <= v <= 16:
+            raise ValueError(f"tone_window={v} must be in [0, 16]")
+        return v
 
 
 class ChangeSection(Section):
-    """``change:`` change control: margins, dwell times, bit swaps, emergency."""
+    """``change:`` change control (brimline.daemon.change.ChangeControl).
+
+    Margins are per-tone margins of the current map under the tracked effective SNR, in dB
+    relative to the loading gap (which already includes ``loading.margin_db``): 0 dB means a
+    tone sits exactly at the loading target. Upgrades are slower and need more evidence than
+    downgrades, after the separate upshift/downshift margins and minimum times of DSL online
+    reconfiguration.
+    """
+
+    downshift_margin_db: float = Field(
+        -1.5, description="a loaded tone whose margin falls below this forces a new map, dB")
+    upshift_margin_db: float = Field(
+        1.5, description="an upgrade is made only when a map loaded with this much extra "
+                         "margin on every tone still gains min_gain_bits, dB")
+    min_gain_bits: int = Field(
+        4, description="smallest gain in bits per symbol worth an upgrade")
+    down_dwell_s: float = Field(
+        0.1, description="minimum time since the last map before a downgrade, s")
+    up_dwell_s: float = Field(
+        5.0, description="minimum time since the last map before an upgrade, s")
+    upgrade_check_s: float = Field(
+        0.25, description="after the upgrade dwell, how often an upgrade is evaluated, s")
+    max_maps_per_s: float = Field(
+        10.0, description="no two maps closer than 1/this, emergencies included, 1/s")
+    swap_max_tones: int = Field(
+        16, description="a bit swap changes at most this many tones; larger changes reload")
+    swap_max_loss_bits: int = Field(
+        4, description="a bit swap may lose at most this many bits per symbol, else reload")
+    emergency_fraction: float = Field(
+        0.25, description="this fraction of loaded tones below the downshift margin at once "
+                          "triggers an emergency downshift")
+    emergency_drop_db: float = Field(
+        6.0, description="a drop of the mean tracked SNR by this much since the current map "
+                         "triggers an emergency downshift, dB")
+    emergency_margin_db: float = Field(
+        3.0, description="extra margin of the emergency map, dB (recovered by upgrades)")
+
+    @field_validator("down_dwell_s", "up_dwell_s", "upgrade_check_s", "emergency_margin_db")
+    @classmethod
+    def _non_negative_ok(cls, v: float, info) -> float:
+        return _non_negative(info.field_name, v)
+
+    @field_validator("max_maps_per_s", "emergency_drop_db")
+    @classmethod
+    def _positive_ok(cls, v: float, info) -> float:
+        return _positive(info.field_name, v)
+
+    @field_validator("downshift_margin_db", "upshift_margin_db")
+    @classmethod
+    def _finite_ok(cls, v: float, info) -> float:
+        if not math.isfinite(v):
+            raise ValueError(f"{info.field_name}={v} must be finite")
+        return v
+
+    @field_validator("min_gain_bits", "swap_max_tones", "swap_max_loss_bits")
+    @classmethod
+    def _count_ok(cls, v: int, info) -> int:
+        if v < 0:
+            raise ValueError(f"{info.field_name}={v} must be >= 0")
+        return v
+
+    @field_validator("emergency_fraction")
+    @classmethod
+    def _fraction_ok(cls, v: float) -> float:
+        if not 0.0 < v <= 1.0:
+            raise ValueError(f"emergency_fraction={v} must be in (0, 1]")
+        return v
+
+    @model_validator(mode="after")
+    def _margins_ordered(self) -> "ChangeSection":
+        if self.downshift_margin_db >= self.upshift_margin_db:
+            raise ValueError(f"downshift_margin_db={self.downshift_margin_db} must be below "
+                             f"upshift_margin_db={self.upshift_margin_db}")
+        if self.up_dwell_s < self.down_dwell_s:
+            raise ValueError(f"up_dwell_s={self.up_dwell_s} must be >= "
+                             f"down_dwell_s={self.down_dwell_s}")
+        return self
 
 
 # --------------------------------------------------------------------------- publish, status, record
