@@ -13,12 +13,13 @@ import sys
 import time
 from typing import Any, Callable, Mapping, TextIO
 
+import numpy as np
 from rich.console import Console, Group
 from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
-from brimline.daemon.status import ALARMS, summary_line
+from brimline.daemon.status import ALARMS, band_columns, summary_line
 
 __all__ = ["render", "band_chart", "watch", "DEFAULT_STATUS_ENDPOINT"]
 
@@ -32,7 +33,8 @@ _BIT_STYLES = ["grey39", "red", "dark_orange", "yellow", "gold1", "chartreuse3",
                "magenta", "magenta", "magenta", "magenta"]
 
 
-def band_chart(snr_db: list, bits: list, *, height: int = 6) -> Text:
+def band_chart(snr_db: list, bits: list, *, height: int = 6,
+               max_columns: int | None = None) -> Text:
     """Columns of block characters for per-group SNR, with a row of bits underneath.
 
     Parameters
@@ -43,11 +45,16 @@ def band_chart(snr_db: list, bits: list, *, height: int = 6) -> Text:
         Mean bits of each tone group.
     height : int
         Rows of the SNR columns.
+    max_columns : int, optional
+        Regroup to at most this many columns (lowest SNR, mean bits) to fit a narrow screen.
 
     Returns
     -------
     rich.text.Text
     """
+    if max_columns is not None:
+        snr_db = _regroup(snr_db, max_columns, "min")
+        bits = _regroup(bits, max_columns, "mean")
     text = Text()
     vals = [v for v in snr_db if v is not None and math.isfinite(v)]
     if vals:
@@ -80,6 +87,14 @@ def band_chart(snr_db: list, bits: list, *, height: int = 6) -> Text:
     return text
 
 
+def _regroup(values: list, columns: int, how: str) -> list:
+    if len(values) <= columns:
+        return values
+    arr = np.array([np.nan if v is None else v for v in values], dtype=np.float64)
+    return [None if not math.isfinite(v) else float(v)
+            for v in band_columns(arr, max(1, columns), how)]
+
+
 def _snr_style(snr_db: float) -> str:
     if snr_db < 6:
         return "red"
@@ -95,7 +110,7 @@ def _fmt(v: Any, spec: str, unit: str = "") -> str:
 
 
 def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_ENDPOINT,
-           silent_s: float | None = None, bad_messages: int = 0):
+           silent_s: float | None = None, bad_messages: int = 0, width: int | None = None):
     """Render one status message for a terminal.
 
     Parameters
@@ -109,6 +124,8 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
         the daemon has gone quiet.
     bad_messages : int
         Messages that failed to decode.
+    width : int, optional
+        Screen width in characters; the band chart is regrouped to fit it.
 
     Returns
     -------
@@ -158,13 +175,15 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
     figures.add_row("margin", _fmt(status.get("margin_db"), "+.1f", " dB"),
                     "map", f"seq {m.get('seq', '-')}  {m.get('kind') or ''}".rstrip())
     acks = status.get("acks", {})
-    ack_txt = ", ".join(f"{k}: seq {v.get('seq')} ({_fmt(v.get('age_s'), '.1f', ' s')} ago)"
-                        for k, v in acks.items()) or "none"
+    ack_txt = ", ".join(("" if k == "followers" else f"{k}: ")
+                        + f"acked seq {v.get('seq')} ({_fmt(v.get('age_s'), '.1f', ' s')} ago)"
+                        for k, v in acks.items()) or "no acknowledgements"
     figures.add_row("followers", ack_txt, "tones",
                     f"{band.get('tones', 0)} ({band.get('tone_first', '-')}.."
                     f"{band.get('tone_last', '-')})")
 
-    chart = band_chart(list(band.get("snr_db", [])), list(band.get("bits", [])))
+    chart = band_chart(list(band.get("snr_db", [])), list(band.get("bits", [])),
+                       max_columns=None if width is None else max(8, width - 14))
 
     history = Table(box=None, show_header=True, header_style="dim", pad_edge=False)
     history.add_column("t s", justify="right")
@@ -267,14 +286,16 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
                         status, last = record, clock()
                         if not tty or once:
                             if once:
-                                console.print(render(status, endpoint=endpoint))
+                                console.print(render(status, endpoint=endpoint,
+                                                     width=console.width))
                             else:
                                 print(summary_line(status), file=out, flush=True)
                 if once and status is not None:
                     return 0
             silent = clock() - last
             if live is not None:
-                live.update(render(status, endpoint=endpoint, silent_s=silent, bad_messages=bad))
+                live.update(render(status, endpoint=endpoint, silent_s=silent, bad_messages=bad,
+                                   width=console.width))
             elif status is None and not announced_missing and clock() - start > 2.0 and not once:
                 print(f"no status yet from {endpoint} (is the daemon running?)", file=out,
                       flush=True)
@@ -284,7 +305,7 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
                   "(is the daemon running?)", file=out, flush=True)
             return 1
         return 0
-    except KeyboardInterrupt:
+    except (KeyboardInterrupt, BrokenPipeError):  # Ctrl-C, or a pager/head that closed
         return 0
     finally:
         if live is not None:

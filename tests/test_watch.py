@@ -48,7 +48,7 @@ def test_render_shows_figures_history_and_alarms():
     text = _text(render(_status()))
     for needed in ("400 in, 396 used", "non_finite 4", "+2.4 dB", "seq 12", "emergency",
                    "20 tones below downshift margin", "EMERGENCY", "bits/symbol", "Mbit/s",
-                   "followers: seq 12"):
+                   "acked seq 12"):
         assert needed in text, needed
 
 
@@ -105,3 +105,9 @@ def test_plain_lines_from_a_running_daemon():
         t.join(5)
     lines = [ln for ln in out.getvalue().splitlines() if ln.startswith("t=")]
     assert lines and "frames=" in lines[-1] and "seq=" in lines[-1]
+
+
+def test_chart_fits_a_narrow_terminal():
+    text = _text(render(_status(), width=60), width=60)
+    bits_rows = [ln for ln in text.splitlines() if "bits " in ln and "·" in ln]
+    assert bits_rows and all(len(ln) <= 60 for ln in text.splitlines())
