@@ -13,7 +13,7 @@ import time
 
 from brimline.daemon.cli import RF_CAUTION
 from brimline.daemon.config import Config, load_config
-from brimline.daemon.errors import InputError, SourceError
+from brimline.daemon.errors import InputError
 from brimline.daemon.status import summary_line
 
 __all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "end_summary"]
@@ -63,30 +63,19 @@ def _setup_logging(as_json: bool, quiet: bool) -> logging.Handler:
 
 
 def check_summary(path: str, config: Config) -> str:
-    """Build everything a run needs except sockets and the source; return the OK line.
+    """Build everything a run needs except sockets (and a radio); return the OK line.
 
     Raises
     ------
     BrimlineError
         Whatever the config's parts reject (one line each).
     """
-    from brimline.daemon.change import ChangeControl
-    from brimline.daemon.estimator import Estimator
-    from brimline.drivers.ofdm import make_plan
+    from brimline.daemon.service import build_core, make_driver
 
-    try:
-        plan = make_plan(**config.link.model_dump())
-    except ValueError as exc:
-        raise InputError(f"{path}: link: {exc}") from None
-    loader = config.loading.loader()
-    Estimator(**config.estimator.model_dump())
-    ChangeControl(loader, **config.change.model_dump())
+    plan, loader, _estimator, _change = build_core(config)
     d = config.driver
-    if d.kind == "replay":
-        from pathlib import Path
-
-        if not Path(d.replay.path).is_file():
-            raise SourceError(f"{path}: driver.replay.path={d.replay.path!r}: no such file")
+    if d.kind != "radio":  # opening a radio would touch the hardware; the others are cheap
+        make_driver(config, plan).close()
     fb = config.fallback
     return (f"{path}: OK: driver {d.kind}, {plan.data_tones.size} data tones of "
             f"{plan.fft_size}, loading {config.loading.mode} (gap {loader.gap_db:.2f} dB), "

@@ -50,11 +50,11 @@ import zmq
 
 from brimline.daemon import codec
 from brimline.daemon.config import Config
-from brimline.daemon.errors import BrimlineError, ProtocolError, SourceError
+from brimline.daemon.errors import BrimlineError, ConfigError, ProtocolError, SourceError
 from brimline.daemon.records import Allocation, DecisionKind, Estimate, LoadMap
 from brimline.daemon.status import Change, build_status, summary_line
 
-__all__ = ["Service", "FollowerMapProvider", "make_driver"]
+__all__ = ["Service", "FollowerMapProvider", "make_driver", "build_core"]
 
 log = logging.getLogger("brimline.service")
 
@@ -99,6 +99,38 @@ def make_driver(config: Config, plan, map_provider=None):
 
         return RadioDriver(plan=plan, **section)
     raise SourceError(f"driver.kind={kind!r} is not a known source")  # pragma: no cover
+
+
+def build_core(config: Config):
+    """Build the tone plan, loader, estimator and change control a config describes.
+
+    Returns
+    -------
+    tuple
+        ``(plan, loader, estimator, change)``.
+
+    Raises
+    ------
+    ConfigError
+        When a part rejects its section's values (names the section and the problem).
+    """
+    from brimline.daemon.change import ChangeControl
+    from brimline.daemon.estimator import Estimator
+    from brimline.drivers.ofdm import make_plan
+
+    def part(section: str, build):
+        try:
+            return build()
+        except ValueError as exc:
+            text = str(exc)
+            prefix = "" if text.startswith(f"{section}.") else f"{section}: "
+            raise ConfigError(f"{prefix}{text}") from None
+
+    plan = part("link", lambda: make_plan(**config.link.model_dump()))
+    loader = part("loading", config.loading.loader)
+    estimator = part("estimator", lambda: Estimator(**config.estimator.model_dump()))
+    change = part("change", lambda: ChangeControl(loader, **config.change.model_dump()))
+    return plan, loader, estimator, change
 
 
 class FollowerMapProvider:
@@ -162,20 +194,13 @@ class Service:
     def __init__(self, config: Config, *, context: zmq.Context | None = None,
                  clock: Callable[[], float] = time.monotonic, driver=None,
                  follow: bool = True) -> None:
-        from brimline.daemon.change import ChangeControl
-        from brimline.daemon.estimator import Estimator
-        from brimline.drivers.ofdm import make_plan
-
         self.config = config
         self._clock = clock
         self._own_context = context is None
         self._context = context
         self._given_driver = driver
         self._follow = follow
-        self.plan = make_plan(**config.link.model_dump())
-        self.loader = config.loading.loader()
-        self.estimator = Estimator(**config.estimator.model_dump())
-        self.change = ChangeControl(self.loader, **config.change.model_dump())
+        self.plan, self.loader, self.estimator, self.change = build_core(config)
         if self.config.service.clock == "auto":
             self.clock_mode = "monotonic" if config.driver.kind == "radio" else "source"
         else:

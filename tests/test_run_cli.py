@@ -89,7 +89,7 @@ def test_bad_config_is_one_line_and_exit_2(tmp_path, capsys, text, match):
 def test_missing_replay_file_fails_check(tmp_path, capsys):
     cfg = _config(tmp_path, tmp_path / "absent.brlog")
     assert main(["run", "--config", str(cfg), "--check"]) == 2
-    assert "no such file" in capsys.readouterr().err
+    assert "no such recording" in capsys.readouterr().err
 
 
 def test_replay_run_prints_live_lines_and_summary(tmp_path, capsys):
@@ -147,3 +147,11 @@ def test_sigterm_finishes_with_final_status_and_saved_state(tmp_path):
     assert saved is not None and saved.seq == final["map"]["seq"]
     for line in err.strip().splitlines():  # every log line is one JSON object
         json.loads(line)
+
+
+def test_value_rejected_by_a_part_is_one_line(tmp_path, capsys):
+    p = tmp_path / "bad.yaml"
+    p.write_text("change:\n  downshift_margin_db: 2.0\n  upshift_margin_db: 1.0\n")
+    assert main(["run", "--config", str(p), "--check"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "downshift_margin_db" in err[0]
