@@ -481,12 +481,15 @@ class Loader:
     ``u * (2**bits[j+1] - 2**bits[j])``, i.e. ``u * eff_j`` per bit. The efficiencies grow with
     ``j`` because ``2**b`` is convex, so each tone's table is its own lower convex hull.
 
-    *Rate mode* (Levin-Campello: Campello, "Practical bit loading for DMT", ICC 1999): at a
-    Lagrange threshold ``t`` on ``log2`` of the cost per bit a tone takes every step with
-    ``log2(u) + log2(eff_j) <= t``, a closed form per tone. A bisection on ``t`` (stopped when
-    the bracket is narrower than the spacing of the ``log2(eff_j)``, so no tone has more than
-    one step inside it) brackets the budget; the steps inside the bracket are sorted by
-    efficiency and taken while they fit. The result is efficient and E-tight. With unit steps
+    *Rate mode* gives the allocation that Levin-Campello loading defines (Campello,
+    "Practical bit loading for DMT", ICC 1999: efficient, i.e. no bit moved between tones saves
+    power, and E-tight, i.e. no further bit fits), but by a threshold search instead of
+    Levin-Campello's bit-by-bit iteration. At a Lagrange threshold ``t`` on ``log2`` of the cost
+    per bit a tone takes every step with ``log2(u) + log2(eff_j) <= t``, a closed form per tone.
+    A search on ``t`` (a first guess, doubling steps, bisection until the bracket is narrower
+    than the spacing of the ``log2(eff_j)`` so that no tone has two steps inside it, one
+    interpolated probe) brackets the budget; the steps inside the bracket are sorted by
+    efficiency and taken while they fit. With unit steps
     (consecutive bit sets) it is exactly optimal: it takes the cheapest increments there are.
     With holes it is the Lagrangian (convex-hull) solution and is within ``max_step - 1`` bits
     of the optimum (one bit for ``0, 1, 2, 4, 6, 8``), since the continuous relaxation over the
