@@ -17,14 +17,25 @@ from pathlib import Path
 from typing import Any, Literal, Optional
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import (BaseModel, ConfigDict, Field, ValidationError, field_validator,
+                      model_validator)
 
 from brimline.daemon.errors import ConfigError
 
 __all__ = [
     "Section",
     "LoadingSection",
+    "DriverSection",
+    "ReplaySection",
+    "FallbackSection",
+    "ServiceSection",
+    "PublishSection",
+    "StatusSection",
+    "RecordSection",
+    "EstimatorSection",
+    "ChangeSection",
     "Config",
+    "KeyProblem",
     "load_config",
     "read_yaml",
     "parse_section",
@@ -60,8 +71,8 @@ class LoadingSection(Section):
     @field_validator("bits")
     @classmethod
     def _bits_ok(cls, v: list[int]) -> list[int]:
-        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 15:
-            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 15")
+        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 16:
+            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 16")
         return v
 
     @field_validator("target_ser")
@@ -70,6 +81,51 @@ class LoadingSection(Section):
         if not 0.0 < v < 0.5:
             raise ValueError(f"target_ser={v} must be in (0, 0.5)")
         return v
+
+    @field_validator("gap_db", "coding_gain_db", "margin_db", "budget_db")
+    @classmethod
+    def _finite_db(cls, v: Optional[float], info) -> Optional[float]:
+        if v is not None and not math.isfinite(v):
+            raise ValueError(f"{info.field_name}={v} must be finite")
+        return v
+
+    @field_validator("cap_db")
+    @classmethod
+    def _cap_ok(cls, v: float) -> float:
+        if math.isnan(v) or v == -math.inf:
+            raise ValueError(f"cap_db={v} must be finite or +inf (.inf)")
+        return v
+
+    @field_validator("target_bits")
+    @classmethod
+    def _target_ok(cls, v: Optional[int]) -> Optional[int]:
+        if v is not None and v < 0:
+            raise ValueError(f"target_bits={v} must be >= 0")
+        return v
+
+    @model_validator(mode="after")
+    def _margin_needs_target(self) -> "LoadingSection":
+        if self.mode == "margin" and self.target_bits is None:
+            raise ValueError("mode: margin needs target_bits")
+        return self
+
+    def effective_gap_db(self) -> float:
+        """The gap the loader uses, dB: ``gap_db`` (or the uncoded-QAM gap of ``target_ser``),
+        minus ``coding_gain_db``, plus ``margin_db``."""
+        from brimline.daemon.loading import qam_gap_db
+
+        if self.gap_db is not None:
+            return self.gap_db - self.coding_gain_db + self.margin_db
+        return qam_gap_db(self.target_ser, coding_gain_db=self.coding_gain_db,
+                          margin_db=self.margin_db)
+
+    def loader(self):
+        """Build the :class:`brimline.daemon.loading.Loader` this section describes."""
+        from brimline.daemon.loading import Loader
+
+        return Loader(mode=self.mode, bits=self.bits, gap_db=self.effective_gap_db(),
+                      budget_db=self.budget_db, cap_db=self.cap_db,
+                      target_bits=self.target_bits)
 
 
 # --------------------------------------------------------------------------- link and drivers
@@ -210,46 +266,407 @@ class RadioSection(Section):
 
 
 class ReplaySection(Section):
-    """``driver.replay:`` a recorded estimate log (brimline.drivers.replay)."""
+    """``driver.replay:`` a recorded estimate log (brimline.drivers.replay).
+
+    A relative ``path`` is taken relative to the config file's folder by :func:`load_config`.
+    """
+
+    path: str = Field(description="estimate recording to replay (relative: to the config file)")
+    realtime: bool = Field(False, description="pace frames by their recorded time_s")
+    speed: float = Field(1.0, description="pacing factor when realtime (2.0 = twice as fast)")
+    loop: bool = Field(False, description="start again at the end (times keep increasing)")
+
+    @field_validator("speed")
+    @classmethod
+    def _speed_ok(cls, v: float) -> float:
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"speed={v} must be a positive number")
+        return v
 
 
 class DriverSection(Section):
-    """``driver:`` which source of estimates runs, and its settings."""
+    """``driver:`` which source of estimates runs, and its settings.
 
-    kind: Literal["sim", "iq", "radio", "replay"] = "sim"
+    ``kind`` names the subsection that configures the source; that subsection must be present
+    (``sim`` has defaults, the others need at least their required keys).
+    """
+
+    kind: Literal["sim", "iq", "radio", "replay"] = Field(
+        "sim", description="source of estimates: sim, iq (SigMF IQ), radio, replay")
     sim: SimSection = Field(default_factory=SimSection)
     iq: Optional[IqSection] = None
     radio: Optional[RadioSection] = None
     replay: Optional[ReplaySection] = None
 
+    @model_validator(mode="after")
+    def _kind_has_section(self) -> "DriverSection":
+        if getattr(self, self.kind) is None:
+            raise KeyProblem(("kind",), self.kind,
+                             f"needs a driver.{self.kind} section with its settings")
+        return self
+
+    def selected(self) -> Section:
+        """The subsection named by ``kind``."""
+        return getattr(self, self.kind)
+
 
 # --------------------------------------------------------------------------- estimator, change
 
 
+def _positive(name: str, v: float) -> float:
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{name}={v} must be a positive finite number")
+    return v
+
+
+def _non_negative(name: str, v: float) -> float:
+    if not (math.isfinite(v) and v >= 0):
+        raise ValueError(f"{name}={v} must be a finite number >= 0")
+    return v
+
+
 class EstimatorSection(Section):
-    """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator)."""
+    """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator.Estimator).
+
+    Defaults suit a slowly fading indoor link (people moving, Doppler of a hertz or two, so a
+    coherence time of a few hundred milliseconds) estimated at tens to hundreds of frames per
+    second with about 1 dB of per-frame estimation noise.
+    """
+
+    tau_s: float = Field(
+        0.25, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
+    std_tau_s: float = Field(
+        1.0, description="time constant of the per-tone variance tracker, s")
+    std_init_db: float = Field(
+        3.0, description="uncertainty (std, dB) given to a tone before its variance is learnt")
+    backoff_sigmas: float = Field(
+        1.0, description="effective SNR = smoothed SNR minus this many std, so noisy tones "
+                         "carry fewer bits")
+    outlier_db: float = Field(
+        6.0, description="smallest gate, dB: a tone further than this (and than "
+                         "outlier_sigmas std) from its tracked value is held as an outlier")
+    outlier_sigmas: float = Field(
+        4.0, description="gate width in per-tone std; the wider of this and outlier_db applies")
+    confirm_frames: int = Field(
+        3, description="consecutive agreeing outlier frames after which a tone's change is "
+                       "accepted as real and the tone jumps to it")
+    frame_outlier_fraction: float = Field(
+        0.5, description="a frame with more than this fraction of tones outside their gate is "
+                         "a whole-frame outlier (counted; no tone is smoothed with it)")
+    stale_s: float = Field(
+        5.0, description="after a gap longer than this between accepted frames, tracking "
+                         "starts afresh from the next frame, s")
+    tone_window: int = Field(
+        1, description="half-width in tones of the smoothing across neighbours (0: off)")
+    tone_agree_db: float = Field(
+        1.0, description="neighbours are averaged in only where their smoothed SNR is within "
+                         "this of the tone's, dB; deeper notches and interferers stay intact")
+
+    @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s")
+    @classmethod
+    def _positive_ok(cls, v: float, info) -> float:
+        return _positive(info.field_name, v)
+
+    @field_validator("backoff_sigmas", "outlier_sigmas", "tone_agree_db")
+    @classmethod
+    def _non_negative_ok(cls, v: float, info) -> float:
+        return _non_negative(info.field_name, v)
+
+    @field_validator("confirm_frames")
+    @classmethod
+    def _confirm_ok(cls, v: int) -> int:
+        if not 1 <= v <= 100:
+            raise ValueError(f"confirm_frames={v} must be in [1, 100]")
+        return v
+
+    @field_validator("frame_outlier_fraction")
+    @classmethod
+    def _fraction_ok(cls, v: float) -> float:
+        if not 0.0 < v <= 1.0:
+            raise ValueError(f"frame_outlier_fraction={v} must be in (0, 1]")
+        return v
+
+    @field_validator("tone_window")
+    @classmethod
+    def _window_ok(cls, v: int) -> int:
+        if not 0 <= v <= 16:
+            raise ValueError(f"tone_window={v} must be in [0, 16]")
+        return v
 
 
 class ChangeSection(Section):
-    """``change:`` change control: margins, dwell times, bit swaps, emergency."""
+    """``change:`` change control (brimline.daemon.change.ChangeControl).
+
+    Margins are per-tone margins of the current map under the tracked effective SNR, in dB
+    relative to the loading gap (which already includes ``loading.margin_db``): 0 dB means a
+    tone sits exactly at the loading target. Upgrades are slower and need more evidence than
+    downgrades, after the separate upshift/downshift margins and minimum times of DSL online
+    reconfiguration.
+    """
+
+    downshift_margin_db: float = Field(
+        -1.5, description="a loaded tone whose margin falls below this forces a new map, dB")
+    upshift_margin_db: float = Field(
+        1.5, description="an upgrade is made only when a map loaded with this much extra "
+                         "margin on every tone still gains min_gain_bits, dB")
+    min_gain_bits: int = Field(
+        4, description="smallest gain in bits per symbol worth an upgrade")
+    down_dwell_s: float = Field(
+        0.1, description="minimum time since the last map before a downgrade, s")
+    up_dwell_s: float = Field(
+        5.0, description="minimum time since the last map before an upgrade, s")
+    upgrade_check_s: float = Field(
+        0.25, description="after the upgrade dwell, how often an upgrade is evaluated, s")
+    max_maps_per_s: float = Field(
+        10.0, description="no two maps closer than 1/this, emergencies included, 1/s")
+    swap_max_tones: int = Field(
+        16, description="a bit swap changes at most this many tones; larger changes reload")
+    swap_max_loss_bits: int = Field(
+        4, description="a bit swap may lose at most this many bits per symbol, else reload")
+    emergency_fraction: float = Field(
+        0.25, description="this fraction of loaded tones below the downshift margin at once "
+                          "triggers an emergency downshift")
+    emergency_drop_db: float = Field(
+        6.0, description="a drop of the mean tracked SNR by this much since the current map "
+                         "triggers an emergency downshift, dB")
+    emergency_margin_db: float = Field(
+        3.0, description="extra margin of the emergency map, dB (recovered by upgrades)")
+
+    @field_validator("down_dwell_s", "up_dwell_s", "upgrade_check_s", "emergency_margin_db")
+    @classmethod
+    def _non_negative_ok(cls, v: float, info) -> float:
+        return _non_negative(info.field_name, v)
+
+    @field_validator("max_maps_per_s", "emergency_drop_db")
+    @classmethod
+    def _positive_ok(cls, v: float, info) -> float:
+        return _positive(info.field_name, v)
+
+    @field_validator("downshift_margin_db", "upshift_margin_db")
+    @classmethod
+    def _finite_ok(cls, v: float, info) -> float:
+        if not math.isfinite(v):
+            raise ValueError(f"{info.field_name}={v} must be finite")
+        return v
+
+    @field_validator("min_gain_bits", "swap_max_tones", "swap_max_loss_bits")
+    @classmethod
+    def _count_ok(cls, v: int, info) -> int:
+        if v < 0:
+            raise ValueError(f"{info.field_name}={v} must be >= 0")
+        return v
+
+    @field_validator("emergency_fraction")
+    @classmethod
+    def _fraction_ok(cls, v: float) -> float:
+        if not 0.0 < v <= 1.0:
+            raise ValueError(f"emergency_fraction={v} must be in (0, 1]")
+        return v
+
+    @model_validator(mode="after")
+    def _margins_ordered(self) -> "ChangeSection":
+        if self.downshift_margin_db >= self.upshift_margin_db:
+            raise ValueError(f"downshift_margin_db={self.downshift_margin_db} must be below "
+                             f"upshift_margin_db={self.upshift_margin_db}")
+        if self.up_dwell_s < self.down_dwell_s:
+            raise ValueError(f"up_dwell_s={self.up_dwell_s} must be >= "
+                             f"down_dwell_s={self.down_dwell_s}")
+        return self
 
 
 # --------------------------------------------------------------------------- publish, status, record
 
 
+_ENDPOINT_SCHEMES = ("tcp://", "ipc://", "inproc://")
+
+
+def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
+    if v is not None and (not v.startswith(_ENDPOINT_SCHEMES) or len(v) <= len("tcp://")):
+        raise ValueError(f"{key}={v!r} must be a ZeroMQ endpoint such as tcp://127.0.0.1:7341")
+    return v
+
+
+def _finite_positive(key: str, v: float) -> float:
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{key}={v} must be finite and > 0")
+    return v
+
+
 class PublishSection(Section):
-    """``publish:`` map, snapshot, heartbeat and acknowledgement sockets."""
+    """``publish:`` map, snapshot, heartbeat and acknowledgement sockets.
+
+    Fields are the keyword arguments of ``brimline.daemon.publisher.MapPublisher`` (which also
+    takes ``context`` and ``epoch`` from the service). Endpoints are where the daemon binds;
+    keep them on 127.0.0.1 unless CURVE is on.
+    """
+
+    map_endpoint: str = Field("tcp://127.0.0.1:7341",
+                              description="PUB for maps and heartbeats (bind)")
+    snapshot_endpoint: str = Field("tcp://127.0.0.1:7342",
+                                   description="ROUTER answering current-map requests (bind)")
+    ack_endpoint: Optional[str] = Field("tcp://127.0.0.1:7344",
+                                        description="PULL for transmitter acks; null for none")
+    heartbeat_s: float = Field(0.5, description="heartbeat interval, seconds")
+    map_hwm: int = Field(1000, description="map PUB send high-water mark, messages")
+    linger_s: float = Field(1.0, description="time unsent maps are kept at shutdown, seconds")
+    curve_secret_key: Optional[str] = Field(
+        None, description="daemon's .key_secret file (brimline keys); turns CURVE on")
+    curve_clients_dir: Optional[str] = Field(
+        None, description="folder of authorised clients' .key files; null admits any client "
+                          "that knows the daemon's public key")
+
+    @field_validator("map_endpoint", "snapshot_endpoint", "ack_endpoint")
+    @classmethod
+    def _endpoints(cls, v, info):
+        return _endpoint_ok(info.field_name, v)
+
+    @field_validator("heartbeat_s")
+    @classmethod
+    def _heartbeat(cls, v):
+        return _finite_positive("heartbeat_s", v)
+
+    @field_validator("linger_s")
+    @classmethod
+    def _linger(cls, v):
+        if not (math.isfinite(v) and v >= 0):
+            raise ValueError(f"linger_s={v} must be finite and >= 0")
+        return v
+
+    @field_validator("map_hwm")
+    @classmethod
+    def _hwm(cls, v):
+        if v < 1:
+            raise ValueError(f"map_hwm={v} must be >= 1")
+        return v
+
+    @model_validator(mode="after")
+    def _curve_pair(self):
+        if self.curve_clients_dir is not None and self.curve_secret_key is None:
+            raise ValueError("curve_clients_dir needs curve_secret_key")
+        return self
 
 
 class StatusSection(Section):
-    """``status:`` the operators' status stream."""
+    """``status:`` the operators' status stream.
+
+    Fields are the keyword arguments of ``brimline.daemon.publisher.StatusPublisher`` (which
+    also takes ``curve`` and ``context`` from the service).
+    """
+
+    endpoint: str = Field("tcp://127.0.0.1:7343", description="status PUB (bind)")
+    rate_hz: float = Field(4.0, description="periodic status messages per second")
+    hwm: int = Field(10, description="send high-water mark per subscriber, messages; small so "
+                                     "a stalled watcher costs nothing")
+
+    @field_validator("endpoint")
+    @classmethod
+    def _endpoint(cls, v):
+        return _endpoint_ok("endpoint", v)
+
+    @field_validator("rate_hz")
+    @classmethod
+    def _rate(cls, v):
+        return _finite_positive("rate_hz", v)
+
+    @field_validator("hwm")
+    @classmethod
+    def _hwm(cls, v):
+        if v < 1:
+            raise ValueError(f"hwm={v} must be >= 1")
+        return v
 
 
 class RecordSection(Section):
-    """``record:`` what the daemon records, and where."""
+    """``record:`` what the daemon records, and where.
+
+    Fields are the keyword arguments of ``brimline.daemon.recording.RecordWriter`` (which also
+    takes ``meta``); ``path: null`` records nothing.
+    """
+
+    path: Optional[str] = Field(None, description="recording file to create; null for none")
+    topics: Optional[list[str]] = Field(
+        default_factory=lambda: ["estimate", "map", "decision", "status"],
+        description="topics to record; null for all")
+    max_bytes: Optional[int] = Field(
+        None, description="start a new file NAME.0001.EXT, ... beyond this size, bytes")
+    fsync: bool = Field(False, description="fsync every record (survives power loss, slower)")
+
+    @field_validator("max_bytes")
+    @classmethod
+    def _max_bytes(cls, v):
+        if v is not None and v < 1024:
+            raise ValueError(f"max_bytes={v} must be >= 1024")
+        return v
 
 
 # --------------------------------------------------------------------------- whole file
+
+
+class FallbackSection(Section):
+    """``fallback:`` the safe map sent when estimates go stale (owned by the service).
+
+    The fallback map loads every data tone with the same ``bits`` at the same ``power_db``; it
+    must be a map the loader itself could make (bits from ``loading.bits``, power within
+    ``loading.cap_db`` and, summed over the tones, within ``loading.budget_db``).
+    """
+
+    stale_after_s: float = Field(
+        1.0, description="send the fallback map when no valid estimate came for this long, s")
+    bits: int = Field(2, description="bits on every data tone of the fallback map")
+    power_db: float = Field(0.0, description="power on every data tone relative to nominal, dB")
+
+    @field_validator("stale_after_s")
+    @classmethod
+    def _stale_ok(cls, v: float) -> float:
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"stale_after_s={v} must be a positive number of seconds")
+        return v
+
+    @field_validator("power_db")
+    @classmethod
+    def _power_ok(cls, v: float) -> float:
+        if not math.isfinite(v):
+            raise ValueError(f"power_db={v} must be finite")
+        return v
+
+
+class ServiceSection(Section):
+    """``service:`` how the daemon loop runs (brimline.daemon.service)."""
+
+    lead_frames: int = Field(
+        4, description="a new map takes effect this many frames after the last frame seen")
+    clock: Literal["auto", "source", "monotonic"] = Field(
+        "auto", description="time fed to estimator and change control: source = the estimates' "
+        "time_s, monotonic = the daemon's clock; auto = monotonic for radio, source otherwise")
+    state_path: Optional[str] = Field(
+        None, description="file keeping epoch, sequence and last map across restarts "
+        "(relative: to the config file); none keeps no state")
+    poll_s: float = Field(0.05, description="longest wait of one main-loop poll, s")
+    driver_join_s: float = Field(2.0, description="wait for the driver thread at shutdown, s")
+
+    @field_validator("lead_frames")
+    @classmethod
+    def _lead_ok(cls, v: int) -> int:
+        if not 0 <= v <= 10_000:
+            raise ValueError(f"lead_frames={v} must be in [0, 10000]")
+        return v
+
+    @field_validator("poll_s", "driver_join_s")
+    @classmethod
+    def _positive_s(cls, v: float, info) -> float:
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"{info.field_name}={v} must be a positive number of seconds")
+        return v
+
+
+class KeyProblem(ValueError):
+    """A cross-section check failed at ``loc`` (key path inside the model) with ``value``."""
+
+    def __init__(self, loc: tuple[str, ...], value: Any, msg: str) -> None:
+        super().__init__(msg)
+        self.loc = tuple(loc)
+        self.value = value
+        self.msg = msg
 
 
 class Config(Section):
@@ -263,6 +680,26 @@ class Config(Section):
     publish: PublishSection = Field(default_factory=PublishSection)
     status: StatusSection = Field(default_factory=StatusSection)
     record: RecordSection = Field(default_factory=RecordSection)
+    fallback: FallbackSection = Field(default_factory=FallbackSection)
+    service: ServiceSection = Field(default_factory=ServiceSection)
+
+    @model_validator(mode="after")
+    def _fallback_fits_loading(self) -> "Config":
+        fb, ld = self.fallback, self.loading
+        if fb.bits not in ld.bits:
+            raise KeyProblem(("fallback", "bits"), fb.bits,
+                             f"is not one of loading.bits={list(ld.bits)}")
+        if fb.bits == 0:
+            raise KeyProblem(("fallback", "bits"), fb.bits, "a fallback map must carry data")
+        if fb.power_db > ld.cap_db + 1e-9:
+            raise KeyProblem(("fallback", "power_db"), fb.power_db,
+                             f"exceeds the per-tone ceiling loading.cap_db={ld.cap_db}")
+        # Uniform power on all N tones sums to N * 10^(p/10); the budget is N * 10^(b/10).
+        if fb.power_db > ld.budget_db + 1e-9:
+            raise KeyProblem(("fallback", "power_db"), fb.power_db,
+                             f"on every tone exceeds the total budget loading.budget_db="
+                             f"{ld.budget_db}")
+        return self
 
 
 # --------------------------------------------------------------------------- machinery
@@ -318,17 +755,26 @@ def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     return data, (_key_lines(node) if node is not None else {})
 
 
+def _at(where: str, lines: dict[tuple, int], loc: tuple) -> str:
+    """``where`` plus the line of the deepest key of ``loc`` that exists in the file."""
+    for n in range(len(loc), 0, -1):
+        line = lines.get(loc[:n])
+        if line is not None:
+            return f"{where} line {line}"
+    return where
+
+
 def _explain(exc: ValidationError, where: str, lines: dict[tuple, int],
              prefix: tuple = ()) -> ConfigError:
     err = exc.errors()[0]
     loc = prefix + tuple(str(x) for x in err["loc"])
+    problem = (err.get("ctx") or {}).get("error")
+    if isinstance(problem, KeyProblem):  # a model-level check that knows its key
+        loc = loc + problem.loc
+        at = _at(where, lines, loc)
+        return ConfigError(f"{at}: {'.'.join(loc)}={problem.value!r}: {problem.msg}")
     key = ".".join(loc) if loc else "(top level)"
-    line = None
-    for n in range(len(loc), 0, -1):  # the deepest key that exists in the file
-        line = lines.get(loc[:n])
-        if line is not None:
-            break
-    at = f"{where} line {line}" if line is not None else where
+    at = _at(where, lines, loc)
     msg = err["msg"].removeprefix("Value error, ")
     if err["type"] == "extra_forbidden":
         return ConfigError(f"{at}: unknown key {key}")
@@ -370,6 +816,23 @@ def load_config(path: str | Path) -> Config:
     """
     data, lines = read_yaml(path)
     try:
-        return Config.model_validate(data)
+        config = Config.model_validate(data)
     except ValidationError as exc:
         raise _explain(exc, str(path), lines) from None
+    return _resolve_paths(config, Path(path).parent)
+
+
+def _resolve_paths(config: Config, base: Path) -> Config:
+    """Make the service's relative file paths relative to the config file's folder."""
+
+    def rebase(value: str | None) -> str | None:
+        if value is None or Path(value).is_absolute():
+            return value
+        return str(base / value)
+
+    driver = config.driver
+    if driver.replay is not None:
+        driver = driver.model_copy(update={
+            "replay": driver.replay.model_copy(update={"path": rebase(driver.replay.path)})})
+    service = config.service.model_copy(update={"state_path": rebase(config.service.state_path)})
+    return config.model_copy(update={"driver": driver, "service": service})

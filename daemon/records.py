@@ -26,6 +26,7 @@ __all__ = [
     "LoadMap",
     "DecisionKind",
     "Decision",
+    "Tracked",
     "frozen_array",
 ]
 
@@ -344,3 +345,66 @@ class Decision:
         _set(self, "kind", DecisionKind(self.kind))
         if (self.allocation is None) != (self.kind is DecisionKind.KEEP):
             raise ValueError("a decision carries an allocation exactly when it is not 'keep'")
+
+
+@dataclass(frozen=True)
+class Tracked:
+    """The estimator's current view of the channel, per data tone (estimator -> change control).
+
+    Attributes
+    ----------
+    plan_id : str
+        Tone plan the tracking belongs to.
+    tone_index : ndarray of int16
+        Signed FFT bins (the plan's data tones).
+    snr_db : ndarray of float64
+        Smoothed per-tone SNR at nominal power, dB.
+    std_db : ndarray of float64
+        Per-tone standard deviation of a single frame's SNR about the smoothed value, dB
+        (estimation noise plus fast channel variation).
+    effective_snr_db : ndarray of float64
+        ``snr_db`` backed off by the configured number of ``hypot(std_db, mean_std_db)``; what
+        loading uses, dB.
+    age_s : float
+        Time since the last accepted frame, seconds (``now_s`` of the caller's clock).
+    frames : int
+        Frames accepted since tracking last started (first frame, reset, plan or tuning change).
+    mean_std_db : ndarray of float64 or None
+        Standard deviation of ``snr_db`` itself (uncertainty of the tracked value), dB; None
+        fills zeros.
+    center_hz : float
+        Radio tuning of the tracked frames in hertz (NaN when unknown).
+    time_s : float
+        Source time of the last accepted frame, seconds.
+    """
+
+    plan_id: str
+    tone_index: np.ndarray
+    snr_db: np.ndarray
+    std_db: np.ndarray
+    effective_snr_db: np.ndarray
+    age_s: float
+    frames: int
+    mean_std_db: np.ndarray = None
+    center_hz: float = math.nan
+    time_s: float = math.nan
+
+    def __post_init__(self) -> None:
+        tones = frozen_array(self.tone_index, np.int16, "tone_index")
+        _set(self, "tone_index", tones)
+        if self.mean_std_db is None:
+            _set(self, "mean_std_db", np.zeros(tones.size))
+        for name in ("snr_db", "std_db", "effective_snr_db", "mean_std_db"):
+            arr = frozen_array(getattr(self, name), np.float64, name)
+            if arr.shape != tones.shape:
+                raise ValueError(f"{name} has {arr.size} tones, tone_index has {tones.size}")
+            _set(self, name, arr)
+        _set(self, "age_s", float(self.age_s))
+        _set(self, "frames", int(self.frames))
+        _set(self, "center_hz", float(self.center_hz))
+        _set(self, "time_s", float(self.time_s))
+
+    @property
+    def n_tones(self) -> int:
+        """Number of tones tracked."""
+        return int(self.tone_index.size)

@@ -1,0 +1,405 @@
+"""Change control: when to replace the bit/power map, and by how much.
+
+:class:`ChangeControl` holds the current allocation and, for each tracked view of the channel,
+decides to keep it, repair it with a **bit swap**, **reload** it (run the loader afresh), or make
+an **emergency** downshift. It is deterministic: the same tracked inputs and times give the same
+decisions and maps.
+
+The rules, per call of :meth:`ChangeControl.decide`, with the *tone margin* of the current map
+being ``loader.tone_margin_db(bits, power, effective_snr)`` (0 dB: a tone sits exactly at the
+loading target, whose gap already includes the configured target margin):
+
+1. No map yet, a new tone plan, or the first call after a forced fallback map: reload at once.
+2. **Emergency**: when at least ``emergency_fraction`` of the loaded tones are below
+   ``downshift_margin_db`` at once, or the mean tracked SNR fell by ``emergency_drop_db`` since the
+   current map was made, the loader runs on the effective SNR lowered by ``emergency_margin_db``.
+   This bypasses the dwell times (not the map rate limit). Normal upgrades recover the rate.
+3. **Downgrade**: any loaded tone below ``downshift_margin_db`` forces a change once
+   ``down_dwell_s`` has passed since the last map. When at most ``swap_max_tones`` tones need to
+   change and the rate drops by at most ``swap_max_loss_bits``, a bit swap repairs the map: the
+   failing tones drop to the bits their power still carries, and the lost bits move to the tones
+   where one more bit costs the least power, within the budget and ceilings. Otherwise the map is
+   reloaded.
+4. **Upgrade**: after ``up_dwell_s`` (longer than the downgrade dwell), every ``upgrade_check_s``
+   the loader runs on the effective SNR lowered by ``upshift_margin_db``; if even that map carries
+   ``min_gain_bits`` more than the current one, the gain is real and the map is reloaded.
+
+Separate upshift and downshift margins with minimum times follow the idea of DSL online rate
+adaptation (ITU-T G.997.1, as described in IETF RFC 5650): the map moves down fast when the
+link is failing and up slowly, only for a clear gain. No two maps are closer than
+``1 / max_maps_per_s``.
+
+Every map published here satisfies the loader's constraints: power within the budget, every tone
+within the ceiling, bits from the allowed set (reloads come from the loader; bit swaps only move
+a tone between allowed levels at its required power and check the totals).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from brimline.daemon.errors import InfeasibleError
+from brimline.daemon.records import Allocation, Decision, DecisionKind, Tracked
+
+__all__ = ["ChangeControl"]
+
+_KEEP = DecisionKind.KEEP
+
+
+class ChangeControl:
+    """Decide, per tracked channel view, whether and how the bit/power map changes.
+
+    Parameters
+    ----------
+    loader : brimline.daemon.loading.Loader
+        Builds allocations (``loader(snr_lin)``) and rates them (``required_power``,
+        ``tone_margin_db``); its ``bits``, ``budget_db`` and ``cap_db`` bound the bit swaps.
+    downshift_margin_db : float
+        A loaded tone below this margin forces a change, dB.
+    upshift_margin_db : float
+        Extra margin an upgrade must still gain with, dB.
+    min_gain_bits : int
+        Smallest gain in bits per symbol worth an upgrade.
+    down_dwell_s, up_dwell_s : float
+        Minimum time since the last map before a downgrade / an upgrade, seconds.
+    upgrade_check_s : float
+        Interval between upgrade evaluations once the upgrade dwell has passed, seconds.
+    max_maps_per_s : float
+        Map rate limit: no two maps closer than its inverse, seconds.
+    swap_max_tones : int
+        Most tones a bit swap may change.
+    swap_max_loss_bits : int
+        Most bits per symbol a bit swap may lose (0 in margin mode, which keeps its target).
+    emergency_fraction : float
+        Fraction of loaded tones below the downshift margin that makes an emergency.
+    emergency_drop_db : float
+        Drop of the mean tracked SNR since the current map that makes an emergency, dB.
+    emergency_margin_db : float
+        Extra margin of the emergency map, dB.
+
+    Notes
+    -----
+    The keyword arguments besides ``loader`` are exactly the keys of the ``change:`` config
+    section (:class:`brimline.daemon.config.ChangeSection`), where their defaults live.
+    """
+
+    def __init__(self, loader, *, downshift_margin_db: float = -1.5,
+                 upshift_margin_db: float = 1.5, min_gain_bits: int = 4,
+                 down_dwell_s: float = 0.1, up_dwell_s: float = 5.0,
+                 upgrade_check_s: float = 0.25, max_maps_per_s: float = 10.0,
+                 swap_max_tones: int = 16, swap_max_loss_bits: int = 4,
+                 emergency_fraction: float = 0.25, emergency_drop_db: float = 6.0,
+                 emergency_margin_db: float = 3.0) -> None:
+        if not downshift_margin_db < upshift_margin_db:
+            raise ValueError(f"change.downshift_margin_db={downshift_margin_db} must be below "
+                             f"change.upshift_margin_db={upshift_margin_db}")
+        if not (math.isfinite(max_maps_per_s) and max_maps_per_s > 0):
+            raise ValueError(f"change.max_maps_per_s={max_maps_per_s} must be positive")
+        if not 0 < emergency_fraction <= 1:
+            raise ValueError(f"change.emergency_fraction={emergency_fraction} must be in (0, 1]")
+        for name, value in (("down_dwell_s", down_dwell_s), ("up_dwell_s", up_dwell_s),
+                            ("upgrade_check_s", upgrade_check_s),
+                            ("emergency_margin_db", emergency_margin_db),
+                            ("emergency_drop_db", emergency_drop_db),
+                            ("min_gain_bits", min_gain_bits), ("swap_max_tones", swap_max_tones),
+                            ("swap_max_loss_bits", swap_max_loss_bits)):
+            if not (math.isfinite(value) and value >= 0):
+                raise ValueError(f"change.{name}={value} must be finite and >= 0")
+        self.loader = loader
+        self.downshift_margin_db = float(downshift_margin_db)
+        self.upshift_margin_db = float(upshift_margin_db)
+        self.min_gain_bits = int(min_gain_bits)
+        self.down_dwell_s = float(down_dwell_s)
+        self.up_dwell_s = float(up_dwell_s)
+        self.upgrade_check_s = float(upgrade_check_s)
+        self.max_maps_per_s = float(max_maps_per_s)
+        self.swap_max_tones = int(swap_max_tones)
+        # Margin mode carries exactly its target: a swap must neither lose nor gain bits.
+        self._exact_rate = getattr(loader, "mode", "rate") == "margin"
+        if self._exact_rate:
+            swap_max_loss_bits = 0
+        self.swap_max_loss_bits = int(swap_max_loss_bits)
+        self.emergency_fraction = float(emergency_fraction)
+        self.emergency_drop_db = float(emergency_drop_db)
+        self.emergency_margin_db = float(emergency_margin_db)
+        # What a bit swap must respect; without them (a foreign loader) swaps are off.
+        bit_set = getattr(loader, "bits", None)
+        self._bit_set = None if bit_set is None else np.asarray(bit_set, dtype=np.int64)
+        self._budget_lin = 10.0 ** (float(getattr(loader, "budget_db", math.nan)) / 10.0)
+        self._cap_lin = 10.0 ** (float(getattr(loader, "cap_db", math.inf)) / 10.0)
+        self._counters = dict.fromkeys(
+            ("keep", "bit_swap", "reload", "emergency", "fallback", "forced", "upgrade",
+             "held_dwell", "held_rate", "infeasible"), 0)
+        self._current: Allocation | None = None
+        self._margin_at_0db = None      # tone margins of the current map at 0 dB SNR
+        self._n_loaded = 0
+        self._plan_id: str | None = None
+        self._changed_s = -math.inf     # when the current map was adopted
+        self._ref_mean_db = math.nan    # mean tracked SNR when the current map was made
+        self._next_upgrade_s = -math.inf
+
+    # ------------------------------------------------------------------ state
+
+    @property
+    def current(self) -> Allocation | None:
+        """The allocation in force (None before the first map)."""
+        return self._current
+
+    @property
+    def counters(self) -> dict[str, int]:
+        """Decisions by kind, ``upgrade`` reloads, changes held by ``held_dwell`` /
+        ``held_rate``, ``forced`` maps and ``infeasible`` loads (margin mode fell back to rate)."""
+        return dict(self._counters)
+
+    def force(self, allocation: Allocation, kind: DecisionKind | str, reason: str,
+              now_s: float) -> Decision:
+        """Adopt ``allocation`` unconditionally (e.g. the configured fallback map).
+
+        After a forced ``fallback`` the next :meth:`decide` loads a fresh map as at start.
+
+        Parameters
+        ----------
+        allocation : Allocation
+            The map to put in force.
+        kind : DecisionKind or str
+            Any kind but ``keep``.
+        reason : str
+            Shown to operators.
+        now_s : float
+            Time of the change, seconds; the dwell times run from it.
+
+        Returns
+        -------
+        Decision
+        """
+        kind = DecisionKind(kind)
+        if kind is _KEEP:
+            raise ValueError("force() needs a map-changing kind, not 'keep'")
+        decision = self._adopt(kind, allocation, reason, now_s, math.nan)
+        self._counters["forced"] += 1
+        if kind is DecisionKind.FALLBACK:
+            self._plan_id = None
+        return decision
+
+    # ------------------------------------------------------------------ decisions
+
+    def decide(self, tracked: Tracked, now_s: float) -> Decision:
+        """Decide for one tracked view of the channel; adopt the new map unless ``keep``.
+
+        Parameters
+        ----------
+        tracked : Tracked
+            The estimator's view; ``effective_snr_db`` is what loading uses.
+        now_s : float
+            The caller's clock, seconds.
+
+        Returns
+        -------
+        Decision
+            With a reason for the status stream; ``allocation`` is the new map (None for keep).
+        """
+        now_s = float(now_s)
+        eff_db = tracked.effective_snr_db
+        mean_db = float(tracked.snr_db.mean())
+        cur = self._current
+        since_map = now_s - self._changed_s
+        rate_wait = 1.0 / self.max_maps_per_s - since_map
+
+        if cur is None or self._plan_id != tracked.plan_id or cur.bits.size != tracked.n_tones:
+            if cur is not None and rate_wait > 0:
+                return self._hold("held_rate", f"new map pending: map rate limit "
+                                  f"({rate_wait:.2f} s)")
+            why = ("first map" if cur is None or self._plan_id is None
+                   else f"tone plan changed to {tracked.plan_id}")
+            self._plan_id = tracked.plan_id
+            alloc, note = self._load(_lin(eff_db))
+            return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {why}{note}", now_s,
+                               mean_db)
+
+        # With power proportional to 1 / snr for given bits (the SNR-gap model), a tone's margin
+        # in dB is its margin at 0 dB SNR plus its SNR in dB: one addition per frame.
+        margins = self._margin_at_0db + eff_db
+        low = margins < self.downshift_margin_db
+        n_low = int(np.count_nonzero(low))
+        n_loaded = self._n_loaded
+        worst = int(np.argmin(margins))
+        worst_text = (f"{margins[worst]:.1f} dB worst at tone {int(tracked.tone_index[worst])}"
+                      if math.isfinite(margins[worst]) else "no tone loaded")
+        if math.isnan(self._ref_mean_db):
+            self._ref_mean_db = mean_db
+        drop_db = self._ref_mean_db - mean_db
+
+        if (n_low and n_low >= self.emergency_fraction * n_loaded) \
+                or drop_db >= self.emergency_drop_db:
+            what = (f"{n_low} of {_tones(n_loaded)} loaded below downshift margin "
+                    f"({worst_text}), mean SNR {-drop_db:+.1f} dB")
+            if rate_wait > 0:
+                return self._hold("held_rate", f"emergency pending: {what}; map rate limit "
+                                  f"({rate_wait:.2f} s)")
+            alloc, note = self._load(_lin(eff_db - self.emergency_margin_db))
+            return self._adopt(DecisionKind.EMERGENCY, alloc,
+                               f"emergency: {what}; +{self.emergency_margin_db:g} dB margin"
+                               f"{note}", now_s, mean_db)
+
+        if n_low:
+            what = f"{_tones(n_low)} below downshift margin ({worst_text})"
+            wait = max(self.down_dwell_s - since_map, rate_wait)
+            if wait > 0:
+                key = "held_dwell" if self.down_dwell_s - since_map >= rate_wait else "held_rate"
+                return self._hold(key, f"{what}; change in {wait:.2f} s")
+            snr = _lin(eff_db)
+            swap = self._bit_swap(cur, snr, low) if n_low <= self.swap_max_tones else None
+            if swap is not None:
+                alloc, changed = swap
+                delta = alloc.total_bits - cur.total_bits
+                return self._adopt(DecisionKind.BIT_SWAP, alloc,
+                                   f"bit swap: {what}; {_tones(changed)} changed, {delta:+d} bits",
+                                   now_s, mean_db)
+            alloc, note = self._load(snr)
+            return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {what}{note}", now_s,
+                               mean_db)
+
+        if since_map >= self.up_dwell_s and rate_wait <= 0 and now_s >= self._next_upgrade_s:
+            self._next_upgrade_s = now_s + self.upgrade_check_s
+            guarded, _ = self._load(_lin(eff_db - self.upshift_margin_db))
+            gain = guarded.total_bits - cur.total_bits
+            if gain >= max(self.min_gain_bits, 1):
+                alloc, note = self._load(_lin(eff_db))
+                self._counters["upgrade"] += 1
+                return self._adopt(
+                    DecisionKind.RELOAD, alloc,
+                    f"upgrade: {alloc.total_bits - cur.total_bits:+d} bits "
+                    f"({gain:+d} even with {self.upshift_margin_db:g} dB more margin){note}",
+                    now_s, mean_db)
+        return self._hold("keep", f"margins ok ({worst_text})")
+
+    # ------------------------------------------------------------------ helpers
+
+    def _hold(self, counter: str, reason: str) -> Decision:
+        self._counters[counter] += 1
+        if counter != "keep":
+            self._counters["keep"] += 1
+        return Decision(kind=_KEEP, reason=reason)
+
+    def _adopt(self, kind: DecisionKind, alloc: Allocation, reason: str, now_s: float,
+               mean_db: float) -> Decision:
+        cur = self._current
+        if cur is None or cur.bits.size != alloc.bits.size:
+            changed = int(alloc.bits.size)
+        else:
+            changed = int(np.count_nonzero((cur.bits != alloc.bits) | (cur.power != alloc.power)))
+        self._current = alloc
+        self._margin_at_0db = self.loader.tone_margin_db(alloc.bits, alloc.power,
+                                                         np.ones(alloc.bits.size))
+        self._n_loaded = int(np.count_nonzero(alloc.bits))
+        self._changed_s = float(now_s)
+        self._ref_mean_db = mean_db
+        self._next_upgrade_s = -math.inf
+        self._counters[kind.value] += 1
+        return Decision(kind=kind, reason=reason, allocation=alloc, tones_changed=changed)
+
+    def _load(self, snr: np.ndarray) -> tuple[Allocation, str]:
+        """Run the loader; if a margin-mode target is infeasible, load for rate instead."""
+        try:
+            return self.loader(snr), ""
+        except InfeasibleError:
+            rate = getattr(self.loader, "rate", None)
+            if rate is None:
+                raise
+            self._counters["infeasible"] += 1
+            return rate(snr), " (target bits infeasible: loaded for rate)"
+
+    def _bit_swap(self, cur: Allocation, snr: np.ndarray,
+                  low: np.ndarray) -> tuple[Allocation, int] | None:
+        """Repair ``cur`` by moving bits off the ``low`` tones; None when a reload is needed.
+
+        The failing tones take the highest allowed bits their present power still carries at
+        the present SNR, at exactly the power those bits need. The bits lost go, one step at a
+        time, to the tone where the next allowed level costs the least extra power (the
+        incremental-energy rule of Levin-Campello loading), while the total stays within the
+        budget, each tone within the ceiling, and at most ``swap_max_tones`` tones change.
+        """
+        levels = self._bit_set
+        if levels is None or not math.isfinite(self._budget_lin) or self.swap_max_tones == 0:
+            return None
+        loader = self.loader
+        n = cur.bits.size
+        budget = n * self._budget_lin
+        bits = cur.bits.copy()
+        power = cur.power.copy()
+        idx = np.flatnonzero(low)
+        snr_low = snr[idx]
+        # Highest allowed level whose need fits both the tone's present power and the ceiling.
+        room = np.minimum(power[idx], self._cap_lin)
+        new_bits = np.zeros(idx.size, dtype=np.int64)
+        for level in levels[1:]:
+            need = loader.required_power(np.full(idx.size, level), snr_low)
+            new_bits = np.where(need <= room, level, new_bits)
+        new_bits = np.minimum(new_bits, bits[idx])
+        bits[idx] = new_bits
+        power[idx] = loader.required_power(new_bits, snr_low)
+        to_regain = int(cur.total_bits - bits.sum())
+        changed = np.zeros(n, dtype=bool)
+        changed[idx] = True
+        # Cost of the next allowed level on every tone that may still take bits.
+        pos = np.searchsorted(levels, bits, side="right")
+        top = levels.size
+        eligible = ~low & (pos < top)
+        nxt = levels[np.minimum(pos, top - 1)]
+        need_next = loader.required_power(nxt, snr)
+        cost = np.where(eligible & (need_next <= self._cap_lin), need_next - power, np.inf)
+        total = float(power.sum())
+        while to_regain > 0:
+            if np.count_nonzero(changed) >= self.swap_max_tones:
+                cost = np.where(changed, cost, np.inf)  # only tones already changed may grow
+            j = int(np.argmin(cost))
+            if not math.isfinite(cost[j]) or total + cost[j] > budget * (1 + 1e-12):
+                break
+            total += cost[j]
+            gained = int(nxt[j] - bits[j])
+            bits[j] = nxt[j]
+            power[j] = need_next[j]
+            changed[j] = True
+            to_regain -= gained
+            p = int(np.searchsorted(levels, bits[j], side="right"))
+            if p >= top:
+                cost[j] = np.inf
+            else:
+                nxt[j] = levels[p]
+                need_next[j] = loader.required_power(nxt[j:j + 1], snr[j:j + 1])[0]
+                cost[j] = (need_next[j] - power[j] if need_next[j] <= self._cap_lin
+                           else np.inf)
+        n_changed = int(np.count_nonzero(changed))
+        loss = int(cur.total_bits - bits.sum())
+        if n_changed > self.swap_max_tones or loss > self.swap_max_loss_bits \
+                or (self._exact_rate and loss != 0):
+            return None
+        total_power = float(power.sum())
+        if total_power > budget * (1 + 1e-9) or (power > self._cap_lin * (1 + 1e-9)).any():
+            return None
+        need = loader.required_power(bits, snr)
+        margin_db = _uniform_margin_db(need, budget, self._cap_lin)
+        alloc = Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
+                           total_power=total_power, margin_db=margin_db)
+        return alloc, int(np.count_nonzero((cur.bits != bits) | (cur.power != power)))
+
+
+def _lin(db: np.ndarray) -> np.ndarray:
+    return 10.0 ** (db / 10.0)
+
+
+def _tones(n: int) -> str:
+    return f"{n} tone" if n == 1 else f"{n} tones"
+
+
+def _uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
+    """Largest uniform growth of the required powers within budget and ceiling, dB."""
+    total = float(need.sum())
+    if total <= 0:
+        return math.inf
+    factor = budget / total
+    if math.isfinite(cap):
+        factor = min(factor, cap / float(need.max()))
+    return 10.0 * math.log10(factor)

@@ -1,0 +1,473 @@
+"""The one codec: how a record becomes bytes, on the wire, in recordings and in the state file.
+
+A message is a list of byte frames (a ZeroMQ multipart message)::
+
+    [topic, header, array part 0, array part 1, ...]
+
+``topic``
+    ASCII name of the stream ("map", "heartbeat", "snapshot", "status", "ack", "estimate",
+    "decision", ...). No topic is a prefix of another, so ZeroMQ's prefix subscriptions select
+    exactly one stream each.
+``header``
+    UTF-8 JSON object (no NaN or Infinity tokens)::
+
+        {"v": 1, "type": "load_map", "fields": {...}, "arrays": [{"name": "bits",
+         "dtype": "|u1", "shape": [48]}, ...], "crc32": 1234567}
+
+    ``v`` is :data:`PROTOCOL_VERSION`; ``type`` names the record (:func:`record_types`, or
+    ``"dict"`` for a plain mapping); ``fields`` holds the scalar fields; ``arrays`` lists the array
+    parts in the order they follow; ``crc32`` is CRC-32 over the array parts concatenated.
+    Non-finite floats in ``fields`` are written as the strings ``"inf"``, ``"-inf"``, ``"nan"``;
+    a record's float field reads them back as floats, a plain dict keeps them as those strings.
+``array parts``
+    The raw bytes of C-contiguous little-endian arrays (numpy ``dtype.str`` spelling: ``"<f4"``,
+    ``"<i2"``, ``"|u1"``, ``"<c8"``, ...), one part per entry of ``arrays``.
+
+No pickles: decoding never runs code chosen by the sender. Every decoding problem raises
+:class:`~brimline.daemon.errors.ProtocolError` naming what is wrong.
+
+Why CRC-32 (zlib, the ISO-HDLC / IEEE 802.3 polynomial): the check guards against accidental
+corruption and sender bugs (a wrong stride or byte order), not against tampering, which CURVE
+encryption covers. CRC-32 is in the standard library of every language a transmitter is likely
+to be written in, runs at several GB/s, and detects every burst error up to 32 bits. A
+cryptographic hash (BLAKE2b) would add cost and a dependency for followers in C, for no gain
+against that threat. The header itself is protected by its JSON syntax and the field checks
+here; recordings add a CRC over the whole record (:mod:`brimline.daemon.recording`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import enum
+import json
+import math
+import zlib
+from typing import Any, Iterable, Mapping, Sequence
+
+import numpy as np
+
+from brimline.daemon.errors import ProtocolError
+from brimline.daemon.records import Estimate, LoadMap, TonePlan
+
+__all__ = [
+    "PROTOCOL_VERSION",
+    "TOPIC_MAP",
+    "TOPIC_HEARTBEAT",
+    "TOPIC_SNAPSHOT",
+    "TOPIC_STATUS",
+    "TOPIC_ACK",
+    "TOPIC_ESTIMATE",
+    "TOPIC_DECISION",
+    "SNAPSHOT_REQUEST",
+    "encode",
+    "decode",
+    "register_record",
+    "record_types",
+    "type_name",
+    "byte_view",
+]
+
+#: Version written into every header; a decoder refuses any other.
+PROTOCOL_VERSION = 1
+
+TOPIC_MAP = "map"  #: LoadMap updates (PUB)
+TOPIC_HEARTBEAT = "heartbeat"  #: liveness with the current epoch and seq (PUB)
+TOPIC_SNAPSHOT = "snapshot"  #: reply to a snapshot request (ROUTER)
+TOPIC_STATUS = "status"  #: operators' periodic status (status PUB)
+TOPIC_ACK = "ack"  #: transmitter acknowledgements (PUSH -> PULL)
+TOPIC_ESTIMATE = "estimate"  #: channel estimates (inproc hand-off, recordings)
+TOPIC_DECISION = "decision"  #: change-control decisions (status PUB, recordings)
+
+#: The single frame a client sends (after the empty delimiter) to ask for the current map.
+SNAPSHOT_REQUEST = b"snapshot"
+
+_DICT = "dict"
+_ALLOWED_DTYPES = frozenset(
+    ["|b1", "|u1", "|i1", "<u2", "<i2", "<u4", "<i4", "<u8", "<i8",
+     "<f4", "<f8", "<c8", "<c16"])
+_SCALAR_KINDS = ("int", "float", "str", "bool")
+_MAX_HEADER_BYTES = 1 << 20
+
+
+@dataclasses.dataclass(frozen=True)
+class _Schema:
+    name: str
+    cls: type
+    scalars: dict[str, str]  # field -> "int" | "float" | "str" | "bool"
+    arrays: dict[str, str]  # field -> dtype string, in field order
+    finite: frozenset[str]
+    required: frozenset[str]
+
+
+_BY_NAME: dict[str, _Schema] = {}
+_BY_CLASS: dict[type, _Schema] = {}
+
+
+def register_record(name: str, cls: type, *, arrays: Mapping[str, str],
+                    finite: Iterable[str] = ()) -> None:
+    """Teach the codec a frozen dataclass record type.
+
+    Parameters
+    ----------
+    name : str
+        The ``type`` written in headers (stable wire name, e.g. ``"load_map"``).
+    cls : type
+        A dataclass whose fields are ``int``, ``float``, ``str``, ``bool`` or ndarray.
+    arrays : mapping of str to str
+        Array field name -> little-endian dtype string the record documents (``"<f4"``).
+    finite : iterable of str
+        Fields (scalar or array) that must be finite; a decoded record violating it is refused.
+
+    Raises
+    ------
+    TypeError
+        When a field has a type the codec cannot carry, or a dtype is not allowed.
+    """
+    scalars: dict[str, str] = {}
+    required = set()
+    for f in dataclasses.fields(cls):
+        if f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING:
+            required.add(f.name)
+        if f.name in arrays:
+            if arrays[f.name] not in _ALLOWED_DTYPES:
+                raise TypeError(f"{cls.__name__}.{f.name}: dtype {arrays[f.name]!r} not allowed")
+            continue
+        kind = f.type if isinstance(f.type, str) else getattr(f.type, "__name__", str(f.type))
+        if kind not in _SCALAR_KINDS:
+            raise TypeError(f"{cls.__name__}.{f.name}: type {kind!r} cannot be encoded")
+        scalars[f.name] = kind
+    unknown = (set(arrays) | set(finite)) - {f.name for f in dataclasses.fields(cls)}
+    if unknown:
+        raise TypeError(f"{cls.__name__} has no fields {sorted(unknown)}")
+    order = [f.name for f in dataclasses.fields(cls) if f.name in arrays]
+    schema = _Schema(name, cls, scalars, {k: arrays[k] for k in order}, frozenset(finite),
+                     frozenset(required))
+    _BY_NAME[name] = schema
+    _BY_CLASS[cls] = schema
+
+
+register_record("load_map", LoadMap,
+                arrays={"tone_index": "<i2", "bits": "|u1", "power_lin": "<f4"},
+                finite=("created_s", "gap_db", "power_lin"))
+register_record("estimate", Estimate,
+                arrays={"tone_index": "<i2", "channel": "<c8", "noise_var": "<f4",
+                        "snr_db": "<f4"},
+                finite=("time_s",))
+register_record("tone_plan", TonePlan,
+                arrays={"data_tones": "<i2", "pilot_tones": "<i2", "null_tones": "<i2"},
+                finite=("sample_rate_hz",))
+
+
+def record_types() -> dict[str, type]:
+    """Wire type names the codec knows, with their record classes (``"dict"`` excluded)."""
+    return {name: s.cls for name, s in _BY_NAME.items()}
+
+
+def type_name(record: Any) -> str:
+    """Wire type name of ``record`` (``"dict"`` for a mapping)."""
+    if isinstance(record, Mapping):
+        return _DICT
+    schema = _BY_CLASS.get(type(record))
+    if schema is None:
+        raise TypeError(f"codec cannot encode a {type(record).__name__}")
+    return schema.name
+
+
+# --------------------------------------------------------------------------- encode
+
+
+def _le_part(value: Any, dtype: str | None, name: str) -> tuple[memoryview, dict]:
+    arr = np.asarray(value)
+    if dtype is None:  # dict payload: keep the array's own dtype, in little-endian spelling
+        dt = arr.dtype.newbyteorder("<") if arr.dtype.byteorder not in "|" else arr.dtype
+        dtype = dt.str
+        if dtype not in _ALLOWED_DTYPES:
+            raise TypeError(f"{name}: dtype {arr.dtype} cannot be encoded")
+    arr = np.asarray(arr, dtype=np.dtype(dtype), order="C")  # keeps 0-d shapes
+    view = memoryview(arr.reshape(-1).view(np.uint8))
+    return view, {"name": name, "dtype": dtype, "shape": list(arr.shape)}
+
+
+def _json_scalar(value: Any, where: str) -> Any:
+    """A JSON-ready value: numpy scalars unboxed, non-finite floats as strings."""
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        v = float(value)
+        if math.isfinite(v):
+            return v
+        return "nan" if math.isnan(v) else ("inf" if v > 0 else "-inf")
+    if isinstance(value, enum.Enum):  # DecisionKind and friends travel as their value
+        return _json_scalar(value.value, where)
+    if value is None:
+        return None
+    if isinstance(value, str):
+        return str(value)
+    if isinstance(value, Mapping):
+        out = {}
+        for k, v in value.items():
+            if not isinstance(k, str):
+                raise TypeError(f"{where}: key {k!r} is not a string")
+            out[k] = _json_scalar(v, f"{where}.{k}")
+        return out
+    if isinstance(value, np.ndarray):
+        return [_json_scalar(v, where) for v in value.tolist()]
+    if isinstance(value, (list, tuple)):
+        return [_json_scalar(v, f"{where}[{i}]") for i, v in enumerate(value)]
+    raise TypeError(f"{where}: a {type(value).__name__} cannot be encoded")
+
+
+def encode(topic: str, record: Any) -> list[bytes | memoryview]:
+    """Encode ``record`` as a multipart message on ``topic``.
+
+    Parameters
+    ----------
+    topic : str
+        ASCII stream name, e.g. :data:`TOPIC_MAP`.
+    record : LoadMap, Estimate, TonePlan, a registered record, or a mapping
+        A mapping is a plain JSON message (status, heartbeat): its top-level ndarray values
+        travel as array parts, everything else as JSON.
+
+    Returns
+    -------
+    list of bytes-like
+        ``[topic, header, *array_parts]``; array parts are zero-copy memoryviews of contiguous
+        little-endian arrays (give them to ``send_multipart`` or ``file.write`` as they are).
+
+    Raises
+    ------
+    TypeError
+        When the record or a value in it cannot be encoded (a bug in the caller).
+    ValueError
+        When a field the record type requires finite is not (e.g. NaN in ``power_lin``).
+    """
+    if not topic or not topic.isascii():
+        raise TypeError(f"topic {topic!r} must be a non-empty ASCII string")
+    parts: list[memoryview] = []
+    specs: list[dict] = []
+    if isinstance(record, Mapping):
+        kind = _DICT
+        fields = {}
+        for key, value in record.items():
+            if not isinstance(key, str):
+                raise TypeError(f"{topic}: key {key!r} is not a string")
+            if isinstance(value, np.ndarray):
+                view, spec = _le_part(value, None, key)
+                parts.append(view)
+                specs.append(spec)
+            else:
+                fields[key] = _json_scalar(value, f"{topic}.{key}")
+    else:
+        schema = _BY_CLASS.get(type(record))
+        if schema is None:
+            raise TypeError(f"codec cannot encode a {type(record).__name__}")
+        kind = schema.name
+        for name in schema.finite:  # refuse to send what every decoder would refuse
+            v = getattr(record, name)
+            if not (math.isfinite(v) if isinstance(v, float) else np.isfinite(v).all()):
+                raise ValueError(f"{kind}.{name} must be finite to be encoded")
+        fields = {name: _json_scalar(getattr(record, name), f"{kind}.{name}")
+                  for name in schema.scalars}
+        for name, dtype in schema.arrays.items():
+            view, spec = _le_part(getattr(record, name), dtype, name)
+            parts.append(view)
+            specs.append(spec)
+    crc = 0
+    for part in parts:
+        crc = zlib.crc32(part, crc)
+    header = {"v": PROTOCOL_VERSION, "type": kind, "fields": fields, "arrays": specs,
+              "crc32": crc}
+    head = json.dumps(header, separators=(",", ":"), allow_nan=False).encode("utf-8")
+    return [topic.encode("ascii"), head, *parts]
+
+
+# --------------------------------------------------------------------------- decode
+
+
+def byte_view(frame: Any) -> memoryview:
+    """A flat byte view of a frame given as bytes, memoryview, zmq.Frame or ndarray.
+
+    Raises
+    ------
+    ProtocolError
+        When ``frame`` does not expose a buffer.
+    """
+    buf = getattr(frame, "buffer", frame)  # zmq.Frame exposes .buffer
+    try:
+        view = memoryview(buf)
+    except TypeError:
+        raise ProtocolError(f"frame of type {type(frame).__name__} is not bytes") from None
+    if view.format == "B" and view.ndim == 1:
+        return view
+    try:
+        return view.cast("B")
+    except TypeError:  # formats memoryview cannot cast (complex, non-contiguous): copy
+        return memoryview(view.tobytes())
+
+
+def _float(value: Any, where: str) -> float:
+    if isinstance(value, bool):
+        raise ProtocolError(f"{where}={value!r} is not a number")
+    if isinstance(value, (int, float)):
+        return float(value)
+    if value in ("inf", "-inf", "nan"):
+        return float(value)
+    raise ProtocolError(f"{where}={value!r} is not a number")
+
+
+def _scalar(kind: str, value: Any, where: str) -> Any:
+    if kind == "float":
+        return _float(value, where)
+    if kind == "int":
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ProtocolError(f"{where}={value!r} is not an integer")
+        return value
+    if kind == "bool":
+        if not isinstance(value, bool):
+            raise ProtocolError(f"{where}={value!r} is not a boolean")
+        return value
+    if not isinstance(value, str):
+        raise ProtocolError(f"{where}={value!r} is not a string")
+    return value
+
+
+def _arrays(kind: str, specs: Any, parts: Sequence[memoryview],
+            expected: Mapping[str, str] | None) -> dict[str, np.ndarray]:
+    if not isinstance(specs, list):
+        raise ProtocolError(f"{kind}: header 'arrays' must be a list")
+    if len(parts) != len(specs):
+        raise ProtocolError(f"{kind}: header lists {len(specs)} arrays but the message has "
+                            f"{len(parts)} array parts")
+    out: dict[str, np.ndarray] = {}
+    for i, (spec, part) in enumerate(zip(specs, parts)):
+        if not isinstance(spec, dict) or set(spec) != {"name", "dtype", "shape"}:
+            raise ProtocolError(f"{kind}: array spec {i} must have exactly name, dtype, shape")
+        name, dtype, shape = spec["name"], spec["dtype"], spec["shape"]
+        if not isinstance(name, str) or name in out:
+            raise ProtocolError(f"{kind}: array spec {i} has a bad or repeated name {name!r}")
+        if dtype not in _ALLOWED_DTYPES:
+            raise ProtocolError(f"{kind}.{name}: dtype {dtype!r} is not allowed")
+        if expected is not None:
+            if name not in expected:
+                raise ProtocolError(f"{kind}: unknown array {name!r}")
+            if dtype != expected[name]:
+                raise ProtocolError(f"{kind}.{name}: dtype {dtype!r}, expected "
+                                    f"{expected[name]!r}")
+        if (not isinstance(shape, list)
+                or not all(isinstance(n, int) and not isinstance(n, bool) and n >= 0
+                           for n in shape)):
+            raise ProtocolError(f"{kind}.{name}: shape {shape!r} is not a list of sizes")
+        dt = np.dtype(dtype)
+        want = math.prod(shape) * dt.itemsize
+        if part.nbytes != want:
+            raise ProtocolError(f"{kind}.{name}: shape {shape} of {dtype} needs {want} bytes, "
+                                f"part has {part.nbytes}")
+        arr = np.frombuffer(part, dtype=dt).reshape(shape)
+        if dt.byteorder == "<" and not dt.isnative:  # big-endian host
+            arr = arr.astype(dt.newbyteorder("="))
+        out[name] = arr
+    if expected is not None and set(out) != set(expected):
+        raise ProtocolError(f"{kind}: missing arrays {sorted(set(expected) - set(out))}")
+    return out
+
+
+def decode(frames: Sequence[Any]) -> tuple[str, Any]:
+    """Decode a multipart message made by :func:`encode`.
+
+    Parameters
+    ----------
+    frames : sequence of bytes, memoryview or zmq.Frame
+        ``[topic, header, *array_parts]``.
+
+    Returns
+    -------
+    topic : str
+    record : LoadMap, Estimate, TonePlan, a registered record, or dict
+        Arrays in a decoded dict are read-only.
+
+    Raises
+    ------
+    ProtocolError
+        Wrong part count, a non-ASCII topic, a header that is not JSON or lacks keys, another
+        protocol version, an unknown record type or field, a missing field, a dtype or shape
+        that does not match its part, a CRC mismatch, a non-finite value where the record type
+        forbids it, or field values the record itself refuses.
+    """
+    if len(frames) < 2:
+        raise ProtocolError(f"message has {len(frames)} parts, needs at least topic and header")
+    views = [byte_view(f) for f in frames]
+    try:
+        topic = bytes(views[0]).decode("ascii")
+    except UnicodeDecodeError:
+        raise ProtocolError("topic is not ASCII") from None
+    if not topic:
+        raise ProtocolError("topic is empty")
+    if views[1].nbytes > _MAX_HEADER_BYTES:
+        raise ProtocolError(f"{topic}: header of {views[1].nbytes} bytes is too large")
+    try:
+        header = json.loads(bytes(views[1]).decode("utf-8"))
+    except (UnicodeDecodeError, ValueError, RecursionError) as exc:  # nesting bombs too
+        raise ProtocolError(f"{topic}: header is not JSON: {exc}") from None
+    if not isinstance(header, dict):
+        raise ProtocolError(f"{topic}: header is not a JSON object")
+    missing = {"v", "type", "fields", "arrays", "crc32"} - set(header)
+    if missing:
+        raise ProtocolError(f"{topic}: header lacks {sorted(missing)}")
+    if header["v"] != PROTOCOL_VERSION:
+        raise ProtocolError(f"{topic}: protocol version {header['v']!r}, this decoder reads "
+                            f"{PROTOCOL_VERSION}")
+    kind = header["type"]
+    if kind != _DICT and kind not in _BY_NAME:
+        raise ProtocolError(f"{topic}: unknown record type {kind!r}")
+    fields = header["fields"]
+    if not isinstance(fields, dict):
+        raise ProtocolError(f"{topic}: header 'fields' must be an object")
+    parts = views[2:]
+    specs = header["arrays"]
+    if not isinstance(specs, list):
+        raise ProtocolError(f"{kind}: header 'arrays' must be a list")
+    if len(parts) != len(specs):
+        raise ProtocolError(f"{kind}: header lists {len(specs)} arrays but the message has "
+                            f"{len(parts)} array parts")
+    crc = 0
+    for part in parts:
+        crc = zlib.crc32(part, crc)
+    if header["crc32"] != crc:
+        raise ProtocolError(f"{topic}: checksum mismatch (header crc32={header['crc32']!r}, "
+                            f"payload {crc})")
+    if kind == _DICT:
+        arrays = _arrays(kind, header["arrays"], parts, None)
+        record = dict(fields)
+        for name, arr in arrays.items():
+            if name in record:
+                raise ProtocolError(f"{topic}: key {name!r} is both a field and an array")
+            arr = arr.copy() if arr.flags.writeable else arr
+            arr.setflags(write=False)
+            record[name] = arr
+        return topic, record
+    schema = _BY_NAME[kind]
+    arrays = _arrays(kind, header["arrays"], parts, schema.arrays)
+    unknown = set(fields) - set(schema.scalars)
+    if unknown:
+        raise ProtocolError(f"{kind}: unknown fields {sorted(unknown)}")
+    absent = (schema.required - set(schema.arrays)) - set(fields)
+    if absent:
+        raise ProtocolError(f"{kind}: missing fields {sorted(absent)}")
+    values: dict[str, Any] = {}
+    for name, raw in fields.items():
+        values[name] = _scalar(schema.scalars[name], raw, f"{kind}.{name}")
+    for name in schema.finite:
+        v = values.get(name, arrays.get(name))
+        if v is None:
+            continue
+        ok = math.isfinite(v) if isinstance(v, float) else bool(np.isfinite(v).all())
+        if not ok:
+            raise ProtocolError(f"{kind}.{name} must be finite")
+    values.update(arrays)
+    try:
+        record = schema.cls(**values)
+    except (ValueError, TypeError) as exc:
+        raise ProtocolError(f"{kind}: {exc}") from None
+    return topic, record

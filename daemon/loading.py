@@ -1,0 +1,1016 @@
+"""Bit and power loading over OFDM tones: SNR gap, QAM error rates, water-filling, discrete loading.
+
+Conventions shared by everything here (other modules and the tests rely on them):
+
+* ``snr`` is the **linear** per-tone SNR at nominal per-tone transmit power, a float array (N,).
+  An SNR of 0 is legal: that tone never loads.
+* A tone carrying ``b`` bits needs power ``gap * (2**b - 1) / snr`` (``gap`` linear, any target
+  margin and coding gain already folded into it), relative to nominal. 0-bit tones get 0 power.
+* The total budget is ``N * 10**(budget_db / 10)`` (N tones at nominal scaled by ``budget_db``);
+  each tone's power is at most ``10**(cap_db / 10)`` (``cap_db = inf``: no ceiling).
+* ``margin_db`` of an allocation is the largest uniform factor, in dB, by which every loaded
+  tone's *required* power could grow and still fit the budget and the ceilings (``+inf`` when
+  nothing is loaded).
+
+The discrete loaders work on each tone's energy-versus-bits table. The table is the same for
+every tone up to the factor ``gap / snr``, so the per-bit tables (step sizes, incremental
+energies, their efficiencies) are built once by :class:`Loader` and every frame costs a few
+vectorized passes over the tones plus one small sort. The hard searches are private helpers
+(``_rate_steps``, ``_margin_steps``, ``_water_level``) that the tests call directly.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from dataclasses import dataclass
+from typing import Iterable
+
+import numpy as np
+from scipy import special
+
+from brimline.daemon.errors import InfeasibleError, InputError
+from brimline.daemon.records import Allocation, frozen_array
+
+__all__ = [
+    "qam_gap_db",
+    "qam_ser",
+    "qam_ber",
+    "Waterfill",
+    "waterfill",
+    "load_rate",
+    "load_margin",
+    "Loader",
+    "MAX_BITS",
+]
+
+#: Largest bits per tone the loaders accept (65536-QAM).
+MAX_BITS = 16
+
+#: Largest magnitude accepted for a dB setting (gap, budget, ceiling, margin): far beyond any
+#: link, and small enough that every linear value stays a normal float.
+DB_LIMIT = 300.0
+
+#: Nearest-neighbour count used by the gap formula: a large square QAM is two PAM dimensions and
+#: an inner PAM point has two neighbours (the per-dimension count of the gap approximation,
+#: Cioffi's DMT notes ch. 1; from memory for the form). With it a symbol error rate of 1e-7 gives
+#: 9.76 dB, the common-practice "9.8 dB" gap of uncoded QAM.
+GAP_NEIGHBOURS = 2.0
+
+
+# --------------------------------------------------------------------------- validation
+
+
+def _finite_db(name: str, value, *, allow_pos_inf: bool = False) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise InputError(f"{name}={value!r} must be a number in dB") from None
+    if math.isnan(v) or v == -math.inf or (v == math.inf and not allow_pos_inf):
+        what = "finite or +inf" if allow_pos_inf else "finite"
+        raise InputError(f"{name}={value!r} must be {what}")
+    if math.isfinite(v) and abs(v) > DB_LIMIT:
+        raise InputError(f"{name}={value!r} is beyond +-{DB_LIMIT:g} dB")
+    return v
+
+
+def _as_snr(snr) -> np.ndarray:
+    """Validate a linear per-tone SNR array; return it as float64 (N,)."""
+    try:
+        arr = np.asarray(snr, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InputError(f"snr must be an array of numbers, got {type(snr).__name__}") from None
+    if arr.ndim != 1:
+        raise InputError(f"snr must be 1-D (one value per tone), got shape {arr.shape}")
+    with np.errstate(over="ignore"):
+        if arr.size and arr.min() >= 0.0 and math.isfinite(float(arr.sum())):
+            return arr  # the usual case, in two cheap passes
+    bad = ~(np.isfinite(arr) & (arr >= 0.0))
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise InputError(f"snr[{i}]={float(arr[i])!r} must be finite and >= 0 (linear SNR)")
+    return arr
+
+
+@dataclass(frozen=True)
+class _BitTables:
+    """Per-bit tables of one allowed-bits set, shared by every loader that uses the set."""
+
+    bits: np.ndarray         # (J,) allowed bits, ascending from 0
+    energy: np.ndarray       # (J,) 2**b - 1: a tone's power in units of gap/snr
+    step_energy: np.ndarray  # (J-1,) energy of the step from bits[j] to bits[j+1]
+    step_bits: np.ndarray    # (J-1,) bits gained by that step
+    step_key: np.ndarray     # (J-1,) log2 of the step's energy per bit (increasing)
+    unit_steps: bool         # consecutive bits: every step is one bit
+    max_step: int
+    mean_step: float
+    key_spacing: float       # smallest gap between consecutive step keys
+
+
+def _as_bit_set(bits) -> _BitTables:
+    """Validate an allowed-bits set (integers, strictly ascending, from 0, <= MAX_BITS) and
+    return its tables."""
+    try:
+        values = tuple(bits)
+    except TypeError:
+        raise InputError(f"bits={bits!r} must be a list of integers") from None
+    if not values or not all(isinstance(b, (int, np.integer)) and not isinstance(b, bool)
+                             for b in values):
+        raise InputError(f"bits={list(values)!r} must be a non-empty list of integers")
+    values = tuple(int(b) for b in values)
+    if values[0] != 0 or any(b <= a for a, b in zip(values, values[1:])) \
+            or values[-1] > MAX_BITS:
+        raise InputError(f"bits={list(values)!r} must be ascending, start at 0 and stay "
+                         f"<= {MAX_BITS}")
+    return _bit_tables(values)
+
+
+@functools.lru_cache(maxsize=64)
+def _bit_tables(values: tuple[int, ...]) -> _BitTables:
+    bits = np.array(values, dtype=np.int64)
+    levels = np.ldexp(1.0, bits)
+    step_energy = np.diff(levels)
+    step_bits = np.diff(bits)
+    step_key = np.log2(step_energy / step_bits)
+    tables = _BitTables(
+        bits=bits, energy=levels - 1.0, step_energy=step_energy, step_bits=step_bits,
+        step_key=step_key, unit_steps=bool(np.all(step_bits == 1)),
+        max_step=int(step_bits.max()) if step_bits.size else 1,
+        mean_step=float(step_bits.mean()) if step_bits.size else 1.0,
+        key_spacing=float(np.diff(step_key).min()) if step_key.size > 1 else 1.0)
+    for table in (tables.bits, tables.energy, tables.step_energy, tables.step_bits,
+                  tables.step_key):
+        table.setflags(write=False)
+    return tables
+
+
+# --------------------------------------------------------------------------- gap and error rates
+
+
+def qam_gap_db(target_ser: float, *, coding_gain_db: float = 0.0, margin_db: float = 0.0,
+               neighbours: float = GAP_NEIGHBOURS) -> float:
+    """SNR gap of uncoded QAM for a target symbol error rate, with coding gain and margin.
+
+    Parameters
+    ----------
+    target_ser : float
+        Target symbol error probability, in (0, 0.5).
+    coding_gain_db : float
+        Coding gain in dB, subtracted from the gap.
+    margin_db : float
+        Target noise margin in dB, added to the gap.
+    neighbours : float
+        Nearest-neighbour count ``Ne`` (default 2, see :data:`GAP_NEIGHBOURS`).
+
+    Returns
+    -------
+    float
+        ``10*log10(Q^-1(Pe/Ne)**2 / 3) - coding_gain_db + margin_db`` in dB.
+
+    Raises
+    ------
+    InputError
+        ``target_ser`` outside (0, 0.5) or a non-finite dB value.
+
+    Notes
+    -----
+    The gap approximation ``b = log2(1 + SNR / Gamma)`` with ``Gamma = [Q^-1(Pe/Ne)]^2 / 3`` for
+    uncoded QAM (Cioffi's DMT notes, ch. 1; the usual reading of the SNR gap). ``Q^-1`` is
+    computed as ``sqrt(2) * erfcinv(2 x)``.
+
+    Examples
+    --------
+    >>> round(qam_gap_db(1e-7), 2)
+    9.76
+    """
+    try:
+        pe = float(target_ser)
+    except (TypeError, ValueError):
+        raise InputError(f"target_ser={target_ser!r} must be a number") from None
+    if not 0.0 < pe < 0.5:
+        raise InputError(f"target_ser={target_ser!r} must be in (0, 0.5)")
+    cg = _finite_db("coding_gain_db", coding_gain_db)
+    mg = _finite_db("margin_db", margin_db)
+    if not (math.isfinite(neighbours) and neighbours >= 1.0):
+        raise InputError(f"neighbours={neighbours!r} must be >= 1")
+    q_inv = math.sqrt(2.0) * float(special.erfcinv(2.0 * pe / neighbours))
+    return 10.0 * math.log10(q_inv * q_inv / 3.0) - cg + mg
+
+
+def _qfunc(x):
+    """Gaussian tail probability Q(x) = P(N(0,1) > x)."""
+    return 0.5 * special.erfc(np.asarray(x, dtype=np.float64) / math.sqrt(2.0))
+
+
+def _grid_shape(bits_per_symbol: int) -> tuple[int, int]:
+    """Levels per dimension (in-phase, quadrature) of the rectangular QAM with that many bits."""
+    if not isinstance(bits_per_symbol, (int, np.integer)) or not 1 <= bits_per_symbol <= MAX_BITS:
+        raise InputError(f"bits_per_symbol={bits_per_symbol!r} must be an integer in 1..{MAX_BITS}")
+    k_i = (int(bits_per_symbol) + 1) // 2
+    return 2 ** k_i, 2 ** (int(bits_per_symbol) - k_i)
+
+
+def _half_distance(es_n0, m_i: int, m_q: int) -> np.ndarray:
+    """d/2 over the noise standard deviation per dimension, ``d / sqrt(2 N0)``.
+
+    A rectangular grid of ``m_i x m_q`` points spaced ``d`` has average energy
+    ``d**2 * (m_i**2 + m_q**2 - 2) / 12``.
+    """
+    es_n0 = np.asarray(es_n0, dtype=np.float64)
+    return np.sqrt(6.0 * es_n0 / (m_i * m_i + m_q * m_q - 2))
+
+
+def qam_ser(bits_per_symbol: int, es_n0, *, cross: bool = False) -> np.ndarray:
+    """Exact symbol error probability of square, rectangular or cross QAM on AWGN.
+
+    Parameters
+    ----------
+    bits_per_symbol : int
+        1 (BPSK), 2 (4-QAM), 3 (4x2 rectangular), 4 (16-QAM), ... Without ``cross`` an odd
+        count uses the rectangular grid of ``2**ceil(b/2) x 2**floor(b/2)`` points.
+    es_n0 : float or array_like
+        Average symbol energy over N0, linear.
+    cross : bool
+        Use the cross constellation (odd ``bits_per_symbol`` >= 5: 32-, 128-, 512-QAM ...).
+
+    Returns
+    -------
+    ndarray
+        Symbol error probability, same shape as ``es_n0``.
+
+    Notes
+    -----
+    Minimum-distance detection on a rectangular grid decides each dimension separately, so
+    ``P_c = (1 - P_I)(1 - P_Q)`` with the M-PAM error ``P = 2 (1 - 1/M) Q(d / sqrt(2 N0))``
+    (Proakis, Digital Communications, 5th ed., sec. 4.3: for square M this is
+    ``1 - (1 - P_sqrtM)**2`` with ``P_sqrtM = 2 (1 - 1/sqrt(M)) Q(sqrt(3 Es / ((M - 1) N0)))``).
+    A cross constellation's cells next to the missing corners are not rectangles; its error
+    rate is integrated cell by cell (``brimline.daemon._lattice_cells``), to about 1e-10
+    relative, one SNR value at a time (milliseconds each: for tables and tests, not per frame).
+    """
+    if cross:
+        from brimline.daemon._lattice_cells import constellation_ser, cross_points
+
+        if not isinstance(bits_per_symbol, (int, np.integer)) or bits_per_symbol < 5 \
+                or bits_per_symbol % 2 == 0 or bits_per_symbol > 13:
+            raise InputError(f"bits_per_symbol={bits_per_symbol!r} must be odd, 5..13 for a "
+                             "cross constellation")
+        pts = cross_points(int(bits_per_symbol))
+        values = np.asarray(es_n0, dtype=np.float64)
+        out = np.array([constellation_ser(pts, float(v)) for v in values.ravel()])
+        return out.reshape(values.shape)
+    m_i, m_q = _grid_shape(bits_per_symbol)
+    x = _half_distance(es_n0, m_i, m_q)
+    q = _qfunc(x)
+    p_i = 2.0 * (1.0 - 1.0 / m_i) * q
+    p_q = 2.0 * (1.0 - 1.0 / m_q) * q if m_q > 1 else np.zeros_like(q)
+    return p_i + p_q - p_i * p_q  # = 1 - (1 - p_i)(1 - p_q), without cancelling
+
+
+def _gray_pam_bit_errors(m: int, x: np.ndarray) -> np.ndarray:
+    """Average bit errors per symbol of Gray-coded M-PAM, exact, for half-distance ratios ``x``.
+
+    Sums, over every transmitted level and every decision interval, the Hamming distance of the
+    two Gray labels times the probability that the noise lands in that interval.
+    """
+    if m == 1:
+        return np.zeros_like(x)
+    levels = np.arange(m)
+    gray = levels ^ (levels >> 1)
+    ham = np.array([[bin(int(a ^ b)).count("1") for b in gray] for a in gray], dtype=np.float64)
+    # Decision boundaries are half-way between levels: in units of d/2 from level i's centre,
+    # interval j spans (2(j - i) - 1, 2(j - i) + 1), the outer ones open to infinity.
+    offs = 2.0 * (levels[None, :] - levels[:, None])  # (tx, rx)
+    lo = np.where(levels[None, :] == 0, -np.inf, offs - 1.0)
+    hi = np.where(levels[None, :] == m - 1, np.inf, offs + 1.0)
+    xx = x.reshape(-1, 1, 1)
+    # P(lo x < Z < hi x) for a standard normal Z, from the near tail so nothing cancels
+    # (the error terms are tiny at high SNR; the straddling interval has Hamming distance 0).
+    with np.errstate(invalid="ignore"):
+        below = special.ndtr(hi * xx) - special.ndtr(lo * xx)
+        above = _qfunc(lo * xx) - _qfunc(hi * xx)
+    prob = np.where(hi <= 0, below, above)
+    errs = (prob * ham).sum(axis=(1, 2)) / m
+    return errs.reshape(x.shape)
+
+
+def qam_ber(bits_per_symbol: int, es_n0) -> np.ndarray:
+    """Exact bit error probability of Gray-coded square or rectangular QAM on AWGN.
+
+    Parameters
+    ----------
+    bits_per_symbol : int
+        Bits per QAM symbol (see :func:`qam_ser` for the grid used).
+    es_n0 : float or array_like
+        Average symbol energy over N0, linear (``Eb/N0 = Es/N0 / bits_per_symbol``).
+
+    Returns
+    -------
+    ndarray
+        Bit error probability, same shape as ``es_n0``.
+
+    Notes
+    -----
+    Each dimension is a Gray-coded PAM decided separately; the bit errors of each are summed
+    exactly over transmitted levels and decision intervals. This equals the closed form of Cho
+    and Yoon, "On the general BER expression of one- and two-dimensional amplitude modulations",
+    IEEE Trans. Commun. 50(7), 2002, which the tests check it against.
+    """
+    m_i, m_q = _grid_shape(bits_per_symbol)
+    x = np.atleast_1d(_half_distance(es_n0, m_i, m_q))
+    errs = _gray_pam_bit_errors(m_i, x) + _gray_pam_bit_errors(m_q, x)
+    out = errs / bits_per_symbol
+    return out.reshape(np.shape(es_n0))
+
+
+# --------------------------------------------------------------------------- water-filling
+
+
+@dataclass(frozen=True)
+class Waterfill:
+    """Result of continuous water-filling.
+
+    Attributes
+    ----------
+    power : ndarray of float64
+        Power per tone, linear, relative to nominal.
+    water_level : float
+        The level ``mu`` with ``power = clip(mu - gap/snr, 0, cap)`` (linear, relative to
+        nominal); ``nan`` when no tone can take power (all SNR 0).
+    capacity_bits : float
+        ``sum(log2(1 + power * snr / gap))``, bits per OFDM symbol.
+    """
+
+    power: np.ndarray
+    water_level: float
+    capacity_bits: float
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "power", frozen_array(self.power, np.float64, "power"))
+        object.__setattr__(self, "water_level", float(self.water_level))
+        object.__setattr__(self, "capacity_bits", float(self.capacity_bits))
+
+
+def _water_level(floor_lin: np.ndarray, budget: float, cap: float) -> float:
+    """Exact water level for ``sum(clip(mu - floor_lin, 0, cap)) = budget``.
+
+    ``floor_lin`` holds ``gap / snr`` of the tones that can take power (finite, > 0). The total
+    is piecewise linear in ``mu`` with breakpoints at ``floor_lin`` (slope +1) and
+    ``floor_lin + cap`` (slope -1); the breakpoints are sorted once and the segment holding the
+    budget is solved in closed form. When the ceilings hold less than the budget the lowest
+    level that fills every tone to its ceiling is returned.
+    """
+    n = floor_lin.size
+    if n == 0:
+        return math.nan
+    if math.isfinite(cap):
+        if cap * n <= budget:
+            return float(floor_lin.max() + cap)
+        points = np.concatenate([floor_lin, floor_lin + cap])
+        delta = np.concatenate([np.ones(n), -np.ones(n)])
+    else:
+        points = floor_lin
+        delta = np.ones(n)
+    order = np.argsort(points, kind="stable")
+    pts = points[order]
+    slope = np.cumsum(delta[order])  # slope just after each breakpoint
+    filled = np.concatenate([[0.0], np.cumsum(slope[:-1] * np.diff(pts))])  # total at each point
+    k = int(np.searchsorted(filled, budget, side="left"))  # first breakpoint reaching it
+    if k < pts.size and filled[k] == budget:  # also the start of a plateau at the budget
+        return float(pts[k])
+    k -= 1  # the budget lies inside the segment after breakpoint k, whose slope is > 0
+    return float(pts[k] + (budget - filled[k]) / slope[k])
+
+
+def waterfill(snr, *, gap_db: float = 0.0, budget_db: float = 0.0,
+              cap_db: float = math.inf) -> Waterfill:
+    """Continuous water-filling of the power budget over the tones, with a per-tone ceiling.
+
+    Parameters
+    ----------
+    snr : array_like of float
+        Linear per-tone SNR at nominal power, (N,), finite and >= 0.
+    gap_db : float
+        SNR gap in dB (0 for the Shannon capacity).
+    budget_db : float
+        Total power relative to N tones at nominal, dB.
+    cap_db : float
+        Per-tone power ceiling relative to nominal, dB (``inf``: none).
+
+    Returns
+    -------
+    Waterfill
+        Powers, water level and ``capacity_bits``.
+
+    Raises
+    ------
+    InputError
+        Bad SNR values or dB values.
+
+    Notes
+    -----
+    Maximises ``sum log2(1 + p_k snr_k / gap)`` subject to ``sum p_k <= P`` and ``p_k <= cap``:
+    ``p_k = clip(mu - gap/snr_k, 0, cap)`` (Cover and Thomas, Elements of Information Theory,
+    sec. 9.4; Goldsmith, Wireless Communications, eqs. 4.24-4.26). The level is found exactly
+    by :func:`_water_level`, with no iteration count to tune.
+
+    Examples
+    --------
+    >>> wf = waterfill([1.0, 0.5, 0.25], budget_db=0.0)  # noise 1, 2, 4; P = 3
+    >>> wf.water_level, wf.power.tolist()
+    (3.0, [2.0, 1.0, 0.0])
+    """
+    snr = _as_snr(snr)
+    gap = 10.0 ** (_finite_db("gap_db", gap_db) / 10.0)
+    budget = snr.size * 10.0 ** (_finite_db("budget_db", budget_db) / 10.0)
+    cap = 10.0 ** (_finite_db("cap_db", cap_db, allow_pos_inf=True) / 10.0)
+    active = snr > 0.0
+    floor_lin = gap / snr[active]
+    mu = _water_level(floor_lin, budget, cap)
+    power = np.zeros(snr.size)
+    if active.any():
+        power[active] = np.clip(mu - floor_lin, 0.0, cap)
+    capacity = float(np.log2(1.0 + power[active] * snr[active] / gap).sum())
+    return Waterfill(power=power, water_level=mu, capacity_bits=capacity)
+
+
+# --------------------------------------------------------------------------- discrete loading
+
+
+@dataclass(frozen=True)
+class _Tones:
+    """Per-frame quantities of the tones, derived from the SNR and the loader's tables.
+
+    A tone that cannot take even its first step within the ceiling and the whole budget is
+    *unloadable*: ``unit`` 0, ``log_unit`` +inf, ``top`` 0.
+    """
+
+    unit: np.ndarray      # gap / snr: power per unit of (2**b - 1)
+    log_unit: np.ndarray  # log2(unit)
+    top: np.ndarray       # highest index into the bit set the ceiling (and budget) allow
+    top_f: np.ndarray     # top as float64, for the unit-step search
+    unit_sum: float       # sum(unit): the energy of n steps is dot(unit, 2**n) - unit_sum
+
+
+class Loader:
+    """Precomputed discrete bit loader, called once per frame with the per-tone SNR.
+
+    Parameters
+    ----------
+    mode : {"rate", "margin", "waterfill"}
+        ``rate``: the most bits within budget and ceilings. ``margin``: exactly ``target_bits``
+        with the least power, then every loaded tone's power scaled up by the largest uniform
+        margin. ``waterfill``: continuous water-filling, each tone's bits rounded down to the
+        allowed set, the water-filled power kept on loaded tones.
+    bits : iterable of int
+        Allowed bits per tone, ascending, starting at 0, at most :data:`MAX_BITS`. Holes are
+        allowed (e.g. ``0, 1, 2, 4, 6, 8``).
+    gap_db : float
+        SNR gap in dB, coding gain and target margin included.
+    budget_db : float
+        Total power relative to N tones at nominal, dB.
+    cap_db : float
+        Per-tone power ceiling relative to nominal, dB (``inf``: none).
+    target_bits : int, optional
+        Bits per OFDM symbol for ``mode="margin"`` (required there).
+
+    Notes
+    -----
+    Each tone's power for ``b`` bits is ``u * (2**b - 1)`` with ``u = gap / snr``, so one table
+    of steps serves every tone: step ``j`` goes from ``bits[j]`` to ``bits[j + 1]`` and costs
+    ``u * (2**bits[j+1] - 2**bits[j])``, i.e. ``u * eff_j`` per bit. The efficiencies grow with
+    ``j`` because ``2**b`` is convex, so each tone's table is its own lower convex hull.
+
+    *Rate mode* gives the allocation that Levin-Campello loading defines (Campello,
+    "Practical bit loading for DMT", ICC 1999: efficient, i.e. no bit moved between tones saves
+    power, and E-tight, i.e. no further bit fits), but by a threshold search instead of
+    Levin-Campello's bit-by-bit iteration. At a Lagrange threshold ``t`` on ``log2`` of the cost
+    per bit a tone takes every step with ``log2(u) + log2(eff_j) <= t``, a closed form per tone.
+    A search on ``t`` (a first guess, doubling steps, bisection until the bracket is narrower
+    than the spacing of the ``log2(eff_j)`` so that no tone has two steps inside it, one
+    interpolated probe) brackets the budget; the steps inside the bracket are sorted by
+    efficiency and taken while they fit. With unit steps
+    (consecutive bit sets) it is exactly optimal: it takes the cheapest increments there are.
+    With holes it is the Lagrangian (convex-hull) solution and is within ``max_step - 1`` bits
+    of the optimum (one bit for ``0, 1, 2, 4, 6, 8``), since the continuous relaxation over the
+    hull exceeds it by less than the one step that did not fit.
+
+    *Margin mode*: the same search on the bit count gives the least power for exactly
+    ``target_bits`` (exact for consecutive sets). With holes, a remainder smaller than the next
+    step is filled by the cheapest single step of the right size, or a step up on one tone and
+    down on another; the power is then near-minimal, not guaranteed minimal.
+
+    Rate mode does not spread leftover power: loaded tones get their required power and
+    ``margin_db`` reports the headroom.
+
+    The settings are fixed once built (attributes ``mode``, ``bits``, ``gap_db``,
+    ``budget_db``, ``cap_db``, ``target_bits`` are read-only); build another loader to change
+    them. Calls keep no state, so one loader may serve many threads.
+    """
+
+    def __init__(self, *, mode: str = "rate", bits: Iterable[int] = range(9), gap_db: float,
+                 budget_db: float = 0.0, cap_db: float = math.inf,
+                 target_bits: int | None = None) -> None:
+        if mode not in ("rate", "margin", "waterfill"):
+            raise InputError(f"mode={mode!r} must be one of rate, margin, waterfill")
+        tables = _as_bit_set(bits)
+        gap_db = _finite_db("gap_db", gap_db)
+        budget_db = _finite_db("budget_db", budget_db)
+        cap_db = _finite_db("cap_db", cap_db, allow_pos_inf=True)
+        if target_bits is not None:
+            if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
+                    or target_bits < 0:
+                raise InputError(f"target_bits={target_bits!r} must be an integer >= 0")
+            target_bits = int(target_bits)
+        if mode == "margin" and target_bits is None:
+            raise InputError("target_bits is required with mode='margin'")
+        gap = 10.0 ** (gap_db / 10.0)
+        settings = {
+            "mode": mode, "bits": tables.bits, "gap_db": gap_db, "budget_db": budget_db,
+            "cap_db": cap_db, "target_bits": target_bits,
+            "_gap": gap, "_log2_gap": math.log2(gap),
+            "_per_tone_budget": 10.0 ** (budget_db / 10.0), "_cap": 10.0 ** (cap_db / 10.0),
+            # Tables over the bit set (cached per set, read-only): see _BitTables.
+            "_energy": tables.energy, "_step_energy": tables.step_energy,
+            "_step_bits": tables.step_bits, "_step_key": tables.step_key,
+            "_unit_steps": tables.unit_steps, "_max_step": tables.max_step,
+            "_mean_step": tables.mean_step, "_key_spacing": tables.key_spacing,
+        }
+        self.__dict__.update(settings)
+        self._frozen = True
+
+    def __setattr__(self, name: str, value) -> None:
+        if getattr(self, "_frozen", False):  # the tables follow from the settings
+            raise AttributeError(f"Loader settings are fixed; build a new Loader to change {name}")
+        object.__setattr__(self, name, value)
+
+    def __repr__(self) -> str:
+        return (f"Loader(mode={self.mode!r}, bits={self.bits.tolist()}, gap_db={self.gap_db}, "
+                f"budget_db={self.budget_db}, cap_db={self.cap_db}, "
+                f"target_bits={self.target_bits})")
+
+    # ---------------------------------------------------------------- per-tone helpers
+
+    def _tones(self, snr: np.ndarray, budget: float) -> _Tones:
+        with np.errstate(divide="ignore"):
+            log_unit = self._log2_gap - np.log2(snr)  # +inf where the SNR is 0
+            unit = self._gap / snr
+        # Step j is allowed when unit * (2**b_j - 1) fits the ceiling and the whole budget.
+        # Excluding tones that could never load also keeps unit_sum small next to the budget,
+        # so the energy formula of _energy_of loses nothing to cancellation.
+        last = self.bits.size - 1
+        if math.isfinite(self._cap) or last == 0:
+            room = min(self._cap, budget) / unit
+            top = np.searchsorted(self._energy, room, side="right") - 1
+            dead = top == 0
+            top_f = top.astype(np.float64)
+        else:  # only the budget limits a tone: drop those that cannot afford the first step
+            dead = unit > budget / self._energy[1]
+            if dead.any():
+                top = np.where(dead, 0, last)
+                top_f = top.astype(np.float64)
+            else:
+                top = np.full(unit.size, last, dtype=np.int64)
+                top_f = np.full(unit.size, float(last))
+        if dead.any():
+            unit[dead] = 0.0
+            log_unit[dead] = np.inf
+        return _Tones(unit=unit, log_unit=log_unit, top=top, top_f=top_f,
+                      unit_sum=float(unit.sum()))
+
+    def _steps_at(self, tones: _Tones, t: float) -> np.ndarray:
+        """Steps each tone takes at threshold ``t`` (log2 of the cost per bit), capped.
+
+        Unit-step sets return float64 counts (exact integers) for the cheap energy formula.
+        """
+        if self._unit_steps:  # keys are 0, 1, 2, ...: a floor does the search
+            n = np.subtract(t + 1.0, tones.log_unit)
+            np.floor(n, out=n)
+            np.maximum(n, 0.0, out=n)  # two ufuncs are cheaper than np.clip here
+            np.minimum(n, tones.top_f, out=n)
+            return n
+        n = np.searchsorted(self._step_key, t - tones.log_unit, side="right")
+        np.minimum(n, tones.top, out=n)
+        return n
+
+    def _energy_of(self, tones: _Tones, n: np.ndarray) -> float:
+        """Total required power of ``n`` steps per tone, linear."""
+        if self._unit_steps:
+            return float(np.dot(tones.unit, np.exp2(n))) - tones.unit_sum
+        return float(np.dot(tones.unit, self._energy[n]))
+
+    def _bits_of(self, n: np.ndarray) -> int:
+        if self._unit_steps:
+            return int(n.sum())
+        return int(self.bits[n].sum())
+
+    def required_power(self, bits, snr) -> np.ndarray:
+        """Power each tone needs for its bits: ``gap * (2**bits - 1) / snr`` (0 for 0 bits).
+
+        Parameters
+        ----------
+        bits : array_like of int
+            Bits per tone, (N,).
+        snr : array_like of float
+            Linear per-tone SNR at nominal power, (N,).
+
+        Returns
+        -------
+        ndarray of float64
+            Linear power relative to nominal; ``inf`` where bits > 0 on a tone with SNR 0.
+        """
+        snr = _as_snr(snr)
+        b = np.asarray(bits, dtype=np.int64)
+        if b.shape != snr.shape:
+            raise InputError(f"bits has shape {b.shape}, snr has shape {snr.shape}")
+        need = self._gap * (np.ldexp(1.0, b) - 1.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = np.where(b > 0, need / snr, 0.0)
+        return out
+
+    def tone_margin_db(self, bits, power, snr) -> np.ndarray:
+        """Per-tone margin in dB: ``10*log10(power / required_power)``, ``+inf`` for 0 bits."""
+        need = self.required_power(bits, snr)
+        p = np.asarray(power, dtype=np.float64)
+        if p.shape != need.shape:
+            raise InputError(f"power has shape {p.shape}, snr has shape {need.shape}")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = np.where(need > 0, 10.0 * np.log10(p / np.where(need > 0, need, 1.0)), np.inf)
+        return out
+
+    def _budget(self, n_tones: int) -> float:
+        return n_tones * self._per_tone_budget
+
+    def _margin(self, need: np.ndarray, budget: float) -> float:
+        """Largest uniform growth factor of the required powers, in dB (+inf if none loaded)."""
+        total = float(need.sum())
+        if total <= 0.0:
+            return math.inf
+        factor = budget / total
+        if math.isfinite(self._cap):
+            factor = min(factor, self._cap / float(need.max()))
+        return 10.0 * math.log10(factor)
+
+    # ---------------------------------------------------------------- searches
+
+    def _bracket(self, tones: _Tones, measure, limit: float, guess: float):
+        """Narrow the threshold until no tone has two steps inside ``(lo, hi]``.
+
+        ``measure(n)`` is nondecreasing in the steps ``n``. Returns ``(n_lo, n_hi, m_lo)`` with
+        ``m_lo = measure(n_lo) <= limit < measure(n_hi)``, or ``(top, None, measure(top))`` when
+        everything fits. The search starts at ``guess`` and widens by doubling until it holds
+        the limit, bisects until the bracket is narrower than the key spacing, then takes one
+        interpolated probe so that the final sort sees few tones. The guess and the probe only
+        save work: any bracket with the invariant gives the same exact answer.
+        """
+        top = tones.top_f if self._unit_steps else tones.top
+        live = tones.top > 0
+        if not live.any():
+            return top, None, 0.0
+        spacing = self._key_spacing
+        t = guess
+        n = self._steps_at(tones, t)
+        m = measure(n)
+        step = 0.5 * spacing
+        if m <= limit:  # walk up until over the limit (or everything fits)
+            lo, n_lo, m_lo = t, n, m
+            # the threshold past which every tone is full
+            key_top = tones.log_unit + (tones.top_f - 1.0 if self._unit_steps
+                                        else self._step_key[tones.top - 1])
+            t_max = float(key_top.max() if live.all() else key_top[live].max())
+            while True:
+                t = lo + step
+                if t >= t_max:
+                    m = measure(top)
+                    if m <= limit:
+                        return top, None, m
+                    hi, n_hi, m_hi = t_max, top, m
+                    break
+                n = self._steps_at(tones, t)
+                m = measure(n)
+                if m > limit:
+                    hi, n_hi, m_hi = t, n, m
+                    break
+                lo, n_lo, m_lo = t, n, m
+                step *= 2.0
+        else:  # walk down until within the limit (nothing loaded always is)
+            hi, n_hi, m_hi = t, n, m
+            # the threshold below which no tone takes a step
+            t_min = float(tones.log_unit.min()) + float(self._step_key[0]) - 1.0
+            while True:
+                t = hi - step
+                if t <= t_min:
+                    lo, n_lo, m_lo = t_min, np.zeros_like(top), 0.0
+                    break
+                n = self._steps_at(tones, t)
+                m = measure(n)
+                if m <= limit:
+                    lo, n_lo, m_lo = t, n, m
+                    break
+                hi, n_hi, m_hi = t, n, m
+                step *= 2.0
+        while hi - lo >= spacing:
+            mid = 0.5 * (lo + hi)
+            n = self._steps_at(tones, mid)
+            m = measure(n)
+            if m <= limit:
+                lo, n_lo, m_lo = mid, n, m
+            else:
+                hi, n_hi, m_hi = mid, n, m
+        width = hi - lo
+        t = lo + width * (limit - m_lo) / (m_hi - m_lo)
+        t = min(max(t, lo + 0.02 * width), hi - 0.02 * width)
+        n = self._steps_at(tones, t)
+        m = measure(n)
+        if m <= limit:
+            n_lo, m_lo = n, m
+        else:
+            n_hi = n
+        return n_lo, n_hi, m_lo
+
+    def _candidates(self, tones: _Tones, n_lo: np.ndarray, n_hi: np.ndarray):
+        """Tones with a step inside the bracket and that step's index, in efficiency order."""
+        idx = np.flatnonzero(n_hi > n_lo)
+        j = n_lo[idx].astype(np.int64)
+        key = tones.log_unit[idx] + self._step_key[j]
+        order = np.argsort(key)
+        return idx[order], j[order]
+
+    def _rate_steps(self, tones: _Tones, budget: float) -> np.ndarray:
+        """Steps per tone of the rate-maximising allocation (see the class notes)."""
+        live = max(int(np.count_nonzero(tones.top)), 1)
+        # At threshold t a tone's energy is below twice its last step, so about
+        # 1.44 * 2**t on average (mean of 2**(1 - u), u uniform): a first guess only.
+        guess = math.log2((budget + tones.unit_sum) / (1.4427 * live * self._max_step))
+        n_lo, n_hi, spent = self._bracket(tones, lambda n: self._energy_of(tones, n), budget,
+                                          guess)
+        if n_hi is not None:
+            idx, j = self._candidates(tones, n_lo, n_hi)
+            cost = tones.unit[idx] * self._step_energy[j]
+            room = budget - spent
+            take = int(np.searchsorted(np.cumsum(cost), room, side="right"))
+            n_lo = n_lo.copy()
+            n_lo[idx[:take]] += 1
+        return n_lo.astype(np.int64)
+
+    def _margin_steps(self, tones: _Tones, target: int) -> np.ndarray:
+        """Steps per tone of the least-power allocation with exactly ``target`` bits.
+
+        The caller has checked that the ceilings allow ``target`` bits.
+        """
+        live = tones.top > 0
+        n_live = max(int(np.count_nonzero(live)), 1)
+        # A tone takes about t - log2(unit) + 1 unit steps at threshold t: a first guess only.
+        guess = (target / self._mean_step + float(tones.log_unit[live].sum())) / n_live \
+            - 1.0 if live.any() else 0.0
+        n_lo, n_hi, count = self._bracket(tones, self._bits_of, target, guess)
+        if n_hi is None:
+            return n_lo.astype(np.int64)
+        idx, j = self._candidates(tones, n_lo, n_hi)
+        size = self._step_bits[j]
+        rest = target - count
+        take = int(np.searchsorted(np.cumsum(size), rest, side="right"))
+        n = n_lo.astype(np.int64)
+        n[idx[:take]] += 1
+        rest -= int(size[:take].sum())
+        if rest:
+            n = self._fill_remainder(tones, n, rest, target)
+        return n
+
+    def _fill_remainder(self, tones: _Tones, n: np.ndarray, rest: int,
+                        target: int) -> np.ndarray:
+        """Add exactly ``rest`` bits (less than one step) at the least extra power found.
+
+        Options: one step of exactly ``rest`` bits on some tone, or a step of ``s`` bits up on
+        one tone and a step of ``s - rest`` bits down on another. Sets with holes only.
+        """
+        unit, top = tones.unit, tones.top
+        up_ok = n < top
+        j_up = np.minimum(n, self._step_bits.size - 1)
+        up_size = np.where(up_ok, self._step_bits[j_up], 0)
+        up_cost = np.where(up_ok, unit * self._step_energy[j_up], np.inf)
+        down_ok = n > 0
+        j_dn = np.maximum(n - 1, 0)
+        dn_size = np.where(down_ok, self._step_bits[j_dn], 0)
+        dn_save = np.where(down_ok, unit * self._step_energy[j_dn], -np.inf)
+        best_cost, best = math.inf, None
+        single = np.flatnonzero(up_size == rest)
+        if single.size:
+            i = int(single[np.argmin(up_cost[single])])
+            best_cost, best = float(up_cost[i]), (i, None)
+        for s in np.unique(up_size[up_size > rest]):
+            ups = np.flatnonzero(up_size == s)
+            dns = np.flatnonzero(dn_size == s - rest)
+            if not dns.size:
+                continue
+            i = ups[np.argsort(up_cost[ups], kind="stable")[:2]]
+            k = dns[np.argsort(-dn_save[dns], kind="stable")[:2]]
+            for a in i:
+                for b in k:
+                    if a != b and up_cost[a] - dn_save[b] < best_cost:
+                        best_cost, best = float(up_cost[a] - dn_save[b]), (int(a), int(b))
+        if best is None:
+            raise InfeasibleError(f"target_bits={target} cannot be reached "
+                                  f"exactly with bits={self.bits.tolist()} on these tones "
+                                  f"(short by {rest})")
+        n = n.copy()
+        n[best[0]] += 1
+        if best[1] is not None:
+            n[best[1]] -= 1
+        return n
+
+    # ---------------------------------------------------------------- calls
+
+    def __call__(self, snr) -> Allocation:
+        """Load one frame.
+
+        Parameters
+        ----------
+        snr : array_like of float
+            Linear per-tone SNR at nominal power, (N,), finite and >= 0.
+
+        Returns
+        -------
+        Allocation
+            Bits and powers per tone in this loader's mode.
+
+        Raises
+        ------
+        InputError
+            A NaN, infinite or negative SNR, or an array that is not 1-D.
+        InfeasibleError
+            Margin mode only: ``target_bits`` does not fit the budget and ceilings.
+
+        Examples
+        --------
+        >>> loader = Loader(bits=range(11), gap_db=9.8)
+        >>> alloc = loader(np.array([1000.0, 100.0, 10.0, 0.0]))
+        >>> alloc.bits.tolist(), round(alloc.margin_db, 2)
+        ([7, 4, 1, 0], 0.46)
+        """
+        snr = _as_snr(snr)
+        if self.mode == "rate":
+            return self._rate(snr)
+        if self.mode == "margin":
+            return self._margin_mode(snr, self.target_bits)
+        return self.quantized_waterfill(snr)
+
+    def rate(self, snr) -> Allocation:
+        """Rate mode for ``snr``, whatever ``mode`` this loader was built with."""
+        return self._rate(_as_snr(snr))
+
+    def _rate(self, snr: np.ndarray) -> Allocation:
+        budget = self._budget(snr.size)
+        tones = self._tones(snr, budget)
+        n = self._rate_steps(tones, budget)
+        return self._allocation(tones, n, budget, scale=False)
+
+    def margin(self, snr, target_bits: int) -> Allocation:
+        """Margin mode for ``snr`` and ``target_bits``.
+
+        Raises
+        ------
+        InfeasibleError
+            When ``target_bits`` exceeds the most bits the budget and ceilings allow; the
+            message gives both numbers.
+        """
+        return self._margin_mode(_as_snr(snr), target_bits)
+
+    def _margin_mode(self, snr: np.ndarray, target_bits: int) -> Allocation:
+        if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
+                or target_bits < 0:
+            raise InputError(f"target_bits={target_bits!r} must be an integer >= 0")
+        target = int(target_bits)
+        budget = self._budget(snr.size)
+        tones = self._tones(snr, budget)
+        if target > int(self.bits[tones.top].sum()):
+            self._raise_infeasible(target, tones, budget)
+        n = self._margin_steps(tones, target)
+        # The rate search sums energies in another order; allow for that rounding so that the
+        # rate-mode maximum is always a feasible target.
+        if float(np.dot(tones.unit, self._energy[n])) > budget * (1.0 + 1e-12):
+            self._raise_infeasible(target, tones, budget)
+        return self._allocation(tones, n, budget, scale=True)
+
+    def _raise_infeasible(self, target: int, tones: _Tones, budget: float):
+        best = int(self.bits[self._rate_steps(tones, budget)].sum())
+        if best >= target:  # only with holes in the bit set: see the class notes
+            raise InfeasibleError(f"target_bits={target} with bits={self.bits.tolist()} does "
+                                  f"not fit the budget (budget_db={self.budget_db:g}) in the "
+                                  f"near-minimal allocation; rate mode reaches {best} bits")
+        raise InfeasibleError(f"target_bits={target} is more than the {best} bits the budget "
+                              f"(budget_db={self.budget_db:g}) and ceilings "
+                              f"(cap_db={self.cap_db:g}) allow")
+
+    def quantized_waterfill(self, snr) -> Allocation:
+        """Water-filled powers with each tone's bits rounded down to the allowed set."""
+        snr = _as_snr(snr)
+        wf = waterfill(snr, gap_db=self.gap_db, budget_db=self.budget_db, cap_db=self.cap_db)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            room = np.where(snr > 0, wf.power * snr / self._gap, 0.0)
+        j = np.searchsorted(self._energy, room * (1.0 + 1e-12), side="right") - 1
+        bits = self.bits[np.maximum(j, 0)]
+        power = np.where(bits > 0, wf.power, 0.0)
+        need = self.required_power(bits, snr)
+        return Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
+                          total_power=float(power.sum()),
+                          margin_db=self._margin(need, self._budget(snr.size)))
+
+    def _allocation(self, tones: _Tones, n: np.ndarray, budget: float, *,
+                    scale: bool) -> Allocation:
+        bits = n if self._unit_steps else self.bits[n]  # with unit steps, index = bits
+        need = tones.unit * self._energy[n]
+        margin_db = self._margin(need, budget)
+        power = need * 10.0 ** (margin_db / 10.0) if (scale and math.isfinite(margin_db)) \
+            else need
+        return Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
+                          total_power=float(power.sum()), margin_db=margin_db)
+
+
+def load_rate(snr, *, bits: Iterable[int] = range(9), gap_db: float, budget_db: float = 0.0,
+              cap_db: float = math.inf) -> Allocation:
+    """The most bits within the power budget and per-tone ceilings.
+
+    Parameters
+    ----------
+    snr : array_like of float
+        Linear per-tone SNR at nominal power, (N,).
+    bits : iterable of int
+        Allowed bits per tone, ascending from 0 (holes allowed).
+    gap_db, budget_db, cap_db : float
+        SNR gap (margin and coding gain included), total budget and per-tone ceiling, dB.
+
+    Returns
+    -------
+    Allocation
+        Loaded tones carry exactly their required power; ``margin_db`` is the headroom.
+
+    Notes
+    -----
+    Levin-Campello loading (Campello, ICC 1999), exactly optimal for consecutive bit sets and
+    within ``max_step - 1`` bits of optimal for sets with holes; see :class:`Loader`.
+    """
+    return Loader(mode="rate", bits=bits, gap_db=gap_db, budget_db=budget_db, cap_db=cap_db)(snr)
+
+
+def load_margin(snr, *, target_bits: int, bits: Iterable[int] = range(9), gap_db: float,
+                budget_db: float = 0.0, cap_db: float = math.inf) -> Allocation:
+    """Exactly ``target_bits`` with the least power, then the largest uniform margin.
+
+    Parameters
+    ----------
+    snr : array_like of float
+        Linear per-tone SNR at nominal power, (N,).
+    target_bits : int
+        Bits per OFDM symbol.
+    bits : iterable of int
+        Allowed bits per tone, ascending from 0 (holes allowed).
+    gap_db, budget_db, cap_db : float
+        SNR gap (margin and coding gain included), total budget and per-tone ceiling, dB.
+
+    Returns
+    -------
+    Allocation
+        Every loaded tone's power is its required power times ``10**(margin_db/10)``, the
+        largest factor the budget and the ceilings allow.
+
+    Raises
+    ------
+    InfeasibleError
+        ``target_bits`` is more than the budget and ceilings allow; the message gives the target
+        and the maximum achievable bits.
+    """
+    return Loader(mode="margin", bits=bits, gap_db=gap_db, budget_db=budget_db, cap_db=cap_db,
+                  target_bits=target_bits)(snr)
+
+
+def _greedy_oracle(snr, *, bits_max: int, gap_db: float, budget_db: float = 0.0,
+                   cap_db: float = math.inf) -> np.ndarray:
+    """Hughes-Hartogs greedy loading (bits 0..bits_max): one bit at a time to the cheapest tone.
+
+    The textbook reference (Hughes-Hartogs, 1987 patent; Cioffi's DMT notes ch. 4): slow
+    (one pass over the tones per bit) and exactly optimal for consecutive bit sets. Kept for
+    tests and benchmarks only.
+    """
+    snr = _as_snr(snr)
+    gap = 10.0 ** (gap_db / 10.0)
+    cap = 10.0 ** (cap_db / 10.0)
+    budget = snr.size * 10.0 ** (budget_db / 10.0)
+    b = np.zeros(snr.size, dtype=np.int64)
+    with np.errstate(divide="ignore"):
+        unit = np.where(snr > 0, gap / snr, np.inf)
+    incr = unit.copy()  # power to add the next bit: unit * 2**b
+    spent = 0.0
+    while True:
+        # A tone that is full or whose next bit breaks its ceiling is out of the race.
+        i = int(np.argmin(incr))
+        cost = incr[i]
+        if not math.isfinite(cost) or spent + cost > budget:
+            break
+        if unit[i] * (2.0 ** (b[i] + 1) - 1.0) > cap:
+            incr[i] = np.inf
+            continue
+        spent += cost
+        b[i] += 1
+        incr[i] = np.inf if b[i] >= bits_max else unit[i] * 2.0 ** b[i]
+    return b

@@ -1,0 +1,412 @@
+"""The daemon's sockets: maps, heartbeats, snapshots, acknowledgements, and operator status.
+
+:class:`MapPublisher` owns the map path:
+
+* a PUB socket carrying ``map`` (a :class:`~brimline.daemon.records.LoadMap` per change) and
+  ``heartbeat`` (epoch and last seq, every ``heartbeat_s``);
+* a ROUTER socket answering ``snapshot`` requests with the current map, so a late joiner or a
+  follower that saw a gap catches up at once;
+* optionally a PULL socket receiving the transmitter's ``ack`` messages.
+
+:class:`StatusPublisher` is a separate PUB with a small send high-water mark, so a stalled
+operator's terminal can never hold up the map path.
+
+There are no hidden threads (apart from pyzmq's CURVE authenticator when client authorisation is
+on): the service registers :attr:`MapPublisher.snapshot_socket` and :attr:`MapPublisher.ack_socket`
+in its one ``zmq.Poller`` and calls :meth:`MapPublisher.handle_snapshot` /
+:meth:`MapPublisher.poll_acks` when they are readable. All sends are non-blocking. Sockets belong
+to the thread that uses the publisher.
+"""
+
+from __future__ import annotations
+
+import collections
+import math
+from pathlib import Path
+from typing import Any
+
+import zmq
+
+from brimline.daemon import codec
+from brimline.daemon.errors import ProtocolError
+from brimline.daemon.records import LoadMap
+from brimline.daemon.security import CurveServer
+
+__all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint"]
+
+_MAX_PER_CALL = 64  # requests or acks handled per call, so one burst cannot starve the loop
+
+
+def bind_endpoint(socket: zmq.Socket, endpoint: str) -> str:
+    """Bind ``socket`` to ``endpoint`` and return the endpoint actually bound.
+
+    A TCP port of ``0`` or ``*`` picks a free port (``tcp://127.0.0.1:0``).
+
+    Raises
+    ------
+    ProtocolError
+        When the bind fails (address in use, bad endpoint); names the endpoint.
+    """
+    ep = endpoint
+    if ep.startswith("tcp://") and ep.endswith(":0"):
+        ep = ep[:-2] + ":*"
+    try:
+        socket.bind(ep)
+    except zmq.ZMQError as exc:
+        raise ProtocolError(f"cannot bind {endpoint}: {exc}") from None
+    return socket.getsockopt(zmq.LAST_ENDPOINT).decode()
+
+
+class _Sockets:
+    """Context ownership and ordered, idempotent shutdown shared by both publishers."""
+
+    def __init__(self, context: zmq.Context | None, linger_s: float) -> None:
+        if not (math.isfinite(linger_s) and linger_s >= 0):
+            raise ValueError(f"linger_s={linger_s} must be finite and >= 0")
+        self._own_context = context is None
+        self.context = zmq.Context() if context is None else context
+        self._linger_ms = int(round(linger_s * 1000))
+        self._sockets: list[zmq.Socket] = []
+        self._closed = False
+
+    def _socket(self, kind: int, curve: CurveServer | None) -> zmq.Socket:
+        s = self.context.socket(kind)
+        s.setsockopt(zmq.LINGER, self._linger_ms)
+        if curve is not None:
+            curve.apply(s)
+        self._sockets.append(s)
+        return s
+
+    def _check_open(self) -> None:
+        if self._closed:
+            raise RuntimeError(f"{type(self).__name__} is closed")
+
+    def _close_sockets(self) -> None:
+        for s in self._sockets:
+            s.close()
+        self._sockets.clear()
+        if self._own_context:
+            self.context.term()
+
+    @property
+    def closed(self) -> bool:
+        """True once :meth:`close` has run."""
+        return self._closed
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+class MapPublisher(_Sockets):
+    """Publishes load maps and heartbeats, answers snapshot requests, collects acks.
+
+    Parameters
+    ----------
+    map_endpoint : str
+        Where the PUB socket for ``map`` and ``heartbeat`` binds (``tcp://127.0.0.1:7341``).
+        Port 0 picks a free port; the bound endpoint is in :attr:`map_endpoint`.
+    snapshot_endpoint : str
+        Where the ROUTER socket answering snapshot requests binds.
+    ack_endpoint : str or None
+        Where the PULL socket for acknowledgements binds; None for no acknowledgements.
+    heartbeat_s : float
+        Heartbeat interval in seconds (:meth:`tick`).
+    map_hwm : int
+        Send high-water mark of the map PUB, in messages per subscriber.
+    linger_s : float
+        How long unsent messages are kept at close, seconds.
+    curve_secret_key : str or None
+        The daemon's ``.key_secret`` file; turns CURVE on for all three sockets.
+    curve_clients_dir : str or None
+        Directory of authorised client ``.key`` files (needs ``curve_secret_key``); None admits
+        any client that knows the server's public key.
+    context : zmq.Context or None
+        Context to create the sockets in; None makes (and at close terminates) a private one.
+    epoch : str or None
+        Epoch reported by heartbeats before the first map (the service's epoch id).
+
+    Attributes
+    ----------
+    map_endpoint, snapshot_endpoint, ack_endpoint : str or None
+        Endpoints actually bound.
+    snapshot_socket, ack_socket : zmq.Socket or None
+        For the service's ``zmq.Poller`` (POLLIN).
+    current : LoadMap or None
+        Last published (or primed) map; what a snapshot request gets.
+    counters : collections.Counter
+        ``maps``, ``heartbeats``, ``snapshots``, ``snapshots_empty``, ``bad_requests``,
+        ``acks``, ``bad_acks``, ``send_dropped``.
+    curve : CurveServer or None
+        CURVE setup, for :class:`StatusPublisher` to share.
+    """
+
+    def __init__(self, *, map_endpoint: str = "tcp://127.0.0.1:7341",
+                 snapshot_endpoint: str = "tcp://127.0.0.1:7342",
+                 ack_endpoint: str | None = "tcp://127.0.0.1:7344",
+                 heartbeat_s: float = 0.5, map_hwm: int = 1000, linger_s: float = 1.0,
+                 curve_secret_key: str | Path | None = None,
+                 curve_clients_dir: str | Path | None = None,
+                 context: zmq.Context | None = None, epoch: str | None = None) -> None:
+        if not (math.isfinite(heartbeat_s) and heartbeat_s > 0):
+            raise ValueError(f"heartbeat_s={heartbeat_s} must be finite and > 0")
+        if curve_clients_dir is not None and curve_secret_key is None:
+            raise ValueError("curve_clients_dir needs curve_secret_key")
+        super().__init__(context, linger_s)
+        self.heartbeat_s = float(heartbeat_s)
+        self.epoch = epoch
+        self.current: LoadMap | None = None
+        self.counters: collections.Counter[str] = collections.Counter()
+        self._next_heartbeat_s: float | None = None
+        self.curve: CurveServer | None = None
+        self.snapshot_socket: zmq.Socket | None = None
+        self.ack_socket: zmq.Socket | None = None
+        self.ack_endpoint: str | None = None
+        try:
+            if curve_secret_key is not None:
+                self.curve = CurveServer(self.context, curve_secret_key, curve_clients_dir)
+            self._pub = self._socket(zmq.PUB, self.curve)
+            self._pub.setsockopt(zmq.SNDHWM, int(map_hwm))
+            self.map_endpoint = bind_endpoint(self._pub, map_endpoint)
+            self.snapshot_socket = self._socket(zmq.ROUTER, self.curve)
+            self.snapshot_endpoint = bind_endpoint(self.snapshot_socket, snapshot_endpoint)
+            if ack_endpoint is not None:
+                self.ack_socket = self._socket(zmq.PULL, self.curve)
+                self.ack_socket.setsockopt(zmq.RCVHWM, 1000)
+                self.ack_endpoint = bind_endpoint(self.ack_socket, ack_endpoint)
+        except BaseException:
+            self.close()
+            raise
+
+    # ------------------------------------------------------------------ maps and heartbeats
+
+    def _send(self, socket: zmq.Socket, frames: list) -> bool:
+        try:
+            socket.send_multipart(frames, flags=zmq.NOBLOCK, copy=False)
+            return True
+        except zmq.Again:
+            self.counters["send_dropped"] += 1
+            return False
+
+    def _check_order(self, load_map: LoadMap) -> None:
+        last = self.current
+        if last is not None and load_map.epoch == last.epoch and load_map.seq <= last.seq:
+            raise ValueError(f"map seq={load_map.seq} is not greater than the last published "
+                             f"seq={last.seq} (epoch {last.epoch})")
+
+    def publish(self, load_map: LoadMap) -> list:
+        """Send ``load_map`` on topic ``map`` and make it the snapshot answer.
+
+        Returns the encoded frames (the service may record exactly these bytes).
+
+        Raises
+        ------
+        ValueError
+            When ``load_map.seq`` is not strictly greater than the last map's of the same
+            epoch (a map of a new epoch starts a new order).
+        RuntimeError
+            After :meth:`close`.
+        """
+        self._check_open()
+        self._check_order(load_map)
+        frames = codec.encode(codec.TOPIC_MAP, load_map)
+        self.current = load_map
+        self.epoch = load_map.epoch
+        self._send(self._pub, frames)
+        self.counters["maps"] += 1
+        return frames
+
+    def prime(self, load_map: LoadMap) -> None:
+        """Adopt ``load_map`` (e.g. restored from saved state) for snapshots and heartbeats
+        without sending it on ``map``. Same order rule as :meth:`publish`."""
+        self._check_open()
+        self._check_order(load_map)
+        self.current = load_map
+        self.epoch = load_map.epoch
+
+    def heartbeat(self, now_s: float) -> None:
+        """Send a heartbeat now: ``{"epoch", "seq", "time_s", "interval_s"}`` on ``heartbeat``.
+
+        ``seq`` is the current map's (-1 before any), ``time_s`` is ``now_s``.
+        """
+        self._check_open()
+        body = {"epoch": self.epoch if self.epoch is not None else "",
+                "seq": self.current.seq if self.current is not None else -1,
+                "time_s": float(now_s), "interval_s": self.heartbeat_s}
+        self._send(self._pub, codec.encode(codec.TOPIC_HEARTBEAT, body))
+        self.counters["heartbeats"] += 1
+        self._next_heartbeat_s = float(now_s) + self.heartbeat_s
+
+    def tick(self, now_s: float) -> float:
+        """Send a heartbeat if one is due; return seconds until the next is due (for a poll
+        timeout)."""
+        if self._next_heartbeat_s is None or now_s >= self._next_heartbeat_s:
+            self.heartbeat(now_s)
+        return max(0.0, self._next_heartbeat_s - now_s)
+
+    # ------------------------------------------------------------------ snapshots and acks
+
+    def handle_snapshot(self) -> int:
+        """Answer every waiting snapshot request without blocking; return how many.
+
+        A request is ``[b"", b"snapshot"]`` from a REQ or DEALER (the empty delimiter is
+        optional for DEALER). The reply repeats the envelope, then carries the current map
+        encoded on topic ``snapshot``, or, before any map, a dict ``{"epoch", "seq": -1}``. A
+        request of anything else gets ``{"error": ...}`` on topic ``snapshot``.
+        """
+        self._check_open()
+        handled = 0
+        while handled < _MAX_PER_CALL:
+            try:
+                msg = self.snapshot_socket.recv_multipart(flags=zmq.NOBLOCK)
+            except zmq.Again:
+                break
+            handled += 1
+            if b"" in msg[1:]:
+                cut = msg.index(b"", 1) + 1
+            else:
+                cut = 1
+            envelope, body = msg[:cut], msg[cut:]
+            if body == [codec.SNAPSHOT_REQUEST]:
+                if self.current is not None:
+                    reply = codec.encode(codec.TOPIC_SNAPSHOT, self.current)
+                    self.counters["snapshots"] += 1
+                else:
+                    reply = codec.encode(codec.TOPIC_SNAPSHOT,
+                                         {"epoch": self.epoch or "", "seq": -1})
+                    self.counters["snapshots_empty"] += 1
+            else:
+                self.counters["bad_requests"] += 1
+                reply = codec.encode(codec.TOPIC_SNAPSHOT,
+                                     {"error": "request must be the single frame b'snapshot'"})
+            self._send(self.snapshot_socket, envelope + reply)
+        return handled
+
+    def poll_acks(self) -> list[dict]:
+        """Acknowledgements waiting on the ack socket, without blocking.
+
+        Each is a dict with at least ``epoch`` (str), ``seq``, ``frame`` (int) and ``time_s``
+        (float); malformed ones are dropped and counted as ``bad_acks``.
+        """
+        self._check_open()
+        if self.ack_socket is None:
+            return []
+        acks = []
+        while len(acks) < _MAX_PER_CALL:
+            try:
+                frames = self.ack_socket.recv_multipart(flags=zmq.NOBLOCK, copy=False)
+            except zmq.Again:
+                break
+            try:
+                topic, body = codec.decode(frames)
+                if topic != codec.TOPIC_ACK or not isinstance(body, dict):
+                    raise ProtocolError(f"not an ack: topic {topic!r}")
+                if not (isinstance(body.get("seq"), int) and isinstance(body.get("frame"), int)
+                        and isinstance(body.get("time_s"), (int, float))):
+                    raise ProtocolError("ack needs integer seq and frame and a time_s")
+            except ProtocolError:
+                self.counters["bad_acks"] += 1
+                continue
+            self.counters["acks"] += 1
+            acks.append(body)
+        return acks
+
+    def close(self) -> None:
+        """Close the sockets (LINGER as configured), stop CURVE, end a private context.
+        Idempotent."""
+        if self._closed:
+            return
+        self._closed = True
+        self._close_sockets()
+        if self.curve is not None:
+            self.curve.close()
+
+
+class StatusPublisher(_Sockets):
+    """The operators' status stream: a PUB with a small send queue that never blocks.
+
+    Parameters
+    ----------
+    endpoint : str
+        Where the PUB binds (``tcp://127.0.0.1:7343``); port 0 picks a free port.
+    rate_hz : float
+        Periodic status rate; :meth:`due` says when the next periodic status is due.
+    hwm : int
+        Send high-water mark in messages per subscriber. A subscriber that stops reading loses
+        status messages beyond this (and whatever the kernel buffers hold); nobody waits.
+    linger_s : float
+        How long unsent messages are kept at close, seconds.
+    curve : CurveServer or None
+        Share the map publisher's CURVE setup (``MapPublisher.curve``); the socket is then made
+        in that setup's context (client authorisation works per context).
+    context : zmq.Context or None
+        Context for the socket; None uses the curve's context or makes a private one.
+
+    Notes
+    -----
+    ZeroMQ's PUB drops per subscriber when that subscriber's queue is full, silently. So that
+    operators can still see loss, every dict published carries ``status_seq`` (counting from 0);
+    a watcher that sees a jump knows how many it missed. ``counters["dropped"]`` counts the
+    sends that ZeroMQ refused outright.
+    """
+
+    def __init__(self, *, endpoint: str = "tcp://127.0.0.1:7343", rate_hz: float = 4.0,
+                 hwm: int = 10, linger_s: float = 0.0, curve: CurveServer | None = None,
+                 context: zmq.Context | None = None) -> None:
+        if not (math.isfinite(rate_hz) and rate_hz > 0):
+            raise ValueError(f"rate_hz={rate_hz} must be finite and > 0")
+        if hwm < 1:
+            raise ValueError(f"hwm={hwm} must be >= 1")
+        if curve is not None and context is not None and curve.context is not context:
+            raise ValueError("curve belongs to another zmq.Context; client authorisation only "
+                             "covers sockets of the context it was made for")
+        super().__init__(curve.context if curve is not None and context is None else context,
+                         linger_s)
+        self.rate_hz = float(rate_hz)
+        self.counters: collections.Counter[str] = collections.Counter()
+        self._status_seq = 0
+        self._next_due_s: float | None = None
+        try:
+            self._pub = self._socket(zmq.PUB, curve)
+            self._pub.setsockopt(zmq.SNDHWM, int(hwm))
+            self.endpoint = bind_endpoint(self._pub, endpoint)
+        except BaseException:
+            self.close()
+            raise
+
+    def due(self, now_s: float) -> bool:
+        """True (and the next period starts) when a periodic status is due at ``now_s``."""
+        if self._next_due_s is None or now_s >= self._next_due_s:
+            period = 1.0 / self.rate_hz
+            nxt = (self._next_due_s or now_s) + period
+            self._next_due_s = nxt if nxt > now_s else now_s + period  # no catch-up bursts
+            return True
+        return False
+
+    def publish(self, record: Any, topic: str = codec.TOPIC_STATUS) -> bool:
+        """Send ``record`` (a dict or any codec record) on ``topic`` without blocking.
+
+        A dict gets ``status_seq`` added. Returns False when ZeroMQ refused the message
+        (counted as ``dropped``).
+        """
+        self._check_open()
+        if isinstance(record, dict):
+            record = {**record, "status_seq": self._status_seq}
+            self._status_seq += 1
+        frames = codec.encode(topic, record)
+        try:
+            self._pub.send_multipart(frames, flags=zmq.NOBLOCK, copy=False)
+        except zmq.Again:
+            self.counters["dropped"] += 1
+            return False
+        self.counters["sent"] += 1
+        return True
+
+    def close(self) -> None:
+        """Close the socket and a private context. Idempotent."""
+        if self._closed:
+            return
+        self._closed = True
+        self._close_sockets()

@@ -1,0 +1,266 @@
+"""The codec: round trips, the byte layout against published encodings, every malformed case."""
+
+import json
+import math
+import struct
+import zlib
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra import numpy as hnp
+
+from brimline.daemon import codec
+from brimline.daemon.errors import ProtocolError
+from brimline.daemon.records import DecisionKind, Estimate, LoadMap, TonePlan
+
+
+def _map(n=6, seq=3, **kw):
+    bits = np.array([2, 0, 4, 6, 0, 8][:n] * (n // 6 + 1))[:n]
+    power = np.where(bits > 0, 0.75, 0.0)
+    base = dict(epoch="c0ffee", seq=seq, effective_frame=120, created_s=12.5, plan_id="abc123",
+                tone_index=np.arange(-n // 2, n - n // 2), bits=bits, power_lin=power,
+                total_bits=int(bits.sum()), margin_db=3.25, gap_db=9.75, reason="reload")
+    base.update(kw)
+    return LoadMap(**base)
+
+
+def _estimate(n=5):
+    tones = np.arange(1, n + 1)
+    return Estimate(frame=7, time_s=0.125, plan_id="abc123", tone_index=tones,
+                    channel=np.exp(1j * tones), noise_var=np.full(n, 0.01),
+                    snr_db=np.linspace(5, 25, n), map_seq_seen=3, cfo_hz=-120.5)
+
+
+def _assert_same(a, b):
+    assert type(a) is type(b)
+    for name in a.__dataclass_fields__:
+        x, y = getattr(a, name), getattr(b, name)
+        if isinstance(x, np.ndarray):
+            assert x.dtype == y.dtype and x.shape == y.shape
+            np.testing.assert_array_equal(x, y)
+        elif isinstance(x, float) and math.isnan(x):
+            assert math.isnan(y)
+        else:
+            assert x == y, name
+
+
+def _header(frames):
+    return json.loads(bytes(frames[1]))
+
+
+def _with_header(frames, **changes):
+    head = _header(frames)
+    head.update(changes)
+    return [frames[0], json.dumps(head).encode(), *frames[2:]]
+
+
+class TestRoundTrip:
+    def test_load_map(self):
+        m = _map(margin_db=math.inf)
+        topic, back = codec.decode(codec.encode("map", m))
+        assert topic == "map"
+        _assert_same(m, back)
+
+    def test_estimate_with_nan_centre_frequency(self):
+        e = _estimate()
+        topic, back = codec.decode(codec.encode("estimate", e))
+        assert topic == "estimate"
+        _assert_same(e, back)
+
+    def test_tone_plan(self):
+        plan = TonePlan(64, 16, 20e6, [t for t in range(-26, 27) if t not in (0, -21, -7, 7, 21)],
+                        [-21, -7, 7, 21])
+        _, back = codec.decode(codec.encode("plan", plan))
+        assert back.plan_id == plan.plan_id
+
+    def test_dict_with_arrays_enums_and_non_finite(self):
+        msg = {"kind": DecisionKind.BIT_SWAP, "n": np.int64(4), "x": np.float32(0.5),
+               "margin_db": math.inf, "nested": {"a": [1, 2.5]}, "snr_db": np.arange(4.0)}
+        topic, back = codec.decode(codec.encode("status", msg))
+        assert topic == "status"
+        assert back["kind"] == "bit_swap" and back["n"] == 4 and back["x"] == 0.5
+        assert back["margin_db"] == "inf"  # documented: a dict keeps the string spelling
+        assert back["nested"] == {"a": [1, 2.5]}
+        np.testing.assert_array_equal(back["snr_db"], np.arange(4.0))
+        assert not back["snr_db"].flags.writeable
+
+    def test_decodes_zmq_frames_and_memoryviews(self):
+        zmq = pytest.importorskip("zmq")
+        frames = codec.encode("map", _map())
+        as_frames = [zmq.Frame(bytes(memoryview(f))) for f in frames]
+        _assert_same(codec.decode(as_frames)[1], _map())
+
+    @settings(max_examples=60, deadline=None)
+    @given(n=st.integers(0, 300), seed=st.integers(0, 2**32 - 1),
+           reason=st.text(max_size=40), seq=st.integers(0, 2**53))
+    def test_load_map_property(self, n, seed, reason, seq):
+        rng = np.random.default_rng(seed)
+        bits = rng.integers(0, 16, n)
+        power = np.where(bits > 0, rng.uniform(0.01, 4, n), 0.0)
+        m = LoadMap("e", seq, 0, 1.0, "p", np.arange(n), bits, power, int(bits.sum()),
+                    float(rng.normal()), 9.8, reason=reason)
+        _assert_same(m, codec.decode(codec.encode("map", m))[1])
+
+    @settings(max_examples=40, deadline=None)
+    @given(snr=hnp.arrays(np.float32, st.integers(0, 64),
+                          elements=st.floats(allow_nan=True, allow_infinity=True, width=32)),
+           frame=st.integers(0, 2**62), centre=st.floats(allow_nan=True, allow_infinity=True))
+    def test_estimate_property_keeps_non_finite_content(self, snr, frame, centre):
+        """Judging content (a NaN SNR) is the estimator's job: the codec carries it intact."""
+        n = snr.size
+        e = Estimate(frame=frame, time_s=1.0, plan_id="p", tone_index=np.arange(n),
+                     channel=snr.astype(np.complex64), noise_var=snr, snr_db=snr,
+                     center_hz=centre)
+        _assert_same(e, codec.decode(codec.encode("estimate", e))[1])
+
+    @settings(max_examples=60, deadline=None)
+    @given(arr=hnp.arrays(
+        dtype=st.sampled_from([np.float32, np.float64, np.int16, np.uint8, np.complex64,
+                               np.dtype(">f8"), np.dtype(">i4"), np.bool_]),
+        shape=hnp.array_shapes(min_dims=0, max_dims=3, min_side=0, max_side=5)))
+    def test_dict_arrays_any_shape_and_byte_order(self, arr):
+        _, back = codec.decode(codec.encode("status", {"a": arr}))
+        assert back["a"].shape == arr.shape
+        np.testing.assert_array_equal(back["a"], arr)
+
+
+class TestByteLayout:
+    def test_crc32_is_the_iso_hdlc_polynomial(self):
+        """CRC-32/ISO-HDLC check value 0xCBF43926 for b"123456789" (Greg Cook's Catalogue of
+        parametrised CRC algorithms; the same CRC as IEEE 802.3 and zlib; value from memory)."""
+        assert zlib.crc32(b"123456789") == 0xCBF43926
+
+    def test_arrays_are_little_endian_ieee754(self):
+        """IEEE 754 binary32 1.0 is 0x3F800000 and 0.75 is 0x3F400000; int16 -3 is 0xFFFD in
+        two's complement; little-endian puts the low byte first."""
+        m = _map(n=6)
+        frames = codec.encode("map", m)
+        head = _header(frames)
+        assert [a["name"] for a in head["arrays"]] == ["tone_index", "bits", "power_lin"]
+        assert [a["dtype"] for a in head["arrays"]] == ["<i2", "|u1", "<f4"]
+        assert bytes(frames[2])[:2] == b"\xfd\xff"
+        assert bytes(frames[4])[:4] == b"\x00\x00\x40\x3f"
+        assert struct.unpack("<6f", bytes(frames[4]))[0] == 0.75
+        assert head["crc32"] == zlib.crc32(b"".join(bytes(f) for f in frames[2:]))
+        assert head["v"] == codec.PROTOCOL_VERSION == 1
+
+    def test_header_is_strict_json(self):
+        frames = codec.encode("map", _map(margin_db=math.inf))
+        text = bytes(frames[1]).decode()
+        assert "Infinity" not in text and "NaN" not in text
+        assert _header(frames)["fields"]["margin_db"] == "inf"
+
+    def test_array_parts_are_zero_copy_views(self):
+        m = _map(n=600)
+        frames = codec.encode("map", m)
+        assert isinstance(frames[4], memoryview)
+        assert np.shares_memory(np.frombuffer(frames[4], np.float32), m.power_lin)
+
+
+class TestMalformed:
+    @pytest.mark.parametrize("mutate, match", [
+        (lambda f: f[:1], "needs at least topic and header"),
+        (lambda f: [b"\xff\xfe", *f[1:]], "not ASCII"),
+        (lambda f: [b"", *f[1:]], "topic is empty"),
+        (lambda f: [f[0], b"{not json", *f[2:]], "not JSON"),
+        (lambda f: [f[0], b"\xff", *f[2:]], "not JSON"),
+        (lambda f: [f[0], b"[1, 2]", *f[2:]], "not a JSON object"),
+        (lambda f: [f[0], b"[" * 100_000 + b"]" * 100_000, *f[2:]], "not JSON"),
+        (lambda f: [f[0], b"{}", *f[2:]], r"lacks \['arrays', 'crc32', 'fields', 'type', 'v'\]"),
+        (lambda f: _with_header(f, v=2), "protocol version 2"),
+        (lambda f: _with_header(f, type="pickle"), "unknown record type 'pickle'"),
+        (lambda f: f[:-1], "lists 3 arrays but the message has 2"),
+        (lambda f: [*f, b"extra"], "lists 3 arrays but the message has 4"),
+        (lambda f: [*f[:4], bytes(f[4])[:-1]], "checksum mismatch"),
+        (lambda f: [*f[:4], bytes(4) + bytes(f[4])[4:]], "checksum mismatch"),
+    ])
+    def test_structure(self, mutate, match):
+        with pytest.raises(ProtocolError, match=match):
+            codec.decode(mutate(codec.encode("map", _map())))
+
+    def _refit(self, frames, head):
+        """Re-encode a header after changing it, with a correct checksum for its parts."""
+        head["crc32"] = zlib.crc32(b"".join(bytes(p) for p in frames[2:]))
+        return [frames[0], json.dumps(head).encode(), *frames[2:]]
+
+    @pytest.mark.parametrize("change, match", [
+        (lambda h: h["arrays"][2].update(dtype="<f8"), r"power_lin: dtype '<f8', expected"),
+        (lambda h: h["arrays"][2].update(dtype="|O"), "dtype '|O' is not allowed"),
+        (lambda h: h["arrays"][2].update(shape=[7]), r"needs 28 bytes, part has 24"),
+        (lambda h: h["arrays"][2].update(shape=[-6]), "not a list of sizes"),
+        (lambda h: h["arrays"][2].update(name="gain"), "unknown array 'gain'"),
+        (lambda h: h["arrays"][2].pop("shape"), "exactly name, dtype, shape"),
+        (lambda h: h["fields"].pop("seq"), r"missing fields \['seq'\]"),
+        (lambda h: h["fields"].update(colour="red"), r"unknown fields \['colour'\]"),
+        (lambda h: h["fields"].update(seq="3"), "load_map.seq='3' is not an integer"),
+        (lambda h: h["fields"].update(seq=True), "is not an integer"),
+        (lambda h: h["fields"].update(seq=-1), "seq=-1 must be >= 0"),
+        (lambda h: h["fields"].update(gap_db="nan"), "load_map.gap_db must be finite"),
+        (lambda h: h["fields"].update(created_s="soon"), "is not a number"),
+        (lambda h: h["fields"].update(fallback=1), "is not a boolean"),
+        (lambda h: h["fields"].update(epoch=5), "is not a string"),
+        (lambda h: h.update(fields=[]), "'fields' must be an object"),
+        (lambda h: h.update(arrays={}), "'arrays' must be a list"),
+    ])
+    def test_fields_and_arrays(self, change, match):
+        frames = codec.encode("map", _map())
+        head = _header(frames)
+        change(head)
+        with pytest.raises(ProtocolError, match=match):
+            codec.decode(self._refit(frames, head))
+
+    def test_non_finite_power_is_refused(self):
+        m = _map()
+        frames = codec.encode("map", m)
+        power = np.array(m.power_lin)
+        power[0] = np.nan
+        frames[4] = power.astype("<f4").tobytes()
+        with pytest.raises(ProtocolError, match="power_lin must be finite"):
+            codec.decode(self._refit(frames, _header(frames)))
+
+    def test_length_mismatch_between_arrays(self):
+        frames = codec.encode("map", _map(n=6))
+        head = _header(frames)
+        head["arrays"][1]["shape"] = [5]
+        frames[3] = bytes(frames[3])[:5]
+        with pytest.raises(ProtocolError, match="bits has 5 tones, tone_index has 6"):
+            codec.decode(self._refit(frames, head))
+
+    def test_dict_key_both_field_and_array(self):
+        frames = codec.encode("status", {"a": np.zeros(2)})
+        head = _header(frames)
+        head["fields"]["a"] = 1
+        with pytest.raises(ProtocolError, match="both a field and an array"):
+            codec.decode(self._refit(frames, head))
+
+    def test_frame_that_is_not_bytes(self):
+        with pytest.raises(ProtocolError, match="is not bytes"):
+            codec.decode(["map", b"{}"])
+
+
+class TestEncodeErrors:
+    def test_unknown_record(self):
+        with pytest.raises(TypeError, match="cannot encode a object"):
+            codec.encode("x", object())
+
+    def test_unencodable_dict_value(self):
+        with pytest.raises(TypeError, match="status.when: a set cannot be encoded"):
+            codec.encode("status", {"when": {1}})
+
+    def test_bad_topic(self):
+        with pytest.raises(TypeError, match="ASCII"):
+            codec.encode("", {})
+
+
+def test_encode_refuses_what_decoders_would_refuse():
+    with pytest.raises(ValueError, match="load_map.power_lin must be finite to be encoded"):
+        codec.encode("map", _map(power_lin=[np.nan, 0, 1, 1, 0, 1]))
+
+
+def test_frames_may_be_numpy_arrays_of_any_dtype():
+    frames = codec.encode("estimate", _estimate())
+    as_arrays = frames[:2] + [np.frombuffer(f, dtype=d) for f, d in
+                              zip(frames[2:], ["<i2", "<c8", "<f4", "<f4"])]
+    _assert_same(codec.decode(as_arrays)[1], _estimate())
