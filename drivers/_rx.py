@@ -14,7 +14,8 @@ One call of :meth:`Receiver.receive` turns a block of complex baseband samples i
    over even bin shifts within ``cfo_range_tones`` (Schmidl and Cox, sec. III).
 3. **Fine offset**: the phase advance between the identical training symbols (baseline of one
    symbol) fixes the per-symbol phase step; a straight line through the data symbols' pilot
-   phases removes what remains.
+   phases, extended over the training and header rows, removes what remains (including the
+   error of the step itself, which a strong interferer can bias).
 4. **Channel and noise**: data-aided least squares per tone over every symbol whose tone values
    are known: the training symbols, the header (after its CRC passes) and the data symbols (hard
    decisions, two passes), ``H = sum(conj(X) Y) / sum(|X|^2)``; the residual ``S = sum|Y - H X|^2``
@@ -182,6 +183,8 @@ class Receiver:
         self._sym_index = np.arange(plan.n_symbols)
         index = np.arange(plan.data_symbols, dtype=np.float64)
         self._data_offsets = index - index.mean()
+        self._row_offsets = (np.arange(1 + plan.train_symbols + plan.data_symbols)
+                             - (1 + plan.train_symbols) - index.mean())
         self._data_index_spread = max(float(np.sum(self._data_offsets ** 2)), 1.0)
         self._times = np.arange(1 + plan.train_symbols + plan.data_symbols,
                                 dtype=np.float32)[:, None]
@@ -320,8 +323,9 @@ class Receiver:
         cpe = np.concatenate(([np.angle(common[0])], steps)).cumsum()
         k = self._data_offsets
         slope = np.dot(k, cpe) / self._data_index_spread
-        row_phase = phase[1:].copy()
-        row_phase[t + 1:] *= np.exp(-1j * (cpe.mean() + slope * k))
+        # The line also holds for the training and header rows: an error in the training phase
+        # step shows up as a slope here, and extending the line removes it from every row.
+        row_phase = phase[1:] * np.exp(-1j * (cpe.mean() + slope * self._row_offsets))
         # Least squares over every symbol with known tone values: training, header, data.
         dp = fmt.data_pos
         rows = np.take(spectra[1:], bins[dp], axis=1)  # (training + header + data, data tones)
