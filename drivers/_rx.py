@@ -42,7 +42,6 @@ from brimline.drivers.ofdm import (
     FrameFormat,
     _axes,
     decode_header,
-    encode_header,
 )
 
 __all__ = ["Receiver", "RxFrame", "MapLookup", "FrameScanner"]
@@ -167,7 +166,7 @@ class Receiver:
         self.clip_fraction = float(clip_fraction)
         self._half = n // 2
         self._block = max(8, min(32, self._half // 8))
-        self._decimate = self._block // 8
+        self._decimate = self._block // 4 if self._half >= 256 else self._block // 8
         self._phase_ramp = (-2j * np.pi * np.arange(n) / n)
         g = math.ceil(plan.cfo_range_tones / 2)
         self._shifts = 2 * np.arange(-g, g + 1)
@@ -179,6 +178,12 @@ class Receiver:
         self._pilots = fmt.pilots.astype(np.float32)
         self._scramble = fmt.scramble.astype(np.float32)
         self._reps = fmt.header_reps
+        # Which header bit each data tone carries (index HEADER_BITS: a filler tone, sign +1).
+        bit_of_tone = np.full(fmt.n_used, HEADER_BITS)
+        n_rep = fmt.header_reps * HEADER_BITS
+        bit_of_tone[:n_rep] = np.tile(np.arange(HEADER_BITS), fmt.header_reps)
+        self._header_bit_data = bit_of_tone[fmt.data_pos]
+        self._scramble_data = self._scramble[fmt.data_pos]
         self._passes = 1
         self._sym_index = np.arange(plan.n_symbols)
         index = np.arange(plan.data_symbols, dtype=np.float64)
@@ -281,6 +286,8 @@ class Receiver:
         rf = 0.5 * (ec[2 * half:2 * half + width] - ec[:width])
         mf = (pf.real ** 2 + pf.imag ** 2) / np.maximum(rf * rf, 1e-30)
         top = int(np.argmax(mf))
+        if not mf[top] > self.sync_threshold:  # a coarse false alarm: not confirmed exactly
+            return -1, float(mf[top]), 0
         low = mf < 0.9 * mf[top]
         left_edges = np.flatnonzero(low[:top])
         right_edges = np.flatnonzero(low[top:])
@@ -293,9 +300,8 @@ class Receiver:
         plan, fmt = self.plan, self.format
         n, s, t = plan.fft_size, plan.symbol_len, plan.train_symbols
         # Integer offset: even shift maximizing the sync/training differential correlation.
-        y0 = spectra[0, self._int_bins]
-        y1 = spectra[1, self._int_bins]
-        score = np.abs(np.sum(np.conj(y0) * y1 * self._diff_conj, axis=1))
+        cross = np.conj(spectra[0]) * spectra[1]
+        score = np.abs(np.sum(cross[self._int_bins] * self._diff_conj, axis=1))
         shift = int(self._shifts[int(np.argmax(score))])
         bins = (fmt.used_bins + shift) % n
         # Per-symbol phase step from the identical training symbols (all offsets together).
@@ -330,11 +336,13 @@ class Receiver:
         dp = fmt.data_pos
         rows = np.take(spectra[1:], bins[dp], axis=1)  # (training + header + data, data tones)
         rows *= row_phase[:, None]
-        x = np.zeros(rows.shape, np.complex64)
+        x = np.empty(rows.shape, np.complex64)  # data rows are filled by the decisions
         x[:t] = self._train_data
-        if header_ok:
-            x[t] = self._header_values(seq, counter)[dp]
+        if header_ok:  # the header row is known once its CRC passes
+            signs = np.append(1.0 - 2.0 * (soft_bits < 0), 1.0).astype(np.float32)
+            x[t] = signs[self._header_bit_data] * self._scramble_data
         else:
+            x[t] = 0.0
             rows[t] = 0.0  # an unknown header row takes no part
         tables = self._tables_for(seq if header_ok else None, lookup)
         known = t + int(header_ok)
@@ -370,9 +378,6 @@ class Receiver:
             decided=decided, symbols_used=used)
 
     # ------------------------------------------------------------------ helpers
-
-    def _header_values(self, seq: int, counter: int) -> np.ndarray:
-        return self.format.header_symbol(encode_header(seq, counter)).astype(np.float32)
 
     def _tables_for(self, seq: int | None, lookup: MapLookup | None) -> _MapTables | None:
         if seq is None:
