@@ -35,7 +35,7 @@ from typing import Callable
 
 import numpy as np
 
-from brimline.daemon.records import LoadMap, TonePlan
+from brimline.daemon.records import TonePlan
 from brimline.drivers.ofdm import (
     _GRAY,
     HEADER_BITS,
@@ -184,7 +184,6 @@ class Receiver:
         bit_of_tone[:n_rep] = np.tile(np.arange(HEADER_BITS), fmt.header_reps)
         self._header_bit_data = bit_of_tone[fmt.data_pos]
         self._scramble_data = self._scramble[fmt.data_pos]
-        self._passes = 1
         self._sym_index = np.arange(plan.n_symbols)
         index = np.arange(plan.data_symbols, dtype=np.float64)
         self._data_offsets = index - index.mean()

@@ -236,8 +236,4 @@ class IqDriver(Driver):
                     return
 
     def _release(self) -> None:
-        raw = self.recording.raw
-        mm = getattr(raw, "_mmap", None)
-        if mm is not None:
-            object.__setattr__(self.recording, "raw", np.zeros(0, raw.dtype))
-            del raw
+        self.recording = None  # drops the memory map; a running generator keeps its own reference

@@ -18,7 +18,7 @@ from typing import Iterator
 import numpy as np
 
 from brimline.daemon.errors import ConfigError
-from brimline.daemon.records import Estimate, LoadMap, TonePlan
+from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers._rx import Receiver, RxFrame
 from brimline.drivers.base import Driver, MapProvider
 from brimline.drivers.channel import FadeEvent, LinkChannel, Truth, profile as _profile

@@ -1,7 +1,6 @@
 """Sim, SigMF IQ and radio drivers: the driver contract, counters, bad input, config sections."""
 
 import inspect
-import math
 import threading
 import time
 
