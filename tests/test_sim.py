@@ -258,6 +258,53 @@ class TestRadioDriver:
         with pytest.raises(SourceError, match=r"install with pip install 'brimline\[sdr\]'"):
             RadioDriver(plan=make_plan(center_hz=915e6))
 
+    def test_with_a_fake_device(self, plan, monkeypatch):
+        """The driver's use of the pyadi-iio object (attributes, rx(), buffers), with a stand-in
+        device whose receive buffers hold simulated frames."""
+        import sys
+        import types
+        stream = _capture(plan, n_frames=6, gap=300) * 0.2
+        calls = {}
+
+        class FakePluto:
+            def __init__(self, uri):
+                calls["uri"] = uri
+                self._pos = 0
+
+            def __setattr__(self, key, value):
+                calls[key] = value
+                object.__setattr__(self, key, value)
+
+            def rx(self):
+                n = self.rx_buffer_size
+                chunk = np.resize(np.roll(stream, -self._pos), n)
+                self._pos = (self._pos + n) % stream.size
+                return chunk * 2048.0  # raw converter counts
+
+            def tx(self, samples):
+                calls["tx_peak"] = float(np.abs(samples).max())
+
+            def rx_destroy_buffer(self):
+                calls["rx_destroyed"] = True
+
+            def tx_destroy_buffer(self):
+                calls["tx_destroyed"] = True
+
+        monkeypatch.setitem(sys.modules, "adi", types.SimpleNamespace(Pluto=FakePluto))
+        tuned = make_plan(center_hz=2.412e9)
+        with RadioDriver(plan=tuned, uri="ip:192.0.2.7", transmit=True, rx_gain_db=20.0,
+                         tx_attenuation_db=40.0) as drv:
+            ests = []
+            for est in drv.frames():
+                ests.append(est)
+                if len(ests) == 4:
+                    break
+        assert calls["uri"] == "ip:192.0.2.7" and calls["rx_lo"] == 2412000000
+        assert calls["tx_hardwaregain_chan0"] == -40.0 and calls["tx_cyclic_buffer"] is True
+        assert calls["gain_control_mode_chan0"] == "manual" and calls["rx_hardwaregain_chan0"] == 20
+        assert calls["tx_peak"] <= 2 ** 14 and calls["rx_destroyed"] and calls["tx_destroyed"]
+        assert all(e.header_ok and e.center_hz == 2.412e9 for e in ests)
+
     def test_needs_center_frequency(self, plan):
         with pytest.raises(ConfigError, match=r"link.center_hz must be set"):
             RadioDriver(plan=plan)
