@@ -430,36 +430,38 @@ def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool,
     ``H_-i = (H_i - w_i conj(x_i) y_i) / (1 - q_i)``, so a symbol's own, possibly wrong,
     decision cannot pull the channel it is decided with.
     """
-    # Complex arrays times a real column go through their float32 views: same-type loops,
-    # no casts, no BLAS threads for these small products.
+    # Sums over rows are vector-matrix products (gemv) on float32 views of the complex arrays:
+    # same-type loops, no casts, several times faster than broadcasting against a column.
     energy = np.abs(x)
     energy *= energy
     corr = rows * np.conj(x)
-    a = np.maximum(energy.sum(axis=0), 1e-30)
-    u = corr.sum(axis=0)
+    corr_pairs = _as_pairs(corr)
+    ones = np.ones(rows.shape[0], np.float32)
+    a = np.maximum(ones @ energy, 1e-30)
+    u = _as_complex(ones @ corr_pairs)
     if not linear:
         h = u / a
         h_rows = np.broadcast_to(h, rows.shape)
     else:
-        o = times - times.mean()  # a column: the same time offsets for every tone
+        o = (times - times.mean())[:, 0]  # the same time offsets for every tone
         o2 = o * o
-        b = (energy * o).sum(axis=0)
-        c = (energy * o2).sum(axis=0)
-        v = _as_complex((_as_pairs(corr) * o).sum(axis=0))
+        b = o @ energy
+        c = o2 @ energy
+        v = _as_complex(o @ corr_pairs)
         det = np.maximum(a * c - b * b, 1e-30)
         h0 = ((c * u - b * v) / det).astype(np.complex64)
         slope = ((a * v - b * u) / det).astype(np.complex64)
-        pairs = _as_pairs(slope) * o
+        pairs = np.multiply.outer(o, _as_pairs(slope))
         pairs += _as_pairs(h0)
         h_rows = _as_complex(pairs)
         h = h0 + slope * (b / a)
     err = h_rows * x
     np.subtract(rows, err, out=err)
-    residual = _power(err).sum(axis=0)
+    residual = ones @ _power(err)
     if linear and leave_one_out is not None:
         k = leave_one_out
-        w = o2[k:] * (a / det).astype(np.float32)
-        w -= o[k:] * (2.0 * b / det).astype(np.float32)
+        w = np.multiply.outer(o2[k:], (a / det).astype(np.float32))
+        w -= np.multiply.outer(o[k:], (2.0 * b / det).astype(np.float32))
         w += (c / det).astype(np.float32)
         part = h_rows[k:]
         part -= corr[k:] * w.astype(np.complex64)
