@@ -60,6 +60,9 @@ log = logging.getLogger("brimline.service")
 
 _CONTROL = b"_driver"  # topic of driver-thread control messages on the inproc socket
 _HISTORY = 16  # changes kept for the status stream
+# Sequence numbers skipped at a restart: more than the maps that can be published while one
+# state save is in flight (maps are rate-limited by change.max_maps_per_s, a save takes ms).
+_RESTART_SEQ_MARGIN = 16
 
 
 def make_driver(config: Config, plan, map_provider=None):
@@ -631,16 +634,20 @@ class _Io:
         if saved is None:
             return new_epoch(), 0, None
         m = saved.load_map
+        # Maps are published before their state is saved (by a writer thread that keeps only
+        # the newest), so a crash can leave a few published maps unsaved: starting a margin
+        # past the saved number keeps the order strict across any restart.
+        next_seq = saved.next_seq + _RESTART_SEQ_MARGIN
         if m.plan_id != self._plan.plan_id:
             # Same epoch and sequence continue, but a map for another tone plan is not served.
             log.warning("saved map is for tone plan %s, this config's is %s: not restored",
                         m.plan_id, self._plan.plan_id)
             m = None
-        return saved.epoch, saved.next_seq, m
+        return saved.epoch, next_seq, m
 
     def save_state(self, m: LoadMap) -> None:
         if self.state is not None:
-            self.state.save(m)
+            self.state.submit(m)
 
     # -- maps
     def publish_map(self, m: LoadMap, *, prime: bool = False) -> None:
@@ -698,11 +705,8 @@ class _Io:
         if self._closed:
             return
         self._closed = True
-        if self.state is not None and last_map is not None:
-            try:
-                self.state.save(last_map)
-            except BrimlineError as exc:
-                log.error("state not saved: %s", exc)
+        if self.state is not None:
+            self.state.close(last_map)
         if self.recorder is not None:
             self.recorder.close()
         for obj in (self.status, self.maps):
@@ -716,7 +720,57 @@ def _open_state(config: Config):
         return None
     from brimline.daemon.state import StateStore
 
-    return StateStore(path)
+    return _StateWriter(StateStore(path))
+
+
+class _StateWriter:
+    """Saves the newest map on a thread of its own, so fsync never stalls the main loop.
+
+    Only the newest submitted map matters, so a save in flight coalesces later submissions.
+    ``close(last)`` waits for the thread and then saves ``last`` synchronously.
+    """
+
+    def __init__(self, store) -> None:
+        self.store = store
+        self._cond = threading.Condition()
+        self._pending: LoadMap | None = None
+        self._stop = False
+        self.errors = 0
+        self._thread = threading.Thread(target=self._main, name="brimline-state", daemon=True)
+        self._thread.start()
+
+    def load(self):
+        return self.store.load()
+
+    def submit(self, m: LoadMap) -> None:
+        with self._cond:
+            self._pending = m
+            self._cond.notify()
+
+    def _main(self) -> None:
+        while True:
+            with self._cond:
+                while self._pending is None and not self._stop:
+                    self._cond.wait()
+                if self._pending is None:
+                    return
+                m, self._pending = self._pending, None
+            try:
+                self.store.save(m)
+            except BrimlineError as exc:
+                self.errors += 1
+                log.error("state not saved: %s", exc)
+
+    def close(self, last: LoadMap | None) -> None:
+        with self._cond:
+            self._stop = True
+            self._cond.notify()
+        self._thread.join(10.0)
+        if last is not None:
+            try:
+                self.store.save(last)
+            except BrimlineError as exc:
+                log.error("state not saved: %s", exc)
 
 
 def _open_recorder(config: Config, plan):
