@@ -442,9 +442,8 @@ class Service:
         return None
 
     def _handle_inproc(self, frames) -> None:
-        if bytes(frames[0].buffer if hasattr(frames[0], "buffer") else frames[0]) == _CONTROL:
-            msg = json.loads(bytes(frames[1].buffer if hasattr(frames[1], "buffer")
-                                   else frames[1]))
+        if frames and bytes(getattr(frames[0], "buffer", frames[0])) == _CONTROL:
+            msg = json.loads(bytes(getattr(frames[1], "buffer", frames[1])))
             self.driver_state = msg["state"]
             self.driver_error = msg.get("error")
             if self.driver_state == "failed":
@@ -454,8 +453,7 @@ class Service:
                 log.info("source %s ended", getattr(self.driver, "name", "driver"))
             return
         try:
-            _topic, estimate = codec.decode([f.buffer if hasattr(f, "buffer") else f
-                                             for f in frames])
+            _topic, estimate = codec.decode(frames)
             if not isinstance(estimate, Estimate):
                 raise ProtocolError(f"expected an estimate, got {type(estimate).__name__}")
         except ProtocolError as exc:
@@ -485,6 +483,12 @@ class Service:
         self._last_arrival_wall = self._clock()
         self._io.record_estimate(estimate)
         published = None
+        if (estimate.plan_id != self.plan.plan_id
+                or not np.array_equal(estimate.tone_index, self.plan.data_tones)):
+            # Received with another tone plan: no map of this daemon could describe it.
+            self.rejected["other_plan"] += 1
+            self._check_stale(now_s)
+            return None
         # A gap in the source's own time longer than stale_after_s means the link was stale
         # during the gap: the fallback map goes first, as a live daemon would have sent it.
         stale_after = self.config.fallback.stale_after_s
@@ -553,8 +557,9 @@ class Service:
         self.current_map, self.current_kind = m, kind
         self.maps_published[kind] += 1
         self.changes.append(Change(now_s, kind, reason, m.seq))
-        log.info("map %d (%s, %d bits/symbol, margin %.1f dB): %s", m.seq, kind, m.total_bits,
-                 m.margin_db, reason)
+        margin = f"{m.margin_db:.1f} dB" if math.isfinite(m.margin_db) else "unknown"
+        log.info("map %d (%s, %d bits/symbol, margin %s): %s", m.seq, kind, m.total_bits,
+                 margin, reason)
         return m
 
     def _note_ack(self, ack: dict) -> None:

@@ -156,6 +156,16 @@ class TestRobustness:
         assert st["frames"]["rejected"] == {"non_finite": 10}
         assert st["frames"]["accepted"] == 90
 
+    def test_estimate_of_another_tone_plan_is_dropped(self):
+        from brimline.drivers.ofdm import make_plan
+
+        cfg = loopback_config()
+        other = make_plan(fft_size=256, used_tones_half=90)
+        with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=1)) as svc:
+            for est in ScriptedDriver(other, frames=5).frames():
+                assert svc.process(est) is None
+            assert svc.rejected["other_plan"] == 5 and svc.current_map is None
+
     def test_undecodable_hand_off_is_counted(self):
         cfg = loopback_config()
         with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=1)) as svc:
