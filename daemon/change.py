@@ -116,7 +116,9 @@ class ChangeControl:
         self.upgrade_check_s = float(upgrade_check_s)
         self.max_maps_per_s = float(max_maps_per_s)
         self.swap_max_tones = int(swap_max_tones)
-        if getattr(loader, "mode", "rate") == "margin":
+        # Margin mode carries exactly its target: a swap must neither lose nor gain bits.
+        self._exact_rate = getattr(loader, "mode", "rate") == "margin"
+        if self._exact_rate:
             swap_max_loss_bits = 0
         self.swap_max_loss_bits = int(swap_max_loss_bits)
         self.emergency_fraction = float(emergency_fraction)
@@ -131,6 +133,8 @@ class ChangeControl:
             ("keep", "bit_swap", "reload", "emergency", "fallback", "forced", "upgrade",
              "held_dwell", "held_rate", "infeasible"), 0)
         self._current: Allocation | None = None
+        self._margin_at_0db = None      # tone margins of the current map at 0 dB SNR
+        self._n_loaded = 0
         self._plan_id: str | None = None
         self._changed_s = -math.inf     # when the current map was adopted
         self._ref_mean_db = math.nan    # mean tracked SNR when the current map was made
@@ -197,7 +201,7 @@ class ChangeControl:
             With a reason for the status stream; ``allocation`` is the new map (None for keep).
         """
         now_s = float(now_s)
-        snr = 10.0 ** (tracked.effective_snr_db / 10.0)
+        eff_db = tracked.effective_snr_db
         mean_db = float(tracked.snr_db.mean())
         cur = self._current
         since_map = now_s - self._changed_s
@@ -210,14 +214,16 @@ class ChangeControl:
             why = ("first map" if cur is None or self._plan_id is None
                    else f"tone plan changed to {tracked.plan_id}")
             self._plan_id = tracked.plan_id
-            alloc, note = self._load(snr)
+            alloc, note = self._load(_lin(eff_db))
             return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {why}{note}", now_s,
                                mean_db)
 
-        margins = self.loader.tone_margin_db(cur.bits, cur.power, snr)
+        # With power proportional to 1 / snr for given bits (the SNR-gap model), a tone's margin
+        # in dB is its margin at 0 dB SNR plus its SNR in dB: one addition per frame.
+        margins = self._margin_at_0db + eff_db
         low = margins < self.downshift_margin_db
         n_low = int(np.count_nonzero(low))
-        n_loaded = int(np.count_nonzero(cur.bits))
+        n_loaded = self._n_loaded
         worst = int(np.argmin(margins))
         worst_text = (f"{margins[worst]:.1f} dB worst at tone {int(tracked.tone_index[worst])}"
                       if math.isfinite(margins[worst]) else "no tone loaded")
@@ -232,7 +238,7 @@ class ChangeControl:
             if rate_wait > 0:
                 return self._hold("held_rate", f"emergency pending: {what}; map rate limit "
                                   f"({rate_wait:.2f} s)")
-            alloc, note = self._load(snr * 10.0 ** (-self.emergency_margin_db / 10.0))
+            alloc, note = self._load(_lin(eff_db - self.emergency_margin_db))
             return self._adopt(DecisionKind.EMERGENCY, alloc,
                                f"emergency: {what}; +{self.emergency_margin_db:g} dB margin"
                                f"{note}", now_s, mean_db)
@@ -243,6 +249,7 @@ class ChangeControl:
             if wait > 0:
                 key = "held_dwell" if self.down_dwell_s - since_map >= rate_wait else "held_rate"
                 return self._hold(key, f"{what}; change in {wait:.2f} s")
+            snr = _lin(eff_db)
             swap = self._bit_swap(cur, snr, low) if n_low <= self.swap_max_tones else None
             if swap is not None:
                 alloc, changed = swap
@@ -256,10 +263,10 @@ class ChangeControl:
 
         if since_map >= self.up_dwell_s and rate_wait <= 0 and now_s >= self._next_upgrade_s:
             self._next_upgrade_s = now_s + self.upgrade_check_s
-            guarded, _ = self._load(snr * 10.0 ** (-self.upshift_margin_db / 10.0))
+            guarded, _ = self._load(_lin(eff_db - self.upshift_margin_db))
             gain = guarded.total_bits - cur.total_bits
             if gain >= max(self.min_gain_bits, 1):
-                alloc, note = self._load(snr)
+                alloc, note = self._load(_lin(eff_db))
                 self._counters["upgrade"] += 1
                 return self._adopt(
                     DecisionKind.RELOAD, alloc,
@@ -284,6 +291,9 @@ class ChangeControl:
         else:
             changed = int(np.count_nonzero((cur.bits != alloc.bits) | (cur.power != alloc.power)))
         self._current = alloc
+        self._margin_at_0db = self.loader.tone_margin_db(alloc.bits, alloc.power,
+                                                         np.ones(alloc.bits.size))
+        self._n_loaded = int(np.count_nonzero(alloc.bits))
         self._changed_s = float(now_s)
         self._ref_mean_db = mean_db
         self._next_upgrade_s = -math.inf
@@ -363,7 +373,8 @@ class ChangeControl:
                            else np.inf)
         n_changed = int(np.count_nonzero(changed))
         loss = int(cur.total_bits - bits.sum())
-        if n_changed > self.swap_max_tones or loss > self.swap_max_loss_bits:
+        if n_changed > self.swap_max_tones or loss > self.swap_max_loss_bits \
+                or (self._exact_rate and loss != 0):
             return None
         total_power = float(power.sum())
         if total_power > budget * (1 + 1e-9) or (power > self._cap_lin * (1 + 1e-9)).any():
@@ -373,6 +384,10 @@ class ChangeControl:
         alloc = Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
                            total_power=total_power, margin_db=margin_db)
         return alloc, int(np.count_nonzero((cur.bits != bits) | (cur.power != power)))
+
+
+def _lin(db: np.ndarray) -> np.ndarray:
+    return 10.0 ** (db / 10.0)
 
 
 def _tones(n: int) -> str:

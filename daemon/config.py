@@ -336,7 +336,7 @@ class EstimatorSection(Section):
     tau_s: float = Field(
         0.25, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
     std_tau_s: float = Field(
-        2.0, description="time constant of the per-tone variance tracker, s")
+        1.0, description="time constant of the per-tone variance tracker, s")
     std_init_db: float = Field(
         3.0, description="uncertainty (std, dB) given to a tone before its variance is learnt")
     backoff_sigmas: float = Field(
@@ -486,7 +486,7 @@ def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
     return v
 
 
-def _positive(key: str, v: float) -> float:
+def _finite_positive(key: str, v: float) -> float:
     if not (math.isfinite(v) and v > 0):
         raise ValueError(f"{key}={v} must be finite and > 0")
     return v
@@ -523,7 +523,7 @@ class PublishSection(Section):
     @field_validator("heartbeat_s")
     @classmethod
     def _heartbeat(cls, v):
-        return _positive("heartbeat_s", v)
+        return _finite_positive("heartbeat_s", v)
 
     @field_validator("linger_s")
     @classmethod
@@ -566,7 +566,7 @@ class StatusSection(Section):
     @field_validator("rate_hz")
     @classmethod
     def _rate(cls, v):
-        return _positive("rate_hz", v)
+        return _finite_positive("rate_hz", v)
 
     @field_validator("hwm")
     @classmethod

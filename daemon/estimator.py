@@ -28,10 +28,10 @@ Why these choices:
   exactly the effect of ``k`` frames of the same value, and after a gap of several ``tau_s`` the old
   state is all but forgotten. Beyond ``stale_s`` tracking starts afresh (the variance too).
 * **Variance of the innovation**, corrected by ``(2 - alpha) / 2``: with iid noise of variance
-  sigma**2 around a constant, the EWMA itself has variance ``sigma**2 * alpha / (2 - alpha)``, so
-  ``E[d**2] = 2 sigma**2 / (2 - alpha)``. ``std_db`` is thus the spread of a single frame's SNR about
-  the tracked value (estimation noise plus fast channel variation): the amount by which the SNR
-  the transmitter meets can differ from the tracked one, hence the back-off. ``P`` adds the
+  sigma**2 around a constant, the EWMA itself has variance ``sigma**2 * alpha / (2 - alpha)``,
+  so ``E[d**2] = 2 sigma**2 / (2 - alpha)``. ``std_db`` is thus the spread of a single frame's
+  SNR about the tracked value (estimation noise plus fast channel variation): the amount by which
+  the SNR the transmitter meets can differ from the tracked one, hence the back-off. ``P`` adds the
   uncertainty of the tracked value itself, large right after the first frame (as large as
   ``std_init_db``) and small once many frames are averaged, so a map made from the first few
   frames is made with a wider back-off and does not need repairs as the average settles.
@@ -44,10 +44,11 @@ Why these choices:
   drop of the whole band still gets through after ``confirm_frames`` frames. After a gap of
   ``tau_s * ln 2`` or more the new frame outweighs the old state, which says little about it any
   more, so no gate applies.
-* **Across tones**, the tracked values are averaged with neighbours within ``tone_window`` tones
-  only where they agree within ``tone_agree_db`` (a sigma filter): a notch or an interferer deeper
-  than that stays intact; a shallower one cannot be told from estimation noise and is flattened
-  by at most ``2/3 * tone_agree_db`` with the default window of one tone each side.
+* **Across tones**, the tracked values are averaged with pairs of neighbours (one each side, up to
+  ``tone_window`` tones away) only where both agree within ``tone_agree_db`` (a symmetric sigma
+  filter): a notch or an interferer deeper than that stays intact; a shallower one cannot be
+  told from estimation noise and is flattened by at most ``2/3 * tone_agree_db`` with the default
+  window of one tone each side. Pairs keep a linear slope unbiased.
 
 Frames that cannot be used are dropped and counted by reason (see :data:`REJECT_REASONS`); the
 state stays as it was.
@@ -115,7 +116,7 @@ class Estimator:
     True
     """
 
-    def __init__(self, *, tau_s: float = 0.25, std_tau_s: float = 2.0, std_init_db: float = 3.0,
+    def __init__(self, *, tau_s: float = 0.25, std_tau_s: float = 1.0, std_init_db: float = 3.0,
                  backoff_sigmas: float = 1.0, outlier_db: float = 6.0,
                  outlier_sigmas: float = 4.0, confirm_frames: int = 3,
                  frame_outlier_fraction: float = 0.5, stale_s: float = 5.0,
@@ -367,15 +368,22 @@ def _same_tuning(a: float, b: float) -> bool:
 
 
 def _agree_smooth(values_db: np.ndarray, window: int, agree_db: float) -> np.ndarray:
-    """Average each tone with neighbours up to ``window`` tones away that agree within
-    ``agree_db`` of it (a sigma filter); tones with no agreeing neighbour are unchanged."""
+    """Symmetric sigma filter across tones.
+
+    Tone ``i`` is averaged with the pair ``i - s, i + s`` (``s = 1 .. window``) when both lie within
+    ``agree_db`` of it and every closer pair was taken too; otherwise it keeps its value. Taking
+    neighbours only in pairs leaves a linear slope unbiased (a one-sided neighbour on a slope
+    would pull the tone towards it, and toggle as the values wander near the threshold).
+    """
+    n = values_db.size
     acc = values_db.copy()
-    count = np.ones(values_db.size)
-    for shift in range(1, min(window, values_db.size - 1) + 1):
-        lo, hi = values_db[:-shift], values_db[shift:]
-        ok = np.abs(hi - lo) <= agree_db
-        acc[:-shift] += np.where(ok, hi, 0.0)
-        acc[shift:] += np.where(ok, lo, 0.0)
-        count[:-shift] += ok
-        count[shift:] += ok
+    count = np.ones(n)
+    ok = None
+    for shift in range(1, min(window, (n - 1) // 2) + 1):
+        centre = values_db[shift:n - shift]
+        lo, hi = values_db[:n - 2 * shift], values_db[2 * shift:]
+        pair_ok = (np.abs(lo - centre) <= agree_db) & (np.abs(hi - centre) <= agree_db)
+        ok = pair_ok if ok is None else ok[1:-1] & pair_ok
+        acc[shift:n - shift] += np.where(ok, lo + hi, 0.0)
+        count[shift:n - shift] += 2 * ok
     return acc / count

@@ -16,7 +16,8 @@ import numpy as np
 import pytest
 from scipy.signal import lfilter
 
-from brimline.daemon.config import EstimatorSection
+from brimline.daemon.config import EstimatorSection, load_config
+from brimline.daemon.errors import ConfigError
 from brimline.daemon.estimator import REJECT_REASONS, Estimator, _agree_smooth
 from brimline.daemon.records import Estimate
 
@@ -59,6 +60,16 @@ class TestConfig:
             Estimator(**kwargs)
         with pytest.raises(Exception, match=match):
             EstimatorSection(**kwargs)
+
+
+    def test_yaml_errors_name_the_key(self, tmp_path):
+        path = tmp_path / "c.yaml"
+        path.write_text("estimator:\n  tau_s: 0.5\n  outlier_db: -3\n")
+        with pytest.raises(ConfigError, match=r"line 3: estimator.outlier_db=-3"):
+            load_config(path)
+        path.write_text("estimator:\n  tau_s: 1\n  tone_window: 2\n")
+        cfg = load_config(path)
+        assert Estimator(**cfg.estimator.model_dump()).tone_window == 2
 
 
 class TestTimeSmoothing:
@@ -308,13 +319,18 @@ class TestRejection:
 
 class TestAcrossTones:
     def test_notch_and_interferer_stay_flat_parts_smooth(self):
-        """A sigma filter only averages neighbours that agree within tone_agree_db."""
-        v = np.array([20.0, 20.9, 19.6, 20.0, 8.0, 20.0, 20.2, 35.0, 20.0, 19.8])
+        """A sigma filter only averages neighbours that agree within tone_agree_db, in pairs."""
+        v = np.array([20.0, 20.6, 19.8, 20.2, 8.0, 20.0, 20.2, 35.0, 20.0, 19.8])
         out = _agree_smooth(v, 1, 1.0)
-        assert out[4] == 8.0 and out[7] == 35.0           # notch and spike untouched
-        assert out[1] == pytest.approx((20.0 + 20.9) / 2)   # 19.6 is 1.3 dB away: left out
-        assert out[2] == pytest.approx((19.6 + 20.0) / 2)
-        assert out[3] == pytest.approx((19.6 + 20.0) / 2)   # the notch is no neighbour of it
+        assert out[4] == 8.0 and out[7] == 35.0             # notch and spike untouched
+        assert out[1] == pytest.approx((20.0 + 20.6 + 19.8) / 3)
+        assert out[2] == pytest.approx((20.6 + 19.8 + 20.2) / 3)
+        assert out[3] == 20.2 and out[5] == 20.0            # next to the notch: left alone
+        assert out[0] == 20.0 and out[9] == 19.8            # band edges have no pair
+
+    def test_linear_slope_is_unbiased(self):
+        v = 0.7 * np.arange(40.0)
+        np.testing.assert_allclose(_agree_smooth(v, 3, 1.0), v)
 
     def test_window_zero_is_identity_and_constant_is_kept(self):
         v = np.linspace(0, 10, 11)
