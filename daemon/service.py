@@ -30,9 +30,9 @@ Heartbeats and the status period are I/O pacing and always run on the monotonic 
 Shutdown order
 --------------
 ``close()``: stop the driver (``driver.close()``, the driver thread leaves at its next frame),
-join the driver thread with a timeout, publish a final status, save state, close the recording
-(flushed), close the main thread's sockets (explicit LINGER), terminate the context if the
-service created it. Idempotent.
+join the driver thread with a timeout, publish a final status, join the state writer thread and
+save the last map, close the recording (flushed), close the main thread's sockets (explicit
+LINGER), terminate the context if the service created it. Idempotent.
 """
 
 from __future__ import annotations
