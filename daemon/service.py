@@ -2,7 +2,8 @@
 
 Threads and sockets
 -------------------
-Two threads, each with its own sockets (ZeroMQ sockets never cross threads):
+Two threads own sockets, each its own (ZeroMQ sockets never cross threads); a third, socketless
+one writes the state file so that fsync never stalls the loop:
 
 * the **driver thread** iterates ``driver.frames()``, encodes each :class:`Estimate` with the
   codec and sends it to the main thread over an ``inproc`` PAIR socket. When the source ends or
