@@ -205,6 +205,7 @@ class Service:
         self._given_driver = driver
         self._follow = follow
         self.plan, self.loader, self.estimator, self.change = build_core(config)
+        self._plan_id = self.plan.plan_id  # a hash: computed once, compared per frame
         if self.config.service.clock == "auto":
             self.clock_mode = "monotonic" if config.driver.kind == "radio" else "source"
         else:
@@ -484,7 +485,7 @@ class Service:
         self._last_arrival_wall = self._clock()
         self._io.record_estimate(estimate)
         published = None
-        if (estimate.plan_id != self.plan.plan_id
+        if (estimate.plan_id != self._plan_id
                 or not np.array_equal(estimate.tone_index, self.plan.data_tones)):
             # Received with another tone plan: no map of this daemon could describe it.
             self.rejected["other_plan"] += 1
@@ -544,7 +545,7 @@ class Service:
                  fallback: bool = False) -> LoadMap:
         m = LoadMap(epoch=self.epoch, seq=self._next_seq,
                     effective_frame=self.frames["last_frame"] + self.config.service.lead_frames,
-                    created_s=now_s, plan_id=self.plan.plan_id, tone_index=self.plan.data_tones,
+                    created_s=now_s, plan_id=self._plan_id, tone_index=self.plan.data_tones,
                     bits=alloc.bits.astype(np.uint8), power_lin=alloc.power.astype(np.float32),
                     total_bits=alloc.total_bits, margin_db=alloc.margin_db,
                     gap_db=float(self.loader.gap_db), reason=reason, fallback=fallback)
