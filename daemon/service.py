@@ -61,8 +61,9 @@ log = logging.getLogger("brimline.service")
 
 _CONTROL = b"_driver"  # topic of driver-thread control messages on the inproc socket
 _HISTORY = 16  # changes kept for the status stream
-# Sequence numbers skipped at a restart: more than the maps that can be published while one
-# state save is in flight (maps are rate-limited by change.max_maps_per_s, a save takes ms).
+# Sequence numbers skipped at a restart: more than the maps that can be published between two
+# state saves (saves are _StateWriter.min_interval_s = 0.1 s apart plus the save itself; maps
+# are rate-limited by change.max_maps_per_s).
 _RESTART_SEQ_MARGIN = 16
 
 
@@ -733,9 +734,12 @@ def _open_state(config: Config):
 class _StateWriter:
     """Saves the newest map on a thread of its own, so fsync never stalls the main loop.
 
-    Only the newest submitted map matters, so a save in flight coalesces later submissions.
+    Only the newest submitted map matters, so a save in flight coalesces later submissions, and
+    saves are at least ``min_interval_s`` apart (a burst of maps costs one fsync, not one each).
     ``close(last)`` waits for the thread and then saves ``last`` synchronously.
     """
+
+    min_interval_s = 0.1
 
     def __init__(self, store) -> None:
         self.store = store
@@ -767,6 +771,9 @@ class _StateWriter:
             except BrimlineError as exc:
                 self.errors += 1
                 log.error("state not saved: %s", exc)
+            with self._cond:
+                if not self._stop:
+                    self._cond.wait_for(lambda: self._stop, self.min_interval_s)
 
     def close(self, last: LoadMap | None) -> None:
         with self._cond:
