@@ -12,16 +12,13 @@
 
 from __future__ import annotations
 
-import os
 import time
 
-os.environ.setdefault("OMP_NUM_THREADS", "1")
+import numpy as np
 
-import numpy as np  # noqa: E402
-
-from brimline.drivers._rx import Receiver  # noqa: E402
-from brimline.drivers.channel import LinkChannel  # noqa: E402
-from brimline.drivers.ofdm import Transmitter, make_plan  # noqa: E402
+from brimline.drivers._rx import Receiver
+from brimline.drivers.channel import LinkChannel
+from brimline.drivers.ofdm import Transmitter, make_plan
 
 GOALS = {
     "rx_msps": ">= 40 Msample/s per core",
