@@ -3,7 +3,8 @@
 Threads and sockets
 -------------------
 Two threads own sockets, each its own (ZeroMQ sockets never cross threads); a third, socketless
-one writes the state file so that fsync never stalls the loop:
+one (:class:`~brimline.daemon.state.StateKeeper`'s writer) saves the last map, so that fsync is
+almost never on the loop:
 
 * the **driver thread** iterates ``driver.frames()``, encodes each :class:`Estimate` with the
   codec and sends it to the main thread over an ``inproc`` PAIR socket. When the source ends or
@@ -61,10 +62,6 @@ log = logging.getLogger("brimline.service")
 
 _CONTROL = b"_driver"  # topic of driver-thread control messages on the inproc socket
 _HISTORY = 16  # changes kept for the status stream
-# Sequence numbers skipped at a restart: more than the maps that can be published between two
-# state saves (saves are _StateWriter.min_interval_s = 0.1 s apart plus the save itself; maps
-# are rate-limited by change.max_maps_per_s).
-_RESTART_SEQ_MARGIN = 16
 
 
 def make_driver(config: Config, plan, map_provider=None):
@@ -207,6 +204,7 @@ class Service:
         self._follow = follow
         self.plan, self.loader, self.estimator, self.change = build_core(config)
         self._plan_id = self.plan.plan_id  # a hash: computed once, compared per frame
+        self._gap_db = float(self.loader.gap_db)
         if self.config.service.clock == "auto":
             self.clock_mode = "monotonic" if config.driver.kind == "radio" else "source"
         else:
@@ -219,6 +217,8 @@ class Service:
         self.maps_published: collections.Counter[str] = collections.Counter()
         self.changes: collections.deque[Change] = collections.deque(maxlen=_HISTORY)
         self.frames = {"received": 0, "accepted": 0, "decode_errors": 0, "last_frame": -1}
+        self.unpublished = 0  # maps not sent because no state save could cover their seq
+        self.state_unsaved = False  # the last attempt to save the seq lease failed
         self.rejected: collections.Counter[str] = collections.Counter()  # by estimator reason
         self.driver_state = "starting"
         self.driver_error: str | None = None
@@ -228,6 +228,7 @@ class Service:
         self.last_status: dict | None = None
 
         self._next_seq = 0
+        self._unrecorded: list = []  # encoded maps published but not yet recorded
         self._last_valid_s: float | None = None  # core time of the newest accepted estimate
         self._last_arrival_s: float | None = None  # source time and monotonic arrival of the
         self._last_arrival_wall: float | None = None  # newest estimate (staleness while silent)
@@ -271,7 +272,8 @@ class Service:
             self._context = zmq.Context()
         try:
             self._io = _Io(self.config, self._context, self.plan)
-            self.epoch, self._next_seq, restored = self._io.restore()
+            self.epoch, self._next_seq, restored = self._io.epoch, self._io.next_seq, \
+                self._io.restored
             if restored is not None:
                 self.current_map = restored
                 self.current_kind = "restored"
@@ -440,6 +442,7 @@ class Service:
         # Staleness while the source is silent.
         if self.driver_state in ("running", "failed"):
             self._check_stale(self.core_now())
+            self._record_maps()
         if self._io.status_due(self._clock()):
             return self.publish_status()
         return None
@@ -463,17 +466,42 @@ class Service:
             self.frames["decode_errors"] += 1
             log.warning("dropped an undecodable estimate: %s", exc)
             return
-        self.process(estimate)
+        self.process(estimate, frames=frames)
 
-    def process(self, estimate: Estimate) -> LoadMap | None:
+    def process(self, estimate: Estimate, *, frames=None) -> LoadMap | None:
         """Run one estimate through estimator and change control; publish a map if one is made.
+
+        Parameters
+        ----------
+        estimate : Estimate
+            The estimate.
+        frames : list, optional
+            The estimate as the codec encoded it (the driver thread's hand-off), recorded as
+            is instead of being encoded again.
 
         Returns
         -------
         LoadMap or None
             The map published for this estimate (the fallback map when the estimate revealed
             a stale gap and nothing newer replaced it), or None.
+
+        Notes
+        -----
+        The recording is written after the maps are sent (estimate first, then the maps it
+        caused), so disk writes are not on the path to the transmitter.
         """
+        try:
+            return self._process(estimate)
+        finally:
+            self._io.record_estimate(estimate, frames)
+            self._record_maps()
+
+    def _record_maps(self) -> None:
+        for frames in self._unrecorded:
+            self._io.record_frames(frames)
+        self._unrecorded.clear()
+
+    def _process(self, estimate: Estimate) -> LoadMap | None:
         if self.clock_mode == "source":
             # Never earlier than a time already given to the core (a fallback sent while a
             # non-paced source was silent used extrapolated time).
@@ -484,7 +512,6 @@ class Service:
         self.frames["last_frame"] = max(self.frames["last_frame"], estimate.frame)
         self._last_arrival_s = now_s
         self._last_arrival_wall = self._clock()
-        self._io.record_estimate(estimate)
         published = None
         if (estimate.plan_id != self._plan_id
                 or not np.array_equal(estimate.tone_index, self.plan.data_tones)):
@@ -526,7 +553,7 @@ class Service:
             if not self.fallback_active:
                 self._enter_fallback(now_s)
 
-    def _enter_fallback(self, now_s: float) -> LoadMap:
+    def _enter_fallback(self, now_s: float) -> LoadMap | None:
         fb = self.config.fallback
         n = self.plan.data_tones.size
         p_lin = 10.0 ** (fb.power_db / 10.0)
@@ -543,20 +570,34 @@ class Service:
         return self._publish(alloc, DecisionKind.FALLBACK.value, reason, now_s, fallback=True)
 
     def _publish(self, alloc: Allocation, kind: str, reason: str, now_s: float, *,
-                 fallback: bool = False) -> LoadMap:
+                 fallback: bool = False) -> LoadMap | None:
+        # The seq must be covered by a saved lease before it goes out (free but once per
+        # state.LEASE maps); without one the map is held back, so no seq is ever reused.
+        try:
+            self._io.reserve(self._next_seq)
+        except BrimlineError as exc:
+            self.unpublished += 1
+            if not self.state_unsaved:
+                log.error("new maps held back: %s", exc)
+            self.state_unsaved = True
+            return None
+        self.state_unsaved = False
+        # The codec and the record refuse bad values; the loader's arrays are passed as they
+        # are (the record converts and freezes them once).
         m = LoadMap(epoch=self.epoch, seq=self._next_seq,
                     effective_frame=self.frames["last_frame"] + self.config.service.lead_frames,
                     created_s=now_s, plan_id=self._plan_id, tone_index=self.plan.data_tones,
-                    bits=alloc.bits.astype(np.uint8), power_lin=alloc.power.astype(np.float32),
+                    bits=alloc.bits, power_lin=alloc.power,
                     total_bits=alloc.total_bits, margin_db=alloc.margin_db,
-                    gap_db=float(self.loader.gap_db), reason=reason, fallback=fallback)
+                    gap_db=self._gap_db, reason=reason, fallback=fallback)
         self._next_seq += 1
+        frames = self._io.publish_map(m)
+        # Everything below is bookkeeping after the map is on its way.
+        self._io.save_state(m, frames)
+        self._unrecorded.append(frames)
         if self.fallback_active and not fallback:
             self.fallback_active = False
             log.info("estimates resumed: leaving the fallback map")
-        self._io.publish_map(m)
-        self._io.save_state(m)
-        self._io.record_map(m)
         self.current_map, self.current_kind = m, kind
         self.maps_published[kind] += 1
         self.changes.append(Change(now_s, kind, reason, m.seq))
@@ -593,7 +634,7 @@ class Service:
             current_map=self.current_map, current_kind=self.current_kind,
             maps_published=self.maps_published, changes=list(self.changes),
             acks={k: {"seq": v["seq"], "age_s": wall - v["wall"]} for k, v in self.acks.items()},
-            stale=self.stale,
+            stale=self.stale, state_unsaved=self.state_unsaved,
             symbol_rate_hz=self.plan.sample_rate_hz / self.plan.symbol_len)
 
     def publish_status(self) -> dict:
@@ -608,8 +649,19 @@ class Service:
 class _Io:
     """The protocol objects of the main thread, behind the few calls the loop needs.
 
-    Owns the map publisher (maps, heartbeats, snapshots, acknowledgements), the status publisher,
-    the state store and the recorder. Everything here runs on the main thread.
+    Owns the state keeper (opened first: its epoch goes to the map publisher, so heartbeats and
+    snapshots name it before the first map), the map publisher (maps, heartbeats, snapshots,
+    acknowledgements), the status publisher and the recorder. Everything here runs on the main
+    thread (the state keeper's writer thread aside).
+
+    Attributes
+    ----------
+    epoch : str
+        The epoch (restored or new).
+    next_seq : int
+        First sequence number this run may use.
+    restored : LoadMap or None
+        The saved map, when it is for this config's tone plan.
     """
 
     def __init__(self, config: Config, context: zmq.Context, plan) -> None:
@@ -624,45 +676,47 @@ class _Io:
         self.recorder = None
         self._closed = False
         try:
-            self.maps = MapPublisher(context=context, **config.publish.model_dump())
+            self.state = _open_state(config)
+            self.epoch, self.next_seq, self.restored = self._restore()
+            self.maps = MapPublisher(context=context, epoch=self.epoch,
+                                     **config.publish.model_dump())
             self.status = StatusPublisher(context=context, curve=self.maps.curve,
                                           **config.status.model_dump())
-            self.state = _open_state(config)
             self.recorder = _open_recorder(config, plan)
         except BaseException:
             self.close(None)
             raise
 
     # -- state
-    def restore(self) -> tuple[str, int, LoadMap | None]:
-        """Epoch, next sequence number and the saved map (a fresh epoch when none is saved)."""
+    def _restore(self) -> tuple[str, int, LoadMap | None]:
         from brimline.daemon.state import new_epoch
 
-        saved = self.state.load() if self.state is not None else None
-        if saved is None:
+        if self.state is None:
             return new_epoch(), 0, None
-        m = saved.load_map
-        # Maps are published before their state is saved (by a writer thread that keeps only
-        # the newest), so a crash can leave a few published maps unsaved: starting a margin
-        # past the saved number keeps the order strict across any restart.
-        next_seq = saved.next_seq + _RESTART_SEQ_MARGIN
-        if m.plan_id != self._plan.plan_id:
+        epoch, next_seq, m = self.state.restore()
+        if m is not None and m.plan_id != self._plan.plan_id:
             # Same epoch and sequence continue, but a map for another tone plan is not served.
             log.warning("saved map is for tone plan %s, this config's is %s: not restored",
                         m.plan_id, self._plan.plan_id)
             m = None
-        return saved.epoch, next_seq, m
+        return epoch, next_seq, m
 
-    def save_state(self, m: LoadMap) -> None:
+    def reserve(self, seq: int) -> None:
+        """Make ``seq`` publishable (a durable seq ceiling covers it). Raises StateError."""
         if self.state is not None:
-            self.state.submit(m)
+            self.state.reserve(seq)
+
+    def save_state(self, m: LoadMap, frames) -> None:
+        if self.state is not None:
+            self.state.submit(m, frames)
 
     # -- maps
-    def publish_map(self, m: LoadMap, *, prime: bool = False) -> None:
+    def publish_map(self, m: LoadMap, *, prime: bool = False):
+        """Send ``m`` (or only adopt it for snapshots: ``prime``); the encoded frames."""
         if prime:
             self.maps.prime(m)
-        else:
-            self.maps.publish(m)
+            return None
+        return self.maps.publish(m)
 
     def heartbeat_due(self, wall_s: float) -> float:
         """Send a heartbeat if due; seconds until the next one."""
@@ -700,13 +754,17 @@ class _Io:
         self.status.publish(st)
 
     # -- recording
-    def record_estimate(self, est: Estimate) -> None:
+    def record_estimate(self, est: Estimate, frames=None) -> None:
         if self.recorder is not None:
-            self.recorder.write(codec.TOPIC_ESTIMATE, est)
+            if frames is None:
+                self.recorder.write(codec.TOPIC_ESTIMATE, est)
+            else:
+                self.recorder.write_frames(frames)
 
-    def record_map(self, m: LoadMap) -> None:
+    def record_frames(self, frames) -> None:
+        """Record an encoded message (a published map: the bytes that were sent)."""
         if self.recorder is not None:
-            self.recorder.write(codec.TOPIC_MAP, m)
+            self.recorder.write_frames(frames)
 
     def close(self, last_map: LoadMap | None) -> None:
         """Save state, close the recording (flushed), then the sockets. Idempotent."""
@@ -726,65 +784,9 @@ def _open_state(config: Config):
     path = config.service.state_path
     if path is None:
         return None
-    from brimline.daemon.state import StateStore
+    from brimline.daemon.state import StateKeeper, StateStore
 
-    return _StateWriter(StateStore(path))
-
-
-class _StateWriter:
-    """Saves the newest map on a thread of its own, so fsync never stalls the main loop.
-
-    Only the newest submitted map matters, so a save in flight coalesces later submissions, and
-    saves are at least ``min_interval_s`` apart (a burst of maps costs one fsync, not one each).
-    ``close(last)`` waits for the thread and then saves ``last`` synchronously.
-    """
-
-    min_interval_s = 0.1
-
-    def __init__(self, store) -> None:
-        self.store = store
-        self._cond = threading.Condition()
-        self._pending: LoadMap | None = None
-        self._stop = False
-        self.errors = 0
-        self._thread = threading.Thread(target=self._main, name="brimline-state", daemon=True)
-        self._thread.start()
-
-    def load(self):
-        return self.store.load()
-
-    def submit(self, m: LoadMap) -> None:
-        with self._cond:
-            self._pending = m
-            self._cond.notify()
-
-    def _main(self) -> None:
-        while True:
-            with self._cond:
-                while self._pending is None and not self._stop:
-                    self._cond.wait()
-                if self._pending is None:
-                    return
-                m, self._pending = self._pending, None
-            try:
-                self.store.save(m)
-            except BrimlineError as exc:
-                self.errors += 1
-                log.error("state not saved: %s", exc)
-            with self._cond:
-                if not self._stop:
-                    self._cond.wait_for(lambda: self._stop, self.min_interval_s)
-
-    def close(self, last: LoadMap | None) -> None:
-        with self._cond:
-            self._stop = True
-            self._cond.notify()
-        self._thread.join(10.0)
-        if last is not None:
-            try:
-                self.store.save(last)
-            except BrimlineError as exc:
-                log.error("state not saved: %s", exc)
+    return StateKeeper(StateStore(path))
 
 
 def _open_recorder(config: Config, plan):

@@ -1,34 +1,51 @@
-"""The daemon's saved state: epoch, last sequence number and last map, saved atomically.
+"""The daemon's saved state: epoch, sequence-number lease and last map, saved atomically.
 
-The file is a one-record recording (:mod:`brimline.daemon.recording` layout, magic and CRC
-included) holding the last :class:`~brimline.daemon.records.LoadMap` on topic ``state``; the
-epoch and the last ``seq`` are the map's own. :meth:`StateStore.save` writes a temporary file
-in the same directory, fsyncs it, renames it over the old one with :func:`os.replace` (atomic on
-POSIX and Windows) and fsyncs the directory, so after a crash at any point either the old or the
-new state loads, never a mixture.
+Sequence numbers are leased. The state file records, besides the last map, ``seq_ceiling``: the
+highest ``seq`` the daemon may publish before it has durably saved a higher ceiling. A restart
+therefore continues at ``seq_ceiling + 1`` (:attr:`SavedState.next_seq`), above every seq a
+crashed run could have published, however stale its saved map is. Gaps are harmless: a follower
+treats one as "use the map, ask for a snapshot".
 
-Sequence numbers never repeat across restarts provided the service saves a map *before* it
-publishes it: then every published seq is on disk, and the next start continues at
-``saved.seq + 1`` (:attr:`SavedState.next_seq`).
+:class:`StateStore` is the file. Its layout is a two-record recording
+(:mod:`brimline.daemon.recording` layout, magic and per-record CRC included):
+
+1. a dict on topic ``state``: ``{"epoch": str, "seq_ceiling": int}``;
+2. optionally the last :class:`~brimline.daemon.records.LoadMap` on topic ``map`` (the same
+   bytes the map publisher sent), of the same epoch, with ``seq <= seq_ceiling``.
+
+:meth:`StateStore.save` writes a temporary file in the same directory, fsyncs it, renames it
+over the old one with :func:`os.replace` (atomic on POSIX and Windows) and fsyncs the directory,
+so after a crash at any point either the old or the new state loads, never a mixture.
+
+:class:`StateKeeper` is what a running daemon uses: :meth:`StateKeeper.reserve` before each
+publish (free while the seq is under the saved ceiling; otherwise a synchronous save of a new
+ceiling, once per ``lease`` maps), :meth:`StateKeeper.submit` after it (the map is saved lazily
+by a writer thread, which also renews the lease ahead of need so the synchronous save is rare).
 """
 
 from __future__ import annotations
 
+import logging
 import os
 import tempfile
+import threading
 import uuid
 import zlib
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, Sequence
 
 from brimline.daemon import codec
-from brimline.daemon.errors import ProtocolError, StateError
+from brimline.daemon.errors import BrimlineError, ProtocolError, StateError
 from brimline.daemon.records import LoadMap
 from brimline.daemon.recording import _HEAD, MAGIC, _unpack_body, pack_record
 
-__all__ = ["SavedState", "StateStore", "new_epoch", "TOPIC_STATE"]
+__all__ = ["SavedState", "StateStore", "StateKeeper", "new_epoch", "TOPIC_STATE", "LEASE"]
 
 TOPIC_STATE = "state"
+LEASE = 256  #: sequence numbers reserved by one durable save (a restart skips at most this)
+
+log = logging.getLogger("brimline.state")
 
 
 def new_epoch() -> str:
@@ -43,21 +60,26 @@ class SavedState:
     Attributes
     ----------
     epoch : str
-        Epoch id of the saved map.
-    seq : int
-        Last sequence number used (published or about to be).
-    load_map : LoadMap
-        The last map.
+        Epoch id.
+    seq_ceiling : int
+        Highest sequence number the saved run may have published.
+    load_map : LoadMap or None
+        The last map saved (None when no map was saved yet).
     """
 
     epoch: str
-    seq: int
-    load_map: LoadMap
+    seq_ceiling: int
+    load_map: LoadMap | None = None
+
+    @property
+    def seq(self) -> int:
+        """Sequence number of the saved map (-1 when there is none)."""
+        return -1 if self.load_map is None else self.load_map.seq
 
     @property
     def next_seq(self) -> int:
-        """The first sequence number a restart may use."""
-        return self.seq + 1
+        """The first sequence number a restart may use: ``seq_ceiling + 1``."""
+        return self.seq_ceiling + 1
 
 
 class StateStore:
@@ -81,8 +103,8 @@ class StateStore:
         Raises
         ------
         StateError
-            When the file exists but cannot be read, is truncated or corrupt; names the path.
-            (The service decides whether to start fresh.)
+            When the file exists but cannot be read, is truncated or corrupt, or its records
+            disagree; names the path. (The service decides whether to start fresh.)
         """
         try:
             data = self.path.read_bytes()
@@ -92,34 +114,73 @@ class StateStore:
             raise StateError(f"{self.path}: cannot read state: {exc}") from None
         if not data.startswith(MAGIC):
             raise StateError(f"{self.path}: not a brimline state file (bad magic)")
+        messages = []
         pos = len(MAGIC)
-        if len(data) < pos + _HEAD.size:
+        while pos < len(data):
+            if len(messages) == 2:
+                raise StateError(f"{self.path}: state file has data after its two records")
+            if len(data) < pos + _HEAD.size:
+                raise StateError(f"{self.path}: state file is truncated")
+            size, crc = _HEAD.unpack_from(data, pos)
+            body = data[pos + _HEAD.size:pos + _HEAD.size + size]
+            pos += _HEAD.size + size
+            if len(body) != size or zlib.crc32(body) != crc:
+                raise StateError(f"{self.path}: state file is truncated or corrupt (length or "
+                                 f"checksum mismatch)")
+            frames = _unpack_body(body)
+            if frames is None:
+                raise StateError(f"{self.path}: state file has a bad frame layout")
+            try:
+                messages.append(codec.decode(frames))
+            except ProtocolError as exc:
+                raise StateError(f"{self.path}: {exc}") from None
+        if not messages:
             raise StateError(f"{self.path}: state file is truncated")
-        size, crc = _HEAD.unpack_from(data, pos)
-        body = data[pos + _HEAD.size:]
-        if len(body) != size or zlib.crc32(body) != crc:
-            raise StateError(f"{self.path}: state file is truncated or corrupt (length or "
-                             f"checksum mismatch)")
-        frames = _unpack_body(body)
-        if frames is None:
-            raise StateError(f"{self.path}: state file has a bad frame layout")
-        try:
-            topic, record = codec.decode(frames)
-        except ProtocolError as exc:
-            raise StateError(f"{self.path}: {exc}") from None
-        if topic != TOPIC_STATE or not isinstance(record, LoadMap):
-            raise StateError(f"{self.path}: holds {topic!r}, not a saved map")
-        return SavedState(epoch=record.epoch, seq=record.seq, load_map=record)
+        topic, head = messages[0]
+        if (topic != TOPIC_STATE or not isinstance(head, dict)
+                or not isinstance(head.get("epoch"), str)
+                or type(head.get("seq_ceiling")) is not int):
+            raise StateError(f"{self.path}: first record is not a state record with epoch and "
+                             f"seq_ceiling (topic {topic!r})")
+        load_map = None
+        if len(messages) == 2:
+            topic, load_map = messages[1]
+            if topic != codec.TOPIC_MAP or not isinstance(load_map, LoadMap):
+                raise StateError(f"{self.path}: second record holds {topic!r}, not a map")
+            _check(load_map, head["epoch"], head["seq_ceiling"], StateError, f"{self.path}: ")
+        return SavedState(head["epoch"], head["seq_ceiling"], load_map)
 
-    def save(self, load_map: LoadMap) -> None:
-        """Atomically replace the saved state with ``load_map``.
+    def save(self, epoch: str, seq_ceiling: int, load_map: LoadMap | None = None, *,
+             map_frames: Sequence[Any] | None = None) -> None:
+        """Atomically replace the saved state.
+
+        Parameters
+        ----------
+        epoch : str
+            Epoch id.
+        seq_ceiling : int
+            Highest seq that may be published before the next save.
+        load_map : LoadMap, optional
+            The last map (same epoch, ``seq <= seq_ceiling``).
+        map_frames : sequence of bytes, optional
+            ``load_map`` already encoded on topic ``map`` (what the publisher sent), so it is
+            not encoded twice.
 
         Raises
         ------
+        ValueError
+            When the map does not belong under this epoch and ceiling (a caller's bug).
         StateError
             When the file cannot be written; the previous state is left intact.
         """
-        data = MAGIC + pack_record(codec.encode(TOPIC_STATE, load_map))
+        if load_map is not None:
+            _check(load_map, epoch, seq_ceiling, ValueError, "")
+            if map_frames is None:
+                map_frames = codec.encode(codec.TOPIC_MAP, load_map)
+        data = MAGIC + pack_record(codec.encode(
+            TOPIC_STATE, {"epoch": epoch, "seq_ceiling": int(seq_ceiling)}))
+        if load_map is not None:
+            data += pack_record(map_frames)
         d = self.path.parent
         tmp = None
         try:
@@ -153,3 +214,154 @@ class StateStore:
             os.fsync(fd)
         finally:
             os.close(fd)
+
+
+def _check(load_map: LoadMap, epoch: str, seq_ceiling: int, error: type, prefix: str) -> None:
+    if load_map.epoch != epoch or load_map.seq > seq_ceiling:
+        raise error(f"{prefix}map seq={load_map.seq} of epoch {load_map.epoch} does not fit "
+                    f"under epoch {epoch} with seq_ceiling={seq_ceiling}")
+
+
+class StateKeeper:
+    """A running daemon's state file: the seq lease (durable before use) and the last map (lazy).
+
+    Parameters
+    ----------
+    store : StateStore
+        The file.
+    lease : int
+        Sequence numbers reserved per durable save (the ceiling becomes ``seq + lease``).
+    min_interval_s : float
+        Least time between two lazy saves of the map by the writer thread, s (a burst of maps
+        costs one save, not one each).
+
+    Notes
+    -----
+    Use :meth:`restore` once, then for every map ``reserve(seq)`` before publishing it and
+    ``submit(map, frames)`` after. All saves go through one lock, each writing the newest map
+    with the highest ceiling reserved, so no save can lower the ceiling on disk. The writer
+    thread renews the lease when less than half of it is left, so :meth:`reserve` normally
+    finds the seq already covered and returns at once. ``close(last)`` stops the thread and
+    saves ``last`` synchronously. Idempotent.
+    """
+
+    def __init__(self, store: StateStore, *, lease: int = LEASE,
+                 min_interval_s: float = 0.1) -> None:
+        if lease < 1:
+            raise ValueError(f"lease={lease} must be >= 1")
+        self.store = store
+        self.lease = int(lease)
+        self.min_interval_s = float(min_interval_s)
+        self.errors = 0  #: failed lazy saves (logged)
+        self.epoch = ""
+        self.ceiling = -1  #: highest seq covered by a durable save
+        # Newest map and its encoded frames (or None), one tuple so a reader never mixes two.
+        self._latest: tuple[LoadMap | None, Sequence[Any] | None] = (None, None)
+        self._pending = False
+        self._lock = threading.Lock()  # one save at a time
+        self._cond = threading.Condition()
+        self._stop = False
+        self._closed = False
+        self._thread: threading.Thread | None = None
+
+    def restore(self) -> tuple[str, int, LoadMap | None]:
+        """Load the file (or start a fresh epoch), reserve the first lease, start the writer.
+
+        Returns
+        -------
+        tuple
+            ``(epoch, next_seq, saved map or None)``; ``next_seq`` is above every seq any
+            earlier run of this epoch may have published.
+
+        Raises
+        ------
+        StateError
+            When the file is damaged or the first lease cannot be saved.
+        """
+        saved = self.store.load()
+        if saved is None:
+            self.epoch, next_seq = new_epoch(), 0
+        else:
+            self.epoch, next_seq = saved.epoch, saved.next_seq
+            self._latest = (saved.load_map, None)
+        self.ceiling = next_seq - 1
+        self.reserve(next_seq)
+        self._thread = threading.Thread(target=self._main, name="brimline-state", daemon=True)
+        self._thread.start()
+        return self.epoch, next_seq, self._latest[0]
+
+    def reserve(self, seq: int) -> None:
+        """Make sure ``seq`` is covered by a durable ceiling (saving one now if it is not).
+
+        Raises
+        ------
+        StateError
+            When the new ceiling cannot be saved: ``seq`` must not be published.
+        """
+        if seq <= self.ceiling:
+            return
+        with self._lock:
+            if seq <= self.ceiling:  # the writer renewed meanwhile
+                return
+            self._save_locked(seq + self.lease)
+
+    def submit(self, load_map: LoadMap, frames: Sequence[Any] | None = None) -> None:
+        """Hand the newest map (and its encoded frames, if at hand) to the writer thread."""
+        with self._cond:
+            self._latest = (load_map, frames)
+            if not self._pending:
+                self._pending = True
+                self._cond.notify()
+
+    def _save_locked(self, ceiling: int) -> None:
+        m, frames = self._latest
+        if m is not None and m.epoch != self.epoch:
+            m = frames = None
+        self.store.save(self.epoch, ceiling, m, map_frames=frames)
+        self.ceiling = ceiling
+
+    def _main(self) -> None:
+        while True:
+            with self._cond:
+                while not self._pending and not self._stop:
+                    self._cond.wait()
+                if self._stop:
+                    return
+                self._pending = False
+            try:
+                with self._lock:
+                    m = self._latest[0]
+                    newest = m.seq if m is not None else self.ceiling
+                    renew = self.ceiling - newest < self.lease // 2
+                    self._save_locked(newest + self.lease if renew else self.ceiling)
+            except BrimlineError as exc:
+                self.errors += 1
+                log.error("state not saved: %s", exc)
+            with self._cond:  # coalesce: maps submitted meanwhile wait for the next save
+                self._cond.wait_for(lambda: self._stop, self.min_interval_s)
+
+    def close(self, last: LoadMap | None = None) -> None:
+        """Stop the writer thread, then save ``last`` (or the newest map) synchronously.
+
+        Errors are logged, not raised (shutdown goes on). Idempotent.
+        """
+        if self._closed:
+            return
+        self._closed = True
+        with self._cond:
+            self._stop = True
+            self._cond.notify_all()
+        if self._thread is not None:
+            self._thread.join(10.0)
+        if self._thread is None:
+            return  # never restored: nothing to save
+        with self._lock:
+            if last is not None and last.epoch == self.epoch:
+                if last is not self._latest[0]:
+                    self._latest = (last, None)
+                if last.seq > self.ceiling:  # cannot happen through reserve(); keep it true
+                    self.ceiling = last.seq
+            try:
+                self._save_locked(self.ceiling)
+            except BrimlineError as exc:
+                log.error("state not saved: %s", exc)

@@ -48,6 +48,7 @@ ALARMS = {
     "emergency": "the last change was an emergency rate reduction",
     "driver_failed": "the estimate source stopped with an error",
     "no_map": "no map has been published yet",
+    "state_unsaved": "the state file cannot be written: new maps are held back",
 }
 
 
@@ -127,7 +128,7 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  maps_published: Mapping[str, int] | None = None,
                  changes: Sequence[Change] = (), acks: Mapping[str, Mapping] | None = None,
                  stale: bool = False, symbol_rate_hz: float | None = None,
-                 columns: int = 128) -> dict:
+                 columns: int = 128, state_unsaved: bool = False) -> dict:
     """Build the status message (see the module docstring for its layout).
 
     Parameters
@@ -163,6 +164,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
         OFDM symbols per second (sample rate / (FFT size + CP)); gives ``rate_bps``.
     columns : int
         Largest number of band groups.
+    state_unsaved : bool
+        The daemon could not save its state (sequence-number lease): alarm ``state_unsaved``;
+        no new map is sent until a save succeeds.
 
     Returns
     -------
@@ -200,6 +204,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
         alarms.append("driver_failed")
     if m is None:
         alarms.append("no_map")
+    if state_unsaved:
+        alarms.append("state_unsaved")
 
     bits_per_symbol = int(m.total_bits) if m is not None else 0
     rate_bps = (bits_per_symbol * float(symbol_rate_hz)

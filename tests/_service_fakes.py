@@ -110,6 +110,24 @@ class ScriptedDriver(Driver):
                            snr_db=snr)
 
 
+class ReloadEveryTime:
+    """Change control that turns every tracked view into a reload (a map per estimate)."""
+
+    def __init__(self, loader) -> None:
+        self.loader = loader
+        self.current = None
+
+    def decide(self, tracked, now_s):
+        from brimline.daemon.records import Decision, DecisionKind
+
+        alloc = self.loader(10.0 ** (np.asarray(tracked.effective_snr_db) / 10.0))
+        self.current = alloc
+        return Decision(DecisionKind.RELOAD, "test reload", alloc, int(alloc.bits.size))
+
+    def force(self, allocation, kind, reason, now_s):
+        self.current = allocation
+
+
 def loopback_config(tmp_path=None, **sections) -> Config:
     """A Config on loopback with port-0 endpoints; ``sections`` override whole sections."""
     data = {

@@ -7,6 +7,11 @@ exactly which frames the service saw.
 
 from __future__ import annotations
 
+import json
+import os
+import subprocess
+import sys
+import textwrap
 import threading
 import time
 
@@ -22,7 +27,7 @@ from brimline.daemon.service import Service
 from brimline.daemon.state import StateStore
 from brimline.daemon.status import band_columns, build_status
 
-from _service_fakes import ScriptedDriver, loopback_config
+from _service_fakes import ReloadEveryTime, ScriptedDriver, loopback_config
 
 
 def _follower(svc: Service, adopted: list | None = None) -> Follower:
@@ -113,6 +118,170 @@ class TestRestart:
             assert _pump(second, until=lambda: _drained(second))
             new = [c.seq for c in second.changes]
         assert new and new[0] > last_seq and new == sorted(set(new))
+
+
+# A daemon process that makes a map per estimate and whose state writer stalls after its first
+# save (as if fsync hung): it prints its endpoints, waits for a line on stdin, then runs until
+# killed. Only the seq lease stands between it and a reused seq after the kill.
+_CRASHING_DAEMON = r"""
+import json, sys, threading
+from pathlib import Path
+sys.path.insert(0, sys.argv[1])
+from _service_fakes import ReloadEveryTime, ScriptedDriver, loopback_config
+from brimline.daemon.service import Service
+from brimline.drivers.ofdm import make_plan
+cfg = loopback_config(Path(sys.argv[2]))
+gate = threading.Event()
+svc = Service(cfg, driver=ScriptedDriver(make_plan(**cfg.link.model_dump()),
+                                         frames=1_000_000, gate=gate))
+svc.start()
+svc.change = ReloadEveryTime(svc.loader)
+svc._io.state.min_interval_s = 3600.0  # the lazy map save stalls after its first save
+print(json.dumps({"epoch": svc.epoch, **svc.endpoints}), flush=True)
+threading.Thread(target=lambda: (sys.stdin.readline(), gate.set()), daemon=True).start()
+svc.run()
+"""
+
+
+def _map_sub(ctx, endpoint):
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.LINGER, 0)
+    sub.setsockopt(zmq.SUBSCRIBE, codec.TOPIC_MAP.encode())
+    sub.setsockopt(zmq.SUBSCRIBE, codec.TOPIC_HEARTBEAT.encode())
+    sub.connect(endpoint)
+    return sub
+
+
+def _drain(sub, seen: list, timeout_ms: int = 0) -> None:
+    while sub.poll(timeout_ms):
+        topic, rec = codec.decode(sub.recv_multipart())
+        seen.append((topic, rec))
+        timeout_ms = 0
+
+
+class TestCrash:
+    def test_kill_9_then_restart_never_reuses_a_seq(self, tmp_path):
+        """SIGKILL a daemon that published ~700 maps while its saved map lagged far behind;
+        the restart's maps (same epoch) are numbered above every map seen before the kill."""
+        here = os.path.dirname(os.path.abspath(__file__))
+        proc = subprocess.Popen([sys.executable, "-c", _CRASHING_DAEMON, here, str(tmp_path)],
+                                stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+        ctx = zmq.Context()
+        before, after = [], []
+        try:
+            info = json.loads(proc.stdout.readline())
+            sub = _map_sub(ctx, info["maps"])
+            deadline = time.monotonic() + 10
+            while not any(t == "heartbeat" for t, _ in before):  # subscribed
+                assert time.monotonic() < deadline, "no heartbeat from the daemon"
+                _drain(sub, before, 50)
+            proc.stdin.write("go\n")
+            proc.stdin.flush()
+            while not any(t == "map" and r.seq >= 700 for t, r in before):
+                assert time.monotonic() < deadline + 20, "too few maps"
+                _drain(sub, before, 50)
+            proc.kill()  # SIGKILL: no shutdown, no final save
+            assert proc.wait(10) == -9
+            sub.close()
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+                proc.wait(5)
+            proc.stdout.close()
+            proc.stdin.close()
+        old = [r.seq for t, r in before if t == "map"]
+        saved = StateStore(tmp_path / "state.bin").load()
+        assert saved.epoch == info["epoch"]
+        assert saved.seq <= max(old)  # the saved map may lag what was sent by up to a lease
+
+        cfg = loopback_config(tmp_path)
+        gate = threading.Event()
+        try:
+            with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=30, gate=gate)) as svc:
+                svc.change = ReloadEveryTime(svc.loader)
+                sub = _map_sub(ctx, svc.endpoints["maps"])
+                assert _pump(svc, until=lambda: (_drain(sub, after), any(
+                    t == "heartbeat" for t, _ in after))[1], timeout_s=5.0)
+                gate.set()
+                assert _pump(svc, until=lambda: _drained(svc))
+                _pump(svc, until=lambda: (_drain(sub, after), False)[1], timeout_s=0.2)
+                sub.close()
+        finally:
+            ctx.destroy(linger=0)
+        new = [r.seq for t, r in after if t == "map"]
+        assert svc.epoch == info["epoch"] and {r.epoch for t, r in after if t == "map"} == \
+            {info["epoch"]}
+        assert len(new) >= 20 and min(new) > max(old)
+        assert new == sorted(set(new))
+
+    def test_service_dropped_without_close_restarts_above_its_maps(self, tmp_path):
+        """The same in one process: the first service is abandoned (no close(), as a crash
+        would leave it) with its map saves stalled; a second service on the same state file
+        publishes only seqs above the first one's."""
+        cfg = loopback_config(tmp_path)
+        plan = _plan(cfg)
+        first = Service(cfg, driver=ScriptedDriver(plan, frames=0))
+        first.start()
+        first._io.state.min_interval_s = 3600.0
+        first.change = ReloadEveryTime(first.loader)
+        old = [m.seq for est in ScriptedDriver(plan, frames=600).frames()
+               if (m := first.process(est)) is not None]
+        # The map on disk is the one saved with the last lease (seq 513 here: leases are
+        # saved when seq 257 and 514 go out), far behind: a restart at "saved seq + a few"
+        # would reuse seqs.
+        assert len(old) >= 590
+        assert StateStore(cfg.service.state_path).load().seq < max(old) - 16
+        # Abandoned: its sockets are closed only so that the ports are free; state is not saved.
+        first._io.maps.close()
+        first._io.status.close()
+        cfg2 = loopback_config(tmp_path)
+        with Service(cfg2, driver=ScriptedDriver(plan, frames=0)) as second:
+            second.change = ReloadEveryTime(second.loader)
+            new = [m.seq for est in ScriptedDriver(plan, frames=20, t0_s=100.0).frames()
+                   if (m := second.process(est)) is not None]
+        assert second.epoch == first.epoch and new and min(new) > max(old)
+
+
+class TestEpoch:
+    def test_heartbeats_and_snapshots_name_the_epoch_before_the_first_map(self, tmp_path):
+        cfg = loopback_config(tmp_path)
+        ctx = zmq.Context()
+        try:
+            with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=0), context=ctx) as svc:
+                assert len(svc.epoch) == 16
+                sub = _map_sub(ctx, svc.endpoints["maps"])
+                req = ctx.socket(zmq.REQ)
+                req.setsockopt(zmq.LINGER, 0)
+                req.connect(svc.endpoints["snapshots"])
+                req.send(codec.SNAPSHOT_REQUEST)
+                got = []
+                assert _pump(svc, until=lambda: (_drain(sub, got), bool(got))[1])
+                assert _pump(svc, until=lambda: bool(req.poll(0)))
+                topic, snap = codec.decode(req.recv_multipart())
+                assert svc.current_map is None
+                assert got[0][0] == "heartbeat" and got[0][1]["epoch"] == svc.epoch
+                assert got[0][1]["seq"] == -1
+                assert (topic, snap) == ("snapshot", {"epoch": svc.epoch, "seq": -1})
+                sub.close()
+                req.close()
+        finally:
+            ctx.term()
+
+    def test_a_restart_keeps_the_epoch_in_its_first_heartbeat(self, tmp_path):
+        cfg = loopback_config(tmp_path)
+        with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=0)) as first:
+            epoch = first.epoch
+        ctx = zmq.Context()
+        try:
+            with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=0), context=ctx) as svc:
+                assert svc.epoch == epoch
+                sub = _map_sub(ctx, svc.endpoints["maps"])
+                got = []
+                assert _pump(svc, until=lambda: (_drain(sub, got), bool(got))[1])
+                assert got[0][1]["epoch"] == epoch
+                sub.close()
+        finally:
+            ctx.term()
 
 
 class TestFallback:

@@ -61,24 +61,6 @@ print(json.dumps(adopted), flush=True)
 """
 
 
-class _ReloadEveryTime:
-    """Change control that turns every tracked view into a reload."""
-
-    def __init__(self, loader) -> None:
-        self.loader = loader
-        self.current = None
-
-    def decide(self, tracked, now_s):
-        from brimline.daemon.records import Decision, DecisionKind
-
-        alloc = self.loader(10.0 ** (np.asarray(tracked.effective_snr_db) / 10.0))
-        self.current = alloc
-        return Decision(DecisionKind.RELOAD, "benchmark reload", alloc, int(alloc.bits.size))
-
-    def force(self, allocation, kind, reason, now_s):
-        self.current = allocation
-
-
 def run(quick: bool) -> dict[str, float]:
     n = 300 if quick else 2000
     cpus = os.sched_getaffinity(0) if hasattr(os, "sched_getaffinity") else None
@@ -92,7 +74,7 @@ def run(quick: bool) -> dict[str, float]:
 
 
 def _measure(n: int) -> dict[str, float]:
-    from _service_fakes import ScriptedDriver, loopback_config
+    from _service_fakes import ReloadEveryTime, ScriptedDriver, loopback_config
 
     from brimline.daemon.service import Service
     from brimline.drivers.ofdm import make_plan
@@ -106,12 +88,13 @@ def _measure(n: int) -> dict[str, float]:
         t_enter: dict[int, float] = {}
         t_sent: dict[int, float] = {}
         with Service(cfg, driver=ScriptedDriver(plan, frames=0)) as svc:
-            svc.change = _ReloadEveryTime(svc.loader)
+            svc.change = ReloadEveryTime(svc.loader)
             send = svc._io.publish_map
 
             def timed_send(m, prime=False):
-                send(m, prime=prime)
+                frames = send(m, prime=prime)
                 t_sent[m.seq] = time.monotonic()
+                return frames
 
             svc._io.publish_map = timed_send
             eps = svc.endpoints
