@@ -205,6 +205,10 @@ class Service:
         self.plan, self.loader, self.estimator, self.change = build_core(config)
         self._plan_id = self.plan.plan_id  # a hash: computed once, compared per frame
         self._gap_db = float(self.loader.gap_db)
+        self._lead_frames = int(config.service.lead_frames)
+        # The plan's data tones as the bytes an Estimate's int16 tone_index must equal: one
+        # memcmp per frame instead of an elementwise comparison.
+        self._tone_bytes = np.asarray(self.plan.data_tones, dtype=np.int16).tobytes()
         if self.config.service.clock == "auto":
             self.clock_mode = "monotonic" if config.driver.kind == "radio" else "source"
         else:
@@ -514,7 +518,7 @@ class Service:
         self._last_arrival_wall = self._clock()
         published = None
         if (estimate.plan_id != self._plan_id
-                or not np.array_equal(estimate.tone_index, self.plan.data_tones)):
+                or estimate.tone_index.tobytes() != self._tone_bytes):
             # Received with another tone plan: no map of this daemon could describe it.
             self.rejected["other_plan"] += 1
             self._check_stale(now_s)
@@ -585,7 +589,7 @@ class Service:
         # The codec and the record refuse bad values; the loader's arrays are passed as they
         # are (the record converts and freezes them once).
         m = LoadMap(epoch=self.epoch, seq=self._next_seq,
-                    effective_frame=self.frames["last_frame"] + self.config.service.lead_frames,
+                    effective_frame=self.frames["last_frame"] + self._lead_frames,
                     created_s=now_s, plan_id=self._plan_id, tone_index=self.plan.data_tones,
                     bits=alloc.bits, power_lin=alloc.power,
                     total_bits=alloc.total_bits, margin_db=alloc.margin_db,
@@ -601,9 +605,10 @@ class Service:
         self.current_map, self.current_kind = m, kind
         self.maps_published[kind] += 1
         self.changes.append(Change(now_s, kind, reason, m.seq))
-        margin = f"{m.margin_db:.1f} dB" if math.isfinite(m.margin_db) else "unknown"
-        log.info("map %d (%s, %d bits/symbol, margin %s): %s", m.seq, kind, m.total_bits,
-                 margin, reason)
+        if log.isEnabledFor(logging.INFO):
+            margin = f"{m.margin_db:.1f} dB" if math.isfinite(m.margin_db) else "unknown"
+            log.info("map %d (%s, %d bits/symbol, margin %s): %s", m.seq, kind, m.total_bits,
+                     margin, reason)
         return m
 
     def _note_ack(self, ack: dict) -> None:

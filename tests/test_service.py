@@ -242,6 +242,31 @@ class TestCrash:
         assert second.epoch == first.epoch and new and min(new) > max(old)
 
 
+    def test_maps_are_held_back_while_the_lease_cannot_be_saved(self, tmp_path):
+        """No durable ceiling, no map: the seq is not sent (it could be reused after a crash);
+        the alarm shows it, and maps resume with the next seq once the disk is back."""
+        folder = tmp_path / "state"
+        folder.mkdir()
+        cfg = loopback_config(tmp_path, service={"state_path": str(folder / "state.bin")})
+        plan = _plan(cfg)
+        estimates = iter(ScriptedDriver(plan, frames=400).frames())
+        with Service(cfg, driver=ScriptedDriver(plan, frames=0)) as svc:
+            svc._io.state.min_interval_s = 3600.0  # no lease renewal ahead of time
+            svc.change = ReloadEveryTime(svc.loader)
+            ceiling = svc._io.state.ceiling
+            while svc._next_seq <= ceiling:
+                svc.process(next(estimates))
+            folder.rename(tmp_path / "gone")  # the state folder disappears
+            assert svc.process(next(estimates)) is None
+            assert svc.unpublished == 1 and svc.current_map.seq == ceiling
+            assert "state_unsaved" in svc.status()["alarms"]
+            (tmp_path / "gone").rename(folder)
+            m = svc.process(next(estimates))
+            assert m is not None and m.seq == ceiling + 1
+            assert "state_unsaved" not in svc.status()["alarms"]
+        assert StateStore(folder / "state.bin").load().seq_ceiling > ceiling + 1
+
+
 class TestEpoch:
     def test_heartbeats_and_snapshots_name_the_epoch_before_the_first_map(self, tmp_path):
         cfg = loopback_config(tmp_path)
@@ -383,9 +408,17 @@ class TestRobustness:
             assert _pump(svc, until=lambda: _drained(svc))
             published = sum(svc.maps_published.values())
         with RecordReader(path) as reader:
-            topics = [t for t, _ in reader]
+            records = list(reader)
+        topics = [t for t, _ in records]
         assert topics.count("estimate") == 80
         assert topics.count("map") == published
+        # Each map follows the estimate that made it (both are written after the send).
+        last_frame = -1
+        for t, r in records:
+            if t == "estimate":
+                last_frame = r.frame
+            elif t == "map":
+                assert r.effective_frame == last_frame + cfg.service.lead_frames
 
     def test_close_is_idempotent_and_ordered(self):
         cfg = loopback_config()

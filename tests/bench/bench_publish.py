@@ -1,7 +1,8 @@
 """publish_p99_ms: estimate into the daemon -> map decoded by a follower on loopback.
 
 The clock starts when an estimate enters the service's per-estimate step (``Service.process``:
-estimator update, change control, map building, publish, state save, recording) and stops when
+estimator update, change control, seq lease check, map building, publish; the state hand-off
+and the recording follow the send) and stops when
 a :class:`Follower` in another process (as a transmitter would be), connected over TCP
 loopback, has decoded, checked and adopted the resulting map. Both ends read CLOCK_MONOTONIC
 (``time.monotonic``), which is one clock for every process on Linux. Where the machine has two
