@@ -258,7 +258,8 @@ class Service:
         self.close()
 
     def start(self) -> None:
-        """Bind the sockets, load state, open the recording and start the driver thread.
+        """Load state (saving the first seq lease), bind the sockets, open the recording and
+        start the driver thread.
 
         Raises
         ------

@@ -334,7 +334,7 @@ class StateKeeper:
                     newest = m.seq if m is not None else self.ceiling
                     renew = self.ceiling - newest < self.lease // 2
                     self._save_locked(newest + self.lease if renew else self.ceiling)
-            except BrimlineError as exc:
+            except (BrimlineError, ValueError) as exc:  # the thread must not die
                 self.errors += 1
                 log.error("state not saved: %s", exc)
             with self._cond:  # coalesce: maps submitted meanwhile wait for the next save
