@@ -304,8 +304,9 @@ class EstimatorSection(Section):
     std_init_db: float = Field(
         3.0, description="uncertainty (std, dB) given to a tone before its variance is learnt")
     backoff_sigmas: float = Field(
-        1.0, description="effective SNR = smoothed SNR minus this many std, so noisy tones "
-                         "carry fewer bits")
+        1.0, description="effective SNR = smoothed SNR minus this many std (frame spread and "
+                         "uncertainty of the tracked value combined), so noisy tones carry fewer "
+                         "bits")
     outlier_db: float = Field(
         6.0, description="smallest gate, dB: a tone further than this (and than "
                          "outlier_sigmas std) from its tracked value is held as an outlier")
@@ -323,8 +324,9 @@ class EstimatorSection(Section):
     tone_window: int = Field(
         1, description="half-width in tones of the smoothing across neighbours (0: off)")
     tone_agree_db: float = Field(
-        1.0, description="neighbours are averaged in only where their smoothed SNR is within "
-                         "this of the tone's, dB; deeper notches and interferers stay intact")
+        1.0, description="a pair of neighbours (one each side) is averaged in only where both "
+                         "are within this of the tone, dB; deeper notches and interferers stay "
+                         "intact")
 
     @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s")
     @classmethod
