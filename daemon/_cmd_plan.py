@@ -2,13 +2,16 @@
 
 The SNR file holds one per-tone SNR in dB per line, in tone order. Blank lines and ``#``
 comments (whole-line or trailing) are ignored, and the first non-comment line may be a header
-(any line that is not a number). A ``.npy`` file holding a 1-D numeric array of SNRs in dB is
+(a line that starts with a letter and is not a number; ``1O.5`` is an error, not a header). A ``.npy`` file holding a 1-D numeric array of SNRs in dB is
 read as well. The loading settings come from the ``loading:`` section of a daemon config
 (``--config``, the whole file is validated) or its defaults; flags override them.
 
-``--json`` prints one object; numbers that are not finite (``margin_db`` when nothing is loaded,
-``water_level`` when no tone can take power) are written as ``null`` so that the output is strict
-JSON.
+``--json`` prints one object: the settings used, then ``bits``, ``power``, ``total_bits``,
+``total_power`` and ``margin_db`` of the allocation (0-bit tones carry no power), and in waterfill
+mode also ``waterfill_power`` (the continuous water-filling powers, before rounding bits down),
+``water_level`` and ``capacity_bits``. Numbers that are not finite (``margin_db`` when nothing is
+loaded, ``water_level`` when no tone can take power, ``cap_db`` when there is no ceiling) are
+written as ``null`` so that the output is strict JSON.
 """
 
 from __future__ import annotations
@@ -115,7 +118,7 @@ def read_snr_db(path: str | Path) -> np.ndarray:
         try:
             value = float(line)
         except ValueError:
-            if not seen_content:  # the optional header line
+            if not seen_content and line[0].isalpha():  # the optional header line
                 seen_content = True
                 continue
             raise InputError(f"{p} line {number}: {line!r} is not an SNR in dB") from None
@@ -274,7 +277,7 @@ def run(args) -> int:
             "margin_db": _finite_or_none(alloc.margin_db),
         }
         if wf is not None:
-            out["power"] = wf.power.tolist()
+            out["waterfill_power"] = wf.power.tolist()
             out["water_level"] = _finite_or_none(wf.water_level)
             out["capacity_bits"] = wf.capacity_bits
         print(json.dumps(out, allow_nan=False))
@@ -290,11 +293,12 @@ def run(args) -> int:
         + (f", target {section.target_bits} bits" if section.mode == "margin" else ""),
         f"  gap        {_gap_text(section, gap_db)}",
         f"  bits       {_bits_text(list(section.bits))} per tone",
-        f"  power      budget {section.budget_db:g} dB ({budget:g} x nominal), ceiling {cap_text}",
+        f"  power      budget {section.budget_db:g} dB ({budget:.4g} x nominal tone power), "
+        f"ceiling {cap_text}",
         "",
         f"  carries    {alloc.total_bits} bits per symbol on {loaded} tones ({idle} idle), "
         f"mean {alloc.total_bits / snr.size:.2f} bits per tone",
-        f"  uses       {alloc.total_power:.4g} of {budget:g} x nominal power "
+        f"  uses       {alloc.total_power:.4g} of {budget:.4g} x nominal "
         f"({10 * math.log10(max(alloc.total_power, 1e-300) / budget):+.2f} dB of the budget)"
         if alloc.total_power > 0 else "  uses       no power",
         (f"  margin     {alloc.margin_db:.2f} dB on every loaded tone, "

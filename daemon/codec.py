@@ -64,6 +64,7 @@ __all__ = [
     "register_record",
     "record_types",
     "type_name",
+    "byte_view",
 ]
 
 #: Version written into every header; a decoder refuses any other.
@@ -239,6 +240,8 @@ def encode(topic: str, record: Any) -> list[bytes | memoryview]:
     ------
     TypeError
         When the record or a value in it cannot be encoded (a bug in the caller).
+    ValueError
+        When a field the record type requires finite is not (e.g. NaN in ``power_lin``).
     """
     if not topic or not topic.isascii():
         raise TypeError(f"topic {topic!r} must be a non-empty ASCII string")
@@ -261,6 +264,10 @@ def encode(topic: str, record: Any) -> list[bytes | memoryview]:
         if schema is None:
             raise TypeError(f"codec cannot encode a {type(record).__name__}")
         kind = schema.name
+        for name in schema.finite:  # refuse to send what every decoder would refuse
+            v = getattr(record, name)
+            if not (math.isfinite(v) if isinstance(v, float) else np.isfinite(v).all()):
+                raise ValueError(f"{kind}.{name} must be finite to be encoded")
         fields = {name: _json_scalar(getattr(record, name), f"{kind}.{name}")
                   for name in schema.scalars}
         for name, dtype in schema.arrays.items():
@@ -279,14 +286,25 @@ def encode(topic: str, record: Any) -> list[bytes | memoryview]:
 # --------------------------------------------------------------------------- decode
 
 
-def _buffer(frame: Any) -> memoryview:
-    """A byte view of a frame given as bytes, memoryview or zmq.Frame."""
+def byte_view(frame: Any) -> memoryview:
+    """A flat byte view of a frame given as bytes, memoryview, zmq.Frame or ndarray.
+
+    Raises
+    ------
+    ProtocolError
+        When ``frame`` does not expose a buffer.
+    """
     buf = getattr(frame, "buffer", frame)  # zmq.Frame exposes .buffer
     try:
         view = memoryview(buf)
     except TypeError:
         raise ProtocolError(f"frame of type {type(frame).__name__} is not bytes") from None
-    return view.cast("B") if view.format != "B" or view.ndim != 1 else view
+    if view.format == "B" and view.ndim == 1:
+        return view
+    try:
+        return view.cast("B")
+    except TypeError:  # formats memoryview cannot cast (complex, non-contiguous): copy
+        return memoryview(view.tobytes())
 
 
 def _float(value: Any, where: str) -> float:
@@ -379,7 +397,7 @@ def decode(frames: Sequence[Any]) -> tuple[str, Any]:
     """
     if len(frames) < 2:
         raise ProtocolError(f"message has {len(frames)} parts, needs at least topic and header")
-    views = [_buffer(f) for f in frames]
+    views = [byte_view(f) for f in frames]
     try:
         topic = bytes(views[0]).decode("ascii")
     except UnicodeDecodeError:
@@ -390,7 +408,7 @@ def decode(frames: Sequence[Any]) -> tuple[str, Any]:
         raise ProtocolError(f"{topic}: header of {views[1].nbytes} bytes is too large")
     try:
         header = json.loads(bytes(views[1]).decode("utf-8"))
-    except (UnicodeDecodeError, ValueError) as exc:
+    except (UnicodeDecodeError, ValueError, RecursionError) as exc:  # nesting bombs too
         raise ProtocolError(f"{topic}: header is not JSON: {exc}") from None
     if not isinstance(header, dict):
         raise ProtocolError(f"{topic}: header is not a JSON object")

@@ -25,12 +25,17 @@ from brimline.daemon.errors import ConfigError
 __all__ = [
     "Section",
     "LoadingSection",
-    "EstimatorSection",
-    "ChangeSection",
+    "DriverSection",
+    "ReplaySection",
+    "FallbackSection",
+    "ServiceSection",
     "PublishSection",
     "StatusSection",
     "RecordSection",
+    "EstimatorSection",
+    "ChangeSection",
     "Config",
+    "KeyProblem",
     "load_config",
     "read_yaml",
     "parse_section",
@@ -261,17 +266,48 @@ class RadioSection(Section):
 
 
 class ReplaySection(Section):
-    """``driver.replay:`` a recorded estimate log (brimline.drivers.replay)."""
+    """``driver.replay:`` a recorded estimate log (brimline.drivers.replay).
+
+    A relative ``path`` is taken relative to the config file's folder by :func:`load_config`.
+    """
+
+    path: str = Field(description="estimate recording to replay (relative: to the config file)")
+    realtime: bool = Field(False, description="pace frames by their recorded time_s")
+    speed: float = Field(1.0, description="pacing factor when realtime (2.0 = twice as fast)")
+    loop: bool = Field(False, description="start again at the end (times keep increasing)")
+
+    @field_validator("speed")
+    @classmethod
+    def _speed_ok(cls, v: float) -> float:
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"speed={v} must be a positive number")
+        return v
 
 
 class DriverSection(Section):
-    """``driver:`` which source of estimates runs, and its settings."""
+    """``driver:`` which source of estimates runs, and its settings.
 
-    kind: Literal["sim", "iq", "radio", "replay"] = "sim"
+    ``kind`` names the subsection that configures the source; that subsection must be present
+    (``sim`` has defaults, the others need at least their required keys).
+    """
+
+    kind: Literal["sim", "iq", "radio", "replay"] = Field(
+        "sim", description="source of estimates: sim, iq (SigMF IQ), radio, replay")
     sim: SimSection = Field(default_factory=SimSection)
     iq: Optional[IqSection] = None
     radio: Optional[RadioSection] = None
     replay: Optional[ReplaySection] = None
+
+    @model_validator(mode="after")
+    def _kind_has_section(self) -> "DriverSection":
+        if getattr(self, self.kind) is None:
+            raise KeyProblem(("kind",), self.kind,
+                             f"needs a driver.{self.kind} section with its settings")
+        return self
+
+    def selected(self) -> Section:
+        """The subsection named by ``kind``."""
+        return getattr(self, self.kind)
 
 
 # --------------------------------------------------------------------------- estimator, change
@@ -452,7 +488,7 @@ def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
     return v
 
 
-def _positive(key: str, v: float) -> float:
+def _finite_positive(key: str, v: float) -> float:
     if not (math.isfinite(v) and v > 0):
         raise ValueError(f"{key}={v} must be finite and > 0")
     return v
@@ -489,7 +525,7 @@ class PublishSection(Section):
     @field_validator("heartbeat_s")
     @classmethod
     def _heartbeat(cls, v):
-        return _positive("heartbeat_s", v)
+        return _finite_positive("heartbeat_s", v)
 
     @field_validator("linger_s")
     @classmethod
@@ -532,7 +568,7 @@ class StatusSection(Section):
     @field_validator("rate_hz")
     @classmethod
     def _rate(cls, v):
-        return _positive("rate_hz", v)
+        return _finite_positive("rate_hz", v)
 
     @field_validator("hwm")
     @classmethod
@@ -568,6 +604,73 @@ class RecordSection(Section):
 # --------------------------------------------------------------------------- whole file
 
 
+class FallbackSection(Section):
+    """``fallback:`` the safe map sent when estimates go stale (owned by the service).
+
+    The fallback map loads every data tone with the same ``bits`` at the same ``power_db``; it
+    must be a map the loader itself could make (bits from ``loading.bits``, power within
+    ``loading.cap_db`` and, summed over the tones, within ``loading.budget_db``).
+    """
+
+    stale_after_s: float = Field(
+        1.0, description="send the fallback map when no valid estimate came for this long, s")
+    bits: int = Field(2, description="bits on every data tone of the fallback map")
+    power_db: float = Field(0.0, description="power on every data tone relative to nominal, dB")
+
+    @field_validator("stale_after_s")
+    @classmethod
+    def _stale_ok(cls, v: float) -> float:
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"stale_after_s={v} must be a positive number of seconds")
+        return v
+
+    @field_validator("power_db")
+    @classmethod
+    def _power_ok(cls, v: float) -> float:
+        if not math.isfinite(v):
+            raise ValueError(f"power_db={v} must be finite")
+        return v
+
+
+class ServiceSection(Section):
+    """``service:`` how the daemon loop runs (brimline.daemon.service)."""
+
+    lead_frames: int = Field(
+        4, description="a new map takes effect this many frames after the last frame seen")
+    clock: Literal["auto", "source", "monotonic"] = Field(
+        "auto", description="time fed to estimator and change control: source = the estimates' "
+        "time_s, monotonic = the daemon's clock; auto = monotonic for radio, source otherwise")
+    state_path: Optional[str] = Field(
+        None, description="file keeping epoch, sequence and last map across restarts "
+        "(relative: to the config file); none keeps no state")
+    poll_s: float = Field(0.05, description="longest wait of one main-loop poll, s")
+    driver_join_s: float = Field(2.0, description="wait for the driver thread at shutdown, s")
+
+    @field_validator("lead_frames")
+    @classmethod
+    def _lead_ok(cls, v: int) -> int:
+        if not 0 <= v <= 10_000:
+            raise ValueError(f"lead_frames={v} must be in [0, 10000]")
+        return v
+
+    @field_validator("poll_s", "driver_join_s")
+    @classmethod
+    def _positive_s(cls, v: float, info) -> float:
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"{info.field_name}={v} must be a positive number of seconds")
+        return v
+
+
+class KeyProblem(ValueError):
+    """A cross-section check failed at ``loc`` (key path inside the model) with ``value``."""
+
+    def __init__(self, loc: tuple[str, ...], value: Any, msg: str) -> None:
+        super().__init__(msg)
+        self.loc = tuple(loc)
+        self.value = value
+        self.msg = msg
+
+
 class Config(Section):
     """The whole daemon config. Sections not written in the file take their defaults."""
 
@@ -579,6 +682,26 @@ class Config(Section):
     publish: PublishSection = Field(default_factory=PublishSection)
     status: StatusSection = Field(default_factory=StatusSection)
     record: RecordSection = Field(default_factory=RecordSection)
+    fallback: FallbackSection = Field(default_factory=FallbackSection)
+    service: ServiceSection = Field(default_factory=ServiceSection)
+
+    @model_validator(mode="after")
+    def _fallback_fits_loading(self) -> "Config":
+        fb, ld = self.fallback, self.loading
+        if fb.bits not in ld.bits:
+            raise KeyProblem(("fallback", "bits"), fb.bits,
+                             f"is not one of loading.bits={list(ld.bits)}")
+        if fb.bits == 0:
+            raise KeyProblem(("fallback", "bits"), fb.bits, "a fallback map must carry data")
+        if fb.power_db > ld.cap_db + 1e-9:
+            raise KeyProblem(("fallback", "power_db"), fb.power_db,
+                             f"exceeds the per-tone ceiling loading.cap_db={ld.cap_db}")
+        # Uniform power on all N tones sums to N * 10^(p/10); the budget is N * 10^(b/10).
+        if fb.power_db > ld.budget_db + 1e-9:
+            raise KeyProblem(("fallback", "power_db"), fb.power_db,
+                             f"on every tone exceeds the total budget loading.budget_db="
+                             f"{ld.budget_db}")
+        return self
 
 
 # --------------------------------------------------------------------------- machinery
@@ -634,17 +757,26 @@ def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     return data, (_key_lines(node) if node is not None else {})
 
 
+def _at(where: str, lines: dict[tuple, int], loc: tuple) -> str:
+    """``where`` plus the line of the deepest key of ``loc`` that exists in the file."""
+    for n in range(len(loc), 0, -1):
+        line = lines.get(loc[:n])
+        if line is not None:
+            return f"{where} line {line}"
+    return where
+
+
 def _explain(exc: ValidationError, where: str, lines: dict[tuple, int],
              prefix: tuple = ()) -> ConfigError:
     err = exc.errors()[0]
     loc = prefix + tuple(str(x) for x in err["loc"])
+    problem = (err.get("ctx") or {}).get("error")
+    if isinstance(problem, KeyProblem):  # a model-level check that knows its key
+        loc = loc + problem.loc
+        at = _at(where, lines, loc)
+        return ConfigError(f"{at}: {'.'.join(loc)}={problem.value!r}: {problem.msg}")
     key = ".".join(loc) if loc else "(top level)"
-    line = None
-    for n in range(len(loc), 0, -1):  # the deepest key that exists in the file
-        line = lines.get(loc[:n])
-        if line is not None:
-            break
-    at = f"{where} line {line}" if line is not None else where
+    at = _at(where, lines, loc)
     msg = err["msg"].removeprefix("Value error, ")
     if err["type"] == "extra_forbidden":
         return ConfigError(f"{at}: unknown key {key}")
@@ -686,6 +818,23 @@ def load_config(path: str | Path) -> Config:
     """
     data, lines = read_yaml(path)
     try:
-        return Config.model_validate(data)
+        config = Config.model_validate(data)
     except ValidationError as exc:
         raise _explain(exc, str(path), lines) from None
+    return _resolve_paths(config, Path(path).parent)
+
+
+def _resolve_paths(config: Config, base: Path) -> Config:
+    """Make the service's relative file paths relative to the config file's folder."""
+
+    def rebase(value: str | None) -> str | None:
+        if value is None or Path(value).is_absolute():
+            return value
+        return str(base / value)
+
+    driver = config.driver
+    if driver.replay is not None:
+        driver = driver.model_copy(update={
+            "replay": driver.replay.model_copy(update={"path": rebase(driver.replay.path)})})
+    service = config.service.model_copy(update={"state_path": rebase(config.service.state_path)})
+    return config.model_copy(update={"driver": driver, "service": service})

@@ -210,12 +210,41 @@ class Follower:
             raise
         self._request_snapshot()
 
+    @classmethod
+    def for_daemon(cls, publish, loading, *, plan: TonePlan, **kwargs) -> "Follower":
+        """A follower of the daemon configured by ``publish`` and ``loading`` sections.
+
+        Endpoints come from ``publish`` (a wildcard host becomes 127.0.0.1), the allowed bits,
+        budget and cap from ``loading``, ``heartbeat_timeout_s`` defaults to four heartbeat
+        intervals. ``kwargs`` override or add any constructor argument (``on_map``,
+        ``context``, CURVE key files, ``clock``).
+        """
+        def here(ep):
+            if ep is None:
+                return None
+            for wild in ("tcp://*:", "tcp://0.0.0.0:"):
+                if ep.startswith(wild):
+                    return "tcp://127.0.0.1:" + ep[len(wild):]
+            return ep
+        args = dict(plan=plan, map_endpoint=here(publish.map_endpoint),
+                    snapshot_endpoint=here(publish.snapshot_endpoint),
+                    ack_endpoint=here(publish.ack_endpoint), bits=list(loading.bits),
+                    budget_db=loading.budget_db, cap_db=loading.cap_db,
+                    heartbeat_timeout_s=4 * publish.heartbeat_s)
+        args.update(kwargs)
+        return cls(**args)
+
     # ------------------------------------------------------------------ public
 
     @property
     def synced(self) -> bool:
         """True once a snapshot reply has been used (and no new one is awaited)."""
         return self._snapshot_sent_s is None and self._epoch is not None
+
+    @property
+    def held_updates(self) -> int:
+        """Map updates received while a snapshot reply is awaited (applied after it if newer)."""
+        return len(self._held)
 
     def stale(self, now_s: float | None = None) -> bool:
         """True when nothing was heard from the daemon for ``heartbeat_timeout_s``."""
@@ -344,15 +373,16 @@ class Follower:
         if topic != codec.TOPIC_SNAPSHOT:
             self.counters["malformed"] += 1
             return None
+        if isinstance(record, dict) and "error" in record:
+            self.counters["snapshot_errors"] += 1  # still pending: resent after the timeout
+            self.last_rejection = f"snapshot refused: {record['error']}"
+            return None
         self._snapshot_sent_s = None
         self.counters["snapshots"] += 1
         adopted = None
         if isinstance(record, LoadMap):
             if record.epoch != self._epoch or record.seq > self._seq:
-                if record.epoch != self._epoch and self._epoch is not None:
-                    self.counters["epoch_changes"] += 1
-                self._epoch, self._seq = record.epoch, record.seq
-                adopted = self._adopt(record)
+                adopted = self._take(record)
             else:
                 self.counters["old_dropped"] += 1
         elif isinstance(record, dict) and isinstance(record.get("seq"), int):
@@ -387,13 +417,22 @@ class Follower:
         return None
 
     def _follow(self, load_map: LoadMap) -> LoadMap | None:
-        if load_map.epoch != self._epoch:
-            self.counters["epoch_changes"] += 1
-        elif load_map.seq <= self._seq:
+        same = load_map.epoch == self._epoch
+        if same and load_map.seq <= self._seq:
             self.counters["old_dropped"] += 1
             return None
-        elif load_map.seq > self._seq + 1:
+        if same and load_map.seq > self._seq + 1:
             self.counters["gaps"] += 1
             self._request_snapshot()
-        self._epoch, self._seq = load_map.epoch, load_map.seq
-        return self._adopt(load_map)
+        return self._take(load_map)
+
+    def _take(self, load_map: LoadMap) -> LoadMap | None:
+        """Check and adopt a map already known to be newer. Within the epoch the seq is used
+        up even when the map is refused; a refused map of another epoch moves nothing."""
+        same = load_map.epoch == self._epoch
+        adopted = self._adopt(load_map)
+        if adopted is not None or same:
+            if not same and self._epoch:  # "" / None: the daemon had not named its epoch
+                self.counters["epoch_changes"] += 1
+            self._epoch, self._seq = load_map.epoch, load_map.seq
+        return adopted

@@ -21,6 +21,7 @@ vectorized passes over the tones plus one small sort. The hard searches are priv
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 from typing import Iterable
@@ -46,6 +47,10 @@ __all__ = [
 #: Largest bits per tone the loaders accept (65536-QAM).
 MAX_BITS = 16
 
+#: Largest magnitude accepted for a dB setting (gap, budget, ceiling, margin): far beyond any
+#: link, and small enough that every linear value stays a normal float.
+DB_LIMIT = 300.0
+
 #: Nearest-neighbour count used by the gap formula: a large square QAM is two PAM dimensions and
 #: an inner PAM point has two neighbours (the per-dimension count of the gap approximation,
 #: Cioffi's DMT notes ch. 1; from memory for the form). With it a symbol error rate of 1e-7 gives
@@ -64,6 +69,8 @@ def _finite_db(name: str, value, *, allow_pos_inf: bool = False) -> float:
     if math.isnan(v) or v == -math.inf or (v == math.inf and not allow_pos_inf):
         what = "finite or +inf" if allow_pos_inf else "finite"
         raise InputError(f"{name}={value!r} must be {what}")
+    if math.isfinite(v) and abs(v) > DB_LIMIT:
+        raise InputError(f"{name}={value!r} is beyond +-{DB_LIMIT:g} dB")
     return v
 
 
@@ -75,28 +82,66 @@ def _as_snr(snr) -> np.ndarray:
         raise InputError(f"snr must be an array of numbers, got {type(snr).__name__}") from None
     if arr.ndim != 1:
         raise InputError(f"snr must be 1-D (one value per tone), got shape {arr.shape}")
-    if arr.size and arr.min() >= 0.0 and math.isfinite(float(arr.sum())):
-        return arr  # the usual case, in two cheap passes
+    with np.errstate(over="ignore"):
+        if arr.size and arr.min() >= 0.0 and math.isfinite(float(arr.sum())):
+            return arr  # the usual case, in two cheap passes
     bad = ~(np.isfinite(arr) & (arr >= 0.0))
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
-        raise InputError(f"snr[{i}]={arr[i]!r} must be finite and >= 0 (linear SNR)")
+        raise InputError(f"snr[{i}]={float(arr[i])!r} must be finite and >= 0 (linear SNR)")
     return arr
 
 
-def _as_bit_set(bits) -> np.ndarray:
-    """Validate an allowed-bits set: integers, strictly ascending, starting at 0, <= MAX_BITS."""
+@dataclass(frozen=True)
+class _BitTables:
+    """Per-bit tables of one allowed-bits set, shared by every loader that uses the set."""
+
+    bits: np.ndarray         # (J,) allowed bits, ascending from 0
+    energy: np.ndarray       # (J,) 2**b - 1: a tone's power in units of gap/snr
+    step_energy: np.ndarray  # (J-1,) energy of the step from bits[j] to bits[j+1]
+    step_bits: np.ndarray    # (J-1,) bits gained by that step
+    step_key: np.ndarray     # (J-1,) log2 of the step's energy per bit (increasing)
+    unit_steps: bool         # consecutive bits: every step is one bit
+    max_step: int
+    mean_step: float
+    key_spacing: float       # smallest gap between consecutive step keys
+
+
+def _as_bit_set(bits) -> _BitTables:
+    """Validate an allowed-bits set (integers, strictly ascending, from 0, <= MAX_BITS) and
+    return its tables."""
     try:
-        values = list(bits)
+        values = tuple(bits)
     except TypeError:
         raise InputError(f"bits={bits!r} must be a list of integers") from None
     if not values or not all(isinstance(b, (int, np.integer)) and not isinstance(b, bool)
                              for b in values):
-        raise InputError(f"bits={values!r} must be a non-empty list of integers")
-    arr = np.array(values, dtype=np.int64)
-    if arr[0] != 0 or np.any(np.diff(arr) <= 0) or arr[-1] > MAX_BITS:
-        raise InputError(f"bits={values!r} must be ascending, start at 0 and stay <= {MAX_BITS}")
-    return arr
+        raise InputError(f"bits={list(values)!r} must be a non-empty list of integers")
+    values = tuple(int(b) for b in values)
+    if values[0] != 0 or any(b <= a for a, b in zip(values, values[1:])) \
+            or values[-1] > MAX_BITS:
+        raise InputError(f"bits={list(values)!r} must be ascending, start at 0 and stay "
+                         f"<= {MAX_BITS}")
+    return _bit_tables(values)
+
+
+@functools.lru_cache(maxsize=64)
+def _bit_tables(values: tuple[int, ...]) -> _BitTables:
+    bits = np.array(values, dtype=np.int64)
+    levels = np.ldexp(1.0, bits)
+    step_energy = np.diff(levels)
+    step_bits = np.diff(bits)
+    step_key = np.log2(step_energy / step_bits)
+    tables = _BitTables(
+        bits=bits, energy=levels - 1.0, step_energy=step_energy, step_bits=step_bits,
+        step_key=step_key, unit_steps=bool(np.all(step_bits == 1)),
+        max_step=int(step_bits.max()) if step_bits.size else 1,
+        mean_step=float(step_bits.mean()) if step_bits.size else 1.0,
+        key_spacing=float(np.diff(step_key).min()) if step_key.size > 1 else 1.0)
+    for table in (tables.bits, tables.energy, tables.step_energy, tables.step_bits,
+                  tables.step_key):
+        table.setflags(write=False)
+    return tables
 
 
 # --------------------------------------------------------------------------- gap and error rates
@@ -223,7 +268,12 @@ def _gray_pam_bit_errors(m: int, x: np.ndarray) -> np.ndarray:
     lo = np.where(levels[None, :] == 0, -np.inf, offs - 1.0)
     hi = np.where(levels[None, :] == m - 1, np.inf, offs + 1.0)
     xx = x.reshape(-1, 1, 1)
-    prob = _qfunc(lo * xx) - _qfunc(hi * xx)  # P(noise / (d/2) in (lo, hi)) scaled by x
+    # P(lo x < Z < hi x) for a standard normal Z, from the near tail so nothing cancels
+    # (the error terms are tiny at high SNR; the straddling interval has Hamming distance 0).
+    with np.errstate(invalid="ignore"):
+        below = special.ndtr(hi * xx) - special.ndtr(lo * xx)
+        above = _qfunc(lo * xx) - _qfunc(hi * xx)
+    prob = np.where(hi <= 0, below, above)
     errs = (prob * ham).sum(axis=(1, 2)) / m
     return errs.reshape(x.shape)
 
@@ -309,9 +359,10 @@ def _water_level(floor_lin: np.ndarray, budget: float, cap: float) -> float:
     pts = points[order]
     slope = np.cumsum(delta[order])  # slope just after each breakpoint
     filled = np.concatenate([[0.0], np.cumsum(slope[:-1] * np.diff(pts))])  # total at each point
-    k = int(np.searchsorted(filled, budget, side="right")) - 1
-    if slope[k] <= 0.0:  # budget equals a plateau's total: the plateau's start fits exactly
+    k = int(np.searchsorted(filled, budget, side="left"))  # first breakpoint reaching it
+    if k < pts.size and filled[k] == budget:  # also the start of a plateau at the budget
         return float(pts[k])
+    k -= 1  # the budget lies inside the segment after breakpoint k, whose slope is > 0
     return float(pts[k] + (budget - filled[k]) / slope[k])
 
 
@@ -432,6 +483,10 @@ class Loader:
 
     Rate mode does not spread leftover power: loaded tones get their required power and
     ``margin_db`` reports the headroom.
+
+    The settings are fixed once built (attributes ``mode``, ``bits``, ``gap_db``,
+    ``budget_db``, ``cap_db``, ``target_bits`` are read-only); build another loader to change
+    them. Calls keep no state, so one loader may serve many threads.
     """
 
     def __init__(self, *, mode: str = "rate", bits: Iterable[int] = range(9), gap_db: float,
@@ -439,11 +494,10 @@ class Loader:
                  target_bits: int | None = None) -> None:
         if mode not in ("rate", "margin", "waterfill"):
             raise InputError(f"mode={mode!r} must be one of rate, margin, waterfill")
-        self.mode = mode
-        self.bits = _as_bit_set(bits)
-        self.gap_db = _finite_db("gap_db", gap_db)
-        self.budget_db = _finite_db("budget_db", budget_db)
-        self.cap_db = _finite_db("cap_db", cap_db, allow_pos_inf=True)
+        tables = _as_bit_set(bits)
+        gap_db = _finite_db("gap_db", gap_db)
+        budget_db = _finite_db("budget_db", budget_db)
+        cap_db = _finite_db("cap_db", cap_db, allow_pos_inf=True)
         if target_bits is not None:
             if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
                     or target_bits < 0:
@@ -451,22 +505,25 @@ class Loader:
             target_bits = int(target_bits)
         if mode == "margin" and target_bits is None:
             raise InputError("target_bits is required with mode='margin'")
-        self.target_bits = target_bits
-        self._gap = 10.0 ** (self.gap_db / 10.0)
-        self._per_tone_budget = 10.0 ** (self.budget_db / 10.0)
-        self._cap = 10.0 ** (self.cap_db / 10.0)
-        # Tables over the bit set: energy in units of u for each allowed b, and the steps.
-        levels = np.ldexp(1.0, self.bits)
-        self._energy = levels - 1.0                   # (J,)  2**b - 1
-        self._step_energy = np.diff(levels)            # (J-1,)
-        self._step_bits = np.diff(self.bits)           # (J-1,)
-        self._step_key = np.log2(self._step_energy / self._step_bits)  # log2 cost per bit
-        self._unit_steps = bool(np.all(self._step_bits == 1))
-        if self._step_key.size > 1:
-            self._key_spacing = float(np.diff(self._step_key).min())
-        else:
-            self._key_spacing = 1.0
-        self._log2_gap = math.log2(self._gap)
+        gap = 10.0 ** (gap_db / 10.0)
+        settings = {
+            "mode": mode, "bits": tables.bits, "gap_db": gap_db, "budget_db": budget_db,
+            "cap_db": cap_db, "target_bits": target_bits,
+            "_gap": gap, "_log2_gap": math.log2(gap),
+            "_per_tone_budget": 10.0 ** (budget_db / 10.0), "_cap": 10.0 ** (cap_db / 10.0),
+            # Tables over the bit set (cached per set, read-only): see _BitTables.
+            "_energy": tables.energy, "_step_energy": tables.step_energy,
+            "_step_bits": tables.step_bits, "_step_key": tables.step_key,
+            "_unit_steps": tables.unit_steps, "_max_step": tables.max_step,
+            "_mean_step": tables.mean_step, "_key_spacing": tables.key_spacing,
+        }
+        self.__dict__.update(settings)
+        self._frozen = True
+
+    def __setattr__(self, name: str, value) -> None:
+        if getattr(self, "_frozen", False):  # the tables follow from the settings
+            raise AttributeError(f"Loader settings are fixed; build a new Loader to change {name}")
+        object.__setattr__(self, name, value)
 
     def __repr__(self) -> str:
         return (f"Loader(mode={self.mode!r}, bits={self.bits.tolist()}, gap_db={self.gap_db}, "
@@ -482,17 +539,24 @@ class Loader:
         # Step j is allowed when unit * (2**b_j - 1) fits the ceiling and the whole budget.
         # Excluding tones that could never load also keeps unit_sum small next to the budget,
         # so the energy formula of _energy_of loses nothing to cancellation.
-        if math.isfinite(self._cap):
+        last = self.bits.size - 1
+        if math.isfinite(self._cap) or last == 0:
             room = min(self._cap, budget) / unit
             top = np.searchsorted(self._energy, room, side="right") - 1
-        else:  # only the budget limits a tone: drop those that cannot afford the first step
-            top = np.where(unit * self._energy[1] <= budget, self.bits.size - 1, 0) \
-                if self.bits.size > 1 else np.zeros(unit.size, dtype=np.int64)
-        if not top.all():
             dead = top == 0
+            top_f = top.astype(np.float64)
+        else:  # only the budget limits a tone: drop those that cannot afford the first step
+            dead = unit > budget / self._energy[1]
+            if dead.any():
+                top = np.where(dead, 0, last)
+                top_f = top.astype(np.float64)
+            else:
+                top = np.full(unit.size, last, dtype=np.int64)
+                top_f = np.full(unit.size, float(last))
+        if dead.any():
             unit[dead] = 0.0
             log_unit[dead] = np.inf
-        return _Tones(unit=unit, log_unit=log_unit, top=top, top_f=top.astype(np.float64),
+        return _Tones(unit=unit, log_unit=log_unit, top=top, top_f=top_f,
                       unit_sum=float(unit.sum()))
 
     def _steps_at(self, tones: _Tones, t: float) -> np.ndarray:
@@ -575,10 +639,10 @@ class Loader:
 
         ``measure(n)`` is nondecreasing in the steps ``n``. Returns ``(n_lo, n_hi, m_lo)`` with
         ``m_lo = measure(n_lo) <= limit < measure(n_hi)``, or ``(top, None, measure(top))`` when
-        everything fits. The search starts at ``guess`` and widens by doubling until it holds the limit, bisects
-        until the bracket is narrower than the key spacing, then takes one interpolated probe
-        so that the final sort sees few tones. The guess and the probe only save work: any
-        bracket with the invariant gives the same exact answer.
+        everything fits. The search starts at ``guess`` and widens by doubling until it holds
+        the limit, bisects until the bracket is narrower than the key spacing, then takes one
+        interpolated probe so that the final sort sees few tones. The guess and the probe only
+        save work: any bracket with the invariant gives the same exact answer.
         """
         top = tones.top_f if self._unit_steps else tones.top
         live = tones.top > 0
@@ -658,7 +722,7 @@ class Loader:
         live = max(int(np.count_nonzero(tones.top)), 1)
         # At threshold t a tone's energy is below twice its last step, so about
         # 1.44 * 2**t on average (mean of 2**(1 - u), u uniform): a first guess only.
-        guess = math.log2((budget + tones.unit_sum) / (1.4427 * live * self._step_bits.max()))
+        guess = math.log2((budget + tones.unit_sum) / (1.4427 * live * self._max_step))
         n_lo, n_hi, spent = self._bracket(tones, lambda n: self._energy_of(tones, n), budget,
                                           guess)
         if n_hi is not None:
@@ -678,7 +742,7 @@ class Loader:
         live = tones.top > 0
         n_live = max(int(np.count_nonzero(live)), 1)
         # A tone takes about t - log2(unit) + 1 unit steps at threshold t: a first guess only.
-        guess = (target / self._step_bits.mean() + float(tones.log_unit[live].sum())) / n_live \
+        guess = (target / self._mean_step + float(tones.log_unit[live].sum())) / n_live \
             - 1.0 if live.any() else 0.0
         n_lo, n_hi, count = self._bracket(tones, self._bits_of, target, guess)
         if n_hi is None:
@@ -691,10 +755,11 @@ class Loader:
         n[idx[:take]] += 1
         rest -= int(size[:take].sum())
         if rest:
-            n = self._fill_remainder(tones, n, rest)
+            n = self._fill_remainder(tones, n, rest, target)
         return n
 
-    def _fill_remainder(self, tones: _Tones, n: np.ndarray, rest: int) -> np.ndarray:
+    def _fill_remainder(self, tones: _Tones, n: np.ndarray, rest: int,
+                        target: int) -> np.ndarray:
         """Add exactly ``rest`` bits (less than one step) at the least extra power found.
 
         Options: one step of exactly ``rest`` bits on some tone, or a step of ``s`` bits up on
@@ -726,8 +791,9 @@ class Loader:
                     if a != b and up_cost[a] - dn_save[b] < best_cost:
                         best_cost, best = float(up_cost[a] - dn_save[b]), (int(a), int(b))
         if best is None:
-            raise InfeasibleError(f"target_bits cannot be reached exactly with bits="
-                                  f"{self.bits.tolist()} (short by {rest})")
+            raise InfeasibleError(f"target_bits={target} cannot be reached "
+                                  f"exactly with bits={self.bits.tolist()} on these tones "
+                                  f"(short by {rest})")
         n = n.copy()
         n[best[0]] += 1
         if best[1] is not None:
@@ -737,17 +803,44 @@ class Loader:
     # ---------------------------------------------------------------- calls
 
     def __call__(self, snr) -> Allocation:
-        """Load one frame: the allocation for the per-tone linear SNR ``snr`` (N,)."""
+        """Load one frame.
+
+        Parameters
+        ----------
+        snr : array_like of float
+            Linear per-tone SNR at nominal power, (N,), finite and >= 0.
+
+        Returns
+        -------
+        Allocation
+            Bits and powers per tone in this loader's mode.
+
+        Raises
+        ------
+        InputError
+            A NaN, infinite or negative SNR, or an array that is not 1-D.
+        InfeasibleError
+            Margin mode only: ``target_bits`` does not fit the budget and ceilings.
+
+        Examples
+        --------
+        >>> loader = Loader(bits=range(11), gap_db=9.8)
+        >>> alloc = loader(np.array([1000.0, 100.0, 10.0, 0.0]))
+        >>> alloc.bits.tolist(), round(alloc.margin_db, 2)
+        ([7, 4, 1, 0], 0.46)
+        """
         snr = _as_snr(snr)
         if self.mode == "rate":
-            return self.rate(snr)
+            return self._rate(snr)
         if self.mode == "margin":
-            return self.margin(snr, self.target_bits)
+            return self._margin_mode(snr, self.target_bits)
         return self.quantized_waterfill(snr)
 
     def rate(self, snr) -> Allocation:
         """Rate mode for ``snr``, whatever ``mode`` this loader was built with."""
-        snr = _as_snr(snr)
+        return self._rate(_as_snr(snr))
+
+    def _rate(self, snr: np.ndarray) -> Allocation:
         budget = self._budget(snr.size)
         tones = self._tones(snr, budget)
         n = self._rate_steps(tones, budget)
@@ -762,7 +855,9 @@ class Loader:
             When ``target_bits`` exceeds the most bits the budget and ceilings allow; the
             message gives both numbers.
         """
-        snr = _as_snr(snr)
+        return self._margin_mode(_as_snr(snr), target_bits)
+
+    def _margin_mode(self, snr: np.ndarray, target_bits: int) -> Allocation:
         if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
                 or target_bits < 0:
             raise InputError(f"target_bits={target_bits!r} must be an integer >= 0")
@@ -772,12 +867,18 @@ class Loader:
         if target > int(self.bits[tones.top].sum()):
             self._raise_infeasible(target, tones, budget)
         n = self._margin_steps(tones, target)
-        if float(np.dot(tones.unit, self._energy[n])) > budget:
+        # The rate search sums energies in another order; allow for that rounding so that the
+        # rate-mode maximum is always a feasible target.
+        if float(np.dot(tones.unit, self._energy[n])) > budget * (1.0 + 1e-12):
             self._raise_infeasible(target, tones, budget)
         return self._allocation(tones, n, budget, scale=True)
 
     def _raise_infeasible(self, target: int, tones: _Tones, budget: float):
         best = int(self.bits[self._rate_steps(tones, budget)].sum())
+        if best >= target:  # only with holes in the bit set: see the class notes
+            raise InfeasibleError(f"target_bits={target} with bits={self.bits.tolist()} does "
+                                  f"not fit the budget (budget_db={self.budget_db:g}) in the "
+                                  f"near-minimal allocation; rate mode reaches {best} bits")
         raise InfeasibleError(f"target_bits={target} is more than the {best} bits the budget "
                               f"(budget_db={self.budget_db:g}) and ceilings "
                               f"(cap_db={self.cap_db:g}) allow")
@@ -798,7 +899,7 @@ class Loader:
 
     def _allocation(self, tones: _Tones, n: np.ndarray, budget: float, *,
                     scale: bool) -> Allocation:
-        bits = self.bits[n]
+        bits = n if self._unit_steps else self.bits[n]  # with unit steps, index = bits
         need = tones.unit * self._energy[n]
         margin_db = self._margin(need, budget)
         power = need * 10.0 ** (margin_db / 10.0) if (scale and math.isfinite(margin_db)) \

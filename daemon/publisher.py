@@ -339,9 +339,10 @@ class StatusPublisher(_Sockets):
     linger_s : float
         How long unsent messages are kept at close, seconds.
     curve : CurveServer or None
-        Share the map publisher's CURVE setup (``MapPublisher.curve``).
+        Share the map publisher's CURVE setup (``MapPublisher.curve``); the socket is then made
+        in that setup's context (client authorisation works per context).
     context : zmq.Context or None
-        Context for the socket; None makes a private one.
+        Context for the socket; None uses the curve's context or makes a private one.
 
     Notes
     -----
@@ -358,7 +359,11 @@ class StatusPublisher(_Sockets):
             raise ValueError(f"rate_hz={rate_hz} must be finite and > 0")
         if hwm < 1:
             raise ValueError(f"hwm={hwm} must be >= 1")
-        super().__init__(context, linger_s)
+        if curve is not None and context is not None and curve.context is not context:
+            raise ValueError("curve belongs to another zmq.Context; client authorisation only "
+                             "covers sockets of the context it was made for")
+        super().__init__(curve.context if curve is not None and context is None else context,
+                         linger_s)
         self.rate_hz = float(rate_hz)
         self.counters: collections.Counter[str] = collections.Counter()
         self._status_seq = 0

@@ -31,7 +31,7 @@ from brimline.daemon import __version__, codec
 from brimline.daemon.errors import ProtocolError, RecordingError
 
 __all__ = ["MAGIC", "RecordWriter", "RecordReader", "TornRecordWarning", "TOPIC_META",
-           "pack_record", "recording_paths"]
+           "pack_record", "recording_paths", "read_recording"]
 
 MAGIC = b"BRIMLOG\x01"
 TOPIC_META = "meta"
@@ -47,7 +47,7 @@ class TornRecordWarning(UserWarning):
 
 def pack_record(frames: Sequence[Any]) -> bytes:
     """One record's bytes (length, CRC, body) for a list of frames."""
-    views = [memoryview(getattr(f, "buffer", f)).cast("B") for f in frames]
+    views = [codec.byte_view(f) for f in frames]
     if len(views) > 0xFFFF:
         raise ValueError(f"a record holds at most 65535 frames, got {len(views)}")
     body = bytearray(_U16.pack(len(views)))
@@ -87,6 +87,23 @@ def recording_paths(path: str | Path) -> list[Path]:
             return out
         out.append(nxt)
         i += 1
+
+
+def read_recording(path: str | Path, *,
+                   topics: Iterable[str] | None = None) -> Iterator[tuple[str, Any]]:
+    """``(topic, record)`` from ``path`` and its rotated continuations, in order.
+
+    Raises
+    ------
+    RecordingError
+        When ``path`` does not exist, or as :class:`RecordReader` does.
+    """
+    paths = recording_paths(path)
+    if not paths:
+        raise RecordingError(f"{path}: no such recording")
+    for p in paths:
+        with RecordReader(p, topics=topics) as reader:
+            yield from reader
 
 
 def _rotated(path: Path, index: int) -> Path:
@@ -180,7 +197,7 @@ class RecordWriter:
     def write_frames(self, frames: Sequence[Any]) -> bool:
         """Append an already encoded message (e.g. what ``MapPublisher.publish`` returned)."""
         self._check_open()
-        topic = bytes(memoryview(getattr(frames[0], "buffer", frames[0]))).decode("ascii")
+        topic = bytes(codec.byte_view(frames[0])).decode("ascii", "replace")
         if not self.wants(topic):
             self.skipped += 1
             return False

@@ -121,7 +121,11 @@ class CurveServer:
 
     def __init__(self, context: zmq.Context, secret_key_file: str | Path,
                  clients_dir: str | Path | None = None) -> None:
+        if not zmq.has("curve"):
+            raise InputError("this libzmq has no CURVE support; install pyzmq's wheel or "
+                             "turn publish.curve_secret_key off")
         self.keypair = _secret_pair(secret_key_file)
+        self.context = context
         self._auth: ThreadAuthenticator | None = None
         if clients_dir is not None:
             cdir = Path(clients_dir)

@@ -133,6 +133,8 @@ class StateStore:
             tmp = None
             if self.fsync:
                 self._fsync_dir(d)
+            for stale in d.glob(f".{self.path.name}.*.tmp"):  # left by an earlier crash
+                stale.unlink(missing_ok=True)
         except OSError as exc:
             raise StateError(f"{self.path}: cannot save state: {exc}") from exc
         finally:

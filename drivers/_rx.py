@@ -4,7 +4,8 @@ One call of :meth:`Receiver.receive` turns a block of complex baseband samples i
 :class:`RxFrame`. Steps (all vectorized; one batched FFT per frame):
 
 1. **Timing and fractional offset** (Schmidl and Cox, IEEE Trans. Commun. 45(12), 1997): the
-   metric ``M(d) = |P(d)|^2 / R(d)^2`` of the two-halves sync symbol, first on a grid of
+   metric ``M(d) = |P(d)|^2 / R(d)^2`` of the two-halves sync symbol, with ``R`` the mean energy
+   of both halves (so ``M <= 1`` also where a burst starts or ends), first on a grid of
    ``B``-sample blocks (block sums and a cumulative sum, so the search costs two passes over the
    block), then exactly around the first coarse peak above ``sync_threshold``. The frame start is
    the middle of the metric's 90 % plateau, which lies inside the cyclic prefix; the fractional
@@ -12,7 +13,8 @@ One call of :meth:`Receiver.receive` turns a block of complex baseband samples i
 2. **Integer offset**: the differential pattern between sync and first training symbol, searched
    over even bin shifts within ``cfo_range_tones`` (Schmidl and Cox, sec. III).
 3. **Fine offset**: the phase advance between the identical training symbols (baseline of one
-   symbol) fixes the per-symbol phase step; pilots then remove each data symbol's common phase.
+   symbol) fixes the per-symbol phase step; a straight line through the data symbols' pilot
+   phases removes what remains.
 4. **Channel and noise**: data-aided least squares per tone over every symbol whose tone values
    are known: the training symbols, the header (after its CRC passes) and the data symbols (hard
    decisions, two passes), ``H = sum(conj(X) Y) / sum(|X|^2)``; the residual ``S = sum|Y - H X|^2``
@@ -111,7 +113,10 @@ class _MapTables:
         self.m_i1 = (m_i - 1).astype(np.float32)
         self.m_q1 = (m_q - 1).astype(np.float32)
         self.b_q = b_q
-        self.gain = (scale * np.sqrt(np.where(self.bits > 0, power_lin, 0.0))).astype(np.float32)
+        gain = scale * np.sqrt(np.where(self.bits > 0, power_lin, 0.0))
+        self.gain = gain.astype(np.float32)
+        self.inv_gain = np.divide(1.0, gain, out=np.zeros_like(gain), where=gain > 0).astype(
+            np.float32)
 
 
 class Receiver:
@@ -156,6 +161,11 @@ class Receiver:
         self._pilots = fmt.pilots.astype(np.float32)
         self._scramble = fmt.scramble.astype(np.float32)
         self._reps = fmt.header_reps
+        self._passes = 1
+        self._sym_index = np.arange(plan.n_symbols)
+        self._data_index = np.arange(plan.data_symbols, dtype=np.float64)
+        self._data_index_spread = max(
+            float(np.sum((self._data_index - self._data_index.mean()) ** 2)), 1.0)
         self._times = np.arange(1 + plan.train_symbols + plan.data_symbols,
                                 dtype=np.float32)[:, None]
         default = _MapTables(np.full(plan.data_tones.size, int(default_bits)),
@@ -219,7 +229,7 @@ class Receiver:
         if count <= 0:
             return None
         pc = cz[lb:lb + count] - cz[:count]
-        rc = ce[2 * lb:2 * lb + count] - ce[lb:lb + count]
+        rc = 0.5 * (ce[2 * lb:2 * lb + count] - ce[:count])
         mc = (pc.real ** 2 + pc.imag ** 2) / np.maximum(rc * rc, 1e-30)
         above = np.flatnonzero(mc > self.sync_threshold)
         if above.size == 0:
@@ -232,10 +242,10 @@ class Receiver:
         if hi <= lo:
             return None
         zc = np.concatenate(([0], np.cumsum(z[lo:hi + half].astype(np.complex128))))
-        ec = np.concatenate(([0], np.cumsum(e[lo + half:hi + 2 * half].astype(np.float64))))
+        ec = np.concatenate(([0], np.cumsum(e[lo:hi + 2 * half].astype(np.float64))))
         width = hi - lo + 1
         pf = zc[half:half + width] - zc[:width]
-        rf = ec[half:half + width] - ec[:width]
+        rf = 0.5 * (ec[2 * half:2 * half + width] - ec[:width])
         mf = (pf.real ** 2 + pf.imag ** 2) / np.maximum(rf * rf, 1e-30)
         top = int(np.argmax(mf))
         low = mf < 0.9 * mf[top]
@@ -254,31 +264,36 @@ class Receiver:
         y1 = spectra[1, self._int_bins]
         score = np.abs(np.sum(np.conj(y0) * y1 * self._diff_conj, axis=1))
         shift = int(self._shifts[int(np.argmax(score))])
-        y = spectra[:, (fmt.used_bins + shift) % n]
+        bins = (fmt.used_bins + shift) % n
         # Per-symbol phase step from the identical training symbols (all offsets together).
-        step = np.sum(np.conj(y[1:t]) * y[2:t + 1])
-        theta = float(np.angle(step))
+        head = np.take(spectra[1:t + 2], bins, axis=1)  # training symbols and header
+        theta = float(np.angle(np.vdot(head[:t - 1], head[1:t])))
         expected = 2 * np.pi * (eps_frac * s + shift * plan.cp_len) / n
         eps_fine = math.remainder(theta - expected, 2 * np.pi) * n / (2 * np.pi * s)
         cfo_tones = eps_frac + shift + eps_fine
-        y *= (np.exp(-1j * theta * np.arange(plan.n_symbols)) / math.sqrt(n)).astype(
-            np.complex64)[:, None]
-        train_rows = y[1:1 + t]
-        h_train = train_rows.mean(axis=0) * self._train
+        phase = (np.exp(-1j * theta * self._sym_index) / math.sqrt(n)).astype(np.complex64)
+        head *= phase[1:t + 2, None]
+        h_train = head[:t].mean(axis=0) * self._train
         # Header: maximal-ratio combining of the repeated BPSK bits.
-        y_head = y[1 + t]
+        y_head = head[t]
         soft = (y_head * np.conj(h_train)).real * self._scramble
         reps = self._reps * HEADER_BITS
         soft_bits = soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)
         header_ok, seq, counter = decode_header((soft_bits < 0).astype(np.uint8))
-        # Data symbols: remove each one's common phase using the pilots.
-        yd = y[2 + t:]
+        # Data symbols: remove the residual phase drift measured on the pilots. A straight line
+        # through the per-symbol common phases follows a residual offset with far less noise
+        # than each symbol's own phase.
+        y_pilot = np.take(spectra[t + 2:], bins[fmt.pilot_pos], axis=1)
         ref = np.conj(h_train[fmt.pilot_pos]) * self._pilots
-        cpe = np.sum(yd[:, fmt.pilot_pos] * ref, axis=1)
-        yd *= (np.conj(cpe) / np.maximum(np.abs(cpe), 1e-30)).astype(np.complex64)[:, None]
+        cpe = np.unwrap(np.angle(np.sum(y_pilot * ref, axis=1) * phase[t + 2:]))
+        k = self._data_index
+        slope = np.dot(k - k.mean(), cpe - cpe.mean()) / self._data_index_spread
+        row_phase = phase[1:].copy()
+        row_phase[t + 1:] *= np.exp(-1j * (cpe.mean() + slope * (k - k.mean())))
         # Least squares over every symbol with known tone values: training, header, data.
         dp = fmt.data_pos
-        rows = y[1:, dp]  # (training + header + data, data tones), a copy
+        rows = np.take(spectra[1:], bins[dp], axis=1)  # (training + header + data, data tones)
+        rows *= row_phase[:, None]
         x = np.zeros(rows.shape, np.complex64)
         x[:t] = self._train_data
         if header_ok:
@@ -290,16 +305,20 @@ class Receiver:
         values = None
         if tables is not None:
             h_rows = np.broadcast_to(h_train[dp], rows.shape)
-            for _ in range(2):  # decide, refit with the decisions, decide again
+            for _ in range(self._passes):  # decide; refit without each symbol; decide again
                 x[t + 1:], i_idx, q_idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables)
-                h, h_rows = _fit(rows, x, self._times, linear=True)
+                h, h_rows = _fit(rows, x, self._times, linear=True, leave_one_out=t + 1)
+            x[t + 1:], i_idx, q_idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables)
+            h, h_rows = _fit(rows, x, self._times, linear=True)
             used, params = known + plan.data_symbols, 2
             values = (_GRAY[i_idx.astype(np.int64)] << tables.b_q) | _GRAY[q_idx.astype(np.int64)]
         else:
             h, h_rows = _fit(rows[:t + 1], x[:t + 1], self._times[:t + 1], linear=False)
             rows, x = rows[:t + 1], x[:t + 1]
             used, params = known, 1
-        residual = np.sum(_power(rows - h_rows * x), axis=0)
+        err = h_rows * x
+        np.subtract(rows, err, out=err)
+        residual = _power(err).sum(axis=0)
         # S ~ sigma^2 Gamma(N - params): E[1/S] = 1 / ((N - params - 1) sigma^2).
         noise_var = np.maximum(residual / max(used - params - 1, 1), 1e-30)
         snr_db = 10.0 * np.log10(np.maximum(_power(h) / noise_var, 1e-30))
@@ -345,38 +364,67 @@ class Receiver:
 
     @staticmethod
     def _decide(y: np.ndarray, h: np.ndarray, tables: _MapTables):
-        """Hard decisions on every data tone at once; returns (points, I index, Q index)."""
-        g = h * tables.gain
-        inv = np.divide(1.0, g, out=np.zeros_like(g), where=tables.gain > 0)
-        z = y * inv
-        i_idx = np.clip(np.rint((z.real + tables.m_i1) * 0.5), 0, tables.m_i1)
-        q_idx = np.clip(np.rint((z.imag + tables.m_q1) * 0.5), 0, tables.m_q1)
-        x_hat = tables.gain * ((2 * i_idx - tables.m_i1) + 1j * (2 * q_idx - tables.m_q1))
-        return x_hat.astype(np.complex64), i_idx, q_idx
+        """Hard decisions on every data tone at once; returns (points, I index, Q index).
+
+        ``fmax``/``fmin`` rather than ``clip`` so that a NaN sample decides to a valid index.
+        """
+        z = y / h
+        i_idx = z.real * tables.inv_gain
+        q_idx = z.imag * tables.inv_gain
+        for idx, top in ((i_idx, tables.m_i1), (q_idx, tables.m_q1)):
+            idx += top
+            idx *= 0.5
+            np.rint(idx, out=idx)
+            np.fmax(idx, 0.0, out=idx)
+            np.fmin(idx, top, out=idx)
+        x_hat = np.empty(y.shape, np.complex64)
+        x_hat.real = (2.0 * i_idx - tables.m_i1) * tables.gain
+        x_hat.imag = (2.0 * q_idx - tables.m_q1) * tables.gain
+        return x_hat, i_idx, q_idx
 
 
-def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool):
+def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool,
+         leave_one_out: int | None = None):
     """Per-tone least-squares channel ``h + slope (n - centroid)`` over symbol rows.
 
     Returns the channel at each tone's centroid time (what the estimate reports) and the fitted
-    channel per row. ``linear=False`` fits a constant.
+    channel per row. ``linear=False`` fits a constant. With ``leave_one_out=k`` the channel of
+    rows ``k:`` is the fit *without* that row (exact, from the leverage ``q``:
+    ``H_-i = (H_i - q_i y_i / x_i) / (1 - q_i)``), so a symbol's own, possibly wrong, decision
+    cannot pull the channel it is decided with.
     """
-    energy = _power(x)
+    energy = np.abs(x)
+    energy *= energy
     a_sum = np.maximum(energy.sum(axis=0), 1e-30)
-    corr = np.conj(x) * rows
-    u = corr.sum(axis=0)
-    h = u / a_sum
+    corr = rows * np.conj(x)
+    h = corr.sum(axis=0) / a_sum
     if not linear:
         return h, np.broadcast_to(h, rows.shape)
-    weighted = times * energy
-    centroid = weighted.sum(axis=0) / a_sum
-    spread = np.maximum((times * weighted).sum(axis=0) - centroid * weighted.sum(axis=0), 1e-30)
-    slope = ((times * corr).sum(axis=0) - centroid * u) / spread
-    return h, h + slope * (times - centroid)
+    centroid = (times * energy).sum(axis=0) / a_sum
+    offset = times - centroid
+    weighted = offset * energy
+    spread = np.maximum((weighted * offset).sum(axis=0), 1e-30)
+    slope = (corr * offset).sum(axis=0) / spread
+    h_rows = slope * offset
+    h_rows += h
+    if leave_one_out is not None:
+        k = leave_one_out
+        e, o = energy[k:], offset[k:]
+        leverage = o * o
+        leverage *= 1.0 / spread
+        leverage += 1.0 / a_sum
+        ratio = corr[k:] / np.maximum(e, 1e-30)  # y / x where x != 0, else 0
+        leverage *= e
+        part = h_rows[k:]
+        part -= leverage * ratio
+        part /= np.maximum(1.0 - leverage, 1e-6)
+    return h, h_rows
 
 
 def _power(x: np.ndarray) -> np.ndarray:
-    return x.real * x.real + x.imag * x.imag
+    p = np.abs(x)
+    p *= p
+    return p
 
 
 class FrameScanner:

@@ -103,6 +103,18 @@ class TestRoundTrip:
                     float(rng.normal()), 9.8, reason=reason)
         _assert_same(m, codec.decode(codec.encode("map", m))[1])
 
+    @settings(max_examples=40, deadline=None)
+    @given(snr=hnp.arrays(np.float32, st.integers(0, 64),
+                          elements=st.floats(allow_nan=True, allow_infinity=True, width=32)),
+           frame=st.integers(0, 2**62), centre=st.floats(allow_nan=True, allow_infinity=True))
+    def test_estimate_property_keeps_non_finite_content(self, snr, frame, centre):
+        """Judging content (a NaN SNR) is the estimator's job: the codec carries it intact."""
+        n = snr.size
+        e = Estimate(frame=frame, time_s=1.0, plan_id="p", tone_index=np.arange(n),
+                     channel=snr.astype(np.complex64), noise_var=snr, snr_db=snr,
+                     center_hz=centre)
+        _assert_same(e, codec.decode(codec.encode("estimate", e))[1])
+
     @settings(max_examples=60, deadline=None)
     @given(arr=hnp.arrays(
         dtype=st.sampled_from([np.float32, np.float64, np.int16, np.uint8, np.complex64,
@@ -155,6 +167,7 @@ class TestMalformed:
         (lambda f: [f[0], b"{not json", *f[2:]], "not JSON"),
         (lambda f: [f[0], b"\xff", *f[2:]], "not JSON"),
         (lambda f: [f[0], b"[1, 2]", *f[2:]], "not a JSON object"),
+        (lambda f: [f[0], b"[" * 100_000 + b"]" * 100_000, *f[2:]], "not JSON"),
         (lambda f: [f[0], b"{}", *f[2:]], r"lacks \['arrays', 'crc32', 'fields', 'type', 'v'\]"),
         (lambda f: _with_header(f, v=2), "protocol version 2"),
         (lambda f: _with_header(f, type="pickle"), "unknown record type 'pickle'"),
@@ -239,3 +252,15 @@ class TestEncodeErrors:
     def test_bad_topic(self):
         with pytest.raises(TypeError, match="ASCII"):
             codec.encode("", {})
+
+
+def test_encode_refuses_what_decoders_would_refuse():
+    with pytest.raises(ValueError, match="load_map.power_lin must be finite to be encoded"):
+        codec.encode("map", _map(power_lin=[np.nan, 0, 1, 1, 0, 1]))
+
+
+def test_frames_may_be_numpy_arrays_of_any_dtype():
+    frames = codec.encode("estimate", _estimate())
+    as_arrays = frames[:2] + [np.frombuffer(f, dtype=d) for f, d in
+                              zip(frames[2:], ["<i2", "<c8", "<f4", "<f4"])]
+    _assert_same(codec.decode(as_arrays)[1], _estimate())

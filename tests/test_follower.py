@@ -5,6 +5,8 @@ import math
 import numpy as np
 import pytest
 import zmq
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from brimline.daemon import codec
 from brimline.daemon.follower import Follower, check_map
@@ -190,12 +192,13 @@ class TestHandOver:
             assert request[1:] == [b"", b"snapshot"]
             for seq in (1, 2, 3):
                 xpub.send_multipart(codec.encode("map", make_map(seq)))
-            assert until(lambda: len(f._held) == 3, step=lambda: f.poll(0.005))
+            assert until(lambda: f.held_updates == 3, step=lambda: f.poll(0.005))
             assert f.current is None  # held until the snapshot says where we are
             router.send_multipart(request[:2] + codec.encode("snapshot", make_map(2)))
             assert until(lambda: f.current is not None and f.current.seq == 3,
                          step=lambda: f.poll(0.005))
             assert f.counters["old_dropped"] == 2 and f.counters["maps"] == 2
+            assert f.held_updates == 0
             xpub.send_multipart([b"map", b"not json"])
             assert until(lambda: f.counters["malformed"] == 1, step=lambda: f.poll(0.005))
             assert f.current.seq == 3
@@ -249,3 +252,89 @@ class TestLifecycle:
     def test_bad_timeouts(self, pub, ctx, kw, match):
         with pytest.raises(ValueError, match=match):
             _follower(pub, ctx, **kw)
+
+
+def test_for_daemon_takes_endpoints_and_limits_from_the_sections(pub, ctx):
+    from brimline.daemon.config import LoadingSection, PublishSection
+    publish = PublishSection(map_endpoint=pub.map_endpoint.replace("127.0.0.1", "*"),
+                             snapshot_endpoint=pub.snapshot_endpoint, ack_endpoint=None,
+                             heartbeat_s=0.25)
+    loading = LoadingSection(bits=[0, 2, 4], budget_db=-3.0)
+    pub.publish(make_map(1, bits=2, power=0.45))  # 48 x 0.45 = 21.6 < 48 x 10^-0.3 = 24.06
+    with Follower.for_daemon(publish, loading, plan=PLAN, context=ctx) as f:
+        assert f.heartbeat_timeout_s == 1.0
+        _sync(pub, f, 1)
+        _subscribed(pub, f)
+        pub.publish(make_map(2, bits=2, power=0.55))  # 26.4 > 24.06: over the -3 dB budget
+        pub.publish(make_map(3, bits=6, power=0.3))  # 6 bits not in the allowed set
+        assert until(lambda: f.counters["rejected"] == 2, step=lambda: f.poll(0.005))
+        assert f.counters["rejected:over_budget"] == 1 and f.counters["rejected:bits"] == 1
+        assert f.current.seq == 1
+
+
+def test_first_map_after_an_unnamed_epoch_is_not_an_epoch_change(ctx):
+    with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT, ack_endpoint=None,
+                      linger_s=0.0, context=ctx) as pub:  # no epoch given: heartbeats say ""
+        with _follower(pub, ctx) as f:
+            assert until(lambda: f.synced, step=lambda: (pub.handle_snapshot(), f.poll(0.005)))
+            _subscribed(pub, f)
+            pub.publish(make_map(0, epoch="e9"))
+            assert until(lambda: f.current is not None, step=lambda: f.poll(0.005))
+            assert f.counters["epoch_changes"] == 0
+
+
+@pytest.fixture(scope="module")
+def daemon():
+    """A scripted daemon (XPUB + ROUTER) shared by the property examples."""
+    context = zmq.Context()
+    xpub, router = context.socket(zmq.XPUB), context.socket(zmq.ROUTER)
+    for s in (xpub, router):
+        s.setsockopt(zmq.LINGER, 0)
+        s.bind("tcp://127.0.0.1:*")
+    yield context, xpub, router
+    context.destroy(linger=0)
+
+
+class TestOrderProperty:
+    """Whatever order, repeats, gaps, epochs and bad maps a daemon sends, the maps a follower
+    hands on are all valid and, within an epoch, strictly increasing in seq."""
+
+    @settings(max_examples=25, deadline=None)
+    @given(events=st.lists(st.tuples(st.sampled_from(["a", "b"]), st.integers(0, 12),
+                                     st.booleans()), min_size=1, max_size=25))
+    def test_adopted_maps_are_valid_and_ordered(self, daemon, events):
+        context, xpub, router = daemon
+        adopted = []
+        f = Follower(plan=PLAN, context=context, on_map=adopted.append,
+                     map_endpoint=xpub.getsockopt(zmq.LAST_ENDPOINT).decode(),
+                     snapshot_endpoint=router.getsockopt(zmq.LAST_ENDPOINT).decode())
+        current = [None]
+
+        def serve():
+            while router.poll(0):
+                req = router.recv_multipart()
+                body = current[0] if current[0] is not None else {"epoch": "", "seq": -1}
+                router.send_multipart(req[:2] + codec.encode("snapshot", body))
+            while xpub.poll(0):
+                xpub.recv()
+            f.poll(0.002)
+        try:
+            assert until(lambda: f.synced, step=serve)
+            while f.counters["heartbeats"] == 0:  # subscription in place
+                xpub.send_multipart(codec.encode("heartbeat", {"epoch": "", "seq": -1}))
+                serve()
+            for epoch, seq, ok in events:
+                m = make_map(seq, epoch=epoch, power=0.9 if ok else 1.5)
+                current[0] = m
+                xpub.send_multipart(codec.encode("map", m))
+                serve()
+            n = f.counters["heartbeats"]
+            xpub.send_multipart(codec.encode("heartbeat", {"epoch": "", "seq": -1}))
+            assert until(lambda: f.counters["heartbeats"] > n and f.synced, step=serve)
+        finally:
+            f.close()
+        for m in adopted:
+            assert check_map(m, plan_id=PLAN.plan_id, tone_index=PLAN.data_tones,
+                             bits=range(9), budget_lin=48.0, cap_lin=np.inf) is None
+        for a, b in zip(adopted, adopted[1:]):
+            assert a.epoch != b.epoch or b.seq > a.seq

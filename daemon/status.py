@@ -1,0 +1,259 @@
+"""The operators' status message: a plain, JSON-safe dict built from the service's state.
+
+Everything here is a pure function of its arguments (no clocks, no sockets), so the message a
+daemon sends can be rebuilt and checked in a test. The service calls :func:`build_status` at the
+configured period and hands the dict to the protocol's status publisher; ``brimline watch`` reads
+the same dict back and renders it.
+
+Layout of the message (version 1)::
+
+    {"type": "status", "version": 1, "time_s": ..., "epoch": "...",
+     "driver": {"name", "state", "error", "counters"},
+     "frames": {"received", "accepted", "rejected": {reason: n}, "decode_errors", "last_frame",
+                "tracking": {counter: n}},   # estimator's tone outliers, jumps, resets
+     "estimate_age_s": float | None,
+     "band": {"tone_first", "tone_last", "tones", "columns", "snr_db": [...], "bits": [...],
+              "power_db": [...]},
+     "rate": {"bits_per_symbol", "rate_bps"},
+     "margin_db": float | None,
+     "map": {"seq", "reason", "kind", "fallback", "effective_frame", "created_s"} | None,
+     "maps_published": {kind: n},
+     "changes": [{"time_s", "kind", "reason", "seq"}, ...],   # newest last
+     "acks": {follower: {"seq", "age_s"}},
+     "alarms": ["stale", "fallback", "emergency", "driver_failed", ...]}
+
+The band is compact: tones are grouped into at most ``columns`` adjacent groups; each group shows
+its *lowest* SNR (what limits loading), its mean bits and its mean power, rounded to 0.1.
+Non-finite numbers become ``None`` so the message is strict JSON.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+__all__ = ["STATUS_VERSION", "ALARMS", "Change", "band_columns", "build_status", "finite",
+           "summary_line"]
+
+STATUS_VERSION = 1
+
+#: Alarms the status can raise, with the operator's one-line meaning.
+ALARMS = {
+    "stale": "no valid estimate within fallback.stale_after_s",
+    "fallback": "the safe fallback map is in force",
+    "emergency": "the last change was an emergency rate reduction",
+    "driver_failed": "the estimate source stopped with an error",
+    "no_map": "no map has been published yet",
+}
+
+
+@dataclass(frozen=True)
+class Change:
+    """One published map, as remembered for the status history.
+
+    Attributes
+    ----------
+    time_s : float
+        Core time of the change, s.
+    kind : str
+        Decision kind (bit_swap, reload, emergency, fallback, restored).
+    reason : str
+        Why (change control's words).
+    seq : int
+        Sequence number of the published map.
+    """
+
+    time_s: float
+    kind: str
+    reason: str
+    seq: int
+
+
+def finite(value: Any, ndigits: int = 3) -> float | None:
+    """``value`` rounded to ``ndigits``, or None when it is None, NaN or infinite."""
+    if value is None:
+        return None
+    value = float(value)
+    return round(value, ndigits) if math.isfinite(value) else None
+
+
+def _rounded_list(values: np.ndarray) -> list:
+    out = np.round(np.asarray(values, dtype=np.float64), 1)
+    return [float(v) if math.isfinite(v) else None for v in out]
+
+
+def band_columns(values: np.ndarray, columns: int, how: str) -> np.ndarray:
+    """Group per-tone ``values`` into at most ``columns`` adjacent groups.
+
+    Parameters
+    ----------
+    values : ndarray, shape (N,)
+        Per-tone values in tone order.
+    columns : int
+        Largest number of groups (>= 1).
+    how : {"min", "mean"}
+        Reduction inside a group; NaN entries are ignored (a group of only NaN gives NaN).
+
+    Returns
+    -------
+    ndarray of float64, shape (min(N, columns),)
+    """
+    v = np.asarray(values, dtype=np.float64)
+    n = v.size
+    if n == 0:
+        return v
+    k = min(n, max(1, int(columns)))
+    edges = np.linspace(0, n, k + 1).round().astype(np.intp)
+    # Pad groups to equal width with NaN so one vectorised nan-reduction does them all.
+    width = int(np.max(np.diff(edges)))
+    idx = edges[:-1, None] + np.arange(width)[None, :]
+    mask = idx < edges[1:, None]
+    grid = np.where(mask, v[np.minimum(idx, n - 1)], np.nan)
+    if how not in ("min", "mean"):
+        raise ValueError(f"how={how!r} must be 'min' or 'mean'")
+    with warnings.catch_warnings():  # groups of only NaN give NaN without a warning
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmin(grid, axis=1) if how == "min" else np.nanmean(grid, axis=1)
+
+
+def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
+                 frames: Mapping[str, Any], estimate_age_s: float | None,
+                 tone_index: np.ndarray | None, snr_db: np.ndarray | None,
+                 current_map=None, current_kind: str | None = None,
+                 maps_published: Mapping[str, int] | None = None,
+                 changes: Sequence[Change] = (), acks: Mapping[str, Mapping] | None = None,
+                 stale: bool = False, symbol_rate_hz: float | None = None,
+                 columns: int = 128) -> dict:
+    """Build the status message (see the module docstring for its layout).
+
+    Parameters
+    ----------
+    time_s : float
+        Core time of the message, s.
+    epoch : str
+        Daemon epoch.
+    driver : mapping
+        ``name``, ``state`` ("starting", "running", "ended", "failed"), ``error`` (str or None)
+        and ``counters`` (mapping reason -> count) of the estimate source.
+    frames : mapping
+        ``received``, ``accepted``, ``rejected`` (mapping reason -> count), ``decode_errors``,
+        ``last_frame`` and optionally ``tracking`` (estimator counters that are not frame
+        rejections: tone outliers held back, confirmed jumps, resets).
+    estimate_age_s : float or None
+        Age of the newest accepted estimate, s (None before the first).
+    tone_index, snr_db : ndarray or None
+        Data tones and tracked per-tone SNR in dB (None before the first estimate).
+    current_map : LoadMap or None
+        The map in force (last published).
+    current_kind : str or None
+        Decision kind that produced ``current_map``.
+    maps_published : mapping, optional
+        Maps published so far by decision kind.
+    changes : sequence of Change
+        Recent changes, oldest first (the caller bounds the length).
+    acks : mapping, optional
+        Per follower: ``seq`` last acknowledged and ``age_s`` since its acknowledgement.
+    stale : bool
+        Whether estimates are stale (no valid estimate within the configured time).
+    symbol_rate_hz : float or None
+        OFDM symbols per second (sample rate / (FFT size + CP)); gives ``rate_bps``.
+    columns : int
+        Largest number of band groups.
+
+    Returns
+    -------
+    dict
+        JSON-safe status message.
+    """
+    m = current_map
+    band: dict[str, Any] = {"tone_first": None, "tone_last": None, "tones": 0, "columns": 0,
+                            "snr_db": [], "bits": [], "power_db": []}
+    tones = None
+    if m is not None:
+        tones = np.asarray(m.tone_index)
+    elif tone_index is not None:
+        tones = np.asarray(tone_index)
+    if tones is not None and tones.size:
+        band.update(tone_first=int(tones[0]), tone_last=int(tones[-1]), tones=int(tones.size))
+        if snr_db is not None and np.asarray(snr_db).size == tones.size:
+            band["snr_db"] = _rounded_list(band_columns(snr_db, columns, "min"))
+        if m is not None:
+            band["bits"] = _rounded_list(band_columns(m.bits, columns, "mean"))
+            with np.errstate(divide="ignore"):
+                p_db = 10.0 * np.log10(np.asarray(m.power_lin, dtype=np.float64))
+            p_db[~np.isfinite(p_db)] = np.nan
+            band["power_db"] = _rounded_list(band_columns(p_db, columns, "mean"))
+        band["columns"] = max(len(band["snr_db"]), len(band["bits"]))
+
+    alarms = []
+    if stale:
+        alarms.append("stale")
+    if m is not None and m.fallback:
+        alarms.append("fallback")
+    if current_kind == "emergency":
+        alarms.append("emergency")
+    if driver.get("state") == "failed":
+        alarms.append("driver_failed")
+    if m is None:
+        alarms.append("no_map")
+
+    bits_per_symbol = int(m.total_bits) if m is not None else 0
+    rate_bps = (bits_per_symbol * float(symbol_rate_hz)
+                if symbol_rate_hz is not None and m is not None else None)
+    return {
+        "type": "status",
+        "version": STATUS_VERSION,
+        "time_s": finite(time_s),
+        "epoch": str(epoch),
+        "driver": {"name": str(driver.get("name", "")), "state": str(driver.get("state", "")),
+                   "error": driver.get("error"),
+                   "counters": {str(k): int(v) for k, v in
+                                dict(driver.get("counters", {})).items()}},
+        "frames": {"received": int(frames.get("received", 0)),
+                   "accepted": int(frames.get("accepted", 0)),
+                   "rejected": {str(k): int(v) for k, v in
+                                dict(frames.get("rejected", {})).items() if v},
+                   "decode_errors": int(frames.get("decode_errors", 0)),
+                   "last_frame": int(frames.get("last_frame", -1)),
+                   "tracking": {str(k): int(v) for k, v in
+                                dict(frames.get("tracking", {})).items() if v}},
+        "estimate_age_s": finite(estimate_age_s),
+        "band": band,
+        "rate": {"bits_per_symbol": bits_per_symbol, "rate_bps": finite(rate_bps, 1)},
+        "margin_db": finite(m.margin_db, 2) if m is not None else None,
+        "map": None if m is None else {
+            "seq": int(m.seq), "reason": str(m.reason), "kind": current_kind,
+            "fallback": bool(m.fallback), "effective_frame": int(m.effective_frame),
+            "created_s": finite(m.created_s)},
+        "maps_published": {str(k): int(v) for k, v in dict(maps_published or {}).items()},
+        "changes": [{"time_s": finite(c.time_s), "kind": c.kind, "reason": c.reason,
+                     "seq": int(c.seq)} for c in changes],
+        "acks": {str(k): {"seq": int(v.get("seq", -1)), "age_s": finite(v.get("age_s"))}
+                 for k, v in dict(acks or {}).items()},
+        "alarms": alarms,
+    }
+
+
+def summary_line(status: Mapping[str, Any]) -> str:
+    """One readable line of a status message (for logs, ``brimline run`` and plain terminals)."""
+    fr = status.get("frames", {})
+    rej = sum(dict(fr.get("rejected", {})).values()) + int(fr.get("decode_errors", 0))
+    m = status.get("map") or {}
+    rate = status.get("rate", {})
+    rbps = rate.get("rate_bps")
+    rate_txt = f"{rbps / 1e6:.2f} Mbit/s" if rbps is not None else "-"
+    margin = status.get("margin_db")
+    margin_txt = f"{margin:+.1f} dB" if margin is not None else "-"
+    alarms = status.get("alarms", [])
+    return (f"t={_num(status.get('time_s'), '.1f')}s frames={fr.get('received', 0)} "
+            f"rejected={rej} bits/sym={rate.get('bits_per_symbol', 0)} rate={rate_txt} "
+            f"margin={margin_txt} seq={m.get('seq', '-')} "
+            f"alarms={','.join(alarms) if alarms else 'none'}")
+
+
+def _num(v, fmt: str) -> str:
+    return "-" if v is None else format(v, fmt)

@@ -1,0 +1,257 @@
+"""``brimline plan``: reading SNR files, flags over config, output, and one-line errors."""
+
+from __future__ import annotations
+
+import json
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from brimline.daemon._cmd_plan import bit_chart, parse_bit_list, read_snr_db
+from brimline.daemon.cli import RF_CAUTION, main
+from brimline.daemon.errors import InputError
+from brimline.daemon.loading import load_margin, load_rate, qam_gap_db, waterfill
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "replay" / "kestrel_ridge_snr_db.txt"
+
+
+def run_plan(capsys, *args):
+    try:
+        code = main(["plan", *map(str, args)])
+    except SystemExit as exc:  # argparse errors
+        code = exc.code
+    out = capsys.readouterr()
+    return code, out.out, out.err
+
+
+def write(tmp_path, name, text):
+    p = tmp_path / name
+    p.write_text(text)
+    return p
+
+
+class TestDemoProfile:
+    def test_readme_command_works(self, capsys):
+        code, out, err = run_plan(capsys, DEMO)
+        assert code == 0 and err == ""
+        assert "bits per symbol" in out and "bits per tone" in out
+        assert "RF cautions" in out
+
+    def test_file_is_reproducible(self, tmp_path):
+        """The shipped profile is exactly what its seeded generator writes."""
+        sys.path.insert(0, str(ROOT / "replay"))
+        try:
+            import make_kestrel_ridge as gen
+        finally:
+            sys.path.pop(0)
+        snr_db = gen.profile(np.random.default_rng(gen.SEED))
+        np.testing.assert_allclose(read_snr_db(DEMO), snr_db, atol=0.005)
+        assert DEMO.read_text().splitlines()[0].startswith("snr_db")
+        assert snr_db.size == 256
+
+    def test_json_matches_the_library(self, capsys):
+        """Default settings: gap of uncoded QAM at SER 1e-7 plus the 3 dB target margin."""
+        code, out, _ = run_plan(capsys, DEMO, "--json")
+        assert code == 0
+        doc = json.loads(out)
+        snr = 10 ** (read_snr_db(DEMO) / 10)
+        ref = load_rate(snr, bits=range(9), gap_db=qam_gap_db(1e-7) + 3.0)
+        assert doc["bits"] == ref.bits.tolist()
+        assert doc["total_bits"] == ref.total_bits == sum(doc["bits"])
+        assert doc["total_power"] == pytest.approx(ref.total_power)
+        assert doc["margin_db"] == pytest.approx(ref.margin_db)
+        assert doc["gap_db"] == pytest.approx(qam_gap_db(1e-7) + 3.0)
+        assert len(doc["power"]) == 256
+
+
+class TestModesAndFlags:
+    def test_margin_mode(self, capsys):
+        code, out, _ = run_plan(capsys, DEMO, "--json", "--mode", "margin", "--target-bits",
+                                1200, "--gap-db", 9.8, "--margin-db", 0)
+        doc = json.loads(out)
+        assert code == 0 and doc["total_bits"] == 1200
+        ref = load_margin(10 ** (read_snr_db(DEMO) / 10), target_bits=1200, gap_db=9.8)
+        assert doc["margin_db"] == pytest.approx(ref.margin_db)
+
+    def test_waterfill_mode(self, capsys):
+        code, out, _ = run_plan(capsys, DEMO, "--json", "--mode", "waterfill", "--gap-db", 0,
+                                "--margin-db", 0, "--cap-db", 3)
+        doc = json.loads(out)
+        wf = waterfill(10 ** (read_snr_db(DEMO) / 10), gap_db=0.0, cap_db=3.0)
+        assert doc["water_level"] == pytest.approx(wf.water_level)
+        assert doc["capacity_bits"] == pytest.approx(wf.capacity_bits)
+        assert doc["waterfill_power"] == pytest.approx(wf.power.tolist())
+        assert doc["cap_db"] == 3.0
+        assert doc["total_power"] == pytest.approx(sum(doc["power"]))
+        assert all(p == 0 for b, p in zip(doc["bits"], doc["power"]) if b == 0)
+
+    def test_text_output_of_each_mode(self, capsys):
+        for extra in ([], ["--mode", "margin", "--target-bits", "900"], ["--mode", "waterfill"]):
+            code, out, _ = run_plan(capsys, DEMO, *extra)
+            assert code == 0 and "carries" in out
+
+    def test_holes_bits_and_target_ser(self, capsys):
+        code, out, _ = run_plan(capsys, DEMO, "--json", "--bits", "0,1,2,4,6,8",
+                                "--target-ser", "1e-6", "--budget-db", "-3")
+        doc = json.loads(out)
+        assert set(doc["bits"]) <= {0, 1, 2, 4, 6, 8}
+        assert doc["gap_db"] == pytest.approx(qam_gap_db(1e-6) + 3.0)
+        assert doc["total_power"] <= 256 * 10 ** -0.3 * (1 + 1e-9)
+
+    def test_nothing_loaded_gives_null_margin(self, capsys, tmp_path):
+        """Non-finite numbers become JSON null (documented in the command's docstring)."""
+        p = write(tmp_path, "dead.txt", "-150\n-150\n")
+        code, out, _ = run_plan(capsys, p, "--json")
+        doc = json.loads(out)
+        assert code == 0 and doc["total_bits"] == 0 and doc["margin_db"] is None
+        assert doc["cap_db"] is None
+        code, out, _ = run_plan(capsys, p)
+        assert "unlimited" in out
+
+    def test_config_then_flags(self, capsys, tmp_path):
+        cfg = write(tmp_path, "c.yaml", "loading:\n  mode: margin\n  target_bits: 700\n"
+                                        "  gap_db: 8.0\n  margin_db: 0.0\n")
+        code, out, _ = run_plan(capsys, DEMO, "--json", "--config", cfg)
+        doc = json.loads(out)
+        assert doc["mode"] == "margin" and doc["total_bits"] == 700
+        assert doc["gap_db"] == pytest.approx(8.0)
+        code, out, _ = run_plan(capsys, DEMO, "--json", "--config", cfg, "--mode", "rate",
+                                "--margin-db", "2")
+        doc = json.loads(out)
+        assert doc["mode"] == "rate" and doc["total_bits"] > 700
+        assert doc["gap_db"] == pytest.approx(10.0)
+
+    def test_npy_input(self, capsys, tmp_path):
+        p = tmp_path / "snr.npy"
+        np.save(p, np.array([20.0, 25.0, 5.0]))
+        code, out, _ = run_plan(capsys, p, "--json", "--gap-db", "9.8", "--margin-db", "0")
+        assert code == 0 and json.loads(out)["bits"] == load_rate(
+            10 ** (np.array([20.0, 25.0, 5.0]) / 10), gap_db=9.8).bits.tolist()
+
+    def test_comments_header_and_blank_lines(self, tmp_path):
+        p = write(tmp_path, "s.txt", "# made by hand\nsnr_db\n\n10.5  # first\n  -3\n\n7\n")
+        assert read_snr_db(p).tolist() == [10.5, -3.0, 7.0]
+
+    def test_help_carries_the_rf_caution(self, capsys):
+        code, out, _ = run_plan(capsys, "--help")
+        assert code == 0 and "RF caution" in out.replace("\n", " ")
+        assert RF_CAUTION.split()[0] in out
+
+
+class TestBitList:
+    def test_forms(self):
+        assert parse_bit_list("0,1,2,4,6,8") == [0, 1, 2, 4, 6, 8]
+        assert parse_bit_list("0-10") == list(range(11))
+        assert parse_bit_list("0-2,4,6") == [0, 1, 2, 4, 6]
+
+    @pytest.mark.parametrize("text", ["", "1,2", "0,2,2", "0,x", "0-17", "3-1", "0,-1"])
+    def test_bad(self, text):
+        with pytest.raises(InputError, match="--bits"):
+            parse_bit_list(text)
+
+
+def test_chart_shape():
+    bits = np.array([0] * 8 + [8] * 8 + [3] * 16)
+    rows = bit_chart(bits, width=16)
+    assert len(rows) == 8 + 2  # 8 bit levels, the base line, the tone span
+    assert "2 tones per column" in rows[-1]
+    assert all(len(r) == len(rows[0]) for r in rows[:-1])
+
+
+# --------------------------------------------------------------------------- one-line errors
+
+
+@pytest.mark.parametrize("name, text, args, match", [
+    ("empty.txt", "", [], r"empty.txt: no SNR values"),
+    ("comments.txt", "# only\n\n", [], r"no SNR values"),
+    ("nan.txt", "snr\n10\nnan\n", [], r"nan.txt line 3: SNR nan dB must be finite"),
+    ("inf.txt", "10\n-inf\n", [], r"inf.txt line 2: SNR -inf dB must be finite"),
+    ("text.txt", "header\n10\nabc\n", [], r"text.txt line 3: 'abc' is not an SNR in dB"),
+    ("huge.txt", "10\n900\n", [], r"line 2: SNR 900.0 dB is beyond"),
+    ("typo.txt", "# x\n1O.5\n12\n", [], r"typo.txt line 2: '1O.5' is not an SNR in dB"),
+    ("ok.txt", "10\n20\n", ["--bits", "0,3,2"], r"--bits='0,3,2' must be ascending"),
+    ("ok.txt", "10\n20\n", ["--mode", "margin"], r"--mode margin needs --target-bits"),
+    ("ok.txt", "10\n20\n", ["--mode", "margin", "--target-bits", "40"],
+     r"target_bits=40 is more than the \d+ bits"),
+    ("ok.txt", "10\n20\n", ["--target-ser", "0.9"], r"target_ser=0.9 must be in"),
+    ("ok.txt", "10\n20\n", ["--budget-db", "inf"], r"--budget-db=inf must be finite"),
+])
+def test_bad_input_is_one_line(capsys, tmp_path, name, text, args, match):
+    p = write(tmp_path, name, text)
+    code, out, err = run_plan(capsys, p, *args)
+    assert code == 2 and out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in err
+    assert re.search(match, lines[0]), lines[0]
+
+
+@pytest.mark.parametrize("args, match", [
+    (["--mode", "fast"], r"invalid choice: 'fast'"),
+    (["--gap-db", "3", "--target-ser", "1e-6"], r"not allowed with argument"),
+    (["--gap-db", "abc"], r"--gap-db: invalid float value"),
+])
+def test_bad_flags_are_one_line(capsys, args, match):
+    code, _, err = run_plan(capsys, DEMO, *args)
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert re.search(match, err), err
+
+
+def test_missing_directory_binary_npy(capsys, tmp_path):
+    for target, match in [(tmp_path / "nope.txt", "no such file"),
+                          (tmp_path, "is a directory"),
+                          (write(tmp_path, "b.txt", ""), "no SNR values")]:
+        code, _, err = run_plan(capsys, target)
+        assert code == 2 and match in err and len(err.strip().splitlines()) == 1
+    (tmp_path / "bin.txt").write_bytes(b"\xff\xfe\x00\x81")
+    code, _, err = run_plan(capsys, tmp_path / "bin.txt")
+    assert code == 2 and "not a text file" in err
+    np.save(tmp_path / "two.npy", np.zeros((2, 2)))
+    code, _, err = run_plan(capsys, tmp_path / "two.npy")
+    assert code == 2 and "1-D numeric array" in err
+    np.save(tmp_path / "nan.npy", np.array([1.0, np.nan]))
+    code, _, err = run_plan(capsys, tmp_path / "nan.npy")
+    assert code == 2 and "element 1" in err
+    (tmp_path / "junk.npy").write_bytes(b"not numpy")
+    code, _, err = run_plan(capsys, tmp_path / "junk.npy")
+    assert code == 2 and "not a readable .npy" in err
+
+
+@pytest.mark.parametrize("yaml_text, match", [
+    ("loading:\n  gap_db: '9.8'\n", r"line 2: loading.gap_db='9.8'"),
+    ("loading: [1, 2\n", r"YAML syntax error"),
+    ("loading:\n  bits: [0, 1, 1]\n", r"loading.bits=\[0, 1, 1\]"),
+    ("loading:\n  mode: margin\n", r"margin needs target_bits"),
+    ("loading:\n  cap_db: .nan\n", r"loading.cap_db"),
+    ("link: 3\n", r"link"),
+])
+def test_bad_config_is_one_line(capsys, tmp_path, yaml_text, match):
+    cfg = write(tmp_path, "c.yaml", yaml_text)
+    code, _, err = run_plan(capsys, DEMO, "--config", cfg)
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "Traceback" not in err
+    assert re.search(match, err), err
+
+
+def test_subprocess_success_and_error(tmp_path):
+    ok = subprocess.run([sys.executable, "-m", "brimline.daemon", "plan", str(DEMO), "--json"],
+                        capture_output=True, text=True, timeout=60)
+    assert ok.returncode == 0 and json.loads(ok.stdout)["total_bits"] > 0
+    bad = write(tmp_path, "bad.txt", "12\n13\nnot-a-number\n")
+    out = subprocess.run([sys.executable, "-m", "brimline.daemon", "plan", str(bad)],
+                         capture_output=True, text=True, timeout=60)
+    assert out.returncode == 2 and out.stdout == ""
+    assert out.stderr.strip().splitlines() == [
+        f"brimline plan: error: {bad} line 3: 'not-a-number' is not an SNR in dB"]
+
+
+def test_ascii_terminal(tmp_path):
+    """A terminal that cannot show block characters still gets a chart (no encoding crash)."""
+    out = subprocess.run([sys.executable, "-m", "brimline.daemon", "plan", str(DEMO)],
+                         capture_output=True, timeout=60, env={"PYTHONIOENCODING": "ascii",
+                                                               "PATH": "/usr/bin:/bin"})
+    assert out.returncode == 0, out.stderr
+    assert b"#" in out.stdout

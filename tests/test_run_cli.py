@@ -1,0 +1,157 @@
+"""``brimline run``: --check, bad configs, a bounded run's summary, and SIGTERM shutdown."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+import zmq
+
+from brimline.daemon import codec
+from brimline.daemon.cli import main
+from brimline.daemon.recording import RecordWriter
+from brimline.daemon.state import StateStore
+
+from _service_fakes import ScriptedDriver, loopback_config
+
+ROOT = Path(__file__).resolve().parents[1]
+SHIPPED = sorted((ROOT / "config").glob("*.yaml"))
+
+
+def _recording(path: Path, frames: int = 300, frame_s: float = 0.01) -> Path:
+    from brimline.drivers.ofdm import make_plan
+
+    plan = make_plan(**loopback_config().link.model_dump())
+    with ScriptedDriver(plan, frames=frames, frame_s=frame_s,
+                        fades=[(frames * frame_s / 2, 20, 60, 15.0)]) as drv, \
+            RecordWriter(path, topics=["estimate"]) as w:
+        for e in drv.frames():
+            w.write("estimate", e)
+    return path
+
+
+def _config(tmp_path: Path, recording: Path, *, realtime: bool = False) -> Path:
+    text = f"""
+driver:
+  kind: replay
+  replay:
+    path: {recording.name}
+    realtime: {str(realtime).lower()}
+publish:
+  map_endpoint: tcp://127.0.0.1:0
+  snapshot_endpoint: tcp://127.0.0.1:0
+  ack_endpoint: tcp://127.0.0.1:0
+  linger_s: 0.0
+status:
+  endpoint: tcp://127.0.0.1:0
+  rate_hz: 10.0
+service:
+  state_path: state.bin
+"""
+    p = tmp_path / "run.yaml"
+    p.write_text(text)
+    return p
+
+
+@pytest.mark.parametrize("path", SHIPPED, ids=[p.name for p in SHIPPED])
+def test_shipped_configs_pass_check(path, capsys):
+    assert main(["run", "--config", str(path), "--check"]) == 0
+    out = capsys.readouterr().out.strip().splitlines()
+    assert len(out) == 1 and ": OK: driver " in out[0]
+
+
+def test_the_three_configs_are_shipped():
+    assert {p.name for p in SHIPPED} >= {"demo.yaml", "replay.yaml", "radio.yaml"}
+
+
+@pytest.mark.parametrize("text, match", [
+    ("fallback:\n  power_db: 2.0\n", r"line 2: fallback.power_db=2.0: .*loading.budget_db"),
+    ("driver:\n  kind: replay\n", r"line 2: driver.kind='replay': needs a driver.replay"),
+    ("service:\n  lead_frames: -1\n", r"line 2: service.lead_frames=-1"),
+    ("fallback:\n  bits: 9\n", r"fallback.bits=9: is not one of loading.bits"),
+])
+def test_bad_config_is_one_line_and_exit_2(tmp_path, capsys, text, match):
+    import re
+
+    p = tmp_path / "bad.yaml"
+    p.write_text(text)
+    assert main(["run", "--config", str(p), "--check"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and re.search(match, err[0]), err
+
+
+def test_missing_replay_file_fails_check(tmp_path, capsys):
+    cfg = _config(tmp_path, tmp_path / "absent.brlog")
+    assert main(["run", "--config", str(cfg), "--check"]) == 2
+    assert "no such recording" in capsys.readouterr().err
+
+
+def test_replay_run_prints_live_lines_and_summary(tmp_path, capsys):
+    cfg = _config(tmp_path, _recording(tmp_path / "est.brlog"))
+    assert main(["run", "--config", str(cfg), "--duration", "10"]) == 0
+    out = capsys.readouterr().out
+    assert "run summary" in out
+    assert "300 received" in out and "maps published" in out
+    assert StateStore(tmp_path / "state.bin").load() is not None
+
+
+def test_sigterm_finishes_with_final_status_and_saved_state(tmp_path):
+    rec = _recording(tmp_path / "est.brlog", frames=3000, frame_s=0.01)  # 30 s, paced
+    cfg = _config(tmp_path, rec, realtime=True)
+    env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+    proc = subprocess.Popen([sys.executable, "-m", "brimline.daemon", "run", "--config",
+                             str(cfg), "--log-json"], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True, env=env, cwd=tmp_path)
+    ctx = zmq.Context()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.LINGER, 0)
+    sub.setsockopt(zmq.SUBSCRIBE, b"status")
+    try:
+        status_ep = None
+        deadline = time.monotonic() + 20
+        while status_ep is None and time.monotonic() < deadline:
+            line = proc.stderr.readline()
+            if not line:
+                break
+            rec_ = json.loads(line)
+            if rec_["message"].startswith("started:"):
+                status_ep = rec_["message"].rsplit("status on ", 1)[1].strip()
+        assert status_ep, "daemon did not log its endpoints"
+        sub.connect(status_ep)
+        assert sub.poll(5000), "no status from the daemon"
+        sub.recv_multipart()
+        proc.send_signal(signal.SIGTERM)
+        final = None
+        while sub.poll(3000):
+            _t, st = codec.decode(sub.recv_multipart())
+            final = st
+            if st["driver"]["state"] == "stopped":
+                break
+        out, err = proc.communicate(timeout=15)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(5)
+        sub.close()
+        ctx.term()
+    assert proc.returncode == 0, err
+    assert final is not None and final["driver"]["state"] == "stopped"
+    assert "run summary" in out
+    saved = StateStore(tmp_path / "state.bin").load()
+    assert saved is not None and saved.seq == final["map"]["seq"]
+    for line in err.strip().splitlines():  # every log line is one JSON object
+        json.loads(line)
+
+
+def test_value_rejected_by_a_part_is_one_line(tmp_path, capsys):
+    p = tmp_path / "bad.yaml"
+    p.write_text("change:\n  downshift_margin_db: 2.0\n  upshift_margin_db: 1.0\n")
+    assert main(["run", "--config", str(p), "--check"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "downshift_margin_db" in err[0]

@@ -1,0 +1,279 @@
+"""Sim, SigMF IQ and radio drivers: the driver contract, counters, bad input, config sections."""
+
+import inspect
+import math
+import threading
+import time
+
+import numpy as np
+import pytest
+
+from brimline.daemon.config import IqSection, RadioSection, SimSection, parse_section
+from brimline.daemon.errors import ConfigError, SourceError
+from brimline.daemon.records import LoadMap
+from brimline.drivers.base import Driver
+from brimline.drivers.iio import RadioDriver
+from brimline.drivers.iq import IqDriver, read_sigmf, write_sigmf
+from brimline.drivers.ofdm import make_plan
+from brimline.drivers.sim import SimDriver
+
+
+@pytest.fixture(scope="module")
+def plan():
+    return make_plan()
+
+
+def _map(plan, seq, bits=4, power=1.0):
+    n = plan.data_tones.size
+    return LoadMap(epoch="e1", seq=seq, effective_frame=0, created_s=0.0, plan_id=plan.plan_id,
+                   tone_index=plan.data_tones, bits=np.full(n, bits), power_lin=np.full(n, power),
+                   total_bits=bits * n, margin_db=3.0, gap_db=9.8)
+
+
+class TestSections:
+    @pytest.mark.parametrize("section, driver", [(SimSection, SimDriver), (IqSection, IqDriver),
+                                                 (RadioSection, RadioDriver)])
+    def test_fields_are_constructor_arguments(self, section, driver):
+        params = set(inspect.signature(driver.__init__).parameters) - {"self", "plan",
+                                                                       "map_provider"}
+        assert set(section.model_fields) == params
+
+    def test_sim_defaults_build_a_driver(self, plan):
+        with SimDriver(plan=plan, **SimSection().model_dump()) as drv:
+            assert isinstance(drv, Driver)
+
+    def test_sim_section_messages(self):
+        with pytest.raises(ConfigError, match=r"driver.sim.events.0.last_tone=1: .*first_tone=5"):
+            parse_section(SimSection, {"events": [{"start_s": 1.0, "first_tone": 5,
+                                                   "last_tone": 1}]},
+                          where="x.yaml", name="driver.sim")
+        with pytest.raises(ConfigError, match=r"driver.sim.frame_rate_hz=0.0: .*positive"):
+            parse_section(SimSection, {"frame_rate_hz": 0.0}, where="x.yaml", name="driver.sim")
+
+    def test_frame_rate_too_high(self, plan):
+        with pytest.raises(ConfigError, match=r"driver.sim.frame_rate_hz=5000"):
+            SimDriver(plan=plan, frame_rate_hz=5000)
+
+
+class TestSimDriver:
+    def test_estimates_follow_the_contract(self, plan):
+        with SimDriver(plan=plan, realtime=False, max_frames=6, start_s=100.0,
+                       frame_rate_hz=40.0, profile="epa", doppler_hz=5.0, snr_db=25.0) as drv:
+            ests = list(drv.frames())
+        assert len(ests) == 6 and drv.counters["frames"] == 6
+        for i, est in enumerate(ests):
+            assert est.frame == i and est.time_s == pytest.approx(100.0 + i / 40.0)
+            np.testing.assert_array_equal(est.tone_index, plan.data_tones)
+            assert est.plan_id == plan.plan_id and est.map_seq_seen == -1 and est.header_ok
+            assert abs(est.cfo_hz - 1500.0) < 20.0
+            with np.errstate(divide="ignore"):
+                np.testing.assert_allclose(
+                    est.snr_db, 10 * np.log10(np.abs(est.channel) ** 2 / est.noise_var),
+                    atol=1e-3)
+
+    def test_estimates_track_truth(self, plan):
+        """Per-tone SNR estimates against the simulator's true channel (EPA, 5 Hz Doppler)."""
+        with SimDriver(plan=plan, realtime=False, max_frames=8, profile="epa", doppler_hz=5.0,
+                       snr_db=25.0, seed=4) as drv:
+            errors = []
+            for est in drv.frames():
+                truth = drv.truth(est.frame)
+                good = truth.snr_db > 10.0
+                errors.append((est.snr_db - truth.snr_db)[good])
+        errors = np.concatenate(errors)
+        assert abs(np.median(errors)) < 0.5
+        assert np.sqrt(np.mean(errors ** 2)) < 1.5
+
+    def test_map_provider_sets_header_and_modulation(self, plan):
+        maps = iter([None, _map(plan, 7, bits=4), _map(plan, 7, bits=4), _map(plan, 8, bits=6)])
+        calls = []
+
+        def provider():
+            calls.append(1)
+            return next(maps)
+
+        with SimDriver(plan=plan, map_provider=provider, realtime=False, max_frames=4,
+                       profile="awgn", snr_db=35.0) as drv:
+            seen = [e.map_seq_seen for e in drv.frames()]
+        assert seen == [-1, 7, 7, 8] and len(calls) == 4
+        assert drv.counters["bits"] == plan.data_tones.size * plan.data_symbols * (2 + 4 + 4 + 6)
+        assert drv.counters["bit_errors"] == 0
+
+    def test_map_for_another_plan_is_rejected_and_counted(self, plan):
+        other = make_plan(used_tones_half=90)
+        with SimDriver(plan=plan, map_provider=lambda: _map(other, 3), realtime=False,
+                       max_frames=2) as drv:
+            seen = [e.map_seq_seen for e in drv.frames()]
+        assert seen == [-1, -1] and drv.counters["map_rejected"] == 2
+
+    def test_reproducible(self, plan):
+        runs = []
+        for _ in range(2):
+            with SimDriver(plan=plan, realtime=False, max_frames=3, seed=9) as drv:
+                runs.append([e.snr_db for e in drv.frames()])
+        for a, b in zip(*runs):
+            np.testing.assert_array_equal(a, b)
+
+    def test_realtime_pacing_and_close(self, plan):
+        drv = SimDriver(plan=plan, realtime=True, frame_rate_hz=100.0, max_frames=5)
+        t0 = time.monotonic()
+        assert len(list(drv.frames())) == 5
+        assert time.monotonic() - t0 >= 0.035
+        slow = SimDriver(plan=plan, realtime=True, frame_rate_hz=0.5)
+        got = []
+        worker = threading.Thread(target=lambda: got.extend(slow.frames()))
+        worker.start()
+        time.sleep(0.2)
+        t1 = time.monotonic()
+        slow.close()
+        worker.join(timeout=2.0)
+        assert not worker.is_alive() and time.monotonic() - t1 < 1.0 and len(got) == 1
+        slow.close()  # idempotent
+        with pytest.raises(RuntimeError, match="closed"):
+            slow.frames()
+
+    def test_fade_event_shows_in_estimates(self, plan):
+        events = [{"start_s": 0.05, "stop_s": None, "first_tone": -60, "last_tone": -20,
+                   "depth_db": 15.0}]
+        with SimDriver(plan=plan, realtime=False, max_frames=4, frame_rate_hz=40.0,
+                       profile="awgn", snr_db=30.0, events=events) as drv:
+            ests = list(drv.frames())
+        band = (plan.data_tones > -58) & (plan.data_tones < -22)
+        drop = np.median(ests[0].snr_db[band]) - np.median(ests[3].snr_db[band])
+        assert drop == pytest.approx(15.0, abs=1.5)
+
+    def test_low_snr_counts_instead_of_raising(self, plan):
+        with SimDriver(plan=plan, realtime=False, max_frames=10, profile="awgn",
+                       snr_db=-15.0) as drv:
+            list(drv.frames())
+        assert drv.counters["no_sync"] + drv.counters["crc_failed"] + drv.counters["frames"] >= 10
+
+
+# --------------------------------------------------------------------------- SigMF and IqDriver
+
+
+def _capture(plan, n_frames=4, gap=700, seed=2, bits=2):
+    sim = SimDriver(plan=plan, realtime=False, profile="epa", doppler_hz=5.0, snr_db=25.0,
+                    seed=seed, default_bits=bits)
+    pieces = []
+    for i in range(n_frames):
+        sent = sim.transmitter.frame(bits=np.full(plan.data_tones.size, bits),
+                                     power_lin=np.ones(plan.data_tones.size), map_seq=-1,
+                                     counter=i, rng=sim.rng)
+        pieces.append(sim.channel.transmit(sent.samples, 0.02 * i, tail_samples=gap))
+    return np.concatenate(pieces)
+
+
+class TestSigmf:
+    @pytest.mark.parametrize("datatype", ["cf32_le", "ci16_le"])
+    def test_round_trip(self, tmp_path, datatype, rng):
+        x = (0.3 * (rng.standard_normal(1000) + 1j * rng.standard_normal(1000))).astype(
+            np.complex64)
+        write_sigmf(tmp_path / "a", x, sample_rate_hz=1e6, center_hz=2.4e9, datatype=datatype)
+        rec = read_sigmf(tmp_path / "a.sigmf-meta")
+        assert rec.n_samples == 1000 and rec.sample_rate_hz == 1e6 and rec.center_hz == 2.4e9
+        if datatype == "cf32_le":
+            np.testing.assert_array_equal(rec.samples(0, 1000), x)
+        else:  # saturating at full scale, like an ADC
+            expected = np.clip(x.real, -1, 1) + 1j * np.clip(x.imag, -1, 1)
+            np.testing.assert_allclose(rec.samples(0, 1000), expected, atol=0.75 / 32767)  # half a step per axis
+
+    def test_meta_follows_sigmf_core(self, tmp_path):
+        """SigMF core fields: global core:datatype, core:sample_rate, core:version; captures
+        with core:sample_start (SigMF specification v1.0.0)."""
+        import json
+        write_sigmf(tmp_path / "b", np.zeros(4, np.complex64), sample_rate_hz=2e6)
+        meta = json.loads((tmp_path / "b.sigmf-meta").read_text())
+        assert meta["global"]["core:datatype"] == "cf32_le"
+        assert meta["global"]["core:version"] == "1.0.0"
+        assert meta["captures"][0]["core:sample_start"] == 0
+        assert (tmp_path / "b.sigmf-data").stat().st_size == 4 * 8
+
+    @pytest.mark.parametrize("meta, match", [
+        (None, r"no such SigMF metadata file"),
+        ("{not json", r"line 1: not valid JSON"),
+        ('{"global": {"core:datatype": "cu8", "core:sample_rate": 1e6}}', r"core:datatype='cu8'"),
+        ('{"global": {"core:datatype": "cf32_le"}}', r"core:sample_rate=None"),
+        ('{"global": {"core:datatype": "cf32_le", "core:sample_rate": 1e6}}', r"no such SigMF data"),
+    ])
+    def test_bad_files(self, tmp_path, meta, match):
+        if meta is not None:
+            (tmp_path / "c.sigmf-meta").write_text(meta)
+        with pytest.raises(SourceError, match=match):
+            read_sigmf(tmp_path / "c")
+
+
+class TestIqDriver:
+    @pytest.mark.parametrize("datatype, scale", [("cf32_le", 1.0), ("ci16_le", 0.1)])
+    def test_reads_every_frame(self, plan, tmp_path, datatype, scale):
+        x = _capture(plan) * scale
+        write_sigmf(tmp_path / "cap", x, sample_rate_hz=plan.sample_rate_hz, datatype=datatype)
+        with IqDriver(plan=plan, path=str(tmp_path / "cap"), start_s=10.0) as drv:
+            ests = list(drv.frames())
+        assert len(ests) == 4 and drv.counters["frames"] == 4
+        assert all(e.header_ok and e.valid and e.map_seq_seen == -1 for e in ests)
+        times = np.array([e.time_s for e in ests]) - 10.0
+        frame_block = plan.frame_len + 700
+        assert np.all(np.diff(times) * plan.sample_rate_hz > 0.9 * frame_block)
+        assert all(np.median(e.snr_db) > 15 for e in ests)
+
+    def test_noise_only_and_truncated(self, plan, tmp_path, rng):
+        x = _capture(plan, n_frames=2)
+        cut = x[: x.size - 1500]  # the second frame loses its end
+        noise = 0.05 * (rng.standard_normal(5 * plan.frame_len)
+                        + 1j * rng.standard_normal(5 * plan.frame_len))
+        write_sigmf(tmp_path / "n", np.concatenate([noise, cut]),
+                    sample_rate_hz=plan.sample_rate_hz)
+        with IqDriver(plan=plan, path=str(tmp_path / "n")) as drv:
+            ests = list(drv.frames())
+        assert len(ests) == 1
+        assert drv.counters["no_sync"] >= 3 and drv.counters["truncated"] == 1
+
+    def test_clipped_capture_is_flagged(self, plan, tmp_path):
+        write_sigmf(tmp_path / "k", _capture(plan, n_frames=2) * 4.0,
+                    sample_rate_hz=plan.sample_rate_hz, datatype="ci16_le")
+        with IqDriver(plan=plan, path=str(tmp_path / "k")) as drv:
+            ests = list(drv.frames())
+        assert ests and not any(e.valid for e in ests) and drv.counters["clipped"] == len(ests)
+
+    def test_sample_rate_mismatch(self, plan, tmp_path):
+        write_sigmf(tmp_path / "r", np.zeros(10, np.complex64), sample_rate_hz=1e6)
+        with pytest.raises(ConfigError, match=r"core:sample_rate=1e\+06 Hz differs"):
+            IqDriver(plan=plan, path=str(tmp_path / "r"))
+
+    def test_empty_recording(self, plan, tmp_path):
+        write_sigmf(tmp_path / "e", np.zeros(0, np.complex64), sample_rate_hz=plan.sample_rate_hz)
+        with IqDriver(plan=plan, path=str(tmp_path / "e")) as drv:
+            assert list(drv.frames()) == []
+
+
+# --------------------------------------------------------------------------- radio
+
+
+class TestRadioDriver:
+    def test_missing_library_message(self, plan, monkeypatch):
+        import builtins
+        real_import = builtins.__import__
+
+        def no_adi(name, *args, **kwargs):
+            if name == "adi":
+                raise ImportError("No module named 'adi'")
+            return real_import(name, *args, **kwargs)
+
+        monkeypatch.setattr(builtins, "__import__", no_adi)
+        monkeypatch.delitem(__import__("sys").modules, "adi", raising=False)
+        with pytest.raises(SourceError, match=r"install with pip install 'brimline\[sdr\]'"):
+            RadioDriver(plan=make_plan(center_hz=915e6))
+
+    def test_needs_center_frequency(self, plan):
+        with pytest.raises(ConfigError, match=r"link.center_hz must be set"):
+            RadioDriver(plan=plan)
+
+    @pytest.mark.hardware
+    def test_live_radio(self):
+        pytest.importorskip("adi")
+        with RadioDriver(plan=make_plan(center_hz=2.4e9), transmit=True,
+                         tx_attenuation_db=60.0) as drv:
+            for est in drv.frames():
+                assert est.tone_index.size
+                break

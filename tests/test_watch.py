@@ -1,0 +1,113 @@
+"""The operators' view: pure rendering of a status dict, and the plain-line fallback."""
+
+from __future__ import annotations
+
+import io
+import queue
+import threading
+
+import numpy as np
+from rich.console import Console
+
+from brimline.daemon.records import LoadMap
+from brimline.daemon.status import Change, build_status
+from brimline.daemon.watch import band_chart, render, watch
+
+from _service_fakes import ScriptedDriver, loopback_config
+
+
+def _text(renderable, width=110) -> str:
+    console = Console(width=width, record=True, file=io.StringIO(), force_terminal=False)
+    console.print(renderable)
+    return console.export_text()
+
+
+def _status(**kw):
+    tones = np.r_[-50:0, 1:51]
+    snr = np.full(100, 24.0)
+    snr[10:30] = 3.0
+    bits = np.where(snr > 10, 6, 0)
+    m = LoadMap(epoch="c0ffee", seq=12, effective_frame=340, created_s=7.5, plan_id="p",
+                tone_index=tones, bits=bits, power_lin=np.where(bits > 0, 1.0, 0.0),
+                total_bits=int(bits.sum()), margin_db=2.4, gap_db=12.8,
+                reason="20 tones below downshift margin")
+    args = dict(time_s=8.0, epoch="c0ffee",
+                driver={"name": "sim", "state": "running", "counters": {"frames": 400}},
+                frames={"received": 400, "accepted": 396, "rejected": {"non_finite": 4},
+                        "last_frame": 336},
+                estimate_age_s=0.02, tone_index=tones, snr_db=snr, current_map=m,
+                current_kind="emergency", maps_published={"reload": 3, "emergency": 1},
+                changes=[Change(2.0, "reload", "first map", 9),
+                         Change(7.5, "emergency", "20 tones below downshift margin", 12)],
+                acks={"followers": {"seq": 12, "age_s": 0.1}}, symbol_rate_hz=1e5)
+    args.update(kw)
+    return build_status(**args)
+
+
+def test_render_shows_figures_history_and_alarms():
+    text = _text(render(_status()))
+    for needed in ("400 in, 396 used", "non_finite 4", "+2.4 dB", "seq 12", "emergency",
+                   "20 tones below downshift margin", "EMERGENCY", "bits/symbol", "Mbit/s",
+                   "acked seq 12"):
+        assert needed in text, needed
+
+
+def test_band_chart_marks_faded_tones_as_unloaded():
+    st = _status()
+    chart = band_chart(st["band"]["snr_db"], st["band"]["bits"]).plain
+    bits_row = [line for line in chart.splitlines() if line.startswith("bits")][0]
+    cells = bits_row[len("bits    "):]
+    assert len(cells) == 100
+    assert set(cells[10:30]) == {"·"} and set(cells[:10]) == {"6"}
+
+
+def test_render_without_status_says_so():
+    text = _text(render(None, endpoint="tcp://127.0.0.1:7999", silent_s=4.0))
+    assert "No status yet from tcp://127.0.0.1:7999" in text
+
+
+def test_fallback_and_stale_alarms_are_named():
+    text = _text(render(_status(stale=True, current_kind="fallback")))
+    assert "STALE" in text and "no valid estimate" in text
+
+
+def test_once_without_daemon_is_a_clear_message_not_a_crash():
+    out = io.StringIO()
+    code = watch("tcp://127.0.0.1:1", once=True, duration_s=0.3, out=out)
+    assert code == 1
+    assert "no status from tcp://127.0.0.1:1" in out.getvalue()
+
+
+def test_plain_lines_from_a_running_daemon():
+    """Without a terminal the view prints one readable line per status message."""
+    from brimline.daemon.service import Service
+
+    endpoint: queue.Queue = queue.Queue()
+    stop = threading.Event()
+
+    def daemon():
+        cfg = loopback_config()
+        from brimline.drivers.ofdm import make_plan
+
+        drv = ScriptedDriver(make_plan(**cfg.link.model_dump()), frames=100_000,
+                             hold_at=100, release=stop)
+        with Service(cfg, driver=drv) as svc:
+            endpoint.put(svc.endpoints["status"])
+            svc.run(5.0, stop=stop)
+
+    t = threading.Thread(target=daemon)
+    t.start()
+    try:
+        out = io.StringIO()
+        assert watch(endpoint.get(timeout=5), duration_s=0.8, out=out) == 0
+    finally:
+        stop.set()
+        t.join(5)
+    lines = [ln for ln in out.getvalue().splitlines() if ln.startswith("t=")]
+    assert lines and "frames=" in lines[-1] and "seq=" in lines[-1]
+
+
+def test_chart_fits_a_narrow_terminal():
+    text = _text(render(_status(), width=60), width=60)
+    bits_rows = [ln for ln in text.splitlines() if "bits " in ln and "·" in ln]
+    assert bits_rows and all(len(ln) <= 60 for ln in text.splitlines())
