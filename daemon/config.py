@@ -334,7 +334,7 @@ class EstimatorSection(Section):
     """
 
     tau_s: float = Field(
-        0.25, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
+        0.1, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
     std_tau_s: float = Field(
         1.0, description="time constant of the per-tone variance tracker, s")
     std_init_db: float = Field(
@@ -414,11 +414,14 @@ class ChangeSection(Section):
     min_gain_bits: int = Field(
         4, description="smallest gain in bits per symbol worth an upgrade")
     down_dwell_s: float = Field(
-        0.1, description="minimum time since the last map before a downgrade, s")
+        0.1, description="minimum time since the last map before a downgrade (bit swap or "
+                         "reload), s")
     up_dwell_s: float = Field(
-        5.0, description="minimum time since the last map before an upgrade, s")
+        1.0, description="an upgrade is made once it has been worth it (see upshift_margin_db) "
+                         "for this long without a break; upgrades, emergencies and first maps "
+                         "are at least this far apart, s")
     upgrade_check_s: float = Field(
-        0.25, description="after the upgrade dwell, how often an upgrade is evaluated, s")
+        0.25, description="how often an upgrade is evaluated (one loader run), s")
     max_maps_per_s: float = Field(
         10.0, description="no two maps closer than 1/this, emergencies included, 1/s")
     swap_max_tones: int = Field(
@@ -426,8 +429,9 @@ class ChangeSection(Section):
     swap_max_loss_bits: int = Field(
         4, description="a bit swap may lose at most this many bits per symbol, else reload")
     emergency_fraction: float = Field(
-        0.25, description="this fraction of loaded tones below the downshift margin at once "
-                          "triggers an emergency downshift")
+        0.25, description="this fraction of loaded tones below the downshift margin at once, "
+                          "with the mean SNR down by at least -downshift_margin_db, triggers an "
+                          "emergency downshift")
     emergency_drop_db: float = Field(
         6.0, description="a drop of the mean tracked SNR by this much since the current map "
                          "triggers an emergency downshift, dB")

@@ -12,6 +12,7 @@ Per tone and per accepted frame, with ``x`` the frame's SNR in dB and ``m`` the 
     |d| > max(outlier_db, outlier_sigmas * std)  -> outlier, held back (see below)
     m    += alpha * d
     var   = (1 - beta) var + beta * d**2 * (2 - alpha) / 2,   beta = 1 - exp(-dt / std_tau_s)
+                                                      (at least 1 / frames so far, at start)
     P     = (1 - alpha)**2 P + alpha**2 var          variance of m itself
     effective = m - backoff_sigmas * sqrt(var + P)
 
@@ -116,7 +117,7 @@ class Estimator:
     True
     """
 
-    def __init__(self, *, tau_s: float = 0.25, std_tau_s: float = 1.0, std_init_db: float = 3.0,
+    def __init__(self, *, tau_s: float = 0.1, std_tau_s: float = 1.0, std_init_db: float = 3.0,
                  backoff_sigmas: float = 1.0, outlier_db: float = 6.0,
                  outlier_sigmas: float = 4.0, confirm_frames: int = 3,
                  frame_outlier_fraction: float = 0.5, stale_s: float = 5.0,
@@ -266,7 +267,9 @@ class Estimator:
     def _smooth(self, estimate: Estimate, now_s: float) -> str | None:
         dt = estimate.time_s - self._time_s
         alpha = -math.expm1(-dt / self.tau_s)
-        beta = -math.expm1(-dt / self.std_tau_s)
+        # Until the variance window is full, a plain running mean over the frames so far (the
+        # prior std_init_db counting as one frame): the spread is learnt within a few frames.
+        beta = max(-math.expm1(-dt / self.std_tau_s), 1.0 / (self._frames + 1))
         x = estimate.snr_db.astype(np.float64)
         mean = self._mean_db
         d = x - mean

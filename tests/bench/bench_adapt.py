@@ -5,7 +5,9 @@ Channels are static (no Doppler). ``pipeline_fps_1024`` and the churn figures us
 Table B.2.1-3; Rayleigh taps, seeded) at 15 kHz tone spacing, with 1 dB of Gaussian estimation
 noise in dB per tone and frame. ``snr_rmse_db_smoothed`` runs the link model's transmitter,
 channel (EVA, static) and receiver (brimline.drivers.sim) and compares the estimator's output
-with the simulator's true per-tone SNR. Frames are 100 per second of simulated time; no sockets.
+with the simulator's true per-tone SNR. The ``fading_*`` figures (information, no goal) run the
+link model's channel (EVA, 0.2 Hz and 1 Hz Doppler) and count map changes, rate and tone-frames
+left below the raw SNR gap. Frames are 100 per second of simulated time; no sockets.
 """
 
 from __future__ import annotations
@@ -27,6 +29,15 @@ GOALS = {
     "churn_vs_nohyst": ">= 10 (changes without change control / max(changes with it, 1))",
     "hyst_rate_loss": "<= 0.02 (1 - mean rate with / without change control)",
     "snr_rmse_db_smoothed": "<= 0.5 dB (EVA static, 20 dB, link-model receiver, after 2 s)",
+    "fading_changes_per_min": "info: maps/min, EVA 0.2 Hz Doppler, 25 dB, 1 dB noise",
+    "fading_nohyst_changes_per_min": "info: the same without change control",
+    "fading_rate_ratio": "info: mean rate with / without change control (fading)",
+    "fading_outage_cc": "info: loaded tone-frames below the raw gap, with change control",
+    "fading_outage_nohyst": "info: the same without change control",
+    "fading1hz_changes_per_min": "info: as fading_*, 1 Hz Doppler (faster fading)",
+    "fading1hz_rate_ratio": "info",
+    "fading1hz_outage_cc": "info",
+    "fading1hz_outage_nohyst": "info",
 }
 
 FPS = 100.0
@@ -120,6 +131,69 @@ def _rmse_link(seconds, settle_s, seeds):
     return float(np.sqrt(np.mean(np.square(errs))))
 
 
+def _fading(seconds, seed=21, doppler_hz=0.2, estimator=None, change=None):
+    """Slow fading through the link model's channel (truth only) with 1 dB estimation noise.
+
+    The map decided on frame k is used for frame k + 1; a loaded tone whose true SNR there gives
+    a margin below minus the loading target margin sits below the raw SNR gap, i.e. above the
+    target error rate: counted as an outage tone-frame.
+    """
+    from brimline.drivers.channel import LinkChannel
+    from brimline.drivers.ofdm import make_plan
+
+    plan = make_plan()
+    channel = LinkChannel(plan, profile="eva", doppler_hz=doppler_hz, snr_db=25.0,
+                          rng=np.random.default_rng(seed))
+    noise = np.random.default_rng(seed + 1)
+    section = LoadingSection()
+    loader = section.loader()
+    floor_db = -section.margin_db
+    est = Estimator(**{**EstimatorSection().model_dump(), **(estimator or {})})
+    cc = ChangeControl(loader, **{**ChangeSection().model_dump(), **(change or {})})
+    n = plan.data_tones.size
+    ones = np.ones(n)
+    on = off = 0
+    bits_on = bits_off = 0.0
+    out_on = out_off = loaded_on = loaded_off = 0
+    prev_plain = None
+    pending = None
+    for k in range(int(seconds * FPS)):
+        t = k / FPS
+        truth = channel.truth(t).snr_db
+        if pending is not None:  # the maps decided on the previous frame meet this channel
+            for alloc, is_cc in pending:
+                m = loader.tone_margin_db(alloc.bits, alloc.power, 10 ** (truth / 10))
+                loaded = alloc.bits > 0
+                bad = int(np.count_nonzero(loaded & (m < floor_db)))
+                if is_cc:
+                    out_on += bad
+                    loaded_on += int(np.count_nonzero(loaded))
+                else:
+                    out_off += bad
+                    loaded_off += int(np.count_nonzero(loaded))
+        e = Estimate(frame=k, time_s=t, plan_id="fade", tone_index=plan.data_tones,
+                     channel=ones, noise_var=ones, snr_db=truth + noise.normal(0.0, 1.0, n))
+        est.update(e, t)
+        tr = est.tracked(t)
+        d = cc.decide(tr, t)
+        plain = loader(10 ** (tr.effective_snr_db / 10))
+        if k > 0:
+            on += d.kind is not DecisionKind.KEEP
+            off += prev_plain is not None and not np.array_equal(plain.bits, prev_plain.bits)
+        prev_plain = plain
+        bits_on += cc.current.total_bits
+        bits_off += plain.total_bits
+        pending = ((cc.current, True), (plain, False))
+    minutes = seconds / 60.0
+    return {
+        "fading_changes_per_min": on / minutes,
+        "fading_nohyst_changes_per_min": off / minutes,
+        "fading_rate_ratio": bits_on / bits_off,
+        "fading_outage_cc": out_on / max(loaded_on, 1),
+        "fading_outage_nohyst": out_off / max(loaded_off, 1),
+    }
+
+
 def run(quick: bool) -> dict[str, float]:
     truth = eva_snr_db(1024, 25.0, seed=11)
     n_fps = 600 if quick else 3000
@@ -133,6 +207,10 @@ def run(quick: bool) -> dict[str, float]:
     figures["hyst_rate_loss"] = loss
     figures["snr_rmse_db_smoothed"] = _rmse_link(3.0 if quick else 5.0, 2.0,
                                                  (1,) if quick else (1, 2, 3))
+    figures.update(_fading(30.0 if quick else 120.0))
+    fast = _fading(20.0 if quick else 60.0, doppler_hz=1.0)
+    for key in ("changes_per_min", "rate_ratio", "outage_cc", "outage_nohyst"):
+        figures[f"fading1hz_{key}"] = fast[f"fading_{key}"]
     return figures
 
 
