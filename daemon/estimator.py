@@ -218,11 +218,13 @@ class Estimator:
     def _check(self, estimate: Estimate) -> str | None:
         if not estimate.valid:
             return "invalid"
-        if not (math.isfinite(estimate.time_s) and np.isfinite(estimate.snr_db).all()
-                and np.isfinite(estimate.noise_var).all()
-                and np.isfinite(estimate.channel.view(np.float32)).all()):
+        # A float64 sum is finite exactly when every (float32) term is: one pass per array.
+        if not (math.isfinite(estimate.time_s)
+                and math.isfinite(estimate.snr_db.sum(dtype=np.float64))
+                and math.isfinite(estimate.noise_var.sum(dtype=np.float64))
+                and math.isfinite(estimate.channel.view(np.float32).sum(dtype=np.float64))):
             return "non_finite"
-        if not (estimate.noise_var > 0).all():
+        if estimate.noise_var.size and not estimate.noise_var.min() > 0:
             return "noise_var"
         return None
 
@@ -355,7 +357,8 @@ class Estimator:
             snr_db = _agree_smooth(snr_db, self.tone_window, self.tone_agree_db)
         std_db = np.sqrt(self._var_db2)
         mean_std_db = np.sqrt(self._mean_var_db2)
-        spread = np.hypot(std_db, mean_std_db)
+        spread = self._var_db2 + self._mean_var_db2
+        np.sqrt(spread, out=spread)
         spread *= self.backoff_sigmas
         return Tracked(
             plan_id=self._plan_id, tone_index=self._tones, snr_db=snr_db, std_db=std_db,
@@ -378,15 +381,17 @@ def _agree_smooth(values_db: np.ndarray, window: int, agree_db: float) -> np.nda
     neighbours only in pairs leaves a linear slope unbiased (a one-sided neighbour on a slope
     would pull the tone towards it, and toggle as the values wander near the threshold).
     """
-    n = values_db.size
-    acc = values_db.copy()
+    v = values_db
+    n = v.size
+    acc = v.copy()
     count = np.ones(n)
     ok = None
     for shift in range(1, min(window, (n - 1) // 2) + 1):
-        centre = values_db[shift:n - shift]
-        lo, hi = values_db[:n - 2 * shift], values_db[2 * shift:]
-        pair_ok = (np.abs(lo - centre) <= agree_db) & (np.abs(hi - centre) <= agree_db)
+        step = np.abs(v[shift:] - v[:-shift])          # |v[i + shift] - v[i]|
+        pair_ok = np.maximum(step[:n - 2 * shift], step[shift:]) <= agree_db
         ok = pair_ok if ok is None else ok[1:-1] & pair_ok
-        acc[shift:n - shift] += np.where(ok, lo + hi, 0.0)
-        count[shift:n - shift] += 2 * ok
+        pair = v[:n - 2 * shift] + v[2 * shift:]
+        pair *= ok
+        acc[shift:n - shift] += pair
+        count[shift:n - shift] += 2.0 * ok
     return acc / count

@@ -7,7 +7,8 @@ noise in dB per tone and frame. ``snr_rmse_db_smoothed`` runs the link model's t
 channel (EVA, static) and receiver (brimline.drivers.sim) and compares the estimator's output
 with the simulator's true per-tone SNR. The ``fading_*`` figures (information, no goal) run the
 link model's channel (EVA, 0.2 Hz and 1 Hz Doppler) and count map changes, rate and tone-frames
-left below the raw SNR gap. Frames are 100 per second of simulated time; no sockets.
+left below the raw SNR gap. Frames are 100 per second of simulated time; no sockets. Timings are the best of three passes
+(the machine is shared).
 """
 
 from __future__ import annotations
@@ -25,6 +26,7 @@ from brimline.daemon.records import DecisionKind, Estimate
 GOALS = {
     "pipeline_fps_1024": ">= 5000 frames/s (estimator + change control + loading, 1024 tones)",
     "pipeline_fps_1024_reload": "info: the same with a full reload every frame",
+    "estimator_us_1024": "well under 100 us (Estimator.update + tracked, 1024 tones)",
     "churn_static_per_min": "<= 6 map changes/min (static channel, 1 dB noise, after 10 s)",
     "churn_vs_nohyst": ">= 10 (changes without change control / max(changes with it, 1))",
     "hyst_rate_loss": "<= 0.02 (1 - mean rate with / without change control)",
@@ -75,14 +77,33 @@ def _pipeline_fps(truth_db, n_frames, *, reload_every_frame):
     for e in frames[:50]:  # warm up outside the timing
         est.update(e, e.time_s)
         cc.decide(est.tracked(e.time_s), e.time_s)
-    t0 = time.perf_counter()
-    for e in frames[50:]:
+    best = math.inf
+    for part in np.array_split(np.arange(50, len(frames)), 3):  # best of three passes
+        t0 = time.perf_counter()
+        for k in part:
+            e = frames[k]
+            est.update(e, e.time_s)
+            tr = est.tracked(e.time_s)
+            if reload_every_frame:
+                loader(10 ** (tr.effective_snr_db / 10))
+            cc.decide(tr, e.time_s)
+        best = min(best, (time.perf_counter() - t0) / part.size)
+    return 1.0 / best
+
+
+def _estimator_us(truth_db, n_frames):
+    frames = list(_frames(truth_db, n_frames, 1.0, seed=6))
+    est = Estimator(**EstimatorSection().model_dump())
+    for e in frames[:50]:
         est.update(e, e.time_s)
-        tr = est.tracked(e.time_s)
-        if reload_every_frame:
-            loader(10 ** (tr.effective_snr_db / 10))
-        cc.decide(tr, e.time_s)
-    return (len(frames) - 50) / (time.perf_counter() - t0)
+    best = math.inf
+    for part in np.array_split(np.arange(50, len(frames)), 3):  # best of three passes
+        t0 = time.perf_counter()
+        for k in part:
+            est.update(frames[k], frames[k].time_s)
+            est.tracked(frames[k].time_s)
+        best = min(best, (time.perf_counter() - t0) / part.size)
+    return best * 1e6
 
 
 def _churn(truth_db, settle_s, measure_s):
@@ -200,6 +221,7 @@ def run(quick: bool) -> dict[str, float]:
     figures = {
         "pipeline_fps_1024": _pipeline_fps(truth, n_fps, reload_every_frame=False),
         "pipeline_fps_1024_reload": _pipeline_fps(truth, n_fps // 3, reload_every_frame=True),
+        "estimator_us_1024": _estimator_us(truth, n_fps),
     }
     per_min, ratio, loss = _churn(truth, 10.0, 30.0 if quick else 120.0)
     figures["churn_static_per_min"] = per_min
