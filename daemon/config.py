@@ -328,9 +328,9 @@ def _non_negative(name: str, v: float) -> float:
 class EstimatorSection(Section):
     """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator.Estimator).
 
-    Defaults suit a slowly fading indoor link (people moving, Doppler of a hertz or two, so a
-    coherence time of a few hundred milliseconds) estimated at tens to hundreds of frames per
-    second with about 1 dB of per-frame estimation noise.
+    Defaults suit a slowly fading indoor link (people moving about: Doppler of a few tenths of a
+    hertz, a coherence time of a second or more) estimated at tens to hundreds of frames per
+    second with about 1 dB of per-frame estimation noise. Faster fading wants a shorter tau_s.
     """
 
     tau_s: float = Field(
