@@ -222,6 +222,30 @@ def _glyphs() -> tuple[str, str, str]:
     return "\u2588", "\u2584", "\u00b7"
 
 
+def _columns(n: int, width: int) -> tuple[np.ndarray, int]:
+    """Start indices of the chart's columns (whole tones per column) and tones per column."""
+    per = -(-n // max(1, width))
+    return np.arange(0, n, per), per
+
+
+def _column_means(values: np.ndarray, starts: np.ndarray) -> np.ndarray:
+    sizes = np.diff(np.append(starts, values.size))
+    return np.add.reduceat(values.astype(np.float64), starts) / sizes
+
+
+def snr_strip(snr_db: np.ndarray, *, width: int = 64) -> str:
+    """One row of text: each column's mean SNR as a bar height between the profile's extremes."""
+    starts, _ = _columns(snr_db.size, width)
+    mean = _column_means(snr_db, starts)
+    full, _, _ = _glyphs()
+    ramp = " \u2581\u2582\u2583\u2584\u2585\u2586\u2587\u2588" if full != "#" \
+        else " .:-=+*#%@"
+    lo, hi = float(mean.min()), float(mean.max())
+    level = np.zeros(mean.size, dtype=int) if hi <= lo else \
+        np.rint((mean - lo) / (hi - lo) * (len(ramp) - 1)).astype(int)
+    return "".join(ramp[k] for k in level)
+
+
 def bit_chart(bits: np.ndarray, *, width: int = 64) -> list[str]:
     """Bits per tone across the band as rows of text, one column per group of tones.
 
@@ -230,11 +254,8 @@ def bit_chart(bits: np.ndarray, *, width: int = 64) -> list[str]:
     """
     full, half, idle = _glyphs()
     n = bits.size
-    per = -(-n // max(1, width))  # whole tones per column
-    edges = np.arange(0, n + per, per).clip(max=n)
-    edges = np.unique(edges)
-    sums = np.add.reduceat(bits.astype(np.float64), edges[:-1])
-    mean = sums / np.diff(edges)
+    starts, per = _columns(n, width)
+    mean = _column_means(bits, starts)
     top = max(int(np.ceil(mean.max())), 1)
     rows = []
     for level in range(top, 0, -1):
@@ -311,7 +332,11 @@ def run(args) -> int:
     lines.append("")
     lines.append("  bits per tone")
     width = max(16, min(96, shutil.get_terminal_size((80, 24)).columns - 8))
-    lines.extend("  " + row for row in bit_chart(alloc.bits, width=width))
+    chart = bit_chart(alloc.bits, width=width)
+    lines.extend("  " + row for row in chart[:-1])
+    lines.append(f"  snr |{snr_strip(snr_db, width=width)}|  {snr_db.min():.0f} to "
+                 f"{snr_db.max():.0f} dB")
+    lines.append("  " + chart[-1])
     lines.append("")
     lines.append("  A plan only; nothing is transmitted. Before going on air read the RF cautions "
                  "(brimline plan --help).")

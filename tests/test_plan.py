@@ -255,3 +255,12 @@ def test_ascii_terminal(tmp_path):
                                                                "PATH": "/usr/bin:/bin"})
     assert out.returncode == 0, out.stderr
     assert b"#" in out.stdout
+
+
+def test_snr_strip_follows_the_profile():
+    from brimline.daemon._cmd_plan import snr_strip
+
+    strip = snr_strip(np.array([0.0] * 4 + [30.0] * 4 + [15.0] * 4), width=12)
+    assert len(strip) == 12
+    assert strip[0] == " " and strip[4] in "\u2588@" and strip[0] != strip[8] != strip[4]
+    assert snr_strip(np.full(5, 20.0), width=5) == " " * 5
