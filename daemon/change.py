@@ -51,6 +51,7 @@ from brimline.daemon.records import Allocation, Decision, DecisionKind, Tracked
 __all__ = ["ChangeControl"]
 
 _KEEP = DecisionKind.KEEP
+_MAX_SNR_DB = 100.0   # no tone is better than this; keeps the linear SNR finite
 
 
 class ChangeControl:
@@ -138,7 +139,7 @@ class ChangeControl:
         self._cap_lin = 10.0 ** (float(getattr(loader, "cap_db", math.inf)) / 10.0)
         self._counters = dict.fromkeys(
             ("keep", "bit_swap", "reload", "emergency", "fallback", "forced", "upgrade",
-             "held_dwell", "held_rate", "infeasible"), 0)
+             "held_dwell", "held_rate", "infeasible", "bad_input"), 0)
         self._current: Allocation | None = None
         self._margin_at_0db = None      # tone margins of the current map at 0 dB SNR
         self._n_loaded = 0
@@ -160,7 +161,8 @@ class ChangeControl:
     @property
     def counters(self) -> dict[str, int]:
         """Decisions by kind, ``upgrade`` reloads, changes held by ``held_dwell`` /
-        ``held_rate``, ``forced`` maps and ``infeasible`` loads (margin mode fell back to rate)."""
+        ``held_rate``, ``forced`` maps, ``infeasible`` loads (margin mode fell back to rate) and
+        ``bad_input`` (a tracked view with NaN or inf, kept without a change)."""
         return dict(self._counters)
 
     def force(self, allocation: Allocation, kind: DecisionKind | str, reason: str,
@@ -212,6 +214,9 @@ class ChangeControl:
         """
         now_s = float(now_s)
         eff_db = tracked.effective_snr_db
+        if not (math.isfinite(eff_db.sum()) and math.isfinite(tracked.snr_db.sum())):
+            return self._hold("bad_input", "tracked SNR is not finite: map kept")
+        eff_db = np.minimum(eff_db, _MAX_SNR_DB)
         mean_db = float(tracked.snr_db.mean())
         cur = self._current
         since_map = now_s - self._changed_s

@@ -234,6 +234,18 @@ class TestDecisions:
         with pytest.raises(ValueError, match="keep"):
             cc.force(safe, "keep", "", 2.0)
 
+    def test_non_finite_tracked_view_keeps_the_map(self):
+        cc = ChangeControl(loader())
+        first = cc.decide(tracked(profile()), 0.0).allocation
+        bad = profile()
+        bad[3] = np.nan
+        d = cc.decide(tracked(bad), 1.0)
+        assert d.kind is DecisionKind.KEEP and "not finite" in d.reason
+        assert cc.current is first and cc.counters["bad_input"] == 1
+        huge = profile()
+        huge[5] = 1e6                    # absurd but finite: capped, no overflow
+        assert cc.decide(tracked(huge), 2.0).kind in set(DecisionKind)
+
     def test_new_plan_reloads(self):
         cc = ChangeControl(loader())
         cc.decide(tracked(profile()), 0.0)
