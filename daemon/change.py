@@ -248,7 +248,8 @@ class ChangeControl:
 
         # Many tones low at once is an emergency when the band as a whole went down; with the
         # mean in place it is the ordinary spread of fading, which a reload handles.
-        broad = n_low >= self.emergency_fraction * n_loaded and drop_db >= -self.downshift_margin_db
+        broad = (n_low >= self.emergency_fraction * n_loaded
+                 and drop_db >= -self.downshift_margin_db)
         if (n_low and broad) or drop_db >= self.emergency_drop_db:
             what = (f"{n_low} of {_tones(n_loaded)} loaded below downshift margin "
                     f"({worst_text}), mean SNR {-drop_db:+.1f} dB")
@@ -262,7 +263,9 @@ class ChangeControl:
 
         gain = self._upgrade_gain(eff_db, cur, now_s)
         due = self._upgrade_due(now_s)
-        if due and self._checked_s != now_s:  # confirm on this very view before acting on it
+        may_change = rate_wait <= 0 and (not n_low or since_map >= self.down_dwell_s)
+        if due and may_change and self._checked_s != now_s:
+            # confirm on this very view before acting on it
             gain = self._upgrade_gain(eff_db, cur, now_s, now=True)
             due = self._upgrade_due(now_s)
         if n_low:
