@@ -104,7 +104,7 @@ def end_summary(status: dict) -> str:
         f"  maps published  {sum(maps.values())} ({maps_txt})",
         f"  final rate      {rate.get('bits_per_symbol', 0)} bits/symbol"
         + (f", {rbps / 1e6:.3f} Mbit/s" if rbps is not None else ""),
-        f"  final margin    " + ("-" if margin is None else f"{margin:+.2f} dB"),
+        "  final margin    " + ("-" if margin is None else f"{margin:+.2f} dB"),
         f"  alarms          {', '.join(status.get('alarms', [])) or 'none'}",
     ]
     return "\n".join(lines)

@@ -829,16 +829,27 @@ def load_config(path: str | Path) -> Config:
 
 
 def _resolve_paths(config: Config, base: Path) -> Config:
-    """Make the service's relative file paths relative to the config file's folder."""
+    """Make every relative file path in the config relative to the config file's folder."""
 
     def rebase(value: str | None) -> str | None:
         if value is None or Path(value).is_absolute():
             return value
         return str(base / value)
 
+    def section(model: Section, *keys: str) -> Section:
+        return model.model_copy(update={k: rebase(getattr(model, k)) for k in keys})
+
     driver = config.driver
+    update = {}
     if driver.replay is not None:
-        driver = driver.model_copy(update={
-            "replay": driver.replay.model_copy(update={"path": rebase(driver.replay.path)})})
-    service = config.service.model_copy(update={"state_path": rebase(config.service.state_path)})
-    return config.model_copy(update={"driver": driver, "service": service})
+        update["replay"] = section(driver.replay, "path")
+    if driver.iq is not None:
+        update["iq"] = section(driver.iq, "path")
+    if update:
+        driver = driver.model_copy(update=update)
+    return config.model_copy(update={
+        "driver": driver,
+        "service": section(config.service, "state_path"),
+        "record": section(config.record, "path"),
+        "publish": section(config.publish, "curve_secret_key", "curve_clients_dir"),
+    })

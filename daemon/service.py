@@ -2,7 +2,8 @@
 
 Threads and sockets
 -------------------
-Two threads, each with its own sockets (ZeroMQ sockets never cross threads):
+Two threads own sockets, each its own (ZeroMQ sockets never cross threads); a third, socketless
+one writes the state file so that fsync never stalls the loop:
 
 * the **driver thread** iterates ``driver.frames()``, encodes each :class:`Estimate` with the
   codec and sends it to the main thread over an ``inproc`` PAIR socket. When the source ends or
@@ -30,9 +31,9 @@ Heartbeats and the status period are I/O pacing and always run on the monotonic 
 Shutdown order
 --------------
 ``close()``: stop the driver (``driver.close()``, the driver thread leaves at its next frame),
-join the driver thread with a timeout, publish a final status, save state, close the recording
-(flushed), close the main thread's sockets (explicit LINGER), terminate the context if the
-service created it. Idempotent.
+join the driver thread with a timeout, publish a final status, join the state writer thread and
+save the last map, close the recording (flushed), close the main thread's sockets (explicit
+LINGER), terminate the context if the service created it. Idempotent.
 """
 
 from __future__ import annotations
@@ -60,6 +61,10 @@ log = logging.getLogger("brimline.service")
 
 _CONTROL = b"_driver"  # topic of driver-thread control messages on the inproc socket
 _HISTORY = 16  # changes kept for the status stream
+# Sequence numbers skipped at a restart: more than the maps that can be published between two
+# state saves (saves are _StateWriter.min_interval_s = 0.1 s apart plus the save itself; maps
+# are rate-limited by change.max_maps_per_s).
+_RESTART_SEQ_MARGIN = 16
 
 
 def make_driver(config: Config, plan, map_provider=None):
@@ -201,6 +206,7 @@ class Service:
         self._given_driver = driver
         self._follow = follow
         self.plan, self.loader, self.estimator, self.change = build_core(config)
+        self._plan_id = self.plan.plan_id  # a hash: computed once, compared per frame
         if self.config.service.clock == "auto":
             self.clock_mode = "monotonic" if config.driver.kind == "radio" else "source"
         else:
@@ -439,9 +445,8 @@ class Service:
         return None
 
     def _handle_inproc(self, frames) -> None:
-        if bytes(frames[0].buffer if hasattr(frames[0], "buffer") else frames[0]) == _CONTROL:
-            msg = json.loads(bytes(frames[1].buffer if hasattr(frames[1], "buffer")
-                                   else frames[1]))
+        if frames and bytes(getattr(frames[0], "buffer", frames[0])) == _CONTROL:
+            msg = json.loads(bytes(getattr(frames[1], "buffer", frames[1])))
             self.driver_state = msg["state"]
             self.driver_error = msg.get("error")
             if self.driver_state == "failed":
@@ -451,8 +456,7 @@ class Service:
                 log.info("source %s ended", getattr(self.driver, "name", "driver"))
             return
         try:
-            _topic, estimate = codec.decode([f.buffer if hasattr(f, "buffer") else f
-                                             for f in frames])
+            _topic, estimate = codec.decode(frames)
             if not isinstance(estimate, Estimate):
                 raise ProtocolError(f"expected an estimate, got {type(estimate).__name__}")
         except ProtocolError as exc:
@@ -482,6 +486,12 @@ class Service:
         self._last_arrival_wall = self._clock()
         self._io.record_estimate(estimate)
         published = None
+        if (estimate.plan_id != self._plan_id
+                or not np.array_equal(estimate.tone_index, self.plan.data_tones)):
+            # Received with another tone plan: no map of this daemon could describe it.
+            self.rejected["other_plan"] += 1
+            self._check_stale(now_s)
+            return None
         # A gap in the source's own time longer than stale_after_s means the link was stale
         # during the gap: the fallback map goes first, as a live daemon would have sent it.
         stale_after = self.config.fallback.stale_after_s
@@ -536,7 +546,7 @@ class Service:
                  fallback: bool = False) -> LoadMap:
         m = LoadMap(epoch=self.epoch, seq=self._next_seq,
                     effective_frame=self.frames["last_frame"] + self.config.service.lead_frames,
-                    created_s=now_s, plan_id=self.plan.plan_id, tone_index=self.plan.data_tones,
+                    created_s=now_s, plan_id=self._plan_id, tone_index=self.plan.data_tones,
                     bits=alloc.bits.astype(np.uint8), power_lin=alloc.power.astype(np.float32),
                     total_bits=alloc.total_bits, margin_db=alloc.margin_db,
                     gap_db=float(self.loader.gap_db), reason=reason, fallback=fallback)
@@ -550,8 +560,9 @@ class Service:
         self.current_map, self.current_kind = m, kind
         self.maps_published[kind] += 1
         self.changes.append(Change(now_s, kind, reason, m.seq))
-        log.info("map %d (%s, %d bits/symbol, margin %.1f dB): %s", m.seq, kind, m.total_bits,
-                 m.margin_db, reason)
+        margin = f"{m.margin_db:.1f} dB" if math.isfinite(m.margin_db) else "unknown"
+        log.info("map %d (%s, %d bits/symbol, margin %s): %s", m.seq, kind, m.total_bits,
+                 margin, reason)
         return m
 
     def _note_ack(self, ack: dict) -> None:
@@ -631,16 +642,20 @@ class _Io:
         if saved is None:
             return new_epoch(), 0, None
         m = saved.load_map
+        # Maps are published before their state is saved (by a writer thread that keeps only
+        # the newest), so a crash can leave a few published maps unsaved: starting a margin
+        # past the saved number keeps the order strict across any restart.
+        next_seq = saved.next_seq + _RESTART_SEQ_MARGIN
         if m.plan_id != self._plan.plan_id:
             # Same epoch and sequence continue, but a map for another tone plan is not served.
             log.warning("saved map is for tone plan %s, this config's is %s: not restored",
                         m.plan_id, self._plan.plan_id)
             m = None
-        return saved.epoch, saved.next_seq, m
+        return saved.epoch, next_seq, m
 
     def save_state(self, m: LoadMap) -> None:
         if self.state is not None:
-            self.state.save(m)
+            self.state.submit(m)
 
     # -- maps
     def publish_map(self, m: LoadMap, *, prime: bool = False) -> None:
@@ -698,11 +713,8 @@ class _Io:
         if self._closed:
             return
         self._closed = True
-        if self.state is not None and last_map is not None:
-            try:
-                self.state.save(last_map)
-            except BrimlineError as exc:
-                log.error("state not saved: %s", exc)
+        if self.state is not None:
+            self.state.close(last_map)
         if self.recorder is not None:
             self.recorder.close()
         for obj in (self.status, self.maps):
@@ -716,7 +728,63 @@ def _open_state(config: Config):
         return None
     from brimline.daemon.state import StateStore
 
-    return StateStore(path)
+    return _StateWriter(StateStore(path))
+
+
+class _StateWriter:
+    """Saves the newest map on a thread of its own, so fsync never stalls the main loop.
+
+    Only the newest submitted map matters, so a save in flight coalesces later submissions, and
+    saves are at least ``min_interval_s`` apart (a burst of maps costs one fsync, not one each).
+    ``close(last)`` waits for the thread and then saves ``last`` synchronously.
+    """
+
+    min_interval_s = 0.1
+
+    def __init__(self, store) -> None:
+        self.store = store
+        self._cond = threading.Condition()
+        self._pending: LoadMap | None = None
+        self._stop = False
+        self.errors = 0
+        self._thread = threading.Thread(target=self._main, name="brimline-state", daemon=True)
+        self._thread.start()
+
+    def load(self):
+        return self.store.load()
+
+    def submit(self, m: LoadMap) -> None:
+        with self._cond:
+            self._pending = m
+            self._cond.notify()
+
+    def _main(self) -> None:
+        while True:
+            with self._cond:
+                while self._pending is None and not self._stop:
+                    self._cond.wait()
+                if self._pending is None:
+                    return
+                m, self._pending = self._pending, None
+            try:
+                self.store.save(m)
+            except BrimlineError as exc:
+                self.errors += 1
+                log.error("state not saved: %s", exc)
+            with self._cond:
+                if not self._stop:
+                    self._cond.wait_for(lambda: self._stop, self.min_interval_s)
+
+    def close(self, last: LoadMap | None) -> None:
+        with self._cond:
+            self._stop = True
+            self._cond.notify()
+        self._thread.join(10.0)
+        if last is not None:
+            try:
+                self.store.save(last)
+            except BrimlineError as exc:
+                log.error("state not saved: %s", exc)
 
 
 def _open_recorder(config: Config, plan):

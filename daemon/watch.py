@@ -33,7 +33,7 @@ _BIT_STYLES = ["grey39", "red", "dark_orange", "yellow", "gold1", "chartreuse3",
                "magenta", "magenta", "magenta", "magenta"]
 
 
-def band_chart(snr_db: list, bits: list, *, height: int = 6,
+def band_chart(snr_db: list, bits: list, power_db: list | None = None, *, height: int = 6,
                max_columns: int | None = None) -> Text:
     """Columns of block characters for per-group SNR, with a row of bits underneath.
 
@@ -43,6 +43,9 @@ def band_chart(snr_db: list, bits: list, *, height: int = 6,
         Lowest SNR of each tone group, dB (None where unknown).
     bits : list of float or None
         Mean bits of each tone group.
+    power_db : list of float or None, optional
+        Mean power of each group relative to nominal, dB: a row of ``-`` (below -1 dB), ``=``
+        (within 1 dB of nominal), ``+`` (above +1 dB) and blanks (unloaded).
     height : int
         Rows of the SNR columns.
     max_columns : int, optional
@@ -52,9 +55,11 @@ def band_chart(snr_db: list, bits: list, *, height: int = 6,
     -------
     rich.text.Text
     """
+    power_db = list(power_db or [])
     if max_columns is not None:
         snr_db = _regroup(snr_db, max_columns, "min")
         bits = _regroup(bits, max_columns, "mean")
+        power_db = _regroup(power_db, max_columns, "mean")
     text = Text()
     vals = [v for v in snr_db if v is not None and math.isfinite(v)]
     if vals:
@@ -83,6 +88,18 @@ def band_chart(snr_db: list, bits: list, *, height: int = 6,
                 continue
             k = int(min(max(round(b), 0), 15))
             text.append(_BIT_GLYPHS[k], style=_BIT_STYLES[k])
+        text.append("\n")
+    if power_db:
+        text.append("power   ")
+        for p in power_db:
+            if p is None:
+                text.append(" ")
+            elif p < -1.0:
+                text.append("-", style="cyan")
+            elif p > 1.0:
+                text.append("+", style="magenta")
+            else:
+                text.append("=", style="dim")
         text.append("\n")
     return text
 
@@ -183,7 +200,7 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
                     f"{band.get('tone_last', '-')})")
 
     chart = band_chart(list(band.get("snr_db", [])), list(band.get("bits", [])),
-                       max_columns=None if width is None else max(8, width - 14))
+                       list(band.get("power_db", [])), max_columns=None if width is None else max(8, width - 14))
 
     history = Table(box=None, show_header=True, header_style="dim", pad_edge=False)
     history.add_column("t s", justify="right")

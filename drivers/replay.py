@@ -11,6 +11,7 @@ A torn tail (the recorder was killed mid-record) or a damaged record is counted 
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from pathlib import Path
 from typing import Callable, Iterator
@@ -126,8 +127,6 @@ class ReplayDriver(Driver):
 
 
 def _shifted(est: Estimate, t_offset: float, f_offset: int) -> Estimate:
-    import dataclasses
-
     return dataclasses.replace(est, time_s=est.time_s + t_offset, frame=est.frame + f_offset)
 
 

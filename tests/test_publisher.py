@@ -413,3 +413,11 @@ class TestSections:
         from brimline.daemon.errors import ConfigError
         with pytest.raises(ConfigError, match=match):
             parse_section(StatusSection, data, where="demo.yaml", name="status")
+
+
+def test_readme_carries_the_same_decoder():
+    """The README's decoder is the tested one in DEVELOPERS.md, character for character."""
+    pattern = r"<!-- snippet: plain-decoder -->\n```python\n(.*?)```"
+    readme = (DEVELOPERS.parent / "README.md").read_text()
+    assert (re.search(pattern, readme, re.S).group(1)
+            == re.search(pattern, DEVELOPERS.read_text(), re.S).group(1))

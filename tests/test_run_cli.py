@@ -155,3 +155,17 @@ def test_value_rejected_by_a_part_is_one_line(tmp_path, capsys):
     assert main(["run", "--config", str(p), "--check"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "downshift_margin_db" in err[0]
+
+
+def test_relative_paths_are_taken_from_the_config_folder(tmp_path):
+    from brimline.daemon.config import load_config
+
+    sub = tmp_path / "cfg"
+    sub.mkdir()
+    p = sub / "c.yaml"
+    p.write_text("driver:\n  kind: replay\n  replay:\n    path: ../rec/est.brlog\n"
+                 "record:\n  path: out.brlog\nservice:\n  state_path: /abs/state.bin\n")
+    cfg = load_config(p)
+    assert Path(cfg.driver.replay.path) == sub / "../rec/est.brlog"
+    assert Path(cfg.record.path) == sub / "out.brlog"
+    assert cfg.service.state_path == "/abs/state.bin"

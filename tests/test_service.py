@@ -156,6 +156,16 @@ class TestRobustness:
         assert st["frames"]["rejected"] == {"non_finite": 10}
         assert st["frames"]["accepted"] == 90
 
+    def test_estimate_of_another_tone_plan_is_dropped(self):
+        from brimline.drivers.ofdm import make_plan
+
+        cfg = loopback_config()
+        other = make_plan(fft_size=256, used_tones_half=90)
+        with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=1)) as svc:
+            for est in ScriptedDriver(other, frames=5).frames():
+                assert svc.process(est) is None
+            assert svc.rejected["other_plan"] == 5 and svc.current_map is None
+
     def test_undecodable_hand_off_is_counted(self):
         cfg = loopback_config()
         with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=1)) as svc:
@@ -291,3 +301,31 @@ class TestClosedLoop:
             assert final.bits[band].mean() < final.bits[~band].mean() - 3
             assert any(c.kind in ("emergency", "reload", "bit_swap") and c.time_s >= 1.2
                        for c in svc.changes)
+
+
+def test_heartbeats_stay_on_time_under_a_flood_of_estimates():
+    """Heartbeats every heartbeat_s (0.1 s here) even while the source floods the loop."""
+    cfg = loopback_config()
+    ctx = zmq.Context()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.LINGER, 0)
+    sub.setsockopt(zmq.SUBSCRIBE, codec.TOPIC_HEARTBEAT.encode())
+    try:
+        drv = ScriptedDriver(_plan(cfg), frames=1_000_000, frame_s=0.001)
+        with Service(cfg, driver=drv) as svc:
+            sub.connect(svc.endpoints["maps"])
+            times = []
+
+            def beat():
+                while sub.poll(0):
+                    sub.recv_multipart()
+                    times.append(time.monotonic())
+                return len(times) >= 12
+
+            assert _pump(svc, until=beat, timeout_s=3.0)
+            assert svc.frames["received"] > 100
+        gaps = np.diff(times[1:])
+        assert gaps.max() < 0.35
+    finally:
+        sub.close()
+        ctx.term()

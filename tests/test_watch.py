@@ -111,3 +111,9 @@ def test_chart_fits_a_narrow_terminal():
     text = _text(render(_status(), width=60), width=60)
     bits_rows = [ln for ln in text.splitlines() if "bits " in ln and "·" in ln]
     assert bits_rows and all(len(ln) <= 60 for ln in text.splitlines())
+
+
+def test_power_row_marks_boosted_and_unloaded_groups():
+    chart = band_chart([20.0, 20.0, 3.0], [6, 6, 0], [2.0, 0.0, None]).plain
+    row = [ln for ln in chart.splitlines() if ln.startswith("power")][0]
+    assert row[len("power   "):] == "+= "
