@@ -130,7 +130,7 @@ class _MapTables:
         top = np.stack([m_i - 1, m_q - 1], axis=-1).astype(np.float64)
         self.top = top.astype(np.float32)
         self.zero = np.zeros_like(self.top)
-        self.half_inv_gain = np.repeat(0.5 * inv_gain, 2).reshape(-1, 2).astype(np.float32)
+        self.half_inv_gain_tone = (0.5 * inv_gain).astype(np.float32)
         self.half_top = (0.5 * top).astype(np.float32)
         self.two_gain = np.repeat(2.0 * gain, 2).reshape(-1, 2).astype(np.float32)
         self.gain_top = (gain[:, None] * top).astype(np.float32)
@@ -196,7 +196,8 @@ class Receiver:
                              - (1 + plan.train_symbols) - index.mean())
         self._data_index_spread = max(float(np.sum(self._data_offsets ** 2)), 1.0)
         rows = np.arange(1 + plan.train_symbols + plan.data_symbols, dtype=np.float64)
-        self._offsets = (rows - rows.mean()).astype(np.float32)  # row times about their mean
+        offsets = (rows - rows.mean()).astype(np.float32)  # row times about their mean
+        self._design = np.stack([np.ones_like(offsets), offsets, offsets * offsets])
         default = _MapTables(np.full(plan.data_tones.size, int(default_bits)),
                              np.ones(plan.data_tones.size))
         self._tables: dict[int, _MapTables] = {-1: default}
@@ -357,12 +358,12 @@ class Receiver:
         if tables is not None:
             # Decide with the training channel; fit level and slope with those decisions (the
             # estimate); decide again with the leave-one-out channel (the demodulated data).
-            x[t + 1:] = self._decide(rows[t + 1:], h_train[dp], tables)[0]  # h: one per tone
-            h, h_rows, residual = _fit(rows, x, self._offsets, linear=True,
+            self._decide(rows[t + 1:], h_train[dp], tables, points=x[t + 1:])  # h: one per tone
+            h, h_rows, residual = _fit(rows, x, self._design, linear=True,
                                        leave_one_out=t + 1 if demodulate else None)
             used, params, decided = known + plan.data_symbols, 2, None
             if demodulate:
-                idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables)[1].astype(np.uint8)
+                idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables).astype(np.uint8)
                 decided = (idx[..., 0], idx[..., 1], tables.b_q)
         else:
             h, _, residual = _fit(rows[:t + 1], x[:t + 1], None, linear=False)
@@ -408,72 +409,95 @@ class Receiver:
         return tables
 
     @staticmethod
-    def _decide(y: np.ndarray, h: np.ndarray, tables: _MapTables):
-        """Hard decisions on every data tone at once; returns (points, I and Q level indices).
+    def _decide(y: np.ndarray, h: np.ndarray, tables: _MapTables,
+                points: np.ndarray | None = None) -> np.ndarray:
+        """Hard decisions on every data tone at once; returns the I and Q level indices.
 
+        ``h`` is one channel per tone (shape (tones,)) or one per element. With ``points`` (a
+        complex64 array shaped like ``y``) the decided constellation points are written there.
         Works on the complex arrays viewed as interleaved float32 (I, Q) pairs, so each step is
-        one pass for both axes. ``fmax``/``fmin`` rather than ``clip`` so that a NaN sample
+        one pass for both axes; the scale ``1 / (2 gain h)`` is one complex factor (the gain is
+        the same on both axes). ``fmax``/``fmin`` rather than ``clip`` so that a NaN sample
         decides to a valid index.
         """
-        z = y * (1.0 / h) if h.ndim == 1 else y / h
+        if h.ndim == 1:
+            z = y * (tables.half_inv_gain_tone / h)
+        else:  # y conj(h) / |h|^2: a complex division is several times slower
+            z = np.conj(h)
+            hp = _as_pairs(h)
+            mag = hp[..., 0::2] * hp[..., 0::2]
+            mag += hp[..., 1::2] * hp[..., 1::2]
+            np.divide(tables.half_inv_gain_tone, mag, out=mag)
+            z *= y
+            z *= mag.astype(np.complex64)
         idx = z.view(np.float32).reshape(*z.shape, 2)
-        idx *= tables.half_inv_gain
         idx += tables.half_top
         np.rint(idx, out=idx)
         np.fmax(idx, tables.zero, out=idx)  # an array operand: a scalar is 3x slower here
         np.fmin(idx, tables.top, out=idx)
-        points = idx * tables.two_gain
-        points -= tables.gain_top
-        return points.view(np.complex64).reshape(z.shape), idx
+        if points is not None:
+            out = points.view(np.float32).reshape(idx.shape)
+            np.multiply(idx, tables.two_gain, out=out)
+            out -= tables.gain_top
+        return idx
 
 
-def _fit(rows: np.ndarray, x: np.ndarray, offsets: np.ndarray | None, *, linear: bool,
+def _fit(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, linear: bool,
          leave_one_out: int | None = None):
-    """Per-tone least-squares channel ``h0 + slope (n - n_mean)`` over symbol rows.
+    """Per-tone least-squares channel ``h0 + slope * o[n]`` over symbol rows.
 
     Returns ``(h, h_rows, residual)``: the channel at each tone's energy centroid in time (what
     the estimate reports), the channel per row and the residual energy ``sum |y - h_n x|^2`` per
-    tone. ``linear=False`` fits a constant. With ``leave_one_out=k`` the channel of rows ``k:``
+    tone. ``design`` holds the rows ``(1, o, o^2)`` (float32, shape (3, rows)) with ``o`` the row
+    times about their mean (None with ``linear=False``, which fits a constant). With ``leave_one_out=k`` the channel of rows ``k:``
     is the fit *without* that row, exact from the leverage ``q_i = |x_i|^2 w_i``:
     ``H_-i = (H_i - w_i conj(x_i) y_i) / (1 - q_i)``, so a symbol's own, possibly wrong,
     decision cannot pull the channel it is decided with.
     """
-    # Sums over rows are vector-matrix products (gemv) on float32 views of the complex arrays:
-    # same-type loops, no casts, several times faster than broadcasting against a column.
-    energy = np.abs(x)
-    energy *= energy
-    corr = rows * np.conj(x)
-    corr_pairs = _as_pairs(corr)
-    ones = np.ones(rows.shape[0], np.float32)
-    a = np.maximum(ones @ energy, 1e-30)
-    u = _as_complex(ones @ corr_pairs)
+    # Weighted sums over rows are small matrix products against the (rows x 1, o, o^2) design
+    # on float32 views of the complex arrays (same-type BLAS loops, no casts); squared
+    # magnitudes are I^2 + Q^2 on the interleaved pairs (one pass, no square root).
+    nrow = rows.shape[0]
+    corr = np.conj(x)
+    corr *= rows
+    xp = _as_pairs(x)
+    sq = xp * xp
     if not linear:
-        h = u / a
+        ones = np.ones(nrow, np.float32)
+        a = np.maximum(_pair_sum(ones @ sq), 1e-30)
+        h = _as_complex(ones @ _as_pairs(corr)) / a
         h_rows = np.broadcast_to(h, rows.shape)
+        err = rows - h * x
     else:
-        o = offsets  # row times about their mean (float32), the same for every tone
-        o2 = o * o
-        b = o @ energy
-        c = o2 @ energy
-        v = _as_complex(o @ corr_pairs)
+        o = design[1]
+        moments = _pair_sum(design @ sq)
+        a, b, c = np.maximum(moments[0], 1e-30), moments[1], moments[2]
+        uv = _as_complex(design[:2] @ _as_pairs(corr))  # (sum conj(x) y, sum o conj(x) y)
+        u, v = uv[0], uv[1]
         det = np.maximum(a * c - b * b, 1e-30)
-        h0 = ((c * u - b * v) / det).astype(np.complex64)
-        slope = ((a * v - b * u) / det).astype(np.complex64)
-        pairs = np.multiply.outer(o, _as_pairs(slope))
-        pairs += _as_pairs(h0)
-        h_rows = _as_complex(pairs)
+        inv_det = 1.0 / det
+        coef = np.empty_like(uv)  # (h0, slope) per tone
+        np.multiply(c * inv_det, u, out=coef[0])
+        coef[0] -= (b * inv_det) * v
+        np.multiply(a * inv_det, v, out=coef[1])
+        coef[1] -= (b * inv_det) * u
+        h0, slope = coef[0], coef[1]
+        # Channel per row in one product: [1, o] (rows x 2) times [h0; slope] (2 x tones).
+        h_rows = _as_complex(design[:2].T @ _as_pairs(coef))
         h = h0 + slope * (b / a)
-    err = h_rows * x
-    np.subtract(rows, err, out=err)
-    residual = ones @ _power(err)
+        err = h_rows * x
+        np.subtract(rows, err, out=err)
+    ep = _as_pairs(err)
+    ep *= ep
+    residual = _pair_sum(np.ones(nrow, np.float32) @ ep)
     if linear and leave_one_out is not None:
         k = leave_one_out
-        w = np.multiply.outer(o2[k:], (a / det).astype(np.float32))
-        w -= np.multiply.outer(o[k:], (2.0 * b / det).astype(np.float32))
-        w += (c / det).astype(np.float32)
+        w = np.multiply.outer(o[k:] * o[k:], a * inv_det)
+        w -= np.multiply.outer(o[k:], 2.0 * b * inv_det)
+        w += c * inv_det
         part = h_rows[k:]
         part -= corr[k:] * w.astype(np.complex64)
-        w *= energy[k:]
+        w *= _pair_sum(sq[k:])  # leverage |x|^2 w
         np.subtract(1.0, w, out=w)
         np.maximum(w, 1e-6, out=w)
         np.divide(1.0, w, out=w)
@@ -493,6 +517,11 @@ def _block_sums(a: np.ndarray, size: int, count: int) -> np.ndarray:
 def _as_pairs(z: np.ndarray) -> np.ndarray:
     """A complex64 array's float32 view, (..., n) -> (..., 2n) interleaved I, Q."""
     return z.view(np.float32)
+
+
+def _pair_sum(pairs: np.ndarray) -> np.ndarray:
+    """Sum of each interleaved (I, Q) pair, (..., 2n) -> (..., n) (strided add, not a reduce)."""
+    return pairs[..., 0::2] + pairs[..., 1::2]
 
 
 def _as_complex(pairs: np.ndarray) -> np.ndarray:
