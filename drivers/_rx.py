@@ -46,6 +46,9 @@ from brimline.drivers.ofdm import (
 
 __all__ = ["Receiver", "RxFrame", "MapLookup", "FrameScanner"]
 
+#: Fine offset (tone spacings) above which a frame is transformed again with it.
+_REFINE_TONES = 0.01
+
 #: ``lookup(map_seq) -> (bits, power_lin)`` over the data tones, or None when unknown.
 MapLookup = Callable[[int], "tuple[np.ndarray, np.ndarray] | None"]
 
@@ -240,14 +243,20 @@ class Receiver:
             return RxFrame("truncated", start=d0, end=max(d0 - plan.cp_len, 1),
                            sync_metric=metric)
         eps_frac = float(np.angle(p)) / np.pi
+        return self._estimate(r, d0, end, metric, eps_frac, lookup, demodulate)
+
+    def _spectra(self, r: np.ndarray, d0: int, eps_frac: float) -> np.ndarray:
+        """Unnormalized spectra of every symbol of the frame starting at ``d0``, with the
+        offset ``eps_frac`` (tone spacings) removed in the time domain: one batched FFT."""
+        plan = self.plan
+        n, s = plan.fft_size, plan.symbol_len
         windows = np.lib.stride_tricks.as_strided(
             r[d0:], shape=(plan.n_symbols, n), strides=(s * r.itemsize, r.itemsize),
             writeable=False)
         derotate = np.multiply.outer(
             np.exp(1j * eps_frac * self._ramp_coarse).astype(np.complex64),
             np.exp(1j * eps_frac * self._ramp_fine).astype(np.complex64)).ravel()
-        spectra = np.fft.fft(windows * derotate, axis=1)
-        return self._estimate(r, d0, end, metric, eps_frac, spectra, lookup, demodulate)
+        return np.fft.fft(windows * derotate, axis=1)
 
     # ------------------------------------------------------------------ steps
 
@@ -303,9 +312,11 @@ class Receiver:
         d = (left + right) // 2
         return lo + d, float(mf[d]), complex(pf[d])
 
-    def _estimate(self, r, d0, end, metric, eps_frac, spectra, lookup, demodulate) -> RxFrame:
+    def _estimate(self, r, d0, end, metric, eps_frac, lookup, demodulate,
+                  refine=True) -> RxFrame:
         plan, fmt = self.plan, self.format
         n, s, t = plan.fft_size, plan.symbol_len, plan.train_symbols
+        spectra = self._spectra(r, d0, eps_frac)
         # Integer offset: even shift maximizing the sync/training differential correlation.
         cross = np.conj(spectra[0]) * spectra[1]
         score = np.abs(np.sum(cross[self._int_bins] * self._diff_conj, axis=1))
@@ -313,18 +324,26 @@ class Receiver:
         bins = (fmt.used_bins + shift) % n
         # Per-symbol phase step from the identical training symbols (all offsets together).
         head = np.take(spectra[1:t + 2], bins, axis=1)  # training symbols and header
-        theta = float(np.angle(np.sum(np.conj(head[:t - 1]) * head[1:t])))
+        steps = np.conj(head[:t - 1]) * head[1:t]
+        step = steps[0] if t == 2 else steps.sum(axis=0)
+        # Tones a narrowband interferer dominates take no part: its own phase step would bias
+        # the offset (and, through the time-domain correction, cost every tone some ICI).
+        hit = _narrowband_hits(_power(step))
+        theta = float(np.angle(np.sum(step[~hit] if hit.any() else step)))
         expected = 2 * np.pi * (eps_frac * s + shift * plan.cp_len) / n
         eps_fine = math.remainder(theta - expected, 2 * np.pi) * n / (2 * np.pi * s)
+        if refine and abs(eps_fine) > _REFINE_TONES:
+            # The sync offset was off (an interferer's share of the sync correlation biases it):
+            # transform again with the fine offset, or the residual leaks between tones.
+            return self._estimate(r, d0, end, metric, eps_frac + eps_fine, lookup, demodulate,
+                                  refine=False)
         cfo_tones = eps_frac + shift + eps_fine
         phase = (np.exp(-1j * theta * self._sym_index) / math.sqrt(n)).astype(np.complex64)
         head *= phase[1:t + 2, None]
         h_train = head[:t].mean(axis=0) * self._train
-        # Header: maximal-ratio combining of the repeated BPSK bits.
-        y_head = head[t]
-        soft = (y_head * np.conj(h_train)).real * self._scramble
-        reps = self._reps * HEADER_BITS
-        soft_bits = soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)
+        # Header: maximal-ratio combining of the repeated BPSK bits, robust to a narrowband
+        # interferer (which would otherwise outvote the good copies of its bit).
+        soft_bits = self._header_soft(head, h_train, hit)
         header_ok, seq, counter = decode_header((soft_bits < 0).astype(np.uint8))
         # Data symbols: remove the residual phase drift measured on the pilots. A straight line
         # through the per-symbol common phases follows a residual offset with far less noise
@@ -386,6 +405,28 @@ class Receiver:
             decided=decided, symbols_used=used)
 
     # ------------------------------------------------------------------ helpers
+
+    def _header_soft(self, head: np.ndarray, h_train: np.ndarray,
+                     hit: np.ndarray) -> np.ndarray:
+        """Combined soft values of the header bits (negative: bit 1), from phase-corrected
+        training rows and header row ``head``, the training channel ``h_train`` and the tones
+        ``hit`` by a narrowband interferer.
+
+        Maximal-ratio combining ``sum Re(y conj(h))`` over the copies, with guards against a
+        narrowband interferer, which inflates a tone's apparent channel or its header value:
+        a tone is erased when it is in ``hit`` or when its channel power exceeds 4 times the
+        local level (:func:`_local_level`), and every vote is clipped to 1.5 times that level.
+        (Erasing tones whose training symbols differ was tried and dropped: in deep fades it
+        erased good copies.)
+        """
+        t = self.plan.train_symbols
+        g = _power(h_train)
+        level = _local_level(g)
+        soft = (head[t] * np.conj(h_train)).real * self._scramble
+        np.clip(soft, -1.5 * level, 1.5 * level, out=soft)
+        soft[hit | (g > 4.0 * level)] = 0.0
+        reps = self._reps * HEADER_BITS
+        return soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)
 
     def _tables_for(self, seq: int | None, lookup: MapLookup | None) -> _MapTables | None:
         if seq is None:
@@ -503,6 +544,20 @@ def _fit(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, linear: 
         np.divide(1.0, w, out=w)
         part *= w.astype(np.complex64)
     return h, h_rows, residual
+
+
+def _local_level(g: np.ndarray) -> np.ndarray:
+    """Per-tone level of ``g`` that a one- or two-tone peak does not raise: the smaller of the
+    larger of the tones two and three away on each side (edges repeat the end values)."""
+    m = g.size
+    pad = np.concatenate([g[:3], g, g[-3:]])
+    left = np.maximum(pad[0:m], pad[1:m + 1])
+    return np.minimum(left, np.maximum(pad[5:m + 5], pad[6:m + 6]))
+
+
+def _narrowband_hits(g: np.ndarray) -> np.ndarray:
+    """Tones whose power ``g`` stands more than 4 times (6 dB) above the local level."""
+    return g > 4.0 * _local_level(g)
 
 
 def _block_sums(a: np.ndarray, size: int, count: int) -> np.ndarray:
