@@ -182,6 +182,7 @@ class Receiver:
         self._int_bins = (used_even[None, :] + self._shifts[:, None]) % n
         self._diff_conj = np.conj(fmt.differential).astype(np.complex64)
         self._train = fmt.train.astype(np.float32)
+        self._train_mean = self._train / plan.train_symbols
         self._train_data = self._train[fmt.data_pos]
         self._pilots = fmt.pilots.astype(np.float32)
         self._scramble = fmt.scramble.astype(np.float32)
@@ -295,8 +296,14 @@ class Receiver:
         if hi <= lo:
             return None
         seg = r[lo:hi + 2 * half].astype(np.complex128)
-        zc = np.concatenate(([0], np.cumsum(np.conj(seg[:-half]) * seg[half:])))
-        ec = np.concatenate(([0], np.cumsum(seg.real ** 2 + seg.imag ** 2)))
+        zc = np.zeros(seg.size - half + 1, np.complex128)
+        prod = np.conj(seg[:-half])
+        prod *= seg[half:]
+        np.cumsum(prod, out=zc[1:])
+        ec = np.zeros(seg.size + 1)
+        energy = seg.real * seg.real
+        energy += seg.imag * seg.imag
+        np.cumsum(energy, out=ec[1:])
         width = hi - lo + 1
         pf = zc[half:half + width] - zc[:width]
         rf = 0.5 * (ec[2 * half:2 * half + width] - ec[:width])
@@ -319,7 +326,7 @@ class Receiver:
         spectra = self._spectra(r, d0, eps_frac)
         # Integer offset: even shift maximizing the sync/training differential correlation.
         cross = np.conj(spectra[0]) * spectra[1]
-        score = np.abs(np.sum(cross[self._int_bins] * self._diff_conj, axis=1))
+        score = np.abs(cross[self._int_bins] @ self._diff_conj)
         shift = int(self._shifts[int(np.argmax(score))])
         bins = (fmt.used_bins + shift) % n
         # Per-symbol phase step from the identical training symbols (all offsets together).
@@ -328,8 +335,11 @@ class Receiver:
         step = steps[0] if t == 2 else steps.sum(axis=0)
         # Tones a narrowband interferer dominates take no part: its own phase step would bias
         # the offset (and, through the time-domain correction, cost every tone some ICI).
-        hit = _narrowband_hits(_power(step))
-        theta = float(np.angle(np.sum(step[~hit] if hit.any() else step)))
+        mag = np.abs(step)  # |H|^2 n per tone
+        level = _local_level(mag)
+        hit = mag > 2.0 * level  # 3 dB above the local level
+        step[hit] = 0.0
+        theta = float(np.angle(np.sum(step)))
         expected = 2 * np.pi * (eps_frac * s + shift * plan.cp_len) / n
         eps_fine = math.remainder(theta - expected, 2 * np.pi) * n / (2 * np.pi * s)
         if refine and abs(eps_fine) > _REFINE_TONES:
@@ -340,10 +350,11 @@ class Receiver:
         cfo_tones = eps_frac + shift + eps_fine
         phase = (np.exp(-1j * theta * self._sym_index) / math.sqrt(n)).astype(np.complex64)
         head *= phase[1:t + 2, None]
-        h_train = head[:t].mean(axis=0) * self._train
+        h_train = head[0] + head[1] if t == 2 else head[:t].sum(axis=0)
+        h_train *= self._train_mean  # training sign / t
         # Header: maximal-ratio combining of the repeated BPSK bits, robust to a narrowband
         # interferer (which would otherwise outvote the good copies of its bit).
-        soft_bits = self._header_soft(head, h_train, hit)
+        soft_bits = self._header_soft(head, h_train, hit, level * (1.0 / n))
         header_ok, seq, counter = decode_header((soft_bits < 0).astype(np.uint8))
         # Data symbols: remove the residual phase drift measured on the pilots. A straight line
         # through the per-symbol common phases follows a residual offset with far less noise
@@ -366,7 +377,8 @@ class Receiver:
         x = np.empty(rows.shape, np.complex64)  # data rows are filled by the decisions
         x[:t] = self._train_data
         if header_ok:  # the header row is known once its CRC passes
-            signs = np.append(1.0 - 2.0 * (soft_bits < 0), 1.0).astype(np.float32)
+            signs = np.ones(HEADER_BITS + 1, np.float32)  # the last: filler tones
+            signs[:HEADER_BITS][soft_bits < 0] = -1.0
             x[t] = signs[self._header_bit_data] * self._scramble_data
         else:
             x[t] = 0.0
@@ -406,25 +418,23 @@ class Receiver:
 
     # ------------------------------------------------------------------ helpers
 
-    def _header_soft(self, head: np.ndarray, h_train: np.ndarray,
-                     hit: np.ndarray) -> np.ndarray:
+    def _header_soft(self, head: np.ndarray, h_train: np.ndarray, hit: np.ndarray,
+                     level: np.ndarray) -> np.ndarray:
         """Combined soft values of the header bits (negative: bit 1), from phase-corrected
-        training rows and header row ``head``, the training channel ``h_train`` and the tones
-        ``hit`` by a narrowband interferer.
+        training rows and header row ``head``, the training channel ``h_train``, the tones
+        ``hit`` by a narrowband interferer and the local channel power ``level`` per tone.
 
         Maximal-ratio combining ``sum Re(y conj(h))`` over the copies, with guards against a
         narrowband interferer, which inflates a tone's apparent channel or its header value:
-        a tone is erased when it is in ``hit`` or when its channel power exceeds 4 times the
-        local level (:func:`_local_level`), and every vote is clipped to 1.5 times that level.
+        ``hit`` tones are erased and every vote is clipped to 1.5 times the local level.
         (Erasing tones whose training symbols differ was tried and dropped: in deep fades it
         erased good copies.)
         """
         t = self.plan.train_symbols
-        g = _power(h_train)
-        level = _local_level(g)
-        soft = (head[t] * np.conj(h_train)).real * self._scramble
+        soft = (head[t] * np.conj(h_train)).real
+        soft *= self._scramble
         np.clip(soft, -1.5 * level, 1.5 * level, out=soft)
-        soft[hit | (g > 4.0 * level)] = 0.0
+        soft[hit] = 0.0
         reps = self._reps * HEADER_BITS
         return soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)
 
@@ -553,11 +563,6 @@ def _local_level(g: np.ndarray) -> np.ndarray:
     pad = np.concatenate([g[:3], g, g[-3:]])
     left = np.maximum(pad[0:m], pad[1:m + 1])
     return np.minimum(left, np.maximum(pad[5:m + 5], pad[6:m + 6]))
-
-
-def _narrowband_hits(g: np.ndarray) -> np.ndarray:
-    """Tones whose power ``g`` stands more than 4 times (6 dB) above the local level."""
-    return g > 4.0 * _local_level(g)
 
 
 def _block_sums(a: np.ndarray, size: int, count: int) -> np.ndarray:
