@@ -6,8 +6,8 @@ One call of :meth:`Receiver.receive` turns a block of complex baseband samples i
 1. **Timing and fractional offset** (Schmidl and Cox, IEEE Trans. Commun. 45(12), 1997): the
    metric ``M(d) = |P(d)|^2 / R(d)^2`` of the two-halves sync symbol, with ``R`` the mean energy
    of both halves (so ``M <= 1`` also where a burst starts or ends), first on a grid of
-   ``B``-sample blocks (block sums and a cumulative sum, so the search costs two passes over the
-   block), then exactly around the first coarse peak above ``sync_threshold``. The frame start is
+   ``B``-sample blocks (block sums, then window sums by pairwise adds, so the search costs
+   about two passes over the block), then exactly around the first coarse peak above ``sync_threshold``. The frame start is
    the middle of the metric's 90 % plateau, which lies inside the cyclic prefix; the fractional
    offset is ``angle(P) / pi`` tone spacings.
 2. **Integer offset**: the differential pattern between sync and first training symbol, searched
@@ -274,15 +274,12 @@ class Receiver:
         ed *= ed
         lb, bd = half // b, b // dec
         nz, ne = zd.size // bd, ed.size // bd
-        cz = np.zeros(nz + 1, np.complex128)
-        np.cumsum(_block_sums(zd, bd, nz), out=cz[1:])
-        ce = np.zeros(ne + 1, np.float64)
-        np.cumsum(_block_sums(ed, bd, ne), out=ce[1:])
         count = min(nz - lb, ne - 2 * lb) + 1
         if count <= 0:
             return None
-        pc = cz[lb:lb + count] - cz[:count]
-        rc = 0.5 * (ce[2 * lb:2 * lb + count] - ce[:count])
+        pc = _sliding_sums(_block_sums(zd, bd, nz), lb)[:count]
+        rc = _sliding_sums(_block_sums(ed, bd, ne), 2 * lb)[:count]
+        rc *= 0.5
         mc = (pc.real ** 2 + pc.imag ** 2) / np.maximum(rc * rc, 1e-30)
         above = np.flatnonzero(mc > self.sync_threshold)
         if above.size == 0:
@@ -295,18 +292,23 @@ class Receiver:
         hi = min(peak * b + cp + 2 * b, r.size - 2 * half)
         if hi <= lo:
             return None
+        # Window sums as the first window plus a running sum of what enters minus what
+        # leaves, so the running sums span the search width rather than the whole segment.
         seg = r[lo:hi + 2 * half].astype(np.complex128)
-        zc = np.zeros(seg.size - half + 1, np.complex128)
+        width = hi - lo + 1
         prod = np.conj(seg[:-half])
         prod *= seg[half:]
-        np.cumsum(prod, out=zc[1:])
-        ec = np.zeros(seg.size + 1)
         energy = seg.real * seg.real
         energy += seg.imag * seg.imag
-        np.cumsum(energy, out=ec[1:])
-        width = hi - lo + 1
-        pf = zc[half:half + width] - zc[:width]
-        rf = 0.5 * (ec[2 * half:2 * half + width] - ec[:width])
+        pf = np.empty(width, np.complex128)
+        pf[0] = prod[:half].sum()
+        np.cumsum(prod[half:half + width - 1] - prod[:width - 1], out=pf[1:])
+        pf[1:] += pf[0]
+        rf = np.empty(width)
+        rf[0] = energy[:2 * half].sum()
+        np.cumsum(energy[2 * half:2 * half + width - 1] - energy[:width - 1], out=rf[1:])
+        rf[1:] += rf[0]
+        rf *= 0.5
         mf = (pf.real ** 2 + pf.imag ** 2) / np.maximum(rf * rf, 1e-30)
         top = int(np.argmax(mf))
         if not mf[top] > self.sync_threshold:  # a coarse false alarm: not confirmed exactly
@@ -563,6 +565,19 @@ def _local_level(g: np.ndarray) -> np.ndarray:
     pad = np.concatenate([g[:3], g, g[-3:]])
     left = np.maximum(pad[0:m], pad[1:m + 1])
     return np.minimum(left, np.maximum(pad[5:m + 5], pad[6:m + 6]))
+
+
+def _sliding_sums(a: np.ndarray, width: int) -> np.ndarray:
+    """Sums of every ``width`` consecutive elements (``a.size - width + 1`` of them): for a
+    power-of-two width by log2(width) pairwise adds (vectorized, unlike a running sum)."""
+    if width & (width - 1):
+        c = np.concatenate([np.zeros(1, a.dtype), np.cumsum(a)])
+        return c[width:] - c[:-width]
+    out, span = a, 1
+    while span < width:
+        out = out[:-span] + out[span:]
+        span *= 2
+    return out
 
 
 def _block_sums(a: np.ndarray, size: int, count: int) -> np.ndarray:
