@@ -251,9 +251,13 @@ class Receiver:
         offset ``eps_frac`` (tone spacings) removed in the time domain: one batched FFT."""
         plan = self.plan
         n, s = plan.fft_size, plan.symbol_len
-        windows = np.lib.stride_tricks.as_strided(
-            r[d0:], shape=(plan.n_symbols, n), strides=(s * r.itemsize, r.itemsize),
-            writeable=False)
+        span = plan.n_symbols * s
+        if d0 + span <= r.size:  # a reshaped view costs less than as_strided
+            windows = r[d0:d0 + span].reshape(plan.n_symbols, s)[:, :n]
+        else:
+            windows = np.lib.stride_tricks.as_strided(
+                r[d0:], shape=(plan.n_symbols, n), strides=(s * r.itemsize, r.itemsize),
+                writeable=False)
         derotate = np.multiply.outer(
             np.exp(1j * eps_frac * self._ramp_coarse).astype(np.complex64),
             np.exp(1j * eps_frac * self._ramp_fine).astype(np.complex64)).ravel()
