@@ -171,6 +171,8 @@ class Receiver:
         self._half = n // 2
         self._block = max(8, min(32, self._half // 8))
         self._decimate = self._block // 4 if self._half >= 256 else self._block // 8
+        # Samples the coarse search tries first (a multiple of the block and decimation).
+        self._coarse_head = 8 * plan.symbol_len // self._block * self._block
         # Derotation ramp exp(-2 pi i eps k / n) as an outer product of two short ramps (k = p
         # n2 + q), so each frame evaluates sqrt(n)-ish exponentials rather than n.
         self._ramp_split = 1 << (int(math.log2(n)) // 2)
@@ -269,27 +271,26 @@ class Receiver:
         """Return (start, metric, P) of the first frame, (-1, best metric, 0) or None."""
         half, b = self._half, self._block
         cp = self.plan.cp_len
-        # Coarse metric on every dec-th sample, summed over blocks of b samples.
-        dec = self._decimate
-        rd = r[::dec].copy() if dec > 1 else r
-        hd = half // dec
-        zd = np.conj(rd[:-hd]) * rd[hd:]
-        ed = np.abs(rd)
-        ed *= ed
-        lb, bd = half // b, b // dec
-        nz, ne = zd.size // bd, ed.size // bd
-        count = min(nz - lb, ne - 2 * lb) + 1
-        if count <= 0:
-            return None
-        pc = _sliding_sums(_block_sums(zd, bd, nz), lb)[:count]
-        rc = _sliding_sums(_block_sums(ed, bd, ne), 2 * lb)[:count]
-        rc *= 0.5
-        mc = (pc.real ** 2 + pc.imag ** 2) / np.maximum(rc * rc, 1e-30)
-        above = np.flatnonzero(mc > self.sync_threshold)
+        # The coarse search looks at the block's head first (frames usually start there) and
+        # at the whole block only when the head holds no crossing with its peak window.
+        reach = (half + cp) // b + 2  # coarse points searched for the peak after a crossing
+        head = self._coarse_head
+        coarse = self._coarse(r[:head]) if r.size > head + b else None
+        if coarse is not None:
+            mc, count = coarse
+            above = np.flatnonzero(mc > self.sync_threshold)
+            if above.size == 0 or above[0] + reach > count:
+                coarse = None
+        if coarse is None:
+            coarse = self._coarse(r)
+            if coarse is None:
+                return None
+            mc, count = coarse
+            above = np.flatnonzero(mc > self.sync_threshold)
         if above.size == 0:
             return -1, float(mc.max(initial=0.0)), 0
         first = above[0]
-        stop = min(first + (half + cp) // b + 2, count)
+        stop = min(first + reach, count)
         peak = first + int(np.argmax(mc[first:stop]))
         # Exact metric at every sample around the coarse peak.
         lo = max(0, peak * b - cp - 2 * b)
@@ -324,6 +325,25 @@ class Receiver:
         right = top + right_edges[0] - 1 if right_edges.size else width - 1
         d = (left + right) // 2
         return lo + d, float(mf[d]), complex(pf[d])
+
+    def _coarse(self, r: np.ndarray):
+        """Coarse Schmidl-Cox metric ``(mc, count)`` at every ``B``-th sample start of ``r``
+        (None when ``r`` is too short): every dec-th sample, summed over blocks of B."""
+        half, b, dec = self._half, self._block, self._decimate
+        rd = r[::dec].copy() if dec > 1 else r
+        hd = half // dec
+        zd = np.conj(rd[:-hd]) * rd[hd:]
+        ed = np.abs(rd)
+        ed *= ed
+        lb, bd = half // b, b // dec
+        nz, ne = zd.size // bd, ed.size // bd
+        count = min(nz - lb, ne - 2 * lb) + 1
+        if count <= 0:
+            return None
+        pc = _sliding_sums(_block_sums(zd, bd, nz), lb)[:count]
+        rc = _sliding_sums(_block_sums(ed, bd, ne), 2 * lb)[:count]
+        rc *= 0.5
+        return (pc.real ** 2 + pc.imag ** 2) / np.maximum(rc * rc, 1e-30), count
 
     def _estimate(self, r, d0, end, metric, eps_frac, lookup, demodulate,
                   refine=True) -> RxFrame:
