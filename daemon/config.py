@@ -198,6 +198,10 @@ class SimSection(Section):
     interferer_tone: Optional[float] = Field(
         None, description="narrowband interferer position, signed tone (may be fractional)")
     interferer_db: float = Field(0.0, description="interferer power relative to a nominal tone, dB")
+    interferer_start_s: Optional[float] = Field(
+        None, description="interferer switched on at this simulated time, s (none: from the start)")
+    interferer_stop_s: Optional[float] = Field(
+        None, description="interferer switched off at this simulated time, s (none: never)")
     drift_db: float = Field(0.0, description="slow gain drift, peak deviation, dB")
     drift_period_s: float = Field(60.0, description="period of the gain drift, s")
     events: list[FadeEventSection] = Field(
@@ -229,6 +233,14 @@ class SimSection(Section):
     def _threshold(cls, v):
         if not 0.0 < v < 1.0:
             raise ValueError(f"sync_threshold={v} must be in (0, 1)")
+        return v
+
+    @field_validator("interferer_stop_s")
+    @classmethod
+    def _interferer_window(cls, v, info):
+        start = info.data.get("interferer_start_s")
+        if v is not None and start is not None and not v > start:
+            raise ValueError(f"interferer_stop_s={v} must be after interferer_start_s={start}")
         return v
 
 
