@@ -11,18 +11,23 @@ loading target, whose gap already includes the configured target margin):
 
 1. No map yet, a new tone plan, or the first call after a forced fallback map: reload at once.
 2. **Emergency**: when at least ``emergency_fraction`` of the loaded tones are below
-   ``downshift_margin_db`` at once, or the mean tracked SNR fell by ``emergency_drop_db`` since the
-   current map was made, the loader runs on the effective SNR lowered by ``emergency_margin_db``.
-   This bypasses the dwell times (not the map rate limit). Normal upgrades recover the rate.
+   ``downshift_margin_db`` at once while the mean tracked SNR has fallen by at least
+   ``-downshift_margin_db`` (the band as a whole went down, not the ordinary spread of fading), or
+   the mean fell by ``emergency_drop_db``, both since the current map was made, the loader runs on
+   the effective SNR lowered by ``emergency_margin_db``. This bypasses the dwell times (not the
+   map rate limit). Normal upgrades recover the rate.
 3. **Downgrade**: any loaded tone below ``downshift_margin_db`` forces a change once
    ``down_dwell_s`` has passed since the last map. When at most ``swap_max_tones`` tones need to
    change and the rate drops by at most ``swap_max_loss_bits``, a bit swap repairs the map: the
    failing tones drop to the bits their power still carries, and the lost bits move to the tones
-   where one more bit costs the least power, within the budget and ceilings. Otherwise the map is
-   reloaded.
-4. **Upgrade**: after ``up_dwell_s`` (longer than the downgrade dwell), every ``upgrade_check_s``
-   the loader runs on the effective SNR lowered by ``upshift_margin_db``; if even that map carries
-   ``min_gain_bits`` more than the current one, the gain is real and the map is reloaded.
+   where one more bit costs the least power, within the budget and ceilings. Otherwise (or when
+   an upgrade is due as well) the map is reloaded.
+4. **Upgrade**: every ``upgrade_check_s`` the loader runs on the effective SNR lowered by
+   ``upshift_margin_db``; if even that map carries ``min_gain_bits`` more than the current one,
+   the gain is real. Once it has stayed real for ``up_dwell_s`` without a break (longer than the
+   downgrade dwell) the map is reloaded. The wait restarts at every upgrade, emergency and first
+   map, so those are at least ``up_dwell_s`` apart; bit swaps and downgrade reloads do not
+   restart it, or a fading channel that keeps needing repairs would never be upgraded.
 
 Separate upshift and downshift margins with minimum times follow the idea of DSL online rate
 adaptation (ITU-T G.997.1, as described in IETF RFC 5650): the map moves down fast when the
@@ -46,6 +51,7 @@ from brimline.daemon.records import Allocation, Decision, DecisionKind, Tracked
 __all__ = ["ChangeControl"]
 
 _KEEP = DecisionKind.KEEP
+_MAX_SNR_DB = 100.0   # no tone is better than this; keeps the linear SNR finite
 
 
 class ChangeControl:
@@ -62,10 +68,12 @@ class ChangeControl:
         Extra margin an upgrade must still gain with, dB.
     min_gain_bits : int
         Smallest gain in bits per symbol worth an upgrade.
-    down_dwell_s, up_dwell_s : float
-        Minimum time since the last map before a downgrade / an upgrade, seconds.
+    down_dwell_s : float
+        Minimum time since the last map before a downgrade, seconds.
+    up_dwell_s : float
+        Time an upgrade must stay worth it without a break before it is made, seconds.
     upgrade_check_s : float
-        Interval between upgrade evaluations once the upgrade dwell has passed, seconds.
+        Interval between upgrade evaluations, seconds.
     max_maps_per_s : float
         Map rate limit: no two maps closer than its inverse, seconds.
     swap_max_tones : int
@@ -87,7 +95,7 @@ class ChangeControl:
 
     def __init__(self, loader, *, downshift_margin_db: float = -1.5,
                  upshift_margin_db: float = 1.5, min_gain_bits: int = 4,
-                 down_dwell_s: float = 0.1, up_dwell_s: float = 5.0,
+                 down_dwell_s: float = 0.1, up_dwell_s: float = 1.0,
                  upgrade_check_s: float = 0.25, max_maps_per_s: float = 10.0,
                  swap_max_tones: int = 16, swap_max_loss_bits: int = 4,
                  emergency_fraction: float = 0.25, emergency_drop_db: float = 6.0,
@@ -131,7 +139,7 @@ class ChangeControl:
         self._cap_lin = 10.0 ** (float(getattr(loader, "cap_db", math.inf)) / 10.0)
         self._counters = dict.fromkeys(
             ("keep", "bit_swap", "reload", "emergency", "fallback", "forced", "upgrade",
-             "held_dwell", "held_rate", "infeasible"), 0)
+             "held_dwell", "held_rate", "infeasible", "bad_input"), 0)
         self._current: Allocation | None = None
         self._margin_at_0db = None      # tone margins of the current map at 0 dB SNR
         self._n_loaded = 0
@@ -139,6 +147,9 @@ class ChangeControl:
         self._changed_s = -math.inf     # when the current map was adopted
         self._ref_mean_db = math.nan    # mean tracked SNR when the current map was made
         self._next_upgrade_s = -math.inf
+        self._gain_since_s = math.nan   # since when an upgrade has been worth it, continuously
+        self._last_gain = 0
+        self._checked_s = math.nan
 
     # ------------------------------------------------------------------ state
 
@@ -150,7 +161,8 @@ class ChangeControl:
     @property
     def counters(self) -> dict[str, int]:
         """Decisions by kind, ``upgrade`` reloads, changes held by ``held_dwell`` /
-        ``held_rate``, ``forced`` maps and ``infeasible`` loads (margin mode fell back to rate)."""
+        ``held_rate``, ``forced`` maps, ``infeasible`` loads (margin mode fell back to rate) and
+        ``bad_input`` (a tracked view with NaN or inf, kept without a change)."""
         return dict(self._counters)
 
     def force(self, allocation: Allocation, kind: DecisionKind | str, reason: str,
@@ -177,7 +189,7 @@ class ChangeControl:
         kind = DecisionKind(kind)
         if kind is _KEEP:
             raise ValueError("force() needs a map-changing kind, not 'keep'")
-        decision = self._adopt(kind, allocation, reason, now_s, math.nan)
+        decision = self._adopt(kind, allocation, reason, now_s, math.nan, restart_upgrade=True)
         self._counters["forced"] += 1
         if kind is DecisionKind.FALLBACK:
             self._plan_id = None
@@ -202,6 +214,9 @@ class ChangeControl:
         """
         now_s = float(now_s)
         eff_db = tracked.effective_snr_db
+        if not (math.isfinite(eff_db.sum()) and math.isfinite(tracked.snr_db.sum())):
+            return self._hold("bad_input", "tracked SNR is not finite: map kept")
+        eff_db = np.minimum(eff_db, _MAX_SNR_DB)
         mean_db = float(tracked.snr_db.mean())
         cur = self._current
         since_map = now_s - self._changed_s
@@ -216,7 +231,7 @@ class ChangeControl:
             self._plan_id = tracked.plan_id
             alloc, note = self._load(_lin(eff_db))
             return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {why}{note}", now_s,
-                               mean_db)
+                               mean_db, restart_upgrade=True)
 
         # With power proportional to 1 / snr for given bits (the SNR-gap model), a tone's margin
         # in dB is its margin at 0 dB SNR plus its SNR in dB: one addition per frame.
@@ -231,8 +246,11 @@ class ChangeControl:
             self._ref_mean_db = mean_db
         drop_db = self._ref_mean_db - mean_db
 
-        if (n_low and n_low >= self.emergency_fraction * n_loaded) \
-                or drop_db >= self.emergency_drop_db:
+        # Many tones low at once is an emergency when the band as a whole went down; with the
+        # mean in place it is the ordinary spread of fading, which a reload handles.
+        broad = (n_low >= self.emergency_fraction * n_loaded
+                 and drop_db >= -self.downshift_margin_db)
+        if (n_low and broad) or drop_db >= self.emergency_drop_db:
             what = (f"{n_low} of {_tones(n_loaded)} loaded below downshift margin "
                     f"({worst_text}), mean SNR {-drop_db:+.1f} dB")
             if rate_wait > 0:
@@ -241,8 +259,15 @@ class ChangeControl:
             alloc, note = self._load(_lin(eff_db - self.emergency_margin_db))
             return self._adopt(DecisionKind.EMERGENCY, alloc,
                                f"emergency: {what}; +{self.emergency_margin_db:g} dB margin"
-                               f"{note}", now_s, mean_db)
+                               f"{note}", now_s, mean_db, restart_upgrade=True)
 
+        gain = self._upgrade_gain(eff_db, cur, now_s)
+        due = self._upgrade_due(now_s)
+        may_change = rate_wait <= 0 and (not n_low or since_map >= self.down_dwell_s)
+        if due and may_change and self._checked_s != now_s:
+            # confirm on this very view before acting on it
+            gain = self._upgrade_gain(eff_db, cur, now_s, now=True)
+            due = self._upgrade_due(now_s)
         if n_low:
             what = f"{_tones(n_low)} below downshift margin ({worst_text})"
             wait = max(self.down_dwell_s - since_map, rate_wait)
@@ -250,30 +275,56 @@ class ChangeControl:
                 key = "held_dwell" if self.down_dwell_s - since_map >= rate_wait else "held_rate"
                 return self._hold(key, f"{what}; change in {wait:.2f} s")
             snr = _lin(eff_db)
+            if due:  # an upgrade is due as well: one reload does both
+                alloc, note = self._load(snr)
+                self._counters["upgrade"] += 1
+                return self._adopt(DecisionKind.RELOAD, alloc,
+                                   f"reload: {what}; upgrade due{note}", now_s, mean_db,
+                                   restart_upgrade=True)
             swap = self._bit_swap(cur, snr, low) if n_low <= self.swap_max_tones else None
             if swap is not None:
                 alloc, changed = swap
                 delta = alloc.total_bits - cur.total_bits
                 return self._adopt(DecisionKind.BIT_SWAP, alloc,
                                    f"bit swap: {what}; {_tones(changed)} changed, {delta:+d} bits",
-                                   now_s, mean_db)
+                                   now_s, mean_db, restart_upgrade=False)
             alloc, note = self._load(snr)
             return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {what}{note}", now_s,
-                               mean_db)
+                               mean_db, restart_upgrade=False)
 
-        if since_map >= self.up_dwell_s and rate_wait <= 0 and now_s >= self._next_upgrade_s:
-            self._next_upgrade_s = now_s + self.upgrade_check_s
-            guarded, _ = self._load(_lin(eff_db - self.upshift_margin_db))
-            gain = guarded.total_bits - cur.total_bits
-            if gain >= max(self.min_gain_bits, 1):
-                alloc, note = self._load(_lin(eff_db))
-                self._counters["upgrade"] += 1
-                return self._adopt(
-                    DecisionKind.RELOAD, alloc,
-                    f"upgrade: {alloc.total_bits - cur.total_bits:+d} bits "
-                    f"({gain:+d} even with {self.upshift_margin_db:g} dB more margin){note}",
-                    now_s, mean_db)
+        if due and rate_wait <= 0:
+            alloc, note = self._load(_lin(eff_db))
+            self._counters["upgrade"] += 1
+            return self._adopt(
+                DecisionKind.RELOAD, alloc,
+                f"upgrade: {alloc.total_bits - cur.total_bits:+d} bits ({gain:+d} even with "
+                f"{self.upshift_margin_db:g} dB more margin for "
+                f"{now_s - self._gain_since_s:.1f} s){note}", now_s, mean_db,
+                restart_upgrade=True)
+        if not math.isnan(self._gain_since_s):
+            return self._hold("keep", f"margins ok ({worst_text}); upgrade pending for "
+                              f"{now_s - self._gain_since_s:.1f} of {self.up_dwell_s:g} s")
         return self._hold("keep", f"margins ok ({worst_text})")
+
+    def _upgrade_due(self, now_s: float) -> bool:
+        return not math.isnan(self._gain_since_s) and \
+            now_s - self._gain_since_s >= self.up_dwell_s
+
+    def _upgrade_gain(self, eff_db: np.ndarray, cur: Allocation, now_s: float, *,
+                      now: bool = False) -> int:
+        """Every ``upgrade_check_s`` (or ``now``): bits a map with ``upshift_margin_db`` more
+        margin would gain over ``cur``; keeps ``_gain_since_s``, the start of the present run of
+        checks that found at least ``min_gain_bits``. Between checks, the last gain found."""
+        if now or now_s >= self._next_upgrade_s:
+            self._next_upgrade_s = now_s + self.upgrade_check_s
+            self._checked_s = now_s
+            guarded, _ = self._load(_lin(eff_db - self.upshift_margin_db))
+            self._last_gain = guarded.total_bits - cur.total_bits
+            if self._last_gain < max(self.min_gain_bits, 1):
+                self._gain_since_s = math.nan
+            elif math.isnan(self._gain_since_s):
+                self._gain_since_s = now_s
+        return self._last_gain
 
     # ------------------------------------------------------------------ helpers
 
@@ -284,7 +335,7 @@ class ChangeControl:
         return Decision(kind=_KEEP, reason=reason)
 
     def _adopt(self, kind: DecisionKind, alloc: Allocation, reason: str, now_s: float,
-               mean_db: float) -> Decision:
+               mean_db: float, *, restart_upgrade: bool) -> Decision:
         cur = self._current
         if cur is None or cur.bits.size != alloc.bits.size:
             changed = int(alloc.bits.size)
@@ -297,6 +348,8 @@ class ChangeControl:
         self._changed_s = float(now_s)
         self._ref_mean_db = mean_db
         self._next_upgrade_s = -math.inf
+        if restart_upgrade:
+            self._gain_since_s = math.nan
         self._counters[kind.value] += 1
         return Decision(kind=kind, reason=reason, allocation=alloc, tones_changed=changed)
 

@@ -198,6 +198,10 @@ class SimSection(Section):
     interferer_tone: Optional[float] = Field(
         None, description="narrowband interferer position, signed tone (may be fractional)")
     interferer_db: float = Field(0.0, description="interferer power relative to a nominal tone, dB")
+    interferer_start_s: Optional[float] = Field(
+        None, description="interferer switched on at this simulated time, s (none: from the start)")
+    interferer_stop_s: Optional[float] = Field(
+        None, description="interferer switched off at this simulated time, s (none: never)")
     drift_db: float = Field(0.0, description="slow gain drift, peak deviation, dB")
     drift_period_s: float = Field(60.0, description="period of the gain drift, s")
     events: list[FadeEventSection] = Field(
@@ -229,6 +233,14 @@ class SimSection(Section):
     def _threshold(cls, v):
         if not 0.0 < v < 1.0:
             raise ValueError(f"sync_threshold={v} must be in (0, 1)")
+        return v
+
+    @field_validator("interferer_stop_s")
+    @classmethod
+    def _interferer_window(cls, v, info):
+        start = info.data.get("interferer_start_s")
+        if v is not None and start is not None and not v > start:
+            raise ValueError(f"interferer_stop_s={v} must be after interferer_start_s={start}")
         return v
 
 
@@ -328,20 +340,21 @@ def _non_negative(name: str, v: float) -> float:
 class EstimatorSection(Section):
     """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator.Estimator).
 
-    Defaults suit a slowly fading indoor link (people moving, Doppler of a hertz or two, so a
-    coherence time of a few hundred milliseconds) estimated at tens to hundreds of frames per
-    second with about 1 dB of per-frame estimation noise.
+    Defaults suit a slowly fading indoor link (people moving about: Doppler of a few tenths of a
+    hertz, a coherence time of a second or more) estimated at tens to hundreds of frames per
+    second with about 1 dB of per-frame estimation noise. Faster fading wants a shorter tau_s.
     """
 
     tau_s: float = Field(
-        0.25, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
+        0.1, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
     std_tau_s: float = Field(
         1.0, description="time constant of the per-tone variance tracker, s")
     std_init_db: float = Field(
         3.0, description="uncertainty (std, dB) given to a tone before its variance is learnt")
     backoff_sigmas: float = Field(
-        1.0, description="effective SNR = smoothed SNR minus this many std, so noisy tones "
-                         "carry fewer bits")
+        1.0, description="effective SNR = smoothed SNR minus this many std (frame spread and "
+                         "uncertainty of the tracked value combined), so noisy tones carry fewer "
+                         "bits")
     outlier_db: float = Field(
         6.0, description="smallest gate, dB: a tone further than this (and than "
                          "outlier_sigmas std) from its tracked value is held as an outlier")
@@ -359,8 +372,9 @@ class EstimatorSection(Section):
     tone_window: int = Field(
         1, description="half-width in tones of the smoothing across neighbours (0: off)")
     tone_agree_db: float = Field(
-        1.0, description="neighbours are averaged in only where their smoothed SNR is within "
-                         "this of the tone's, dB; deeper notches and interferers stay intact")
+        1.0, description="a pair of neighbours (one each side) is averaged in only where both "
+                         "are within this of the tone, dB; deeper notches and interferers stay "
+                         "intact")
 
     @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s")
     @classmethod
@@ -412,11 +426,14 @@ class ChangeSection(Section):
     min_gain_bits: int = Field(
         4, description="smallest gain in bits per symbol worth an upgrade")
     down_dwell_s: float = Field(
-        0.1, description="minimum time since the last map before a downgrade, s")
+        0.1, description="minimum time since the last map before a downgrade (bit swap or "
+                         "reload), s")
     up_dwell_s: float = Field(
-        5.0, description="minimum time since the last map before an upgrade, s")
+        1.0, description="an upgrade is made once it has been worth it (see upshift_margin_db) "
+                         "for this long without a break; upgrades, emergencies and first maps "
+                         "are at least this far apart, s")
     upgrade_check_s: float = Field(
-        0.25, description="after the upgrade dwell, how often an upgrade is evaluated, s")
+        0.25, description="how often an upgrade is evaluated (one loader run), s")
     max_maps_per_s: float = Field(
         10.0, description="no two maps closer than 1/this, emergencies included, 1/s")
     swap_max_tones: int = Field(
@@ -424,8 +441,9 @@ class ChangeSection(Section):
     swap_max_loss_bits: int = Field(
         4, description="a bit swap may lose at most this many bits per symbol, else reload")
     emergency_fraction: float = Field(
-        0.25, description="this fraction of loaded tones below the downshift margin at once "
-                          "triggers an emergency downshift")
+        0.25, description="this fraction of loaded tones below the downshift margin at once, "
+                          "with the mean SNR down by at least -downshift_margin_db, triggers an "
+                          "emergency downshift")
     emergency_drop_db: float = Field(
         6.0, description="a drop of the mean tracked SNR by this much since the current map "
                          "triggers an emergency downshift, dB")

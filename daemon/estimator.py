@@ -12,6 +12,7 @@ Per tone and per accepted frame, with ``x`` the frame's SNR in dB and ``m`` the 
     |d| > max(outlier_db, outlier_sigmas * std)  -> outlier, held back (see below)
     m    += alpha * d
     var   = (1 - beta) var + beta * d**2 * (2 - alpha) / 2,   beta = 1 - exp(-dt / std_tau_s)
+                                                      (at least 1 / frames so far, at start)
     P     = (1 - alpha)**2 P + alpha**2 var          variance of m itself
     effective = m - backoff_sigmas * sqrt(var + P)
 
@@ -116,7 +117,7 @@ class Estimator:
     True
     """
 
-    def __init__(self, *, tau_s: float = 0.25, std_tau_s: float = 1.0, std_init_db: float = 3.0,
+    def __init__(self, *, tau_s: float = 0.1, std_tau_s: float = 1.0, std_init_db: float = 3.0,
                  backoff_sigmas: float = 1.0, outlier_db: float = 6.0,
                  outlier_sigmas: float = 4.0, confirm_frames: int = 3,
                  frame_outlier_fraction: float = 0.5, stale_s: float = 5.0,
@@ -217,11 +218,13 @@ class Estimator:
     def _check(self, estimate: Estimate) -> str | None:
         if not estimate.valid:
             return "invalid"
-        if not (math.isfinite(estimate.time_s) and np.isfinite(estimate.snr_db).all()
-                and np.isfinite(estimate.noise_var).all()
-                and np.isfinite(estimate.channel.view(np.float32)).all()):
+        # A float64 sum is finite exactly when every (float32) term is: one pass per array.
+        if not (math.isfinite(estimate.time_s)
+                and math.isfinite(estimate.snr_db.sum(dtype=np.float64))
+                and math.isfinite(estimate.noise_var.sum(dtype=np.float64))
+                and math.isfinite(estimate.channel.view(np.float32).sum(dtype=np.float64))):
             return "non_finite"
-        if not (estimate.noise_var > 0).all():
+        if estimate.noise_var.size and not estimate.noise_var.min() > 0:
             return "noise_var"
         return None
 
@@ -266,7 +269,9 @@ class Estimator:
     def _smooth(self, estimate: Estimate, now_s: float) -> str | None:
         dt = estimate.time_s - self._time_s
         alpha = -math.expm1(-dt / self.tau_s)
-        beta = -math.expm1(-dt / self.std_tau_s)
+        # Until the variance window is full, a plain running mean over the frames so far (the
+        # prior std_init_db counting as one frame): the spread is learnt within a few frames.
+        beta = max(-math.expm1(-dt / self.std_tau_s), 1.0 / (self._frames + 1))
         x = estimate.snr_db.astype(np.float64)
         mean = self._mean_db
         d = x - mean
@@ -352,7 +357,8 @@ class Estimator:
             snr_db = _agree_smooth(snr_db, self.tone_window, self.tone_agree_db)
         std_db = np.sqrt(self._var_db2)
         mean_std_db = np.sqrt(self._mean_var_db2)
-        spread = np.hypot(std_db, mean_std_db)
+        spread = self._var_db2 + self._mean_var_db2
+        np.sqrt(spread, out=spread)
         spread *= self.backoff_sigmas
         return Tracked(
             plan_id=self._plan_id, tone_index=self._tones, snr_db=snr_db, std_db=std_db,
@@ -375,15 +381,17 @@ def _agree_smooth(values_db: np.ndarray, window: int, agree_db: float) -> np.nda
     neighbours only in pairs leaves a linear slope unbiased (a one-sided neighbour on a slope
     would pull the tone towards it, and toggle as the values wander near the threshold).
     """
-    n = values_db.size
-    acc = values_db.copy()
+    v = values_db
+    n = v.size
+    acc = v.copy()
     count = np.ones(n)
     ok = None
     for shift in range(1, min(window, (n - 1) // 2) + 1):
-        centre = values_db[shift:n - shift]
-        lo, hi = values_db[:n - 2 * shift], values_db[2 * shift:]
-        pair_ok = (np.abs(lo - centre) <= agree_db) & (np.abs(hi - centre) <= agree_db)
+        step = np.abs(v[shift:] - v[:-shift])          # |v[i + shift] - v[i]|
+        pair_ok = np.maximum(step[:n - 2 * shift], step[shift:]) <= agree_db
         ok = pair_ok if ok is None else ok[1:-1] & pair_ok
-        acc[shift:n - shift] += np.where(ok, lo + hi, 0.0)
-        count[shift:n - shift] += 2 * ok
+        pair = v[:n - 2 * shift] + v[2 * shift:]
+        pair *= ok
+        acc[shift:n - shift] += pair
+        count[shift:n - shift] += 2.0 * ok
     return acc / count

@@ -6,8 +6,8 @@ One call of :meth:`Receiver.receive` turns a block of complex baseband samples i
 1. **Timing and fractional offset** (Schmidl and Cox, IEEE Trans. Commun. 45(12), 1997): the
    metric ``M(d) = |P(d)|^2 / R(d)^2`` of the two-halves sync symbol, with ``R`` the mean energy
    of both halves (so ``M <= 1`` also where a burst starts or ends), first on a grid of
-   ``B``-sample blocks (block sums and a cumulative sum, so the search costs two passes over the
-   block), then exactly around the first coarse peak above ``sync_threshold``. The frame start is
+   ``B``-sample blocks (block sums, then window sums by pairwise adds, so the search costs
+   about two passes over the block), then exactly around the first coarse peak above ``sync_threshold``. The frame start is
    the middle of the metric's 90 % plateau, which lies inside the cyclic prefix; the fractional
    offset is ``angle(P) / pi`` tone spacings.
 2. **Integer offset**: the differential pattern between sync and first training symbol, searched
@@ -45,6 +45,9 @@ from brimline.drivers.ofdm import (
 )
 
 __all__ = ["Receiver", "RxFrame", "MapLookup", "FrameScanner"]
+
+#: Fine offset (tone spacings) above which a frame is transformed again with it.
+_REFINE_TONES = 0.01
 
 #: ``lookup(map_seq) -> (bits, power_lin)`` over the data tones, or None when unknown.
 MapLookup = Callable[[int], "tuple[np.ndarray, np.ndarray] | None"]
@@ -129,7 +132,8 @@ class _MapTables:
         # - gain (M - 1).
         top = np.stack([m_i - 1, m_q - 1], axis=-1).astype(np.float64)
         self.top = top.astype(np.float32)
-        self.half_inv_gain = np.repeat(0.5 * inv_gain, 2).reshape(-1, 2).astype(np.float32)
+        self.zero = np.zeros_like(self.top)
+        self.half_inv_gain_tone = (0.5 * inv_gain).astype(np.float32)
         self.half_top = (0.5 * top).astype(np.float32)
         self.two_gain = np.repeat(2.0 * gain, 2).reshape(-1, 2).astype(np.float32)
         self.gain_top = (gain[:, None] * top).astype(np.float32)
@@ -167,13 +171,20 @@ class Receiver:
         self._half = n // 2
         self._block = max(8, min(32, self._half // 8))
         self._decimate = self._block // 4 if self._half >= 256 else self._block // 8
-        self._phase_ramp = (-2j * np.pi * np.arange(n) / n)
+        # Samples the coarse search tries first (a multiple of the block and decimation).
+        self._coarse_head = 8 * plan.symbol_len // self._block * self._block
+        # Derotation ramp exp(-2 pi i eps k / n) as an outer product of two short ramps (k = p
+        # n2 + q), so each frame evaluates sqrt(n)-ish exponentials rather than n.
+        self._ramp_split = 1 << (int(math.log2(n)) // 2)
+        self._ramp_coarse = -2.0 * np.pi * np.arange(n // self._ramp_split) * self._ramp_split / n
+        self._ramp_fine = -2.0 * np.pi * np.arange(self._ramp_split) / n
         g = math.ceil(plan.cfo_range_tones / 2)
         self._shifts = 2 * np.arange(-g, g + 1)
         used_even = fmt.used[fmt.even_pos]
         self._int_bins = (used_even[None, :] + self._shifts[:, None]) % n
         self._diff_conj = np.conj(fmt.differential).astype(np.complex64)
         self._train = fmt.train.astype(np.float32)
+        self._train_mean = self._train / plan.train_symbols
         self._train_data = self._train[fmt.data_pos]
         self._pilots = fmt.pilots.astype(np.float32)
         self._scramble = fmt.scramble.astype(np.float32)
@@ -190,8 +201,9 @@ class Receiver:
         self._row_offsets = (np.arange(1 + plan.train_symbols + plan.data_symbols)
                              - (1 + plan.train_symbols) - index.mean())
         self._data_index_spread = max(float(np.sum(self._data_offsets ** 2)), 1.0)
-        self._times = np.arange(1 + plan.train_symbols + plan.data_symbols,
-                                dtype=np.float32)[:, None]
+        rows = np.arange(1 + plan.train_symbols + plan.data_symbols, dtype=np.float64)
+        offsets = (rows - rows.mean()).astype(np.float32)  # row times about their mean
+        self._design = np.stack([np.ones_like(offsets), offsets, offsets * offsets])
         default = _MapTables(np.full(plan.data_tones.size, int(default_bits)),
                              np.ones(plan.data_tones.size))
         self._tables: dict[int, _MapTables] = {-1: default}
@@ -234,12 +246,24 @@ class Receiver:
             return RxFrame("truncated", start=d0, end=max(d0 - plan.cp_len, 1),
                            sync_metric=metric)
         eps_frac = float(np.angle(p)) / np.pi
-        windows = np.lib.stride_tricks.as_strided(
-            r[d0:], shape=(plan.n_symbols, n), strides=(s * r.itemsize, r.itemsize),
-            writeable=False)
-        derotate = np.exp(self._phase_ramp * eps_frac).astype(np.complex64)
-        spectra = np.fft.fft(windows * derotate, axis=1)
-        return self._estimate(r, d0, end, metric, eps_frac, spectra, lookup, demodulate)
+        return self._estimate(r, d0, end, metric, eps_frac, lookup, demodulate)
+
+    def _spectra(self, r: np.ndarray, d0: int, eps_frac: float) -> np.ndarray:
+        """Unnormalized spectra of every symbol of the frame starting at ``d0``, with the
+        offset ``eps_frac`` (tone spacings) removed in the time domain: one batched FFT."""
+        plan = self.plan
+        n, s = plan.fft_size, plan.symbol_len
+        span = plan.n_symbols * s
+        if d0 + span <= r.size:  # a reshaped view costs less than as_strided
+            windows = r[d0:d0 + span].reshape(plan.n_symbols, s)[:, :n]
+        else:
+            windows = np.lib.stride_tricks.as_strided(
+                r[d0:], shape=(plan.n_symbols, n), strides=(s * r.itemsize, r.itemsize),
+                writeable=False)
+        derotate = np.multiply.outer(
+            np.exp(1j * eps_frac * self._ramp_coarse).astype(np.complex64),
+            np.exp(1j * eps_frac * self._ramp_fine).astype(np.complex64)).ravel()
+        return np.fft.fft(windows * derotate, axis=1)
 
     # ------------------------------------------------------------------ steps
 
@@ -247,42 +271,49 @@ class Receiver:
         """Return (start, metric, P) of the first frame, (-1, best metric, 0) or None."""
         half, b = self._half, self._block
         cp = self.plan.cp_len
-        # Coarse metric on every dec-th sample, summed over blocks of b samples.
-        dec = self._decimate
-        rd = r[::dec].copy() if dec > 1 else r
-        hd = half // dec
-        zd = np.conj(rd[:-hd]) * rd[hd:]
-        ed = np.abs(rd)
-        ed *= ed
-        lb, bd = half // b, b // dec
-        nz, ne = zd.size // bd, ed.size // bd
-        cz = np.zeros(nz + 1, np.complex128)
-        np.cumsum(_block_sums(zd, bd, nz), out=cz[1:])
-        ce = np.zeros(ne + 1, np.float64)
-        np.cumsum(_block_sums(ed, bd, ne), out=ce[1:])
-        count = min(nz - lb, ne - 2 * lb) + 1
-        if count <= 0:
-            return None
-        pc = cz[lb:lb + count] - cz[:count]
-        rc = 0.5 * (ce[2 * lb:2 * lb + count] - ce[:count])
-        mc = (pc.real ** 2 + pc.imag ** 2) / np.maximum(rc * rc, 1e-30)
-        above = np.flatnonzero(mc > self.sync_threshold)
+        # The coarse search looks at the block's head first (frames usually start there) and
+        # at the whole block only when the head holds no crossing with its peak window.
+        reach = (half + cp) // b + 2  # coarse points searched for the peak after a crossing
+        head = self._coarse_head
+        coarse = self._coarse(r[:head]) if r.size > head + b else None
+        if coarse is not None:
+            mc, count = coarse
+            above = np.flatnonzero(mc > self.sync_threshold)
+            if above.size == 0 or above[0] + reach > count:
+                coarse = None
+        if coarse is None:
+            coarse = self._coarse(r)
+            if coarse is None:
+                return None
+            mc, count = coarse
+            above = np.flatnonzero(mc > self.sync_threshold)
         if above.size == 0:
             return -1, float(mc.max(initial=0.0)), 0
         first = above[0]
-        stop = min(first + (half + cp) // b + 2, count)
+        stop = min(first + reach, count)
         peak = first + int(np.argmax(mc[first:stop]))
         # Exact metric at every sample around the coarse peak.
         lo = max(0, peak * b - cp - 2 * b)
         hi = min(peak * b + cp + 2 * b, r.size - 2 * half)
         if hi <= lo:
             return None
+        # Window sums as the first window plus a running sum of what enters minus what
+        # leaves, so the running sums span the search width rather than the whole segment.
         seg = r[lo:hi + 2 * half].astype(np.complex128)
-        zc = np.concatenate(([0], np.cumsum(np.conj(seg[:-half]) * seg[half:])))
-        ec = np.concatenate(([0], np.cumsum(seg.real ** 2 + seg.imag ** 2)))
         width = hi - lo + 1
-        pf = zc[half:half + width] - zc[:width]
-        rf = 0.5 * (ec[2 * half:2 * half + width] - ec[:width])
+        prod = np.conj(seg[:-half])
+        prod *= seg[half:]
+        energy = seg.real * seg.real
+        energy += seg.imag * seg.imag
+        pf = np.empty(width, np.complex128)
+        pf[0] = prod[:half].sum()
+        np.cumsum(prod[half:half + width - 1] - prod[:width - 1], out=pf[1:])
+        pf[1:] += pf[0]
+        rf = np.empty(width)
+        rf[0] = energy[:2 * half].sum()
+        np.cumsum(energy[2 * half:2 * half + width - 1] - energy[:width - 1], out=rf[1:])
+        rf[1:] += rf[0]
+        rf *= 0.5
         mf = (pf.real ** 2 + pf.imag ** 2) / np.maximum(rf * rf, 1e-30)
         top = int(np.argmax(mf))
         if not mf[top] > self.sync_threshold:  # a coarse false alarm: not confirmed exactly
@@ -295,28 +326,61 @@ class Receiver:
         d = (left + right) // 2
         return lo + d, float(mf[d]), complex(pf[d])
 
-    def _estimate(self, r, d0, end, metric, eps_frac, spectra, lookup, demodulate) -> RxFrame:
+    def _coarse(self, r: np.ndarray):
+        """Coarse Schmidl-Cox metric ``(mc, count)`` at every ``B``-th sample start of ``r``
+        (None when ``r`` is too short): every dec-th sample, summed over blocks of B."""
+        half, b, dec = self._half, self._block, self._decimate
+        rd = r[::dec].copy() if dec > 1 else r
+        hd = half // dec
+        zd = np.conj(rd[:-hd]) * rd[hd:]
+        ed = np.abs(rd)
+        ed *= ed
+        lb, bd = half // b, b // dec
+        nz, ne = zd.size // bd, ed.size // bd
+        count = min(nz - lb, ne - 2 * lb) + 1
+        if count <= 0:
+            return None
+        pc = _sliding_sums(_block_sums(zd, bd, nz), lb)[:count]
+        rc = _sliding_sums(_block_sums(ed, bd, ne), 2 * lb)[:count]
+        rc *= 0.5
+        return (pc.real ** 2 + pc.imag ** 2) / np.maximum(rc * rc, 1e-30), count
+
+    def _estimate(self, r, d0, end, metric, eps_frac, lookup, demodulate,
+                  refine=True) -> RxFrame:
         plan, fmt = self.plan, self.format
         n, s, t = plan.fft_size, plan.symbol_len, plan.train_symbols
+        spectra = self._spectra(r, d0, eps_frac)
         # Integer offset: even shift maximizing the sync/training differential correlation.
         cross = np.conj(spectra[0]) * spectra[1]
-        score = np.abs(np.sum(cross[self._int_bins] * self._diff_conj, axis=1))
+        score = np.abs(cross[self._int_bins] @ self._diff_conj)
         shift = int(self._shifts[int(np.argmax(score))])
         bins = (fmt.used_bins + shift) % n
         # Per-symbol phase step from the identical training symbols (all offsets together).
         head = np.take(spectra[1:t + 2], bins, axis=1)  # training symbols and header
-        theta = float(np.angle(np.sum(np.conj(head[:t - 1]) * head[1:t])))
+        steps = np.conj(head[:t - 1]) * head[1:t]
+        step = steps[0] if t == 2 else steps.sum(axis=0)
+        # Tones a narrowband interferer dominates take no part: its own phase step would bias
+        # the offset (and, through the time-domain correction, cost every tone some ICI).
+        mag = np.abs(step)  # |H|^2 n per tone
+        level = _local_level(mag)
+        hit = mag > 2.0 * level  # 3 dB above the local level
+        step[hit] = 0.0
+        theta = float(np.angle(np.sum(step)))
         expected = 2 * np.pi * (eps_frac * s + shift * plan.cp_len) / n
         eps_fine = math.remainder(theta - expected, 2 * np.pi) * n / (2 * np.pi * s)
+        if refine and abs(eps_fine) > _REFINE_TONES:
+            # The sync offset was off (an interferer's share of the sync correlation biases it):
+            # transform again with the fine offset, or the residual leaks between tones.
+            return self._estimate(r, d0, end, metric, eps_frac + eps_fine, lookup, demodulate,
+                                  refine=False)
         cfo_tones = eps_frac + shift + eps_fine
         phase = (np.exp(-1j * theta * self._sym_index) / math.sqrt(n)).astype(np.complex64)
         head *= phase[1:t + 2, None]
-        h_train = head[:t].mean(axis=0) * self._train
-        # Header: maximal-ratio combining of the repeated BPSK bits.
-        y_head = head[t]
-        soft = (y_head * np.conj(h_train)).real * self._scramble
-        reps = self._reps * HEADER_BITS
-        soft_bits = soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)
+        h_train = head[0] + head[1] if t == 2 else head[:t].sum(axis=0)
+        h_train *= self._train_mean  # training sign / t
+        # Header: maximal-ratio combining of the repeated BPSK bits, robust to a narrowband
+        # interferer (which would otherwise outvote the good copies of its bit).
+        soft_bits = self._header_soft(head, h_train, hit, level * (1.0 / n))
         header_ok, seq, counter = decode_header((soft_bits < 0).astype(np.uint8))
         # Data symbols: remove the residual phase drift measured on the pilots. A straight line
         # through the per-symbol common phases follows a residual offset with far less noise
@@ -330,7 +394,8 @@ class Receiver:
         slope = np.dot(k, cpe) / self._data_index_spread
         # The line also holds for the training and header rows: an error in the training phase
         # step shows up as a slope here, and extending the line removes it from every row.
-        row_phase = phase[1:] * np.exp(-1j * (cpe.mean() + slope * self._row_offsets))
+        row_phase = phase[1:] * np.exp(-1j * (cpe.mean() + slope * self._row_offsets)).astype(
+            np.complex64)
         # Least squares over every symbol with known tone values: training, header, data.
         dp = fmt.data_pos
         rows = np.take(spectra[1:], bins[dp], axis=1)  # (training + header + data, data tones)
@@ -338,7 +403,8 @@ class Receiver:
         x = np.empty(rows.shape, np.complex64)  # data rows are filled by the decisions
         x[:t] = self._train_data
         if header_ok:  # the header row is known once its CRC passes
-            signs = np.append(1.0 - 2.0 * (soft_bits < 0), 1.0).astype(np.float32)
+            signs = np.ones(HEADER_BITS + 1, np.float32)  # the last: filler tones
+            signs[:HEADER_BITS][soft_bits < 0] = -1.0
             x[t] = signs[self._header_bit_data] * self._scramble_data
         else:
             x[t] = 0.0
@@ -349,15 +415,15 @@ class Receiver:
         if tables is not None:
             # Decide with the training channel; fit level and slope with those decisions (the
             # estimate); decide again with the leave-one-out channel (the demodulated data).
-            x[t + 1:] = self._decide(rows[t + 1:], h_train[dp], tables)[0]  # h: one per tone
-            h, h_rows, residual = _fit(rows, x, self._times, linear=True,
+            self._decide(rows[t + 1:], h_train[dp], tables, points=x[t + 1:])  # h: one per tone
+            h, h_rows, residual = _fit(rows, x, self._design, linear=True,
                                        leave_one_out=t + 1 if demodulate else None)
             used, params, decided = known + plan.data_symbols, 2, None
             if demodulate:
-                idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables)[1].astype(np.uint8)
+                idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables).astype(np.uint8)
                 decided = (idx[..., 0], idx[..., 1], tables.b_q)
         else:
-            h, _, residual = _fit(rows[:t + 1], x[:t + 1], self._times[:t + 1], linear=False)
+            h, _, residual = _fit(rows[:t + 1], x[:t + 1], None, linear=False)
             used, params, decided = known, 1, None
         # S ~ sigma^2 Gamma(N - params): E[1/S] = 1 / ((N - params - 1) sigma^2).
         noise_var = np.maximum(residual / max(used - params - 1, 1), 1e-30)
@@ -377,6 +443,26 @@ class Receiver:
             decided=decided, symbols_used=used)
 
     # ------------------------------------------------------------------ helpers
+
+    def _header_soft(self, head: np.ndarray, h_train: np.ndarray, hit: np.ndarray,
+                     level: np.ndarray) -> np.ndarray:
+        """Combined soft values of the header bits (negative: bit 1), from phase-corrected
+        training rows and header row ``head``, the training channel ``h_train``, the tones
+        ``hit`` by a narrowband interferer and the local channel power ``level`` per tone.
+
+        Maximal-ratio combining ``sum Re(y conj(h))`` over the copies, with guards against a
+        narrowband interferer, which inflates a tone's apparent channel or its header value:
+        ``hit`` tones are erased and every vote is clipped to 1.5 times the local level.
+        (Erasing tones whose training symbols differ was tried and dropped: in deep fades it
+        erased good copies.)
+        """
+        t = self.plan.train_symbols
+        soft = (head[t] * np.conj(h_train)).real
+        soft *= self._scramble
+        np.clip(soft, -1.5 * level, 1.5 * level, out=soft)
+        soft[hit] = 0.0
+        reps = self._reps * HEADER_BITS
+        return soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)
 
     def _tables_for(self, seq: int | None, lookup: MapLookup | None) -> _MapTables | None:
         if seq is None:
@@ -400,77 +486,122 @@ class Receiver:
         return tables
 
     @staticmethod
-    def _decide(y: np.ndarray, h: np.ndarray, tables: _MapTables):
-        """Hard decisions on every data tone at once; returns (points, I and Q level indices).
+    def _decide(y: np.ndarray, h: np.ndarray, tables: _MapTables,
+                points: np.ndarray | None = None) -> np.ndarray:
+        """Hard decisions on every data tone at once; returns the I and Q level indices.
 
+        ``h`` is one channel per tone (shape (tones,)) or one per element. With ``points`` (a
+        complex64 array shaped like ``y``) the decided constellation points are written there.
         Works on the complex arrays viewed as interleaved float32 (I, Q) pairs, so each step is
-        one pass for both axes. ``fmax``/``fmin`` rather than ``clip`` so that a NaN sample
+        one pass for both axes; the scale ``1 / (2 gain h)`` is one complex factor (the gain is
+        the same on both axes). ``fmax``/``fmin`` rather than ``clip`` so that a NaN sample
         decides to a valid index.
         """
-        z = y * (1.0 / h) if h.ndim == 1 else y / h
+        if h.ndim == 1:
+            z = y * (tables.half_inv_gain_tone / h)
+        else:  # y conj(h) / |h|^2: a complex division is several times slower
+            z = np.conj(h)
+            hp = _as_pairs(h)
+            mag = hp[..., 0::2] * hp[..., 0::2]
+            mag += hp[..., 1::2] * hp[..., 1::2]
+            np.divide(tables.half_inv_gain_tone, mag, out=mag)
+            z *= y
+            z *= mag.astype(np.complex64)
         idx = z.view(np.float32).reshape(*z.shape, 2)
-        idx *= tables.half_inv_gain
         idx += tables.half_top
         np.rint(idx, out=idx)
-        np.fmax(idx, 0.0, out=idx)
+        np.fmax(idx, tables.zero, out=idx)  # an array operand: a scalar is 3x slower here
         np.fmin(idx, tables.top, out=idx)
-        points = idx * tables.two_gain
-        points -= tables.gain_top
-        return points.view(np.complex64).reshape(z.shape), idx
+        if points is not None:
+            out = points.view(np.float32).reshape(idx.shape)
+            np.multiply(idx, tables.two_gain, out=out)
+            out -= tables.gain_top
+        return idx
 
 
-def _fit(rows: np.ndarray, x: np.ndarray, times: np.ndarray, *, linear: bool,
+def _fit(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, linear: bool,
          leave_one_out: int | None = None):
-    """Per-tone least-squares channel ``h0 + slope (n - n_mean)`` over symbol rows.
+    """Per-tone least-squares channel ``h0 + slope * o[n]`` over symbol rows.
 
     Returns ``(h, h_rows, residual)``: the channel at each tone's energy centroid in time (what
     the estimate reports), the channel per row and the residual energy ``sum |y - h_n x|^2`` per
-    tone. ``linear=False`` fits a constant. With ``leave_one_out=k`` the channel of rows ``k:``
+    tone. ``design`` holds the rows ``(1, o, o^2)`` (float32, shape (3, rows)) with ``o`` the row
+    times about their mean (None with ``linear=False``, which fits a constant). With ``leave_one_out=k`` the channel of rows ``k:``
     is the fit *without* that row, exact from the leverage ``q_i = |x_i|^2 w_i``:
     ``H_-i = (H_i - w_i conj(x_i) y_i) / (1 - q_i)``, so a symbol's own, possibly wrong,
     decision cannot pull the channel it is decided with.
     """
-    # Sums over rows are vector-matrix products (gemv) on float32 views of the complex arrays:
-    # same-type loops, no casts, several times faster than broadcasting against a column.
-    energy = np.abs(x)
-    energy *= energy
-    corr = rows * np.conj(x)
-    corr_pairs = _as_pairs(corr)
-    ones = np.ones(rows.shape[0], np.float32)
-    a = np.maximum(ones @ energy, 1e-30)
-    u = _as_complex(ones @ corr_pairs)
+    # Weighted sums over rows are small matrix products against the (rows x 1, o, o^2) design
+    # on float32 views of the complex arrays (same-type BLAS loops, no casts); squared
+    # magnitudes are I^2 + Q^2 on the interleaved pairs (one pass, no square root).
+    nrow = rows.shape[0]
+    corr = np.conj(x)
+    corr *= rows
+    xp = _as_pairs(x)
+    sq = xp * xp
     if not linear:
-        h = u / a
+        ones = np.ones(nrow, np.float32)
+        a = np.maximum(_pair_sum(ones @ sq), 1e-30)
+        h = _as_complex(ones @ _as_pairs(corr)) / a
         h_rows = np.broadcast_to(h, rows.shape)
+        err = rows - h * x
     else:
-        o = (times - times.mean())[:, 0]  # the same time offsets for every tone
-        o2 = o * o
-        b = o @ energy
-        c = o2 @ energy
-        v = _as_complex(o @ corr_pairs)
+        o = design[1]
+        moments = _pair_sum(design @ sq)
+        a, b, c = np.maximum(moments[0], 1e-30), moments[1], moments[2]
+        uv = _as_complex(design[:2] @ _as_pairs(corr))  # (sum conj(x) y, sum o conj(x) y)
+        u, v = uv[0], uv[1]
         det = np.maximum(a * c - b * b, 1e-30)
-        h0 = ((c * u - b * v) / det).astype(np.complex64)
-        slope = ((a * v - b * u) / det).astype(np.complex64)
-        pairs = np.multiply.outer(o, _as_pairs(slope))
-        pairs += _as_pairs(h0)
-        h_rows = _as_complex(pairs)
+        inv_det = 1.0 / det
+        coef = np.empty_like(uv)  # (h0, slope) per tone
+        np.multiply(c * inv_det, u, out=coef[0])
+        coef[0] -= (b * inv_det) * v
+        np.multiply(a * inv_det, v, out=coef[1])
+        coef[1] -= (b * inv_det) * u
+        h0, slope = coef[0], coef[1]
+        # Channel per row in one product: [1, o] (rows x 2) times [h0; slope] (2 x tones).
+        h_rows = _as_complex(design[:2].T @ _as_pairs(coef))
         h = h0 + slope * (b / a)
-    err = h_rows * x
-    np.subtract(rows, err, out=err)
-    residual = ones @ _power(err)
+        err = h_rows * x
+        np.subtract(rows, err, out=err)
+    ep = _as_pairs(err)
+    ep *= ep
+    residual = _pair_sum(np.ones(nrow, np.float32) @ ep)
     if linear and leave_one_out is not None:
         k = leave_one_out
-        w = np.multiply.outer(o2[k:], (a / det).astype(np.float32))
-        w -= np.multiply.outer(o[k:], (2.0 * b / det).astype(np.float32))
-        w += (c / det).astype(np.float32)
+        w = np.multiply.outer(o[k:] * o[k:], a * inv_det)
+        w -= np.multiply.outer(o[k:], 2.0 * b * inv_det)
+        w += c * inv_det
         part = h_rows[k:]
         part -= corr[k:] * w.astype(np.complex64)
-        w *= energy[k:]
+        w *= _pair_sum(sq[k:])  # leverage |x|^2 w
         np.subtract(1.0, w, out=w)
         np.maximum(w, 1e-6, out=w)
         np.divide(1.0, w, out=w)
         part *= w.astype(np.complex64)
     return h, h_rows, residual
+
+
+def _local_level(g: np.ndarray) -> np.ndarray:
+    """Per-tone level of ``g`` that a one- or two-tone peak does not raise: the smaller of the
+    larger of the tones two and three away on each side (edges repeat the end values)."""
+    m = g.size
+    pad = np.concatenate([g[:3], g, g[-3:]])
+    left = np.maximum(pad[0:m], pad[1:m + 1])
+    return np.minimum(left, np.maximum(pad[5:m + 5], pad[6:m + 6]))
+
+
+def _sliding_sums(a: np.ndarray, width: int) -> np.ndarray:
+    """Sums of every ``width`` consecutive elements (``a.size - width + 1`` of them): for a
+    power-of-two width by log2(width) pairwise adds (vectorized, unlike a running sum)."""
+    if width & (width - 1):
+        c = np.concatenate([np.zeros(1, a.dtype), np.cumsum(a)])
+        return c[width:] - c[:-width]
+    out, span = a, 1
+    while span < width:
+        out = out[:-span] + out[span:]
+        span *= 2
+    return out
 
 
 def _block_sums(a: np.ndarray, size: int, count: int) -> np.ndarray:
@@ -485,6 +616,11 @@ def _block_sums(a: np.ndarray, size: int, count: int) -> np.ndarray:
 def _as_pairs(z: np.ndarray) -> np.ndarray:
     """A complex64 array's float32 view, (..., n) -> (..., 2n) interleaved I, Q."""
     return z.view(np.float32)
+
+
+def _pair_sum(pairs: np.ndarray) -> np.ndarray:
+    """Sum of each interleaved (I, Q) pair, (..., 2n) -> (..., n) (strided add, not a reduce)."""
+    return pairs[..., 0::2] + pairs[..., 1::2]
 
 
 def _as_complex(pairs: np.ndarray) -> np.ndarray:

@@ -219,6 +219,10 @@ class LinkChannel:
         Signed tone position (may be fractional) of a continuous narrowband interferer.
     interferer_db : float
         Interferer power relative to a nominal tone's power, dB.
+    interferer_start_s, interferer_stop_s : float or None
+        The interferer is on from ``interferer_start_s`` (None: from the start) until before
+        ``interferer_stop_s`` (None: for ever), simulated time in seconds (the clock of the
+        fade events), switched sample by sample.
     drift_db, drift_period_s : float
         Slow sinusoidal gain drift: peak deviation in dB and period in seconds.
     events : list of FadeEvent
@@ -235,6 +239,8 @@ class LinkChannel:
     lead_max_samples: int = 0
     interferer_tone: float | None = None
     interferer_db: float = 0.0
+    interferer_start_s: float | None = None
+    interferer_stop_s: float | None = None
     drift_db: float = 0.0
     drift_period_s: float = 60.0
     events: list = field(default_factory=list)
@@ -244,6 +250,9 @@ class LinkChannel:
     def __post_init__(self) -> None:
         if self.rng is None:
             raise ValueError("LinkChannel needs rng (a seeded numpy Generator)")
+        on, off = self.interferer_start_s, self.interferer_stop_s
+        if on is not None and off is not None and not off > on:
+            raise ValueError(f"interferer_stop_s={off} must be after interferer_start_s={on}")
         prof = profile(self.profile)
         fs = self.plan.sample_rate_hz
         self._prof = prof
@@ -288,9 +297,20 @@ class LinkChannel:
         g = self.taps([t_s])[:, 0]
         return self.gain_lin(t_s) * self.fade_mask(tones, t_s) * (g @ per_tap)
 
-    def interference_var(self, tones: np.ndarray) -> np.ndarray:
-        """Interferer power per signed bin (leakage of a tone at a fractional position)."""
-        if self.interferer_tone is None:
+    def interferer_on(self, t_s: np.ndarray | float) -> np.ndarray | bool:
+        """Whether the interferer is on at time(s) ``t_s`` (seconds)."""
+        t_s = np.asarray(t_s, dtype=np.float64)
+        on = np.ones(t_s.shape, bool)
+        if self.interferer_start_s is not None:
+            on &= t_s >= self.interferer_start_s
+        if self.interferer_stop_s is not None:
+            on &= t_s < self.interferer_stop_s
+        return on if on.ndim else bool(on)
+
+    def interference_var(self, tones: np.ndarray, t_s: float | None = None) -> np.ndarray:
+        """Interferer power per signed bin (leakage of a tone at a fractional position), at time
+        ``t_s`` (None: whenever it is on)."""
+        if self.interferer_tone is None or (t_s is not None and not self.interferer_on(t_s)):
             return np.zeros(np.shape(tones))
         n = self.plan.fft_size
         delta = np.asarray(tones, dtype=np.float64) - self.interferer_tone
@@ -304,7 +324,7 @@ class LinkChannel:
         """Per-data-tone channel, noise variance and SNR of a frame sent at ``t_s``."""
         tones = self.plan.data_tones
         h = self.response(tones, t_s)
-        nv = self.noise_var + self.interference_var(tones)
+        nv = self.noise_var + self.interference_var(tones, t_s)
         return Truth(channel=h, noise_var=nv,
                      snr_db=10.0 * np.log10(np.abs(h) ** 2 / nv))
 
@@ -350,7 +370,10 @@ class LinkChannel:
             n = np.arange(out.size)
             amp = math.sqrt(10.0 ** (self.interferer_db / 10.0) / plan.fft_size)
             phase = 2 * np.pi * self.interferer_tone * (t_s * fs + n - lead) / plan.fft_size
-            out += amp * np.exp(1j * (phase + self._interferer_phase))
+            tone = amp * np.exp(1j * (phase + self._interferer_phase))
+            if self.interferer_start_s is not None or self.interferer_stop_s is not None:
+                tone *= self.interferer_on(t_s + (n - lead) / fs)
+            out += tone
         sigma = math.sqrt(self.noise_var / 2.0)
         out += sigma * (self.rng.standard_normal(out.size) + 1j * self.rng.standard_normal(out.size))
         return out.astype(np.complex64)

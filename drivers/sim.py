@@ -48,7 +48,7 @@ class SimDriver(Driver):
         Called once per frame for the map to transmit; None (or a None result) sends the default
         map of ``default_bits`` per tone.
     profile, doppler_hz, snr_db, cfo_hz, lead_max_samples, interferer_tone, interferer_db,
-    drift_db, drift_period_s : see :class:`~brimline.drivers.channel.LinkChannel`
+    interferer_start_s, interferer_stop_s, drift_db, drift_period_s : see :class:`~brimline.drivers.channel.LinkChannel`
     events : list of dict or FadeEvent
         Band fades (keys start_s, stop_s (None: never), first_tone, last_tone, depth_db).
     frame_rate_hz : float
@@ -80,7 +80,8 @@ class SimDriver(Driver):
                  profile: str = "epa", doppler_hz: float = 5.0, snr_db: float = 25.0,
                  cfo_hz: float = 1500.0, lead_max_samples: int = 64,
                  interferer_tone: float | None = None, interferer_db: float = 0.0,
-                 drift_db: float = 0.0, drift_period_s: float = 60.0, events=(),
+                 interferer_start_s: float | None = None,
+                 interferer_stop_s: float | None = None, drift_db: float = 0.0, drift_period_s: float = 60.0, events=(),
                  frame_rate_hz: float = 50.0, realtime: bool = True, start_s: float = 0.0,
                  seed: int = 1, default_bits: int = 2, max_frames: int | None = None,
                  sync_threshold: float = 0.3) -> None:
@@ -106,6 +107,10 @@ class SimDriver(Driver):
         self.default_bits = int(default_bits)
         self.max_frames = max_frames
         self.rng = np.random.default_rng(seed)
+        if (interferer_start_s is not None and interferer_stop_s is not None
+                and not interferer_stop_s > interferer_start_s):
+            raise ConfigError(f"driver.sim.interferer_stop_s={interferer_stop_s} must be after "
+                              f"interferer_start_s={interferer_start_s}")
         fades = [e if isinstance(e, FadeEvent) else FadeEvent(
             start_s=e["start_s"], first_tone=e["first_tone"], last_tone=e["last_tone"],
             depth_db=e.get("depth_db", 20.0),
@@ -113,7 +118,8 @@ class SimDriver(Driver):
         self.channel = LinkChannel(
             plan, profile=profile, doppler_hz=doppler_hz, snr_db=snr_db, cfo_hz=cfo_hz,
             lead_max_samples=lead_max_samples, interferer_tone=interferer_tone,
-            interferer_db=interferer_db, drift_db=drift_db, drift_period_s=drift_period_s,
+            interferer_db=interferer_db, interferer_start_s=interferer_start_s,
+            interferer_stop_s=interferer_stop_s, drift_db=drift_db, drift_period_s=drift_period_s,
             events=fades, rng=self.rng)
         self.transmitter = Transmitter(plan)
         self.receiver = Receiver(plan, default_bits=default_bits, sync_threshold=sync_threshold)

@@ -377,3 +377,17 @@ class TestBadInput:
         clipped = np.clip(block.real, -level, level) + 1j * np.clip(block.imag, -level, level)
         res = Receiver(plan, clip_level=level).receive(clipped)
         assert res.reason == "clipped" and res.has_estimate
+
+
+class TestWindowSums:
+    """The sync search's window sums against numpy's own convolution (numpy.convolve, "valid"
+    mode: the sum of every run of ``width`` consecutive elements)."""
+
+    @pytest.mark.parametrize("width", [1, 2, 8, 16, 32, 12])
+    def test_sliding_sums_match_convolution(self, width):
+        from brimline.drivers._rx import _sliding_sums
+
+        rng = np.random.default_rng(width)
+        a = (rng.standard_normal(300) + 1j * rng.standard_normal(300)).astype(np.complex64)
+        expected = np.convolve(a.astype(np.complex128), np.ones(width), mode="valid")
+        np.testing.assert_allclose(_sliding_sums(a, width), expected, rtol=1e-5, atol=1e-4)

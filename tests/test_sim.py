@@ -49,12 +49,29 @@ class TestSections:
         with pytest.raises(ConfigError, match=r"driver.sim.frame_rate_hz=0.0: .*positive"):
             parse_section(SimSection, {"frame_rate_hz": 0.0}, where="x.yaml", name="driver.sim")
 
+    def test_interferer_window_messages(self, plan):
+        with pytest.raises(ConfigError, match=r"driver.sim.interferer_stop_s=1.0: .*after"):
+            parse_section(SimSection, {"interferer_start_s": 2.0, "interferer_stop_s": 1.0},
+                          where="x.yaml", name="driver.sim")
+        with pytest.raises(ConfigError, match=r"driver.sim.interferer_stop_s=1.0 must be after"):
+            SimDriver(plan=plan, interferer_start_s=2.0, interferer_stop_s=1.0)
+
     def test_frame_rate_too_high(self, plan):
         with pytest.raises(ConfigError, match=r"driver.sim.frame_rate_hz=5000"):
             SimDriver(plan=plan, frame_rate_hz=5000)
 
 
 class TestSimDriver:
+    def test_interferer_window_reaches_the_channel(self, plan):
+        """The switch times are on the channel clock of SimDriver.truth (frame i at i / rate)."""
+        with SimDriver(plan=plan, realtime=False, profile="awgn", snr_db=30.0, cfo_hz=0.0,
+                       interferer_tone=21.0, interferer_db=10.0, interferer_start_s=0.1,
+                       interferer_stop_s=0.2, frame_rate_hz=50.0) as drv:
+            hit = plan.data_tones == 21
+            snr = [drv.truth(i).snr_db[hit][0] for i in (0, 7, 12)]  # t = 0.0x, 0.14x, 0.24x s
+            assert snr[0] == pytest.approx(30.0) and snr[2] == pytest.approx(30.0)
+            assert snr[1] == pytest.approx(-10 * np.log10(10 + 1e-3))
+
     def test_estimates_follow_the_contract(self, plan):
         with SimDriver(plan=plan, realtime=False, max_frames=6, start_s=100.0,
                        frame_rate_hz=40.0, profile="epa", doppler_hz=5.0, snr_db=25.0) as drv:

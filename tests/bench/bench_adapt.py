@@ -1,11 +1,16 @@
 """Benchmarks of the estimator and change control (part "adapt").
 
-Channels are static (no Doppler). ``pipeline_fps_1024`` and the churn figures use a
-1024-tone frequency response drawn once from the 3GPP EVA tapped delay line (TS 36.101 Annex B.2,
-Table B.2.1-3; Rayleigh taps, seeded) at 15 kHz tone spacing, with 1 dB of Gaussian estimation
-noise in dB per tone and frame. ``snr_rmse_db_smoothed`` runs the link model's transmitter,
-channel (EVA, static) and receiver (brimline.drivers.sim) and compares the estimator's output
-with the simulator's true per-tone SNR. Frames are 100 per second of simulated time; no sockets.
+``pipeline_fps_1024`` and the churn figures use a static 1024-tone frequency response drawn once
+from the 3GPP EVA tapped delay line (TS 36.101 Annex B.2, Table B.2.1-3; Rayleigh taps, seeded)
+at 15 kHz tone spacing, with 1 dB of Gaussian estimation noise in dB per tone and frame.
+``snr_rmse_db_smoothed`` runs the link model's transmitter, static EVA channel and receiver
+(brimline.drivers.sim) over several channel draws and compares the estimator's output with the
+simulator's true per-tone SNR; its RMS is dominated by the few tones in deep notches (true SNR
+below 0 dB, where no bits load), so the figure is also given over the tones above 0 dB, next to
+the receiver's raw per-frame error and a synthetic least-squares pilot estimate. The
+``fading_*`` figures (information, no goal) run the link model's channel (EVA, 0.2 Hz and 1 Hz
+Doppler) and count map changes, rate and tone-frames left below the raw SNR gap. Frames are 100
+per second of simulated time; no sockets. Timings are the best of three passes (shared machine).
 """
 
 from __future__ import annotations
@@ -23,10 +28,24 @@ from brimline.daemon.records import DecisionKind, Estimate
 GOALS = {
     "pipeline_fps_1024": ">= 5000 frames/s (estimator + change control + loading, 1024 tones)",
     "pipeline_fps_1024_reload": "info: the same with a full reload every frame",
+    "estimator_us_1024": "well under 100 us (Estimator.update + tracked, 1024 tones)",
     "churn_static_per_min": "<= 6 map changes/min (static channel, 1 dB noise, after 10 s)",
     "churn_vs_nohyst": ">= 10 (changes without change control / max(changes with it, 1))",
     "hyst_rate_loss": "<= 0.02 (1 - mean rate with / without change control)",
     "snr_rmse_db_smoothed": "<= 0.5 dB (EVA static, 20 dB, link-model receiver, after 2 s)",
+    "snr_rmse_db_smoothed_above_0db": "info: the same over tones whose true SNR is above 0 dB",
+    "snr_rmse_db_raw": "info: the receiver's per-frame estimates, same tones and frames",
+    "snr_rmse_db_synthetic": "info: as snr_rmse_db_smoothed on synthetic LS pilot estimates",
+    "snr_rmse_db_synthetic_above_0db": "info: the same over tones above 0 dB true SNR",
+    "fading_changes_per_min": "info: maps/min, EVA 0.2 Hz Doppler, 25 dB, 1 dB noise",
+    "fading_nohyst_changes_per_min": "info: the same without change control",
+    "fading_rate_ratio": "info: mean rate with / without change control (fading)",
+    "fading_outage_cc": "info: loaded tone-frames below the raw gap, with change control",
+    "fading_outage_nohyst": "info: the same without change control",
+    "fading1hz_changes_per_min": "info: as fading_*, 1 Hz Doppler (faster fading)",
+    "fading1hz_rate_ratio": "info",
+    "fading1hz_outage_cc": "info",
+    "fading1hz_outage_nohyst": "info",
 }
 
 FPS = 100.0
@@ -64,14 +83,33 @@ def _pipeline_fps(truth_db, n_frames, *, reload_every_frame):
     for e in frames[:50]:  # warm up outside the timing
         est.update(e, e.time_s)
         cc.decide(est.tracked(e.time_s), e.time_s)
-    t0 = time.perf_counter()
-    for e in frames[50:]:
+    best = math.inf
+    for part in np.array_split(np.arange(50, len(frames)), 3):  # best of three passes
+        t0 = time.perf_counter()
+        for k in part:
+            e = frames[k]
+            est.update(e, e.time_s)
+            tr = est.tracked(e.time_s)
+            if reload_every_frame:
+                loader(10 ** (tr.effective_snr_db / 10))
+            cc.decide(tr, e.time_s)
+        best = min(best, (time.perf_counter() - t0) / part.size)
+    return 1.0 / best
+
+
+def _estimator_us(truth_db, n_frames):
+    frames = list(_frames(truth_db, n_frames, 1.0, seed=6))
+    est = Estimator(**EstimatorSection().model_dump())
+    for e in frames[:50]:
         est.update(e, e.time_s)
-        tr = est.tracked(e.time_s)
-        if reload_every_frame:
-            loader(10 ** (tr.effective_snr_db / 10))
-        cc.decide(tr, e.time_s)
-    return (len(frames) - 50) / (time.perf_counter() - t0)
+    best = math.inf
+    for part in np.array_split(np.arange(50, len(frames)), 3):  # best of three passes
+        t0 = time.perf_counter()
+        for k in part:
+            est.update(frames[k], frames[k].time_s)
+            est.tracked(frames[k].time_s)
+        best = min(best, (time.perf_counter() - t0) / part.size)
+    return best * 1e6
 
 
 def _churn(truth_db, settle_s, measure_s):
@@ -100,10 +138,12 @@ def _churn(truth_db, settle_s, measure_s):
 
 
 def _rmse_link(seconds, settle_s, seeds):
+    """RMS dB error against the simulator's truth: tracked, tracked on tones whose true SNR is
+    above 0 dB, and the receiver's raw per-frame estimates (same tones and frames)."""
     from brimline.drivers.ofdm import make_plan
     from brimline.drivers.sim import SimDriver
 
-    errs = []
+    tracked, raw, above = [], [], []
     for seed in seeds:
         plan = make_plan()
         sim = SimDriver(plan=plan, profile="eva", doppler_hz=0.0, snr_db=20.0, realtime=False,
@@ -116,8 +156,108 @@ def _rmse_link(seconds, settle_s, seeds):
                 continue
             est.update(e, e.time_s)
             if e.time_s >= settle_s:
-                errs.append(est.tracked(e.time_s).snr_db - truth)
-    return float(np.sqrt(np.mean(np.square(errs))))
+                err = est.tracked(e.time_s).snr_db - truth
+                tracked.append(err)
+                above.append(err[truth > 0.0])
+                raw.append(e.snr_db - truth)
+
+    def rms(parts):
+        return float(np.sqrt(np.mean(np.concatenate(parts) ** 2)))
+
+    return rms(tracked), rms(above), rms(raw)
+
+
+def _rmse_synthetic(seconds, settle_s, seed=13, n_tones=1024, pilots=2, pool=32):
+    """The same figure on synthetic pilot estimates: least-squares channel estimates from
+    ``pilots`` known symbols per frame, noise variance pooled over ``pool`` tones from the
+    symbols' differences, |H|^2 debiased by the noise the estimate carries (a textbook LS
+    estimator, invented here for the benchmark; no interpolation across tones)."""
+    rng = np.random.default_rng(seed)
+    truth = eva_snr_db(n_tones, 20.0, seed=seed)
+    h = 10 ** (truth / 20)          # noise variance 1; phase does not matter to |H|^2
+    tones = np.arange(n_tones) - n_tones // 2
+    est = Estimator(**EstimatorSection().model_dump())
+    errs = []
+    for k in range(int(seconds * FPS)):
+        y = h[None, :] + (rng.standard_normal((pilots, n_tones))
+                          + 1j * rng.standard_normal((pilots, n_tones))) / math.sqrt(2)
+        h_hat = y.mean(axis=0)
+        diff = np.abs(y - h_hat) ** 2                  # (pilots - 1) complex dof per tone
+        nv = diff.sum(axis=0).reshape(-1, pool).mean(axis=1) / (pilots - 1)
+        nv = np.repeat(nv, pool)
+        power = np.maximum(np.abs(h_hat) ** 2 - nv / pilots, 1e-3 * nv)
+        t = k / FPS
+        e = Estimate(frame=k, time_s=t, plan_id="synthetic", tone_index=tones,
+                     channel=h_hat, noise_var=nv, snr_db=10 * np.log10(power / nv))
+        est.update(e, t)
+        if t >= settle_s:
+            errs.append(est.tracked(t).snr_db - truth)
+    errs = np.array(errs)
+    return (float(np.sqrt(np.mean(np.square(errs)))),
+            float(np.sqrt(np.mean(np.square(errs[:, truth > 0.0])))))
+
+
+def _fading(seconds, seed=21, doppler_hz=0.2, estimator=None, change=None):
+    """Slow fading through the link model's channel (truth only) with 1 dB estimation noise.
+
+    The map decided on frame k is used for frame k + 1; a loaded tone whose true SNR there gives
+    a margin below minus the loading target margin sits below the raw SNR gap, i.e. above the
+    target error rate: counted as an outage tone-frame.
+    """
+    from brimline.drivers.channel import LinkChannel
+    from brimline.drivers.ofdm import make_plan
+
+    plan = make_plan()
+    channel = LinkChannel(plan, profile="eva", doppler_hz=doppler_hz, snr_db=25.0,
+                          rng=np.random.default_rng(seed))
+    noise = np.random.default_rng(seed + 1)
+    section = LoadingSection()
+    loader = section.loader()
+    floor_db = -section.margin_db
+    est = Estimator(**{**EstimatorSection().model_dump(), **(estimator or {})})
+    cc = ChangeControl(loader, **{**ChangeSection().model_dump(), **(change or {})})
+    n = plan.data_tones.size
+    ones = np.ones(n)
+    on = off = 0
+    bits_on = bits_off = 0.0
+    out_on = out_off = loaded_on = loaded_off = 0
+    prev_plain = None
+    pending = None
+    for k in range(int(seconds * FPS)):
+        t = k / FPS
+        truth = channel.truth(t).snr_db
+        if pending is not None:  # the maps decided on the previous frame meet this channel
+            for alloc, is_cc in pending:
+                m = loader.tone_margin_db(alloc.bits, alloc.power, 10 ** (truth / 10))
+                loaded = alloc.bits > 0
+                bad = int(np.count_nonzero(loaded & (m < floor_db)))
+                if is_cc:
+                    out_on += bad
+                    loaded_on += int(np.count_nonzero(loaded))
+                else:
+                    out_off += bad
+                    loaded_off += int(np.count_nonzero(loaded))
+        e = Estimate(frame=k, time_s=t, plan_id="fade", tone_index=plan.data_tones,
+                     channel=ones, noise_var=ones, snr_db=truth + noise.normal(0.0, 1.0, n))
+        est.update(e, t)
+        tr = est.tracked(t)
+        d = cc.decide(tr, t)
+        plain = loader(10 ** (tr.effective_snr_db / 10))
+        if k > 0:
+            on += d.kind is not DecisionKind.KEEP
+            off += prev_plain is not None and not np.array_equal(plain.bits, prev_plain.bits)
+        prev_plain = plain
+        bits_on += cc.current.total_bits
+        bits_off += plain.total_bits
+        pending = ((cc.current, True), (plain, False))
+    minutes = seconds / 60.0
+    return {
+        "fading_changes_per_min": on / minutes,
+        "fading_nohyst_changes_per_min": off / minutes,
+        "fading_rate_ratio": bits_on / bits_off,
+        "fading_outage_cc": out_on / max(loaded_on, 1),
+        "fading_outage_nohyst": out_off / max(loaded_off, 1),
+    }
 
 
 def run(quick: bool) -> dict[str, float]:
@@ -126,13 +266,24 @@ def run(quick: bool) -> dict[str, float]:
     figures = {
         "pipeline_fps_1024": _pipeline_fps(truth, n_fps, reload_every_frame=False),
         "pipeline_fps_1024_reload": _pipeline_fps(truth, n_fps // 3, reload_every_frame=True),
+        "estimator_us_1024": _estimator_us(truth, n_fps),
     }
     per_min, ratio, loss = _churn(truth, 10.0, 30.0 if quick else 120.0)
     figures["churn_static_per_min"] = per_min
     figures["churn_vs_nohyst"] = ratio
     figures["hyst_rate_loss"] = loss
-    figures["snr_rmse_db_smoothed"] = _rmse_link(3.0 if quick else 5.0, 2.0,
-                                                 (1,) if quick else (1, 2, 3))
+    rmse, rmse_above, rmse_raw = _rmse_link(3.0 if quick else 5.0, 2.0,
+                                            (1, 2, 3) if quick else (1, 2, 3, 4, 5, 6))
+    figures["snr_rmse_db_smoothed"] = rmse
+    figures["snr_rmse_db_smoothed_above_0db"] = rmse_above
+    figures["snr_rmse_db_raw"] = rmse_raw
+    synthetic, synthetic_above = _rmse_synthetic(4.0, 2.0)
+    figures["snr_rmse_db_synthetic"] = synthetic
+    figures["snr_rmse_db_synthetic_above_0db"] = synthetic_above
+    figures.update(_fading(30.0 if quick else 120.0))
+    fast = _fading(20.0 if quick else 60.0, doppler_hz=1.0)
+    for key in ("changes_per_min", "rate_ratio", "outage_cc", "outage_nohyst"):
+        figures[f"fading1hz_{key}"] = fast[f"fading_{key}"]
     return figures
 
 
