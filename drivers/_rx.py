@@ -95,7 +95,8 @@ class RxFrame:
     decided : tuple or None
         Decided (I level, Q level, Q bits) indices when the map was known; see ``values``.
     symbols_used : int
-        Symbols per tone in the least-squares estimate.
+        Symbols per tone in the least-squares estimate (decision-directed tones; tones with
+        unreliable decisions use the known rows only, with noise pooled over neighbours).
     """
 
     reason: str
