@@ -375,13 +375,17 @@ class EstimatorSection(Section):
         1.0, description="a pair of neighbours (one each side) is averaged in only where both "
                          "are within this of the tone, dB; deeper notches and interferers stay "
                          "intact")
+    trend_tau_s: float = Field(
+        0.0, description="time constant of the per-tone SNR slope tracker (Holt's linear "
+                          "trend), s; the tracked SNR follows a steady fade without lag; 0: off "
+                          "(plain exponential smoothing)")
 
     @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s")
     @classmethod
     def _positive_ok(cls, v: float, info) -> float:
         return _positive(info.field_name, v)
 
-    @field_validator("backoff_sigmas", "outlier_sigmas", "tone_agree_db")
+    @field_validator("backoff_sigmas", "outlier_sigmas", "tone_agree_db", "trend_tau_s")
     @classmethod
     def _non_negative_ok(cls, v: float, info) -> float:
         return _non_negative(info.field_name, v)

@@ -51,6 +51,14 @@ Why these choices:
   told from estimation noise and is flattened by at most ``2/3 * tone_agree_db`` with the default
   window of one tone each side. Pairs keep a linear slope unbiased.
 
+* **Optional slope** (``trend_tau_s > 0``, Holt's linear trend): the innovation is taken
+  against ``m + slope * h`` with ``h = min(dt, tau_s)``; the slope gains ``alpha * gamma / dt``
+  per dB of innovation, ``gamma = 1 - exp(-dt / trend_tau_s)``. The level, its covariance with the
+  slope and the slope's variance are propagated together (Joseph form for the fixed gains), and
+  the innovation variance is corrected by ``var / (var + predicted variance)``, which for the
+  plain smoother in steady state is the ``(2 - alpha) / 2`` above. The gate is
+  ``max(outlier_db, outlier_sigmas * sqrt(var + predicted variance))``.
+
 Frames that cannot be used are dropped and counted by reason (see :data:`REJECT_REASONS`); the
 state stays as it was.
 """
@@ -104,6 +112,10 @@ class Estimator:
         Half-width in tones of the smoothing across neighbours; 0 turns it off.
     tone_agree_db : float
         Neighbours are averaged in only where within this of the tone, dB.
+    trend_tau_s : float
+        Time constant of the per-tone slope tracker (Holt's linear trend), seconds; 0 turns it
+        off. With it on the tracked value is predicted ``slope * min(dt, tau_s)`` ahead before
+        the innovation is taken, so a steady fade is followed without lag.
 
     Notes
     -----
@@ -121,14 +133,16 @@ class Estimator:
                  backoff_sigmas: float = 1.0, outlier_db: float = 6.0,
                  outlier_sigmas: float = 4.0, confirm_frames: int = 3,
                  frame_outlier_fraction: float = 0.5, stale_s: float = 5.0,
-                 tone_window: int = 1, tone_agree_db: float = 1.0) -> None:
+                 tone_window: int = 1, tone_agree_db: float = 1.0,
+                 trend_tau_s: float = 0.0) -> None:
         for name, value in (("tau_s", tau_s), ("std_tau_s", std_tau_s),
                             ("std_init_db", std_init_db), ("outlier_db", outlier_db),
                             ("stale_s", stale_s)):
             if not (math.isfinite(value) and value > 0):
                 raise ValueError(f"estimator.{name}={value} must be positive and finite")
         for name, value in (("backoff_sigmas", backoff_sigmas),
-                            ("outlier_sigmas", outlier_sigmas), ("tone_agree_db", tone_agree_db)):
+                            ("outlier_sigmas", outlier_sigmas), ("tone_agree_db", tone_agree_db),
+                            ("trend_tau_s", trend_tau_s)):
             if not (math.isfinite(value) and value >= 0):
                 raise ValueError(f"estimator.{name}={value} must be finite and >= 0")
         if int(confirm_frames) < 1:
@@ -149,6 +163,7 @@ class Estimator:
         self.stale_s = float(stale_s)
         self.tone_window = int(tone_window)
         self.tone_agree_db = float(tone_agree_db)
+        self.trend_tau_s = float(trend_tau_s)
         self._counters = dict.fromkeys(
             ("accepted",) + REJECT_REASONS
             + ("tone_outliers", "tone_changes", "reset_plan", "reset_tuning", "reset_stale",
@@ -168,7 +183,8 @@ class Estimator:
         self._accepted_now_s = math.nan
         self._mean_db = None
         self._var_db2 = None
-        self._mean_var_db2 = None
+        self._p11 = self._p12 = self._p22 = None
+        self._slope_db_s = None
         self._pend_sum = None
         self._pend_n = None
         self._pend_sign = None
@@ -181,7 +197,10 @@ class Estimator:
         self._center_hz = estimate.center_hz
         self._mean_db = x.copy()
         self._var_db2 = np.full(n, self.std_init_db ** 2)
-        self._mean_var_db2 = self._var_db2.copy()
+        self._p11 = self._var_db2.copy()   # variance of the tracked level
+        self._p12 = np.zeros(n)            # its covariance with the slope
+        self._p22 = np.zeros(n)            # variance of the slope
+        self._slope_db_s = np.zeros(n)
         self._pend_sum = np.zeros(n)
         self._pend_n = np.zeros(n, dtype=np.int64)
         self._pend_sign = np.zeros(n)
@@ -269,13 +288,33 @@ class Estimator:
     def _smooth(self, estimate: Estimate, now_s: float) -> str | None:
         dt = estimate.time_s - self._time_s
         alpha = -math.expm1(-dt / self.tau_s)
+        if self.trend_tau_s > 0:
+            # Holt's linear trend: the slope gain is gamma per unit level change per dt.
+            gamma = -math.expm1(-dt / self.trend_tau_s)
+            k2 = alpha * gamma / dt
+            # Extrapolate at most tau_s ahead: after a long gap the slope says little.
+            horizon = min(dt, self.tau_s)
+        else:
+            gamma = k2 = horizon = 0.0
         # Until the variance window is full, a plain running mean over the frames so far (the
         # prior std_init_db counting as one frame): the spread is learnt within a few frames.
         beta = max(-math.expm1(-dt / self.std_tau_s), 1.0 / (self._frames + 1))
         x = estimate.snr_db.astype(np.float64)
-        mean = self._mean_db
-        d = x - mean
-        gate = np.sqrt(self._var_db2)
+        slope = self._slope_db_s
+        if k2:
+            pred = slope * horizon
+            pred += self._mean_db
+            # Covariance of the prediction: F P F^T with F = [[1, h], [0, 1]].
+            s11 = self._p11 + horizon * (2.0 * self._p12 + horizon * self._p22)
+            s12 = self._p12 + horizon * self._p22
+            s22 = self._p22
+        else:
+            pred = self._mean_db
+            s11, s12, s22 = self._p11, self._p12, self._p22
+        d = x - pred
+        var = self._var_db2
+        gate = var + s11
+        np.sqrt(gate, out=gate)
         gate *= self.outlier_sigmas
         np.maximum(gate, self.outlier_db, out=gate)
         if alpha < 0.5:
@@ -309,27 +348,46 @@ class Estimator:
             self._counters["tone_changes"] += n_confirmed
             confirmed_mean = np.where(confirmed, new_sum / np.maximum(new_n, 1), 0.0)
             d[out] = 0.0
-        # Innovation variance, corrected for the tracked value's own spread (see module notes).
-        # Held-back tones keep their variance and their tracked value (d is 0 there).
-        var = self._var_db2
+        # Innovation variance, less the part the prediction's own spread explains (see module
+        # notes). Held-back tones keep their variance (d is 0 there) and follow the prediction.
         new_var = d * d
-        new_var *= beta * (2.0 - alpha) / 2.0
+        new_var *= var / (var + s11)
+        new_var *= beta
         new_var += (1.0 - beta) * var
-        # Variance of the tracked value itself: (1 - a)**2 P + a**2 sigma**2 per frame.
-        new_mean_var = self._mean_var_db2 * (1.0 - alpha) ** 2
-        new_mean_var += alpha * alpha * new_var
+        # Covariance of the tracked level and slope after the update (Joseph form, gain
+        # K = [alpha, k2]): (I - K H) S (I - K H)^T + K K^T var.
+        p11 = s11 * (1.0 - alpha) ** 2
+        p11 += alpha * alpha * new_var
+        if k2:
+            p12 = (1.0 - alpha) * (s12 - k2 * s11) + alpha * k2 * new_var
+            p22 = s22 - 2.0 * k2 * s12 + k2 * k2 * (s11 + new_var)
+        else:
+            p12, p22 = s12, s22
         if n_out:
-            np.copyto(var, new_var, where=~out)
-            np.copyto(self._mean_var_db2, new_mean_var, where=~out)
+            keep = ~out
+            np.copyto(var, new_var, where=keep)
+            self._p11 = np.where(keep, p11, s11)
+            self._p12 = np.where(keep, p12, s12)
+            self._p22 = np.where(keep, p22, s22)
         else:
             self._var_db2 = new_var
-            self._mean_var_db2 = new_mean_var
-        mean += alpha * d
+            self._p11, self._p12, self._p22 = p11, p12, p22
+        if k2:
+            slope = slope + k2 * d
+            mean = pred + alpha * d
+        else:
+            mean = pred + alpha * d
         if confirmed is not None and n_confirmed:
             np.copyto(mean, confirmed_mean, where=confirmed)
             # As uncertain as a fresh seed: the wider back-off right after a big change keeps
             # the map made on it from needing repairs as the new level settles.
-            np.copyto(self._mean_var_db2, var, where=confirmed)
+            np.copyto(self._p11, self._var_db2, where=confirmed)
+            if k2:
+                slope = np.where(confirmed, 0.0, slope)
+                self._p12 = np.where(confirmed, 0.0, self._p12)
+                self._p22 = np.where(confirmed, 0.0, self._p22)
+        self._mean_db = mean
+        self._slope_db_s = slope
         self._time_s = estimate.time_s
         self._accepted_now_s = float(now_s)
         self._frames += 1
@@ -356,8 +414,8 @@ class Estimator:
         if self.tone_window > 0 and snr_db.size > 1:
             snr_db = _agree_smooth(snr_db, self.tone_window, self.tone_agree_db)
         std_db = np.sqrt(self._var_db2)
-        mean_std_db = np.sqrt(self._mean_var_db2)
-        spread = self._var_db2 + self._mean_var_db2
+        mean_std_db = np.sqrt(self._p11)
+        spread = self._var_db2 + self._p11
         np.sqrt(spread, out=spread)
         spread *= self.backoff_sigmas
         return Tracked(
