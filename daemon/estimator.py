@@ -73,6 +73,9 @@ from brimline.daemon.records import Estimate, Tracked
 
 __all__ = ["Estimator", "REJECT_REASONS"]
 
+#: Half-width in tones of the pooling of innovations that detects lag (see ``lag_sigmas``).
+LAG_POOL_TONES = 4
+
 #: Reasons :meth:`Estimator.update` can return, each also a key of :attr:`Estimator.counters`.
 REJECT_REASONS = (
     "invalid",        # the source marked the frame unusable (valid=False)
@@ -133,16 +136,17 @@ class Estimator:
                  backoff_sigmas: float = 1.0, outlier_db: float = 6.0,
                  outlier_sigmas: float = 4.0, confirm_frames: int = 3,
                  frame_outlier_fraction: float = 0.5, stale_s: float = 5.0,
-                 tone_window: int = 1, tone_agree_db: float = 1.0,
-                 trend_tau_s: float = 0.0) -> None:
+                 tone_window: int = 2, tone_agree_db: float = 2.0,
+                 trend_tau_s: float = 0.0, lag_sigmas: float = 2.0,
+                 tau_min_s: float = 0.02) -> None:
         for name, value in (("tau_s", tau_s), ("std_tau_s", std_tau_s),
                             ("std_init_db", std_init_db), ("outlier_db", outlier_db),
-                            ("stale_s", stale_s)):
+                            ("stale_s", stale_s), ("tau_min_s", tau_min_s)):
             if not (math.isfinite(value) and value > 0):
                 raise ValueError(f"estimator.{name}={value} must be positive and finite")
         for name, value in (("backoff_sigmas", backoff_sigmas),
                             ("outlier_sigmas", outlier_sigmas), ("tone_agree_db", tone_agree_db),
-                            ("trend_tau_s", trend_tau_s)):
+                            ("trend_tau_s", trend_tau_s), ("lag_sigmas", lag_sigmas)):
             if not (math.isfinite(value) and value >= 0):
                 raise ValueError(f"estimator.{name}={value} must be finite and >= 0")
         if int(confirm_frames) < 1:
@@ -164,6 +168,8 @@ class Estimator:
         self.tone_window = int(tone_window)
         self.tone_agree_db = float(tone_agree_db)
         self.trend_tau_s = float(trend_tau_s)
+        self.lag_sigmas = float(lag_sigmas)
+        self.tau_min_s = float(tau_min_s)
         self._counters = dict.fromkeys(
             ("accepted",) + REJECT_REASONS
             + ("tone_outliers", "tone_changes", "reset_plan", "reset_tuning", "reset_stale",
@@ -185,6 +191,7 @@ class Estimator:
         self._var_db2 = None
         self._p11 = self._p12 = self._p22 = None
         self._slope_db_s = None
+        self._lag_db = None
         self._pend_sum = None
         self._pend_n = None
         self._pend_sign = None
@@ -201,6 +208,12 @@ class Estimator:
         self._p12 = np.zeros(n)            # its covariance with the slope
         self._p22 = np.zeros(n)            # variance of the slope
         self._slope_db_s = np.zeros(n)
+        self._lag_db = np.zeros(n)         # short-term mean of the innovations
+        w = min(LAG_POOL_TONES, max(n - 1, 0) // 2)
+        idx = np.arange(n)
+        lo, hi = np.clip(idx - w, 0, n), np.clip(idx + w + 1, 0, n)
+        self._pool = (lo, hi, hi - lo)
+        self._cumsum = np.zeros(n + 1)
         self._pend_sum = np.zeros(n)
         self._pend_n = np.zeros(n, dtype=np.int64)
         self._pend_sign = np.zeros(n)
@@ -348,6 +361,8 @@ class Estimator:
             self._counters["tone_changes"] += n_confirmed
             confirmed_mean = np.where(confirmed, new_sum / np.maximum(new_n, 1), 0.0)
             d[out] = 0.0
+        if self.lag_sigmas > 0 and alpha < 0.5:
+            alpha = self._adapt_gain(d, dt, alpha)
         # Innovation variance, less the part the prediction's own spread explains (see module
         # notes). Held-back tones keep their variance (d is 0 there) and follow the prediction.
         new_var = d * d
@@ -393,6 +408,38 @@ class Estimator:
         self._frames += 1
         self._counters["accepted"] += 1
         return None
+
+    def _adapt_gain(self, d: np.ndarray, dt: float, alpha: float) -> np.ndarray:
+        """Per-tone smoothing gain, shortened where the innovations show lag.
+
+        The innovations' short-term mean (time constant ``tau_min_s``) is pooled over
+        ``2 * LAG_POOL_TONES + 1`` neighbouring tones and compared with its spread under noise
+        alone: a fade moves neighbouring tones together frame after frame, estimation noise does
+        not. Where the pooled mean stands ``z`` noise spreads off zero with ``z > lag_sigmas``,
+        the time constant becomes ``tau_s * (lag_sigmas / z)**2`` (at least ``tau_min_s``).
+        """
+        a_u = -math.expm1(-dt / self.tau_min_s)
+        lag = self._lag_db
+        lag *= 1.0 - a_u
+        lag += a_u * d
+        lo, hi, count = self._pool
+        c = self._cumsum
+        np.cumsum(lag, out=c[1:])
+        pooled = c[hi] - c[lo]                       # count * pooled mean
+        np.cumsum(self._var_db2, out=c[1:])
+        noise = c[hi] - c[lo]                        # count * pooled variance
+        noise *= a_u / (2.0 - a_u)                   # EWMA variance of iid noise
+        # z**2 = (pooled / count)**2 / (noise / count / count) = pooled**2 / noise
+        z2 = pooled * pooled
+        z2 /= noise
+        # tau_s * min(1, lag_sigmas**2 / z**2), floored at tau_min_s (no faster than that)
+        tau = np.maximum(z2, self.lag_sigmas ** 2)
+        np.divide(self.tau_s * self.lag_sigmas ** 2, tau, out=tau)
+        np.maximum(tau, min(self.tau_min_s, self.tau_s), out=tau)
+        np.divide(-dt, tau, out=tau)
+        np.expm1(tau, out=tau)
+        np.negative(tau, out=tau)
+        return tau
 
     # ------------------------------------------------------------------ output
 

@@ -39,8 +39,10 @@ def frame(t, snr_db, *, plan_id="plan-a", tones=TONES, valid=True, noise_var=Non
 
 
 def quiet(**kw):
-    """An estimator without cross-tone smoothing (pure per-tone time smoothing)."""
+    """An estimator without cross-tone smoothing or lag-driven gain (a plain per-tone
+    first-order smoother, the reference the closed forms below describe)."""
     kw.setdefault("tone_window", 0)
+    kw.setdefault("lag_sigmas", 0.0)
     return Estimator(**kw)
 
 
