@@ -385,7 +385,7 @@ class EstimatorSection(Section):
                          "SNR lags a fade) the smoothing time constant shortens towards "
                          "tau_min_s; 0: off")
     tau_min_s: float = Field(
-        0.02, description="shortest smoothing time constant while a fade is followed, and the "
+        0.015, description="shortest smoothing time constant while a fade is followed, and the "
                           "time constant of the innovations' short-term mean, s")
 
     @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s", "tau_min_s")

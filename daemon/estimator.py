@@ -138,7 +138,7 @@ class Estimator:
                  frame_outlier_fraction: float = 0.5, stale_s: float = 5.0,
                  tone_window: int = 2, tone_agree_db: float = 2.0,
                  trend_tau_s: float = 0.0, lag_sigmas: float = 2.0,
-                 tau_min_s: float = 0.02) -> None:
+                 tau_min_s: float = 0.015) -> None:
         for name, value in (("tau_s", tau_s), ("std_tau_s", std_tau_s),
                             ("std_init_db", std_init_db), ("outlier_db", outlier_db),
                             ("stale_s", stale_s), ("tau_min_s", tau_min_s)):
@@ -214,6 +214,7 @@ class Estimator:
         lo, hi = np.clip(idx - w, 0, n), np.clip(idx + w + 1, 0, n)
         self._pool = (lo, hi, hi - lo)
         self._cumsum = np.zeros(n + 1)
+        self._lag_gain = 1.0
         self._pend_sum = np.zeros(n)
         self._pend_n = np.zeros(n, dtype=np.int64)
         self._pend_sign = np.zeros(n)
@@ -333,6 +334,12 @@ class Estimator:
         if alpha < 0.5:
             out = np.abs(d) > gate
             n_out = int(np.count_nonzero(out))
+            if n_out and self.lag_sigmas > 0 and self._frames > 1:
+                # A deviation in the direction a fade already under way moves this tone and
+                # its neighbours (seen in the frames before this one) is the fade, not an outlier.
+                pooled, z2 = self._lag_z2()
+                out &= ~((z2 > self.lag_sigmas ** 2) & (pooled * d > 0))
+                n_out = int(np.count_nonzero(out))
         else:  # after a gap of tau_s * ln 2 or more the new frame outweighs the old state
             n_out = 0
         self._seen_s = estimate.time_s
@@ -362,7 +369,7 @@ class Estimator:
             confirmed_mean = np.where(confirmed, new_sum / np.maximum(new_n, 1), 0.0)
             d[out] = 0.0
         if self.lag_sigmas > 0 and alpha < 0.5:
-            alpha = self._adapt_gain(d, dt, alpha)
+            alpha = self._adapt_gain(d, dt)
         # Innovation variance, less the part the prediction's own spread explains (see module
         # notes). Held-back tones keep their variance (d is 0 there) and follow the prediction.
         new_var = d * d
@@ -409,7 +416,22 @@ class Estimator:
         self._counters["accepted"] += 1
         return None
 
-    def _adapt_gain(self, d: np.ndarray, dt: float, alpha: float) -> np.ndarray:
+    def _lag_z2(self) -> tuple[np.ndarray, np.ndarray]:
+        """The innovations' short-term mean pooled over neighbouring tones (times the count)
+        and its square in units of its variance under noise alone (``z**2``)."""
+        lo, hi, _ = self._pool
+        c = self._cumsum
+        np.cumsum(self._lag_db, out=c[1:])
+        pooled = c[hi] - c[lo]                       # count * pooled mean
+        np.cumsum(self._var_db2, out=c[1:])
+        noise = c[hi] - c[lo]                        # count * pooled variance
+        noise *= self._lag_gain / (2.0 - self._lag_gain)   # EWMA variance of iid noise
+        # z**2 = (pooled / count)**2 / (noise / count / count) = pooled**2 / noise
+        z2 = pooled * pooled
+        z2 /= noise
+        return pooled, z2
+
+    def _adapt_gain(self, d: np.ndarray, dt: float) -> np.ndarray:
         """Per-tone smoothing gain, shortened where the innovations show lag.
 
         The innovations' short-term mean (time constant ``tau_min_s``) is pooled over
@@ -418,22 +440,13 @@ class Estimator:
         not. Where the pooled mean stands ``z`` noise spreads off zero with ``z > lag_sigmas``,
         the time constant becomes ``tau_s * (lag_sigmas / z)**2`` (at least ``tau_min_s``).
         """
-        a_u = -math.expm1(-dt / self.tau_min_s)
+        self._lag_gain = a_u = -math.expm1(-dt / self.tau_min_s)
         lag = self._lag_db
         lag *= 1.0 - a_u
         lag += a_u * d
-        lo, hi, count = self._pool
-        c = self._cumsum
-        np.cumsum(lag, out=c[1:])
-        pooled = c[hi] - c[lo]                       # count * pooled mean
-        np.cumsum(self._var_db2, out=c[1:])
-        noise = c[hi] - c[lo]                        # count * pooled variance
-        noise *= a_u / (2.0 - a_u)                   # EWMA variance of iid noise
-        # z**2 = (pooled / count)**2 / (noise / count / count) = pooled**2 / noise
-        z2 = pooled * pooled
-        z2 /= noise
+        _, tau = self._lag_z2()
         # tau_s * min(1, lag_sigmas**2 / z**2), floored at tau_min_s (no faster than that)
-        tau = np.maximum(z2, self.lag_sigmas ** 2)
+        np.maximum(tau, self.lag_sigmas ** 2, out=tau)
         np.divide(self.tau_s * self.lag_sigmas ** 2, tau, out=tau)
         np.maximum(tau, min(self.tau_min_s, self.tau_s), out=tau)
         np.divide(-dt, tau, out=tau)
