@@ -342,7 +342,9 @@ class EstimatorSection(Section):
 
     Defaults suit a slowly fading indoor link (people moving about: Doppler of a few tenths of a
     hertz, a coherence time of a second or more) estimated at tens to hundreds of frames per
-    second with about 1 dB of per-frame estimation noise. Faster fading wants a shorter tau_s.
+    second with about 1 dB of per-frame estimation noise. Fades faster than tau_s are followed by
+    the lag-driven gain (lag_sigmas, tau_min_s), which shortens the smoothing only where the
+    innovations show the tracked SNR lagging.
     """
 
     tau_s: float = Field(

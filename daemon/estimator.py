@@ -48,9 +48,17 @@ Why these choices:
 * **Across tones**, the tracked values are averaged with pairs of neighbours (one each side, up to
   ``tone_window`` tones away) only where both agree within ``tone_agree_db`` (a symmetric sigma
   filter): a notch or an interferer deeper than that stays intact; a shallower one cannot be
-  told from estimation noise and is flattened by at most ``2/3 * tone_agree_db`` with the default
-  window of one tone each side. Pairs keep a linear slope unbiased.
+  told from estimation noise and is flattened by at most ``2/3 * tone_agree_db`` with a window
+  of one tone each side (``4/5 * tone_agree_db`` with two). Pairs keep a linear slope unbiased.
 
+* **Lag-driven gain** (``lag_sigmas > 0``): a fixed ``tau_s`` cannot both average a static
+  channel's noise and follow a Rayleigh fade. The innovations' short-term mean ``u`` (EWMA with
+  time constant ``tau_min_s``) is pooled over ``2 * LAG_POOL_TONES + 1`` tones; under noise alone
+  it has variance ``var * a_u / (2 - a_u) / count``, so ``z`` is its size in those spreads. A fade
+  moves neighbouring tones the same way frame after frame; noise does not. Where
+  ``z > lag_sigmas`` the time constant is ``tau_s * (lag_sigmas / z)**2`` (at least
+  ``tau_min_s``), per tone and frame. A deviation beyond the gate in the direction of a fade
+  already under way (``z > 2 * lag_sigmas`` before this frame) is not held as an outlier.
 * **Optional slope** (``trend_tau_s > 0``, Holt's linear trend): the innovation is taken
   against ``m + slope * h`` with ``h = min(dt, tau_s)``; the slope gains ``alpha * gamma / dt``
   per dB of innovation, ``gamma = 1 - exp(-dt / trend_tau_s)``. The level, its covariance with the
@@ -115,6 +123,13 @@ class Estimator:
         Half-width in tones of the smoothing across neighbours; 0 turns it off.
     tone_agree_db : float
         Neighbours are averaged in only where within this of the tone, dB.
+    lag_sigmas : float
+        Lag-driven gain: where the innovations' short-term mean, pooled over neighbouring tones,
+        stands ``z`` noise spreads off zero with ``z > lag_sigmas``, the smoothing time constant
+        becomes ``tau_s * (lag_sigmas / z)**2``; 0 turns it off.
+    tau_min_s : float
+        Shortest time constant of the lag-driven gain, and the time constant of the
+        innovations' short-term mean, seconds.
     trend_tau_s : float
         Time constant of the per-tone slope tracker (Holt's linear trend), seconds; 0 turns it
         off. With it on the tracked value is predicted ``slope * min(dt, tau_s)`` ahead before
@@ -209,11 +224,8 @@ class Estimator:
         self._p22 = np.zeros(n)            # variance of the slope
         self._slope_db_s = np.zeros(n)
         self._lag_db = np.zeros(n)         # short-term mean of the innovations
-        w = min(LAG_POOL_TONES, max(n - 1, 0) // 2)
-        idx = np.arange(n)
-        lo, hi = np.clip(idx - w, 0, n), np.clip(idx + w + 1, 0, n)
-        self._pool = (lo, hi, hi - lo)
-        self._cumsum = np.zeros(n + 1)
+        self._pool_w = min(LAG_POOL_TONES, max(n - 1, 0) // 2)
+        self._cumsum = np.zeros(n + 1 + 2 * self._pool_w)
         self._lag_gain = 1.0
         self._pend_sum = np.zeros(n)
         self._pend_n = np.zeros(n, dtype=np.int64)
@@ -337,8 +349,9 @@ class Estimator:
             if n_out and self.lag_sigmas > 0 and self._frames > 1:
                 # A deviation in the direction a fade already under way moves this tone and
                 # its neighbours (seen in the frames before this one) is the fade, not an outlier.
+                # Twice the lag threshold: noise alone gets there about once in 10**4 tones.
                 pooled, z2 = self._lag_z2()
-                out &= ~((z2 > self.lag_sigmas ** 2) & (pooled * d > 0))
+                out &= ~((z2 > 4.0 * self.lag_sigmas ** 2) & (pooled * d > 0))
                 n_out = int(np.count_nonzero(out))
         else:  # after a gap of tau_s * ln 2 or more the new frame outweighs the old state
             n_out = 0
@@ -419,17 +432,22 @@ class Estimator:
     def _lag_z2(self) -> tuple[np.ndarray, np.ndarray]:
         """The innovations' short-term mean pooled over neighbouring tones (times the count)
         and its square in units of its variance under noise alone (``z**2``)."""
-        lo, hi, _ = self._pool
-        c = self._cumsum
-        np.cumsum(self._lag_db, out=c[1:])
-        pooled = c[hi] - c[lo]                       # count * pooled mean
-        np.cumsum(self._var_db2, out=c[1:])
-        noise = c[hi] - c[lo]                        # count * pooled variance
+        pooled = self._window_sum(self._lag_db)      # count * pooled mean
+        noise = self._window_sum(self._var_db2)      # count * pooled variance
         noise *= self._lag_gain / (2.0 - self._lag_gain)   # EWMA variance of iid noise
         # z**2 = (pooled / count)**2 / (noise / count / count) = pooled**2 / noise
         z2 = pooled * pooled
         z2 /= noise
         return pooled, z2
+
+    def _window_sum(self, values: np.ndarray) -> np.ndarray:
+        """Sum over each tone's pooling window (clipped at the band edges), by a running sum
+        padded with ``w`` zeros in front and ``w`` copies of the total behind."""
+        w, c = self._pool_w, self._cumsum
+        n = values.size
+        np.cumsum(values, out=c[w + 1:w + 1 + n])
+        c[w + 1 + n:] = c[w + n]
+        return c[2 * w + 1:] - c[:n]
 
     def _adapt_gain(self, d: np.ndarray, dt: float) -> np.ndarray:
         """Per-tone smoothing gain, shortened where the innovations show lag.

@@ -379,21 +379,69 @@ class TestTrend:
         np.testing.assert_array_equal(est.tracked(1.0).snr_db, before)
 
 
-def test_trend_setting_beats_raw_frames_on_indoor_fading():
-    """Link model (SimDriver) on the ITU-R M.1225 Indoor A tapped delay line at 1 Hz Doppler and
-    25 dB: with the slope tracker on (bench TREND_SETTINGS) the tracked SNR is closer to the
-    simulator's truth than the receiver's raw per-frame estimates, over tones above 0 dB. The
-    defaults (plain smoothing, tau_s=0.1) are not: they lag this fade (see bench figure
-    track_rmse_db_indoor_1hz)."""
+class TestLagGain:
+    def test_static_noise_keeps_the_plain_smoothers_spread(self, rng):
+        """On a constant SNR with iid 1 dB noise the lag-driven gain should almost never act:
+        the tracked value's spread stays within 15 % of the plain first-order smoother's EWMA
+        spread sigma * sqrt(a / (2 - a)) (EWMA control chart, Roberts 1959 / Montgomery; from
+        memory, derived in TestUncertainty)."""
+        n, dt, tau = 1024, 0.01, 0.1
+        tones = np.arange(n) - n // 2
+        est = quiet(tau_s=tau, lag_sigmas=2.0, tau_min_s=0.015)
+        for i in range(300):
+            est.update(frame(i * dt, 20.0 + rng.normal(0.0, 1.0, n), tones=tones), i * dt)
+        a = 1.0 - math.exp(-dt / tau)
+        spread = est.tracked(3.0).snr_db.std()
+        assert spread == pytest.approx(math.sqrt(a / (2 - a)), rel=0.15)
+
+    def test_ramp_lag_shrinks_below_the_plain_closed_form(self, rng):
+        """A fade of -20 dB/s shared by all tones, 1 dB noise: the plain smoother lags by
+        -slope * dt * (1 - a) / a in steady state (sampled first-order low-pass driven by a
+        ramp, closed form); with the lag-driven gain the lag is under a third of that."""
+        slope, dt, tau = -20.0, 0.01, 0.1
+        plain = quiet(tau_s=tau, outlier_db=100.0)
+        fast = quiet(tau_s=tau, outlier_db=100.0, lag_sigmas=2.0, tau_min_s=0.015)
+        for i in range(100):
+            t = i * dt
+            x = 30.0 + slope * t + rng.normal(0.0, 1.0, N)
+            plain.update(frame(t, x), t)
+            fast.update(frame(t, x), t)
+        t = 99 * dt
+        a = 1.0 - math.exp(-dt / tau)
+        closed = -slope * dt * (1 - a) / a
+        assert np.mean(plain.tracked(t).snr_db - (30.0 + slope * t)) == pytest.approx(
+            closed, rel=0.1)
+        assert abs(np.mean(fast.tracked(t).snr_db - (30.0 + slope * t))) < closed / 3
+
+    def test_one_impulse_frame_on_a_few_tones_changes_nothing(self, rng):
+        """With the defaults (lag-driven gain on), a 15 dB spike on 5 tones for one frame of a
+        settled channel is held back: those tones keep their values."""
+        est = Estimator()
+        for i in range(200):
+            est.update(frame(i * 0.01, 20.0 + rng.normal(0.0, 0.5, N)), i * 0.01)
+        before = est.tracked(2.0).snr_db.copy()
+        x = 20.0 + rng.normal(0.0, 0.5, N)
+        x[10:15] += 15.0
+        assert est.update(frame(2.0, x), 2.0) is None
+        after = est.tracked(2.0).snr_db
+        assert np.all(np.abs(after[10:15] - before[10:15]) < 0.5)
+
+
+def test_defaults_beat_raw_frames_on_indoor_fading():
+    """Link model (SimDriver) on the ITU-R M.1225 Indoor A tapped delay line (channel model
+    table of that recommendation) at 1 Hz Doppler and 25 dB SNR, 100 frames/s: with the default
+    settings the tracked SNR is closer to the simulator's truth than the receiver's raw per-frame
+    estimates over the tones above 0 dB true SNR, and within 1 dB rms (the figure
+    track_rmse_db_indoor_1hz of the bench). Before the lag-driven gain the defaults were 2.8 dB
+    rms off here, twice the raw frames' error."""
     from brimline.drivers.ofdm import make_plan
     from brimline.drivers.sim import SimDriver
 
     sim = SimDriver(plan=make_plan(), profile="indoor_a", doppler_hz=1.0, snr_db=25.0,
                     realtime=False, seed=3, frame_rate_hz=100.0)
-    est = Estimator(**{**EstimatorSection().model_dump(), "tau_s": 0.02, "trend_tau_s": 0.05,
-                       "tone_window": 4, "tone_agree_db": 3.0})
+    est = Estimator(**EstimatorSection().model_dump())
     tracked, raw = [], []
-    for _ in range(300):
+    for _ in range(400):
         e = sim.step()
         if e is None:
             continue
@@ -405,4 +453,5 @@ def test_trend_setting_beats_raw_frames_on_indoor_fading():
             raw.append((e.snr_db - truth)[keep])
     rms_tracked = np.sqrt(np.mean(np.concatenate(tracked) ** 2))
     rms_raw = np.sqrt(np.mean(np.concatenate(raw) ** 2))
-    assert rms_tracked < 0.7 * rms_raw, (rms_tracked, rms_raw)
+    assert rms_tracked < 0.8 * rms_raw, (rms_tracked, rms_raw)
+    assert rms_tracked < 1.0, rms_tracked

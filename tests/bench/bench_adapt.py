@@ -53,7 +53,8 @@ GOALS = {
     "track_rmse_db_indoor_1hz_trend": "info: tracked snr_db with TREND_SETTINGS",
 }
 
-#: A fast-tracking setting with the slope tracker on (not the default: more static churn).
+#: A fast-tracking setting with the slope tracker on (not the default: a static channel with
+#: 1 dB noise then changes maps about 270 times a minute).
 TREND_SETTINGS = dict(tau_s=0.02, trend_tau_s=0.05, tone_window=4, tone_agree_db=3.0)
 
 FPS = 100.0
