@@ -342,7 +342,9 @@ class EstimatorSection(Section):
 
     Defaults suit a slowly fading indoor link (people moving about: Doppler of a few tenths of a
     hertz, a coherence time of a second or more) estimated at tens to hundreds of frames per
-    second with about 1 dB of per-frame estimation noise. Faster fading wants a shorter tau_s.
+    second with about 1 dB of per-frame estimation noise. Fades faster than tau_s are followed by
+    the lag-driven gain (lag_sigmas, tau_min_s), which shortens the smoothing only where the
+    innovations show the tracked SNR lagging.
     """
 
     tau_s: float = Field(
@@ -370,18 +372,31 @@ class EstimatorSection(Section):
         5.0, description="after a gap longer than this between accepted frames, tracking "
                          "starts afresh from the next frame, s")
     tone_window: int = Field(
-        1, description="half-width in tones of the smoothing across neighbours (0: off)")
+        2, description="half-width in tones of the smoothing across neighbours (0: off)")
     tone_agree_db: float = Field(
-        1.0, description="a pair of neighbours (one each side) is averaged in only where both "
+        2.0, description="a pair of neighbours (one each side) is averaged in only where both "
                          "are within this of the tone, dB; deeper notches and interferers stay "
                          "intact")
+    trend_tau_s: float = Field(
+        0.0, description="time constant of the per-tone SNR slope tracker (Holt's linear "
+                          "trend), s; the tracked SNR follows a steady fade without lag; 0: off "
+                          "(plain exponential smoothing)")
+    lag_sigmas: float = Field(
+        2.0, description="where the innovations' short-term mean, pooled over neighbouring "
+                         "tones, stands more than this many noise spreads off zero (the tracked "
+                         "SNR lags a fade) the smoothing time constant shortens towards "
+                         "tau_min_s; 0: off")
+    tau_min_s: float = Field(
+        0.015, description="shortest smoothing time constant while a fade is followed, and the "
+                          "time constant of the innovations' short-term mean, s")
 
-    @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s")
+    @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s", "tau_min_s")
     @classmethod
     def _positive_ok(cls, v: float, info) -> float:
         return _positive(info.field_name, v)
 
-    @field_validator("backoff_sigmas", "outlier_sigmas", "tone_agree_db")
+    @field_validator("backoff_sigmas", "outlier_sigmas", "tone_agree_db", "trend_tau_s",
+                     "lag_sigmas")
     @classmethod
     def _non_negative_ok(cls, v: float, info) -> float:
         return _non_negative(info.field_name, v)

@@ -48,8 +48,24 @@ Why these choices:
 * **Across tones**, the tracked values are averaged with pairs of neighbours (one each side, up to
   ``tone_window`` tones away) only where both agree within ``tone_agree_db`` (a symmetric sigma
   filter): a notch or an interferer deeper than that stays intact; a shallower one cannot be
-  told from estimation noise and is flattened by at most ``2/3 * tone_agree_db`` with the default
-  window of one tone each side. Pairs keep a linear slope unbiased.
+  told from estimation noise and is flattened by at most ``2/3 * tone_agree_db`` with a window
+  of one tone each side (``4/5 * tone_agree_db`` with two). Pairs keep a linear slope unbiased.
+
+* **Lag-driven gain** (``lag_sigmas > 0``): a fixed ``tau_s`` cannot both average a static
+  channel's noise and follow a Rayleigh fade. The innovations' short-term mean ``u`` (EWMA with
+  time constant ``tau_min_s``) is pooled over ``2 * LAG_POOL_TONES + 1`` tones; under noise alone
+  it has variance ``var * a_u / (2 - a_u) / count``, so ``z`` is its size in those spreads. A fade
+  moves neighbouring tones the same way frame after frame; noise does not. Where
+  ``z > lag_sigmas`` the time constant is ``tau_s * (lag_sigmas / z)**2`` (at least
+  ``tau_min_s``), per tone and frame. A deviation beyond the gate in the direction of a fade
+  already under way (``z > 2 * lag_sigmas`` before this frame) is not held as an outlier.
+* **Optional slope** (``trend_tau_s > 0``, Holt's linear trend): the innovation is taken
+  against ``m + slope * h`` with ``h = min(dt, tau_s)``; the slope gains ``alpha * gamma / dt``
+  per dB of innovation, ``gamma = 1 - exp(-dt / trend_tau_s)``. The level, its covariance with the
+  slope and the slope's variance are propagated together (Joseph form for the fixed gains), and
+  the innovation variance is corrected by ``var / (var + predicted variance)``, which for the
+  plain smoother in steady state is the ``(2 - alpha) / 2`` above. The gate is
+  ``max(outlier_db, outlier_sigmas * sqrt(var + predicted variance))``.
 
 Frames that cannot be used are dropped and counted by reason (see :data:`REJECT_REASONS`); the
 state stays as it was.
@@ -64,6 +80,9 @@ import numpy as np
 from brimline.daemon.records import Estimate, Tracked
 
 __all__ = ["Estimator", "REJECT_REASONS"]
+
+#: Half-width in tones of the pooling of innovations that detects lag (see ``lag_sigmas``).
+LAG_POOL_TONES = 4
 
 #: Reasons :meth:`Estimator.update` can return, each also a key of :attr:`Estimator.counters`.
 REJECT_REASONS = (
@@ -104,6 +123,17 @@ class Estimator:
         Half-width in tones of the smoothing across neighbours; 0 turns it off.
     tone_agree_db : float
         Neighbours are averaged in only where within this of the tone, dB.
+    lag_sigmas : float
+        Lag-driven gain: where the innovations' short-term mean, pooled over neighbouring tones,
+        stands ``z`` noise spreads off zero with ``z > lag_sigmas``, the smoothing time constant
+        becomes ``tau_s * (lag_sigmas / z)**2``; 0 turns it off.
+    tau_min_s : float
+        Shortest time constant of the lag-driven gain, and the time constant of the
+        innovations' short-term mean, seconds.
+    trend_tau_s : float
+        Time constant of the per-tone slope tracker (Holt's linear trend), seconds; 0 turns it
+        off. With it on the tracked value is predicted ``slope * min(dt, tau_s)`` ahead before
+        the innovation is taken, so a steady fade is followed without lag.
 
     Notes
     -----
@@ -121,14 +151,17 @@ class Estimator:
                  backoff_sigmas: float = 1.0, outlier_db: float = 6.0,
                  outlier_sigmas: float = 4.0, confirm_frames: int = 3,
                  frame_outlier_fraction: float = 0.5, stale_s: float = 5.0,
-                 tone_window: int = 1, tone_agree_db: float = 1.0) -> None:
+                 tone_window: int = 2, tone_agree_db: float = 2.0,
+                 trend_tau_s: float = 0.0, lag_sigmas: float = 2.0,
+                 tau_min_s: float = 0.015) -> None:
         for name, value in (("tau_s", tau_s), ("std_tau_s", std_tau_s),
                             ("std_init_db", std_init_db), ("outlier_db", outlier_db),
-                            ("stale_s", stale_s)):
+                            ("stale_s", stale_s), ("tau_min_s", tau_min_s)):
             if not (math.isfinite(value) and value > 0):
                 raise ValueError(f"estimator.{name}={value} must be positive and finite")
         for name, value in (("backoff_sigmas", backoff_sigmas),
-                            ("outlier_sigmas", outlier_sigmas), ("tone_agree_db", tone_agree_db)):
+                            ("outlier_sigmas", outlier_sigmas), ("tone_agree_db", tone_agree_db),
+                            ("trend_tau_s", trend_tau_s), ("lag_sigmas", lag_sigmas)):
             if not (math.isfinite(value) and value >= 0):
                 raise ValueError(f"estimator.{name}={value} must be finite and >= 0")
         if int(confirm_frames) < 1:
@@ -149,6 +182,9 @@ class Estimator:
         self.stale_s = float(stale_s)
         self.tone_window = int(tone_window)
         self.tone_agree_db = float(tone_agree_db)
+        self.trend_tau_s = float(trend_tau_s)
+        self.lag_sigmas = float(lag_sigmas)
+        self.tau_min_s = float(tau_min_s)
         self._counters = dict.fromkeys(
             ("accepted",) + REJECT_REASONS
             + ("tone_outliers", "tone_changes", "reset_plan", "reset_tuning", "reset_stale",
@@ -168,7 +204,9 @@ class Estimator:
         self._accepted_now_s = math.nan
         self._mean_db = None
         self._var_db2 = None
-        self._mean_var_db2 = None
+        self._p11 = self._p12 = self._p22 = None
+        self._slope_db_s = None
+        self._lag_db = None
         self._pend_sum = None
         self._pend_n = None
         self._pend_sign = None
@@ -181,7 +219,14 @@ class Estimator:
         self._center_hz = estimate.center_hz
         self._mean_db = x.copy()
         self._var_db2 = np.full(n, self.std_init_db ** 2)
-        self._mean_var_db2 = self._var_db2.copy()
+        self._p11 = self._var_db2.copy()   # variance of the tracked level
+        self._p12 = np.zeros(n)            # its covariance with the slope
+        self._p22 = np.zeros(n)            # variance of the slope
+        self._slope_db_s = np.zeros(n)
+        self._lag_db = np.zeros(n)         # short-term mean of the innovations
+        self._pool_w = min(LAG_POOL_TONES, max(n - 1, 0) // 2)
+        self._cumsum = np.zeros(n + 1 + 2 * self._pool_w)
+        self._lag_gain = 1.0
         self._pend_sum = np.zeros(n)
         self._pend_n = np.zeros(n, dtype=np.int64)
         self._pend_sign = np.zeros(n)
@@ -269,18 +314,45 @@ class Estimator:
     def _smooth(self, estimate: Estimate, now_s: float) -> str | None:
         dt = estimate.time_s - self._time_s
         alpha = -math.expm1(-dt / self.tau_s)
+        if self.trend_tau_s > 0:
+            # Holt's linear trend: the slope gain is gamma per unit level change per dt.
+            gamma = -math.expm1(-dt / self.trend_tau_s)
+            k2 = alpha * gamma / dt
+            # Extrapolate at most tau_s ahead: after a long gap the slope says little.
+            horizon = min(dt, self.tau_s)
+        else:
+            gamma = k2 = horizon = 0.0
         # Until the variance window is full, a plain running mean over the frames so far (the
         # prior std_init_db counting as one frame): the spread is learnt within a few frames.
         beta = max(-math.expm1(-dt / self.std_tau_s), 1.0 / (self._frames + 1))
         x = estimate.snr_db.astype(np.float64)
-        mean = self._mean_db
-        d = x - mean
-        gate = np.sqrt(self._var_db2)
+        slope = self._slope_db_s
+        if k2:
+            pred = slope * horizon
+            pred += self._mean_db
+            # Covariance of the prediction: F P F^T with F = [[1, h], [0, 1]].
+            s11 = self._p11 + horizon * (2.0 * self._p12 + horizon * self._p22)
+            s12 = self._p12 + horizon * self._p22
+            s22 = self._p22
+        else:
+            pred = self._mean_db
+            s11, s12, s22 = self._p11, self._p12, self._p22
+        d = x - pred
+        var = self._var_db2
+        gate = var + s11
+        np.sqrt(gate, out=gate)
         gate *= self.outlier_sigmas
         np.maximum(gate, self.outlier_db, out=gate)
         if alpha < 0.5:
             out = np.abs(d) > gate
             n_out = int(np.count_nonzero(out))
+            if n_out and self.lag_sigmas > 0 and self._frames > 1:
+                # A deviation in the direction a fade already under way moves this tone and
+                # its neighbours (seen in the frames before this one) is the fade, not an outlier.
+                # Twice the lag threshold: noise alone gets there about once in 10**4 tones.
+                pooled, z2 = self._lag_z2()
+                out &= ~((z2 > 4.0 * self.lag_sigmas ** 2) & (pooled * d > 0))
+                n_out = int(np.count_nonzero(out))
         else:  # after a gap of tau_s * ln 2 or more the new frame outweighs the old state
             n_out = 0
         self._seen_s = estimate.time_s
@@ -309,32 +381,96 @@ class Estimator:
             self._counters["tone_changes"] += n_confirmed
             confirmed_mean = np.where(confirmed, new_sum / np.maximum(new_n, 1), 0.0)
             d[out] = 0.0
-        # Innovation variance, corrected for the tracked value's own spread (see module notes).
-        # Held-back tones keep their variance and their tracked value (d is 0 there).
-        var = self._var_db2
+        if self.lag_sigmas > 0 and alpha < 0.5:
+            alpha = self._adapt_gain(d, dt)
+        # Innovation variance, less the part the prediction's own spread explains (see module
+        # notes). Held-back tones keep their variance (d is 0 there) and follow the prediction.
         new_var = d * d
-        new_var *= beta * (2.0 - alpha) / 2.0
+        new_var *= var / (var + s11)
+        new_var *= beta
         new_var += (1.0 - beta) * var
-        # Variance of the tracked value itself: (1 - a)**2 P + a**2 sigma**2 per frame.
-        new_mean_var = self._mean_var_db2 * (1.0 - alpha) ** 2
-        new_mean_var += alpha * alpha * new_var
+        # Covariance of the tracked level and slope after the update (Joseph form, gain
+        # K = [alpha, k2]): (I - K H) S (I - K H)^T + K K^T var.
+        p11 = s11 * (1.0 - alpha) ** 2
+        p11 += alpha * alpha * new_var
+        if k2:
+            p12 = (1.0 - alpha) * (s12 - k2 * s11) + alpha * k2 * new_var
+            p22 = s22 - 2.0 * k2 * s12 + k2 * k2 * (s11 + new_var)
+        else:
+            p12, p22 = s12, s22
         if n_out:
-            np.copyto(var, new_var, where=~out)
-            np.copyto(self._mean_var_db2, new_mean_var, where=~out)
+            keep = ~out
+            np.copyto(var, new_var, where=keep)
+            self._p11 = np.where(keep, p11, s11)
+            self._p12 = np.where(keep, p12, s12)
+            self._p22 = np.where(keep, p22, s22)
         else:
             self._var_db2 = new_var
-            self._mean_var_db2 = new_mean_var
-        mean += alpha * d
+            self._p11, self._p12, self._p22 = p11, p12, p22
+        if k2:
+            slope = slope + k2 * d
+            mean = pred + alpha * d
+        else:
+            mean = pred + alpha * d
         if confirmed is not None and n_confirmed:
             np.copyto(mean, confirmed_mean, where=confirmed)
             # As uncertain as a fresh seed: the wider back-off right after a big change keeps
             # the map made on it from needing repairs as the new level settles.
-            np.copyto(self._mean_var_db2, var, where=confirmed)
+            np.copyto(self._p11, self._var_db2, where=confirmed)
+            if k2:
+                slope = np.where(confirmed, 0.0, slope)
+                self._p12 = np.where(confirmed, 0.0, self._p12)
+                self._p22 = np.where(confirmed, 0.0, self._p22)
+        self._mean_db = mean
+        self._slope_db_s = slope
         self._time_s = estimate.time_s
         self._accepted_now_s = float(now_s)
         self._frames += 1
         self._counters["accepted"] += 1
         return None
+
+    def _lag_z2(self) -> tuple[np.ndarray, np.ndarray]:
+        """The innovations' short-term mean pooled over neighbouring tones (times the count)
+        and its square in units of its variance under noise alone (``z**2``)."""
+        pooled = self._window_sum(self._lag_db)      # count * pooled mean
+        noise = self._window_sum(self._var_db2)      # count * pooled variance
+        noise *= self._lag_gain / (2.0 - self._lag_gain)   # EWMA variance of iid noise
+        # z**2 = (pooled / count)**2 / (noise / count / count) = pooled**2 / noise
+        z2 = pooled * pooled
+        z2 /= noise
+        return pooled, z2
+
+    def _window_sum(self, values: np.ndarray) -> np.ndarray:
+        """Sum over each tone's pooling window (clipped at the band edges), by a running sum
+        padded with ``w`` zeros in front and ``w`` copies of the total behind."""
+        w, c = self._pool_w, self._cumsum
+        n = values.size
+        np.cumsum(values, out=c[w + 1:w + 1 + n])
+        c[w + 1 + n:] = c[w + n]
+        return c[2 * w + 1:] - c[:n]
+
+    def _adapt_gain(self, d: np.ndarray, dt: float) -> np.ndarray:
+        """Per-tone smoothing gain, shortened where the innovations show lag.
+
+        The innovations' short-term mean (time constant ``tau_min_s``) is pooled over
+        ``2 * LAG_POOL_TONES + 1`` neighbouring tones and compared with its spread under noise
+        alone: a fade moves neighbouring tones together frame after frame, estimation noise does
+        not. Where the pooled mean stands ``z`` noise spreads off zero with ``z > lag_sigmas``,
+        the time constant becomes ``tau_s * (lag_sigmas / z)**2`` (at least ``tau_min_s``).
+        """
+        self._lag_gain = a_u = -math.expm1(-dt / self.tau_min_s)
+        lag = self._lag_db
+        lag *= 1.0 - a_u
+        lag += a_u * d
+        _, tau = self._lag_z2()
+        # tau_s * min(1, lag_sigmas**2 / z**2), floored at tau_min_s (no faster than that)
+        np.maximum(tau, self.lag_sigmas ** 2, out=tau)
+        np.divide(self.tau_s * self.lag_sigmas ** 2, tau, out=tau)
+        np.maximum(tau, min(self.tau_min_s, self.tau_s), out=tau)
+        np.divide(-dt, tau, out=tau)
+        np.expm1(tau, out=tau)
+        np.negative(tau, out=tau)
+        return tau
 
     # ------------------------------------------------------------------ output
 
@@ -356,8 +492,8 @@ class Estimator:
         if self.tone_window > 0 and snr_db.size > 1:
             snr_db = _agree_smooth(snr_db, self.tone_window, self.tone_agree_db)
         std_db = np.sqrt(self._var_db2)
-        mean_std_db = np.sqrt(self._mean_var_db2)
-        spread = self._var_db2 + self._mean_var_db2
+        mean_std_db = np.sqrt(self._p11)
+        spread = self._var_db2 + self._p11
         np.sqrt(spread, out=spread)
         spread *= self.backoff_sigmas
         return Tracked(
