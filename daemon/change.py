@@ -14,10 +14,15 @@ loading target, whose gap already includes the configured target margin):
    ``downshift_margin_db`` at once while the mean tracked SNR has fallen by at least
    ``-downshift_margin_db`` (the band as a whole went down, not the ordinary spread of fading), or
    the mean fell by ``emergency_drop_db``, both since the current map was made, the loader runs on
-   the effective SNR lowered by ``emergency_margin_db``. This bypasses the dwell times (not the
-   map rate limit). Normal upgrades recover the rate.
-3. **Downgrade**: any loaded tone below ``downshift_margin_db`` forces a change once
-   ``down_dwell_s`` has passed since the last map. When at most ``swap_max_tones`` tones need to
+   the effective SNR lowered by ``emergency_margin_db``. This counts tones below the margin on
+   this very call (no persistence) and bypasses the dwell times (not the map rate limit). Normal upgrades recover the rate.
+3. **Downgrade**: a loaded tone *stays low* once its margin has been below
+   ``downshift_margin_db`` on every call for ``down_persist_s`` (tracked per tone from the time
+   it first went below; reset when it recovers or the map changes), or at once when it is more
+   than ``down_deep_db`` below that margin (a drop that deep is no estimation noise, and the
+   estimator has already confirmed it before it jumps). Any tone that stays low forces a change
+   once ``down_dwell_s`` has passed since the last map; the change repairs every tone below the
+   margin at that moment. When at most ``swap_max_tones`` tones need to
    change and the rate drops by at most ``swap_max_loss_bits``, a bit swap repairs the map: the
    failing tones drop to the bits their power still carries, and the lost bits move to the tones
    where one more bit costs the least power, within the budget and ceilings. Otherwise (or when
@@ -31,8 +36,9 @@ loading target, whose gap already includes the configured target margin):
 
 Separate upshift and downshift margins with minimum times follow the idea of DSL online rate
 adaptation (ITU-T G.997.1, as described in IETF RFC 5650): the map moves down fast when the
-link is failing and up slowly, only for a clear gain. No two maps are closer than
-``1 / max_maps_per_s``.
+link is failing and up slowly, only for a clear gain; the downshift persistence
+``down_persist_s`` is the time a margin must stay below the downshift margin there, too. No two
+maps are closer than ``1 / max_maps_per_s``.
 
 Every map published here satisfies the loader's constraints: power within the budget, every tone
 within the ceiling, bits from the allowed set (reloads come from the loader; bit swaps only move
@@ -70,6 +76,12 @@ class ChangeControl:
         Smallest gain in bits per symbol worth an upgrade.
     down_dwell_s : float
         Minimum time since the last map before a downgrade, seconds.
+    down_persist_s : float
+        A tone counts as below the downshift margin only once it has stayed below it for this
+        long (0: at once), seconds.
+    down_deep_db : float
+        A tone more than this below the downshift margin counts at once, without persistence,
+        dB (inf: never).
     up_dwell_s : float
         Time an upgrade must stay worth it without a break before it is made, seconds.
     upgrade_check_s : float
@@ -95,7 +107,8 @@ class ChangeControl:
 
     def __init__(self, loader, *, downshift_margin_db: float = -1.5,
                  upshift_margin_db: float = 1.5, min_gain_bits: int = 4,
-                 down_dwell_s: float = 0.1, up_dwell_s: float = 1.0,
+                 down_dwell_s: float = 0.1, down_persist_s: float = 0.06,
+                 down_deep_db: float = 6.0, up_dwell_s: float = 1.0,
                  upgrade_check_s: float = 0.25, max_maps_per_s: float = 10.0,
                  swap_max_tones: int = 16, swap_max_loss_bits: int = 4,
                  emergency_fraction: float = 0.25, emergency_drop_db: float = 6.0,
@@ -107,7 +120,10 @@ class ChangeControl:
             raise ValueError(f"change.max_maps_per_s={max_maps_per_s} must be positive")
         if not 0 < emergency_fraction <= 1:
             raise ValueError(f"change.emergency_fraction={emergency_fraction} must be in (0, 1]")
-        for name, value in (("down_dwell_s", down_dwell_s), ("up_dwell_s", up_dwell_s),
+        if not (down_deep_db >= 0):   # inf allowed: persistence for every drop
+            raise ValueError(f"change.down_deep_db={down_deep_db} must be >= 0")
+        for name, value in (("down_dwell_s", down_dwell_s), ("down_persist_s", down_persist_s),
+                            ("up_dwell_s", up_dwell_s),
                             ("upgrade_check_s", upgrade_check_s),
                             ("emergency_margin_db", emergency_margin_db),
                             ("emergency_drop_db", emergency_drop_db),
@@ -120,6 +136,8 @@ class ChangeControl:
         self.upshift_margin_db = float(upshift_margin_db)
         self.min_gain_bits = int(min_gain_bits)
         self.down_dwell_s = float(down_dwell_s)
+        self.down_persist_s = float(down_persist_s)
+        self.down_deep_db = float(down_deep_db)
         self.up_dwell_s = float(up_dwell_s)
         self.upgrade_check_s = float(upgrade_check_s)
         self.max_maps_per_s = float(max_maps_per_s)
@@ -139,10 +157,12 @@ class ChangeControl:
         self._cap_lin = 10.0 ** (float(getattr(loader, "cap_db", math.inf)) / 10.0)
         self._counters = dict.fromkeys(
             ("keep", "bit_swap", "reload", "emergency", "fallback", "forced", "upgrade",
-             "held_dwell", "held_rate", "infeasible", "bad_input"), 0)
+             "held_persist", "held_dwell", "held_rate", "infeasible", "bad_input"), 0)
         self._current: Allocation | None = None
         self._margin_at_0db = None      # tone margins of the current map at 0 dB SNR
         self._n_loaded = 0
+        self._low_since_s = np.empty(0)  # per tone: when it went below the downshift margin,
+        #                                  NaN while it is not below (reset at every map)
         self._plan_id: str | None = None
         self._changed_s = -math.inf     # when the current map was adopted
         self._ref_mean_db = math.nan    # mean tracked SNR when the current map was made
@@ -160,7 +180,8 @@ class ChangeControl:
 
     @property
     def counters(self) -> dict[str, int]:
-        """Decisions by kind, ``upgrade`` reloads, changes held by ``held_dwell`` /
+        """Decisions by kind, ``upgrade`` reloads, changes held by ``held_persist`` (tones
+        below the downshift margin not yet for ``down_persist_s``), ``held_dwell`` /
         ``held_rate``, ``forced`` maps, ``infeasible`` loads (margin mode fell back to rate) and
         ``bad_input`` (a tracked view with NaN or inf, kept without a change)."""
         return dict(self._counters)
@@ -236,7 +257,15 @@ class ChangeControl:
         # With power proportional to 1 / snr for given bits (the SNR-gap model), a tone's margin
         # in dB is its margin at 0 dB SNR plus its SNR in dB: one addition per frame.
         margins = self._margin_at_0db + eff_db
-        low = margins < self.downshift_margin_db
+        below = margins < self.downshift_margin_db
+        n_below = int(np.count_nonzero(below))
+        # Persistence: a tone stays low once below on every call for down_persist_s, or at once
+        # when the drop is deeper than down_deep_db; one vectorized update per call.
+        since = np.where(below, np.fmin(self._low_since_s, now_s), np.nan)
+        self._low_since_s = since
+        with np.errstate(invalid="ignore"):
+            low = below & ((now_s - since >= self.down_persist_s - 1e-9)
+                           | (margins < self.downshift_margin_db - self.down_deep_db))
         n_low = int(np.count_nonzero(low))
         n_loaded = self._n_loaded
         worst = int(np.argmin(margins))
@@ -248,10 +277,11 @@ class ChangeControl:
 
         # Many tones low at once is an emergency when the band as a whole went down; with the
         # mean in place it is the ordinary spread of fading, which a reload handles.
-        broad = (n_low >= self.emergency_fraction * n_loaded
+        # Counted on this call alone: a band-wide drop must not wait for persistence.
+        broad = (n_below >= self.emergency_fraction * n_loaded
                  and drop_db >= -self.downshift_margin_db)
-        if (n_low and broad) or drop_db >= self.emergency_drop_db:
-            what = (f"{n_low} of {_tones(n_loaded)} loaded below downshift margin "
+        if (n_below and broad) or drop_db >= self.emergency_drop_db:
+            what = (f"{n_below} of {_tones(n_loaded)} loaded below downshift margin "
                     f"({worst_text}), mean SNR {-drop_db:+.1f} dB")
             if rate_wait > 0:
                 return self._hold("held_rate", f"emergency pending: {what}; map rate limit "
@@ -269,7 +299,8 @@ class ChangeControl:
             gain = self._upgrade_gain(eff_db, cur, now_s, now=True)
             due = self._upgrade_due(now_s)
         if n_low:
-            what = f"{_tones(n_low)} below downshift margin ({worst_text})"
+            # The change repairs every tone below the margin now, persistent or not yet.
+            what = f"{_tones(n_below)} below downshift margin ({worst_text})"
             wait = max(self.down_dwell_s - since_map, rate_wait)
             if wait > 0:
                 key = "held_dwell" if self.down_dwell_s - since_map >= rate_wait else "held_rate"
@@ -281,7 +312,7 @@ class ChangeControl:
                 return self._adopt(DecisionKind.RELOAD, alloc,
                                    f"reload: {what}; upgrade due{note}", now_s, mean_db,
                                    restart_upgrade=True)
-            swap = self._bit_swap(cur, snr, low) if n_low <= self.swap_max_tones else None
+            swap = self._bit_swap(cur, snr, below) if n_below <= self.swap_max_tones else None
             if swap is not None:
                 alloc, changed = swap
                 delta = alloc.total_bits - cur.total_bits
@@ -301,6 +332,11 @@ class ChangeControl:
                 f"{self.upshift_margin_db:g} dB more margin for "
                 f"{now_s - self._gain_since_s:.1f} s){note}", now_s, mean_db,
                 restart_upgrade=True)
+        if n_below:
+            first = float(np.nanmin(since))
+            return self._hold("held_persist", f"{_tones(n_below)} below downshift margin "
+                              f"({worst_text}) for {now_s - first:.2f} of "
+                              f"{self.down_persist_s:g} s")
         if not math.isnan(self._gain_since_s):
             return self._hold("keep", f"margins ok ({worst_text}); upgrade pending for "
                               f"{now_s - self._gain_since_s:.1f} of {self.up_dwell_s:g} s")
@@ -345,6 +381,7 @@ class ChangeControl:
         self._margin_at_0db = self.loader.tone_margin_db(alloc.bits, alloc.power,
                                                          np.ones(alloc.bits.size))
         self._n_loaded = int(np.count_nonzero(alloc.bits))
+        self._low_since_s = np.full(alloc.bits.size, np.nan)
         self._changed_s = float(now_s)
         self._ref_mean_db = mean_db
         self._next_upgrade_s = -math.inf

@@ -443,6 +443,14 @@ class ChangeSection(Section):
     down_dwell_s: float = Field(
         0.1, description="minimum time since the last map before a downgrade (bit swap or "
                          "reload), s")
+    down_persist_s: float = Field(
+        0.06, description="a loaded tone counts as below downshift_margin_db only once it has "
+                          "stayed below on every frame for this long (0.06 s: 3 frame times, "
+                          "the 4th frame in a row, at 50 frames/s), so a dip of a frame or two "
+                          "changes nothing; emergencies do not wait for it, s")
+    down_deep_db: float = Field(
+        6.0, description="a loaded tone more than this below downshift_margin_db counts at "
+                         "once, without down_persist_s; .inf: never, dB")
     up_dwell_s: float = Field(
         1.0, description="an upgrade is made once it has been worth it (see upshift_margin_db) "
                          "for this long without a break; upgrades, emergencies and first maps "
@@ -465,10 +473,18 @@ class ChangeSection(Section):
     emergency_margin_db: float = Field(
         3.0, description="extra margin of the emergency map, dB (recovered by upgrades)")
 
-    @field_validator("down_dwell_s", "up_dwell_s", "upgrade_check_s", "emergency_margin_db")
+    @field_validator("down_dwell_s", "down_persist_s", "up_dwell_s", "upgrade_check_s",
+                     "emergency_margin_db")
     @classmethod
     def _non_negative_ok(cls, v: float, info) -> float:
         return _non_negative(info.field_name, v)
+
+    @field_validator("down_deep_db")
+    @classmethod
+    def _deep_ok(cls, v: float) -> float:
+        if not v >= 0:   # .inf allowed: every drop waits for down_persist_s
+            raise ValueError(f"down_deep_db={v} must be >= 0")
+        return v
 
     @field_validator("max_maps_per_s", "emergency_drop_db")
     @classmethod

@@ -99,6 +99,8 @@ class TestConfig:
         (dict(downshift_margin_db=2.0, upshift_margin_db=1.0), r"downshift_margin_db=2.0"),
         (dict(max_maps_per_s=0.0), r"max_maps_per_s=0.0"),
         (dict(emergency_fraction=0.0), r"emergency_fraction=0.0"),
+        (dict(down_persist_s=-0.1), r"down_persist_s=-0.1"),
+        (dict(down_deep_db=-1.0), r"down_deep_db=-1.0"),
     ])
     def test_bad_settings_name_the_key(self, kwargs, match):
         with pytest.raises(ValueError, match=match):
@@ -174,6 +176,54 @@ class TestDecisions:
         assert d.kind is DecisionKind.KEEP and "change in 0.15 s" in d.reason
         assert cc.counters["held_dwell"] == 1
         assert cc.decide(tracked(snr), 0.2).kind is DecisionKind.BIT_SWAP
+
+    def test_a_short_dip_below_the_downshift_margin_changes_nothing(self):
+        """Downshift persistence: a tone counts as below the downshift margin only once it has
+        stayed below it for down_persist_s. This is the downshift time interval that goes with
+        the downshift noise margin of DSL rate adaptation (ITU-T G.997.1 as described in IETF
+        RFC 5650; from memory). 50 frames/s: 0.06 s is 3 frame times, so one or two low frames
+        change nothing and the 4th low frame in a row gets the bit swap."""
+        ld = loader()
+        cc = ChangeControl(ld, down_persist_s=0.06, down_deep_db=6.0)
+        snr = profile()
+        first = cc.decide(tracked(snr), 0.0).allocation
+        m0 = ld.tone_margin_db(first.bits, first.power, 10 ** (snr / 10))
+        dip = snr.copy()
+        dip[37] -= m0[37] + 3.0             # margin -3 dB: below -1.5, not a deep drop
+        fps, t = 50.0, 1.0
+        pattern = [1, 0, 1, 1, 0, 0, 1, 1, 0, 1, 0]   # dips of one or two frames, recoveries
+        for k, is_low in enumerate(pattern):
+            d = cc.decide(tracked(dip if is_low else snr), t + k / fps)
+            assert d.kind is DecisionKind.KEEP, d.reason
+            if is_low:
+                assert d.reason.startswith("1 tone below downshift margin (")
+                assert "of 0.06 s" in d.reason
+        assert cc.counters["held_persist"] == sum(pattern)
+        assert cc.current is first
+        t += len(pattern) / fps
+        ds = [cc.decide(tracked(dip), t + k / fps) for k in range(4)]
+        assert [d.kind for d in ds[:3]] == [DecisionKind.KEEP] * 3
+        assert ds[3].kind is DecisionKind.BIT_SWAP
+        assert ds[3].reason.startswith("bit swap: 1 tone below downshift margin (")
+        check_constraints(ds[3].allocation, ld, N)
+
+    def test_deep_drop_and_band_drop_do_not_wait_for_persistence(self):
+        """A tone more than down_deep_db below the downshift margin counts at once; so do the
+        tones of an emergency (many tones low while the mean fell)."""
+        ld = loader()
+        cc = ChangeControl(ld, down_persist_s=0.5, down_deep_db=6.0)
+        snr = profile()
+        first = cc.decide(tracked(snr), 0.0).allocation
+        m0 = ld.tone_margin_db(first.bits, first.power, 10 ** (snr / 10))
+        deep = snr.copy()
+        deep[37] -= m0[37] + 1.5 + 6.5      # margin -8 dB: 6.5 dB below the downshift margin
+        assert cc.decide(tracked(deep), 1.0).kind is DecisionKind.BIT_SWAP
+        d = cc.decide(tracked(snr - 5.0), 2.0)   # margins near -5 dB: not deep, band-wide
+        assert d.kind is DecisionKind.EMERGENCY, d.reason
+        never = ChangeControl(ld, down_persist_s=0.5, down_deep_db=math.inf)
+        never.decide(tracked(snr), 0.0)
+        assert never.decide(tracked(deep), 1.0).kind is DecisionKind.KEEP
+        assert never.decide(tracked(deep), 1.5).kind is DecisionKind.BIT_SWAP
 
     def test_upgrade_needs_margin_gain_and_persistence(self):
         """Upshift: the gain must hold with upshift_margin_db of extra margin, for up_dwell_s
