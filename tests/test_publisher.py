@@ -22,13 +22,6 @@ DEVELOPERS = Path(__file__).resolve().parents[1] / "DEVELOPERS.md"
 
 
 @pytest.fixture
-def ctx():
-    context = zmq.Context()
-    yield context
-    context.destroy(linger=0)
-
-
-@pytest.fixture
 def pub(ctx):
     with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT, ack_endpoint=ANY_PORT,
                       heartbeat_s=0.05, linger_s=0.0, context=ctx, epoch="e1") as p:
