@@ -35,3 +35,15 @@ def test_missing_and_directory(tmp_path):
         load_config(tmp_path / "nope.yaml")
     with pytest.raises(ConfigError, match="is a directory"):
         load_config(tmp_path)
+
+
+def test_readme_lists_every_estimator_and_change_key_with_its_default():
+    """The README's defaults table stays true: every key of both sections, with its default."""
+    from pathlib import Path
+
+    from brimline.daemon.config import ChangeSection, EstimatorSection
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    for prefix, section in (("estimator", EstimatorSection), ("change", ChangeSection)):
+        for key, field in section.model_fields.items():
+            assert f"| `{prefix}.{key}` | {field.default} |" in readme, f"{prefix}.{key}"
