@@ -505,6 +505,12 @@ class Receiver:
             if demodulate:
                 idx = self._decide(rows[t + 1:], h_rows[t + 1:], tables).astype(np.uint8)
                 decided = (idx[..., 0], idx[..., 1], tables.b_q)
+        elif known < 3:
+            # Training alone (the header failed): one degree of freedom per tone, S ~ sigma^2
+            # Gamma(1), and 1/S has no finite mean (AWGN at 20 dB: +2.5 dB mean, tones up to
+            # 46 dB high). The noise pooled over neighbouring tones has ~17 and is unbiased.
+            h, noise_var = self._known_fit(rows, x, known, hit[dp])
+            used, decided = known, None
         else:
             h, _, residual = _fit(rows[:t + 1], x[:t + 1], None, linear=False)
             used, decided = known, None
