@@ -370,6 +370,35 @@ class TestBadInput:
         assert res.reason == "crc_failed" and not res.header_ok and res.map_seq == -1
         assert res.has_estimate and not res.map_known
 
+    def test_crc_failed_estimate_is_unbiased(self, rng):
+        """Frames whose header fails give a training-only estimate: one degree of freedom per
+        tone, ``S ~ sigma^2 Gamma(1)``, whose reciprocal has no finite mean (inverse-gamma mean
+        ``1 / (a - 1)`` for ``a > 1`` only; scipy.stats.invgamma). Pooled over the 17 nearest
+        tones, ``(D - 1) / S`` with ``D = 17`` has mean ``1 / sigma^2`` (same source), so the
+        linear SNR reads true on average and no tone reads tens of dB high."""
+        from scipy.stats import invgamma
+
+        assert not np.isfinite(invgamma(1).mean())
+        assert 16 * invgamma(17).mean() == pytest.approx(1.0)
+        plan = make_plan()
+        rx, tx = Receiver(plan), Transmitter(plan)
+        ch = LinkChannel(plan, profile="awgn", snr_db=20.0, lead_max_samples=0, rng=rng)
+        n = plan.data_tones.size
+        head = (1 + plan.train_symbols) * plan.symbol_len + plan.cp_len
+        est_db = []
+        for i in range(30):
+            sent = tx.frame(bits=np.full(n, 2), power_lin=np.ones(n), map_seq=-1, counter=i,
+                            rng=rng)
+            block = ch.transmit(sent.samples, 0.0, tail_samples=200)
+            block[head:head + plan.fft_size] *= -1  # invert the header symbol
+            res = rx.receive(block)
+            assert res.reason == "crc_failed"
+            est_db.append(res.snr_db)
+        est_db = np.array(est_db)
+        assert np.mean(10 ** (est_db / 10)) / 100.0 == pytest.approx(1.0, abs=0.1)
+        assert np.max(est_db) < 20.0 + 8.0  # 1 dof per tone read up to 46 dB high (60 frames)
+        assert np.std(est_db) < 2.0
+
     def test_clipping_is_flagged(self, rng):
         plan = make_plan()
         _, block, _ = _send(plan, bits=2, rng=rng)
