@@ -42,6 +42,21 @@ __all__ = [
 ]
 
 
+# Shared value checks; each section's validators name the key through these.
+
+
+def _positive(name: str, v: float) -> float:
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{name}={v} must be a positive finite number")
+    return v
+
+
+def _non_negative(name: str, v: float) -> float:
+    if not (math.isfinite(v) and v >= 0):
+        raise ValueError(f"{name}={v} must be a finite number >= 0")
+    return v
+
+
 class Section(BaseModel):
     """Base of every config section: frozen, strict types, unknown keys rejected."""
 
@@ -216,10 +231,8 @@ class SimSection(Section):
 
     @field_validator("frame_rate_hz", "drift_period_s")
     @classmethod
-    def _positive(cls, v, info):
-        if not (math.isfinite(v) and v > 0):
-            raise ValueError(f"{info.field_name}={v} must be positive")
-        return v
+    def _positive_ok(cls, v, info):
+        return _positive(info.field_name, v)
 
     @field_validator("doppler_hz", "lead_max_samples")
     @classmethod
@@ -323,18 +336,6 @@ class DriverSection(Section):
 
 
 # --------------------------------------------------------------------------- estimator, change
-
-
-def _positive(name: str, v: float) -> float:
-    if not (math.isfinite(v) and v > 0):
-        raise ValueError(f"{name}={v} must be a positive finite number")
-    return v
-
-
-def _non_negative(name: str, v: float) -> float:
-    if not (math.isfinite(v) and v >= 0):
-        raise ValueError(f"{name}={v} must be a finite number >= 0")
-    return v
 
 
 class EstimatorSection(Section):
@@ -535,12 +536,6 @@ def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
     return v
 
 
-def _finite_positive(key: str, v: float) -> float:
-    if not (math.isfinite(v) and v > 0):
-        raise ValueError(f"{key}={v} must be finite and > 0")
-    return v
-
-
 class PublishSection(Section):
     """``publish:`` map, snapshot, heartbeat and acknowledgement sockets.
 
@@ -572,7 +567,7 @@ class PublishSection(Section):
     @field_validator("heartbeat_s")
     @classmethod
     def _heartbeat(cls, v):
-        return _finite_positive("heartbeat_s", v)
+        return _positive("heartbeat_s", v)
 
     @field_validator("linger_s")
     @classmethod
@@ -615,7 +610,7 @@ class StatusSection(Section):
     @field_validator("rate_hz")
     @classmethod
     def _rate(cls, v):
-        return _finite_positive("rate_hz", v)
+        return _positive("rate_hz", v)
 
     @field_validator("hwm")
     @classmethod

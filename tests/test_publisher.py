@@ -387,7 +387,7 @@ class TestSections:
 
     @pytest.mark.parametrize("data, match", [
         ({"map_endpoint": "localhost:7341"}, r"publish.map_endpoint='localhost:7341'"),
-        ({"heartbeat_s": 0}, r"publish.heartbeat_s=0: heartbeat_s=0.0 must be finite and > 0"),
+        ({"heartbeat_s": 0}, r"publish.heartbeat_s=0: heartbeat_s=0.0 must be a positive finite number"),
         ({"curve_clients_dir": "clients"}, "curve_clients_dir needs curve_secret_key"),
         ({"hearbeat_s": 1.0}, "unknown key publish.hearbeat_s"),
     ])
@@ -398,7 +398,7 @@ class TestSections:
             parse_section(PublishSection, data, where="demo.yaml", name="publish")
 
     @pytest.mark.parametrize("data, match", [
-        ({"rate_hz": -1.0}, "rate_hz=-1.0 must be finite and > 0"),
+        ({"rate_hz": -1.0}, "rate_hz=-1.0 must be a positive finite number"),
         ({"hwm": 0}, "hwm=0 must be >= 1"),
     ])
     def test_status_errors_name_the_key(self, data, match):
