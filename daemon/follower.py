@@ -92,6 +92,15 @@ def check_map(load_map: LoadMap, *, plan_id: str, tone_index: np.ndarray,
     return None
 
 
+
+def _recv_nowait(socket: zmq.Socket):
+    """One message from ``socket`` without waiting (frames, uncopied), or None."""
+    try:
+        return socket.recv_multipart(flags=zmq.NOBLOCK, copy=False)
+    except zmq.Again:
+        return None
+
+
 class Follower:
     """Follows a daemon's maps for a transmitter.
 
@@ -265,21 +274,13 @@ class Follower:
         adopted = None
         events = dict(self._poller.poll(max(0, int(math.ceil(timeout_s * 1000)))))
         for _ in range(_MAX_PER_POLL):
-            got = False
-            if self._req in events:
-                try:
-                    frames = self._req.recv_multipart(flags=zmq.NOBLOCK, copy=False)
-                    got = True
-                    adopted = self._on_snapshot(frames) or adopted
-                except zmq.Again:
-                    pass
-            try:
-                frames = self._sub.recv_multipart(flags=zmq.NOBLOCK, copy=False)
-                got = True
-                adopted = self._on_update(frames) or adopted
-            except zmq.Again:
-                pass
-            if not got:
+            reply = _recv_nowait(self._req) if self._req in events else None
+            if reply is not None:
+                adopted = self._on_snapshot(reply) or adopted
+            update = _recv_nowait(self._sub)
+            if update is not None:
+                adopted = self._on_update(update) or adopted
+            if reply is None and update is None:
                 break
             events = {self._req: zmq.POLLIN}
         return adopted
