@@ -92,7 +92,6 @@ def check_map(load_map: LoadMap, *, plan_id: str, tone_index: np.ndarray,
     return None
 
 
-
 def _recv_nowait(socket: zmq.Socket):
     """One message from ``socket`` without waiting (frames, uncopied), or None."""
     try:
