@@ -1,5 +1,5 @@
 """``python -m brimline.daemon`` is the same as the ``brimline`` command."""
 
-from brimline.daemon.cli import main
+from brimline.daemon.commands.cli import main
 
 raise SystemExit(main())

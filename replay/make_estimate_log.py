@@ -24,11 +24,11 @@ GAP_S = (16.0, 17.5)
 
 
 def main(argv=None) -> int:
-    from brimline.daemon import codec
-    from brimline.daemon.config import load_config
-    from brimline.daemon.recording import RecordWriter
-    from brimline.drivers.ofdm import make_plan
-    from brimline.drivers.sim import SimDriver
+    from brimline.daemon.runtime.config import load_config
+    from brimline.daemon.wire import codec
+    from brimline.daemon.wire.recording import RecordWriter
+    from brimline.drivers.link.frame import make_plan
+    from brimline.drivers.sources.sim import SimDriver
 
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--frames", type=int, default=1000, help="frames to simulate")

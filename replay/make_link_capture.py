@@ -9,9 +9,9 @@ by 12 dB. Default link plan, default map (QPSK), 30 frames, ci16. Reproducible (
 
 from pathlib import Path
 
-from brimline.drivers.iq import write_sigmf
-from brimline.drivers.ofdm import make_plan
-from brimline.drivers.sim import SimDriver
+from brimline.drivers.link.frame import make_plan
+from brimline.drivers.sources.iq import write_sigmf
+from brimline.drivers.sources.sim import SimDriver
 
 HERE = Path(__file__).resolve().parent
 

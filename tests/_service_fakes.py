@@ -11,9 +11,9 @@ from typing import Iterator, Sequence
 
 import numpy as np
 
-from brimline.daemon.config import Config
 from brimline.daemon.records import Estimate
-from brimline.drivers.base import Driver
+from brimline.daemon.runtime.config import Config
+from brimline.drivers.sources.base import Driver
 
 
 class ScriptedDriver(Driver):

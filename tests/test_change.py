@@ -1,4 +1,4 @@
-"""Change control (brimline.daemon.change).
+"""Change control (brimline.daemon.core.change).
 
 The behaviour follows the idea of DSL online rate adaptation (ITU-T G.997.1 as described in IETF
 RFC 5650): separate downshift and upshift margins, a minimum time before each kind of change,
@@ -15,12 +15,12 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from brimline.daemon.change import ChangeControl
-from brimline.daemon.config import ChangeSection, load_config
+from brimline.daemon.core.change import ChangeControl
+from brimline.daemon.core.estimator import Estimator
+from brimline.daemon.core.loading import Loader
 from brimline.daemon.errors import ConfigError, InfeasibleError
-from brimline.daemon.estimator import Estimator
-from brimline.daemon.loading import Loader
 from brimline.daemon.records import DecisionKind, Estimate, Tracked
+from brimline.daemon.runtime.config import ChangeSection, load_config
 
 GAP_DB = 12.8   # common-practice uncoded QAM gap 9.8 dB at SER 1e-7 plus a 3 dB target margin
 N = 128
@@ -496,8 +496,8 @@ def test_band_fade_on_the_simulated_link_gets_a_new_map_quickly():
     receiver feed the estimator; a sudden 15 dB fade of 41 tones at t = 3 s must give a new map
     within confirm_frames + 2 frames (one frame may straddle the fade), with no loaded tone below
     the downshift margin afterwards and no further change on the then static channel."""
-    from brimline.drivers.ofdm import make_plan
-    from brimline.drivers.sim import SimDriver
+    from brimline.drivers.link.frame import make_plan
+    from brimline.drivers.sources.sim import SimDriver
 
     plan = make_plan()
     fade = dict(start_s=3.0, first_tone=20, last_tone=60, depth_db=15.0)

@@ -6,8 +6,7 @@ import numpy as np
 import pytest
 from scipy.special import j0
 
-from brimline.drivers._rx import Receiver
-from brimline.drivers.channel import (
+from brimline.drivers.air.channel import (
     PROFILES,
     FadeEvent,
     FadingTaps,
@@ -15,7 +14,8 @@ from brimline.drivers.channel import (
     profile,
     rms_delay_spread_s,
 )
-from brimline.drivers.ofdm import Transmitter, make_plan
+from brimline.drivers.link.frame import Transmitter, make_plan
+from brimline.drivers.link.receiver import Receiver
 
 
 def _spread_from_table(delays_ns, powers_db):

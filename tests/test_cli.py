@@ -3,7 +3,7 @@
 import subprocess
 import sys
 
-from brimline.daemon.cli import main
+from brimline.daemon.commands.cli import main
 
 
 def test_unknown_flag_is_one_line(capsys):

@@ -11,9 +11,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from brimline.daemon import codec
 from brimline.daemon.errors import ProtocolError
 from brimline.daemon.records import DecisionKind, Estimate, LoadMap, TonePlan
+from brimline.daemon.wire import codec
 
 
 def _map(n=6, seq=3, **kw):

@@ -2,8 +2,8 @@
 
 import pytest
 
-from brimline.daemon.config import load_config
 from brimline.daemon.errors import ConfigError
+from brimline.daemon.runtime.config import load_config
 
 
 def _write(tmp_path, text):
@@ -41,7 +41,7 @@ def test_readme_lists_every_estimator_and_change_key_with_its_default():
     """The README's defaults table stays true: every key of both sections, with its default."""
     from pathlib import Path
 
-    from brimline.daemon.config import ChangeSection, EstimatorSection
+    from brimline.daemon.runtime.config import ChangeSection, EstimatorSection
 
     readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
     for prefix, section in (("estimator", EstimatorSection), ("change", ChangeSection)):

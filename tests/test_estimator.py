@@ -1,4 +1,4 @@
-"""Per-tone SNR tracking (brimline.daemon.estimator).
+"""Per-tone SNR tracking (brimline.daemon.core.estimator).
 
 Outside references used here:
 * scipy.signal.lfilter as the reference first-order recursive filter for the regular-spacing case;
@@ -16,10 +16,10 @@ import numpy as np
 import pytest
 from scipy.signal import lfilter
 
-from brimline.daemon.config import EstimatorSection, load_config
+from brimline.daemon.core.estimator import REJECT_REASONS, Estimator, _agree_smooth
 from brimline.daemon.errors import ConfigError
-from brimline.daemon.estimator import REJECT_REASONS, Estimator, _agree_smooth
 from brimline.daemon.records import Estimate
+from brimline.daemon.runtime.config import EstimatorSection, load_config
 
 N = 64
 TONES = np.arange(-N // 2, N // 2)
@@ -434,8 +434,8 @@ def test_defaults_beat_raw_frames_on_indoor_fading():
     estimates over the tones above 0 dB true SNR, and within 1 dB rms (the figure
     track_rmse_db_indoor_1hz of the bench). Before the lag-driven gain the defaults were 2.8 dB
     rms off here, twice the raw frames' error."""
-    from brimline.drivers.ofdm import make_plan
-    from brimline.drivers.sim import SimDriver
+    from brimline.drivers.link.frame import make_plan
+    from brimline.drivers.sources.sim import SimDriver
 
     sim = SimDriver(plan=make_plan(), profile="indoor_a", doppler_hz=1.0, snr_db=25.0,
                     realtime=False, seed=3, frame_rate_hz=100.0)

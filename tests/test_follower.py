@@ -7,11 +7,11 @@ import pytest
 import zmq
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from brimline.daemon import codec
-from brimline.daemon.follower import Follower, check_map
-from brimline.daemon.publisher import MapPublisher
 from protocol_helpers import ANY_PORT, FakeClock, make_map, until, wifi_like_plan
+
+from brimline.daemon.net.follower import Follower, check_map
+from brimline.daemon.net.publisher import MapPublisher
+from brimline.daemon.wire import codec
 
 PLAN = wifi_like_plan()
 
@@ -248,7 +248,7 @@ class TestLifecycle:
 
 
 def test_for_daemon_takes_endpoints_and_limits_from_the_sections(pub, ctx):
-    from brimline.daemon.config import LoadingSection, PublishSection
+    from brimline.daemon.runtime.config import LoadingSection, PublishSection
     publish = PublishSection(map_endpoint=pub.map_endpoint.replace("127.0.0.1", "*"),
                              snapshot_endpoint=pub.snapshot_endpoint, ack_endpoint=None,
                              heartbeat_s=0.25)

@@ -16,13 +16,20 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import optimize, special, stats
 
-from brimline.daemon import loading
-from brimline.daemon.config import LoadingSection
-from brimline.daemon.errors import InfeasibleError, InputError
-from brimline.daemon.loading import (
-    Loader, _greedy_oracle, _water_level, load_margin, load_rate, qam_ber, qam_gap_db, qam_ser,
+from brimline.daemon.core import loading
+from brimline.daemon.core.loading import (
+    Loader,
+    _greedy_oracle,
+    _water_level,
+    load_margin,
+    load_rate,
+    qam_ber,
+    qam_gap_db,
+    qam_ser,
     waterfill,
 )
+from brimline.daemon.errors import InfeasibleError, InputError
+from brimline.daemon.runtime.config import LoadingSection
 
 
 def db(x):
@@ -184,7 +191,7 @@ class TestErrorRates:
     def test_cell_integration_reproduces_square_qam(self, b):
         """The cell-by-cell integrator used for cross constellations, run on a square grid,
         gives Proakis's closed form (5th ed. sec. 4.3), down to very small error rates."""
-        from brimline.daemon._lattice_cells import constellation_ser
+        from brimline.daemon.core._lattice_cells import constellation_ser
 
         side = 2 ** (b // 2)
         axis = np.arange(-(side - 1), side, 2.0)
@@ -199,7 +206,7 @@ class TestErrorRates:
         (100k symbols, 4 standard deviations), and below the bound
         P_M <= 1 - [1 - 2 Q(sqrt(3 Es / ((M - 1) N0)))]**2 that holds for any QAM shape
         (Proakis 5th ed. sec. 4.3; from memory)."""
-        from brimline.daemon._lattice_cells import cross_points
+        from brimline.daemon.core._lattice_cells import cross_points
 
         pts = cross_points(b)
         es_n0 = float(lin(es_n0_db))

@@ -11,14 +11,13 @@ import numpy as np
 import pytest
 from scipy.special import erfc
 
-from brimline.daemon.config import LinkSection, parse_section
 from brimline.daemon.errors import ConfigError
-from brimline.drivers._rx import Receiver
-from brimline.drivers.channel import LinkChannel
-from brimline.drivers.ofdm import (
+from brimline.daemon.runtime.config import LinkSection, parse_section
+from brimline.drivers.air.channel import LinkChannel
+from brimline.drivers.link.frame import (
+    NO_MAP,
     FrameFormat,
     LinkPlan,
-    NO_MAP,
     Transmitter,
     bit_errors,
     crc16,
@@ -27,7 +26,7 @@ from brimline.drivers.ofdm import (
     make_plan,
     qam_points,
 )
-
+from brimline.drivers.link.receiver import Receiver
 
 # --------------------------------------------------------------------------- reference formulas
 
@@ -76,7 +75,7 @@ class TestReferenceFormulas:
     @pytest.mark.parametrize("bits", range(1, 11))
     def test_agrees_with_loading_module(self, bits):
         """The loading engine's Gray-QAM BER (same rectangular grids) gives the same numbers."""
-        from brimline.daemon.loading import qam_ber
+        from brimline.daemon.core.loading import qam_ber
         for es_n0 in (3.0, 30.0, 300.0):
             if exact_qam_ber(bits, es_n0) < 1e-12:
                 continue  # both are exact; far tails differ only by rounding
@@ -414,7 +413,7 @@ class TestWindowSums:
 
     @pytest.mark.parametrize("width", [1, 2, 8, 16, 32, 12])
     def test_sliding_sums_match_convolution(self, width):
-        from brimline.drivers._rx import _sliding_sums
+        from brimline.drivers.link.receiver import _sliding_sums
 
         rng = np.random.default_rng(width)
         a = (rng.standard_normal(300) + 1j * rng.standard_normal(300)).astype(np.complex64)
@@ -432,7 +431,7 @@ class TestLowSnrTones:
         from three known rows, +1.2 dB at 0 dB true SNR, more below), partly offset by the
         negative mean of a log of an unbiased linear estimate (Jensen). Tones above 10 dB must
         stay within 0.5 dB (median) as before."""
-        from brimline.drivers.sim import SimDriver
+        from brimline.drivers.sources.sim import SimDriver
         plan = make_plan()
         low, high = [], []
         for seed in (1, 2, 3):
@@ -452,8 +451,8 @@ class TestDecisionThreshold:
     def test_grid_ser_matches_loading_module(self):
         """The receiver's closed-form grid SER agrees with the loading engine's exact QAM SER
         (both Proakis 5th ed. sec. 4.3)."""
-        from brimline.daemon.loading import qam_ser
-        from brimline.drivers._rx import grid_ser
+        from brimline.daemon.core.loading import qam_ser
+        from brimline.drivers.link.receiver import grid_ser
         for bits in range(1, 11):
             for es_n0 in (1.0, 10.0, 100.0):
                 assert float(grid_ser(bits, es_n0)) == pytest.approx(
@@ -463,7 +462,8 @@ class TestDecisionThreshold:
         """QPSK SER 2Q(sqrt(rho)) - Q^2 (Proakis 5th ed. sec. 4.3) is 1e-1 near rho = 2.664
         (4.26 dB); the form is from memory, checked here with scipy.special.erfc."""
         from scipy.special import erfc
-        from brimline.drivers._rx import decision_threshold_lin
+
+        from brimline.drivers.link.receiver import decision_threshold_lin
         rho = decision_threshold_lin(1e-1)[2]
         q = 0.5 * erfc(math.sqrt(rho / 2))
         assert 2 * q - q * q == pytest.approx(1e-1, rel=1e-6)

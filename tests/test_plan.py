@@ -11,10 +11,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from brimline.daemon._cmd_plan import bit_chart, parse_bit_list, read_snr_db
-from brimline.daemon.cli import RF_CAUTION, main
+from brimline.daemon.commands.cli import RF_CAUTION, main
+from brimline.daemon.commands.plan import bit_chart, parse_bit_list, read_snr_db
+from brimline.daemon.core.loading import load_margin, load_rate, qam_gap_db, waterfill
 from brimline.daemon.errors import InputError
-from brimline.daemon.loading import load_margin, load_rate, qam_gap_db, waterfill
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "replay" / "kestrel_ridge_snr_db.txt"
@@ -258,7 +258,7 @@ def test_ascii_terminal(tmp_path):
 
 
 def test_snr_strip_follows_the_profile():
-    from brimline.daemon._cmd_plan import snr_strip
+    from brimline.daemon.commands.plan import snr_strip
 
     strip = snr_strip(np.array([0.0] * 4 + [30.0] * 4 + [15.0] * 4), width=12)
     assert len(strip) == 12

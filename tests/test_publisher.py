@@ -8,15 +8,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 import zmq
-
-from brimline.daemon import codec
-from brimline.daemon.cli import main
-from brimline.daemon.errors import InputError, ProtocolError
-from brimline.daemon.follower import Follower
-from brimline.daemon.publisher import MapPublisher, StatusPublisher
-from brimline.daemon.records import LoadMap
-from brimline.daemon.security import load_keypair, make_keypair
 from protocol_helpers import ANY_PORT, make_map, until, wifi_like_plan
+
+from brimline.daemon.commands.cli import main
+from brimline.daemon.errors import InputError, ProtocolError
+from brimline.daemon.net.curve import load_keypair, make_keypair
+from brimline.daemon.net.follower import Follower
+from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
+from brimline.daemon.records import LoadMap
+from brimline.daemon.wire import codec
 
 DEVELOPERS = Path(__file__).resolve().parents[1] / "DEVELOPERS.md"
 
@@ -273,7 +273,7 @@ class TestCurve:
             stranger.close()
 
     def test_status_shares_the_curve_setup(self, keys, ctx):
-        from brimline.daemon.security import apply_client
+        from brimline.daemon.net.curve import apply_client
         with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT, ack_endpoint=None,
                           linger_s=0, context=ctx,
                           curve_secret_key=str(keys / "daemon/daemon.key_secret"),
@@ -371,13 +371,13 @@ class TestSections:
     def test_keys_are_constructor_kwargs(self, section, cls, extra):
         import inspect
 
-        from brimline.daemon import config
+        from brimline.daemon.runtime import config
         fields = set(getattr(config, section).model_fields)
         params = set(inspect.signature(cls).parameters)
         assert fields == params - extra
 
     def test_built_from_sections(self, ctx):
-        from brimline.daemon.config import PublishSection, StatusSection
+        from brimline.daemon.runtime.config import PublishSection, StatusSection
         pub_s = PublishSection(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT,
                                ack_endpoint=None, linger_s=0.0)
         with MapPublisher(**pub_s.model_dump(), context=ctx) as p, \
@@ -392,8 +392,8 @@ class TestSections:
         ({"hearbeat_s": 1.0}, "unknown key publish.hearbeat_s"),
     ])
     def test_publish_errors_name_the_key(self, data, match):
-        from brimline.daemon.config import PublishSection, parse_section
         from brimline.daemon.errors import ConfigError
+        from brimline.daemon.runtime.config import PublishSection, parse_section
         with pytest.raises(ConfigError, match=match):
             parse_section(PublishSection, data, where="demo.yaml", name="publish")
 
@@ -402,8 +402,8 @@ class TestSections:
         ({"hwm": 0}, "hwm=0 must be >= 1"),
     ])
     def test_status_errors_name_the_key(self, data, match):
-        from brimline.daemon.config import StatusSection, parse_section
         from brimline.daemon.errors import ConfigError
+        from brimline.daemon.runtime.config import StatusSection, parse_section
         with pytest.raises(ConfigError, match=match):
             parse_section(StatusSection, data, where="demo.yaml", name="status")
 

@@ -8,13 +8,19 @@ import textwrap
 
 import numpy as np
 import pytest
+from protocol_helpers import make_map, wifi_like_plan
 
-from brimline.daemon import codec
 from brimline.daemon.errors import RecordingError
 from brimline.daemon.records import Estimate, LoadMap
-from brimline.daemon.recording import (MAGIC, RecordReader, RecordWriter, TornRecordWarning,
-                                       read_recording, recording_paths)
-from protocol_helpers import make_map, wifi_like_plan
+from brimline.daemon.wire import codec
+from brimline.daemon.wire.recording import (
+    MAGIC,
+    RecordReader,
+    RecordWriter,
+    TornRecordWarning,
+    read_recording,
+    recording_paths,
+)
 
 
 def _estimate(frame):
@@ -183,7 +189,7 @@ def test_a_killed_writer_loses_at_most_the_record_being_written(tmp_path):
         import os, signal, sys
         sys.path.insert(0, {os.path.dirname(__file__)!r})
         from protocol_helpers import make_map
-        from brimline.daemon.recording import RecordWriter
+        from brimline.daemon.wire.recording import RecordWriter
         w = RecordWriter({str(path)!r})
         for i in range(40):
             w.write("map", make_map(i))
@@ -202,7 +208,7 @@ def test_a_killed_writer_loses_at_most_the_record_being_written(tmp_path):
 def test_record_section_builds_a_writer(tmp_path):
     import inspect
 
-    from brimline.daemon.config import RecordSection
+    from brimline.daemon.runtime.config import RecordSection
     assert set(RecordSection.model_fields) == set(inspect.signature(RecordWriter).parameters) \
         - {"meta"}
     section = RecordSection(path=str(tmp_path / "s.brl"), topics=["map"])

@@ -7,18 +7,17 @@ import time
 
 import numpy as np
 import pytest
-
-from brimline.daemon import codec
-from brimline.daemon.errors import SourceError
-from brimline.daemon.recording import RecordReader, RecordWriter
-from brimline.daemon.service import Service
-from brimline.drivers.replay import ReplayDriver
-
 from _service_fakes import ScriptedDriver, loopback_config
+
+from brimline.daemon.errors import SourceError
+from brimline.daemon.runtime.service import Service
+from brimline.daemon.wire import codec
+from brimline.daemon.wire.recording import RecordReader, RecordWriter
+from brimline.drivers.sources.replay import ReplayDriver
 
 
 def _plan():
-    from brimline.drivers.ofdm import make_plan
+    from brimline.drivers.link.frame import make_plan
 
     return make_plan(**loopback_config().link.model_dump())
 

@@ -12,20 +12,19 @@ from pathlib import Path
 
 import pytest
 import zmq
-
-from brimline.daemon import codec
-from brimline.daemon.cli import main
-from brimline.daemon.recording import RecordWriter
-from brimline.daemon.state import StateStore
-
 from _service_fakes import ScriptedDriver, loopback_config
+
+from brimline.daemon.commands.cli import main
+from brimline.daemon.wire import codec
+from brimline.daemon.wire.recording import RecordWriter
+from brimline.daemon.wire.state import StateStore
 
 ROOT = Path(__file__).resolve().parents[1]
 SHIPPED = sorted((ROOT / "config").glob("*.yaml"))
 
 
 def _recording(path: Path, frames: int = 300, frame_s: float = 0.01) -> Path:
-    from brimline.drivers.ofdm import make_plan
+    from brimline.drivers.link.frame import make_plan
 
     plan = make_plan(**loopback_config().link.model_dump())
     with ScriptedDriver(plan, frames=frames, frame_s=frame_s,
@@ -158,7 +157,7 @@ def test_value_rejected_by_a_part_is_one_line(tmp_path, capsys):
 
 
 def test_relative_paths_are_taken_from_the_config_folder(tmp_path):
-    from brimline.daemon.config import load_config
+    from brimline.daemon.runtime.config import load_config
 
     sub = tmp_path / "cfg"
     sub.mkdir()

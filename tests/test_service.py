@@ -17,16 +17,15 @@ import time
 import numpy as np
 import pytest
 import zmq
-
-from brimline.daemon import codec
-from brimline.daemon.follower import Follower
-from brimline.daemon.recording import RecordReader
-from brimline.daemon.records import LoadMap
-from brimline.daemon.service import Service
-from brimline.daemon.state import StateStore
-from brimline.daemon.status import band_columns, build_status
-
 from _service_fakes import ReloadEveryTime, ScriptedDriver, loopback_config
+
+from brimline.daemon.net.follower import Follower
+from brimline.daemon.records import LoadMap
+from brimline.daemon.runtime.service import Service
+from brimline.daemon.runtime.status import band_columns, build_status
+from brimline.daemon.wire import codec
+from brimline.daemon.wire.recording import RecordReader
+from brimline.daemon.wire.state import StateStore
 
 
 def _follower(svc: Service, adopted: list | None = None) -> Follower:
@@ -127,8 +126,8 @@ import json, sys, threading
 from pathlib import Path
 sys.path.insert(0, sys.argv[1])
 from _service_fakes import ReloadEveryTime, ScriptedDriver, loopback_config
-from brimline.daemon.service import Service
-from brimline.drivers.ofdm import make_plan
+from brimline.daemon.runtime.service import Service
+from brimline.drivers.link.frame import make_plan
 cfg = loopback_config(Path(sys.argv[2]))
 gate = threading.Event()
 svc = Service(cfg, driver=ScriptedDriver(make_plan(**cfg.link.model_dump()),
@@ -350,7 +349,7 @@ class TestRobustness:
         assert st["frames"]["accepted"] == 90
 
     def test_estimate_of_another_tone_plan_is_dropped(self):
-        from brimline.drivers.ofdm import make_plan
+        from brimline.drivers.link.frame import make_plan
 
         cfg = loopback_config()
         other = make_plan(fft_size=256, used_tones_half=90)
@@ -472,7 +471,7 @@ class TestStatusFigures:
 
 
 def _plan(cfg):
-    from brimline.drivers.ofdm import make_plan
+    from brimline.drivers.link.frame import make_plan
 
     return make_plan(**cfg.link.model_dump())
 

@@ -7,14 +7,14 @@ import time
 import numpy as np
 import pytest
 
-from brimline.daemon.config import IqSection, RadioSection, SimSection, parse_section
 from brimline.daemon.errors import ConfigError, SourceError
 from brimline.daemon.records import LoadMap
-from brimline.drivers.base import Driver
-from brimline.drivers.iio import RadioDriver
-from brimline.drivers.iq import IqDriver, read_sigmf, write_sigmf
-from brimline.drivers.ofdm import make_plan
-from brimline.drivers.sim import SimDriver
+from brimline.daemon.runtime.config import IqSection, RadioSection, SimSection, parse_section
+from brimline.drivers.link.frame import make_plan
+from brimline.drivers.sources.base import Driver
+from brimline.drivers.sources.iq import IqDriver, read_sigmf, write_sigmf
+from brimline.drivers.sources.radio import RadioDriver
+from brimline.drivers.sources.sim import SimDriver
 
 
 @pytest.fixture(scope="module")
@@ -408,7 +408,7 @@ def test_shipped_demo_capture_reads():
 
 def test_scanner_finds_frames_across_buffer_edges(plan, rng):
     """Feeding a stream in odd-sized pieces (as radio buffers arrive) finds every frame once."""
-    from brimline.drivers._rx import FrameScanner, Receiver
+    from brimline.drivers.link.receiver import FrameScanner, Receiver
     x = _capture(plan, n_frames=6, gap=300)
     scanner = FrameScanner(Receiver(plan))
     found, pos = [], 0
@@ -441,7 +441,7 @@ def test_closed_loop_estimates_with_loaded_map_and_interferer():
     """
     from scipy.special import polygamma
 
-    from brimline.daemon.config import LoadingSection
+    from brimline.daemon.runtime.config import LoadingSection
 
     plan = make_plan(fft_size=256, cp_len=32, sample_rate_hz=3.84e6, used_tones_half=100,
                      pilot_spacing=8, train_symbols=2, data_symbols=12, max_bits=10)

@@ -7,14 +7,14 @@ import textwrap
 
 import pytest
 import zmq
-
-from brimline.daemon import codec
-from brimline.daemon.errors import ProtocolError, StateError
-from brimline.daemon.follower import Follower
-from brimline.daemon.publisher import MapPublisher
-from brimline.daemon.recording import MAGIC
-from brimline.daemon.state import StateKeeper, StateStore, new_epoch
 from protocol_helpers import ANY_PORT, make_map, until, wifi_like_plan
+
+from brimline.daemon.errors import ProtocolError, StateError
+from brimline.daemon.net.follower import Follower
+from brimline.daemon.net.publisher import MapPublisher
+from brimline.daemon.wire import codec
+from brimline.daemon.wire.recording import MAGIC
+from brimline.daemon.wire.state import StateKeeper, StateStore, new_epoch
 
 
 def test_no_file_is_no_state(tmp_path):
@@ -42,7 +42,7 @@ def test_saved_map_bytes_are_the_ones_given(tmp_path):
     frames = codec.encode(codec.TOPIC_MAP, m)
     store = StateStore(tmp_path / "state.bin")
     store.save("e1", 9, m, map_frames=frames)
-    from brimline.daemon.recording import pack_record
+    from brimline.daemon.wire.recording import pack_record
     assert store.path.read_bytes().endswith(pack_record(frames))
     assert store.load().load_map.seq == 7
 
@@ -90,7 +90,7 @@ class TestDamagedFiles:
           ("map", make_map(4))], "after its two records"),
     ])
     def test_wrong_records(self, tmp_path, records, match):
-        from brimline.daemon.recording import pack_record
+        from brimline.daemon.wire.recording import pack_record
         p = tmp_path / "state.bin"
         p.write_bytes(MAGIC + b"".join(pack_record(codec.encode(t, r)) for t, r in records))
         with pytest.raises(StateError, match=match):
@@ -128,7 +128,7 @@ class TestCrash:
             import os, signal, sys
             sys.path.insert(0, {os.path.dirname(__file__)!r})
             from protocol_helpers import make_map
-            from brimline.daemon.state import StateStore
+            from brimline.daemon.wire.state import StateStore
             store = StateStore({str(path)!r})
             store.save("e1", 5, make_map(1))
             os.replace = lambda *a: os.kill(os.getpid(), signal.SIGKILL)

@@ -7,13 +7,12 @@ import queue
 import threading
 
 import numpy as np
+from _service_fakes import ScriptedDriver, loopback_config
 from rich.console import Console
 
 from brimline.daemon.records import LoadMap
-from brimline.daemon.status import Change, build_status
-from brimline.daemon.watch import band_chart, render, watch
-
-from _service_fakes import ScriptedDriver, loopback_config
+from brimline.daemon.runtime.status import Change, build_status
+from brimline.daemon.views.watch import band_chart, render, watch
 
 
 def _text(renderable, width=110) -> str:
@@ -80,14 +79,14 @@ def test_once_without_daemon_is_a_clear_message_not_a_crash():
 
 def test_plain_lines_from_a_running_daemon():
     """Without a terminal the view prints one readable line per status message."""
-    from brimline.daemon.service import Service
+    from brimline.daemon.runtime.service import Service
 
     endpoint: queue.Queue = queue.Queue()
     stop = threading.Event()
 
     def daemon():
         cfg = loopback_config()
-        from brimline.drivers.ofdm import make_plan
+        from brimline.drivers.link.frame import make_plan
 
         drv = ScriptedDriver(make_plan(**cfg.link.model_dump()), frames=100_000,
                              hold_at=100, release=stop)

@@ -4,7 +4,7 @@
 from the 3GPP EVA tapped delay line (TS 36.101 Annex B.2, Table B.2.1-3; Rayleigh taps, seeded)
 at 15 kHz tone spacing, with 1 dB of Gaussian estimation noise in dB per tone and frame.
 ``snr_rmse_db_smoothed`` runs the link model's transmitter, static EVA channel and receiver
-(brimline.drivers.sim) over several channel draws and compares the estimator's output with the
+(brimline.drivers.sources.sim) over several channel draws and compares the estimator's output with the
 simulator's true per-tone SNR; its RMS is dominated by the few tones in deep notches (true SNR
 below 0 dB, where no bits load), so the figure is also given over the tones above 0 dB, next to
 the receiver's raw per-frame error and a synthetic least-squares pilot estimate. The
@@ -20,10 +20,10 @@ import time
 
 import numpy as np
 
-from brimline.daemon.change import ChangeControl
-from brimline.daemon.config import ChangeSection, EstimatorSection, LoadingSection
-from brimline.daemon.estimator import Estimator
+from brimline.daemon.core.change import ChangeControl
+from brimline.daemon.core.estimator import Estimator
 from brimline.daemon.records import DecisionKind, Estimate
+from brimline.daemon.runtime.config import ChangeSection, EstimatorSection, LoadingSection
 
 GOALS = {
     "pipeline_fps_1024": ">= 5000 frames/s (estimator + change control + loading, 1024 tones)",
@@ -149,8 +149,8 @@ def _churn(truth_db, settle_s, measure_s):
 def _rmse_link(seconds, settle_s, seeds):
     """RMS dB error against the simulator's truth: tracked, tracked on tones whose true SNR is
     above 0 dB, and the receiver's raw per-frame estimates (same tones and frames)."""
-    from brimline.drivers.ofdm import make_plan
-    from brimline.drivers.sim import SimDriver
+    from brimline.drivers.link.frame import make_plan
+    from brimline.drivers.sources.sim import SimDriver
 
     tracked, raw, above = [], [], []
     for seed in seeds:
@@ -213,8 +213,8 @@ def _fading(seconds, seed=21, doppler_hz=0.2, estimator=None, change=None):
     a margin below minus the loading target margin sits below the raw SNR gap, i.e. above the
     target error rate: counted as an outage tone-frame.
     """
-    from brimline.drivers.channel import LinkChannel
-    from brimline.drivers.ofdm import make_plan
+    from brimline.drivers.air.channel import LinkChannel
+    from brimline.drivers.link.frame import make_plan
 
     plan = make_plan()
     channel = LinkChannel(plan, profile="eva", doppler_hz=doppler_hz, snr_db=25.0,
@@ -274,8 +274,8 @@ def _track_indoor(seconds, doppler_hz=1.0, seed=3, settle_s=1.0):
     model's transmitter and receiver), RMS dB error against the simulator's truth over tones
     whose true SNR is above 0 dB: tracked snr_db and effective_snr_db with the defaults, the raw
     per-frame estimates, and tracked snr_db with TREND_SETTINGS (same frames)."""
-    from brimline.drivers.ofdm import make_plan
-    from brimline.drivers.sim import SimDriver
+    from brimline.drivers.link.frame import make_plan
+    from brimline.drivers.sources.sim import SimDriver
 
     sim = SimDriver(plan=make_plan(), profile="indoor_a", doppler_hz=doppler_hz, snr_db=25.0,
                     realtime=False, seed=seed, frame_rate_hz=FPS)

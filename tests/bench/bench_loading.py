@@ -10,7 +10,7 @@ import time
 
 import numpy as np
 
-from brimline.daemon.loading import _greedy_oracle, load_rate
+from brimline.daemon.core.loading import _greedy_oracle, load_rate
 
 GOALS = {
     "alloc_us_1024": "median us of load_rate, 1024 tones, bits 0..10 (info)",

@@ -12,11 +12,11 @@ from pathlib import Path
 import numpy as np
 import zmq
 
-from brimline.daemon import codec
-from brimline.daemon.follower import Follower
-from brimline.daemon.publisher import MapPublisher
-from brimline.daemon.recording import RecordReader, RecordWriter
+from brimline.daemon.net.follower import Follower
+from brimline.daemon.net.publisher import MapPublisher
 from brimline.daemon.records import Estimate, LoadMap, TonePlan
+from brimline.daemon.wire import codec
+from brimline.daemon.wire.recording import RecordReader, RecordWriter
 
 GOALS = {
     "codec_encode_us": "encode a 1024-tone LoadMap, microseconds (goal < 100)",

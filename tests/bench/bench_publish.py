@@ -41,8 +41,8 @@ _FOLLOWER = r"""
 import json, os, select, sys, time
 if hasattr(os, "sched_setaffinity") and len(os.sched_getaffinity(0)) > 1:
     os.sched_setaffinity(0, {max(os.sched_getaffinity(0))})  # its own core, as on a real link
-from brimline.daemon.follower import Follower
-from brimline.drivers.ofdm import make_plan
+from brimline.daemon.net.follower import Follower
+from brimline.drivers.link.frame import make_plan
 maps_ep, snap_ep, link = sys.argv[1], sys.argv[2], json.loads(sys.argv[3])
 plan = make_plan(**link)
 adopted = {}
@@ -77,8 +77,8 @@ def run(quick: bool) -> dict[str, float]:
 def _measure(n: int) -> dict[str, float]:
     from _service_fakes import ReloadEveryTime, ScriptedDriver, loopback_config
 
-    from brimline.daemon.service import Service
-    from brimline.drivers.ofdm import make_plan
+    from brimline.daemon.runtime.service import Service
+    from brimline.drivers.link.frame import make_plan
 
     with tempfile.TemporaryDirectory() as tmp:
         cfg = loopback_config(Path(tmp), link=LINK)

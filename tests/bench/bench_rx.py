@@ -16,9 +16,9 @@ import time
 
 import numpy as np
 
-from brimline.drivers._rx import Receiver
-from brimline.drivers.channel import LinkChannel
-from brimline.drivers.ofdm import Transmitter, make_plan
+from brimline.drivers.air.channel import LinkChannel
+from brimline.drivers.link.frame import Transmitter, make_plan
+from brimline.drivers.link.receiver import Receiver
 
 GOALS = {
     "rx_msps": ">= 40 Msample/s per core",

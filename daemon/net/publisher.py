@@ -27,10 +27,10 @@ from typing import Any
 
 import zmq
 
-from brimline.daemon import codec
 from brimline.daemon.errors import ProtocolError
+from brimline.daemon.net.curve import CurveServer
 from brimline.daemon.records import LoadMap
-from brimline.daemon.security import CurveServer
+from brimline.daemon.wire import codec
 
 __all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint"]
 

@@ -11,10 +11,11 @@ import sys
 import threading
 import time
 
-from brimline.daemon.cli import RF_CAUTION
-from brimline.daemon.config import Config, load_config
+from brimline.daemon.commands.cli import RF_CAUTION
 from brimline.daemon.errors import InputError
-from brimline.daemon.status import summary_line
+from brimline.daemon.runtime.config import Config, load_config
+from brimline.daemon.runtime.service import Service, build_core, make_driver
+from brimline.daemon.runtime.status import summary_line
 
 __all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "end_summary"]
 
@@ -70,8 +71,6 @@ def check_summary(path: str, config: Config) -> str:
     BrimlineError
         Whatever the config's parts reject (one line each).
     """
-    from brimline.daemon.service import build_core, make_driver
-
     plan, loader, _estimator, _change = build_core(config)
     d = config.driver
     if d.kind != "radio":  # opening a radio would touch the hardware; the others are cheap
@@ -118,8 +117,6 @@ def run(args: argparse.Namespace) -> int:
     if args.check:
         print(check_summary(args.config, config))
         return 0
-
-    from brimline.daemon.service import Service
 
     handler = _setup_logging(args.log_json, args.quiet)
     if config.driver.kind == "radio":

@@ -29,6 +29,7 @@ from typing import Iterable
 import numpy as np
 from scipy import special
 
+from brimline.daemon.core._lattice_cells import constellation_ser, cross_points
 from brimline.daemon.errors import InfeasibleError, InputError
 from brimline.daemon.records import Allocation, frozen_array
 
@@ -245,12 +246,10 @@ def qam_ser(bits_per_symbol: int, es_n0, *, cross: bool = False) -> np.ndarray:
     (Proakis, Digital Communications, 5th ed., sec. 4.3: for square M this is
     ``1 - (1 - P_sqrtM)**2`` with ``P_sqrtM = 2 (1 - 1/sqrt(M)) Q(sqrt(3 Es / ((M - 1) N0)))``).
     A cross constellation's cells next to the missing corners are not rectangles; its error
-    rate is integrated cell by cell (``brimline.daemon._lattice_cells``), to about 1e-10
+    rate is integrated cell by cell (``brimline.daemon.core._lattice_cells``), to about 1e-10
     relative, one SNR value at a time (milliseconds each: for tables and tests, not per frame).
     """
     if cross:
-        from brimline.daemon._lattice_cells import constellation_ser, cross_points
-
         if not isinstance(bits_per_symbol, (int, np.integer)) or bits_per_symbol < 5 \
                 or bits_per_symbol % 2 == 0 or bits_per_symbol > 13:
             raise InputError(f"bits_per_symbol={bits_per_symbol!r} must be odd, 5..13 for a "

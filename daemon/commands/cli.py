@@ -1,6 +1,6 @@
 """The ``brimline`` command line: one parser, a subcommand per module, one error policy.
 
-Every subcommand lives in a private module ``brimline.daemon._cmd_<name>`` that provides
+Every subcommand lives in a module ``brimline.daemon.commands.<name>`` that provides
 ``configure(parser)`` (adds its flags) and ``run(args) -> int`` (does the work). Errors that are
 the user's (a :class:`~brimline.daemon.errors.BrimlineError`, a bad flag) become one line on
 stderr and exit code 2; anything else is a bug and keeps its traceback.
@@ -27,7 +27,7 @@ RF_CAUTION = (
     "regulations and licensed practice take precedence over anything brimline does."
 )
 
-# name -> one-line help. Each name maps to brimline.daemon._cmd_<name>.
+# name -> one-line help. Each name maps to brimline.daemon.commands.<name>.
 _COMMANDS = {
     "plan": "one-shot bit/power plan from a per-tone SNR file (what-if work, no radio)",
     "run": "run the daemon: estimates in, maps and status out",
@@ -44,7 +44,7 @@ class _OneLineParser(argparse.ArgumentParser):
 
 
 def _command_module(name: str):
-    modname = f"brimline.daemon._cmd_{name}"
+    modname = f"brimline.daemon.commands.{name}"
     if importlib.util.find_spec(modname) is None:
         return None
     return importlib.import_module(modname)

@@ -20,10 +20,10 @@ import numpy as np
 
 from brimline.daemon.errors import ConfigError, SourceError
 from brimline.daemon.records import Estimate, TonePlan
-from brimline.drivers._rx import FrameScanner, Receiver
-from brimline.drivers.base import Driver
-from brimline.drivers.ofdm import as_link_plan
-from brimline.drivers.sim import estimate_from
+from brimline.drivers.link.frame import as_link_plan
+from brimline.drivers.link.receiver import FrameScanner, Receiver
+from brimline.drivers.sources.base import Driver
+from brimline.drivers.sources.sim import estimate_from
 
 __all__ = ["IqDriver", "Recording", "read_sigmf", "write_sigmf", "CI16_FULL_SCALE"]
 

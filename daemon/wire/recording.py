@@ -6,7 +6,7 @@ File layout (all integers little-endian)::
     record  = body_len (u32) , crc32 (u32, over body) , body
     body    = n_frames (u16) , { frame_len (u32) , frame bytes } * n_frames
 
-Each record is one :func:`brimline.daemon.codec.encode` message (``[topic, header, parts]``).
+Each record is one :func:`brimline.daemon.wire.codec.encode` message (``[topic, header, parts]``).
 The writer flushes after every record, so a crash of the process loses at most the record being
 written (with ``fsync=True``, also a crash of the machine). The reader stops cleanly at a torn
 last record (short, or failing its CRC at the very end of the file), counts it and warns; a bad
@@ -27,10 +27,11 @@ import zlib
 from pathlib import Path
 from typing import Any, BinaryIO, Iterable, Iterator, Sequence
 
-from brimline.daemon import __version__, codec
+from brimline.daemon import __version__
 from brimline.daemon.errors import ProtocolError, RecordingError
+from brimline.daemon.wire import codec
 
-__all__ = ["MAGIC", "RecordWriter", "RecordReader", "TornRecordWarning", "TOPIC_META",
+__all__ = ["MAGIC", "unpack_record", "RecordWriter", "RecordReader", "TornRecordWarning", "TOPIC_META",
            "pack_record", "recording_paths", "read_recording"]
 
 MAGIC = b"BRIMLOG\x01"
@@ -57,6 +58,27 @@ def pack_record(frames: Sequence[Any]) -> bytes:
     if len(body) > _MAX_BODY:
         raise ValueError(f"record of {len(body)} bytes exceeds {_MAX_BODY}")
     return _HEAD.pack(len(body), zlib.crc32(body)) + bytes(body)
+
+
+def unpack_record(data: bytes, pos: int = 0) -> tuple[list[bytes] | None, int]:
+    """Read one record (as :func:`pack_record` wrote it) from ``data`` at byte ``pos``.
+
+    Returns
+    -------
+    frames : list of bytes or None
+        The record's frames; None when the record is short, fails its checksum or has a bad
+        frame layout.
+    end : int
+        Byte position after the record (``len(data)`` when it is short).
+    """
+    if len(data) < pos + _HEAD.size:
+        return None, len(data)
+    size, crc = _HEAD.unpack_from(data, pos)
+    start = pos + _HEAD.size
+    body = bytes(data[start:start + size])
+    if len(body) != size or zlib.crc32(body) != crc:
+        return None, min(start + size, len(data))
+    return _unpack_body(body), start + size
 
 
 def _unpack_body(body: bytes) -> list[bytes] | None:

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 
 from brimline.daemon.errors import InputError
-from brimline.daemon.watch import DEFAULT_STATUS_ENDPOINT, watch
+from brimline.daemon.views.watch import DEFAULT_STATUS_ENDPOINT, watch
 
 
 def configure(parser: argparse.ArgumentParser) -> None:

@@ -272,13 +272,16 @@ def decode_header(bits: np.ndarray) -> tuple[bool, int, int]:
 
 # --------------------------------------------------------------------------- constellations
 
-_GRAY = np.arange(1 << (_MAX_BITS // 2 + 1)) ^ (np.arange(1 << (_MAX_BITS // 2 + 1)) >> 1)
-_GRAY_INV = np.argsort(_GRAY)
+#: Gray code of each PAM level index (per axis, up to 7 bits)
+GRAY = np.arange(1 << (_MAX_BITS // 2 + 1)) ^ (np.arange(1 << (_MAX_BITS // 2 + 1)) >> 1)
+GRAY_INV = np.argsort(GRAY)
 _POPCOUNT = np.array([bin(v).count("1") for v in range(1 << _MAX_BITS)], dtype=np.int64)
 
 
-def _axes(bits: np.ndarray):
-    """Per-tone (levels on I, levels on Q, bits on Q, amplitude scale for unit energy)."""
+def grid_axes(bits: np.ndarray):
+    """The rectangular QAM grid of each tone's bit count (Gray PAM on each axis).
+
+    Returns per tone (levels on I, levels on Q, bits on Q, amplitude scale for unit energy)."""
     bits = np.asarray(bits, dtype=np.int64)
     b_i, b_q = (bits + 1) // 2, bits // 2
     m_i, m_q = 1 << b_i, 1 << b_q
@@ -302,9 +305,9 @@ def qam_points(bits: int) -> np.ndarray:
 
 def _symbols(values: np.ndarray, bits: np.ndarray) -> np.ndarray:
     """Constellation points for symbol ``values`` with per-element ``bits`` (broadcast)."""
-    m_i, m_q, b_q, scale = _axes(bits)
-    i_idx = _GRAY_INV[values >> b_q]
-    q_idx = _GRAY_INV[values & (m_q - 1)]
+    m_i, m_q, b_q, scale = grid_axes(bits)
+    i_idx = GRAY_INV[values >> b_q]
+    q_idx = GRAY_INV[values & (m_q - 1)]
     return scale * ((2 * i_idx - (m_i - 1)) + 1j * (2 * q_idx - (m_q - 1)))
 
 

@@ -1,6 +1,6 @@
 """Replay of a recorded estimate log as a driver.
 
-The log is the protocol's crash-safe recording (:mod:`brimline.daemon.recording`); only its
+The log is the protocol's crash-safe recording (:mod:`brimline.daemon.wire.recording`); only its
 estimate records are replayed, with their recorded ``time_s`` and ``frame``. Since the service
 feeds the estimates' own time to the core for this source, a replay makes the same decisions
 however fast it runs: replaying a file twice gives the same maps.
@@ -18,7 +18,9 @@ from typing import Callable, Iterator
 
 from brimline.daemon.errors import RecordingError, SourceError
 from brimline.daemon.records import Estimate
-from brimline.drivers.base import Driver
+from brimline.daemon.wire.codec import TOPIC_ESTIMATE
+from brimline.daemon.wire.recording import RecordReader
+from brimline.drivers.sources.base import Driver
 
 __all__ = ["ReplayDriver"]
 
@@ -29,7 +31,7 @@ class ReplayDriver(Driver):
     Parameters
     ----------
     path : str or Path
-        Estimate recording written by :class:`brimline.daemon.recording.RecordWriter`.
+        Estimate recording written by :class:`brimline.daemon.wire.recording.RecordWriter`.
     realtime : bool
         Pace the frames by their recorded ``time_s`` (divided by ``speed``); otherwise as fast as
         the consumer takes them.
@@ -131,7 +133,4 @@ def _shifted(est: Estimate, t_offset: float, f_offset: int) -> Estimate:
 
 
 def _open_reader(path: Path):
-    from brimline.daemon.codec import TOPIC_ESTIMATE
-    from brimline.daemon.recording import RecordReader
-
     return RecordReader(path, topics=[TOPIC_ESTIMATE])

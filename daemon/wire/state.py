@@ -7,7 +7,7 @@ crashed run could have published, however stale its saved map is. Gaps are harml
 treats one as "use the map, ask for a snapshot".
 
 :class:`StateStore` is the file. Its layout is a two-record recording
-(:mod:`brimline.daemon.recording` layout, magic and per-record CRC included):
+(:mod:`brimline.daemon.wire.recording` layout, magic and per-record CRC included):
 
 1. a dict on topic ``state``: ``{"epoch": str, "seq_ceiling": int}``;
 2. optionally the last :class:`~brimline.daemon.records.LoadMap` on topic ``map`` (the same
@@ -30,15 +30,14 @@ import os
 import tempfile
 import threading
 import uuid
-import zlib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Sequence
 
-from brimline.daemon import codec
 from brimline.daemon.errors import BrimlineError, ProtocolError, StateError
 from brimline.daemon.records import LoadMap
-from brimline.daemon.recording import _HEAD, MAGIC, _unpack_body, pack_record
+from brimline.daemon.wire import codec
+from brimline.daemon.wire.recording import MAGIC, pack_record, unpack_record
 
 __all__ = ["SavedState", "StateStore", "StateKeeper", "new_epoch", "TOPIC_STATE", "LEASE"]
 
@@ -119,17 +118,10 @@ class StateStore:
         while pos < len(data):
             if len(messages) == 2:
                 raise StateError(f"{self.path}: state file has data after its two records")
-            if len(data) < pos + _HEAD.size:
-                raise StateError(f"{self.path}: state file is truncated")
-            size, crc = _HEAD.unpack_from(data, pos)
-            body = data[pos + _HEAD.size:pos + _HEAD.size + size]
-            pos += _HEAD.size + size
-            if len(body) != size or zlib.crc32(body) != crc:
-                raise StateError(f"{self.path}: state file is truncated or corrupt (length or "
-                                 f"checksum mismatch)")
-            frames = _unpack_body(body)
+            frames, pos = unpack_record(data, pos)
             if frames is None:
-                raise StateError(f"{self.path}: state file has a bad frame layout")
+                raise StateError(f"{self.path}: state file is truncated or corrupt (length, "
+                                 f"checksum or frame layout)")
             try:
                 messages.append(codec.decode(frames))
             except ProtocolError as exc:

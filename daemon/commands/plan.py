@@ -24,9 +24,9 @@ from pathlib import Path
 
 import numpy as np
 
-from brimline.daemon.config import LoadingSection, load_config
+from brimline.daemon.core.loading import MAX_BITS, waterfill
 from brimline.daemon.errors import InputError
-from brimline.daemon.loading import MAX_BITS, waterfill
+from brimline.daemon.runtime.config import LoadingSection, load_config
 
 #: SNRs beyond this magnitude in dB are taken for a unit mistake rather than a measurement.
 SNR_DB_LIMIT = 200.0

@@ -65,7 +65,7 @@ class ChangeControl:
 
     Parameters
     ----------
-    loader : brimline.daemon.loading.Loader
+    loader : brimline.daemon.core.loading.Loader
         Builds allocations (``loader(snr_lin)``) and rates them (``required_power``,
         ``tone_margin_db``); its ``bits``, ``budget_db`` and ``cap_db`` bound the bit swaps.
     downshift_margin_db : float
@@ -102,7 +102,7 @@ class ChangeControl:
     Notes
     -----
     The keyword arguments besides ``loader`` are exactly the keys of the ``change:`` config
-    section (:class:`brimline.daemon.config.ChangeSection`), where their defaults live.
+    section (:class:`brimline.daemon.runtime.config.ChangeSection`), where their defaults live.
     """
 
     def __init__(self, loader, *, downshift_margin_db: float = -1.5,

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from brimline.daemon.security import make_keypair
+from brimline.daemon.net.curve import make_keypair
 
 
 def configure(parser: argparse.ArgumentParser) -> None:

@@ -3,7 +3,7 @@
 Threads and sockets
 -------------------
 Two threads own sockets, each its own (ZeroMQ sockets never cross threads); a third, socketless
-one (:class:`~brimline.daemon.state.StateKeeper`'s writer) saves the last map, so that fsync is
+one (:class:`~brimline.daemon.wire.state.StateKeeper`'s writer) saves the last map, so that fsync is
 almost never on the loop:
 
 * the **driver thread** iterates ``driver.frames()``, encodes each :class:`Estimate` with the
@@ -50,11 +50,22 @@ from typing import Any, Callable
 import numpy as np
 import zmq
 
-from brimline.daemon import codec
-from brimline.daemon.config import Config
+from brimline.daemon.core.change import ChangeControl
+from brimline.daemon.core.estimator import Estimator
 from brimline.daemon.errors import BrimlineError, ConfigError, ProtocolError, SourceError
+from brimline.daemon.net.follower import Follower
+from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
 from brimline.daemon.records import Allocation, DecisionKind, Estimate, LoadMap
-from brimline.daemon.status import Change, build_status, summary_line
+from brimline.daemon.runtime.config import Config
+from brimline.daemon.runtime.status import Change, build_status, summary_line
+from brimline.daemon.wire import codec
+from brimline.daemon.wire.recording import RecordWriter
+from brimline.daemon.wire.state import StateKeeper, StateStore, new_epoch
+from brimline.drivers.link.frame import make_plan
+from brimline.drivers.sources.iq import IqDriver
+from brimline.drivers.sources.radio import RadioDriver
+from brimline.drivers.sources.replay import ReplayDriver
+from brimline.drivers.sources.sim import SimDriver
 
 __all__ = ["Service", "FollowerMapProvider", "make_driver", "build_core"]
 
@@ -85,20 +96,12 @@ def make_driver(config: Config, plan, map_provider=None):
     kind = d.kind
     section = d.selected().model_dump()
     if kind == "sim":
-        from brimline.drivers.sim import SimDriver
-
         return SimDriver(plan=plan, map_provider=map_provider, **section)
     if kind == "replay":
-        from brimline.drivers.replay import ReplayDriver
-
         return ReplayDriver(**section)
     if kind == "iq":
-        from brimline.drivers.iq import IqDriver
-
         return IqDriver(plan=plan, **section)
     if kind == "radio":
-        from brimline.drivers.iio import RadioDriver
-
         return RadioDriver(plan=plan, **section)
     raise SourceError(f"driver.kind={kind!r} is not a known source")  # pragma: no cover
 
@@ -116,10 +119,6 @@ def build_core(config: Config):
     ConfigError
         When a part rejects its section's values (names the section and the problem).
     """
-    from brimline.daemon.change import ChangeControl
-    from brimline.daemon.estimator import Estimator
-    from brimline.drivers.ofdm import make_plan
-
     def part(section: str, build):
         try:
             return build()
@@ -621,7 +620,7 @@ class Service:
         entry["wall"] = self._clock()
 
     def status(self) -> dict:
-        """The status message for the current state (see :mod:`brimline.daemon.status`)."""
+        """The status message for the current state (see :mod:`brimline.daemon.runtime.status`)."""
         wall = self._clock()
         now = self.core_now()
         tracked = self._last_tracked
@@ -671,8 +670,6 @@ class _Io:
     """
 
     def __init__(self, config: Config, context: zmq.Context, plan) -> None:
-        from brimline.daemon.publisher import MapPublisher, StatusPublisher
-
         self._config = config
         self._context = context
         self._plan = plan
@@ -695,8 +692,6 @@ class _Io:
 
     # -- state
     def _restore(self) -> tuple[str, int, LoadMap | None]:
-        from brimline.daemon.state import new_epoch
-
         if self.state is None:
             return new_epoch(), 0, None
         epoch, next_seq, m = self.state.restore()
@@ -743,8 +738,6 @@ class _Io:
 
     def follower_factory(self) -> Callable[[], Any]:
         """A function that makes a Follower of this daemon's maps (call it on its own thread)."""
-        from brimline.daemon.follower import Follower
-
         ld = self._config.loading
         kwargs = dict(plan=self._plan, map_endpoint=self.maps.map_endpoint,
                       snapshot_endpoint=self.maps.snapshot_endpoint,
@@ -790,8 +783,6 @@ def _open_state(config: Config):
     path = config.service.state_path
     if path is None:
         return None
-    from brimline.daemon.state import StateKeeper, StateStore
-
     return StateKeeper(StateStore(path))
 
 
@@ -799,6 +790,4 @@ def _open_recorder(config: Config, plan):
     section = config.record.model_dump()
     if section.get("path") is None:
         return None
-    from brimline.daemon.recording import RecordWriter
-
     return RecordWriter(meta={"plan_id": plan.plan_id}, **section)

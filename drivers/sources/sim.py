@@ -1,7 +1,7 @@
 """Simulated link: transmitter -> channel -> receiver, one :class:`Estimate` per frame.
 
 The simulator runs the same transmitter and receiver DSP as the radio path, through the channel
-simulator of :mod:`brimline.drivers.channel`. Frame ``i`` is sent at simulated time
+simulator of :mod:`brimline.drivers.air.channel`. Frame ``i`` is sent at simulated time
 ``i / frame_rate_hz`` (fading continues between frames); its estimate carries
 ``time_s = start_s + i / frame_rate_hz``. With ``realtime`` the driver sleeps until each frame's
 due time on the monotonic clock (waking at once on ``close()``); without it frames come as fast as
@@ -19,10 +19,11 @@ import numpy as np
 
 from brimline.daemon.errors import ConfigError
 from brimline.daemon.records import Estimate, TonePlan
-from brimline.drivers._rx import Receiver, RxFrame
-from brimline.drivers.base import Driver, MapProvider
-from brimline.drivers.channel import FadeEvent, LinkChannel, Truth, profile as _profile
-from brimline.drivers.ofdm import Transmitter, as_link_plan, bit_errors, map_arrays
+from brimline.drivers.air.channel import FadeEvent, LinkChannel, Truth
+from brimline.drivers.air.channel import profile as _profile
+from brimline.drivers.link.frame import Transmitter, as_link_plan, bit_errors, map_arrays
+from brimline.drivers.link.receiver import Receiver, RxFrame
+from brimline.drivers.sources.base import Driver, MapProvider
 
 __all__ = ["SimDriver", "estimate_from"]
 
@@ -48,7 +49,7 @@ class SimDriver(Driver):
         Called once per frame for the map to transmit; None (or a None result) sends the default
         map of ``default_bits`` per tone.
     profile, doppler_hz, snr_db, cfo_hz, lead_max_samples, interferer_tone, interferer_db,
-    interferer_start_s, interferer_stop_s, drift_db, drift_period_s : see :class:`~brimline.drivers.channel.LinkChannel`
+    interferer_start_s, interferer_stop_s, drift_db, drift_period_s : see :class:`~brimline.drivers.air.channel.LinkChannel`
     events : list of dict or FadeEvent
         Band fades (keys start_s, stop_s (None: never), first_tone, last_tone, depth_db).
     frame_rate_hz : float

@@ -22,10 +22,10 @@ from typing import Callable, Iterable, Sequence
 import numpy as np
 import zmq
 
-from brimline.daemon import codec
 from brimline.daemon.errors import ProtocolError
+from brimline.daemon.net.curve import apply_client
 from brimline.daemon.records import LoadMap, TonePlan
-from brimline.daemon.security import apply_client
+from brimline.daemon.wire import codec
 
 __all__ = ["Follower", "check_map"]
 

@@ -17,10 +17,11 @@ from pathlib import Path
 from typing import Any, Literal, Optional
 
 import yaml
-from pydantic import (BaseModel, ConfigDict, Field, ValidationError, field_validator,
-                      model_validator)
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from brimline.daemon.core.loading import Loader, qam_gap_db
 from brimline.daemon.errors import ConfigError
+from brimline.drivers.link.frame import check_link  # the one place the link's rules live
 
 __all__ = [
     "Section",
@@ -127,17 +128,13 @@ class LoadingSection(Section):
     def effective_gap_db(self) -> float:
         """The gap the loader uses, dB: ``gap_db`` (or the uncoded-QAM gap of ``target_ser``),
         minus ``coding_gain_db``, plus ``margin_db``."""
-        from brimline.daemon.loading import qam_gap_db
-
         if self.gap_db is not None:
             return self.gap_db - self.coding_gain_db + self.margin_db
         return qam_gap_db(self.target_ser, coding_gain_db=self.coding_gain_db,
                           margin_db=self.margin_db)
 
     def loader(self):
-        """Build the :class:`brimline.daemon.loading.Loader` this section describes."""
-        from brimline.daemon.loading import Loader
-
+        """Build the :class:`brimline.daemon.core.loading.Loader` this section describes."""
         return Loader(mode=self.mode, bits=self.bits, gap_db=self.effective_gap_db(),
                       budget_db=self.budget_db, cap_db=self.cap_db,
                       target_bits=self.target_bits)
@@ -148,10 +145,10 @@ class LoadingSection(Section):
 
 
 class LinkSection(Section):
-    """``link:`` tone plan and frame format; the keys are ``brimline.drivers.ofdm.make_plan``'s.
+    """``link:`` tone plan and frame format; the keys are ``brimline.drivers.link.frame.make_plan``'s.
 
     Checks that involve several keys (pilots inside the used band, cyclic prefix shorter than the
-    FFT, ...) are made in key order by ``brimline.drivers.ofdm.check_link``.
+    FFT, ...) are made in key order by ``brimline.drivers.link.frame.check_link``.
     """
 
     fft_size: int = Field(256, description="FFT length in samples (power of two, >= 128)")
@@ -173,8 +170,6 @@ class LinkSection(Section):
     @field_validator("*")
     @classmethod
     def _consistent(cls, v, info):
-        from brimline.drivers.ofdm import check_link  # the one place these rules live
-
         try:
             check_link(info.field_name, v, info.data)
         except ValueError as exc:  # the message starts with "key=value"; the caller adds it
@@ -201,7 +196,7 @@ class FadeEventSection(Section):
 
 
 class SimSection(Section):
-    """``driver.sim:`` the simulated link; keys are ``brimline.drivers.sim.SimDriver``'s."""
+    """``driver.sim:`` the simulated link; keys are ``brimline.drivers.sources.sim.SimDriver``'s."""
 
     profile: Literal["awgn", "flat", "epa", "eva", "etu", "ped_a", "ped_b", "veh_a",
                      "indoor_a"] = Field("epa", description="multipath profile")
@@ -258,7 +253,7 @@ class SimSection(Section):
 
 
 class IqSection(Section):
-    """``driver.iq:`` a SigMF IQ recording through the receiver (brimline.drivers.iq)."""
+    """``driver.iq:`` a SigMF IQ recording through the receiver (brimline.drivers.sources.iq)."""
 
     path: str = Field(description="the recording: NAME, NAME.sigmf-meta or NAME.sigmf-data")
     default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
@@ -269,7 +264,7 @@ class IqSection(Section):
 
 
 class RadioSection(Section):
-    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.iio); tuning is ``link.center_hz``."""
+    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.sources.radio); tuning is ``link.center_hz``."""
 
     uri: str = Field("ip:192.168.2.1", description="libiio context URI of the radio")
     device: str = Field("Pluto", description="pyadi-iio class name of the device")
@@ -291,7 +286,7 @@ class RadioSection(Section):
 
 
 class ReplaySection(Section):
-    """``driver.replay:`` a recorded estimate log (brimline.drivers.replay).
+    """``driver.replay:`` a recorded estimate log (brimline.drivers.sources.replay).
 
     A relative ``path`` is taken relative to the config file's folder by :func:`load_config`.
     """
@@ -339,7 +334,7 @@ class DriverSection(Section):
 
 
 class EstimatorSection(Section):
-    """``estimator:`` per-tone SNR tracking (brimline.daemon.estimator.Estimator).
+    """``estimator:`` per-tone SNR tracking (brimline.daemon.core.estimator.Estimator).
 
     Defaults suit a slowly fading indoor link (people moving about: Doppler of a few tenths of a
     hertz, a coherence time of a second or more) estimated at tens to hundreds of frames per
@@ -425,7 +420,7 @@ class EstimatorSection(Section):
 
 
 class ChangeSection(Section):
-    """``change:`` change control (brimline.daemon.change.ChangeControl).
+    """``change:`` change control (brimline.daemon.core.change.ChangeControl).
 
     Margins are per-tone margins of the current map under the tracked effective SNR, in dB
     relative to the loading gap (which already includes ``loading.margin_db``): 0 dB means a
@@ -539,7 +534,7 @@ def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
 class PublishSection(Section):
     """``publish:`` map, snapshot, heartbeat and acknowledgement sockets.
 
-    Fields are the keyword arguments of ``brimline.daemon.publisher.MapPublisher`` (which also
+    Fields are the keyword arguments of ``brimline.daemon.net.publisher.MapPublisher`` (which also
     takes ``context`` and ``epoch`` from the service). Endpoints are where the daemon binds;
     keep them on 127.0.0.1 unless CURVE is on.
     """
@@ -593,7 +588,7 @@ class PublishSection(Section):
 class StatusSection(Section):
     """``status:`` the operators' status stream.
 
-    Fields are the keyword arguments of ``brimline.daemon.publisher.StatusPublisher`` (which
+    Fields are the keyword arguments of ``brimline.daemon.net.publisher.StatusPublisher`` (which
     also takes ``curve`` and ``context`` from the service).
     """
 
@@ -623,7 +618,7 @@ class StatusSection(Section):
 class RecordSection(Section):
     """``record:`` what the daemon records, and where.
 
-    Fields are the keyword arguments of ``brimline.daemon.recording.RecordWriter`` (which also
+    Fields are the keyword arguments of ``brimline.daemon.wire.recording.RecordWriter`` (which also
     takes ``meta``); ``path: null`` records nothing.
     """
 
@@ -675,7 +670,7 @@ class FallbackSection(Section):
 
 
 class ServiceSection(Section):
-    """``service:`` how the daemon loop runs (brimline.daemon.service)."""
+    """``service:`` how the daemon loop runs (brimline.daemon.runtime.service)."""
 
     lead_frames: int = Field(
         4, description="a new map takes effect this many frames after the last frame seen")

@@ -14,12 +14,15 @@ import time
 from typing import Any, Callable, Mapping, TextIO
 
 import numpy as np
+import zmq
 from rich.console import Console, Group
 from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
-from brimline.daemon.status import ALARMS, band_columns, summary_line
+from brimline.daemon.errors import ProtocolError
+from brimline.daemon.runtime.status import ALARMS, band_columns, summary_line
+from brimline.daemon.wire import codec
 
 __all__ = ["render", "band_chart", "watch", "DEFAULT_STATUS_ENDPOINT"]
 
@@ -255,11 +258,6 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
     int
         0, or 1 when ``once`` was asked and no status arrived in time.
     """
-    import zmq
-
-    from brimline.daemon import codec
-    from brimline.daemon.errors import ProtocolError
-
     out = sys.stdout if out is None else out
     tty = bool(getattr(out, "isatty", lambda: False)())
     console = Console(file=out, force_terminal=tty or None, soft_wrap=False)

@@ -41,13 +41,7 @@ from typing import Callable
 import numpy as np
 
 from brimline.daemon.records import TonePlan
-from brimline.drivers.ofdm import (
-    _GRAY,
-    HEADER_BITS,
-    FrameFormat,
-    _axes,
-    decode_header,
-)
+from brimline.drivers.link.frame import GRAY, HEADER_BITS, FrameFormat, decode_header, grid_axes
 
 __all__ = ["Receiver", "RxFrame", "MapLookup", "FrameScanner"]
 
@@ -122,7 +116,7 @@ class RxFrame:
         if self.decided is None:
             return None
         i_idx, q_idx, b_q = self.decided
-        return (_GRAY[i_idx] << b_q) | _GRAY[q_idx]
+        return (GRAY[i_idx] << b_q) | GRAY[q_idx]
 
     @property
     def has_estimate(self) -> bool:
@@ -147,7 +141,7 @@ def grid_ser(bits: np.ndarray, snr_lin: np.ndarray) -> np.ndarray:
         per axis and ``d`` half the spacing of the unit-energy grid (Proakis, Digital
         Communications, 5th ed., sec. 4.3; one axis of the odd grids is narrower).
     """
-    m_i, m_q, _, scale = _axes(np.asarray(bits))
+    m_i, m_q, _, scale = grid_axes(np.asarray(bits))
     arg = scale * np.sqrt(np.maximum(np.asarray(snr_lin, dtype=np.float64), 0.0))  # d/sqrt(N0)
     tail = np.array([0.5 * math.erfc(v) for v in np.ravel(arg * np.ones(m_i.shape))])
     tail = tail.reshape(np.broadcast(arg, m_i).shape)  # Q(d sqrt(2) / sqrt(2 N0)) = erfc / 2
@@ -179,7 +173,7 @@ class _MapTables:
     """Per-map demodulation tables (levels per axis, amplitude per tone)."""
 
     def __init__(self, bits: np.ndarray, power_lin: np.ndarray) -> None:
-        m_i, m_q, b_q, scale = _axes(bits)
+        m_i, m_q, b_q, scale = grid_axes(bits)
         self.bits = np.asarray(bits, dtype=np.int64)
         # Channel SNR |H|^2 / noise at nominal power above which this tone's decisions are
         # reliable enough for the decision-directed estimate (the map's power scales Es).

@@ -138,7 +138,7 @@ class Estimator:
     Notes
     -----
     The keyword arguments are exactly the keys of the ``estimator:`` config section
-    (:class:`brimline.daemon.config.EstimatorSection`), where their defaults live.
+    (:class:`brimline.daemon.runtime.config.EstimatorSection`), where their defaults live.
 
     Examples
     --------

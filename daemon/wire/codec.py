@@ -32,7 +32,7 @@ encryption covers. CRC-32 is in the standard library of every language a transmi
 to be written in, runs at several GB/s, and detects every burst error up to 32 bits. A
 cryptographic hash (BLAKE2b) would add cost and a dependency for followers in C, for no gain
 against that threat. The header itself is protected by its JSON syntax and the field checks
-here; recordings add a CRC over the whole record (:mod:`brimline.daemon.recording`).
+here; recordings add a CRC over the whole record (:mod:`brimline.daemon.wire.recording`).
 """
 
 from __future__ import annotations

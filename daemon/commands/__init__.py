@@ -1,0 +1,2 @@
+"""The command line: ``cli`` (the ``brimline`` entry point) and one module per subcommand,
+each with ``configure(parser)`` and ``run(args)``."""

@@ -1,0 +1,1 @@
+"""The emulated air: multipath profiles, fading and the channel simulator."""
