@@ -114,7 +114,7 @@ class TestRestart:
                 assert f.current.seq == last_seq
             gate.set()
             assert _pump(second, until=lambda: _drained(second))
-            new = [c.seq for c in second.changes]
+            new = [c.seq for c in second.controller.changes]
         assert new and new[0] > last_seq and new == sorted(set(new))
 
 
@@ -133,7 +133,7 @@ gate = threading.Event()
 svc = Service(cfg, driver=ScriptedDriver(make_plan(**cfg.link.model_dump()),
                                          frames=1_000_000, gate=gate))
 svc.start()
-svc.change = ReloadEveryTime(svc.loader)
+svc.controller.change = ReloadEveryTime(svc.loader)
 svc._io.state.min_interval_s = 3600.0  # the lazy map save stalls after its first save
 print(json.dumps({"epoch": svc.epoch, **svc.endpoints}), flush=True)
 threading.Thread(target=lambda: (sys.stdin.readline(), gate.set()), daemon=True).start()
@@ -196,7 +196,7 @@ class TestCrash:
         gate = threading.Event()
         try:
             with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=30, gate=gate)) as svc:
-                svc.change = ReloadEveryTime(svc.loader)
+                svc.controller.change = ReloadEveryTime(svc.loader)
                 sub = _map_sub(ctx, svc.endpoints["maps"])
                 assert _pump(svc, until=lambda: (_drain(sub, after), any(
                     t == "heartbeat" for t, _ in after))[1], timeout_s=5.0)
@@ -221,7 +221,7 @@ class TestCrash:
         first = Service(cfg, driver=ScriptedDriver(plan, frames=0))
         first.start()
         first._io.state.min_interval_s = 3600.0
-        first.change = ReloadEveryTime(first.loader)
+        first.controller.change = ReloadEveryTime(first.loader)
         old = [m.seq for est in ScriptedDriver(plan, frames=600).frames()
                if (m := first.process(est)) is not None]
         # The map on disk is the one saved with the last lease (seq 513 here: leases are
@@ -234,7 +234,7 @@ class TestCrash:
         first._io.status.close()
         cfg2 = loopback_config(tmp_path)
         with Service(cfg2, driver=ScriptedDriver(plan, frames=0)) as second:
-            second.change = ReloadEveryTime(second.loader)
+            second.controller.change = ReloadEveryTime(second.loader)
             new = [m.seq for est in ScriptedDriver(plan, frames=20, t0_s=100.0).frames()
                    if (m := second.process(est)) is not None]
         assert second.epoch == first.epoch and new and min(new) > max(old)
@@ -250,13 +250,13 @@ class TestCrash:
         estimates = iter(ScriptedDriver(plan, frames=400).frames())
         with Service(cfg, driver=ScriptedDriver(plan, frames=0)) as svc:
             svc._io.state.min_interval_s = 3600.0  # no lease renewal ahead of time
-            svc.change = ReloadEveryTime(svc.loader)
+            svc.controller.change = ReloadEveryTime(svc.loader)
             ceiling = svc._io.state.ceiling
-            while svc._next_seq <= ceiling:
+            while svc.controller.next_seq <= ceiling:
                 svc.process(next(estimates))
             folder.rename(tmp_path / "gone")  # the state folder disappears
             assert svc.process(next(estimates)) is None
-            assert svc.unpublished == 1 and svc.current_map.seq == ceiling
+            assert svc.controller.held_back == 1 and svc.current_map.seq == ceiling
             assert "state_unsaved" in svc.status()["alarms"]
             (tmp_path / "gone").rename(folder)
             m = svc.process(next(estimates))
@@ -313,13 +313,13 @@ class TestFallback:
         drv = ScriptedDriver(_plan(cfg), frames=300, gaps=[(1.0, 2.0)])
         with Service(cfg, driver=drv) as svc:
             assert _pump(svc, until=lambda: _drained(svc))
-            kinds = [(c.kind, c.time_s) for c in svc.changes]
+            kinds = [(c.kind, c.time_s) for c in svc.controller.changes]
             fb = [i for i, (k, _) in enumerate(kinds) if k == "fallback"]
             assert len(fb) == 1
             # Sent at the time a live daemon would have: last valid frame + stale_after_s.
             assert kinds[fb[0]][1] == pytest.approx(0.99 + 0.5)
             assert any(k != "fallback" for k, _ in kinds[fb[0] + 1:])
-            assert not svc.current_map.fallback and not svc.fallback_active
+            assert not svc.current_map.fallback and not svc.controller.fallback_active
 
     def test_silent_source_brings_fallback_on_the_clock(self):
         cfg = loopback_config(fallback={"stale_after_s": 0.3, "bits": 2})
@@ -327,14 +327,15 @@ class TestFallback:
         adopted: list[LoadMap] = []
         drv = ScriptedDriver(_plan(cfg), frames=120, hold_at=60, release=release)
         with Service(cfg, driver=drv) as svc, _follower(svc, adopted) as f:
-            assert _pump(svc, [f], until=lambda: svc.fallback_active, timeout_s=3.0)
+            assert _pump(svc, [f], until=lambda: svc.controller.fallback_active, timeout_s=3.0)
             st = svc.status()
             assert "stale" in st["alarms"] and "fallback" in st["alarms"]
             assert _pump(svc, [f], until=lambda: f.current is not None and f.current.fallback,
                          timeout_s=1.0)
             assert np.all(f.current.bits == 2)
             release.set()
-            assert _pump(svc, [f], until=lambda: _drained(svc) and not svc.fallback_active)
+            assert _pump(svc, [f], until=lambda: _drained(svc)
+                         and not svc.controller.fallback_active)
             assert "stale" not in svc.status()["alarms"]
 
 
@@ -356,13 +357,13 @@ class TestRobustness:
         with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=1)) as svc:
             for est in ScriptedDriver(other, frames=5).frames():
                 assert svc.process(est) is None
-            assert svc.rejected["other_plan"] == 5 and svc.current_map is None
+            assert svc.controller.rejected["other_plan"] == 5 and svc.current_map is None
 
     def test_undecodable_hand_off_is_counted(self):
         cfg = loopback_config()
         with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=1)) as svc:
             svc._handle_inproc([zmq.Frame(b"estimate"), zmq.Frame(b"{not json")])
-            assert svc.frames["decode_errors"] == 1
+            assert svc.controller.frames["decode_errors"] == 1
 
     def test_driver_failure_is_reported_not_raised(self):
         cfg = loopback_config()
@@ -404,7 +405,7 @@ class TestRobustness:
         with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=80,
                                                 fades=[(0.4, 0, 30, 10.0)])) as svc:
             assert _pump(svc, until=lambda: _drained(svc))
-            published = sum(svc.maps_published.values())
+            published = sum(svc.controller.maps_published.values())
         with RecordReader(path) as reader:
             records = list(reader)
         topics = [t for t, _ in records]
@@ -427,7 +428,7 @@ class TestRobustness:
         svc.close()
         svc.close()
         assert time.monotonic() - t0 < cfg.service.driver_join_s + 1
-        assert not svc._thread.is_alive()
+        assert not svc._handoff.alive
         assert svc.last_status["driver"]["state"] == "stopped"
 
 
@@ -493,14 +494,14 @@ class TestClosedLoop:
             assert _pump(svc, until=lambda: _drained(svc), timeout_s=20.0)
             tones = svc.plan.data_tones
             band = (tones >= -90) & (tones <= -30)
-            before = [c for c in svc.changes if c.time_s < 1.2]
+            before = [c for c in svc.controller.changes if c.time_s < 1.2]
             assert before, "no map before the fade"
             final = svc.current_map
             assert final.created_s > 1.2
             assert svc.acks and svc.acks["followers"]["count"] >= 1  # the transmitter followed
             assert final.bits[band].mean() < final.bits[~band].mean() - 3
             assert any(c.kind in ("emergency", "reload", "bit_swap") and c.time_s >= 1.2
-                       for c in svc.changes)
+                       for c in svc.controller.changes)
 
 
 def test_heartbeats_stay_on_time_under_a_flood_of_estimates():
@@ -523,7 +524,7 @@ def test_heartbeats_stay_on_time_under_a_flood_of_estimates():
                 return len(times) >= 12
 
             assert _pump(svc, until=beat, timeout_s=3.0)
-            assert svc.frames["received"] > 100
+            assert svc.controller.frames["received"] > 100
         gaps = np.diff(times[1:])
         assert gaps.max() < 0.35
     finally:
