@@ -226,7 +226,7 @@ class LinkController:
         Step
         """
         now_s = max(float(now_s), self._floor_s)
-        if self._quiet_from_s is None or (self.received == 0 and self.last_valid_s is None):
+        if self.received == 0:  # the first estimate opens the source's time base
             self._quiet_from_s = now_s
         self.received += 1
         self.last_frame = max(self.last_frame, estimate.frame)

@@ -128,6 +128,7 @@ class Service:
         self.acks: dict[str, dict] = {}
         self.last_status: dict | None = None
         self._holding = False  # maps are being held back (logged once per episode)
+        self._in_fallback = False  # the last map sent was the fallback map (for the log)
         self._last_arrival_s: float | None = None  # core time and monotonic arrival of the
         self._last_arrival_wall: float | None = None  # newest estimate (staleness while silent)
         self._started_wall = 0.0
@@ -386,6 +387,9 @@ class Service:
         for change, m in zip(step.changes, step.maps):
             if m.fallback:
                 log.warning("fallback: %s", change.reason)
+            elif self._in_fallback:
+                log.info("estimates resumed: leaving the fallback map")
+            self._in_fallback = m.fallback
             if log.isEnabledFor(logging.INFO):
                 margin = f"{m.margin_db:.1f} dB" if math.isfinite(m.margin_db) else "unknown"
                 log.info("map %d (%s, %d bits/symbol, margin %s): %s", m.seq, change.kind,
