@@ -97,7 +97,8 @@ class Step:
     changes : tuple of Change
         One per map, same order: kind, reason, time and seq.
     held_back : str or None
-        When a map was made but its seq could not be reserved: the reserve error's text.
+        When a decision called for a map but its seq could not be reserved (so no map was
+        made and the seq stays unused): the reserve error's text.
     """
 
     now_s: float
