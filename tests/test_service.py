@@ -24,6 +24,7 @@ from brimline.daemon.records import LoadMap
 from brimline.daemon.runtime.service import Service
 from brimline.daemon.runtime.status import band_columns, build_status
 from brimline.daemon.wire import codec
+from brimline.daemon.errors import RecordingError
 from brimline.daemon.wire.recording import RecordReader
 from brimline.daemon.wire.state import StateStore
 
@@ -37,8 +38,9 @@ def _follower(svc: Service, adopted: list | None = None) -> Follower:
                     on_map=None if adopted is None else adopted.append)
 
 
-def _pump(svc: Service, followers=(), *, until, timeout_s: float = 5.0) -> bool:
-    """Step the service and poll followers until ``until()`` or the deadline."""
+def _pump(svc: Service, followers=(), *, until, timeout_s: float = 10.0) -> bool:
+    """Step the service and poll followers until ``until()`` or the deadline (which only
+    catches a hang: tests assert order, counts and content, never how fast)."""
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
         if until():
@@ -55,19 +57,18 @@ def _drained(svc: Service) -> bool:
 
 def _connected(svc: Service, follower: Follower) -> bool:
     return _pump(svc, [follower], until=lambda: follower.last_heartbeat is not None
-                 and follower.synced, timeout_s=3.0)
+                 and follower.synced)
 
 
 class TestMapsAndSnapshots:
-    def test_late_joiner_gets_the_current_map_within_1_s(self):
+    def test_late_joiner_gets_the_current_map(self):
+        """(How fast is a benchmark figure: late_join_ms in tests/bench/bench_protocol.py.)"""
         cfg = loopback_config()
         with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=120)) as svc:
             assert _pump(svc, until=lambda: _drained(svc))
             assert svc.current_map is not None
             with _follower(svc) as late:
-                t0 = time.monotonic()
-                assert _pump(svc, [late], until=lambda: late.current is not None, timeout_s=1.0)
-                assert time.monotonic() - t0 < 1.0
+                assert _pump(svc, [late], until=lambda: late.current is not None)
                 assert late.current.seq == svc.current_map.seq
                 assert np.array_equal(late.current.bits, svc.current_map.bits)
 
@@ -83,7 +84,7 @@ class TestMapsAndSnapshots:
             gate.set()
             assert _pump(svc, [f], until=lambda: _drained(svc))
             _pump(svc, [f], until=lambda: f.current is not None
-                  and f.current.seq == svc.current_map.seq, timeout_s=1.0)
+                  and f.current.seq == svc.current_map.seq)
             assert f.current.seq == svc.current_map.seq
             before, after = adopted[0], f.current
             assert after.bits[20:60].mean() < before.bits[20:60].mean() - 2
@@ -110,11 +111,11 @@ class TestRestart:
             assert second.epoch == epoch
             assert second.current_map is not None and second.current_map.seq == last_seq
             with _follower(second) as f:  # the restored map is served to late joiners
-                assert _pump(second, [f], until=lambda: f.current is not None, timeout_s=1.0)
+                assert _pump(second, [f], until=lambda: f.current is not None)
                 assert f.current.seq == last_seq
             gate.set()
             assert _pump(second, until=lambda: _drained(second))
-            new = [c.seq for c in second.changes]
+            new = [c.seq for c in second.controller.changes]
         assert new and new[0] > last_seq and new == sorted(set(new))
 
 
@@ -133,7 +134,7 @@ gate = threading.Event()
 svc = Service(cfg, driver=ScriptedDriver(make_plan(**cfg.link.model_dump()),
                                          frames=1_000_000, gate=gate))
 svc.start()
-svc.change = ReloadEveryTime(svc.loader)
+svc.controller.change = ReloadEveryTime(svc.loader)
 svc._io.state.min_interval_s = 3600.0  # the lazy map save stalls after its first save
 print(json.dumps({"epoch": svc.epoch, **svc.endpoints}), flush=True)
 threading.Thread(target=lambda: (sys.stdin.readline(), gate.set()), daemon=True).start()
@@ -196,7 +197,7 @@ class TestCrash:
         gate = threading.Event()
         try:
             with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=30, gate=gate)) as svc:
-                svc.change = ReloadEveryTime(svc.loader)
+                svc.controller.change = ReloadEveryTime(svc.loader)
                 sub = _map_sub(ctx, svc.endpoints["maps"])
                 assert _pump(svc, until=lambda: (_drain(sub, after), any(
                     t == "heartbeat" for t, _ in after))[1], timeout_s=5.0)
@@ -221,7 +222,7 @@ class TestCrash:
         first = Service(cfg, driver=ScriptedDriver(plan, frames=0))
         first.start()
         first._io.state.min_interval_s = 3600.0
-        first.change = ReloadEveryTime(first.loader)
+        first.controller.change = ReloadEveryTime(first.loader)
         old = [m.seq for est in ScriptedDriver(plan, frames=600).frames()
                if (m := first.process(est)) is not None]
         # The map on disk is the one saved with the last lease (seq 513 here: leases are
@@ -234,7 +235,7 @@ class TestCrash:
         first._io.status.close()
         cfg2 = loopback_config(tmp_path)
         with Service(cfg2, driver=ScriptedDriver(plan, frames=0)) as second:
-            second.change = ReloadEveryTime(second.loader)
+            second.controller.change = ReloadEveryTime(second.loader)
             new = [m.seq for est in ScriptedDriver(plan, frames=20, t0_s=100.0).frames()
                    if (m := second.process(est)) is not None]
         assert second.epoch == first.epoch and new and min(new) > max(old)
@@ -250,13 +251,13 @@ class TestCrash:
         estimates = iter(ScriptedDriver(plan, frames=400).frames())
         with Service(cfg, driver=ScriptedDriver(plan, frames=0)) as svc:
             svc._io.state.min_interval_s = 3600.0  # no lease renewal ahead of time
-            svc.change = ReloadEveryTime(svc.loader)
+            svc.controller.change = ReloadEveryTime(svc.loader)
             ceiling = svc._io.state.ceiling
-            while svc._next_seq <= ceiling:
+            while svc.controller.next_seq <= ceiling:
                 svc.process(next(estimates))
             folder.rename(tmp_path / "gone")  # the state folder disappears
             assert svc.process(next(estimates)) is None
-            assert svc.unpublished == 1 and svc.current_map.seq == ceiling
+            assert svc.controller.held_back == 1 and svc.current_map.seq == ceiling
             assert "state_unsaved" in svc.status()["alarms"]
             (tmp_path / "gone").rename(folder)
             m = svc.process(next(estimates))
@@ -313,13 +314,13 @@ class TestFallback:
         drv = ScriptedDriver(_plan(cfg), frames=300, gaps=[(1.0, 2.0)])
         with Service(cfg, driver=drv) as svc:
             assert _pump(svc, until=lambda: _drained(svc))
-            kinds = [(c.kind, c.time_s) for c in svc.changes]
+            kinds = [(c.kind, c.time_s) for c in svc.controller.changes]
             fb = [i for i, (k, _) in enumerate(kinds) if k == "fallback"]
             assert len(fb) == 1
             # Sent at the time a live daemon would have: last valid frame + stale_after_s.
             assert kinds[fb[0]][1] == pytest.approx(0.99 + 0.5)
             assert any(k != "fallback" for k, _ in kinds[fb[0] + 1:])
-            assert not svc.current_map.fallback and not svc.fallback_active
+            assert not svc.current_map.fallback and not svc.controller.fallback_active
 
     def test_silent_source_brings_fallback_on_the_clock(self):
         cfg = loopback_config(fallback={"stale_after_s": 0.3, "bits": 2})
@@ -327,14 +328,14 @@ class TestFallback:
         adopted: list[LoadMap] = []
         drv = ScriptedDriver(_plan(cfg), frames=120, hold_at=60, release=release)
         with Service(cfg, driver=drv) as svc, _follower(svc, adopted) as f:
-            assert _pump(svc, [f], until=lambda: svc.fallback_active, timeout_s=3.0)
+            assert _pump(svc, [f], until=lambda: svc.controller.fallback_active)
             st = svc.status()
             assert "stale" in st["alarms"] and "fallback" in st["alarms"]
-            assert _pump(svc, [f], until=lambda: f.current is not None and f.current.fallback,
-                         timeout_s=1.0)
+            assert _pump(svc, [f], until=lambda: f.current is not None and f.current.fallback)
             assert np.all(f.current.bits == 2)
             release.set()
-            assert _pump(svc, [f], until=lambda: _drained(svc) and not svc.fallback_active)
+            assert _pump(svc, [f], until=lambda: _drained(svc)
+                         and not svc.controller.fallback_active)
             assert "stale" not in svc.status()["alarms"]
 
 
@@ -356,13 +357,13 @@ class TestRobustness:
         with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=1)) as svc:
             for est in ScriptedDriver(other, frames=5).frames():
                 assert svc.process(est) is None
-            assert svc.rejected["other_plan"] == 5 and svc.current_map is None
+            assert svc.controller.rejected["other_plan"] == 5 and svc.current_map is None
 
     def test_undecodable_hand_off_is_counted(self):
         cfg = loopback_config()
         with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=1)) as svc:
             svc._handle_inproc([zmq.Frame(b"estimate"), zmq.Frame(b"{not json")])
-            assert svc.frames["decode_errors"] == 1
+            assert svc.controller.frames["decode_errors"] == 1
 
     def test_driver_failure_is_reported_not_raised(self):
         cfg = loopback_config()
@@ -390,7 +391,7 @@ class TestRobustness:
                         got.append(codec.decode(sub.recv_multipart())[1])
                     return bool(got) and got[-1]["frames"]["received"] == 50
 
-                assert _pump(svc, until=one, timeout_s=3.0)
+                assert _pump(svc, until=one)
             st = got[-1]
             assert st["type"] == "status" and st["map"]["seq"] == svc.current_map.seq
             assert len(st["band"]["snr_db"]) == st["band"]["columns"] <= 128
@@ -404,7 +405,7 @@ class TestRobustness:
         with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=80,
                                                 fades=[(0.4, 0, 30, 10.0)])) as svc:
             assert _pump(svc, until=lambda: _drained(svc))
-            published = sum(svc.maps_published.values())
+            published = sum(svc.controller.maps_published.values())
         with RecordReader(path) as reader:
             records = list(reader)
         topics = [t for t, _ in records]
@@ -423,11 +424,9 @@ class TestRobustness:
         svc = Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=10_000))
         svc.start()
         svc.run(0.1)
-        t0 = time.monotonic()
         svc.close()
         svc.close()
-        assert time.monotonic() - t0 < cfg.service.driver_join_s + 1
-        assert not svc._thread.is_alive()
+        assert not svc._handoff.alive  # joined before the final status and the sockets
         assert svc.last_status["driver"]["state"] == "stopped"
 
 
@@ -493,39 +492,128 @@ class TestClosedLoop:
             assert _pump(svc, until=lambda: _drained(svc), timeout_s=20.0)
             tones = svc.plan.data_tones
             band = (tones >= -90) & (tones <= -30)
-            before = [c for c in svc.changes if c.time_s < 1.2]
+            before = [c for c in svc.controller.changes if c.time_s < 1.2]
             assert before, "no map before the fade"
             final = svc.current_map
             assert final.created_s > 1.2
             assert svc.acks and svc.acks["followers"]["count"] >= 1  # the transmitter followed
             assert final.bits[band].mean() < final.bits[~band].mean() - 3
             assert any(c.kind in ("emergency", "reload", "bit_swap") and c.time_s >= 1.2
-                       for c in svc.changes)
+                       for c in svc.controller.changes)
+
+
+class FakeClock:
+    """A monotonic clock that moves ``tick_s`` at every read: time passes only as the service
+    works, so a flood of estimates costs time whatever the machine's speed or load."""
+
+    def __init__(self, tick_s: float, start_s: float = 1000.0) -> None:
+        self.tick_s = tick_s
+        self.now_s = start_s
+
+    def __call__(self) -> float:
+        self.now_s += self.tick_s
+        return self.now_s
 
 
 def test_heartbeats_stay_on_time_under_a_flood_of_estimates():
-    """Heartbeats every heartbeat_s (0.1 s here) even while the source floods the loop."""
+    """A heartbeat goes out at every due time (heartbeat_s = 0.1 s of the service's clock) while
+    the source floods the loop: with a clock that moves 1 ms at each read (at least one read per
+    estimate), a step that took every waiting estimate (up to 128 queued, 256 per step before)
+    would delay heartbeats by 0.1 s or more; one bounded by the clock is late by a few reads."""
     cfg = loopback_config()
+    clock = FakeClock(0.001)
     ctx = zmq.Context()
     sub = ctx.socket(zmq.SUB)
     sub.setsockopt(zmq.LINGER, 0)
     sub.setsockopt(zmq.SUBSCRIBE, codec.TOPIC_HEARTBEAT.encode())
+    beats = []  # (heartbeat time_s, estimates received by then)
     try:
         drv = ScriptedDriver(_plan(cfg), frames=1_000_000, frame_s=0.001)
-        with Service(cfg, driver=drv) as svc:
+        with Service(cfg, driver=drv, clock=clock) as svc:
             sub.connect(svc.endpoints["maps"])
-            times = []
 
             def beat():
                 while sub.poll(0):
-                    sub.recv_multipart()
-                    times.append(time.monotonic())
-                return len(times) >= 12
+                    _t, hb = codec.decode(sub.recv_multipart())
+                    beats.append((hb["time_s"], svc.controller.received))
+                return len(beats) >= 40
 
-            assert _pump(svc, until=beat, timeout_s=3.0)
-            assert svc.frames["received"] > 100
-        gaps = np.diff(times[1:])
-        assert gaps.max() < 0.35
+            assert _pump(svc, until=beat, timeout_s=60.0)
     finally:
         sub.close()
         ctx.term()
+    times = np.array([t for t, _ in beats[1:]])
+    received = np.array([n for _, n in beats[1:]])
+    assert received[-1] - received[0] >= 200  # estimates kept coming all along
+    assert np.all(np.diff(times) <= cfg.publish.heartbeat_s + 0.03)
+
+
+class _FailingRecorder:
+    """Stands in for a RecordWriter on a disk that just filled up: every write fails, and so
+    does close (as a raw OSError would)."""
+
+    def __init__(self) -> None:
+        self.closes = 0
+
+    def write(self, topic, record):
+        return self.write_frames([topic.encode()])
+
+    def write_frames(self, frames):
+        raise RecordingError("run.brlog: write failed: [Errno 28] No space left on device")
+
+    def close(self):
+        self.closes += 1
+        raise OSError(28, "No space left on device")
+
+
+class TestRecording:
+    def test_recording_keeps_decisions_and_status(self, tmp_path):
+        """The default record topics: estimates, maps, decisions and status messages."""
+        path = tmp_path / "run.brlog"
+        cfg = loopback_config(record={"path": str(path)})
+        assert cfg.record.topics == ["estimate", "map", "decision", "status"]
+        with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=120,
+                                                fades=[(0.5, 0, 40, 12.0)])) as svc:
+            assert _pump(svc, until=lambda: _drained(svc))
+            svc.publish_status()
+            changes = list(svc.controller.changes)
+        with RecordReader(path) as reader:
+            records = list(reader)
+        decisions = [r for t, r in records if t == "decision"]
+        maps = [r for t, r in records if t == "map"]
+        statuses = [r for t, r in records if t == "status"]
+        assert len(decisions) == len(maps) >= 2
+        # One decision per map, same seq, kind and reason as the history shows.
+        assert [d["seq"] for d in decisions] == [m.seq for m in maps]
+        assert [(d["kind"], d["reason"], d["seq"]) for d in decisions][-len(changes):] == \
+            [(c.kind, c.reason, c.seq) for c in changes]
+        assert all(d["time_s"] == m.created_s for d, m in zip(decisions, maps))
+        # Status messages as published; the last one is the final status of close().
+        assert len(statuses) >= 2 and statuses[-1]["driver"]["state"] == "ended"
+        assert statuses[-1]["recording"] == {"state": "on", "path": str(path), "error": None}
+        # The recorded order: each decision right before its map.
+        topics = [t for t, _ in records if t in ("decision", "map")]
+        assert topics == ["decision", "map"] * len(maps)
+
+    def test_a_recording_that_cannot_be_written_never_stops_the_maps(self, tmp_path, caplog):
+        path = tmp_path / "run.brlog"
+        cfg = loopback_config(record={"path": str(path)})
+        failing = _FailingRecorder()
+        gate = threading.Event()
+        drv = ScriptedDriver(_plan(cfg), frames=150, fades=[(0.7, 0, 40, 12.0)], gate=gate)
+        with caplog.at_level("ERROR", logger="brimline"):
+            with Service(cfg, driver=drv) as svc:
+                svc._io.recorder.close()
+                svc._io.recorder = failing  # the disk fills up now
+                gate.set()
+                assert _pump(svc, until=lambda: _drained(svc))
+                st = svc.publish_status()
+                maps = svc.controller.maps_published
+                assert svc.controller.frames["received"] == 150  # adapting went on
+                assert sum(maps.values()) >= 2 and svc.current_map.created_s > 0.7
+        assert failing.closes == 1
+        assert st["recording"]["state"] == "failed"
+        assert "No space left" in st["recording"]["error"]
+        assert "recording_failed" in st["alarms"]
+        errors = [r for r in caplog.records if r.levelname == "ERROR"]
+        assert len(errors) == 1 and "recording stopped" in errors[0].getMessage()

@@ -14,7 +14,8 @@ import time
 from brimline.daemon.commands.cli import RF_CAUTION
 from brimline.daemon.errors import InputError
 from brimline.daemon.runtime.config import Config, load_config
-from brimline.daemon.runtime.service import Service, build_core, make_driver
+from brimline.daemon.runtime.assemble import build_core, make_driver
+from brimline.daemon.runtime.service import Service
 from brimline.daemon.runtime.status import summary_line
 
 __all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "end_summary"]

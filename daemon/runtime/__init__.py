@@ -1,2 +1,4 @@
-"""The runtime: the validated config, building objects from it, the service (I/O around the
-link controller: sockets, state file, recording, status, pacing) and the status message."""
+"""The runtime: the validated config (``config``), building objects from it (``assemble``), the
+service (I/O around the link controller: sockets, state file, recording, status, pacing) with its
+driver-thread hand-off (``handoff``) and outlets (``outlets``), and the status message
+(``status``)."""

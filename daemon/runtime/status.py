@@ -20,6 +20,7 @@ Layout of the message (version 1)::
      "maps_published": {kind: n},
      "changes": [{"time_s", "kind", "reason", "seq"}, ...],   # newest last
      "acks": {follower: {"seq", "age_s"}},
+     "recording": {"state": "off" | "on" | "failed", "path", "error"},
      "alarms": ["stale", "fallback", "emergency", "driver_failed", ...]}
 
 The band is compact: tones are grouped into at most ``columns`` adjacent groups; each group shows
@@ -31,13 +32,14 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass
 from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-__all__ = ["STATUS_VERSION", "ALARMS", "Change", "band_columns", "build_status", "finite",
-           "summary_line"]
+from brimline.daemon.core.controller import Change, LinkController
+
+__all__ = ["STATUS_VERSION", "ALARMS", "band_columns", "build_status", "controller_fields",
+           "finite", "summary_line"]
 
 STATUS_VERSION = 1
 
@@ -49,29 +51,8 @@ ALARMS = {
     "driver_failed": "the estimate source stopped with an error",
     "no_map": "no map has been published yet",
     "state_unsaved": "the state file cannot be written: new maps are held back",
+    "recording_failed": "the recording cannot be written: it stopped, the maps go on",
 }
-
-
-@dataclass(frozen=True)
-class Change:
-    """One published map, as remembered for the status history.
-
-    Attributes
-    ----------
-    time_s : float
-        Core time of the change, s.
-    kind : str
-        Decision kind (bit_swap, reload, emergency, fallback, restored).
-    reason : str
-        Why (change control's words).
-    seq : int
-        Sequence number of the published map.
-    """
-
-    time_s: float
-    kind: str
-    reason: str
-    seq: int
 
 
 def finite(value: Any, ndigits: int = 3) -> float | None:
@@ -128,7 +109,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  maps_published: Mapping[str, int] | None = None,
                  changes: Sequence[Change] = (), acks: Mapping[str, Mapping] | None = None,
                  stale: bool = False, symbol_rate_hz: float | None = None,
-                 columns: int = 128, state_unsaved: bool = False) -> dict:
+                 columns: int = 128, state_unsaved: bool = False,
+                 recording: Mapping[str, Any] | None = None) -> dict:
     """Build the status message (see the module docstring for its layout).
 
     Parameters
@@ -167,6 +149,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     state_unsaved : bool
         The daemon could not save its state (sequence-number lease): alarm ``state_unsaved``;
         no new map is sent until a save succeeds.
+    recording : mapping, optional
+        ``state`` ("off", "on", "failed"), ``path`` and ``error`` of the recording; "failed"
+        raises the alarm ``recording_failed``.
 
     Returns
     -------
@@ -206,6 +191,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
         alarms.append("no_map")
     if state_unsaved:
         alarms.append("state_unsaved")
+    rec = dict(recording or {"state": "off"})
+    if rec.get("state") == "failed":
+        alarms.append("recording_failed")
 
     bits_per_symbol = int(m.total_bits) if m is not None else 0
     rate_bps = (bits_per_symbol * float(symbol_rate_hz)
@@ -240,8 +228,34 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                      "seq": int(c.seq)} for c in changes],
         "acks": {str(k): {"seq": int(v.get("seq", -1)), "age_s": finite(v.get("age_s"))}
                  for k, v in dict(acks or {}).items()},
+        "recording": {"state": str(rec.get("state", "off")),
+                      "path": None if rec.get("path") is None else str(rec["path"]),
+                      "error": None if rec.get("error") is None else str(rec["error"])},
         "alarms": alarms,
     }
+
+
+def controller_fields(controller: LinkController, time_s: float) -> dict[str, Any]:
+    """The :func:`build_status` arguments a link controller holds, at ``time_s``.
+
+    Returns
+    -------
+    dict
+        ``frames`` (counters, rejections, the estimator's tracking counters), ``estimate_age_s``,
+        ``tone_index`` and ``snr_db`` of the tracked view, ``current_map``, ``current_kind``,
+        ``maps_published``, ``changes``, ``stale`` and ``state_unsaved``.
+    """
+    c = controller
+    tracked = c.last_tracked
+    tracking = {k: v for k, v in c.estimator.counters.items()
+                if k not in c.rejected and k != "accepted"}
+    return dict(frames={**c.frames, "rejected": dict(c.rejected), "tracking": tracking},
+                estimate_age_s=c.estimate_age_s(time_s),
+                tone_index=None if tracked is None else tracked.tone_index,
+                snr_db=None if tracked is None else tracked.snr_db,
+                current_map=c.current_map, current_kind=c.current_kind,
+                maps_published=c.maps_published, changes=list(c.changes), stale=c.stale,
+                state_unsaved=c.state_unsaved)
 
 
 def summary_line(status: Mapping[str, Any]) -> str:

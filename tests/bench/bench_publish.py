@@ -1,9 +1,9 @@
 """publish_p99_ms: estimate into the daemon -> map decoded by a follower on loopback.
 
 The clock starts when an estimate enters the service's per-estimate step (``Service.process``:
-estimator update, change control, seq lease check, map building, publish; the state hand-off
-and the recording follow the send) and stops when
-a :class:`Follower` in another process (as a transmitter would be), connected over TCP
+the link controller's estimator update, change control, seq lease check and map building, then
+the publish; the state hand-off and the recording follow the send) and stops when a
+:class:`Follower` in another process (as a transmitter would be), connected over TCP
 loopback, has decoded, checked and adopted the resulting map. Both ends read CLOCK_MONOTONIC
 (``time.monotonic``), which is one clock for every process on Linux. Where the machine has two
 or more cores, the daemon and the follower are pinned to different ones (as the daemon and the
@@ -89,15 +89,15 @@ def _measure(n: int) -> dict[str, float]:
         t_enter: dict[int, float] = {}
         t_sent: dict[int, float] = {}
         with Service(cfg, driver=ScriptedDriver(plan, frames=0)) as svc:
-            svc.change = ReloadEveryTime(svc.loader)
-            send = svc._io.publish_map
+            svc.controller.change = ReloadEveryTime(svc.loader)
+            send = svc._io.maps.publish
 
-            def timed_send(m, prime=False):
-                frames = send(m, prime=prime)
+            def timed_send(m):
+                frames = send(m)
                 t_sent[m.seq] = time.monotonic()
                 return frames
 
-            svc._io.publish_map = timed_send
+            svc._io.maps.publish = timed_send
             eps = svc.endpoints
             proc = subprocess.Popen(
                 [sys.executable, "-c", _FOLLOWER, eps["maps"], eps["snapshots"],

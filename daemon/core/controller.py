@@ -1,0 +1,361 @@
+"""The link controller: one estimate (or one tick of time) in, a step with the new maps out.
+
+:class:`LinkController` is the per-estimate decision path of the daemon with nothing around it:
+the estimator, change control, the tone-plan check, staleness and the fallback map, sequence
+numbers, the effective frame and the counters an operator reads. It has no sockets, threads,
+files, clock or logging; time comes in as ``now_s`` on every call. The daemon's service wraps
+it with I/O (it sends the maps of each :class:`Step`, records them and logs them); replay,
+the simulator's closed loop and offline what-if runs can call the same object directly, and
+the same inputs then give the same maps, byte for byte once encoded.
+
+Rules, per call
+---------------
+:meth:`LinkController.on_estimate` (an estimate arrived at ``now_s``):
+
+1. ``now_s`` is raised to the time of the last fallback map if it is earlier (a fallback sent
+   on extrapolated time while a source was silent must not be followed by earlier times).
+2. The estimate is counted as received; ``last_frame`` follows its ``frame``. An estimate of
+   another tone plan (plan id or tone indices differ) is rejected as ``other_plan``.
+3. A gap in the caller's time of at least ``stale_after_s`` since the newest accepted estimate
+   means the link was stale during the gap: the fallback map goes first, dated when a live
+   daemon would have sent it (newest accepted time + ``stale_after_s``).
+4. The estimator judges the estimate (a rejection is counted by its reason); change control
+   decides on the tracked view; a decision other than keep becomes a map.
+5. A rejected estimate still checks staleness at ``now_s``.
+
+:meth:`LinkController.on_tick` (time passed without an estimate) only checks staleness. Silence
+counts from the newest accepted estimate; before the first, from the first estimate received
+(whose time opens the source's time base), or, while none has been received, from ``start_s``.
+
+Sequence numbers and the lease
+------------------------------
+Every map gets ``next_seq``, which then grows by one, so seqs are strictly increasing. A caller
+that must make each seq durable before it is sent (the daemon's state file) passes ``reserve``:
+it is called with the seq before the map is made and raises a
+:class:`~brimline.daemon.errors.BrimlineError` when the seq cannot be covered. The map is then
+held back (not made, not counted as published, the seq not used); :attr:`state_unsaved` is true
+until a later reserve succeeds. Without ``reserve`` every seq is publishable.
+"""
+
+from __future__ import annotations
+
+import collections
+import math
+from dataclasses import dataclass
+from typing import Callable
+
+import numpy as np
+
+from brimline.daemon.errors import BrimlineError
+from brimline.daemon.records import Allocation, DecisionKind, Estimate, LoadMap, TonePlan, \
+    Tracked
+
+__all__ = ["Change", "Step", "LinkController", "REJECTED"]
+
+#: ``Step.kind`` of an estimate that was not used (its reason names the counter).
+REJECTED = "rejected"
+
+
+@dataclass(frozen=True)
+class Change:
+    """One published map, as remembered for the status history and recorded as a decision.
+
+    Attributes
+    ----------
+    time_s : float
+        Controller time of the change, s.
+    kind : str
+        Decision kind (bit_swap, reload, emergency, fallback, restored).
+    reason : str
+        Why (change control's words).
+    seq : int
+        Sequence number of the published map.
+    """
+
+    time_s: float
+    kind: str
+    reason: str
+    seq: int
+
+
+@dataclass(frozen=True)
+class Step:
+    """What one call of the controller decided.
+
+    Attributes
+    ----------
+    now_s : float
+        The time the controller used (the caller's, raised to the last fallback time).
+    kind : str
+        ``"keep"``, ``"bit_swap"``, ``"reload"``, ``"emergency"`` or ``"fallback"`` (a
+        :class:`~brimline.daemon.records.DecisionKind` value), or :data:`REJECTED` for an
+        estimate that was not used.
+    reason : str
+        Change control's reason, the rejection counter's name, or why nothing happened.
+    maps : tuple of LoadMap
+        The new maps, in the order they must be sent (a fallback may precede a normal map).
+    changes : tuple of Change
+        One per map, same order: kind, reason, time and seq.
+    held_back : str or None
+        When a decision called for a map but its seq could not be reserved (so no map was
+        made and the seq stays unused): the reserve error's text.
+    """
+
+    now_s: float
+    kind: str
+    reason: str
+    maps: tuple[LoadMap, ...] = ()
+    changes: tuple[Change, ...] = ()
+    held_back: str | None = None
+
+    @property
+    def last_map(self) -> LoadMap | None:
+        """The newest map of this step (None when there is none)."""
+        return self.maps[-1] if self.maps else None
+
+
+class LinkController:
+    """Estimates in, load maps out: the daemon's decision path without I/O.
+
+    Parameters
+    ----------
+    plan : TonePlan
+        The tone plan maps are made for; estimates of other plans are rejected.
+    estimator : Estimator
+        Tracks the channel (``update(estimate, now_s)``, ``tracked(now_s)``, ``reset(why)``,
+        ``counters``).
+    change : ChangeControl
+        Decides map changes (``decide(tracked, now_s)``, ``force(allocation, kind, reason,
+        now_s)``). Public attribute: a test or tool may replace it before the first estimate.
+    gap_db : float
+        SNR gap the loader uses, dB (carried by every map).
+    epoch : str
+        Epoch id carried by every map.
+    next_seq : int
+        Sequence number of the first new map (>= 0).
+    restored : LoadMap or None
+        A map in force from an earlier run (kind ``restored``); it must be for ``plan``.
+    lead_frames : int
+        Frames between the newest received frame and the frame a new map applies from.
+    stale_after_s : float
+        Time without an accepted estimate after which the fallback map is sent, s.
+    fallback_bits : int
+        Bits on every data tone of the fallback map.
+    fallback_power_db : float
+        Power on every data tone of the fallback map, relative to nominal, dB.
+    reserve : callable, optional
+        ``reserve(seq)`` makes ``seq`` publishable or raises ``BrimlineError`` (see the module
+        docstring). None: every seq is publishable.
+    start_s : float, optional
+        Time the link came up (silence before the first estimate counts from it). By default
+        the time of the first call.
+    history : int
+        Changes kept in :attr:`changes`.
+
+    Notes
+    -----
+    Deterministic: the same constructor arguments and the same sequence of calls (estimates
+    and times) give the same steps and maps.
+    """
+
+    def __init__(self, plan: TonePlan, estimator, change, *, gap_db: float, epoch: str,
+                 next_seq: int = 0, restored: LoadMap | None = None, lead_frames: int = 2,
+                 stale_after_s: float = 1.0, fallback_bits: int = 2,
+                 fallback_power_db: float = 0.0,
+                 reserve: Callable[[int], None] | None = None, start_s: float | None = None,
+                 history: int = 16) -> None:
+        if next_seq < 0:
+            raise ValueError(f"next_seq={next_seq} must be >= 0")
+        if restored is not None and restored.plan_id != plan.plan_id:
+            raise ValueError(f"restored map is for tone plan {restored.plan_id}, "
+                             f"not {plan.plan_id}")
+        self.plan = plan
+        self.estimator = estimator
+        self.change = change
+        self.epoch = str(epoch)
+        self.next_seq = int(next_seq)
+        self.lead_frames = int(lead_frames)
+        self.stale_after_s = float(stale_after_s)
+        self._gap_db = float(gap_db)
+        self._reserve = reserve
+        self._plan_id = plan.plan_id  # a hash: computed once, compared per estimate
+        # The plan's data tones as the bytes an Estimate's int16 tone_index must equal: one
+        # memcmp per estimate instead of an elementwise comparison.
+        self._tone_bytes = np.asarray(plan.data_tones, dtype=np.int16).tobytes()
+        n = plan.data_tones.size
+        p_lin = 10.0 ** (float(fallback_power_db) / 10.0)
+        self._fallback = Allocation(bits=np.full(n, int(fallback_bits)),
+                                    power=np.full(n, p_lin), total_bits=n * int(fallback_bits),
+                                    total_power=n * p_lin, margin_db=math.nan)
+        self._fallback_reason = (f"no valid estimate for {self.stale_after_s:g} s: safe map "
+                                 f"({int(fallback_bits)} bits, {float(fallback_power_db):+g} dB "
+                                 f"on every tone)")
+
+        self.current_map: LoadMap | None = restored
+        self.current_kind: str | None = None if restored is None else "restored"
+        self.maps_published: collections.Counter[str] = collections.Counter()
+        self.changes: collections.deque[Change] = collections.deque(maxlen=int(history))
+        self.rejected: collections.Counter[str] = collections.Counter()  # by reason
+        self.received = 0
+        self.accepted = 0
+        self.decode_errors = 0
+        self.last_frame = -1
+        self.held_back = 0  #: maps not made because their seq could not be reserved
+        self.state_unsaved = False  #: the last reserve failed
+        self.fallback_active = False
+        self.stale = False
+        self.last_tracked: Tracked | None = None
+        self.last_valid_s: float | None = None  #: time of the newest accepted estimate
+        self._quiet_from_s = None if start_s is None else float(start_s)
+        self._floor_s = -math.inf
+
+    # ------------------------------------------------------------------ calls
+
+    def on_estimate(self, estimate: Estimate, now_s: float) -> Step:
+        """Take one estimate received at ``now_s``; return what was decided.
+
+        Parameters
+        ----------
+        estimate : Estimate
+            The estimate (of any plan; others are rejected and counted).
+        now_s : float
+            The caller's time for it, s (the estimate's own time for a replayed or simulated
+            source, the arrival time for a live one).
+
+        Returns
+        -------
+        Step
+        """
+        now_s = max(float(now_s), self._floor_s)
+        if self.received == 0:  # the first estimate opens the source's time base
+            self._quiet_from_s = now_s
+        self.received += 1
+        self.last_frame = max(self.last_frame, estimate.frame)
+        maps: list[LoadMap] = []
+        changes: list[Change] = []
+        held: list[str] = []
+        if (estimate.plan_id != self._plan_id
+                or estimate.tone_index.tobytes() != self._tone_bytes):
+            # Received with another tone plan: no map of this controller could describe it.
+            self.rejected["other_plan"] += 1
+            return self._rejected("other_plan", now_s, maps, changes, held)
+        if (self.last_valid_s is not None and not self.fallback_active
+                and now_s - self.last_valid_s >= self.stale_after_s):
+            self._enter_fallback(self.last_valid_s + self.stale_after_s, maps, changes, held)
+        reason = self.estimator.update(estimate, now_s)
+        if reason is not None:
+            self.rejected[reason] += 1
+            return self._rejected(reason, now_s, maps, changes, held)
+        self.accepted += 1
+        self.last_valid_s = now_s
+        self.stale = False
+        tracked = self.estimator.tracked(now_s)
+        if tracked is None:
+            return self._step(now_s, "keep", "no tracked view yet", maps, changes, held)
+        self.last_tracked = tracked
+        decision = self.change.decide(tracked, now_s)
+        kind = decision.kind.value
+        if decision.kind is not DecisionKind.KEEP:
+            self._make_map(decision.allocation, kind, decision.reason, now_s, False,
+                           maps, changes, held)
+        return self._step(now_s, kind, decision.reason, maps, changes, held)
+
+    def on_tick(self, now_s: float) -> Step:
+        """Time passed without an estimate: send the fallback map once the link is stale.
+
+        Parameters
+        ----------
+        now_s : float
+            The caller's time now, s (same time base as :meth:`on_estimate`).
+
+        Returns
+        -------
+        Step
+            ``kind`` ``"fallback"`` with the fallback map when it was entered now, else
+            ``"keep"``.
+        """
+        now_s = max(float(now_s), self._floor_s)
+        if self._quiet_from_s is None:
+            self._quiet_from_s = now_s
+        maps: list[LoadMap] = []
+        changes: list[Change] = []
+        held: list[str] = []
+        entered = self._check_stale(now_s, maps, changes, held)
+        if entered:
+            return self._step(now_s, DecisionKind.FALLBACK.value, self._fallback_reason, maps,
+                              changes, held)
+        return self._step(now_s, "keep", "stale" if self.stale else "fresh", maps, changes,
+                          held)
+
+    def count_undecodable(self) -> None:
+        """Count an estimate the caller could not decode (status ``decode_errors``)."""
+        self.decode_errors += 1
+
+    def estimate_age_s(self, now_s: float) -> float | None:
+        """Age of the newest accepted estimate at ``now_s``, s (None before the first)."""
+        return None if self.last_valid_s is None else max(0.0, now_s - self.last_valid_s)
+
+    @property
+    def frames(self) -> dict[str, int]:
+        """The frame counters: ``received``, ``accepted``, ``decode_errors``, ``last_frame``."""
+        return {"received": self.received, "accepted": self.accepted,
+                "decode_errors": self.decode_errors, "last_frame": self.last_frame}
+
+    # ------------------------------------------------------------------ rules
+
+    def _rejected(self, reason, now_s, maps, changes, held) -> Step:
+        self._check_stale(now_s, maps, changes, held)
+        return self._step(now_s, REJECTED, reason, maps, changes, held)
+
+    def _check_stale(self, now_s, maps, changes, held) -> bool:
+        start = self.last_valid_s if self.last_valid_s is not None else self._quiet_from_s
+        if now_s - start < self.stale_after_s:
+            return False
+        self.stale = True
+        if self.fallback_active:
+            return False
+        self._enter_fallback(now_s, maps, changes, held)
+        return True
+
+    def _enter_fallback(self, now_s, maps, changes, held) -> None:
+        self._floor_s = max(self._floor_s, now_s)
+        self.change.force(self._fallback, DecisionKind.FALLBACK, self._fallback_reason, now_s)
+        self.estimator.reset("stale")
+        self.fallback_active = True
+        self.stale = True
+        self._make_map(self._fallback, DecisionKind.FALLBACK.value, self._fallback_reason,
+                       now_s, True, maps, changes, held)
+
+    def _make_map(self, alloc: Allocation, kind: str, reason: str, now_s: float,
+                  fallback: bool, maps, changes, held) -> None:
+        if self._reserve is not None:
+            try:
+                self._reserve(self.next_seq)
+            except BrimlineError as exc:
+                # No durable cover for this seq: the map is held back, so no seq is reused.
+                self.held_back += 1
+                self.state_unsaved = True
+                held.append(str(exc))
+                return
+        self.state_unsaved = False
+        # The record converts and freezes the loader's arrays once.
+        m = LoadMap(epoch=self.epoch, seq=self.next_seq,
+                    effective_frame=self.last_frame + self.lead_frames, created_s=now_s,
+                    plan_id=self._plan_id, tone_index=self.plan.data_tones, bits=alloc.bits,
+                    power_lin=alloc.power, total_bits=alloc.total_bits,
+                    margin_db=alloc.margin_db, gap_db=self._gap_db, reason=reason,
+                    fallback=fallback)
+        self.next_seq += 1
+        if self.fallback_active and not fallback:
+            self.fallback_active = False
+        self.current_map, self.current_kind = m, kind
+        self.maps_published[kind] += 1
+        change = Change(now_s, kind, reason, m.seq)
+        self.changes.append(change)
+        maps.append(m)
+        changes.append(change)
+
+    @staticmethod
+    def _step(now_s, kind, reason, maps, changes, held) -> Step:
+        return Step(now_s=now_s, kind=kind, reason=reason, maps=tuple(maps),
+                    changes=tuple(changes), held_back=held[0] if held else None)

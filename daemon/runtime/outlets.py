@@ -1,0 +1,149 @@
+"""The daemon's outlets on the main thread: map and status publishers, state file, recorder.
+
+:class:`Outlets` holds the protocol objects the service's loop talks to, behind the few calls it
+needs, and keeps the rule that a recording which cannot be written never stops the maps: the
+first :class:`~brimline.daemon.errors.RecordingError` closes the recorder, logs one error line
+and shows in :meth:`Outlets.recording_status` (the status message's ``recording`` field).
+"""
+
+from __future__ import annotations
+
+import logging
+
+import zmq
+
+from brimline.daemon.errors import BrimlineError, RecordingError
+from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
+from brimline.daemon.records import LoadMap
+from brimline.daemon.runtime.assemble import open_recorder, open_state
+from brimline.daemon.runtime.config import Config
+from brimline.daemon.wire.state import new_epoch
+
+__all__ = ["Outlets"]
+
+log = logging.getLogger("brimline.service")
+
+
+class Outlets:
+    """The protocol objects of the main thread, behind the few calls the loop needs.
+
+    Owns the state keeper (opened first: its epoch goes to the map publisher, so heartbeats and
+    snapshots name it before the first map), the map publisher (``maps``: maps, heartbeats,
+    snapshots, acknowledgements), the status publisher (``status``) and the recorder.
+    Everything here runs on the main thread (the state keeper's writer thread aside).
+
+    Attributes
+    ----------
+    epoch : str
+        The epoch (restored or new).
+    next_seq : int
+        First sequence number this run may use.
+    restored : LoadMap or None
+        The saved map, when it is for this config's tone plan.
+    """
+
+    def __init__(self, config: Config, context: zmq.Context, plan) -> None:
+        self._plan = plan
+        self.maps = None
+        self.status = None
+        self.state = None
+        self.recorder = None
+        self._record_path = config.record.path
+        self._record_error: str | None = None
+        self._closed = False
+        try:
+            self.state = open_state(config)
+            self.epoch, self.next_seq, self.restored = self._restore()
+            self.maps = MapPublisher(context=context, epoch=self.epoch,
+                                     **config.publish.model_dump())
+            self.status = StatusPublisher(context=context, curve=self.maps.curve,
+                                          **config.status.model_dump())
+            self.recorder = open_recorder(config, plan)
+        except BaseException:
+            self.close(None)
+            raise
+
+    def _restore(self) -> tuple[str, int, LoadMap | None]:
+        if self.state is None:
+            return new_epoch(), 0, None
+        epoch, next_seq, m = self.state.restore()
+        if m is not None and m.plan_id != self._plan.plan_id:
+            # Same epoch and sequence continue, but a map for another tone plan is not served.
+            log.warning("saved map is for tone plan %s, this config's is %s: not restored",
+                        m.plan_id, self._plan.plan_id)
+            m = None
+        return epoch, next_seq, m
+
+    def reserve(self, seq: int) -> None:
+        """Make ``seq`` publishable (a durable seq ceiling covers it). Raises StateError."""
+        if self.state is not None:
+            self.state.reserve(seq)
+
+    def save_state(self, m: LoadMap, frames) -> None:
+        if self.state is not None:
+            self.state.submit(m, frames)
+
+    def heartbeat_due(self, wall_s: float) -> float:
+        """Send a heartbeat if due; seconds until the next one."""
+        return self.maps.tick(wall_s)
+
+    def poll_sockets(self) -> list:
+        return [s for s in (self.maps.snapshot_socket, self.maps.ack_socket) if s is not None]
+
+    def handle(self, sock) -> list[dict]:
+        if sock is self.maps.snapshot_socket:
+            self.maps.handle_snapshot()
+            return []
+        return self.maps.poll_acks()
+
+    def endpoints(self) -> dict[str, str]:
+        return {"maps": self.maps.map_endpoint, "snapshots": self.maps.snapshot_endpoint,
+                "acks": self.maps.ack_endpoint, "status": self.status.endpoint}
+
+    # -- recording: a failure stops the recording, never the maps
+    def record(self, topic: str, record, frames=None) -> None:
+        """Record ``record`` on ``topic`` (or its encoded ``frames``) if the topic is kept."""
+        if self.recorder is None:
+            return
+        try:
+            if frames is None:
+                self.recorder.write(topic, record)
+            else:
+                self.recorder.write_frames(frames)
+        except RecordingError as exc:
+            self._recording_failed(exc)
+
+    def _recording_failed(self, exc: RecordingError) -> None:
+        recorder, self.recorder = self.recorder, None
+        self._record_error = str(exc)
+        note = ""
+        try:
+            recorder.close()
+        except (BrimlineError, OSError) as close_exc:  # the file is lost either way
+            note = f" (closing it: {close_exc})"
+        log.error("recording stopped, maps go on without it: %s%s", exc, note)
+
+    def recording_status(self) -> dict:
+        """``{"state": "off" | "on" | "failed", "path", "error"}`` for the status message."""
+        if self._record_error is not None:
+            state = "failed"
+        else:
+            state = "off" if self.recorder is None else "on"
+        path = None if self._record_path is None else str(self._record_path)
+        return {"state": state, "path": path, "error": self._record_error}
+
+    def close(self, last_map: LoadMap | None) -> None:
+        """Save state, close the recording (flushed), then the sockets. Idempotent."""
+        if self._closed:
+            return
+        self._closed = True
+        if self.state is not None:
+            self.state.close(last_map)
+        if self.recorder is not None:
+            try:
+                self.recorder.close()
+            except (BrimlineError, OSError) as exc:
+                log.error("recording not closed cleanly: %s", exc)
+        for obj in (self.status, self.maps):
+            if obj is not None:
+                obj.close()
