@@ -246,3 +246,15 @@ class TestCheckTriesThePaths:
         assert code == 2 and len(err) == 2
         assert "record.path=" in err[0] and "service.state_path=" in err[1]
         assert err[1].endswith(f"folder {tmp_path / 'gone'} does not exist")
+
+
+def test_a_torn_replay_tail_is_one_json_log_line(tmp_path, capsys):
+    """The reader's warning goes through logging, so ``--log-json`` formats it like any other."""
+    rec = _recording(tmp_path / "est.brlog", frames=40)
+    rec.write_bytes(rec.read_bytes()[:-9])
+    cfg = _config(tmp_path, rec)
+    assert main(["run", "--config", str(cfg), "--log-json", "--quiet", "--duration", "10"]) == 0
+    lines = [json.loads(x) for x in capsys.readouterr().err.strip().splitlines()]
+    torn = [x for x in lines if x["logger"] == "brimline.recording"]
+    assert len(torn) == 1 and torn[0]["level"] == "warning"
+    assert torn[0]["message"].startswith(f"{rec}: record 40 is torn (")
