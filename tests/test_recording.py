@@ -1,5 +1,9 @@
-"""Recordings: round trips, torn tails, corruption, rotation, a real crash of the writer."""
+"""Recordings: round trips, torn tails, corruption, rotation, a real crash of the writer, a disk
+that fills up."""
 
+import errno
+import json
+import logging
 import os
 import struct
 import subprocess
@@ -12,15 +16,41 @@ from protocol_helpers import make_map, wifi_like_plan
 
 from brimline.daemon.errors import RecordingError
 from brimline.daemon.records import Estimate, LoadMap
-from brimline.daemon.wire import codec
+from brimline.daemon.wire import codec, recording
 from brimline.daemon.wire.recording import (
     MAGIC,
     RecordReader,
+    RecordSetReader,
     RecordWriter,
-    TornRecordWarning,
     read_recording,
     recording_paths,
 )
+
+
+class _Lines(logging.Handler):
+    """Collects the messages of one logger (independent of how the root logger is set up)."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.DEBUG)
+        self.records: list[logging.LogRecord] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.records.append(record)
+
+    def warnings(self) -> list[str]:
+        return [r.getMessage() for r in self.records if r.levelno == logging.WARNING]
+
+
+@pytest.fixture
+def recording_log():
+    """The warnings of the ``brimline.recording`` logger during the test."""
+    logger = logging.getLogger("brimline.recording")
+    handler, level = _Lines(), logger.level
+    logger.addHandler(handler)
+    logger.setLevel(logging.DEBUG)
+    yield handler
+    logger.removeHandler(handler)
+    logger.setLevel(level)
 
 
 def _estimate(frame):
@@ -95,6 +125,51 @@ class TestRoundTrip:
         assert [t for t, _ in read_recording(path, topics=["map"])] == ["map"] * 30
         assert [m.seq for t, m in items if t == "map"] == list(range(30))
 
+    def test_the_set_reader_walks_every_rotated_file_in_order(self, tmp_path):
+        path = _write(tmp_path / "run.brl", n=30, max_bytes=4096)
+        paths = recording_paths(path)
+        with RecordSetReader(path, topics=["map"]) as r:
+            assert r.paths == paths and r.meta["part"] == 0 and r.meta["scenario"] == "bench"
+            seqs = [m.seq for _, m in r]
+        assert seqs == list(range(30))
+        assert r.records == 90 + len(paths)  # every file's meta record counted
+        assert r.torn == 0
+
+    def test_the_set_reader_counts_a_torn_tail_in_any_file(self, tmp_path, recording_log):
+        path = _write(tmp_path / "run.brl", n=30, max_bytes=4096)
+        last = recording_paths(path)[-1]
+        last.write_bytes(last.read_bytes()[:-3])
+        with RecordSetReader(path) as r:
+            assert len(list(r)) == 89
+        assert r.torn == 1 and len(recording_log.warnings()) == 1
+        assert str(last) in recording_log.warnings()[0]
+
+    def test_a_missing_part_is_an_error_not_a_short_replay(self, tmp_path):
+        path = _write(tmp_path / "run.brl", n=30, max_bytes=4096)
+        paths = recording_paths(path)
+        assert len(paths) >= 3
+        paths[1].unlink()
+        with pytest.raises(RecordingError, match=r"part 1 \(run\.0001\.brl\) is missing but "
+                                                 rf"part {len(paths) - 1} exists"):
+            RecordSetReader(path)
+        with pytest.raises(RecordingError, match="is missing"):
+            list(read_recording(path))
+
+    def test_a_set_without_its_first_file_is_no_recording(self, tmp_path):
+        path = _write(tmp_path / "run.brl", n=30, max_bytes=4096)
+        path.unlink()
+        with pytest.raises(RecordingError, match="no such recording"):
+            RecordSetReader(path)
+
+    def test_the_set_reader_can_walk_the_set_again(self, tmp_path):
+        path = _write(tmp_path / "run.brl", n=12, max_bytes=2048)
+        with RecordSetReader(path, topics=["estimate"]) as r:
+            first = [e.frame for _, e in r]
+            again = [e.frame for _, e in r]
+        assert first == again == list(range(12))
+        with pytest.raises(RuntimeError, match="closed"):
+            list(r)
+
     def test_closed_writer(self, tmp_path):
         w = RecordWriter(tmp_path / "x.brl")
         w.close()
@@ -104,35 +179,56 @@ class TestRoundTrip:
 
 
 class TestDamage:
-    def test_every_torn_tail_stops_cleanly(self, tmp_path):
+    def test_every_torn_tail_stops_cleanly(self, tmp_path, recording_log):
         """Cut the file at every byte of its last record: all earlier records read back, the
-        torn one is counted and warned about, nothing raises."""
+        torn one is counted and logged once (one warning naming file and record), nothing
+        raises."""
         path = _write(tmp_path / "run.brl", n=2)
         data = path.read_bytes()
         last = _record_offsets(path)[-1]
         cut_path = tmp_path / "cut.brl"
         for cut in range(last + 1, len(data)):
             cut_path.write_bytes(data[:cut])
-            with pytest.warns(TornRecordWarning, match="record 6 is torn"):
-                with RecordReader(cut_path) as r:
-                    items = list(r)
+            recording_log.records.clear()
+            with RecordReader(cut_path) as r:
+                items = list(r)
             assert len(items) == 5 and r.torn == 1
+            (line,) = recording_log.warnings()
+            assert line.startswith(f"{cut_path}: record 6 is torn (") and "\n" not in line
 
-    def test_clean_cut_at_a_record_boundary_is_not_torn(self, tmp_path):
+    def test_torn_tail_goes_through_logging_not_warnings(self, tmp_path, recording_log):
+        """The torn record reaches the ``brimline.recording`` logger (so ``--log-json`` formats
+        it) and raises no Python warning."""
+        import warnings
+
+        path = _write(tmp_path / "run.brl", n=2)
+        path.write_bytes(path.read_bytes()[:-5])
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            with RecordReader(path) as r:
+                list(r)
+        (rec,) = [x for x in recording_log.records if x.levelno == logging.WARNING]
+        assert rec.name == "brimline.recording" and r.torn == 1
+
+    def test_clean_cut_at_a_record_boundary_is_not_torn(self, tmp_path, recording_log):
         path = _write(tmp_path / "run.brl", n=2)
         last = _record_offsets(path)[-1]
         path.write_bytes(path.read_bytes()[:last])
         with RecordReader(path) as r:
             assert len(list(r)) == 5 and r.torn == 0
+        assert recording_log.warnings() == []
 
-    def test_garbage_in_the_last_record_is_a_torn_tail(self, tmp_path):
+    def test_garbage_in_the_last_record_is_a_torn_tail(self, tmp_path, recording_log):
+        """A flipped byte is caught by the record's CRC-32 (the ISO 3309 / IEEE 802.3
+        polynomial that zlib.crc32 computes detects every single-byte error)."""
         path = _write(tmp_path / "run.brl", n=2)
         data = bytearray(path.read_bytes())
         data[-3] ^= 0xFF
         path.write_bytes(bytes(data))
-        with pytest.warns(TornRecordWarning, match="checksum mismatch at the end"):
-            with RecordReader(path) as r:
-                assert len(list(r)) == 5
+        with RecordReader(path) as r:
+            assert len(list(r)) == 5
+        (line,) = recording_log.warnings()
+        assert "checksum mismatch at the end" in line
 
     def test_corruption_in_the_middle_names_file_and_record(self, tmp_path):
         path = _write(tmp_path / "run.brl", n=3)
@@ -182,7 +278,7 @@ class TestDamage:
             list(read_recording(tmp_path / "nope.brl"))
 
 
-def test_a_killed_writer_loses_at_most_the_record_being_written(tmp_path):
+def test_a_killed_writer_loses_at_most_the_record_being_written(tmp_path, recording_log):
     """The writer process is killed (SIGKILL) mid-run: every record it finished reads back."""
     path = tmp_path / "crash.brl"
     script = textwrap.dedent(f"""
@@ -199,10 +295,10 @@ def test_a_killed_writer_loses_at_most_the_record_being_written(tmp_path):
     """)
     proc = subprocess.run([sys.executable, "-c", script], timeout=30)
     assert proc.returncode == -9
-    with pytest.warns(TornRecordWarning):
-        with RecordReader(path) as r:
-            seqs = [m.seq for _, m in r]
-    assert seqs == list(range(40))
+    with RecordReader(path) as r:
+        seqs = [m.seq for _, m in r]
+    assert seqs == list(range(40)) and r.torn == 1
+    assert len(recording_log.warnings()) == 1
 
 
 def test_record_section_builds_a_writer(tmp_path):
@@ -215,3 +311,186 @@ def test_record_section_builds_a_writer(tmp_path):
     with RecordWriter(**section.model_dump()) as w:
         assert not w.write("status", {"x": 1}) and w.write("map", make_map(1))
     assert RecordSection().path is None  # recording is off unless asked for
+
+
+class _FullDisk:
+    """Room left on an imagined disk, shared by every file opened through :meth:`open`.
+
+    A write that does not fit fails with ``OSError(ENOSPC)``, the error POSIX ``write()`` gives
+    when "there was no free space remaining on the device" (POSIX.1-2017, write(), ERRORS; from
+    memory). ``stuck=True`` also makes later flushes and the close fail, as a buffered file
+    does while it still holds bytes it could not write.
+    """
+
+    def __init__(self, room: int, *, stuck: bool = False) -> None:
+        self.room = room
+        self.stuck = stuck
+        self.full = False
+
+    def open(self, path, mode="r", *args, **kwargs):
+        return _FillingFile(open(path, mode, *args, **kwargs), self)
+
+
+class _FillingFile:
+    def __init__(self, f, disk: _FullDisk) -> None:
+        self._f = f
+        self._disk = disk
+
+    def _enospc(self):
+        self._disk.full = True
+        return OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    def write(self, data):
+        if len(data) > self._disk.room:
+            raise self._enospc()
+        self._disk.room -= len(data)
+        return self._f.write(data)
+
+    def flush(self):
+        if self._disk.stuck and self._disk.full:
+            raise self._enospc()
+        self._f.flush()
+
+    def fileno(self):
+        return self._f.fileno()
+
+    def close(self):
+        self._f.close()
+        if self._disk.stuck and self._disk.full:
+            raise self._enospc()
+
+
+def _map_record_size():
+    return len(recording.pack_record(codec.encode("map", make_map(0))))
+
+
+def _header_size(tmp_path):
+    with RecordWriter(tmp_path / "probe.brl"):
+        pass
+    size = (tmp_path / "probe.brl").stat().st_size
+    (tmp_path / "probe.brl").unlink()
+    return size
+
+
+class TestDiskFull:
+    @pytest.mark.parametrize("stuck", [False, True])
+    def test_a_full_disk_fails_the_writer_once_and_close_stays_quiet(self, tmp_path, monkeypatch,
+                                                                     stuck):
+        room = _header_size(tmp_path) + 7 * _map_record_size() + 10
+        monkeypatch.setattr(recording, "open", _FullDisk(room, stuck=stuck).open, raising=False)
+        path = tmp_path / "run.brl"
+        w = RecordWriter(path)
+        for i in range(7):
+            assert w.write("map", make_map(i))
+        assert not w.failed
+        with pytest.raises(RecordingError, match=rf"{path}: write failed after 7 records: "
+                                                 r"\[Errno 28\]") as first:
+            w.write("map", make_map(7))
+        assert isinstance(first.value.__cause__, OSError)
+        assert w.failed and w.error is first.value
+        with pytest.raises(RecordingError, match="recording stopped: .*write failed"):
+            w.write("map", make_map(8))  # refused at once, the file is not touched
+        w.close()  # no raw OSError, not even from a buffer that cannot be flushed
+        w.close()
+        with pytest.raises(RuntimeError, match="closed"):
+            w.write("map", make_map(9))
+        monkeypatch.undo()
+        with RecordReader(path) as r:
+            assert [m.seq for _, m in r] == list(range(7)) and r.torn == 0
+
+    def test_a_failing_final_flush_is_one_recording_error(self, tmp_path, monkeypatch):
+        disk = _FullDisk(1 << 20, stuck=True)
+        monkeypatch.setattr(recording, "open", disk.open, raising=False)
+        w = RecordWriter(tmp_path / "run.brl")
+        w.write("map", make_map(1))
+        disk.full = True  # the device goes away between two records
+        with pytest.raises(RecordingError, match="closing failed after 1 records"):
+            w.close()
+        w.close()  # once only
+        assert w.failed
+
+    def test_a_start_on_a_full_disk_leaves_no_file_behind(self, tmp_path, monkeypatch):
+        monkeypatch.setattr(recording, "open", _FullDisk(20).open, raising=False)
+        path = tmp_path / "run.brl"
+        with pytest.raises(RecordingError, match=rf"{path}: cannot start recording: "
+                                                 r"\[Errno 28\]"):
+            RecordWriter(path)
+        assert list(tmp_path.iterdir()) == []
+        monkeypatch.undo()
+        with RecordWriter(path) as w:  # the next start is not refused ("exists already")
+            w.write("map", make_map(1))
+        with RecordReader(path) as r:
+            assert len(list(r)) == 1
+
+    def test_a_rotation_on_a_full_disk_fails_without_an_empty_part(self, tmp_path, monkeypatch):
+        per_map, head = _map_record_size(), _header_size(tmp_path)
+        in_first = -(-(1024 - head) // per_map)  # maps written before the file reaches 1024
+        room = head + in_first * per_map + head - 1  # all but one byte of the next header
+        monkeypatch.setattr(recording, "open", _FullDisk(room).open, raising=False)
+        path = tmp_path / "run.brl"
+        w = RecordWriter(path, max_bytes=1024)
+        with pytest.raises(RecordingError, match=r"run\.0001\.brl: cannot start recording"):
+            for i in range(100):
+                w.write("map", make_map(i))
+        written = w.records
+        assert written == in_first
+        with pytest.raises(RecordingError, match="recording stopped"):
+            w.write("map", make_map(100))
+        w.close()
+        monkeypatch.undo()
+        assert sorted(p.name for p in tmp_path.iterdir()) == ["run.brl"]
+        assert [m.seq for _, m in read_recording(path)] == list(range(written))
+
+
+_FSIZE_SCRIPT = """
+import json, resource, signal, sys
+sys.path.insert(0, {tests!r})
+from protocol_helpers import make_map
+from brimline.daemon.errors import RecordingError
+from brimline.daemon.wire.recording import RecordWriter
+signal.signal(signal.SIGXFSZ, signal.SIG_IGN)   # write() then fails with EFBIG
+resource.setrlimit(resource.RLIMIT_FSIZE, ({limit}, resource.RLIM_INFINITY))
+out = {{"started": False, "written": 0, "errors": []}}
+try:
+    w = RecordWriter({path!r})
+    out["started"] = True
+    for i in range(10000):
+        try:
+            w.write("map", make_map(i))
+            out["written"] += 1
+        except RecordingError as exc:
+            out["errors"].append(str(exc))
+            if len(out["errors"]) == 2:
+                break
+    w.close()
+except RecordingError as exc:
+    out["errors"].append(str(exc))
+print(json.dumps(out))
+"""
+
+
+@pytest.mark.parametrize("limit", [200, 30000])
+def test_a_real_file_size_limit(tmp_path, limit, recording_log):
+    """A real kernel refusal: under RLIMIT_FSIZE with SIGXFSZ ignored, a write past the limit
+    fails with EFBIG (POSIX.1-2017 setrlimit(), RLIMIT_FSIZE; from memory). At 200 bytes the
+    header does not fit and no file is left; at 30000 bytes the writer fails once, refuses the
+    next write, closes without a traceback, and what it wrote reads back."""
+    pytest.importorskip("resource")
+    path = tmp_path / "rec" / "run.brl"
+    path.parent.mkdir()
+    script = _FSIZE_SCRIPT.format(tests=os.path.dirname(__file__), limit=limit, path=str(path))
+    proc = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          timeout=60)
+    assert proc.returncode == 0 and proc.stderr == "", proc.stderr
+    out = json.loads(proc.stdout)
+    if limit == 200:
+        assert not out["started"] and "cannot start recording" in out["errors"][0]
+        assert list(path.parent.iterdir()) == []
+        return
+    assert out["started"] and out["written"] > 0
+    assert "write failed after" in out["errors"][0] and "File too large" in out["errors"][0]
+    assert out["errors"][1].startswith("recording stopped: ")
+    with RecordReader(path) as r:
+        seqs = [m.seq for _, m in r]
+    assert seqs == list(range(out["written"]))  # a partial last record is a torn tail
+    assert path.stat().st_size <= limit

@@ -35,7 +35,8 @@ def _recording(path: Path, frames: int = 300, frame_s: float = 0.01) -> Path:
     return path
 
 
-def _config(tmp_path: Path, recording: Path, *, realtime: bool = False) -> Path:
+def _config(tmp_path: Path, recording: Path, *, realtime: bool = False, record: str | None = None,
+            state_path: str = "state.bin") -> Path:
     text = f"""
 driver:
   kind: replay
@@ -51,8 +52,10 @@ status:
   endpoint: tcp://127.0.0.1:0
   rate_hz: 10.0
 service:
-  state_path: state.bin
+  state_path: {state_path}
 """
+    if record is not None:
+        text += f"record:\n  path: {record}\n"
     p = tmp_path / "run.yaml"
     p.write_text(text)
     return p
@@ -168,3 +171,90 @@ def test_relative_paths_are_taken_from_the_config_folder(tmp_path):
     assert Path(cfg.driver.replay.path) == sub / "../rec/est.brlog"
     assert Path(cfg.record.path) == sub / "out.brlog"
     assert cfg.service.state_path == "/abs/state.bin"
+
+
+class TestCheckTriesThePaths:
+    """``--check`` tries the record and state paths a run would write, and leaves no file."""
+
+    def _check(self, cfg, capsys):
+        before = sorted(p.name for p in cfg.parent.rglob("*"))
+        code = main(["run", "--config", str(cfg), "--check"])
+        out, err = capsys.readouterr()
+        assert sorted(p.name for p in cfg.parent.rglob("*")) == before  # nothing left behind
+        return code, out.strip().splitlines(), err.strip().splitlines()
+
+    def test_writable_paths_pass(self, tmp_path, capsys):
+        cfg = _config(tmp_path, _recording(tmp_path / "est.brlog", frames=20), record="out.brlog")
+        code, out, err = self._check(cfg, capsys)
+        assert code == 0 and err == [] and len(out) == 1 and ": OK: driver replay" in out[0]
+
+    def test_an_existing_recording_would_be_refused(self, tmp_path, capsys):
+        rec = _recording(tmp_path / "est.brlog", frames=20)
+        cfg = _config(tmp_path, rec, record="est.brlog")
+        code, out, err = self._check(cfg, capsys)
+        assert code == 2 and out == []
+        assert err == [f"brimline run: error: record.path={rec}: {rec} exists already and a run "
+                       f"never overwrites a recording; move it or choose another path"]
+
+    def test_a_left_over_rotated_part_would_be_refused(self, tmp_path, capsys):
+        cfg = _config(tmp_path, _recording(tmp_path / "est.brlog", frames=20), record="out.brlog")
+        _recording(tmp_path / "out.0001.brlog", frames=5)
+        code, _out, err = self._check(cfg, capsys)
+        assert code == 2 and len(err) == 1
+        assert "record.path=" in err[0] and "out.0001.brlog exists already" in err[0]
+
+    def test_a_missing_record_folder(self, tmp_path, capsys):
+        cfg = _config(tmp_path, _recording(tmp_path / "est.brlog", frames=20),
+                      record="nowhere/out.brlog")
+        code, _out, err = self._check(cfg, capsys)
+        assert code == 2 and len(err) == 1
+        assert err[0].startswith("brimline run: error: record.path=")
+        assert err[0].endswith(f"folder {tmp_path / 'nowhere'} does not exist")
+
+    @pytest.mark.skipif(not hasattr(os, "geteuid") or os.geteuid() == 0,
+                        reason="root may write in a read-only folder")
+    def test_a_read_only_record_folder(self, tmp_path, capsys):
+        ro = tmp_path / "ro"
+        ro.mkdir()
+        ro.chmod(0o500)
+        try:
+            cfg = _config(tmp_path, _recording(tmp_path / "est.brlog", frames=20),
+                          record="ro/out.brlog")
+            code, _out, err = self._check(cfg, capsys)
+        finally:
+            ro.chmod(0o700)
+        assert code == 2 and len(err) == 1 and "cannot create a file in" in err[0]
+
+    def test_a_damaged_state_file(self, tmp_path, capsys):
+        (tmp_path / "state.bin").write_bytes(b"")  # what a full disk could leave
+        cfg = _config(tmp_path, _recording(tmp_path / "est.brlog", frames=20))
+        code, _out, err = self._check(cfg, capsys)
+        assert code == 2 and len(err) == 1
+        assert err[0] == (f"brimline run: error: service.state_path={tmp_path / 'state.bin'}: "
+                          f"{tmp_path / 'state.bin'}: not a brimline state file (bad magic)")
+
+    def test_a_saved_state_loads(self, tmp_path, capsys):
+        StateStore(tmp_path / "state.bin").save("0123456789abcdef", 41)
+        cfg = _config(tmp_path, _recording(tmp_path / "est.brlog", frames=20))
+        code, out, err = self._check(cfg, capsys)
+        assert code == 0 and err == [] and len(out) == 1
+
+    def test_every_problem_is_its_own_line(self, tmp_path, capsys):
+        rec = _recording(tmp_path / "est.brlog", frames=20)
+        cfg = _config(tmp_path, rec, record="est.brlog", state_path="gone/state.bin")
+        code, _out, err = self._check(cfg, capsys)
+        assert code == 2 and len(err) == 2
+        assert "record.path=" in err[0] and "service.state_path=" in err[1]
+        assert err[1].endswith(f"folder {tmp_path / 'gone'} does not exist")
+
+
+def test_a_torn_replay_tail_is_one_json_log_line(tmp_path, capsys):
+    """The reader's warning goes through logging, so ``--log-json`` formats it like any other."""
+    rec = _recording(tmp_path / "est.brlog", frames=40)
+    rec.write_bytes(rec.read_bytes()[:-9])
+    cfg = _config(tmp_path, rec)
+    assert main(["run", "--config", str(cfg), "--log-json", "--quiet", "--duration", "10"]) == 0
+    lines = [json.loads(x) for x in capsys.readouterr().err.strip().splitlines()]
+    torn = [x for x in lines if x["logger"] == "brimline.recording"]
+    assert len(torn) == 1 and torn[0]["level"] == "warning"
+    assert torn[0]["message"].startswith(f"{rec}: record 40 is torn (")

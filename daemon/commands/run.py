@@ -1,4 +1,11 @@
-"""``brimline run``: run the daemon from a config file (or only check the file)."""
+"""``brimline run``: run the daemon from a config file (or only check the file).
+
+``--check`` builds everything a run needs except sockets and a radio (:func:`check_summary`)
+and then tries the files a run writes (:func:`check_paths`): the recording must not exist yet
+(the writer never overwrites) and its folder must take a new file; the state file, when present,
+must load, and its folder must take a new file (state is saved by write-then-rename). The
+probes create and remove one hidden temporary file per folder and leave nothing behind.
+"""
 
 from __future__ import annotations
 
@@ -6,19 +13,24 @@ import argparse
 import datetime
 import json
 import logging
+import os
 import signal
 import sys
+import tempfile
 import threading
 import time
+from pathlib import Path
 
 from brimline.daemon.commands.cli import RF_CAUTION
-from brimline.daemon.errors import InputError
+from brimline.daemon.errors import InputError, StateError
 from brimline.daemon.runtime.config import Config, load_config
 from brimline.daemon.runtime.assemble import build_core, make_driver
 from brimline.daemon.runtime.service import Service
 from brimline.daemon.runtime.status import summary_line
+from brimline.daemon.wire.recording import recording_paths
+from brimline.daemon.wire.state import StateStore
 
-__all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "end_summary"]
+__all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "check_paths", "end_summary"]
 
 
 class JsonLogFormatter(logging.Formatter):
@@ -82,6 +94,61 @@ def check_summary(path: str, config: Config) -> str:
             f"fallback {fb.bits} bits after {fb.stale_after_s:g} s")
 
 
+def check_paths(config: Config) -> list[str]:
+    """Try the record and state paths of ``config`` as a run would use them.
+
+    Parameters
+    ----------
+    config : Config
+        A loaded config (relative paths already resolved against its folder).
+
+    Returns
+    -------
+    list of str
+        One line per problem, each naming the key and its value (``record.path=...``,
+        ``service.state_path=...``); empty when a run could write both.
+
+    Notes
+    -----
+    Writes at most one empty hidden file per folder and removes it at once. The check is a
+    snapshot: a disk can still fill up or a file appear between the check and the run.
+    """
+    problems = []
+    record = config.record.path
+    if record is not None:
+        existing = recording_paths(record)
+        if existing:
+            problems.append(f"record.path={record}: {existing[0]} exists already and a run "
+                            f"never overwrites a recording; move it or choose another path")
+        else:
+            why = _cannot_create_in(Path(record).parent)
+            if why is not None:
+                problems.append(f"record.path={record}: {why}")
+    state = config.service.state_path
+    if state is not None:
+        try:
+            StateStore(state).load()
+        except StateError as exc:
+            problems.append(f"service.state_path={state}: {exc}")
+        why = _cannot_create_in(Path(state).parent)
+        if why is not None:
+            problems.append(f"service.state_path={state}: {why}")
+    return problems
+
+
+def _cannot_create_in(folder: Path) -> str | None:
+    """Why a new file cannot be created in ``folder`` (tried with a probe), or None."""
+    if not folder.is_dir():
+        return f"folder {folder} does not exist"
+    try:
+        fd, probe = tempfile.mkstemp(dir=folder, prefix=".brimline-check-")
+    except OSError as exc:
+        return f"cannot create a file in {folder}: {exc.strerror or exc}"
+    os.close(fd)
+    os.unlink(probe)
+    return None
+
+
 def end_summary(status: dict) -> str:
     """The lines printed when a run ends: frames, rejections, maps by kind, final figures."""
     fr = status.get("frames", {})
@@ -116,7 +183,13 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"--duration={args.duration} must be a positive number of seconds")
     config = load_config(args.config)
     if args.check:
-        print(check_summary(args.config, config))
+        line = check_summary(args.config, config)
+        problems = check_paths(config)
+        for problem in problems:  # each on its own line, as the CLI prints a BrimlineError
+            print(f"brimline run: error: {problem}", file=sys.stderr)
+        if problems:
+            return 2
+        print(line)
         return 0
 
     handler = _setup_logging(args.log_json, args.quiet)

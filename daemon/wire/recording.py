@@ -9,20 +9,35 @@ File layout (all integers little-endian)::
 Each record is one :func:`brimline.daemon.wire.codec.encode` message (``[topic, header, parts]``).
 The writer flushes after every record, so a crash of the process loses at most the record being
 written (with ``fsync=True``, also a crash of the machine). The reader stops cleanly at a torn
-last record (short, or failing its CRC at the very end of the file), counts it and warns; a bad
+last record (short, or failing its CRC at the very end of the file), counts it
+(:attr:`RecordReader.torn`) and logs one warning on the ``brimline.recording`` logger; a bad
 record with more data after it is corruption and raises
 :class:`~brimline.daemon.errors.RecordingError` naming the file and record number.
 
 The first record of a file written by :class:`RecordWriter` is a ``meta`` dict (format, software
-version, creation time, and whatever the caller adds).
+version, creation time, part number, and whatever the caller adds).
+
+A recording may be a set of files: with ``max_bytes`` the writer continues in ``NAME.0001.EXT``,
+``NAME.0002.EXT``, ... (:func:`recording_paths` lists them). :class:`RecordSetReader` and
+:func:`read_recording` read the whole set in order; a gap in the numbering is an error.
+
+Writing never leaves a file that blocks the next start: a file appears under its name only once
+its magic and meta record are on disk (they are written to a temporary name in the same folder,
+then linked in place). After a write error (disk full, device gone) the writer is *failed*: the
+error is raised once as :class:`~brimline.daemon.errors.RecordingError`, later writes raise
+``RecordingError`` at once without touching the file, and :meth:`RecordWriter.close` only
+releases the handle (it never raises a raw ``OSError``).
 """
 
 from __future__ import annotations
 
 import datetime
+import errno
+import logging
 import os
+import re
 import struct
-import warnings
+import uuid
 import zlib
 from pathlib import Path
 from typing import Any, BinaryIO, Iterable, Iterator, Sequence
@@ -31,8 +46,8 @@ from brimline.daemon import __version__
 from brimline.daemon.errors import ProtocolError, RecordingError
 from brimline.daemon.wire import codec
 
-__all__ = ["MAGIC", "unpack_record", "RecordWriter", "RecordReader", "TornRecordWarning", "TOPIC_META",
-           "pack_record", "recording_paths", "read_recording"]
+__all__ = ["MAGIC", "TOPIC_META", "pack_record", "unpack_record", "RecordWriter", "RecordReader",
+           "RecordSetReader", "recording_paths", "read_recording"]
 
 MAGIC = b"BRIMLOG\x01"
 TOPIC_META = "meta"
@@ -40,10 +55,10 @@ _HEAD = struct.Struct("<II")
 _U16 = struct.Struct("<H")
 _U32 = struct.Struct("<I")
 _MAX_BODY = 1 << 28  # 256 MiB: anything larger is a corrupt length, not a record
+# Errors of os.link that mean "this file system has no hard links", not "cannot write here".
+_NO_LINKS = {errno.EPERM, errno.ENOTSUP, errno.EOPNOTSUPP, errno.ENOSYS, errno.EXDEV}
 
-
-class TornRecordWarning(UserWarning):
-    """The last record of a recording was cut short (a crash while writing it)."""
+log = logging.getLogger("brimline.recording")
 
 
 def pack_record(frames: Sequence[Any]) -> bytes:
@@ -99,7 +114,11 @@ def _unpack_body(body: bytes) -> list[bytes] | None:
 
 
 def recording_paths(path: str | Path) -> list[Path]:
-    """``path`` followed by its rotated continuations (``NAME.0001.EXT``, ...) that exist."""
+    """``path`` followed by its rotated continuations (``NAME.0001.EXT``, ...) that exist.
+
+    The list stops at the first missing number; :class:`RecordSetReader` treats parts beyond
+    such a gap as an error.
+    """
     p = Path(path)
     out = [p] if p.exists() else []
     i = 1
@@ -118,18 +137,84 @@ def read_recording(path: str | Path, *,
     Raises
     ------
     RecordingError
-        When ``path`` does not exist, or as :class:`RecordReader` does.
+        As :class:`RecordSetReader` does (missing first file, a gap in the parts, damage).
     """
-    paths = recording_paths(path)
-    if not paths:
-        raise RecordingError(f"{path}: no such recording")
-    for p in paths:
-        with RecordReader(p, topics=topics) as reader:
-            yield from reader
+    with RecordSetReader(path, topics=topics) as reader:
+        yield from reader
 
 
 def _rotated(path: Path, index: int) -> Path:
     return path.with_name(f"{path.stem}.{index:04d}{path.suffix}")
+
+
+def _part_numbers(path: Path) -> list[int]:
+    """Numbers of the files ``NAME.NNNN.EXT`` next to ``path``, sorted (gaps included)."""
+    pattern = re.compile(re.escape(path.stem) + r"\.(\d{4})" + re.escape(path.suffix) + "$")
+    try:
+        names = os.listdir(path.parent)
+    except OSError:
+        return []
+    return sorted(int(m.group(1)) for m in map(pattern.match, names) if m and int(m.group(1)))
+
+
+def _set_paths(path: Path) -> list[Path]:
+    """The files of the recording ``path``, checked for a missing first file or a gap."""
+    paths = recording_paths(path)
+    if not path.exists():
+        raise RecordingError(f"{path}: no such recording")
+    numbers = _part_numbers(path)
+    if numbers and numbers[-1] > len(paths) - 1:
+        missing = len(paths)
+        raise RecordingError(f"{path}: part {missing} ({_rotated(path, missing).name}) is "
+                             f"missing but part {numbers[-1]} exists; the set is incomplete")
+    return paths
+
+
+def _link_new(source: Path, target: Path) -> bool:
+    """Give ``source`` the name ``target`` unless it exists; True when ``source`` remains.
+
+    A hard link fails atomically on an existing target. On a file system without hard links the
+    rename that replaces it is checked first, which leaves a short race with another writer.
+    """
+    try:
+        os.link(source, target)
+        return True
+    except FileExistsError:
+        raise
+    except OSError as exc:
+        if exc.errno not in _NO_LINKS:
+            raise
+    if os.path.lexists(target):
+        raise FileExistsError(errno.EEXIST, "File exists", str(target))
+    os.rename(source, target)
+    return False
+
+
+def _fsync_directory(folder: Path) -> None:
+    """fsync a directory so a new name in it survives a machine crash (POSIX only)."""
+    if os.name != "posix":
+        return
+    fd = os.open(folder, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _unlink_quietly(path: Path) -> None:
+    try:
+        os.unlink(path)
+    except OSError as exc:
+        log.debug("%s: could not remove: %s", path, exc)
+
+
+def _close_quietly(f: BinaryIO) -> OSError | None:
+    """Close ``f``; the OSError of its last flush, if any, is returned, not raised."""
+    try:
+        f.close()
+    except OSError as exc:
+        return exc
+    return None
 
 
 class RecordWriter:
@@ -149,10 +234,26 @@ class RecordWriter:
     meta : dict or None
         Extra keys for the leading ``meta`` record (scenario, config, plan id, ...).
 
+    Attributes
+    ----------
+    records : int
+        Records written (meta records not counted).
+    skipped : int
+        Records not written because their topic is off.
+    error : RecordingError or None
+        The write failure that stopped this recording (see :attr:`failed`).
+
     Raises
     ------
     RecordingError
-        When the file exists or cannot be created; names the path.
+        When the file exists or cannot be created, or its first bytes cannot be written (then
+        no file is left under ``path``); names the path.
+
+    Notes
+    -----
+    The magic and the meta record of each file are written to a temporary name in the same
+    folder and linked to the final name only once they are on disk, so a full disk at start
+    leaves nothing that would block the next start.
     """
 
     def __init__(self, path: str | Path, *, topics: Iterable[str] | None = None,
@@ -170,6 +271,7 @@ class RecordWriter:
         self._size = 0
         self.records = 0
         self.skipped = 0
+        self.error: RecordingError | None = None
         self._closed = False
         self._open(self.path)
 
@@ -178,38 +280,89 @@ class RecordWriter:
         """The file being written now (differs from ``path`` after a rotation)."""
         return self.path if self._index == 0 else _rotated(self.path, self._index)
 
+    @property
+    def failed(self) -> bool:
+        """True once a write failed; the recording is then stopped for good."""
+        return self.error is not None
+
     def _open(self, path: Path) -> None:
-        try:
-            f = open(path, "xb")
-        except FileExistsError:
-            raise RecordingError(f"{path}: exists already; recordings are never "
-                                 f"overwritten") from None
-        except OSError as exc:
-            raise RecordingError(f"{path}: cannot create recording: {exc}") from exc
-        self._file = f
-        self._size = 0
-        self._put(MAGIC)
+        exists = RecordingError(f"{path}: exists already; recordings are never overwritten")
+        if os.path.lexists(path):
+            raise exists
         meta = {"format": "brimline record log", "version": 1, "brimline": __version__,
                 "created_utc": datetime.datetime.now(datetime.timezone.utc).isoformat(),
                 "part": self._index, **self._meta}
-        self._put(pack_record(codec.encode(TOPIC_META, meta)))
+        head = MAGIC + pack_record(codec.encode(TOPIC_META, meta))
+        temp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:8]}.part")
+        try:
+            f = open(temp, "xb")
+        except OSError as exc:
+            raise RecordingError(f"{path}: cannot start recording: {exc}") from exc
+        placed = False  # True once the file has its final name
+        try:
+            f.write(head)
+            f.flush()
+            if self.fsync:
+                os.fsync(f.fileno())
+            temp_remains = _link_new(temp, path)
+            placed = True
+            if self.fsync:
+                _fsync_directory(path.parent)
+        except OSError as exc:
+            _close_quietly(f)
+            if placed:
+                _unlink_quietly(path)
+            if not placed or temp_remains:
+                _unlink_quietly(temp)
+            if isinstance(exc, FileExistsError):
+                raise exists from None
+            raise RecordingError(f"{path}: cannot start recording: {exc}") from exc
+        if temp_remains:
+            _unlink_quietly(temp)
+        self._file = f
+        self._size = len(head)
 
     def _put(self, data: bytes) -> None:
+        if self.error is not None:
+            raise RecordingError(f"recording stopped: {self.error}")
         try:
             self._file.write(data)
             self._file.flush()
             if self.fsync:
                 os.fsync(self._file.fileno())
         except OSError as exc:
-            raise RecordingError(f"{self.current_path}: write failed: {exc}") from exc
+            self._fail(f"write failed after {self.records} records: {exc}", exc)
         self._size += len(data)
+
+    def _fail(self, what: str, exc: OSError | RecordingError) -> None:
+        """Mark the recording failed, release the file, raise the error (once)."""
+        if isinstance(exc, RecordingError):
+            self.error = exc
+        else:
+            self.error = RecordingError(f"{self.current_path}: {what}")
+        if self._file is not None:
+            f, self._file = self._file, None
+            late = _close_quietly(f)
+            if late is not None:
+                log.debug("%s: closing after the failure: %s", self.current_path, late)
+        if exc is self.error:
+            raise self.error
+        raise self.error from exc
 
     def wants(self, topic: str) -> bool:
         """True when ``topic`` is recorded."""
         return self.topics is None or topic in self.topics
 
     def write(self, topic: str, record: Any) -> bool:
-        """Encode and append ``record`` on ``topic``; False (counted) when the topic is off."""
+        """Encode and append ``record`` on ``topic``; False (counted) when the topic is off.
+
+        Raises
+        ------
+        RecordingError
+            When the write fails (disk full, device gone), and for every write after that.
+        RuntimeError
+            After :meth:`close`.
+        """
         if not self.wants(topic):
             self._check_open()
             self.skipped += 1
@@ -217,39 +370,64 @@ class RecordWriter:
         return self.write_frames(codec.encode(topic, record))
 
     def write_frames(self, frames: Sequence[Any]) -> bool:
-        """Append an already encoded message (e.g. what ``MapPublisher.publish`` returned)."""
+        """Append an already encoded message (e.g. what ``MapPublisher.publish`` returned).
+
+        Raises as :meth:`write` does.
+        """
         self._check_open()
         topic = bytes(codec.byte_view(frames[0])).decode("ascii", "replace")
         if not self.wants(topic):
             self.skipped += 1
             return False
-        if self.max_bytes is not None and self._size >= self.max_bytes:
+        if self.error is None and self.max_bytes is not None and self._size >= self.max_bytes:
             self._rotate()
         self._put(pack_record(frames))
         self.records += 1
         return True
 
     def _rotate(self) -> None:
-        self._file.close()
+        f, self._file = self._file, None
+        late = _close_quietly(f)
+        if late is not None:
+            self._fail(f"write failed after {self.records} records: {late}", late)
         self._index += 1
-        self._open(_rotated(self.path, self._index))
+        try:
+            self._open(_rotated(self.path, self._index))
+        except RecordingError as exc:
+            self._fail("", exc)
 
     def _check_open(self) -> None:
         if self._closed:
             raise RuntimeError(f"RecordWriter for {self.path} is closed")
 
     def close(self) -> None:
-        """Flush and close the file. Idempotent."""
+        """Flush and close the file. Idempotent.
+
+        Raises
+        ------
+        RecordingError
+            When the final flush or close fails and no failure was reported before (once; a
+            failed writer's ``close`` only releases the file). Never a raw ``OSError``.
+        """
         if self._closed:
             return
         self._closed = True
-        if self._file is not None:
-            try:
-                self._file.flush()
-                if self.fsync:
-                    os.fsync(self._file.fileno())
-            finally:
-                self._file.close()
+        if self._file is None:
+            return
+        f, self._file = self._file, None
+        err = None
+        try:
+            f.flush()
+            if self.fsync:
+                os.fsync(f.fileno())
+        except OSError as exc:
+            err = exc
+        late = _close_quietly(f)
+        err = err or late
+        if err is not None:
+            self.error = RecordingError(f"{self.current_path}: closing failed after "
+                                        f"{self.records} records: {err}")
+            raise self.error from err
 
     def __enter__(self):
         return self
@@ -275,7 +453,8 @@ class RecordReader:
     records : int
         Records read so far (the meta record is record 0).
     torn : int
-        1 when the file ended in a torn record (after iteration reached it), else 0.
+        1 when the file ended in a torn record (after iteration reached it), else 0. The torn
+        record is also logged once as a warning on the ``brimline.recording`` logger.
 
     Raises
     ------
@@ -341,8 +520,7 @@ class RecordReader:
 
     def _torn(self, number: int, what: str) -> None:
         self.torn = 1
-        warnings.warn(f"{self.path}: record {number} is torn ({what}); stopped there",
-                      TornRecordWarning, stacklevel=3)
+        log.warning("%s: record %d is torn (%s); stopped there", self.path, number, what)
         return None
 
     def _decode(self, frames: list[bytes]) -> tuple[str, Any]:
@@ -381,6 +559,81 @@ class RecordReader:
         if not self._closed:
             self._closed = True
             self._file.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+class RecordSetReader:
+    """Reads a recording and its rotated continuations as one stream of ``(topic, record)``.
+
+    Parameters
+    ----------
+    path : str or Path
+        The first file of the recording (``NAME.EXT``); ``NAME.0001.EXT``, ... follow it.
+    topics : iterable of str or None
+        Yield only these topics (``meta`` records are never yielded).
+
+    Attributes
+    ----------
+    paths : list of Path
+        The files of the set, in order (listed at open).
+    meta : dict
+        The ``meta`` record of the first file.
+    records : int
+        Records read so far over all files (each file's meta record included).
+    torn : int
+        Files whose last record was torn, so far (each is logged as :class:`RecordReader` does).
+
+    Raises
+    ------
+    RecordingError
+        At open: the first file is missing, a part is missing before a later one, or the first
+        file is not a recording. While iterating: as :class:`RecordReader` does, for any file.
+
+    Notes
+    -----
+    Each iteration walks the whole set from its first file again; the counters add up.
+    """
+
+    def __init__(self, path: str | Path, *, topics: Iterable[str] | None = None) -> None:
+        self.path = Path(path)
+        self.topics = None if topics is None else frozenset(topics)
+        self.paths = _set_paths(self.path)
+        self.records = 0
+        self.torn = 0
+        self._closed = False
+        self._reader: RecordReader | None = RecordReader(self.paths[0], topics=self.topics)
+        self.meta = self._reader.meta
+
+    def __iter__(self) -> Iterator[tuple[str, Any]]:
+        self._check_open()
+        for p in self.paths:
+            if self._reader is None:
+                self._reader = RecordReader(p, topics=self.topics)
+            reader = self._reader
+            try:
+                yield from reader
+            finally:
+                self.records += reader.records
+                self.torn += reader.torn
+                reader.close()
+                self._reader = None
+
+    def _check_open(self) -> None:
+        if self._closed:
+            raise RuntimeError(f"RecordSetReader for {self.path} is closed")
+
+    def close(self) -> None:
+        """Close the file being read. Idempotent."""
+        if not self._closed:
+            self._closed = True
+            if self._reader is not None:
+                self._reader.close()
+                self._reader = None
 
     def __enter__(self):
         return self

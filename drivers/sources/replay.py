@@ -1,12 +1,14 @@
 """Replay of a recorded estimate log as a driver.
 
-The log is the protocol's crash-safe recording (:mod:`brimline.daemon.wire.recording`); only its
-estimate records are replayed, with their recorded ``time_s`` and ``frame``. Since the service
+The log is the protocol's crash-safe recording (:mod:`brimline.daemon.wire.recording`): the named
+file and its rotated continuations (``NAME.0001.EXT``, ...), played in order as one stream. Only
+its estimate records are replayed, with their recorded ``time_s`` and ``frame``. Since the service
 feeds the estimates' own time to the core for this source, a replay makes the same decisions
 however fast it runs: replaying a file twice gives the same maps.
 
-A torn tail (the recorder was killed mid-record) or a damaged record is counted under
-``counters["torn"]`` / ``counters["damaged"]``, never raised.
+A torn tail (the recorder was killed mid-record; counted per file, and logged by the reader) or a
+damaged record is counted under ``counters["torn"]`` / ``counters["damaged"]``, never raised. A
+damaged record ends the pass (what came before it was replayed).
 """
 
 from __future__ import annotations
@@ -19,7 +21,7 @@ from typing import Callable, Iterator
 from brimline.daemon.errors import RecordingError, SourceError
 from brimline.daemon.records import Estimate
 from brimline.daemon.wire.codec import TOPIC_ESTIMATE
-from brimline.daemon.wire.recording import RecordReader
+from brimline.daemon.wire.recording import RecordSetReader
 from brimline.drivers.sources.base import Driver
 
 __all__ = ["ReplayDriver"]
@@ -31,7 +33,8 @@ class ReplayDriver(Driver):
     Parameters
     ----------
     path : str or Path
-        Estimate recording written by :class:`brimline.daemon.wire.recording.RecordWriter`.
+        Estimate recording written by :class:`brimline.daemon.wire.recording.RecordWriter` (its
+        first file; rotated continuations follow it).
     realtime : bool
         Pace the frames by their recorded ``time_s`` (divided by ``speed``); otherwise as fast as
         the consumer takes them.
@@ -47,7 +50,7 @@ class ReplayDriver(Driver):
     Raises
     ------
     SourceError
-        When the file is missing or is not a recording.
+        When the file is missing or is not a recording, or a part of the set is missing.
     """
 
     name = "replay"
@@ -74,7 +77,7 @@ class ReplayDriver(Driver):
             raise SourceError(f"replay: {exc}") from exc
 
     def _read_pass(self) -> Iterator[Estimate]:
-        """One pass over the file's estimates; damage is counted, never raised."""
+        """One pass over the estimates of every file of the set; damage is counted, not raised."""
         reader = None
         try:
             reader = _open_reader(self.path)
@@ -132,5 +135,5 @@ def _shifted(est: Estimate, t_offset: float, f_offset: int) -> Estimate:
     return dataclasses.replace(est, time_s=est.time_s + t_offset, frame=est.frame + f_offset)
 
 
-def _open_reader(path: Path):
-    return RecordReader(path, topics=[TOPIC_ESTIMATE])
+def _open_reader(path: Path) -> RecordSetReader:
+    return RecordSetReader(path, topics=[TOPIC_ESTIMATE])
