@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import dataclasses
 import shutil
 import time
 
@@ -13,7 +12,12 @@ from _service_fakes import ScriptedDriver, loopback_config
 from brimline.daemon.errors import SourceError
 from brimline.daemon.runtime.service import Service
 from brimline.daemon.wire import codec
-from brimline.daemon.wire.recording import RecordReader, RecordWriter, recording_paths
+from brimline.daemon.wire.recording import (
+    RecordReader,
+    RecordWriter,
+    recording_epoch,
+    recording_paths,
+)
 from brimline.drivers.sources.replay import ReplayDriver
 
 
@@ -176,9 +180,9 @@ def test_replaying_twice_gives_the_same_maps_byte_for_byte(tmp_path):
     assert a == b
 
 
-def test_without_saved_state_replays_differ_only_in_the_epoch_id(tmp_path):
+def test_without_saved_state_replays_are_identical_epoch_included(tmp_path):
     """What the README promises for a replay with no ``service.state_path``: the same maps byte
-    for byte once the epoch id (new for every run) is set aside."""
+    for byte, epoch id included (it names the recording)."""
     recording = tmp_path / "est.brlog"
     _record(recording, frames=300, fades=[(1.0, 20, 70, 14.0)], gaps=[(2.0, 2.8)])
     runs = []
@@ -193,9 +197,8 @@ def test_without_saved_state_replays_differ_only_in_the_epoch_id(tmp_path):
             runs.append([m for _, m in r])
     a, b = runs
     assert len(a) >= 3 and len(a) == len(b)
-    assert {m.epoch for m in a} != {m.epoch for m in b}
-    same_epoch = [dataclasses.replace(m, epoch=a[0].epoch) for m in b]
-    assert [_bytes(m) for m in a] == [_bytes(m) for m in same_epoch]
+    assert {m.epoch for m in a} == {recording_epoch(recording)}
+    assert [_bytes(m) for m in a] == [_bytes(m) for m in b]
 
 
 def _bytes(m):

@@ -17,6 +17,7 @@ from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
 from brimline.daemon.records import LoadMap
 from brimline.daemon.runtime.assemble import open_recorder, open_state
 from brimline.daemon.runtime.config import Config
+from brimline.daemon.wire.recording import recording_epoch
 from brimline.daemon.wire.state import new_epoch
 
 __all__ = ["Outlets"]
@@ -44,6 +45,7 @@ class Outlets:
 
     def __init__(self, config: Config, context: zmq.Context, plan) -> None:
         self._plan = plan
+        self._config = config
         self.maps = None
         self.status = None
         self.state = None
@@ -65,7 +67,7 @@ class Outlets:
 
     def _restore(self) -> tuple[str, int, LoadMap | None]:
         if self.state is None:
-            return new_epoch(), 0, None
+            return self._fresh_epoch(), 0, None
         epoch, next_seq, m = self.state.restore()
         if m is not None and m.plan_id != self._plan.plan_id:
             # Same epoch and sequence continue, but a map for another tone plan is not served.
@@ -73,6 +75,17 @@ class Outlets:
                         m.plan_id, self._plan.plan_id)
             m = None
         return epoch, next_seq, m
+
+    def _fresh_epoch(self) -> str:
+        """A replay without saved state takes its recording's epoch (the same maps, byte for
+        byte, on every replay); anything else a new random one."""
+        driver = self._config.driver
+        if driver.kind == "replay":
+            try:
+                return recording_epoch(driver.replay.path)
+            except RecordingError:
+                pass  # the replay driver reports the unreadable recording itself
+        return new_epoch()
 
     def reserve(self, seq: int) -> None:
         """Make ``seq`` publishable (a durable seq ceiling covers it). Raises StateError."""

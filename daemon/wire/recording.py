@@ -33,6 +33,8 @@ from __future__ import annotations
 
 import datetime
 import errno
+import hashlib
+import json
 import logging
 import os
 import re
@@ -46,7 +48,7 @@ from brimline.daemon import __version__
 from brimline.daemon.errors import ProtocolError, RecordingError
 from brimline.daemon.wire import codec
 
-__all__ = ["MAGIC", "TOPIC_META", "pack_record", "unpack_record", "RecordWriter", "RecordReader",
+__all__ = ["MAGIC", "recording_epoch", "TOPIC_META", "pack_record", "unpack_record", "RecordWriter", "RecordReader",
            "RecordSetReader", "recording_paths", "read_recording"]
 
 MAGIC = b"BRIMLOG\x01"
@@ -141,6 +143,24 @@ def read_recording(path: str | Path, *,
     """
     with RecordSetReader(path, topics=topics) as reader:
         yield from reader
+
+
+def recording_epoch(path: str | Path) -> str:
+    """An epoch id that names a recording: 16 hex digits of SHA-256 over its first file's
+    ``meta`` record (written once, when the recording was started).
+
+    A replay with no saved state publishes under this epoch, so two replays of one recording
+    give the same maps byte for byte, epoch included.
+
+    Raises
+    ------
+    RecordingError
+        When the recording cannot be read.
+    """
+    with RecordSetReader(path) as reader:
+        meta = reader.meta
+    text = json.dumps(meta, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
 def _rotated(path: Path, index: int) -> Path:
