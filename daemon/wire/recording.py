@@ -14,7 +14,8 @@ record with more data after it is corruption and raises
 :class:`~brimline.daemon.errors.RecordingError` naming the file and record number.
 
 The first record of a file written by :class:`RecordWriter` is a ``meta`` dict (format, software
-version, creation time, and whatever the caller adds).
+version, creation time, and whatever the caller adds). With ``max_bytes`` a recording continues
+in ``NAME.0001.EXT``, ``NAME.0002.EXT``, ...; :func:`recording_paths` lists the files in order.
 """
 
 from __future__ import annotations
