@@ -18,7 +18,7 @@ from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
 from brimline.daemon.records import LoadMap
 from brimline.daemon.wire import codec
 
-DEVELOPERS = Path(__file__).resolve().parents[1] / "DEVELOPERS.md"
+README = Path(__file__).resolve().parents[1] / "README.md"
 
 
 @pytest.fixture
@@ -330,10 +330,10 @@ class TestCurve:
         assert "never overwritten" in capsys.readouterr().err
 
 
-def test_plain_pyzmq_snippet_in_developers_md(pub):
-    """The README/DEVELOPERS.md decoder runs as written (only the endpoints are swapped for the
-    test's free ports) against a MapPublisher."""
-    text = DEVELOPERS.read_text()
+def test_plain_pyzmq_snippet_in_readme(pub):
+    """The README's decoder runs as written (only the endpoints are swapped for the test's free
+    ports) against a MapPublisher."""
+    text = README.read_text()
     code = re.search(r"<!-- snippet: plain-decoder -->\n```python\n(.*?)```", text, re.S).group(1)
     code = code.replace("tcp://127.0.0.1:7341", pub.map_endpoint)
     code = code.replace("tcp://127.0.0.1:7342", pub.snapshot_endpoint)
@@ -406,11 +406,3 @@ class TestSections:
         from brimline.daemon.runtime.config import StatusSection, parse_section
         with pytest.raises(ConfigError, match=match):
             parse_section(StatusSection, data, where="demo.yaml", name="status")
-
-
-def test_readme_carries_the_same_decoder():
-    """The README's decoder is the tested one in DEVELOPERS.md, character for character."""
-    pattern = r"<!-- snippet: plain-decoder -->\n```python\n(.*?)```"
-    readme = (DEVELOPERS.parent / "README.md").read_text()
-    assert (re.search(pattern, readme, re.S).group(1)
-            == re.search(pattern, DEVELOPERS.read_text(), re.S).group(1))

@@ -40,6 +40,13 @@ link is failing and up slowly, only for a clear gain; the downshift persistence
 ``down_persist_s`` is the time a margin must stay below the downshift margin there, too. No two
 maps are closer than ``1 / max_maps_per_s``.
 
+Why persistence: a narrowband interferer makes per-frame estimate errors heavier-tailed and
+correlated across neighbouring tones, so a tone whose margin sits near the downshift margin dips
+below it for a frame or two now and then; without persistence each dip was a bit swap. A few
+frame times filter those dips, while a real drop waits at most ``down_persist_s`` and a deep one
+not at all. Spells where the per-frame estimates alternate between two states stay beyond any
+persistence of a few frames.
+
 Every map published here satisfies the loader's constraints: power within the budget, every tone
 within the ceiling, bits from the allowed set (reloads come from the loader; bit swaps only move
 a tone between allowed levels at its required power and check the totals).

@@ -65,7 +65,8 @@ Why these choices:
   slope and the slope's variance are propagated together (Joseph form for the fixed gains), and
   the innovation variance is corrected by ``var / (var + predicted variance)``, which for the
   plain smoother in steady state is the ``(2 - alpha) / 2`` above. The gate is
-  ``max(outlier_db, outlier_sigmas * sqrt(var + predicted variance))``.
+  ``max(outlier_db, outlier_sigmas * sqrt(var + predicted variance))``. It is off by default:
+  with it, the estimation noise of a static channel moves the slope and the maps churn.
 
 Frames that cannot be used are dropped and counted by reason (see :data:`REJECT_REASONS`); the
 state stays as it was.

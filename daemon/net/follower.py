@@ -8,6 +8,10 @@ A jump in ``seq`` (a lost update) or a heartbeat announcing a newer ``seq`` than
 triggers a new snapshot; no heartbeat within ``heartbeat_timeout_s`` makes :meth:`Follower.stale`
 true (the publisher is presumed dead; the transmitter decides what to do, e.g. a safe map).
 
+Within an epoch ``seq`` only grows: an older or equal ``seq`` is dropped, and a refused map still
+uses up its ``seq``; a map of a new epoch (the daemon started afresh) starts a new order, while a
+refused map of another epoch changes nothing.
+
 Time comes from an injectable clock (default :func:`time.monotonic`), so tests need no sleeps.
 """
 

@@ -7,6 +7,12 @@ exactly ``J0(2 pi f_D tau)``). Fractional tap delays become windowed-sinc interp
 the sample grid; the true per-tone response is that of the filters actually applied, so tests can
 compare the receiver's estimates against it.
 
+A frame passes, in order: band fades (symbol by symbol, in the frequency domain), the tapped
+delay line (gains at symbol boundaries, linear in between), the slow gain drift, the frequency
+offset, a random lead of noise-only samples (timing offset), the narrowband interferer (switched
+sample by sample in channel time) and AWGN. :meth:`LinkChannel.truth` is the fast path for tests:
+the exact per-tone response of the filters applied, noise plus interference, and SNR.
+
 All randomness comes from the numpy Generator passed in; the same seed gives the same samples.
 Scaling follows the link model's unitary convention: noise of variance ``10**(-snr_db/10)`` per
 complex sample gives a per-tone SNR of ``snr_db`` for a unit-power tone on a unit channel.

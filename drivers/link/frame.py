@@ -11,8 +11,10 @@ The frame (all symbols carry a cyclic prefix of ``cp_len`` samples)::
 * **train**: ``T >= 2`` identical BPSK symbols on every used tone (data and pilot tones). They
   give a full-band least-squares channel estimate, a noise estimate from their differences and a
   fine frequency estimate from their phase advance.
-* **header**: BPSK on every used tone: 64 bits (map sequence number, frame counter, CRC-16)
-  repeated across the band, interleaved so each bit's copies lie far apart in frequency.
+* **header**: BPSK on every used tone: 64 bits (map sequence number, 32 bits, ``0xFFFFFFFF`` for
+  the default map; frame counter, 16 bits; CRC-16, polynomial 0x1021, initial 0xFFFF, over those
+  six bytes) repeated across the band, bit ``j`` of copy ``r`` on used tone ``64 r + j``, so each
+  bit's copies lie far apart in frequency, and scrambled by a fixed BPSK pattern.
 * **data**: the data tones carry Gray-mapped QAM per the load map (0 bits = tone off), scaled by
   ``sqrt(power_lin)``; the pilot tones carry known BPSK for common-phase tracking.
 
@@ -20,6 +22,9 @@ Every pseudo-random pattern comes from one PRBS15 stream (x^15 + x^14 + 1), so a
 by the plan alone. Scaling: the transmitter's IFFT is unitary, so a unit-power tone has power 1 in
 the receiver's unitary FFT and additive noise of variance ``s2`` per complex sample gives a
 per-tone SNR of ``1 / s2`` on a unit channel.
+
+A plan's ``plan_id`` hashes the tone plan only (FFT size, prefix, sample rate, data and pilot
+tones), not the frame layout, so maps stay valid when the training or data symbol count changes.
 """
 
 from __future__ import annotations

@@ -18,10 +18,15 @@ One call of :meth:`Receiver.receive` turns a block of complex baseband samples i
    error of the step itself, which a strong interferer can bias).
 4. **Channel and noise**: data-aided least squares per tone over every symbol whose tone values
    are known: the training symbols, the header (after its CRC passes) and the data symbols (hard
-   decisions, two passes), ``H = sum(conj(X) Y) / sum(|X|^2)``; the residual ``S = sum|Y - H X|^2``
-   over ``N`` symbols gives ``noise_var = S / (N - 2)``, so that ``|H|^2 / noise_var`` is unbiased
-   for the linear SNR (``E[1/S] = 1 / ((N - 2) sigma^2)`` for ``S ~ sigma^2 Gamma(N - 1)``), up to
-   the ``+1/N`` term of the estimate's own noise in ``|H|^2``. Wrong decisions make the
+   decisions made with the training channel). With the map known the channel is fitted as linear
+   in time (``h0 + slope * n``, reported at the tone's energy centroid); the residual
+   ``S = sum|Y - H X|^2`` over ``N`` symbols gives ``noise_var = S / (N - 3)`` (a constant fit over
+   training and header when the map is unknown: ``S / (N - 2)``), so that ``|H|^2 / noise_var`` is
+   unbiased for the linear SNR (``E[1/S] = 1 / ((N - p - 1) sigma^2)`` for
+   ``S ~ sigma^2 Gamma(N - p)`` with ``p`` fitted parameters), up to the ``+1/N`` term of the
+   estimate's own noise in ``|H|^2``. Demodulated data are decided again with the leave-one-out
+   channel (the fit without that symbol), so a symbol's own decision cannot pull the channel it
+   is decided with. Wrong decisions make the
    residual small, so a tone whose known-symbol SNR (training and header, noise pooled over
    neighbouring tones) is below what its constellation needs for a symbol error rate of
    ``DECISION_SER`` keeps that known-symbol estimate instead (one per-tone mask). Off tones
@@ -29,7 +34,16 @@ One call of :meth:`Receiver.receive` turns a block of complex baseband samples i
    interferer hits stay out of the other tones' noise pools.
 
 Bad input never raises: a block without a frame, a truncated frame or a header failing its CRC
-comes back as an RxFrame with ``reason`` set.
+comes back as an RxFrame with ``reason`` set. After a failed CRC the estimate comes from the
+training symbols alone with the noise pooled over neighbouring tones (one tone's training has a
+single degree of freedom, and ``1/S`` then has no finite mean).
+
+Known limits: the estimate is a fit over one frame, so when ``f_D * T_frame`` passes about 0.2
+the channel ages within the frame and the SNR reads lower (it is the SNR this receiver delivers);
+a delay spread that nearly fills the cyclic prefix (ETU with the default 32-sample prefix) caps
+the SNR through inter-symbol interference; a strong narrowband interferer leaks into its
+neighbours and, in whole-band fades, still costs headers. The FFT is numpy's; speed figures are
+ratios to that same FFT, so they compare the receiver with what it actually calls.
 """
 
 from __future__ import annotations
