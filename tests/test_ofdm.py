@@ -26,7 +26,9 @@ from brimline.drivers.link.frame import (
     make_plan,
     qam_points,
 )
+from brimline.drivers.link.demod import decision_threshold_lin, grid_ser
 from brimline.drivers.link.receiver import Receiver
+from brimline.drivers.link.sync import block_sums, sliding_sums
 
 # --------------------------------------------------------------------------- reference formulas
 
@@ -276,8 +278,8 @@ class TestFrequencyOffset:
         errors = []
         for _ in range(200):
             _, block, _ = _send(plan, bits=0, snr_db=snr_db, cfo_hz=cfo, rng=rng, lead=0, tail=0)
-            d0, _, p = rx._sync(block[:3 * plan.symbol_len])
-            errors.append(np.angle(p) / np.pi - 0.3)
+            found = rx.sync.find(block[:3 * plan.symbol_len])
+            errors.append(found.fraction_tones - 0.3)
         var = np.var(errors)
         expected = 1.0 / (np.pi ** 2 * (plan.fft_size // 2) * snr_sample)
         assert 0.6 < var / expected < 1.6
@@ -413,12 +415,19 @@ class TestWindowSums:
 
     @pytest.mark.parametrize("width", [1, 2, 8, 16, 32, 12])
     def test_sliding_sums_match_convolution(self, width):
-        from brimline.drivers.link.receiver import _sliding_sums
-
         rng = np.random.default_rng(width)
         a = (rng.standard_normal(300) + 1j * rng.standard_normal(300)).astype(np.complex64)
         expected = np.convolve(a.astype(np.complex128), np.ones(width), mode="valid")
-        np.testing.assert_allclose(_sliding_sums(a, width), expected, rtol=1e-5, atol=1e-4)
+        np.testing.assert_allclose(sliding_sums(a, width), expected, rtol=1e-5, atol=1e-4)
+
+    @pytest.mark.parametrize("size", [1, 2, 8, 3])
+    def test_block_sums_match_reshaped_sum(self, size):
+        """Block sums against numpy's sum over a reshaped (count, size) array."""
+        rng = np.random.default_rng(size)
+        a = (rng.standard_normal(203) + 1j * rng.standard_normal(203)).astype(np.complex64)
+        count = a.size // size - 1
+        expected = a[:count * size].astype(np.complex128).reshape(count, size).sum(axis=1)
+        np.testing.assert_allclose(block_sums(a, size, count), expected, rtol=1e-5, atol=1e-4)
 
 
 class TestLowSnrTones:
@@ -452,7 +461,6 @@ class TestDecisionThreshold:
         """The receiver's closed-form grid SER agrees with the loading engine's exact QAM SER
         (both Proakis 5th ed. sec. 4.3)."""
         from brimline.daemon.core.loading import qam_ser
-        from brimline.drivers.link.receiver import grid_ser
         for bits in range(1, 11):
             for es_n0 in (1.0, 10.0, 100.0):
                 assert float(grid_ser(bits, es_n0)) == pytest.approx(
@@ -463,7 +471,6 @@ class TestDecisionThreshold:
         (4.26 dB); the form is from memory, checked here with scipy.special.erfc."""
         from scipy.special import erfc
 
-        from brimline.drivers.link.receiver import decision_threshold_lin
         rho = decision_threshold_lin(1e-1)[2]
         q = 0.5 * erfc(math.sqrt(rho / 2))
         assert 2 * q - q * q == pytest.approx(1e-1, rel=1e-6)
