@@ -409,6 +409,34 @@ class TestBadInput:
         assert res.reason == "clipped" and res.has_estimate
 
 
+class TestToEstimate:
+    """``RxFrame.to_estimate``: the record the sources yield carries the frame's fields."""
+
+    def test_fields_come_from_the_frame(self, rng):
+        plan = make_plan()
+        _, block, known = _send(plan, bits=2, rng=rng)
+        res = Receiver(plan).receive(block, lambda seq: known)
+        est = res.to_estimate(plan=plan, frame=7, time_s=1.25)
+        assert est.frame == 7 and est.time_s == 1.25 and est.plan_id == plan.plan_id
+        np.testing.assert_array_equal(est.tone_index, plan.data_tones)
+        np.testing.assert_array_equal(est.snr_db, res.snr_db)
+        assert est.map_seq_seen == res.map_seq and est.header_ok and est.valid
+        assert est.cfo_hz == res.cfo_hz and 0.0 <= est.sync_metric <= 1.0
+
+    def test_clipped_frame_is_not_valid(self, rng):
+        plan = make_plan()
+        _, block, _ = _send(plan, bits=2, rng=rng)
+        level = 0.5 * np.abs(block.real).max()
+        clipped = np.clip(block.real, -level, level) + 1j * np.clip(block.imag, -level, level)
+        res = Receiver(plan, clip_level=level).receive(clipped)
+        assert not res.to_estimate(plan=plan, frame=0, time_s=0.0).valid
+
+    def test_frame_without_estimate_is_refused(self):
+        res = Receiver(make_plan()).receive(np.zeros(10))
+        with pytest.raises(ValueError, match="reason='truncated' carries no estimate"):
+            res.to_estimate(plan=make_plan(), frame=0, time_s=0.0)
+
+
 class TestWindowSums:
     """The sync search's window sums against numpy's own convolution (numpy.convolve, "valid"
     mode: the sum of every run of ``width`` consecutive elements)."""

@@ -14,7 +14,8 @@ and each built once per plan (all vectorized; one batched FFT per frame):
 Tones a narrowband interferer hits (3 dB above the local level of the training phase step)
 take no part in the fine offset, the header vote or the other tones' noise pools.
 
-:class:`FrameScanner` runs the receiver over a stream fed in pieces.
+:class:`FrameScanner` runs the receiver over a stream fed in pieces; :meth:`RxFrame.to_estimate`
+turns a frame into the :class:`~brimline.daemon.records.Estimate` record the sources yield.
 
 Bad input never raises: a block without a frame, a truncated frame or a header failing its CRC
 comes back as an RxFrame with ``reason`` set.
@@ -22,11 +23,12 @@ comes back as an RxFrame with ``reason`` set.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
-from brimline.daemon.records import TonePlan
+from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.link.demod import (
     HeaderDemod, MapLookup, MapTableCache, decide,
 )
@@ -101,6 +103,38 @@ class RxFrame:
     def has_estimate(self) -> bool:
         """True when the frame carries a channel estimate."""
         return self.channel is not None
+
+    def to_estimate(self, *, plan: TonePlan, frame: int, time_s: float) -> Estimate:
+        """The :class:`~brimline.daemon.records.Estimate` record of this frame.
+
+        Parameters
+        ----------
+        plan : TonePlan
+            The plan the frame was received with (its id, data tones and ``center_hz``, NaN
+            when the plan has none).
+        frame : int
+            Frame number of the source.
+        time_s : float
+            Time of the frame on the source's clock.
+
+        Returns
+        -------
+        Estimate
+            With ``valid`` false for a "clipped" frame and the sync metric clamped to [0, 1].
+
+        Raises
+        ------
+        ValueError
+            When the frame carries no estimate (see :attr:`has_estimate`).
+        """
+        if not self.has_estimate:
+            raise ValueError(f"frame reason={self.reason!r} carries no estimate")
+        return Estimate(
+            frame=frame, time_s=time_s, plan_id=plan.plan_id, tone_index=plan.data_tones,
+            channel=self.channel, noise_var=self.noise_var, snr_db=self.snr_db,
+            map_seq_seen=self.map_seq, sync_metric=min(max(self.sync_metric, 0.0), 1.0),
+            cfo_hz=self.cfo_hz, header_ok=self.header_ok, valid=self.reason != "clipped",
+            center_hz=getattr(plan, "center_hz", math.nan))
 
 
 class Receiver:
