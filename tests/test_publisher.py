@@ -198,9 +198,9 @@ class TestStatus:
         """A status subscriber that never reads: 100 MB of status later, every map still reaches
         a follower, in order; every status publish returns (sent or counted as dropped; a
         blocking send would hang here), and the process memory stays flat (the send queue is
-        bounded by the high-water mark, 10 messages; with a high-water mark of 100000 the same traffic grows
-        the process by about 100 MB, measured when writing this). The map latency and the
-        longest status send in this situation are benchmark figures
+        bounded by the high-water mark, 10 messages; with a high-water mark of 100000 the same
+        traffic grows the process by about 100 MB, measured when writing this). The map latency
+        and the longest status send in this situation are benchmark figures
         (``stuck_status_map_p99_ms``, ``stuck_status_send_max_ms``)."""
         with StatusPublisher(endpoint=ANY_PORT, hwm=10, context=ctx) as sp:
             stuck = ctx.socket(zmq.SUB)

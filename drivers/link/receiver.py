@@ -29,9 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from brimline.daemon.records import Estimate, TonePlan
-from brimline.drivers.link.demod import (
-    HeaderDemod, MapLookup, MapTableCache, decide,
-)
+from brimline.drivers.link.demod import HeaderDemod, MapLookup, MapTableCache, decide
 from brimline.drivers.link.fit import ChannelFit, local_level, squared_magnitude
 from brimline.drivers.link.frame import GRAY, FrameFormat, decode_header
 from brimline.drivers.link.sync import FrameSync

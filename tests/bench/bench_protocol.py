@@ -35,7 +35,8 @@ GOALS = {
     "map_delivery_p99_vs_ref": "map_delivery_p99_ms in reference times",
     "record_write_vs_ref": "record_write_us in reference times",
     "record_read_vs_ref": "record_read_us in reference times",
-    "late_join_ms": "new follower -> current map adopted from the snapshot, median ms (goal < 1000)",
+    "late_join_ms": "new follower -> current map adopted from the snapshot, median ms "
+                    "(goal < 1000)",
     "late_join_vs_ref": "late_join_ms in reference times",
     "stuck_status_map_p99_ms": "map delivery beside a status subscriber that never reads, "
                                "p99 ms (goal < 500)",
