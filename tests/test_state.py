@@ -182,8 +182,10 @@ class TestLease:
         for seq in range(60):  # past half of the first lease
             keeper.reserve(seq)
         keeper.submit(make_map(59, epoch=epoch))
-        assert until(lambda: store.load().seq == 59)
-        assert store.load().seq_ceiling == 159 and keeper.ceiling == 159
+        # The writer sets keeper.ceiling just after the file is replaced (under its save lock),
+        # so a reader that saw the file can still see the old value: wait for both.
+        assert until(lambda: store.load().seq == 59 and keeper.ceiling == 159)
+        assert store.load().seq_ceiling == 159
         keeper.close(make_map(60, epoch=epoch))
         assert store.load().seq == 60
 
