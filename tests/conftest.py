@@ -3,6 +3,14 @@
 import numpy as np
 import pytest
 import zmq
+from hypothesis import HealthCheck, settings
+
+# Property tests never fail on time: no per-example deadline and no "data generation too slow"
+# health check, both of which measure wall-clock time on a machine that may be busy. Loaded
+# here, before any test module builds its @settings, so those inherit it.
+settings.register_profile("brimline", deadline=None,
+                          suppress_health_check=[HealthCheck.too_slow])
+settings.load_profile("brimline")
 
 
 @pytest.fixture

@@ -180,7 +180,7 @@ class TestHandOver:
             subs = set()
             assert until(lambda: {b"\x01map", b"\x01heartbeat"} <= subs,
                          step=lambda: xpub.poll(5) and subs.add(xpub.recv()))
-            assert router.poll(2000)
+            assert router.poll(10_000)
             request = router.recv_multipart()
             assert request[1:] == [b"", b"snapshot"]
             for seq in (1, 2, 3):

@@ -26,7 +26,9 @@ from brimline.drivers.link.frame import (
     make_plan,
     qam_points,
 )
+from brimline.drivers.link.demod import decision_threshold_lin, grid_ser
 from brimline.drivers.link.receiver import Receiver
+from brimline.drivers.link.sync import block_sums, sliding_sums
 
 # --------------------------------------------------------------------------- reference formulas
 
@@ -276,8 +278,8 @@ class TestFrequencyOffset:
         errors = []
         for _ in range(200):
             _, block, _ = _send(plan, bits=0, snr_db=snr_db, cfo_hz=cfo, rng=rng, lead=0, tail=0)
-            d0, _, p = rx._sync(block[:3 * plan.symbol_len])
-            errors.append(np.angle(p) / np.pi - 0.3)
+            found = rx.sync.find(block[:3 * plan.symbol_len])
+            errors.append(found.fraction_tones - 0.3)
         var = np.var(errors)
         expected = 1.0 / (np.pi ** 2 * (plan.fft_size // 2) * snr_sample)
         assert 0.6 < var / expected < 1.6
@@ -407,18 +409,53 @@ class TestBadInput:
         assert res.reason == "clipped" and res.has_estimate
 
 
+class TestToEstimate:
+    """``RxFrame.to_estimate``: the record the sources yield carries the frame's fields."""
+
+    def test_fields_come_from_the_frame(self, rng):
+        plan = make_plan()
+        _, block, known = _send(plan, bits=2, rng=rng)
+        res = Receiver(plan).receive(block, lambda seq: known)
+        est = res.to_estimate(plan=plan, frame=7, time_s=1.25)
+        assert est.frame == 7 and est.time_s == 1.25 and est.plan_id == plan.plan_id
+        np.testing.assert_array_equal(est.tone_index, plan.data_tones)
+        np.testing.assert_array_equal(est.snr_db, res.snr_db)
+        assert est.map_seq_seen == res.map_seq and est.header_ok and est.valid
+        assert est.cfo_hz == res.cfo_hz and 0.0 <= est.sync_metric <= 1.0
+
+    def test_clipped_frame_is_not_valid(self, rng):
+        plan = make_plan()
+        _, block, _ = _send(plan, bits=2, rng=rng)
+        level = 0.5 * np.abs(block.real).max()
+        clipped = np.clip(block.real, -level, level) + 1j * np.clip(block.imag, -level, level)
+        res = Receiver(plan, clip_level=level).receive(clipped)
+        assert not res.to_estimate(plan=plan, frame=0, time_s=0.0).valid
+
+    def test_frame_without_estimate_is_refused(self):
+        res = Receiver(make_plan()).receive(np.zeros(10))
+        with pytest.raises(ValueError, match="reason='truncated' carries no estimate"):
+            res.to_estimate(plan=make_plan(), frame=0, time_s=0.0)
+
+
 class TestWindowSums:
     """The sync search's window sums against numpy's own convolution (numpy.convolve, "valid"
     mode: the sum of every run of ``width`` consecutive elements)."""
 
     @pytest.mark.parametrize("width", [1, 2, 8, 16, 32, 12])
     def test_sliding_sums_match_convolution(self, width):
-        from brimline.drivers.link.receiver import _sliding_sums
-
         rng = np.random.default_rng(width)
         a = (rng.standard_normal(300) + 1j * rng.standard_normal(300)).astype(np.complex64)
         expected = np.convolve(a.astype(np.complex128), np.ones(width), mode="valid")
-        np.testing.assert_allclose(_sliding_sums(a, width), expected, rtol=1e-5, atol=1e-4)
+        np.testing.assert_allclose(sliding_sums(a, width), expected, rtol=1e-5, atol=1e-4)
+
+    @pytest.mark.parametrize("size", [1, 2, 8, 3])
+    def test_block_sums_match_reshaped_sum(self, size):
+        """Block sums against numpy's sum over a reshaped (count, size) array."""
+        rng = np.random.default_rng(size)
+        a = (rng.standard_normal(203) + 1j * rng.standard_normal(203)).astype(np.complex64)
+        count = a.size // size - 1
+        expected = a[:count * size].astype(np.complex128).reshape(count, size).sum(axis=1)
+        np.testing.assert_allclose(block_sums(a, size, count), expected, rtol=1e-5, atol=1e-4)
 
 
 class TestLowSnrTones:
@@ -452,7 +489,6 @@ class TestDecisionThreshold:
         """The receiver's closed-form grid SER agrees with the loading engine's exact QAM SER
         (both Proakis 5th ed. sec. 4.3)."""
         from brimline.daemon.core.loading import qam_ser
-        from brimline.drivers.link.receiver import grid_ser
         for bits in range(1, 11):
             for es_n0 in (1.0, 10.0, 100.0):
                 assert float(grid_ser(bits, es_n0)) == pytest.approx(
@@ -463,7 +499,6 @@ class TestDecisionThreshold:
         (4.26 dB); the form is from memory, checked here with scipy.special.erfc."""
         from scipy.special import erfc
 
-        from brimline.drivers.link.receiver import decision_threshold_lin
         rho = decision_threshold_lin(1e-1)[2]
         q = 0.5 * erfc(math.sqrt(rho / 2))
         assert 2 * q - q * q == pytest.approx(1e-1, rel=1e-6)

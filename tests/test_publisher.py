@@ -2,7 +2,6 @@
 
 import re
 import threading
-import time
 from pathlib import Path
 
 import numpy as np
@@ -141,15 +140,15 @@ class TestSnapshot:
         assert "error" in codec.decode(reply[1:])[1]
         assert pub.counters["bad_requests"] == 1
 
-    def test_late_joiner_gets_the_current_map_within_1_s(self, pub, ctx):
+    def test_late_joiner_gets_the_current_map_from_the_snapshot(self, pub, ctx):
+        """A follower that joins after three maps gets the latest one (by snapshot) and none
+        of the older ones; how long that takes is the benchmark's ``late_join_ms``."""
         for seq in range(1, 4):
             pub.publish(make_map(seq))
-        t0 = time.monotonic()
         with _follower(pub, ctx) as f:
-            assert until(lambda: f.current is not None, 1.0,
+            assert until(lambda: f.current is not None,
                          step=lambda: (pub.handle_snapshot(), f.poll(0.005)))
-            assert time.monotonic() - t0 < 1.0
-            assert f.current.seq == 3
+            assert f.current.seq == 3 and f.counters["maps"] == 1
 
 
 class TestAcks:
@@ -196,10 +195,13 @@ class TestStatus:
             assert got[1]["status_seq"] > got[0]["status_seq"]
 
     def test_stuck_status_subscriber_costs_the_map_path_nothing(self, pub, ctx):
-        """A status subscriber that never reads: 100 MB of status later, maps still reach a
-        follower within a few ms, publishing never blocks and the process memory stays flat
-        (the send queue is bounded by the high-water mark, 10 messages; with a high-water mark of
-        100000 the same traffic grows the process by about 100 MB, measured when writing this)."""
+        """A status subscriber that never reads: 100 MB of status later, every map still reaches
+        a follower, in order; every status publish returns (sent or counted as dropped; a
+        blocking send would hang here), and the process memory stays flat (the send queue is
+        bounded by the high-water mark, 10 messages; with a high-water mark of 100000 the same
+        traffic grows the process by about 100 MB, measured when writing this). The map latency
+        and the longest status send in this situation are benchmark figures
+        (``stuck_status_map_p99_ms``, ``stuck_status_send_max_ms``)."""
         with StatusPublisher(endpoint=ANY_PORT, hwm=10, context=ctx) as sp:
             stuck = ctx.socket(zmq.SUB)
             stuck.setsockopt(zmq.LINGER, 0)
@@ -214,22 +216,15 @@ class TestStatus:
                 for i in range(200):  # fill every queue on the way to the stuck subscriber
                     sp.publish({"spectrum": np.full(2500, float(i))})
                 rss0 = _rss_bytes()
-                latencies, worst_send_s = [], 0.0
                 for seq in range(2, 52):
                     for i in range(100):
                         blob = np.full(2500, float(i))  # 20 kB, fresh (no shared buffers)
-                        t = time.perf_counter()
                         sp.publish({"spectrum": blob})
-                        worst_send_s = max(worst_send_s, time.perf_counter() - t)
-                    t0 = time.perf_counter()
                     pub.publish(make_map(seq))
-                    assert until(lambda: f.current.seq == seq, 1.0, step=lambda: f.poll(0.001))
-                    latencies.append(time.perf_counter() - t0)
+                    assert until(lambda: f.current.seq == seq, step=lambda: f.poll(0.001))
                 grown = _rss_bytes() - rss0
+        assert f.current.seq == 51 and f.counters["gaps"] == 0
         assert sp.counters["sent"] + sp.counters["dropped"] == 5200
-        # Bounds loose enough for a busy shared machine; a blocked path would never finish.
-        assert np.median(latencies) < 0.05 and max(latencies) < 0.5
-        assert worst_send_s < 0.25
         assert grown < 20e6, f"memory grew by {grown / 1e6:.1f} MB for 100 MB of status"
 
 
@@ -351,7 +346,7 @@ def test_plain_pyzmq_snippet_in_readme(pub):
             pub.publish(make_map(seq, bits=2))
         worker.join(0.005)
     try:
-        assert until(lambda: not worker.is_alive(), 3.0, step=step)
+        assert until(lambda: not worker.is_alive(), step=step)
         assert ns["topic"] == "map" and ns["fields"]["seq"] >= 2
         np.testing.assert_array_equal(ns["arrays"]["bits"], 2)
         assert ns["arrays"]["power_lin"].dtype == np.dtype("<f4")

@@ -2,7 +2,7 @@
 
 import inspect
 import threading
-import time
+import types
 
 import numpy as np
 import pytest
@@ -14,6 +14,7 @@ from brimline.drivers.link.frame import make_plan
 from brimline.drivers.sources.base import Driver
 from brimline.drivers.sources.iq import IqDriver, read_sigmf, write_sigmf
 from brimline.drivers.sources.radio import RadioDriver
+from brimline.drivers.sources import sim as sim_module
 from brimline.drivers.sources.sim import SimDriver
 
 
@@ -189,20 +190,43 @@ class TestSimDriver:
         for a, b in zip(*runs):
             np.testing.assert_array_equal(a, b)
 
-    def test_realtime_pacing_and_close(self, plan):
+    def test_realtime_frames_wait_for_their_due_time(self, plan, monkeypatch):
+        """Frame i is due i / frame_rate_hz after frame 0 on the monotonic clock. With a fake
+        clock that moves only while the driver waits, the waits are exactly the frame gaps."""
+        now = [1000.0]
+        monkeypatch.setattr(sim_module, "time", types.SimpleNamespace(monotonic=lambda: now[0]))
         drv = SimDriver(plan=plan, realtime=True, frame_rate_hz=100.0, max_frames=5)
-        t0 = time.monotonic()
-        assert len(list(drv.frames())) == 5
-        assert time.monotonic() - t0 >= 0.035
-        slow = SimDriver(plan=plan, realtime=True, frame_rate_hz=0.5)
-        got = []
-        worker = threading.Thread(target=lambda: got.extend(slow.frames()))
+        waits = []
+
+        def wait(delay):  # stands in for the close event's wait (never closed here)
+            waits.append(delay)
+            now[0] += delay
+            return False
+
+        monkeypatch.setattr(drv._closed, "wait", wait)
+        got = list(drv.frames())
+        assert [e.frame for e in got] == [0, 1, 2, 3, 4]
+        assert waits == pytest.approx([0.01] * 4)
+        assert [e.time_s for e in got] == pytest.approx([0.0, 0.01, 0.02, 0.03, 0.04])
+
+    def test_close_wakes_a_waiting_realtime_driver(self, plan):
+        """close() from another thread ends the wait for the next frame: at 1e-3 frames per
+        second that frame is 1000 s away, so only the wake-up ends the wait within the
+        (generous, hang-catching) join timeout."""
+        slow = SimDriver(plan=plan, realtime=True, frame_rate_hz=1e-3)
+        got, first = [], threading.Event()
+
+        def consume():
+            for est in slow.frames():
+                got.append(est)
+                first.set()
+
+        worker = threading.Thread(target=consume, daemon=True)
         worker.start()
-        time.sleep(0.2)
-        t1 = time.monotonic()
+        assert first.wait(60)
         slow.close()
-        worker.join(timeout=2.0)
-        assert not worker.is_alive() and time.monotonic() - t1 < 1.0 and len(got) == 1
+        worker.join(60)
+        assert not worker.is_alive() and len(got) == 1
         slow.close()  # idempotent
         with pytest.raises(RuntimeError, match="closed"):
             slow.frames()

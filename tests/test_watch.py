@@ -5,6 +5,7 @@ from __future__ import annotations
 import io
 import queue
 import threading
+import time
 
 import numpy as np
 from _service_fakes import ScriptedDriver, loopback_config
@@ -78,7 +79,9 @@ def test_once_without_daemon_is_a_clear_message_not_a_crash():
 
 
 def test_plain_lines_from_a_running_daemon():
-    """Without a terminal the view prints one readable line per status message."""
+    """Without a terminal the view prints one readable line per status message. The view's
+    clock is held still until the first line is out, then jumps past ``duration_s``, so the
+    test waits for content, not for a time (a real-time deadline only catches a hang)."""
     from brimline.daemon.runtime.service import Service
 
     endpoint: queue.Queue = queue.Queue()
@@ -92,16 +95,23 @@ def test_plain_lines_from_a_running_daemon():
                              hold_at=100, release=stop)
         with Service(cfg, driver=drv) as svc:
             endpoint.put(svc.endpoints["status"])
-            svc.run(5.0, stop=stop)
+            svc.run(120.0, stop=stop)
 
     t = threading.Thread(target=daemon)
     t.start()
+    out = io.StringIO()
+    hang = time.monotonic() + 60
+
+    def clock():
+        done = "t=" in out.getvalue() or time.monotonic() > hang
+        return 1e9 if done else 0.0
+
     try:
-        out = io.StringIO()
-        assert watch(endpoint.get(timeout=5), duration_s=0.8, out=out) == 0
+        assert watch(endpoint.get(timeout=60), duration_s=1.0, out=out, clock=clock) == 0
     finally:
         stop.set()
-        t.join(5)
+        t.join(60)
+    assert not t.is_alive()
     lines = [ln for ln in out.getvalue().splitlines() if ln.startswith("t=")]
     assert lines and "frames=" in lines[-1] and "seq=" in lines[-1]
 

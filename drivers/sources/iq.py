@@ -23,7 +23,6 @@ from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.link.frame import as_link_plan
 from brimline.drivers.link.receiver import FrameScanner, Receiver
 from brimline.drivers.sources.base import Driver
-from brimline.drivers.sources.sim import estimate_from
 
 __all__ = ["IqDriver", "Recording", "read_sigmf", "write_sigmf", "CI16_FULL_SCALE"]
 
@@ -230,7 +229,7 @@ class IqDriver(Driver):
                 if self.closed:
                     return
                 self.counters["frames"] += 1
-                yield estimate_from(res, plan=plan, frame=count, time_s=self.start_s + t_rec)
+                yield res.to_estimate(plan=plan, frame=count, time_s=self.start_s + t_rec)
                 count += 1
                 if self.max_frames is not None and count >= self.max_frames:
                     return

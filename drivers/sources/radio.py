@@ -24,7 +24,6 @@ from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.link.frame import Transmitter, as_link_plan, map_arrays
 from brimline.drivers.link.receiver import FrameScanner, Receiver
 from brimline.drivers.sources.base import Driver
-from brimline.drivers.sources.sim import estimate_from
 
 __all__ = ["RadioDriver", "load_adi"]
 
@@ -127,8 +126,8 @@ class RadioDriver(Driver):
                 if not res.has_estimate:
                     continue
                 self.counters["frames"] += 1
-                yield estimate_from(res, plan=self.plan, frame=count,
-                                    time_s=t0 + offset / self.plan.sample_rate_hz)
+                yield res.to_estimate(plan=self.plan, frame=count,
+                                      time_s=t0 + offset / self.plan.sample_rate_hz)
                 count += 1
 
     def _release(self) -> None:

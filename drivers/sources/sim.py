@@ -22,20 +22,10 @@ from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.air.channel import FadeEvent, LinkChannel, Truth
 from brimline.drivers.air.channel import profile as _profile
 from brimline.drivers.link.frame import Transmitter, as_link_plan, bit_errors, map_arrays
-from brimline.drivers.link.receiver import Receiver, RxFrame
+from brimline.drivers.link.receiver import Receiver
 from brimline.drivers.sources.base import Driver, MapProvider
 
-__all__ = ["SimDriver", "estimate_from"]
-
-
-def estimate_from(res: RxFrame, *, plan: TonePlan, frame: int, time_s: float) -> Estimate:
-    """The :class:`Estimate` record of a received frame that carries an estimate."""
-    return Estimate(
-        frame=frame, time_s=time_s, plan_id=plan.plan_id, tone_index=plan.data_tones,
-        channel=res.channel, noise_var=res.noise_var, snr_db=res.snr_db,
-        map_seq_seen=res.map_seq, sync_metric=min(max(res.sync_metric, 0.0), 1.0),
-        cfo_hz=res.cfo_hz, header_ok=res.header_ok, valid=res.reason != "clipped",
-        center_hz=getattr(plan, "center_hz", math.nan))
+__all__ = ["SimDriver"]
 
 
 class SimDriver(Driver):
@@ -168,7 +158,7 @@ class SimDriver(Driver):
             self.counters["bits"] += int(bits.sum()) * self.plan.data_symbols
             self.counters["bit_errors"] += bit_errors(sent.values, res.values)
         self.counters["frames"] += 1
-        return estimate_from(res, plan=self.plan, frame=i, time_s=self.start_s + t_s)
+        return res.to_estimate(plan=self.plan, frame=i, time_s=self.start_s + t_s)
 
     def capture(self, n_frames: int, *, gap_samples: int = 0) -> np.ndarray:
         """Baseband samples of the next ``n_frames`` frames as a receiver would record them.

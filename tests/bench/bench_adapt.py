@@ -10,7 +10,9 @@ below 0 dB, where no bits load), so the figure is also given over the tones abov
 the receiver's raw per-frame error and a synthetic least-squares pilot estimate. The
 ``fading_*`` figures (information, no goal) run the link model's channel (EVA, 0.2 Hz and 1 Hz
 Doppler) and count map changes, rate and tone-frames left below the raw SNR gap. Frames are 100
-per second of simulated time; no sockets. Timings are the best of three passes (shared machine).
+per second of simulated time; no sockets. Timings are the best of three passes (shared machine);
+their ``*_vs_ref`` companions relate them to the reference workload (``reference.py``), sampled
+before each pass.
 """
 
 from __future__ import annotations
@@ -19,6 +21,7 @@ import math
 import time
 
 import numpy as np
+from reference import Reference
 
 from brimline.daemon.core.change import ChangeControl
 from brimline.daemon.core.estimator import Estimator
@@ -29,6 +32,9 @@ GOALS = {
     "pipeline_fps_1024": ">= 5000 frames/s (estimator + change control + loading, 1024 tones)",
     "pipeline_fps_1024_reload": "info: the same with a full reload every frame",
     "estimator_us_1024": "well under 100 us (Estimator.update + tracked, 1024 tones)",
+    "pipeline_fps_1024_vs_ref": "frames per reference time (higher is better)",
+    "pipeline_fps_1024_reload_vs_ref": "frames per reference time, full reload every frame",
+    "estimator_us_1024_vs_ref": "estimator_us_1024 in reference times",
     "churn_static_per_min": "<= 6 map changes/min (static channel, 1 dB noise, after 10 s)",
     "churn_vs_nohyst": ">= 10 (changes without change control / max(changes with it, 1))",
     "hyst_rate_loss": "<= 0.02 (1 - mean rate with / without change control)",
@@ -84,7 +90,7 @@ def _frames(truth_db, n_frames, noise_db, seed):
                        snr_db=truth_db + rng.normal(0.0, noise_db, n))
 
 
-def _pipeline_fps(truth_db, n_frames, *, reload_every_frame):
+def _pipeline_fps(truth_db, n_frames, *, reload_every_frame, ref):
     frames = list(_frames(truth_db, n_frames, 1.0, seed=5))
     est = Estimator(**EstimatorSection().model_dump())
     loader = LoadingSection().loader()
@@ -94,6 +100,7 @@ def _pipeline_fps(truth_db, n_frames, *, reload_every_frame):
         cc.decide(est.tracked(e.time_s), e.time_s)
     best = math.inf
     for part in np.array_split(np.arange(50, len(frames)), 3):  # best of three passes
+        ref.sample(3)
         t0 = time.perf_counter()
         for k in part:
             e = frames[k]
@@ -106,13 +113,14 @@ def _pipeline_fps(truth_db, n_frames, *, reload_every_frame):
     return 1.0 / best
 
 
-def _estimator_us(truth_db, n_frames):
+def _estimator_us(truth_db, n_frames, ref):
     frames = list(_frames(truth_db, n_frames, 1.0, seed=6))
     est = Estimator(**EstimatorSection().model_dump())
     for e in frames[:50]:
         est.update(e, e.time_s)
     best = math.inf
     for part in np.array_split(np.arange(50, len(frames)), 3):  # best of three passes
+        ref.sample(3)
         t0 = time.perf_counter()
         for k in part:
             est.update(frames[k], frames[k].time_s)
@@ -306,11 +314,18 @@ def _track_indoor(seconds, doppler_hz=1.0, seed=3, settle_s=1.0):
 def run(quick: bool) -> dict[str, float]:
     truth = eva_snr_db(1024, 25.0, seed=11)
     n_fps = 600 if quick else 3000
-    figures = {
-        "pipeline_fps_1024": _pipeline_fps(truth, n_fps, reload_every_frame=False),
-        "pipeline_fps_1024_reload": _pipeline_fps(truth, n_fps // 3, reload_every_frame=True),
-        "estimator_us_1024": _estimator_us(truth, n_fps),
-    }
+    ref = Reference()
+    figures = {}
+    for key, reload in (("pipeline_fps_1024", False), ("pipeline_fps_1024_reload", True)):
+        mark = ref.mark()
+        fps = _pipeline_fps(truth, n_fps // 3 if reload else n_fps, reload_every_frame=reload,
+                            ref=ref)
+        figures[key] = fps
+        figures[f"{key}_vs_ref"] = ref.rate_ratio(fps, mark)
+    mark = ref.mark()
+    figures["estimator_us_1024"] = _estimator_us(truth, n_fps, ref)
+    figures["estimator_us_1024_vs_ref"] = ref.time_ratio(figures["estimator_us_1024"] * 1e-6,
+                                                         mark)
     per_min, ratio, loss = _churn(truth, 10.0, 30.0 if quick else 120.0)
     figures["churn_static_per_min"] = per_min
     figures["churn_vs_nohyst"] = ratio

@@ -1,7 +1,9 @@
 """Loading engine speed: Levin-Campello rate loading per frame, against a sort and a greedy loader.
 
 All figures come from one process on one invented frequency-selective channel (three paths plus
-scatter, mean SNR 28 dB, bits 0..10, gap 9.8 dB), timed as medians of repeated calls.
+scatter, mean SNR 28 dB, bits 0..10, gap 9.8 dB), timed as medians of repeated calls. The
+``*_vs_ref`` figures divide the times by the reference workload (``reference.py``), sampled
+between the calls.
 """
 
 from __future__ import annotations
@@ -9,12 +11,15 @@ from __future__ import annotations
 import time
 
 import numpy as np
+from reference import Reference
 
 from brimline.daemon.core.loading import _greedy_oracle, load_rate
 
 GOALS = {
     "alloc_us_1024": "median us of load_rate, 1024 tones, bits 0..10 (info)",
     "alloc_us_4096": "median us of load_rate, 4096 tones, bits 0..10 (info)",
+    "alloc_us_1024_vs_ref": "alloc_us_1024 in reference times (info)",
+    "alloc_us_4096_vs_ref": "alloc_us_4096 in reference times (info)",
     "alloc_vs_sort_4096": "load_rate time / np.sort time, 4096 tones: goal <= 10",
     "alloc_vs_greedy_1024": "speedup over Hughes-Hartogs greedy, same result: goal >= 100",
 }
@@ -40,9 +45,13 @@ def _load(snr: np.ndarray):
     return load_rate(snr, bits=BITS, gap_db=GAP_DB)
 
 
-def _median_s(fn, arg, repeats: int) -> float:
+def _median_s(fn, arg, repeats: int, ref: Reference | None = None, every: int = 20) -> float:
+    """Median time of ``repeats`` calls; with ``ref``, a reference sample after every
+    ``every`` calls (outside the timed calls)."""
     times = np.empty(repeats)
     for i in range(repeats):
+        if ref is not None and i % every == 0:
+            ref.sample()
         t0 = time.perf_counter()
         fn(arg)
         times[i] = time.perf_counter() - t0
@@ -53,10 +62,14 @@ def run(quick: bool) -> dict[str, float]:
     repeats = 200 if quick else 2000
     loader = _load
     out: dict[str, float] = {}
+    ref = Reference()
     for n in (1024, 4096):
         snr = channel(n)
         loader(snr)  # warm up
-        out[f"alloc_us_{n}"] = _median_s(loader, snr, repeats) * 1e6
+        mark = ref.mark()
+        t_alloc = _median_s(loader, snr, repeats, ref)
+        out[f"alloc_us_{n}"] = t_alloc * 1e6
+        out[f"alloc_us_{n}_vs_ref"] = ref.time_ratio(t_alloc, mark)
     snr = channel(4096)
     # Interleave the two timings so that machine load hits both alike.
     t_alloc, t_sort = [], []

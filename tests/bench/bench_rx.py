@@ -2,6 +2,8 @@
 
 * ``rx_msps``: complex samples per second (millions) that ``Receiver.receive`` turns into an
   estimate on one core, sync search over the block included.
+* ``rx_msps_vs_ref``: the same in millions of samples per reference time (``reference.py``),
+  timed interleaved with the receiver: comparable between machines.
 * ``rx_vs_fft``: receiver time over the time of bare ``numpy.fft.fft`` of the same symbols
   (complex64, one batched call), measured in the same process.
 * ``rx_demod_vs_fft``: the same with the final data decisions (second, leave-one-out decision
@@ -12,9 +14,8 @@
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
+from reference import Reference, interleaved
 
 from brimline.drivers.air.channel import LinkChannel
 from brimline.drivers.link.frame import Transmitter, make_plan
@@ -22,6 +23,7 @@ from brimline.drivers.link.receiver import Receiver
 
 GOALS = {
     "rx_msps": ">= 40 Msample/s per core",
+    "rx_msps_vs_ref": "Msamples per reference time (higher is better)",
     "rx_vs_fft": "<= 4 x bare FFT time",
     "rx_demod_vs_fft": "informational: estimates plus final data decisions",
     "snr_rmse_db_20": "raw per-tone estimate, one frame (lower is better)",
@@ -29,17 +31,6 @@ GOALS = {
 
 PLAN = dict(fft_size=1024, cp_len=72, sample_rate_hz=15.36e6, used_tones_half=400,
             pilot_spacing=8, train_symbols=2, data_symbols=28)
-
-
-def _interleaved(fns, repeats: int) -> list[float]:
-    """Lower-quartile time of each function, measured in turn so load changes hit all alike."""
-    times = [[] for _ in fns]
-    for _ in range(repeats):
-        for fn, out in zip(fns, times):
-            t0 = time.perf_counter()
-            fn()
-            out.append(time.perf_counter() - t0)
-    return [sorted(t)[len(t) // 4] for t in times]
 
 
 def run(quick: bool = False) -> dict[str, float]:
@@ -66,12 +57,15 @@ def run(quick: bool = False) -> dict[str, float]:
     symbols = np.ascontiguousarray(
         blocks[0][:plan.n_symbols * plan.symbol_len].reshape(plan.n_symbols, plan.symbol_len)
         [:, plan.cp_len:])
-    t_fft, t_rx, t_demod = _interleaved([
+    ref = Reference()
+    t_fft, t_rx, t_demod, t_ref = interleaved([
         lambda: np.fft.fft(symbols, axis=1),
         lambda: rx.receive(blocks[0], lookup, demodulate=False),
-        lambda: rx.receive(blocks[0], lookup, demodulate=True)], repeats)
+        lambda: rx.receive(blocks[0], lookup, demodulate=True),
+        ref.work], repeats)
     return {
         "rx_msps": blocks[0].size / t_rx / 1e6,
+        "rx_msps_vs_ref": blocks[0].size / t_rx / 1e6 * t_ref,
         "rx_vs_fft": t_rx / t_fft,
         "rx_demod_vs_fft": t_demod / t_fft,
         "snr_rmse_db_20": rmse,

@@ -1,8 +1,12 @@
 """brimline benchmarks: named figures, measured side by side in one process.
 
-Each ``tests/bench/bench_*.py`` module provides ``run(quick: bool) -> dict[str, float]``. Figures
-are ratios against a reference measured in the same process wherever the goal allows, since
-machines here are noisy. Not a timed test: run it by hand.
+Each ``tests/bench/bench_*.py`` module provides ``run(quick: bool) -> dict[str, float]`` and a
+``GOALS`` dict of the same keys. Every absolute figure (frames/s, MS/s, us, ms) has a ``*_vs_ref``
+companion: its ratio to the shared reference workload of ``reference.py``, timed on the same box
+in the same run, interleaved with the measurement. Absolute figures moved about 3x between two
+quiet machines; compare the ``*_vs_ref`` figures between boxes. ``reference_us`` is the
+reference's own time at the start of the run (how fast the box is; not a goal). Not a timed
+test: run it by hand.
 
 Usage::
 
@@ -17,7 +21,10 @@ import json
 import sys
 from pathlib import Path
 
+from reference import Reference
+
 HERE = Path(__file__).resolve().parent
+REFERENCE_GOAL = "the reference workload (reference.py), lower-quartile us: the box's speed"
 
 
 def _modules():
@@ -34,7 +41,11 @@ def main(argv=None) -> int:
     parser.add_argument("--json", action="store_true", help="print one JSON object of figures")
     parser.add_argument("--only", default="", help="run only modules whose name has this text")
     args = parser.parse_args(argv)
-    figures: dict[str, float] = {}
+    ref = Reference()
+    ref.sample(30)
+    figures: dict[str, float] = {"reference_us": ref.seconds() * 1e6}
+    if not args.json:
+        print(f"{'reference_us':28s} {figures['reference_us']:14.4g}   {REFERENCE_GOAL}")
     for name, module in _modules():
         if args.only and args.only not in name:
             continue
