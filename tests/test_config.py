@@ -1,9 +1,15 @@
 """Config loading: every error is one line naming file, line, key path and value."""
 
+import inspect
+import re
+from pathlib import Path
+
 import pytest
 
+from brimline.daemon.core.change import ChangeControl
+from brimline.daemon.core.estimator import Estimator
 from brimline.daemon.errors import ConfigError
-from brimline.daemon.runtime.config import load_config
+from brimline.daemon.runtime.config import ChangeSection, EstimatorSection, load_config
 
 
 def _write(tmp_path, text):
@@ -37,13 +43,39 @@ def test_missing_and_directory(tmp_path):
         load_config(tmp_path)
 
 
-def test_readme_lists_every_estimator_and_change_key_with_its_default():
-    """The README's defaults table stays true: every key of both sections, with its default."""
-    from pathlib import Path
+def _keyword_defaults(cls):
+    return {name: p.default for name, p in inspect.signature(cls).parameters.items()
+            if p.default is not inspect.Parameter.empty}
 
-    from brimline.daemon.runtime.config import ChangeSection, EstimatorSection
 
+SECTIONS_OF_CONSTRUCTORS = [("estimator", EstimatorSection, Estimator),
+                            ("change", ChangeSection, ChangeControl)]
+
+
+@pytest.mark.parametrize("prefix, section, cls", SECTIONS_OF_CONSTRUCTORS,
+                         ids=[p for p, _, _ in SECTIONS_OF_CONSTRUCTORS])
+def test_section_keys_and_defaults_are_the_constructors(prefix, section, cls):
+    """The section's keys are exactly the constructor's keyword arguments (``loader`` aside) and
+    its defaults are the constructor's: the signature is the one place they are written."""
+    defaults = _keyword_defaults(cls)
+    assert set(section.model_fields) == set(defaults)
+    assert section().model_dump() == defaults
+
+
+@pytest.mark.parametrize("prefix, section, cls", SECTIONS_OF_CONSTRUCTORS,
+                         ids=[p for p, _, _ in SECTIONS_OF_CONSTRUCTORS])
+def test_readme_lists_every_key_with_the_constructors_default(prefix, section, cls):
+    """The README's key table stays true: one row per key of the section, in any order, with
+    the default taken from the constructor's signature (where defaults are defined), and no
+    row for a key that does not exist."""
     readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
-    for prefix, section in (("estimator", EstimatorSection), ("change", ChangeSection)):
-        for key, field in section.model_fields.items():
-            assert f"| `{prefix}.{key}` | {field.default} |" in readme, f"{prefix}.{key}"
+    rows = dict(re.findall(rf"^\| `{prefix}\.(\w+)` \| ([^|]+?) \|", readme, re.M))
+    expected = {key: str(value) for key, value in _keyword_defaults(cls).items()}
+    assert rows == expected
+
+
+def test_readme_table_check_sees_a_wrong_default(tmp_path):
+    """The README check itself: a row with another default would be caught."""
+    rows = dict(re.findall(r"^\| `estimator\.(\w+)` \| ([^|]+?) \|",
+                           "| `estimator.tau_s` | 0.2 | smoothing |\n", re.M))
+    assert rows == {"tau_s": "0.2"} != {"tau_s": str(_keyword_defaults(Estimator)["tau_s"])}

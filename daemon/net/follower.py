@@ -17,20 +17,28 @@ import collections
 import math
 import time
 from pathlib import Path
+from types import MappingProxyType
 from typing import Callable, Iterable, Sequence
 
 import numpy as np
 import zmq
 
 from brimline.daemon.errors import ProtocolError
+from brimline.daemon.limits import POSITIVE, check_values
 from brimline.daemon.net.curve import apply_client
 from brimline.daemon.records import LoadMap, TonePlan
 from brimline.daemon.wire import codec
 
-__all__ = ["Follower", "check_map"]
+__all__ = ["Follower", "check_map", "FOLLOWER_LIMITS"]
 
 _MAX_HELD = 256  # updates held while a snapshot is awaited (newest kept)
 _MAX_PER_POLL = 256  # messages handled per poll call
+
+#: Limits of :class:`Follower`'s numeric keyword arguments (it has no config section of its own).
+FOLLOWER_LIMITS = MappingProxyType({
+    "heartbeat_timeout_s": POSITIVE,
+    "snapshot_timeout_s": POSITIVE,
+})
 
 
 def check_map(load_map: LoadMap, *, plan_id: str, tone_index: np.ndarray,
@@ -158,10 +166,8 @@ class Follower:
                  clock: Callable[[], float] = time.monotonic) -> None:
         if (curve_server_key is None) != (curve_client_key is None):
             raise ValueError("CURVE needs both curve_server_key and curve_client_key")
-        for name, v in (("heartbeat_timeout_s", heartbeat_timeout_s),
-                        ("snapshot_timeout_s", snapshot_timeout_s)):
-            if not (math.isfinite(v) and v > 0):
-                raise ValueError(f"{name}={v} must be finite and > 0")
+        check_values(dict(heartbeat_timeout_s=heartbeat_timeout_s,
+                          snapshot_timeout_s=snapshot_timeout_s), FOLLOWER_LIMITS)
         self.plan = plan
         self._plan_id = plan.plan_id
         self._tones = plan.data_tones
