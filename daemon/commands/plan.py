@@ -24,7 +24,8 @@ from pathlib import Path
 
 import numpy as np
 
-from brimline.daemon.core.loading import MAX_BITS, waterfill
+from brimline.daemon.core.loading import waterfill
+from brimline.daemon.core.qam import MAX_BITS
 from brimline.daemon.errors import InputError
 from brimline.daemon.runtime.config import LoadingSection, load_config
 

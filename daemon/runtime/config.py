@@ -22,7 +22,8 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from brimline.daemon.core.change import CHANGE_LIMITS, ChangeControl, check_change_settings
 from brimline.daemon.core.estimator import ESTIMATOR_LIMITS, Estimator
-from brimline.daemon.core.loading import Loader, qam_gap_db
+from brimline.daemon.core.loading import Loader
+from brimline.daemon.core.qam import qam_gap_db
 from brimline.daemon.errors import ConfigError
 from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, between
 from brimline.daemon.net.publisher import (PUBLISH_LIMITS, STATUS_LIMITS, MapPublisher,
