@@ -21,8 +21,10 @@ from brimline.daemon.core.loading import (
     Loader,
     _greedy_oracle,
     _water_level,
+    allowed_bits,
     load_margin,
     load_rate,
+    uniform_margin_db,
     waterfill,
 )
 from brimline.daemon.core.qam import qam_gap_db
@@ -437,6 +439,54 @@ def test_waterfill_invariants(snr, budget_db, cap_db, gap_db):
     if active.any() and cap * active.sum() > budget:
         assert wf.power.sum() == pytest.approx(budget, rel=1e-9)
     assert (wf.power[~active] == 0).all()
+
+
+class TestOneRule:
+    """Rules the loader shares with the config, the plan command, change control and the
+    transmitter's follower (each written once, here)."""
+
+    @pytest.mark.parametrize("bits, ok", [
+        (range(9), True), ([0, 1, 2, 4, 6, 8], True), ([0], True), ([0, 16], True),
+        ([], False), ([1, 2], False), ([0, 2, 1], False), ([0, 0, 1], False), ([0, 17], False),
+        ([0, 1.5], False), ([0, True], False)])
+    def test_allowed_bits(self, bits, ok):
+        if ok:
+            assert allowed_bits(bits) == tuple(bits)
+        else:
+            with pytest.raises(InputError, match=r"^--bits="):
+                allowed_bits(bits, key="--bits", error=InputError)
+
+    @pytest.mark.parametrize("where", ["config", "plan", "follower"])
+    def test_every_user_of_the_bit_rule_refuses_the_same_set(self, where):
+        from protocol_helpers import wifi_like_plan
+
+        from brimline.daemon.commands.plan import parse_bit_list
+        from brimline.daemon.errors import ConfigError
+        from brimline.daemon.net.follower import Follower
+        from brimline.daemon.runtime.config import parse_section
+
+        with pytest.raises((ValueError, InputError, ConfigError), match="start at 0"):
+            if where == "config":
+                parse_section(LoadingSection, {"bits": [1, 2]}, where="x.yaml", name="loading")
+            elif where == "plan":
+                parse_bit_list("1-2")
+            else:
+                Follower(plan=wifi_like_plan(), bits=[1, 2])
+
+    def test_uniform_margin_worked_example(self):
+        """By the definition of margin_db (module notes), worked by hand: required powers 1, 2,
+        3 with budget 12 and ceiling 5 can grow by min(12 / 6, 5 / 3) = 5/3, i.e. 2.2185 dB."""
+        need = np.array([1.0, 2.0, 0.0, 3.0])
+        assert uniform_margin_db(need, 12.0, 5.0) == pytest.approx(10 * math.log10(5 / 3))
+        assert uniform_margin_db(need, 12.0, math.inf) == pytest.approx(10 * math.log10(2))
+        assert uniform_margin_db(np.zeros(3), 12.0, 5.0) == math.inf
+
+    def test_allocation_margin_is_the_shared_one(self, rng):
+        ld = Loader(bits=range(11), gap_db=9.8, cap_db=3.0)
+        snr = frequency_selective(rng, 64)
+        a = ld(snr)
+        need = ld.required_power(a.bits, snr)
+        assert a.margin_db == uniform_margin_db(need, 64.0, 10 ** 0.3)
 
 
 def test_module_exports():

@@ -53,6 +53,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from brimline.daemon.core.loading import uniform_margin_db
 from brimline.daemon.errors import InfeasibleError
 from brimline.daemon.limits import (FINITE, NON_NEGATIVE, POSITIVE, at_least, between,
                                     check_values)
@@ -508,7 +509,7 @@ class ChangeControl:
         if total_power > budget * (1 + 1e-9) or (power > self._cap_lin * (1 + 1e-9)).any():
             return None
         need = loader.required_power(bits, snr)
-        margin_db = _uniform_margin_db(need, budget, self._cap_lin)
+        margin_db = uniform_margin_db(need, budget, self._cap_lin)
         alloc = Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
                            total_power=total_power, margin_db=margin_db)
         return alloc, int(np.count_nonzero((cur.bits != bits) | (cur.power != power)))
@@ -520,14 +521,3 @@ def _lin(db: np.ndarray) -> np.ndarray:
 
 def _tones(n: int) -> str:
     return f"{n} tone" if n == 1 else f"{n} tones"
-
-
-def _uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
-    """Largest uniform growth of the required powers within budget and ceiling, dB."""
-    total = float(need.sum())
-    if total <= 0:
-        return math.inf
-    factor = budget / total
-    if math.isfinite(cap):
-        factor = min(factor, cap / float(need.max()))
-    return 10.0 * math.log10(factor)

@@ -35,6 +35,9 @@ from brimline.daemon.limits import check_db
 from brimline.daemon.records import Allocation, frozen_array
 
 __all__ = [
+    "allowed_bits",
+    "check_target_bits",
+    "uniform_margin_db",
     "Waterfill",
     "waterfill",
     "load_rate",
@@ -78,22 +81,88 @@ class _BitTables:
     key_spacing: float       # smallest gap between consecutive step keys
 
 
-def _as_bit_set(bits) -> _BitTables:
-    """Validate an allowed-bits set (integers, strictly ascending, from 0, <= MAX_BITS) and
-    return its tables."""
+def allowed_bits(bits, *, key: str = "bits", shown: str | None = None,
+                 error: type[Exception] = ValueError) -> tuple[int, ...]:
+    """Check an allowed-bits set: integers, strictly ascending, starting at 0, at most MAX_BITS.
+
+    The one rule for the bit counts a loader may use; the ``loading.bits`` config key, the
+    :class:`Loader`, the ``plan`` command's ``--bits`` and the transmitter's :class:`Follower`
+    all apply it. Holes are allowed (``0, 1, 2, 4, 6, 8``).
+
+    Parameters
+    ----------
+    bits : iterable of int
+        The set, in order.
+    key : str
+        Its name in the message (``bits``, ``--bits``).
+    shown : str, optional
+        The value as the user wrote it, for the message (``'0-8'``); default: the list.
+    error : exception class
+        Raised when the set breaks the rule (``InputError`` for user input outside a config).
+
+    Returns
+    -------
+    tuple of int
+
+    Examples
+    --------
+    >>> allowed_bits(range(4))
+    (0, 1, 2, 3)
+    """
     try:
         values = tuple(bits)
     except TypeError:
-        raise InputError(f"bits={bits!r} must be a list of integers") from None
+        raise error(f"{key}={bits!r} must be a list of integers") from None
     if not values or not all(isinstance(b, (int, np.integer)) and not isinstance(b, bool)
                              for b in values):
-        raise InputError(f"bits={list(values)!r} must be a non-empty list of integers")
+        raise error(f"{key}={list(values)!r} must be a non-empty list of integers")
     values = tuple(int(b) for b in values)
     if values[0] != 0 or any(b <= a for a, b in zip(values, values[1:])) \
             or values[-1] > MAX_BITS:
-        raise InputError(f"bits={list(values)!r} must be ascending, start at 0 and stay "
-                         f"<= {MAX_BITS}")
-    return _bit_tables(values)
+        shown = repr(list(values)) if shown is None else shown
+        raise error(f"{key}={shown} must be ascending, start at 0 and stay <= {MAX_BITS}")
+    return values
+
+
+def uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
+    """Largest uniform growth of the required powers within budget and ceiling, dB.
+
+    Parameters
+    ----------
+    need : ndarray
+        Required power per tone, linear (0 on unloaded tones).
+    budget : float
+        Total power budget, linear.
+    cap : float
+        Per-tone ceiling, linear (``inf``: none).
+
+    Returns
+    -------
+    float
+        ``10 log10(min(budget / sum(need), cap / max(need)))``; ``+inf`` when nothing is loaded.
+        This is an allocation's ``margin_db`` (see the module notes), for the loader and for
+        change control's bit swaps alike.
+    """
+    total = float(need.sum())
+    if total <= 0.0:
+        return math.inf
+    factor = budget / total
+    if math.isfinite(cap):
+        factor = min(factor, cap / float(need.max()))
+    return 10.0 * math.log10(factor)
+
+
+def check_target_bits(target_bits, *, error: type[Exception] = ValueError) -> int:
+    """``target_bits`` (bits per OFDM symbol of margin mode) as an int: an integer >= 0."""
+    if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
+            or target_bits < 0:
+        raise error(f"target_bits={target_bits!r} must be an integer >= 0")
+    return int(target_bits)
+
+
+def _as_bit_set(bits) -> _BitTables:
+    """Validate an allowed-bits set (see :func:`allowed_bits`) and return its tables."""
+    return _bit_tables(allowed_bits(bits, error=InputError))
 
 
 @functools.lru_cache(maxsize=64)
@@ -310,10 +379,7 @@ class Loader:
         budget_db = check_db("budget_db", budget_db, error=InputError)
         cap_db = check_db("cap_db", cap_db, allow_pos_inf=True, error=InputError)
         if target_bits is not None:
-            if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
-                    or target_bits < 0:
-                raise InputError(f"target_bits={target_bits!r} must be an integer >= 0")
-            target_bits = int(target_bits)
+            target_bits = check_target_bits(target_bits, error=InputError)
         if mode == "margin" and target_bits is None:
             raise InputError("target_bits is required with mode='margin'")
         gap = 10.0 ** (gap_db / 10.0)
@@ -435,13 +501,7 @@ class Loader:
 
     def _margin(self, need: np.ndarray, budget: float) -> float:
         """Largest uniform growth factor of the required powers, in dB (+inf if none loaded)."""
-        total = float(need.sum())
-        if total <= 0.0:
-            return math.inf
-        factor = budget / total
-        if math.isfinite(self._cap):
-            factor = min(factor, self._cap / float(need.max()))
-        return 10.0 * math.log10(factor)
+        return uniform_margin_db(need, budget, self._cap)
 
     # ---------------------------------------------------------------- searches
 
@@ -669,10 +729,7 @@ class Loader:
         return self._margin_mode(_as_snr(snr), target_bits)
 
     def _margin_mode(self, snr: np.ndarray, target_bits: int) -> Allocation:
-        if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
-                or target_bits < 0:
-            raise InputError(f"target_bits={target_bits!r} must be an integer >= 0")
-        target = int(target_bits)
+        target = check_target_bits(target_bits, error=InputError)
         budget = self._budget(snr.size)
         tones = self._tones(snr, budget)
         if target > int(self.bits[tones.top].sum()):

@@ -23,6 +23,7 @@ from typing import Callable, Iterable, Sequence
 import numpy as np
 import zmq
 
+from brimline.daemon.core.loading import allowed_bits
 from brimline.daemon.errors import ProtocolError
 from brimline.daemon.limits import POSITIVE, check_values
 from brimline.daemon.net.curve import apply_client
@@ -120,7 +121,8 @@ class Follower:
     ack_endpoint : str or None
         The daemon's ack PULL (``tcp://127.0.0.1:7344``); None sends no acks.
     bits : iterable of int
-        Allowed bits per tone.
+        Allowed bits per tone, by the loader's rule (ascending from 0, see
+        :func:`brimline.daemon.core.loading.allowed_bits`).
     budget_db : float
         Total power budget relative to N tones at nominal, dB (as ``loading.budget_db``).
     cap_db : float
@@ -171,9 +173,7 @@ class Follower:
         self.plan = plan
         self._plan_id = plan.plan_id
         self._tones = plan.data_tones
-        self._bits = sorted(int(b) for b in bits)
-        if not self._bits or self._bits[0] < 0 or self._bits[-1] > 255:
-            raise ValueError(f"bits={self._bits} must be within 0..255")
+        self._bits = list(allowed_bits(bits))
         self._budget_lin = plan.data_tones.size * 10.0 ** (budget_db / 10.0)
         self._cap_lin = 10.0 ** (cap_db / 10.0)
         self._tolerance = float(tolerance)

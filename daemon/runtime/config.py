@@ -22,10 +22,10 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from brimline.daemon.core.change import CHANGE_LIMITS, ChangeControl, check_change_settings
 from brimline.daemon.core.estimator import ESTIMATOR_LIMITS, Estimator
-from brimline.daemon.core.loading import Loader
-from brimline.daemon.core.qam import qam_gap_db
+from brimline.daemon.core.loading import Loader, allowed_bits, check_target_bits
+from brimline.daemon.core.qam import TARGET_SER, qam_gap_db
 from brimline.daemon.errors import ConfigError
-from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, between
+from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, between, check_db
 from brimline.daemon.net.publisher import (PUBLISH_LIMITS, STATUS_LIMITS, MapPublisher,
                                            StatusPublisher, check_publish_settings)
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
@@ -97,37 +97,28 @@ class LoadingSection(Section):
     @field_validator("bits")
     @classmethod
     def _bits_ok(cls, v: list[int]) -> list[int]:
-        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 16:
-            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 16")
+        allowed_bits(v)
         return v
 
     @field_validator("target_ser")
     @classmethod
     def _ser_ok(cls, v: float) -> float:
-        if not 0.0 < v < 0.5:
-            raise ValueError(f"target_ser={v} must be in (0, 0.5)")
-        return v
+        return TARGET_SER.check("target_ser", v)
 
     @field_validator("gap_db", "coding_gain_db", "margin_db", "budget_db")
     @classmethod
-    def _finite_db(cls, v: Optional[float], info) -> Optional[float]:
-        if v is not None and not math.isfinite(v):
-            raise ValueError(f"{info.field_name}={v} must be finite")
-        return v
+    def _db_ok(cls, v: Optional[float], info) -> Optional[float]:
+        return v if v is None else check_db(info.field_name, v)
 
     @field_validator("cap_db")
     @classmethod
     def _cap_ok(cls, v: float) -> float:
-        if math.isnan(v) or v == -math.inf:
-            raise ValueError(f"cap_db={v} must be finite or +inf (.inf)")
-        return v
+        return check_db("cap_db", v, allow_pos_inf=True)
 
     @field_validator("target_bits")
     @classmethod
     def _target_ok(cls, v: Optional[int]) -> Optional[int]:
-        if v is not None and v < 0:
-            raise ValueError(f"target_bits={v} must be >= 0")
-        return v
+        return v if v is None else check_target_bits(v)
 
     @model_validator(mode="after")
     def _margin_needs_target(self) -> "LoadingSection":
