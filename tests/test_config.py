@@ -1,6 +1,7 @@
 """Config loading: every error is one line naming file, line, key path and value."""
 
 import inspect
+import math
 import re
 from pathlib import Path
 
@@ -9,7 +10,8 @@ import pytest
 from brimline.daemon.core.change import ChangeControl
 from brimline.daemon.core.estimator import Estimator
 from brimline.daemon.errors import ConfigError
-from brimline.daemon.runtime.config import ChangeSection, EstimatorSection, load_config
+from brimline.daemon.runtime.config import (ChangeSection, EstimatorSection, load_config,
+                                            read_yaml)
 
 
 def _write(tmp_path, text):
@@ -79,3 +81,30 @@ def test_readme_table_check_sees_a_wrong_default(tmp_path):
     rows = dict(re.findall(r"^\| `estimator\.(\w+)` \| ([^|]+?) \|",
                            "| `estimator.tau_s` | 0.2 | smoothing |\n", re.M))
     assert rows == {"tau_s": "0.2"} != {"tau_s": str(_keyword_defaults(Estimator)["tau_s"])}
+
+
+class TestExponentNumbers:
+    """YAML 1.2 core schema float rule (YAML 1.2 spec, sec. 10.3.2 "Tag Resolution", the core
+    schema; its JSON schema counterpart is sec. 10.2.1.4 "Floating Point"; both from memory):
+    ``[-+]? ( . [0-9]+ | [0-9]+ ( . [0-9]* )? ) ( [eE] [-+]? [0-9]+ )?`` is a float, so ``1e6``
+    needs neither a dot nor a signed exponent, unlike YAML 1.1."""
+
+    @pytest.mark.parametrize("text, value", [
+        ("1e6", 1e6), ("-2.5E-3", -2.5e-3), ("1e+06", 1e6), ("1.0e6", 1e6), ("+1E2", 100.0),
+        ("1.e3", 1e3), (".5", 0.5)])
+    def test_read_as_floats(self, tmp_path, text, value):
+        data, _ = read_yaml(_write(tmp_path, f"link:\n  sample_rate_hz: {text}\n"))
+        assert isinstance(data["link"]["sample_rate_hz"], float)
+        assert data["link"]["sample_rate_hz"] == value
+
+    @pytest.mark.parametrize("text, value", [
+        ("7", 7), ("-3", -3), ("0x10", 16), ("1e", "1e"), ("e6", "e6"), ("1e6x", "1e6x"),
+        (".inf", math.inf)])
+    def test_other_scalars_keep_their_yaml_meaning(self, tmp_path, text, value):
+        data, _ = read_yaml(_write(tmp_path, f"v: {text}\n"))
+        assert data["v"] == value and type(data["v"]) is type(value)
+
+    def test_a_config_with_exponents_loads(self, tmp_path):
+        cfg = load_config(_write(tmp_path, "link:\n  sample_rate_hz: 1.92e6\n"
+                                           "loading:\n  target_ser: 1e-7\n"))
+        assert cfg.link.sample_rate_hz == 1.92e6 and cfg.loading.target_ser == 1e-7

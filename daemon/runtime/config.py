@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import inspect
 import math
+import re
 from pathlib import Path
 from typing import Any, Literal, Optional
 
@@ -47,6 +48,7 @@ __all__ = [
     "KeyProblem",
     "load_config",
     "read_yaml",
+    "ConfigLoader",
     "parse_section",
 ]
 
@@ -678,6 +680,22 @@ class Config(Section):
 # --------------------------------------------------------------------------- machinery
 
 
+class ConfigLoader(yaml.SafeLoader):
+    """PyYAML's safe loader, reading numbers in exponent form (``1e6``, ``-2.5E-3``) as floats.
+
+    PyYAML follows YAML 1.1, whose float needs a dot and a signed exponent (``1.0e+6``), so
+    ``sample_rate_hz: 1e6`` arrived as the string ``'1e6'`` and was refused. YAML 1.2's core
+    schema reads any ``[-+]? ( . [0-9]+ | [0-9]+ ( . [0-9]* )? ) ( [eE] [-+]? [0-9]+ )?`` as a
+    float; that rule is added here after the YAML 1.1 ones, so integers stay integers.
+    """
+
+
+ConfigLoader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?(?:\.[0-9]+|[0-9]+(?:\.[0-9]*)?)(?:[eE][-+]?[0-9]+)?$"),
+    list("-+0123456789."))
+
+
 def _key_lines(node: yaml.Node, prefix: tuple = ()) -> dict[tuple, int]:
     """Map each key path in a composed YAML tree to its 1-based line number."""
     lines: dict[tuple, int] = {}
@@ -712,8 +730,8 @@ def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(f"{p}: cannot read config: {exc}") from exc
     try:
-        node = yaml.compose(text, Loader=yaml.SafeLoader)
-        data = yaml.safe_load(text)
+        node = yaml.compose(text, Loader=ConfigLoader)
+        data = yaml.load(text, Loader=ConfigLoader)  # a SafeLoader: plain data only
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         line = f" line {mark.line + 1}" if mark is not None else ""
