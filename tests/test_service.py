@@ -29,12 +29,13 @@ from brimline.daemon.wire.state import StateStore
 
 
 def _follower(svc: Service, adopted: list | None = None) -> Follower:
-    ld = svc.config.loading
-    return Follower(plan=svc.plan, map_endpoint=svc.endpoints["maps"],
-                    snapshot_endpoint=svc.endpoints["snapshots"],
-                    ack_endpoint=svc.endpoints["acks"], bits=list(ld.bits),
-                    budget_db=ld.budget_db, cap_db=ld.cap_db,
-                    on_map=None if adopted is None else adopted.append)
+    """A follower built from the config the one way (Follower.for_daemon), at the endpoints the
+    service actually bound."""
+    return Follower.for_daemon(svc.config.publish, svc.config.loading, plan=svc.plan,
+                               map_endpoint=svc.endpoints["maps"],
+                               snapshot_endpoint=svc.endpoints["snapshots"],
+                               ack_endpoint=svc.endpoints["acks"],
+                               on_map=None if adopted is None else adopted.append)
 
 
 def _pump(svc: Service, followers=(), *, until, timeout_s: float = 5.0) -> bool:
