@@ -29,6 +29,7 @@ from brimline.daemon.errors import ConfigError
 from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, between, check_db
 from brimline.daemon.net.publisher import (PUBLISH_LIMITS, STATUS_LIMITS, MapPublisher,
                                            StatusPublisher, check_publish_settings)
+from brimline.drivers.air.channel import check_interferer_window
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
 from brimline.drivers.sources.replay import REPLAY_LIMITS
 
@@ -245,9 +246,7 @@ class SimSection(Section):
     @field_validator("interferer_stop_s")
     @classmethod
     def _interferer_window(cls, v, info):
-        start = info.data.get("interferer_start_s")
-        if v is not None and start is not None and not v > start:
-            raise ValueError(f"interferer_stop_s={v} must be after interferer_start_s={start}")
+        check_interferer_window(info.data.get("interferer_start_s"), v)
         return v
 
 
