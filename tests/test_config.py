@@ -108,3 +108,35 @@ class TestExponentNumbers:
         cfg = load_config(_write(tmp_path, "link:\n  sample_rate_hz: 1.92e6\n"
                                            "loading:\n  target_ser: 1e-7\n"))
         assert cfg.link.sample_rate_hz == 1.92e6 and cfg.loading.target_ser == 1e-7
+
+
+def _driver_and_socket_sections():
+    from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
+    from brimline.daemon.runtime.config import (IqSection, LinkSection, PublishSection,
+                                                RadioSection, ReplaySection, SimSection,
+                                                StatusSection)
+    from brimline.drivers.link.frame import make_plan
+    from brimline.drivers.sources.iq import IqDriver
+    from brimline.drivers.sources.radio import RadioDriver
+    from brimline.drivers.sources.replay import ReplayDriver
+    from brimline.drivers.sources.sim import SimDriver
+    return [(PublishSection, MapPublisher), (StatusSection, StatusPublisher),
+            (ReplaySection, ReplayDriver), (SimSection, SimDriver), (IqSection, IqDriver),
+            (RadioSection, RadioDriver), (LinkSection, make_plan)]
+
+
+def test_other_sections_default_as_their_constructors():
+    """Sections whose keys are a constructor's keyword arguments keep its defaults (an empty
+    list stands for the constructor's empty tuple); a key the constructor requires has no
+    default in the section either."""
+    for section, cls in _driver_and_socket_sections():
+        params = inspect.signature(cls).parameters
+        for key, field in section.model_fields.items():
+            assert key in params, f"{section.__name__}.{key} is not a keyword of {cls.__name__}"
+            default = params[key].default
+            if default is inspect.Parameter.empty:
+                assert field.is_required(), f"{section.__name__}.{key}"
+                continue
+            ours = field.get_default(call_default_factory=True)
+            assert ours == (list(default) if isinstance(default, tuple) else default), \
+                f"{section.__name__}.{key}: {ours!r} != {cls.__name__}'s {default!r}"
