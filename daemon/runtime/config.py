@@ -8,6 +8,19 @@ and the offending value, e.g.::
 
 Each section is a frozen model; the code that owns a section's meaning documents its keys in the
 model's field descriptions. Cross-section checks live in ``Config``'s validators.
+
+One home per rule: a section whose keys are a constructor's keyword arguments does not write its
+own checks. It validates each key with the owner's limit table (``ESTIMATOR_LIMITS``,
+``CHANGE_LIMITS``, ``PUBLISH_LIMITS``, ``STATUS_LIMITS``, ``REPLAY_LIMITS``; see
+:mod:`brimline.daemon.limits`) and the owner's rules between keys (``check_change_settings``,
+``check_publish_settings``, ``check_interferer_window``, ``check_link``), which the constructor
+applies too. The estimator and change sections take their defaults from the constructors'
+signatures; the tests hold the other sections' defaults equal to their constructors'. The loading
+section checks ``bits`` with ``loading.allowed_bits``, the one allowed-bits rule. A new key goes
+into the constructor (default and limit) first, then into the section with its description.
+
+YAML is read with :class:`ConfigLoader`, which adds YAML 1.2's float rule so that ``1e6`` is a
+number.
 """
 
 from __future__ import annotations
