@@ -122,3 +122,13 @@ def test_rules_between_change_keys_hold_for_both():
         ChangeControl(_loader(), up_dwell_s=0.05, down_dwell_s=0.1)
     with pytest.raises(ConfigError, match=r"up_dwell_s=0.05 must be >= down_dwell_s=0.1"):
         parse_section(ChangeSection, {"up_dwell_s": 0.05}, where="x.yaml", name="change")
+
+
+def test_docstring_examples():
+    """The examples in the module's docstring run and print what they say."""
+    import doctest
+
+    from brimline.daemon import limits
+
+    result = doctest.testmod(limits)
+    assert result.attempted >= 3 and result.failed == 0
