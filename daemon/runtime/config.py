@@ -40,8 +40,8 @@ from brimline.daemon.core.loading import Loader, allowed_bits, check_target_bits
 from brimline.daemon.core.qam import TARGET_SER, qam_gap_db
 from brimline.daemon.errors import ConfigError
 from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, between, check_db
-from brimline.daemon.net.publisher import (PUBLISH_LIMITS, STATUS_LIMITS, MapPublisher,
-                                           StatusPublisher, check_publish_settings)
+from brimline.daemon.net.publisher import (PUBLISH_LIMITS, STATUS_LIMITS,
+                                           check_publish_settings)
 from brimline.drivers.air.channel import check_interferer_window
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
 from brimline.drivers.sources.replay import REPLAY_LIMITS
