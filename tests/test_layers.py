@@ -21,6 +21,7 @@ LAYER_OF = {
     "brimline.daemon": "ground",  # the package itself (__version__)
     "brimline.daemon.records": "ground",
     "brimline.daemon.errors": "ground",
+    "brimline.daemon.limits": "ground",
     "brimline.daemon.core": "core",
     "brimline.daemon.wire": "wire",
     "brimline.drivers.link": "link",

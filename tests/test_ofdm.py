@@ -11,9 +11,11 @@ import numpy as np
 import pytest
 from scipy.special import erfc
 
+from brimline.daemon.core.qam import grid_ser
 from brimline.daemon.errors import ConfigError
 from brimline.daemon.runtime.config import LinkSection, parse_section
 from brimline.drivers.air.channel import LinkChannel
+from brimline.drivers.link.demod import decision_threshold_lin
 from brimline.drivers.link.frame import (
     NO_MAP,
     FrameFormat,
@@ -26,7 +28,6 @@ from brimline.drivers.link.frame import (
     make_plan,
     qam_points,
 )
-from brimline.drivers.link.demod import decision_threshold_lin, grid_ser
 from brimline.drivers.link.receiver import Receiver
 from brimline.drivers.link.sync import block_sums, sliding_sums
 
@@ -77,7 +78,7 @@ class TestReferenceFormulas:
     @pytest.mark.parametrize("bits", range(1, 11))
     def test_agrees_with_loading_module(self, bits):
         """The loading engine's Gray-QAM BER (same rectangular grids) gives the same numbers."""
-        from brimline.daemon.core.loading import qam_ber
+        from brimline.daemon.core.qam import qam_ber
         for es_n0 in (3.0, 30.0, 300.0):
             if exact_qam_ber(bits, es_n0) < 1e-12:
                 continue  # both are exact; far tails differ only by rounding
@@ -485,14 +486,16 @@ class TestLowSnrTones:
 
 
 class TestDecisionThreshold:
-    def test_grid_ser_matches_loading_module(self):
-        """The receiver's closed-form grid SER agrees with the loading engine's exact QAM SER
-        (both Proakis 5th ed. sec. 4.3)."""
-        from brimline.daemon.core.loading import qam_ser
-        for bits in range(1, 11):
-            for es_n0 in (1.0, 10.0, 100.0):
-                assert float(grid_ser(bits, es_n0)) == pytest.approx(
-                    float(qam_ser(bits, es_n0)), rel=1e-6, abs=1e-15)
+    @pytest.mark.parametrize("bits", range(1, 13))
+    def test_link_grids_are_the_ones_the_formula_assumes(self, bits):
+        """The receiver's threshold comes from the shared QAM formula (brimline.daemon.core.qam,
+        Proakis 5th ed. sec. 4.3), which assumes a unit-energy rectangular grid of
+        2**ceil(b/2) x 2**floor(b/2) points: the link's own constellations are that grid."""
+        from brimline.drivers.link.frame import qam_points
+        pts = qam_points(bits)
+        assert np.unique(np.round(pts.real, 9)).size == 2 ** ((bits + 1) // 2)
+        assert np.unique(np.round(pts.imag, 9)).size == 2 ** (bits // 2)
+        assert np.mean(np.abs(pts) ** 2) == pytest.approx(1.0)
 
     def test_qpsk_threshold(self):
         """QPSK SER 2Q(sqrt(rho)) - Q^2 (Proakis 5th ed. sec. 4.3) is 1e-1 near rho = 2.664

@@ -13,7 +13,8 @@ import pytest
 
 from brimline.daemon.commands.cli import RF_CAUTION, main
 from brimline.daemon.commands.plan import bit_chart, parse_bit_list, read_snr_db
-from brimline.daemon.core.loading import load_margin, load_rate, qam_gap_db, waterfill
+from brimline.daemon.core.loading import load_margin, load_rate, waterfill
+from brimline.daemon.core.qam import qam_gap_db
 from brimline.daemon.errors import InputError
 
 ROOT = Path(__file__).resolve().parents[1]

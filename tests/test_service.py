@@ -19,23 +19,24 @@ import pytest
 import zmq
 from _service_fakes import ReloadEveryTime, ScriptedDriver, loopback_config
 
+from brimline.daemon.errors import RecordingError
 from brimline.daemon.net.follower import Follower
 from brimline.daemon.records import LoadMap
 from brimline.daemon.runtime.service import Service
 from brimline.daemon.runtime.status import band_columns, build_status
 from brimline.daemon.wire import codec
-from brimline.daemon.errors import RecordingError
 from brimline.daemon.wire.recording import RecordReader
 from brimline.daemon.wire.state import StateStore
 
 
 def _follower(svc: Service, adopted: list | None = None) -> Follower:
-    ld = svc.config.loading
-    return Follower(plan=svc.plan, map_endpoint=svc.endpoints["maps"],
-                    snapshot_endpoint=svc.endpoints["snapshots"],
-                    ack_endpoint=svc.endpoints["acks"], bits=list(ld.bits),
-                    budget_db=ld.budget_db, cap_db=ld.cap_db,
-                    on_map=None if adopted is None else adopted.append)
+    """A follower built from the config the one way (Follower.for_daemon), at the endpoints the
+    service actually bound."""
+    return Follower.for_daemon(svc.config.publish, svc.config.loading, plan=svc.plan,
+                               map_endpoint=svc.endpoints["maps"],
+                               snapshot_endpoint=svc.endpoints["snapshots"],
+                               ack_endpoint=svc.endpoints["acks"],
+                               on_map=None if adopted is None else adopted.append)
 
 
 def _pump(svc: Service, followers=(), *, until, timeout_s: float = 10.0) -> bool:

@@ -11,10 +11,10 @@ from brimline.daemon.errors import ConfigError, SourceError
 from brimline.daemon.records import LoadMap
 from brimline.daemon.runtime.config import IqSection, RadioSection, SimSection, parse_section
 from brimline.drivers.link.frame import make_plan
+from brimline.drivers.sources import sim as sim_module
 from brimline.drivers.sources.base import Driver
 from brimline.drivers.sources.iq import IqDriver, read_sigmf, write_sigmf
 from brimline.drivers.sources.radio import RadioDriver
-from brimline.drivers.sources import sim as sim_module
 from brimline.drivers.sources.sim import SimDriver
 
 

@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from brimline.daemon.core.loading import MAX_BITS, waterfill
+from brimline.daemon.core.loading import allowed_bits, waterfill
 from brimline.daemon.errors import InputError
 from brimline.daemon.runtime.config import LoadingSection, load_config
 
@@ -81,9 +81,7 @@ def parse_bit_list(text: str) -> list[int]:
                 out.append(int(part))
         except ValueError:
             raise InputError(f"--bits={text!r}: {part!r} is not a bit count or range a-b") from None
-    if not out or out[0] != 0 or any(b <= a for a, b in zip(out, out[1:])) or out[-1] > MAX_BITS:
-        raise InputError(f"--bits={text!r} must be ascending, start at 0 and stay <= {MAX_BITS}")
-    return out
+    return list(allowed_bits(out, key="--bits", shown=repr(text), error=InputError))
 
 
 def read_snr_db(path: str | Path) -> np.ndarray:

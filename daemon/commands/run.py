@@ -23,8 +23,8 @@ from pathlib import Path
 
 from brimline.daemon.commands.cli import RF_CAUTION
 from brimline.daemon.errors import InputError, StateError
-from brimline.daemon.runtime.config import Config, load_config
 from brimline.daemon.runtime.assemble import build_core, make_driver
+from brimline.daemon.runtime.config import Config, load_config
 from brimline.daemon.runtime.service import Service
 from brimline.daemon.runtime.status import summary_line
 from brimline.daemon.wire.recording import recording_paths

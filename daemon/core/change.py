@@ -55,13 +55,64 @@ a tone between allowed levels at its required power and check the totals).
 from __future__ import annotations
 
 import math
+from types import MappingProxyType
+from typing import Any, Mapping
 
 import numpy as np
 
+from brimline.daemon.core.loading import uniform_margin_db
 from brimline.daemon.errors import InfeasibleError
+from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, between, check_values
 from brimline.daemon.records import Allocation, Decision, DecisionKind, Tracked
 
-__all__ = ["ChangeControl"]
+__all__ = ["ChangeControl", "CHANGE_LIMITS", "check_change_settings"]
+
+#: The limit of each keyword argument of :class:`ChangeControl` (besides ``loader``), checked by
+#: the constructor and by the ``change:`` config section alike (the defaults are the
+#: constructor's own). The rules between keys are :func:`check_change_settings`'s.
+CHANGE_LIMITS = MappingProxyType({
+    "downshift_margin_db": FINITE,
+    "upshift_margin_db": FINITE,
+    "min_gain_bits": at_least(0),
+    "down_dwell_s": NON_NEGATIVE,
+    "down_persist_s": NON_NEGATIVE,
+    "down_deep_db": at_least(0, allow_inf=True),  # inf: every drop waits for down_persist_s
+    "up_dwell_s": NON_NEGATIVE,
+    "upgrade_check_s": NON_NEGATIVE,
+    "max_maps_per_s": POSITIVE,
+    "swap_max_tones": at_least(0),
+    "swap_max_loss_bits": at_least(0),
+    "emergency_fraction": between(0, 1, low_open=True),
+    "emergency_drop_db": POSITIVE,
+    "emergency_margin_db": NON_NEGATIVE,
+})
+
+
+def check_change_settings(settings: Mapping[str, Any], *, prefix: str = "") -> None:
+    """Check change-control settings: each against :data:`CHANGE_LIMITS`, then their order.
+
+    Parameters
+    ----------
+    settings : mapping
+        Keyword arguments of :class:`ChangeControl` (all of them for the rules between keys).
+    prefix : str
+        Put before each key in messages (``"change."``).
+
+    Raises
+    ------
+    ValueError
+        ``change.max_maps_per_s=0.0 must be a positive finite number``; ``downshift_margin_db``
+        not below ``upshift_margin_db``; ``up_dwell_s`` shorter than ``down_dwell_s``.
+    """
+    check_values(settings, CHANGE_LIMITS, prefix=prefix)
+    down, up = settings.get("downshift_margin_db"), settings.get("upshift_margin_db")
+    if down is not None and up is not None and not down < up:
+        raise ValueError(f"{prefix}downshift_margin_db={down} must be below "
+                         f"{prefix}upshift_margin_db={up}")
+    down, up = settings.get("down_dwell_s"), settings.get("up_dwell_s")
+    if down is not None and up is not None and up < down:
+        raise ValueError(f"{prefix}up_dwell_s={up} must be >= {prefix}down_dwell_s={down}")
+
 
 _KEEP = DecisionKind.KEEP
 _MAX_SNR_DB = 100.0   # no tone is better than this; keeps the linear SNR finite
@@ -109,7 +160,9 @@ class ChangeControl:
     Notes
     -----
     The keyword arguments besides ``loader`` are exactly the keys of the ``change:`` config
-    section (:class:`brimline.daemon.runtime.config.ChangeSection`), where their defaults live.
+    section (:class:`brimline.daemon.runtime.config.ChangeSection`). Their defaults here are the
+    only ones: the config section takes its defaults from this signature, and its checks from
+    :func:`check_change_settings`.
     """
 
     def __init__(self, loader, *, downshift_margin_db: float = -1.5,
@@ -120,24 +173,9 @@ class ChangeControl:
                  swap_max_tones: int = 16, swap_max_loss_bits: int = 4,
                  emergency_fraction: float = 0.25, emergency_drop_db: float = 6.0,
                  emergency_margin_db: float = 3.0) -> None:
-        if not downshift_margin_db < upshift_margin_db:
-            raise ValueError(f"change.downshift_margin_db={downshift_margin_db} must be below "
-                             f"change.upshift_margin_db={upshift_margin_db}")
-        if not (math.isfinite(max_maps_per_s) and max_maps_per_s > 0):
-            raise ValueError(f"change.max_maps_per_s={max_maps_per_s} must be positive")
-        if not 0 < emergency_fraction <= 1:
-            raise ValueError(f"change.emergency_fraction={emergency_fraction} must be in (0, 1]")
-        if not (down_deep_db >= 0):   # inf allowed: persistence for every drop
-            raise ValueError(f"change.down_deep_db={down_deep_db} must be >= 0")
-        for name, value in (("down_dwell_s", down_dwell_s), ("down_persist_s", down_persist_s),
-                            ("up_dwell_s", up_dwell_s),
-                            ("upgrade_check_s", upgrade_check_s),
-                            ("emergency_margin_db", emergency_margin_db),
-                            ("emergency_drop_db", emergency_drop_db),
-                            ("min_gain_bits", min_gain_bits), ("swap_max_tones", swap_max_tones),
-                            ("swap_max_loss_bits", swap_max_loss_bits)):
-            if not (math.isfinite(value) and value >= 0):
-                raise ValueError(f"change.{name}={value} must be finite and >= 0")
+        settings = dict(locals())  # the keyword arguments, before any other name is bound
+        del settings["self"], settings["loader"]
+        check_change_settings(settings, prefix="change.")
         self.loader = loader
         self.downshift_margin_db = float(downshift_margin_db)
         self.upshift_margin_db = float(upshift_margin_db)
@@ -477,7 +515,7 @@ class ChangeControl:
         if total_power > budget * (1 + 1e-9) or (power > self._cap_lin * (1 + 1e-9)).any():
             return None
         need = loader.required_power(bits, snr)
-        margin_db = _uniform_margin_db(need, budget, self._cap_lin)
+        margin_db = uniform_margin_db(need, budget, self._cap_lin)
         alloc = Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
                            total_power=total_power, margin_db=margin_db)
         return alloc, int(np.count_nonzero((cur.bits != bits) | (cur.power != power)))
@@ -489,14 +527,3 @@ def _lin(db: np.ndarray) -> np.ndarray:
 
 def _tones(n: int) -> str:
     return f"{n} tone" if n == 1 else f"{n} tones"
-
-
-def _uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
-    """Largest uniform growth of the required powers within budget and ceiling, dB."""
-    total = float(need.sum())
-    if total <= 0:
-        return math.inf
-    factor = budget / total
-    if math.isfinite(cap):
-        factor = min(factor, cap / float(need.max()))
-    return 10.0 * math.log10(factor)

@@ -47,8 +47,7 @@ from typing import Callable
 import numpy as np
 
 from brimline.daemon.errors import BrimlineError
-from brimline.daemon.records import Allocation, DecisionKind, Estimate, LoadMap, TonePlan, \
-    Tracked
+from brimline.daemon.records import Allocation, DecisionKind, Estimate, LoadMap, TonePlan, Tracked
 
 __all__ = ["Change", "Step", "LinkController", "REJECTED"]
 

@@ -75,15 +75,36 @@ state stays as it was.
 from __future__ import annotations
 
 import math
+from types import MappingProxyType
 
 import numpy as np
 
+from brimline.daemon.limits import NON_NEGATIVE, POSITIVE, between, check_values
 from brimline.daemon.records import Estimate, Tracked
 
-__all__ = ["Estimator", "REJECT_REASONS"]
+__all__ = ["Estimator", "ESTIMATOR_LIMITS", "REJECT_REASONS"]
 
 #: Half-width in tones of the pooling of innovations that detects lag (see ``lag_sigmas``).
 LAG_POOL_TONES = 4
+
+#: The limit of each keyword argument of :class:`Estimator`, checked by the constructor and by
+#: the ``estimator:`` config section alike (the defaults are the constructor's own).
+ESTIMATOR_LIMITS = MappingProxyType({
+    "tau_s": POSITIVE,
+    "std_tau_s": POSITIVE,
+    "std_init_db": POSITIVE,
+    "backoff_sigmas": NON_NEGATIVE,
+    "outlier_db": POSITIVE,
+    "outlier_sigmas": NON_NEGATIVE,
+    "confirm_frames": between(1, 100),
+    "frame_outlier_fraction": between(0, 1, low_open=True),
+    "stale_s": POSITIVE,
+    "tone_window": between(0, 16),
+    "tone_agree_db": NON_NEGATIVE,
+    "trend_tau_s": NON_NEGATIVE,
+    "lag_sigmas": NON_NEGATIVE,
+    "tau_min_s": POSITIVE,
+})
 
 #: Reasons :meth:`Estimator.update` can return, each also a key of :attr:`Estimator.counters`.
 REJECT_REASONS = (
@@ -139,7 +160,9 @@ class Estimator:
     Notes
     -----
     The keyword arguments are exactly the keys of the ``estimator:`` config section
-    (:class:`brimline.daemon.runtime.config.EstimatorSection`), where their defaults live.
+    (:class:`brimline.daemon.runtime.config.EstimatorSection`). Their defaults here are the only
+    ones: the config section takes its defaults from this signature, and their limits from
+    :data:`ESTIMATOR_LIMITS`.
 
     Examples
     --------
@@ -155,23 +178,8 @@ class Estimator:
                  tone_window: int = 2, tone_agree_db: float = 2.0,
                  trend_tau_s: float = 0.0, lag_sigmas: float = 2.0,
                  tau_min_s: float = 0.015) -> None:
-        for name, value in (("tau_s", tau_s), ("std_tau_s", std_tau_s),
-                            ("std_init_db", std_init_db), ("outlier_db", outlier_db),
-                            ("stale_s", stale_s), ("tau_min_s", tau_min_s)):
-            if not (math.isfinite(value) and value > 0):
-                raise ValueError(f"estimator.{name}={value} must be positive and finite")
-        for name, value in (("backoff_sigmas", backoff_sigmas),
-                            ("outlier_sigmas", outlier_sigmas), ("tone_agree_db", tone_agree_db),
-                            ("trend_tau_s", trend_tau_s), ("lag_sigmas", lag_sigmas)):
-            if not (math.isfinite(value) and value >= 0):
-                raise ValueError(f"estimator.{name}={value} must be finite and >= 0")
-        if int(confirm_frames) < 1:
-            raise ValueError(f"estimator.confirm_frames={confirm_frames} must be >= 1")
-        if not 0 < frame_outlier_fraction <= 1:
-            raise ValueError(f"estimator.frame_outlier_fraction={frame_outlier_fraction} "
-                             "must be in (0, 1]")
-        if int(tone_window) < 0:
-            raise ValueError(f"estimator.tone_window={tone_window} must be >= 0")
+        # locals() holds exactly the keyword arguments here, before any other name is bound.
+        check_values(locals(), ESTIMATOR_LIMITS, prefix="estimator.")
         self.tau_s = float(tau_s)
         self.std_tau_s = float(std_tau_s)
         self.std_init_db = float(std_init_db)

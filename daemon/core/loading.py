@@ -1,4 +1,6 @@
-"""Bit and power loading over OFDM tones: SNR gap, QAM error rates, water-filling, discrete loading.
+"""Bit and power loading over OFDM tones: water-filling and discrete (Levin-Campello) loading.
+
+The QAM theory it rests on (the SNR gap, error rates) is :mod:`brimline.daemon.core.qam`.
 
 Conventions shared by everything here (other modules and the tests rely on them):
 
@@ -27,52 +29,24 @@ from dataclasses import dataclass
 from typing import Iterable
 
 import numpy as np
-from scipy import special
 
-from brimline.daemon.core._lattice_cells import constellation_ser, cross_points
+from brimline.daemon.core.qam import MAX_BITS
 from brimline.daemon.errors import InfeasibleError, InputError
+from brimline.daemon.limits import check_db
 from brimline.daemon.records import Allocation, frozen_array
 
 __all__ = [
-    "qam_gap_db",
-    "qam_ser",
-    "qam_ber",
+    "allowed_bits",
+    "check_target_bits",
+    "uniform_margin_db",
     "Waterfill",
     "waterfill",
     "load_rate",
     "load_margin",
     "Loader",
-    "MAX_BITS",
 ]
 
-#: Largest bits per tone the loaders accept (65536-QAM).
-MAX_BITS = 16
-
-#: Largest magnitude accepted for a dB setting (gap, budget, ceiling, margin): far beyond any
-#: link, and small enough that every linear value stays a normal float.
-DB_LIMIT = 300.0
-
-#: Nearest-neighbour count used by the gap formula: a large square QAM is two PAM dimensions and
-#: an inner PAM point has two neighbours (the per-dimension count of the gap approximation,
-#: Cioffi's DMT notes ch. 1; from memory for the form). With it a symbol error rate of 1e-7 gives
-#: 9.76 dB, the common-practice "9.8 dB" gap of uncoded QAM.
-GAP_NEIGHBOURS = 2.0
-
-
 # --------------------------------------------------------------------------- validation
-
-
-def _finite_db(name: str, value, *, allow_pos_inf: bool = False) -> float:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise InputError(f"{name}={value!r} must be a number in dB") from None
-    if math.isnan(v) or v == -math.inf or (v == math.inf and not allow_pos_inf):
-        what = "finite or +inf" if allow_pos_inf else "finite"
-        raise InputError(f"{name}={value!r} must be {what}")
-    if math.isfinite(v) and abs(v) > DB_LIMIT:
-        raise InputError(f"{name}={value!r} is beyond +-{DB_LIMIT:g} dB")
-    return v
 
 
 def _as_snr(snr) -> np.ndarray:
@@ -108,22 +82,88 @@ class _BitTables:
     key_spacing: float       # smallest gap between consecutive step keys
 
 
-def _as_bit_set(bits) -> _BitTables:
-    """Validate an allowed-bits set (integers, strictly ascending, from 0, <= MAX_BITS) and
-    return its tables."""
+def allowed_bits(bits, *, key: str = "bits", shown: str | None = None,
+                 error: type[Exception] = ValueError) -> tuple[int, ...]:
+    """Check an allowed-bits set: integers, strictly ascending, starting at 0, at most MAX_BITS.
+
+    The one rule for the bit counts a loader may use; the ``loading.bits`` config key, the
+    :class:`Loader`, the ``plan`` command's ``--bits`` and the transmitter's :class:`Follower`
+    all apply it. Holes are allowed (``0, 1, 2, 4, 6, 8``).
+
+    Parameters
+    ----------
+    bits : iterable of int
+        The set, in order.
+    key : str
+        Its name in the message (``bits``, ``--bits``).
+    shown : str, optional
+        The value as the user wrote it, for the message (``'0-8'``); default: the list.
+    error : exception class
+        Raised when the set breaks the rule (``InputError`` for user input outside a config).
+
+    Returns
+    -------
+    tuple of int
+
+    Examples
+    --------
+    >>> allowed_bits(range(4))
+    (0, 1, 2, 3)
+    """
     try:
         values = tuple(bits)
     except TypeError:
-        raise InputError(f"bits={bits!r} must be a list of integers") from None
+        raise error(f"{key}={bits!r} must be a list of integers") from None
     if not values or not all(isinstance(b, (int, np.integer)) and not isinstance(b, bool)
                              for b in values):
-        raise InputError(f"bits={list(values)!r} must be a non-empty list of integers")
+        raise error(f"{key}={list(values)!r} must be a non-empty list of integers")
     values = tuple(int(b) for b in values)
     if values[0] != 0 or any(b <= a for a, b in zip(values, values[1:])) \
             or values[-1] > MAX_BITS:
-        raise InputError(f"bits={list(values)!r} must be ascending, start at 0 and stay "
-                         f"<= {MAX_BITS}")
-    return _bit_tables(values)
+        shown = repr(list(values)) if shown is None else shown
+        raise error(f"{key}={shown} must be ascending, start at 0 and stay <= {MAX_BITS}")
+    return values
+
+
+def uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
+    """Largest uniform growth of the required powers within budget and ceiling, dB.
+
+    Parameters
+    ----------
+    need : ndarray
+        Required power per tone, linear (0 on unloaded tones).
+    budget : float
+        Total power budget, linear.
+    cap : float
+        Per-tone ceiling, linear (``inf``: none).
+
+    Returns
+    -------
+    float
+        ``10 log10(min(budget / sum(need), cap / max(need)))``; ``+inf`` when nothing is loaded.
+        This is an allocation's ``margin_db`` (see the module notes), for the loader and for
+        change control's bit swaps alike.
+    """
+    total = float(need.sum())
+    if total <= 0.0:
+        return math.inf
+    factor = budget / total
+    if math.isfinite(cap):
+        factor = min(factor, cap / float(need.max()))
+    return 10.0 * math.log10(factor)
+
+
+def check_target_bits(target_bits, *, error: type[Exception] = ValueError) -> int:
+    """``target_bits`` (bits per OFDM symbol of margin mode) as an int: an integer >= 0."""
+    if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
+            or target_bits < 0:
+        raise error(f"target_bits={target_bits!r} must be an integer >= 0")
+    return int(target_bits)
+
+
+def _as_bit_set(bits) -> _BitTables:
+    """Validate an allowed-bits set (see :func:`allowed_bits`) and return its tables."""
+    return _bit_tables(allowed_bits(bits, error=InputError))
 
 
 @functools.lru_cache(maxsize=64)
@@ -143,183 +183,6 @@ def _bit_tables(values: tuple[int, ...]) -> _BitTables:
                   tables.step_key):
         table.setflags(write=False)
     return tables
-
-
-# --------------------------------------------------------------------------- gap and error rates
-
-
-def qam_gap_db(target_ser: float, *, coding_gain_db: float = 0.0, margin_db: float = 0.0,
-               neighbours: float = GAP_NEIGHBOURS) -> float:
-    """SNR gap of uncoded QAM for a target symbol error rate, with coding gain and margin.
-
-    Parameters
-    ----------
-    target_ser : float
-        Target symbol error probability, in (0, 0.5).
-    coding_gain_db : float
-        Coding gain in dB, subtracted from the gap.
-    margin_db : float
-        Target noise margin in dB, added to the gap.
-    neighbours : float
-        Nearest-neighbour count ``Ne`` (default 2, see :data:`GAP_NEIGHBOURS`).
-
-    Returns
-    -------
-    float
-        ``10*log10(Q^-1(Pe/Ne)**2 / 3) - coding_gain_db + margin_db`` in dB.
-
-    Raises
-    ------
-    InputError
-        ``target_ser`` outside (0, 0.5) or a non-finite dB value.
-
-    Notes
-    -----
-    The gap approximation ``b = log2(1 + SNR / Gamma)`` with ``Gamma = [Q^-1(Pe/Ne)]^2 / 3`` for
-    uncoded QAM (Cioffi's DMT notes, ch. 1; the usual reading of the SNR gap). ``Q^-1`` is
-    computed as ``sqrt(2) * erfcinv(2 x)``.
-
-    Examples
-    --------
-    >>> round(qam_gap_db(1e-7), 2)
-    9.76
-    """
-    try:
-        pe = float(target_ser)
-    except (TypeError, ValueError):
-        raise InputError(f"target_ser={target_ser!r} must be a number") from None
-    if not 0.0 < pe < 0.5:
-        raise InputError(f"target_ser={target_ser!r} must be in (0, 0.5)")
-    cg = _finite_db("coding_gain_db", coding_gain_db)
-    mg = _finite_db("margin_db", margin_db)
-    if not (math.isfinite(neighbours) and neighbours >= 1.0):
-        raise InputError(f"neighbours={neighbours!r} must be >= 1")
-    q_inv = math.sqrt(2.0) * float(special.erfcinv(2.0 * pe / neighbours))
-    return 10.0 * math.log10(q_inv * q_inv / 3.0) - cg + mg
-
-
-def _qfunc(x):
-    """Gaussian tail probability Q(x) = P(N(0,1) > x)."""
-    return 0.5 * special.erfc(np.asarray(x, dtype=np.float64) / math.sqrt(2.0))
-
-
-def _grid_shape(bits_per_symbol: int) -> tuple[int, int]:
-    """Levels per dimension (in-phase, quadrature) of the rectangular QAM with that many bits."""
-    if not isinstance(bits_per_symbol, (int, np.integer)) or not 1 <= bits_per_symbol <= MAX_BITS:
-        raise InputError(f"bits_per_symbol={bits_per_symbol!r} must be an integer in 1..{MAX_BITS}")
-    k_i = (int(bits_per_symbol) + 1) // 2
-    return 2 ** k_i, 2 ** (int(bits_per_symbol) - k_i)
-
-
-def _half_distance(es_n0, m_i: int, m_q: int) -> np.ndarray:
-    """d/2 over the noise standard deviation per dimension, ``d / sqrt(2 N0)``.
-
-    A rectangular grid of ``m_i x m_q`` points spaced ``d`` has average energy
-    ``d**2 * (m_i**2 + m_q**2 - 2) / 12``.
-    """
-    es_n0 = np.asarray(es_n0, dtype=np.float64)
-    return np.sqrt(6.0 * es_n0 / (m_i * m_i + m_q * m_q - 2))
-
-
-def qam_ser(bits_per_symbol: int, es_n0, *, cross: bool = False) -> np.ndarray:
-    """Exact symbol error probability of square, rectangular or cross QAM on AWGN.
-
-    Parameters
-    ----------
-    bits_per_symbol : int
-        1 (BPSK), 2 (4-QAM), 3 (4x2 rectangular), 4 (16-QAM), ... Without ``cross`` an odd
-        count uses the rectangular grid of ``2**ceil(b/2) x 2**floor(b/2)`` points.
-    es_n0 : float or array_like
-        Average symbol energy over N0, linear.
-    cross : bool
-        Use the cross constellation (odd ``bits_per_symbol`` >= 5: 32-, 128-, 512-QAM ...).
-
-    Returns
-    -------
-    ndarray
-        Symbol error probability, same shape as ``es_n0``.
-
-    Notes
-    -----
-    Minimum-distance detection on a rectangular grid decides each dimension separately, so
-    ``P_c = (1 - P_I)(1 - P_Q)`` with the M-PAM error ``P = 2 (1 - 1/M) Q(d / sqrt(2 N0))``
-    (Proakis, Digital Communications, 5th ed., sec. 4.3: for square M this is
-    ``1 - (1 - P_sqrtM)**2`` with ``P_sqrtM = 2 (1 - 1/sqrt(M)) Q(sqrt(3 Es / ((M - 1) N0)))``).
-    A cross constellation's cells next to the missing corners are not rectangles; its error
-    rate is integrated cell by cell (``brimline.daemon.core._lattice_cells``), to about 1e-10
-    relative, one SNR value at a time (milliseconds each: for tables and tests, not per frame).
-    """
-    if cross:
-        if not isinstance(bits_per_symbol, (int, np.integer)) or bits_per_symbol < 5 \
-                or bits_per_symbol % 2 == 0 or bits_per_symbol > 13:
-            raise InputError(f"bits_per_symbol={bits_per_symbol!r} must be odd, 5..13 for a "
-                             "cross constellation")
-        pts = cross_points(int(bits_per_symbol))
-        values = np.asarray(es_n0, dtype=np.float64)
-        out = np.array([constellation_ser(pts, float(v)) for v in values.ravel()])
-        return out.reshape(values.shape)
-    m_i, m_q = _grid_shape(bits_per_symbol)
-    x = _half_distance(es_n0, m_i, m_q)
-    q = _qfunc(x)
-    p_i = 2.0 * (1.0 - 1.0 / m_i) * q
-    p_q = 2.0 * (1.0 - 1.0 / m_q) * q if m_q > 1 else np.zeros_like(q)
-    return p_i + p_q - p_i * p_q  # = 1 - (1 - p_i)(1 - p_q), without cancelling
-
-
-def _gray_pam_bit_errors(m: int, x: np.ndarray) -> np.ndarray:
-    """Average bit errors per symbol of Gray-coded M-PAM, exact, for half-distance ratios ``x``.
-
-    Sums, over every transmitted level and every decision interval, the Hamming distance of the
-    two Gray labels times the probability that the noise lands in that interval.
-    """
-    if m == 1:
-        return np.zeros_like(x)
-    levels = np.arange(m)
-    gray = levels ^ (levels >> 1)
-    ham = np.array([[bin(int(a ^ b)).count("1") for b in gray] for a in gray], dtype=np.float64)
-    # Decision boundaries are half-way between levels: in units of d/2 from level i's centre,
-    # interval j spans (2(j - i) - 1, 2(j - i) + 1), the outer ones open to infinity.
-    offs = 2.0 * (levels[None, :] - levels[:, None])  # (tx, rx)
-    lo = np.where(levels[None, :] == 0, -np.inf, offs - 1.0)
-    hi = np.where(levels[None, :] == m - 1, np.inf, offs + 1.0)
-    xx = x.reshape(-1, 1, 1)
-    # P(lo x < Z < hi x) for a standard normal Z, from the near tail so nothing cancels
-    # (the error terms are tiny at high SNR; the straddling interval has Hamming distance 0).
-    with np.errstate(invalid="ignore"):
-        below = special.ndtr(hi * xx) - special.ndtr(lo * xx)
-        above = _qfunc(lo * xx) - _qfunc(hi * xx)
-    prob = np.where(hi <= 0, below, above)
-    errs = (prob * ham).sum(axis=(1, 2)) / m
-    return errs.reshape(x.shape)
-
-
-def qam_ber(bits_per_symbol: int, es_n0) -> np.ndarray:
-    """Exact bit error probability of Gray-coded square or rectangular QAM on AWGN.
-
-    Parameters
-    ----------
-    bits_per_symbol : int
-        Bits per QAM symbol (see :func:`qam_ser` for the grid used).
-    es_n0 : float or array_like
-        Average symbol energy over N0, linear (``Eb/N0 = Es/N0 / bits_per_symbol``).
-
-    Returns
-    -------
-    ndarray
-        Bit error probability, same shape as ``es_n0``.
-
-    Notes
-    -----
-    Each dimension is a Gray-coded PAM decided separately; the bit errors of each are summed
-    exactly over transmitted levels and decision intervals. This equals the closed form of Cho
-    and Yoon, "On the general BER expression of one- and two-dimensional amplitude modulations",
-    IEEE Trans. Commun. 50(7), 2002, which the tests check it against.
-    """
-    m_i, m_q = _grid_shape(bits_per_symbol)
-    x = np.atleast_1d(_half_distance(es_n0, m_i, m_q))
-    errs = _gray_pam_bit_errors(m_i, x) + _gray_pam_bit_errors(m_q, x)
-    out = errs / bits_per_symbol
-    return out.reshape(np.shape(es_n0))
 
 
 # --------------------------------------------------------------------------- water-filling
@@ -420,9 +283,9 @@ def waterfill(snr, *, gap_db: float = 0.0, budget_db: float = 0.0,
     (3.0, [2.0, 1.0, 0.0])
     """
     snr = _as_snr(snr)
-    gap = 10.0 ** (_finite_db("gap_db", gap_db) / 10.0)
-    budget = snr.size * 10.0 ** (_finite_db("budget_db", budget_db) / 10.0)
-    cap = 10.0 ** (_finite_db("cap_db", cap_db, allow_pos_inf=True) / 10.0)
+    gap = 10.0 ** (check_db("gap_db", gap_db, error=InputError) / 10.0)
+    budget = snr.size * 10.0 ** (check_db("budget_db", budget_db, error=InputError) / 10.0)
+    cap = 10.0 ** (check_db("cap_db", cap_db, allow_pos_inf=True, error=InputError) / 10.0)
     active = snr > 0.0
     floor_lin = gap / snr[active]
     mu = _water_level(floor_lin, budget, cap)
@@ -513,14 +376,11 @@ class Loader:
         if mode not in ("rate", "margin", "waterfill"):
             raise InputError(f"mode={mode!r} must be one of rate, margin, waterfill")
         tables = _as_bit_set(bits)
-        gap_db = _finite_db("gap_db", gap_db)
-        budget_db = _finite_db("budget_db", budget_db)
-        cap_db = _finite_db("cap_db", cap_db, allow_pos_inf=True)
+        gap_db = check_db("gap_db", gap_db, error=InputError)
+        budget_db = check_db("budget_db", budget_db, error=InputError)
+        cap_db = check_db("cap_db", cap_db, allow_pos_inf=True, error=InputError)
         if target_bits is not None:
-            if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
-                    or target_bits < 0:
-                raise InputError(f"target_bits={target_bits!r} must be an integer >= 0")
-            target_bits = int(target_bits)
+            target_bits = check_target_bits(target_bits, error=InputError)
         if mode == "margin" and target_bits is None:
             raise InputError("target_bits is required with mode='margin'")
         gap = 10.0 ** (gap_db / 10.0)
@@ -642,13 +502,7 @@ class Loader:
 
     def _margin(self, need: np.ndarray, budget: float) -> float:
         """Largest uniform growth factor of the required powers, in dB (+inf if none loaded)."""
-        total = float(need.sum())
-        if total <= 0.0:
-            return math.inf
-        factor = budget / total
-        if math.isfinite(self._cap):
-            factor = min(factor, self._cap / float(need.max()))
-        return 10.0 * math.log10(factor)
+        return uniform_margin_db(need, budget, self._cap)
 
     # ---------------------------------------------------------------- searches
 
@@ -876,10 +730,7 @@ class Loader:
         return self._margin_mode(_as_snr(snr), target_bits)
 
     def _margin_mode(self, snr: np.ndarray, target_bits: int) -> Allocation:
-        if isinstance(target_bits, bool) or not isinstance(target_bits, (int, np.integer)) \
-                or target_bits < 0:
-            raise InputError(f"target_bits={target_bits!r} must be an integer >= 0")
-        target = int(target_bits)
+        target = check_target_bits(target_bits, error=InputError)
         budget = self._budget(snr.size)
         tones = self._tones(snr, budget)
         if target > int(self.bits[tones.top].sum()):

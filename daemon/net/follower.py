@@ -21,20 +21,29 @@ import collections
 import math
 import time
 from pathlib import Path
+from types import MappingProxyType
 from typing import Callable, Iterable, Sequence
 
 import numpy as np
 import zmq
 
+from brimline.daemon.core.loading import allowed_bits
 from brimline.daemon.errors import ProtocolError
+from brimline.daemon.limits import POSITIVE, check_values
 from brimline.daemon.net.curve import apply_client
 from brimline.daemon.records import LoadMap, TonePlan
 from brimline.daemon.wire import codec
 
-__all__ = ["Follower", "check_map"]
+__all__ = ["Follower", "check_map", "FOLLOWER_LIMITS"]
 
 _MAX_HELD = 256  # updates held while a snapshot is awaited (newest kept)
 _MAX_PER_POLL = 256  # messages handled per poll call
+
+#: Limits of :class:`Follower`'s numeric keyword arguments (it has no config section of its own).
+FOLLOWER_LIMITS = MappingProxyType({
+    "heartbeat_timeout_s": POSITIVE,
+    "snapshot_timeout_s": POSITIVE,
+})
 
 
 def check_map(load_map: LoadMap, *, plan_id: str, tone_index: np.ndarray,
@@ -116,7 +125,8 @@ class Follower:
     ack_endpoint : str or None
         The daemon's ack PULL (``tcp://127.0.0.1:7344``); None sends no acks.
     bits : iterable of int
-        Allowed bits per tone.
+        Allowed bits per tone, by the loader's rule (ascending from 0, see
+        :func:`brimline.daemon.core.loading.allowed_bits`).
     budget_db : float
         Total power budget relative to N tones at nominal, dB (as ``loading.budget_db``).
     cap_db : float
@@ -162,16 +172,12 @@ class Follower:
                  clock: Callable[[], float] = time.monotonic) -> None:
         if (curve_server_key is None) != (curve_client_key is None):
             raise ValueError("CURVE needs both curve_server_key and curve_client_key")
-        for name, v in (("heartbeat_timeout_s", heartbeat_timeout_s),
-                        ("snapshot_timeout_s", snapshot_timeout_s)):
-            if not (math.isfinite(v) and v > 0):
-                raise ValueError(f"{name}={v} must be finite and > 0")
+        check_values(dict(heartbeat_timeout_s=heartbeat_timeout_s,
+                          snapshot_timeout_s=snapshot_timeout_s), FOLLOWER_LIMITS)
         self.plan = plan
         self._plan_id = plan.plan_id
         self._tones = plan.data_tones
-        self._bits = sorted(int(b) for b in bits)
-        if not self._bits or self._bits[0] < 0 or self._bits[-1] > 255:
-            raise ValueError(f"bits={self._bits} must be within 0..255")
+        self._bits = list(allowed_bits(bits))
         self._budget_lin = plan.data_tones.size * 10.0 ** (budget_db / 10.0)
         self._cap_lin = 10.0 ** (cap_db / 10.0)
         self._tolerance = float(tolerance)

@@ -21,20 +21,52 @@ to the thread that uses the publisher.
 from __future__ import annotations
 
 import collections
-import math
 from pathlib import Path
-from typing import Any
+from types import MappingProxyType
+from typing import Any, Mapping
 
 import zmq
 
 from brimline.daemon.errors import ProtocolError
+from brimline.daemon.limits import NON_NEGATIVE, POSITIVE, at_least, check_values
 from brimline.daemon.net.curve import CurveServer
 from brimline.daemon.records import LoadMap
 from brimline.daemon.wire import codec
 
-__all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint"]
+__all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint", "PUBLISH_LIMITS",
+           "STATUS_LIMITS", "check_publish_settings"]
 
 _MAX_PER_CALL = 64  # requests or acks handled per call, so one burst cannot starve the loop
+
+#: Limits of :class:`MapPublisher`'s numeric keyword arguments, checked by the constructor and
+#: by the ``publish:`` config section alike; the rule between keys is
+#: :func:`check_publish_settings`'s.
+PUBLISH_LIMITS = MappingProxyType({
+    "heartbeat_s": POSITIVE,
+    "map_hwm": at_least(1),
+    "linger_s": NON_NEGATIVE,
+})
+
+#: Limits of :class:`StatusPublisher`'s numeric keyword arguments (the ``status:`` section).
+STATUS_LIMITS = MappingProxyType({
+    "rate_hz": POSITIVE,
+    "hwm": at_least(1),
+})
+
+
+def check_publish_settings(settings: Mapping[str, Any], *, prefix: str = "") -> None:
+    """Check :class:`MapPublisher` settings: each against :data:`PUBLISH_LIMITS`, then that
+    ``curve_clients_dir`` comes with ``curve_secret_key``.
+
+    Raises
+    ------
+    ValueError
+        Naming the key and value (``publish.heartbeat_s=0 must be a positive finite number``).
+    """
+    check_values(settings, PUBLISH_LIMITS, prefix=prefix)
+    if settings.get("curve_clients_dir") is not None \
+            and settings.get("curve_secret_key") is None:
+        raise ValueError(f"{prefix}curve_clients_dir needs {prefix}curve_secret_key")
 
 
 def bind_endpoint(socket: zmq.Socket, endpoint: str) -> str:
@@ -61,8 +93,7 @@ class _Sockets:
     """Context ownership and ordered, idempotent shutdown shared by both publishers."""
 
     def __init__(self, context: zmq.Context | None, linger_s: float) -> None:
-        if not (math.isfinite(linger_s) and linger_s >= 0):
-            raise ValueError(f"linger_s={linger_s} must be finite and >= 0")
+        NON_NEGATIVE.check("linger_s", linger_s)
         self._own_context = context is None
         self.context = zmq.Context() if context is None else context
         self._linger_ms = int(round(linger_s * 1000))
@@ -150,10 +181,9 @@ class MapPublisher(_Sockets):
                  curve_secret_key: str | Path | None = None,
                  curve_clients_dir: str | Path | None = None,
                  context: zmq.Context | None = None, epoch: str | None = None) -> None:
-        if not (math.isfinite(heartbeat_s) and heartbeat_s > 0):
-            raise ValueError(f"heartbeat_s={heartbeat_s} must be finite and > 0")
-        if curve_clients_dir is not None and curve_secret_key is None:
-            raise ValueError("curve_clients_dir needs curve_secret_key")
+        check_publish_settings(dict(heartbeat_s=heartbeat_s, map_hwm=map_hwm, linger_s=linger_s,
+                                    curve_secret_key=curve_secret_key,
+                                    curve_clients_dir=curve_clients_dir), prefix="publish.")
         super().__init__(context, linger_s)
         self.heartbeat_s = float(heartbeat_s)
         self.epoch = epoch
@@ -355,10 +385,7 @@ class StatusPublisher(_Sockets):
     def __init__(self, *, endpoint: str = "tcp://127.0.0.1:7343", rate_hz: float = 4.0,
                  hwm: int = 10, linger_s: float = 0.0, curve: CurveServer | None = None,
                  context: zmq.Context | None = None) -> None:
-        if not (math.isfinite(rate_hz) and rate_hz > 0):
-            raise ValueError(f"rate_hz={rate_hz} must be finite and > 0")
-        if hwm < 1:
-            raise ValueError(f"hwm={hwm} must be >= 1")
+        check_values(dict(rate_hz=rate_hz, hwm=hwm), STATUS_LIMITS, prefix="status.")
         if curve is not None and context is not None and curve.context is not context:
             raise ValueError("curve belongs to another zmq.Context; client authorisation only "
                              "covers sockets of the context it was made for")

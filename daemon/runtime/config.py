@@ -8,20 +8,42 @@ and the offending value, e.g.::
 
 Each section is a frozen model; the code that owns a section's meaning documents its keys in the
 model's field descriptions. Cross-section checks live in ``Config``'s validators.
+
+One home per rule: a section whose keys are a constructor's keyword arguments does not write its
+own checks. It validates each key with the owner's limit table (``ESTIMATOR_LIMITS``,
+``CHANGE_LIMITS``, ``PUBLISH_LIMITS``, ``STATUS_LIMITS``, ``REPLAY_LIMITS``; see
+:mod:`brimline.daemon.limits`) and the owner's rules between keys (``check_change_settings``,
+``check_publish_settings``, ``check_interferer_window``, ``check_link``), which the constructor
+applies too. The estimator and change sections take their defaults from the constructors'
+signatures; the tests hold the other sections' defaults equal to their constructors'. The loading
+section checks ``bits`` with ``loading.allowed_bits``, the one allowed-bits rule. A new key goes
+into the constructor (default and limit) first, then into the section with its description.
+
+YAML is read with :class:`ConfigLoader`, which adds YAML 1.2's float rule so that ``1e6`` is a
+number.
 """
 
 from __future__ import annotations
 
+import inspect
 import math
+import re
 from pathlib import Path
 from typing import Any, Literal, Optional
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from brimline.daemon.core.loading import Loader, qam_gap_db
+from brimline.daemon.core.change import CHANGE_LIMITS, ChangeControl, check_change_settings
+from brimline.daemon.core.estimator import ESTIMATOR_LIMITS, Estimator
+from brimline.daemon.core.loading import Loader, allowed_bits, check_target_bits
+from brimline.daemon.core.qam import TARGET_SER, qam_gap_db
 from brimline.daemon.errors import ConfigError
+from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, between, check_db
+from brimline.daemon.net.publisher import PUBLISH_LIMITS, STATUS_LIMITS, check_publish_settings
+from brimline.drivers.air.channel import check_interferer_window
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
+from brimline.drivers.sources.replay import REPLAY_LIMITS
 
 __all__ = [
     "Section",
@@ -39,23 +61,26 @@ __all__ = [
     "KeyProblem",
     "load_config",
     "read_yaml",
+    "ConfigLoader",
     "parse_section",
 ]
 
 
-# Shared value checks; each section's validators name the key through these.
+def _keyword_defaults(cls) -> dict[str, Any]:
+    """The keyword defaults of ``cls``'s constructor.
+
+    A section whose keys are a constructor's keyword arguments takes its defaults from here, so
+    each default is written once, in the constructor's signature.
+    """
+    return {name: p.default for name, p in inspect.signature(cls).parameters.items()
+            if p.default is not inspect.Parameter.empty}
 
 
-def _positive(name: str, v: float) -> float:
-    if not (math.isfinite(v) and v > 0):
-        raise ValueError(f"{name}={v} must be a positive finite number")
-    return v
+_EST = _keyword_defaults(Estimator)
+_CHG = _keyword_defaults(ChangeControl)
 
-
-def _non_negative(name: str, v: float) -> float:
-    if not (math.isfinite(v) and v >= 0):
-        raise ValueError(f"{name}={v} must be a finite number >= 0")
-    return v
+#: Frame detection threshold of the receiver, a fraction of the sync metric's peak of 1.
+_SYNC_THRESHOLD = between(0.0, 1.0, low_open=True, high_open=True)
 
 
 class Section(BaseModel):
@@ -87,37 +112,28 @@ class LoadingSection(Section):
     @field_validator("bits")
     @classmethod
     def _bits_ok(cls, v: list[int]) -> list[int]:
-        if not v or v[0] != 0 or any(b <= a for a, b in zip(v, v[1:])) or v[-1] > 16:
-            raise ValueError(f"bits={v} must be ascending, start at 0 and stay <= 16")
+        allowed_bits(v)
         return v
 
     @field_validator("target_ser")
     @classmethod
     def _ser_ok(cls, v: float) -> float:
-        if not 0.0 < v < 0.5:
-            raise ValueError(f"target_ser={v} must be in (0, 0.5)")
-        return v
+        return TARGET_SER.check("target_ser", v)
 
     @field_validator("gap_db", "coding_gain_db", "margin_db", "budget_db")
     @classmethod
-    def _finite_db(cls, v: Optional[float], info) -> Optional[float]:
-        if v is not None and not math.isfinite(v):
-            raise ValueError(f"{info.field_name}={v} must be finite")
-        return v
+    def _db_ok(cls, v: Optional[float], info) -> Optional[float]:
+        return v if v is None else check_db(info.field_name, v)
 
     @field_validator("cap_db")
     @classmethod
     def _cap_ok(cls, v: float) -> float:
-        if math.isnan(v) or v == -math.inf:
-            raise ValueError(f"cap_db={v} must be finite or +inf (.inf)")
-        return v
+        return check_db("cap_db", v, allow_pos_inf=True)
 
     @field_validator("target_bits")
     @classmethod
     def _target_ok(cls, v: Optional[int]) -> Optional[int]:
-        if v is not None and v < 0:
-            raise ValueError(f"target_bits={v} must be >= 0")
-        return v
+        return v if v is None else check_target_bits(v)
 
     @model_validator(mode="after")
     def _margin_needs_target(self) -> "LoadingSection":
@@ -227,28 +243,22 @@ class SimSection(Section):
     @field_validator("frame_rate_hz", "drift_period_s")
     @classmethod
     def _positive_ok(cls, v, info):
-        return _positive(info.field_name, v)
+        return POSITIVE.check(info.field_name, v)
 
     @field_validator("doppler_hz", "lead_max_samples")
     @classmethod
     def _not_negative(cls, v, info):
-        if not v >= 0:
-            raise ValueError(f"{info.field_name}={v} must be >= 0")
-        return v
+        return NON_NEGATIVE.check(info.field_name, v)
 
     @field_validator("sync_threshold")
     @classmethod
     def _threshold(cls, v):
-        if not 0.0 < v < 1.0:
-            raise ValueError(f"sync_threshold={v} must be in (0, 1)")
-        return v
+        return _SYNC_THRESHOLD.check("sync_threshold", v)
 
     @field_validator("interferer_stop_s")
     @classmethod
     def _interferer_window(cls, v, info):
-        start = info.data.get("interferer_start_s")
-        if v is not None and start is not None and not v > start:
-            raise ValueError(f"interferer_stop_s={v} must be after interferer_start_s={start}")
+        check_interferer_window(info.data.get("interferer_start_s"), v)
         return v
 
 
@@ -261,6 +271,11 @@ class IqSection(Section):
     realtime: bool = Field(False, description="pace frames at the recording's own rate")
     max_frames: Optional[int] = Field(None, description="stop after this many frames")
     sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+
+    @field_validator("sync_threshold")
+    @classmethod
+    def _threshold(cls, v):
+        return _SYNC_THRESHOLD.check("sync_threshold", v)
 
 
 class RadioSection(Section):
@@ -277,12 +292,15 @@ class RadioSection(Section):
     default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
     sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
 
+    @field_validator("sync_threshold")
+    @classmethod
+    def _threshold(cls, v):
+        return _SYNC_THRESHOLD.check("sync_threshold", v)
+
     @field_validator("tx_attenuation_db")
     @classmethod
     def _attenuation(cls, v):
-        if not 0.0 <= v <= 89.75:
-            raise ValueError(f"tx_attenuation_db={v} must be in [0, 89.75]")
-        return v
+        return between(0.0, 89.75).check("tx_attenuation_db", v)
 
 
 class ReplaySection(Section):
@@ -296,12 +314,10 @@ class ReplaySection(Section):
     speed: float = Field(1.0, description="pacing factor when realtime (2.0 = twice as fast)")
     loop: bool = Field(False, description="start again at the end (times keep increasing)")
 
-    @field_validator("speed")
+    @field_validator(*REPLAY_LIMITS)
     @classmethod
-    def _speed_ok(cls, v: float) -> float:
-        if not (math.isfinite(v) and v > 0):
-            raise ValueError(f"speed={v} must be a positive number")
-        return v
+    def _within_limits(cls, v, info):
+        return REPLAY_LIMITS[info.field_name].check(info.field_name, v)
 
 
 class DriverSection(Section):
@@ -344,79 +360,66 @@ class EstimatorSection(Section):
     """
 
     tau_s: float = Field(
-        0.1, description="time constant of the per-tone exponential smoothing of SNR in dB, s")
+        _EST["tau_s"],
+        description="time constant of the per-tone exponential smoothing of SNR in dB, s")
     std_tau_s: float = Field(
-        1.0, description="time constant of the per-tone variance tracker, s")
+        _EST["std_tau_s"],
+        description="time constant of the per-tone variance tracker, s")
     std_init_db: float = Field(
-        3.0, description="uncertainty (std, dB) given to a tone before its variance is learnt")
+        _EST["std_init_db"],
+        description="uncertainty (std, dB) given to a tone before its variance is learnt")
     backoff_sigmas: float = Field(
-        1.0, description="effective SNR = smoothed SNR minus this many std (frame spread and "
-                         "uncertainty of the tracked value combined), so noisy tones carry fewer "
-                         "bits")
+        _EST["backoff_sigmas"],
+        description="effective SNR = smoothed SNR minus this many std (frame spread and "
+                    "uncertainty of the tracked value combined), so noisy tones carry fewer "
+                    "bits")
     outlier_db: float = Field(
-        6.0, description="smallest gate, dB: a tone further than this (and than "
-                         "outlier_sigmas std) from its tracked value is held as an outlier")
+        _EST["outlier_db"],
+        description="smallest gate, dB: a tone further than this (and than "
+                    "outlier_sigmas std) from its tracked value is held as an outlier")
     outlier_sigmas: float = Field(
-        4.0, description="gate width in per-tone std; the wider of this and outlier_db applies")
+        _EST["outlier_sigmas"],
+        description="gate width in per-tone std; the wider of this and outlier_db applies")
     confirm_frames: int = Field(
-        3, description="consecutive agreeing outlier frames after which a tone's change is "
-                       "accepted as real and the tone jumps to it")
+        _EST["confirm_frames"],
+        description="consecutive agreeing outlier frames after which a tone's change is "
+                    "accepted as real and the tone jumps to it")
     frame_outlier_fraction: float = Field(
-        0.5, description="a frame with more than this fraction of tones outside their gate is "
-                         "a whole-frame outlier (counted; no tone is smoothed with it)")
+        _EST["frame_outlier_fraction"],
+        description="a frame with more than this fraction of tones outside their gate is "
+                    "a whole-frame outlier (counted; no tone is smoothed with it)")
     stale_s: float = Field(
-        5.0, description="after a gap longer than this between accepted frames, tracking "
-                         "starts afresh from the next frame, s")
+        _EST["stale_s"],
+        description="after a gap longer than this between accepted frames, tracking "
+                    "starts afresh from the next frame, s")
     tone_window: int = Field(
-        2, description="half-width in tones of the smoothing across neighbours (0: off)")
+        _EST["tone_window"],
+        description="half-width in tones of the smoothing across neighbours (0: off)")
     tone_agree_db: float = Field(
-        2.0, description="a pair of neighbours (one each side) is averaged in only where both "
-                         "are within this of the tone, dB; deeper notches and interferers stay "
-                         "intact")
+        _EST["tone_agree_db"],
+        description="a pair of neighbours (one each side) is averaged in only where both "
+                    "are within this of the tone, dB; deeper notches and interferers stay "
+                    "intact")
     trend_tau_s: float = Field(
-        0.0, description="time constant of the per-tone SNR slope tracker (Holt's linear "
-                          "trend), s; the tracked SNR follows a steady fade without lag; 0: off "
-                          "(plain exponential smoothing)")
+        _EST["trend_tau_s"],
+        description="time constant of the per-tone SNR slope tracker (Holt's linear "
+                    "trend), s; the tracked SNR follows a steady fade without lag; 0: off "
+                    "(plain exponential smoothing)")
     lag_sigmas: float = Field(
-        2.0, description="where the innovations' short-term mean, pooled over neighbouring "
-                         "tones, stands more than this many noise spreads off zero (the tracked "
-                         "SNR lags a fade) the smoothing time constant shortens towards "
-                         "tau_min_s; 0: off")
+        _EST["lag_sigmas"],
+        description="where the innovations' short-term mean, pooled over neighbouring "
+                    "tones, stands more than this many noise spreads off zero (the tracked "
+                    "SNR lags a fade) the smoothing time constant shortens towards "
+                    "tau_min_s; 0: off")
     tau_min_s: float = Field(
-        0.015, description="shortest smoothing time constant while a fade is followed, and the "
-                          "time constant of the innovations' short-term mean, s")
+        _EST["tau_min_s"],
+        description="shortest smoothing time constant while a fade is followed, and the "
+                    "time constant of the innovations' short-term mean, s")
 
-    @field_validator("tau_s", "std_tau_s", "std_init_db", "outlier_db", "stale_s", "tau_min_s")
+    @field_validator(*ESTIMATOR_LIMITS)
     @classmethod
-    def _positive_ok(cls, v: float, info) -> float:
-        return _positive(info.field_name, v)
-
-    @field_validator("backoff_sigmas", "outlier_sigmas", "tone_agree_db", "trend_tau_s",
-                     "lag_sigmas")
-    @classmethod
-    def _non_negative_ok(cls, v: float, info) -> float:
-        return _non_negative(info.field_name, v)
-
-    @field_validator("confirm_frames")
-    @classmethod
-    def _confirm_ok(cls, v: int) -> int:
-        if not 1 <= v <= 100:
-            raise ValueError(f"confirm_frames={v} must be in [1, 100]")
-        return v
-
-    @field_validator("frame_outlier_fraction")
-    @classmethod
-    def _fraction_ok(cls, v: float) -> float:
-        if not 0.0 < v <= 1.0:
-            raise ValueError(f"frame_outlier_fraction={v} must be in (0, 1]")
-        return v
-
-    @field_validator("tone_window")
-    @classmethod
-    def _window_ok(cls, v: int) -> int:
-        if not 0 <= v <= 16:
-            raise ValueError(f"tone_window={v} must be in [0, 16]")
-        return v
+    def _within_limits(cls, v, info):
+        return ESTIMATOR_LIMITS[info.field_name].check(info.field_name, v)
 
 
 class ChangeSection(Section):
@@ -430,92 +433,67 @@ class ChangeSection(Section):
     """
 
     downshift_margin_db: float = Field(
-        -1.5, description="a loaded tone whose margin falls below this forces a new map, dB")
+        _CHG["downshift_margin_db"],
+        description="a loaded tone whose margin falls below this forces a new map, dB")
     upshift_margin_db: float = Field(
-        1.5, description="an upgrade is made only when a map loaded with this much extra "
-                         "margin on every tone still gains min_gain_bits, dB")
+        _CHG["upshift_margin_db"],
+        description="an upgrade is made only when a map loaded with this much extra "
+                    "margin on every tone still gains min_gain_bits, dB")
     min_gain_bits: int = Field(
-        4, description="smallest gain in bits per symbol worth an upgrade")
+        _CHG["min_gain_bits"],
+        description="smallest gain in bits per symbol worth an upgrade")
     down_dwell_s: float = Field(
-        0.1, description="minimum time since the last map before a downgrade (bit swap or "
-                         "reload), s")
+        _CHG["down_dwell_s"],
+        description="minimum time since the last map before a downgrade (bit swap or "
+                    "reload), s")
     down_persist_s: float = Field(
-        0.06, description="a loaded tone counts as below downshift_margin_db only once it has "
-                          "stayed below on every frame for this long (0.06 s: 3 frame times, "
-                          "the 4th frame in a row, at 50 frames/s), so a dip of a frame or two "
-                          "changes nothing; emergencies do not wait for it, s")
+        _CHG["down_persist_s"],
+        description="a loaded tone counts as below downshift_margin_db only once it has "
+                    "stayed below on every frame for this long (0.06 s: 3 frame times, "
+                    "the 4th frame in a row, at 50 frames/s), so a dip of a frame or two "
+                    "changes nothing; emergencies do not wait for it, s")
     down_deep_db: float = Field(
-        6.0, description="a loaded tone more than this below downshift_margin_db counts at "
-                         "once, without down_persist_s; .inf: never, dB")
+        _CHG["down_deep_db"],
+        description="a loaded tone more than this below downshift_margin_db counts at "
+                    "once, without down_persist_s; .inf: never, dB")
     up_dwell_s: float = Field(
-        1.0, description="an upgrade is made once it has been worth it (see upshift_margin_db) "
-                         "for this long without a break; upgrades, emergencies and first maps "
-                         "are at least this far apart, s")
+        _CHG["up_dwell_s"],
+        description="an upgrade is made once it has been worth it (see upshift_margin_db) "
+                    "for this long without a break; upgrades, emergencies and first maps "
+                    "are at least this far apart, s")
     upgrade_check_s: float = Field(
-        0.25, description="how often an upgrade is evaluated (one loader run), s")
+        _CHG["upgrade_check_s"],
+        description="how often an upgrade is evaluated (one loader run), s")
     max_maps_per_s: float = Field(
-        10.0, description="no two maps closer than 1/this, emergencies included, 1/s")
+        _CHG["max_maps_per_s"],
+        description="no two maps closer than 1/this, emergencies included, 1/s")
     swap_max_tones: int = Field(
-        16, description="a bit swap changes at most this many tones; larger changes reload")
+        _CHG["swap_max_tones"],
+        description="a bit swap changes at most this many tones; larger changes reload")
     swap_max_loss_bits: int = Field(
-        4, description="a bit swap may lose at most this many bits per symbol, else reload")
+        _CHG["swap_max_loss_bits"],
+        description="a bit swap may lose at most this many bits per symbol, else reload")
     emergency_fraction: float = Field(
-        0.25, description="this fraction of loaded tones below the downshift margin at once, "
-                          "with the mean SNR down by at least -downshift_margin_db, triggers an "
-                          "emergency downshift")
+        _CHG["emergency_fraction"],
+        description="this fraction of loaded tones below the downshift margin at once, "
+                    "with the mean SNR down by at least -downshift_margin_db, triggers an "
+                    "emergency downshift")
     emergency_drop_db: float = Field(
-        6.0, description="a drop of the mean tracked SNR by this much since the current map "
-                         "triggers an emergency downshift, dB")
+        _CHG["emergency_drop_db"],
+        description="a drop of the mean tracked SNR by this much since the current map "
+                    "triggers an emergency downshift, dB")
     emergency_margin_db: float = Field(
-        3.0, description="extra margin of the emergency map, dB (recovered by upgrades)")
+        _CHG["emergency_margin_db"],
+        description="extra margin of the emergency map, dB (recovered by upgrades)")
 
-    @field_validator("down_dwell_s", "down_persist_s", "up_dwell_s", "upgrade_check_s",
-                     "emergency_margin_db")
+    @field_validator(*CHANGE_LIMITS)
     @classmethod
-    def _non_negative_ok(cls, v: float, info) -> float:
-        return _non_negative(info.field_name, v)
-
-    @field_validator("down_deep_db")
-    @classmethod
-    def _deep_ok(cls, v: float) -> float:
-        if not v >= 0:   # .inf allowed: every drop waits for down_persist_s
-            raise ValueError(f"down_deep_db={v} must be >= 0")
-        return v
-
-    @field_validator("max_maps_per_s", "emergency_drop_db")
-    @classmethod
-    def _positive_ok(cls, v: float, info) -> float:
-        return _positive(info.field_name, v)
-
-    @field_validator("downshift_margin_db", "upshift_margin_db")
-    @classmethod
-    def _finite_ok(cls, v: float, info) -> float:
-        if not math.isfinite(v):
-            raise ValueError(f"{info.field_name}={v} must be finite")
-        return v
-
-    @field_validator("min_gain_bits", "swap_max_tones", "swap_max_loss_bits")
-    @classmethod
-    def _count_ok(cls, v: int, info) -> int:
-        if v < 0:
-            raise ValueError(f"{info.field_name}={v} must be >= 0")
-        return v
-
-    @field_validator("emergency_fraction")
-    @classmethod
-    def _fraction_ok(cls, v: float) -> float:
-        if not 0.0 < v <= 1.0:
-            raise ValueError(f"emergency_fraction={v} must be in (0, 1]")
-        return v
+    def _within_limits(cls, v, info):
+        return CHANGE_LIMITS[info.field_name].check(info.field_name, v)
 
     @model_validator(mode="after")
-    def _margins_ordered(self) -> "ChangeSection":
-        if self.downshift_margin_db >= self.upshift_margin_db:
-            raise ValueError(f"downshift_margin_db={self.downshift_margin_db} must be below "
-                             f"upshift_margin_db={self.upshift_margin_db}")
-        if self.up_dwell_s < self.down_dwell_s:
-            raise ValueError(f"up_dwell_s={self.up_dwell_s} must be >= "
-                             f"down_dwell_s={self.down_dwell_s}")
+    def _keys_agree(self) -> "ChangeSection":
+        check_change_settings(self.model_dump())
         return self
 
 
@@ -559,29 +537,14 @@ class PublishSection(Section):
     def _endpoints(cls, v, info):
         return _endpoint_ok(info.field_name, v)
 
-    @field_validator("heartbeat_s")
+    @field_validator(*PUBLISH_LIMITS)
     @classmethod
-    def _heartbeat(cls, v):
-        return _positive("heartbeat_s", v)
-
-    @field_validator("linger_s")
-    @classmethod
-    def _linger(cls, v):
-        if not (math.isfinite(v) and v >= 0):
-            raise ValueError(f"linger_s={v} must be finite and >= 0")
-        return v
-
-    @field_validator("map_hwm")
-    @classmethod
-    def _hwm(cls, v):
-        if v < 1:
-            raise ValueError(f"map_hwm={v} must be >= 1")
-        return v
+    def _within_limits(cls, v, info):
+        return PUBLISH_LIMITS[info.field_name].check(info.field_name, v)
 
     @model_validator(mode="after")
-    def _curve_pair(self):
-        if self.curve_clients_dir is not None and self.curve_secret_key is None:
-            raise ValueError("curve_clients_dir needs curve_secret_key")
+    def _keys_agree(self):
+        check_publish_settings(self.model_dump())
         return self
 
 
@@ -602,17 +565,10 @@ class StatusSection(Section):
     def _endpoint(cls, v):
         return _endpoint_ok("endpoint", v)
 
-    @field_validator("rate_hz")
+    @field_validator(*STATUS_LIMITS)
     @classmethod
-    def _rate(cls, v):
-        return _positive("rate_hz", v)
-
-    @field_validator("hwm")
-    @classmethod
-    def _hwm(cls, v):
-        if v < 1:
-            raise ValueError(f"hwm={v} must be >= 1")
-        return v
+    def _within_limits(cls, v, info):
+        return STATUS_LIMITS[info.field_name].check(info.field_name, v)
 
 
 class RecordSection(Section):
@@ -633,9 +589,8 @@ class RecordSection(Section):
     @field_validator("max_bytes")
     @classmethod
     def _max_bytes(cls, v):
-        if v is not None and v < 1024:
-            raise ValueError(f"max_bytes={v} must be >= 1024")
-        return v
+        # the same floor as RecordWriter's own check (brimline.daemon.wire.recording)
+        return v if v is None else at_least(1024).check("max_bytes", v)
 
 
 # --------------------------------------------------------------------------- whole file
@@ -657,16 +612,12 @@ class FallbackSection(Section):
     @field_validator("stale_after_s")
     @classmethod
     def _stale_ok(cls, v: float) -> float:
-        if not (math.isfinite(v) and v > 0):
-            raise ValueError(f"stale_after_s={v} must be a positive number of seconds")
-        return v
+        return POSITIVE.check("stale_after_s", v)
 
     @field_validator("power_db")
     @classmethod
     def _power_ok(cls, v: float) -> float:
-        if not math.isfinite(v):
-            raise ValueError(f"power_db={v} must be finite")
-        return v
+        return FINITE.check("power_db", v)
 
 
 class ServiceSection(Section):
@@ -686,16 +637,12 @@ class ServiceSection(Section):
     @field_validator("lead_frames")
     @classmethod
     def _lead_ok(cls, v: int) -> int:
-        if not 0 <= v <= 10_000:
-            raise ValueError(f"lead_frames={v} must be in [0, 10000]")
-        return v
+        return between(0, 10_000).check("lead_frames", v)
 
     @field_validator("poll_s", "driver_join_s")
     @classmethod
     def _positive_s(cls, v: float, info) -> float:
-        if not (math.isfinite(v) and v > 0):
-            raise ValueError(f"{info.field_name}={v} must be a positive number of seconds")
-        return v
+        return POSITIVE.check(info.field_name, v)
 
 
 class KeyProblem(ValueError):
@@ -744,6 +691,22 @@ class Config(Section):
 # --------------------------------------------------------------------------- machinery
 
 
+class ConfigLoader(yaml.SafeLoader):
+    """PyYAML's safe loader, reading numbers in exponent form (``1e6``, ``-2.5E-3``) as floats.
+
+    PyYAML follows YAML 1.1, whose float needs a dot and a signed exponent (``1.0e+6``), so
+    ``sample_rate_hz: 1e6`` arrived as the string ``'1e6'`` and was refused. YAML 1.2's core
+    schema reads any ``[-+]? ( . [0-9]+ | [0-9]+ ( . [0-9]* )? ) ( [eE] [-+]? [0-9]+ )?`` as a
+    float; that rule is added here after the YAML 1.1 ones, so integers stay integers.
+    """
+
+
+ConfigLoader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?(?:\.[0-9]+|[0-9]+(?:\.[0-9]*)?)(?:[eE][-+]?[0-9]+)?$"),
+    list("-+0123456789."))
+
+
 def _key_lines(node: yaml.Node, prefix: tuple = ()) -> dict[tuple, int]:
     """Map each key path in a composed YAML tree to its 1-based line number."""
     lines: dict[tuple, int] = {}
@@ -778,8 +741,8 @@ def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(f"{p}: cannot read config: {exc}") from exc
     try:
-        node = yaml.compose(text, Loader=yaml.SafeLoader)
-        data = yaml.safe_load(text)
+        node = yaml.compose(text, Loader=ConfigLoader)
+        data = yaml.load(text, Loader=ConfigLoader)  # a SafeLoader: plain data only
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         line = f" line {mark.line + 1}" if mark is not None else ""

@@ -64,8 +64,13 @@ import zmq
 from brimline.daemon.core.controller import LinkController, Step
 from brimline.daemon.errors import BrimlineError, ProtocolError
 from brimline.daemon.records import Estimate, LoadMap
-from brimline.daemon.runtime.assemble import (FollowerMapProvider, build_controller, build_core,
-                                              follower_factory, make_driver)
+from brimline.daemon.runtime.assemble import (
+    FollowerMapProvider,
+    build_controller,
+    build_core,
+    follower_factory,
+    make_driver,
+)
 from brimline.daemon.runtime.config import Config
 from brimline.daemon.runtime.handoff import DriverThread, control_message
 from brimline.daemon.runtime.outlets import Outlets

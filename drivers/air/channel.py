@@ -36,7 +36,20 @@ __all__ = [
     "FadingTaps",
     "LinkChannel",
     "Truth",
+    "check_interferer_window",
 ]
+
+
+def check_interferer_window(start_s: float | None, stop_s: float | None, *, prefix: str = "",
+                            error: type[Exception] = ValueError) -> None:
+    """The interferer's switch-off time must be after its switch-on time (None: no limit).
+
+    The one check of the window, for :class:`LinkChannel`, the simulator driver and the
+    ``driver.sim`` config section; ``prefix`` names the section in the message.
+    """
+    if start_s is not None and stop_s is not None and not stop_s > start_s:
+        raise error(f"{prefix}interferer_stop_s={stop_s} must be after "
+                    f"{prefix}interferer_start_s={start_s}")
 
 
 @dataclass(frozen=True)
@@ -256,9 +269,7 @@ class LinkChannel:
     def __post_init__(self) -> None:
         if self.rng is None:
             raise ValueError("LinkChannel needs rng (a seeded numpy Generator)")
-        on, off = self.interferer_start_s, self.interferer_stop_s
-        if on is not None and off is not None and not off > on:
-            raise ValueError(f"interferer_stop_s={off} must be after interferer_start_s={on}")
+        check_interferer_window(self.interferer_start_s, self.interferer_stop_s)
         prof = profile(self.profile)
         fs = self.plan.sample_rate_hz
         self._prof = prof

@@ -1,8 +1,8 @@
 """Demodulation of the link model: QAM hard decisions, per-map tables and the header bits.
 
-* :func:`grid_ser` and :func:`decision_threshold_lin`: the symbol error rate of this link's
-  Gray QAM grids and the channel SNR at which decisions become reliable enough to estimate
-  with (``DECISION_SER``).
+* :func:`decision_threshold_lin`: the channel SNR at which decisions become reliable enough to
+  estimate with (``DECISION_SER``), from the shared QAM grid error rate
+  (:func:`brimline.daemon.core.qam.grid_ser`).
 * :class:`MapTables`: per-map tables (levels per axis, gain per tone, reliability threshold),
   built once per map and cached by :class:`MapTableCache`.
 * :func:`decide`: minimum-distance decisions on every data tone at once.
@@ -12,15 +12,15 @@
 
 from __future__ import annotations
 
-import math
 from typing import Callable
 
 import numpy as np
 
+from brimline.daemon.core.qam import grid_ser
 from brimline.drivers.link.fit import as_pairs
 from brimline.drivers.link.frame import HEADER_BITS, FrameFormat, grid_axes
 
-__all__ = ["DECISION_SER", "grid_ser", "decision_threshold_lin", "MapTables", "MapTableCache",
+__all__ = ["DECISION_SER", "decision_threshold_lin", "MapTables", "MapTableCache",
            "MapLookup", "decide", "HeaderDemod"]
 
 #: Symbol error rate up to which a tone's hard decisions count as reliable for its estimate.
@@ -33,35 +33,10 @@ DECISION_SER = 1e-1
 MapLookup = Callable[[int], "tuple[np.ndarray, np.ndarray] | None"]
 
 
-def grid_ser(bits: np.ndarray, snr_lin: np.ndarray) -> np.ndarray:
-    """Symbol error rate of this link's Gray QAM grids on AWGN (minimum-distance decisions).
-
-    Parameters
-    ----------
-    bits : array_like of int
-        Bits per symbol (0: tone off, error rate 0), broadcast against ``snr_lin``.
-    snr_lin : array_like of float
-        Symbol energy over noise variance (Es/N0), linear.
-
-    Returns
-    -------
-    ndarray
-        ``1 - (1 - P_I)(1 - P_Q)`` with the M-PAM error ``P = 2 (1 - 1/M) Q(d / sqrt(2 N0))``
-        per axis and ``d`` half the spacing of the unit-energy grid (Proakis, Digital
-        Communications, 5th ed., sec. 4.3; one axis of the odd grids is narrower).
-    """
-    m_i, m_q, _, scale = grid_axes(np.asarray(bits))
-    arg = scale * np.sqrt(np.maximum(np.asarray(snr_lin, dtype=np.float64), 0.0))  # d/sqrt(N0)
-    tail = np.array([0.5 * math.erfc(v) for v in np.ravel(arg * np.ones(m_i.shape))])
-    tail = tail.reshape(np.broadcast(arg, m_i).shape)  # Q(d sqrt(2) / sqrt(2 N0)) = erfc / 2
-    p_i = 2.0 * (1.0 - 1.0 / m_i) * tail
-    p_q = 2.0 * (1.0 - 1.0 / m_q) * tail
-    return 1.0 - (1.0 - p_i) * (1.0 - p_q)
-
-
 def decision_threshold_lin(target_ser: float = DECISION_SER, max_bits: int = 12) -> np.ndarray:
-    """Per bit count 0..max_bits, the linear SNR at which :func:`grid_ser` equals
-    ``target_ser`` (bisection in dB; 0 bits: 0)."""
+    """Per bit count 0..max_bits, the linear SNR at which the symbol error rate of this link's
+    QAM grid (:func:`brimline.daemon.core.qam.grid_ser`) equals ``target_ser`` (bisection in
+    dB; 0 bits: 0)."""
     out = np.zeros(max_bits + 1)
     for b in range(1, max_bits + 1):
         lo, hi = -20.0, 80.0

@@ -16,15 +16,21 @@ from __future__ import annotations
 import dataclasses
 import time
 from pathlib import Path
+from types import MappingProxyType
 from typing import Callable, Iterator
 
 from brimline.daemon.errors import RecordingError, SourceError
+from brimline.daemon.limits import POSITIVE, check_values
 from brimline.daemon.records import Estimate
 from brimline.daemon.wire.codec import TOPIC_ESTIMATE
 from brimline.daemon.wire.recording import RecordSetReader
 from brimline.drivers.sources.base import Driver
 
-__all__ = ["ReplayDriver"]
+__all__ = ["ReplayDriver", "REPLAY_LIMITS"]
+
+#: Limits of :class:`ReplayDriver`'s numeric keyword arguments, checked by the constructor and by
+#: the ``driver.replay:`` config section alike.
+REPLAY_LIMITS = MappingProxyType({"speed": POSITIVE})
 
 
 class ReplayDriver(Driver):
@@ -62,8 +68,7 @@ class ReplayDriver(Driver):
         self.path = Path(path)
         if not self.path.is_file():
             raise SourceError(f"replay: {self.path}: no such recording")
-        if not speed > 0:
-            raise SourceError(f"replay: speed={speed} must be positive")
+        check_values(dict(speed=speed), REPLAY_LIMITS, prefix="driver.replay.", error=SourceError)
         self.realtime = bool(realtime)
         self.speed = float(speed)
         self.loop = bool(loop)

@@ -19,7 +19,7 @@ import numpy as np
 
 from brimline.daemon.errors import ConfigError
 from brimline.daemon.records import Estimate, TonePlan
-from brimline.drivers.air.channel import FadeEvent, LinkChannel, Truth
+from brimline.drivers.air.channel import FadeEvent, LinkChannel, Truth, check_interferer_window
 from brimline.drivers.air.channel import profile as _profile
 from brimline.drivers.link.frame import Transmitter, as_link_plan, bit_errors, map_arrays
 from brimline.drivers.link.receiver import Receiver
@@ -98,10 +98,8 @@ class SimDriver(Driver):
         self.default_bits = int(default_bits)
         self.max_frames = max_frames
         self.rng = np.random.default_rng(seed)
-        if (interferer_start_s is not None and interferer_stop_s is not None
-                and not interferer_stop_s > interferer_start_s):
-            raise ConfigError(f"driver.sim.interferer_stop_s={interferer_stop_s} must be after "
-                              f"interferer_start_s={interferer_start_s}")
+        check_interferer_window(interferer_start_s, interferer_stop_s, prefix="driver.sim.",
+                                error=ConfigError)
         fades = [e if isinstance(e, FadeEvent) else FadeEvent(
             start_s=e["start_s"], first_tone=e["first_tone"], last_tone=e["last_tone"],
             depth_db=e.get("depth_db", 20.0),
