@@ -11,7 +11,6 @@ import numpy as np
 import pytest
 from scipy.special import erfc
 
-from brimline.daemon.core.qam import grid_ser
 from brimline.daemon.errors import ConfigError
 from brimline.daemon.runtime.config import LinkSection, parse_section
 from brimline.drivers.air.channel import LinkChannel

@@ -150,11 +150,12 @@ def follower_factory(config: Config, plan, endpoints: dict[str, str],
     context : zmq.Context, optional
         Context for the follower's sockets.
     """
-    ld = config.loading
-    kwargs = dict(plan=plan, map_endpoint=endpoints["maps"],
-                  snapshot_endpoint=endpoints["snapshots"], ack_endpoint=endpoints["acks"],
-                  bits=list(ld.bits), budget_db=ld.budget_db, cap_db=ld.cap_db, context=context)
-    return lambda: Follower(**kwargs)
+    def make() -> Follower:
+        return Follower.for_daemon(config.publish, config.loading, plan=plan,
+                                   map_endpoint=endpoints["maps"],
+                                   snapshot_endpoint=endpoints["snapshots"],
+                                   ack_endpoint=endpoints["acks"], context=context)
+    return make
 
 
 class FollowerMapProvider:
