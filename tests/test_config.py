@@ -47,3 +47,68 @@ def test_readme_lists_every_estimator_and_change_key_with_its_default():
     for prefix, section in (("estimator", EstimatorSection), ("change", ChangeSection)):
         for key, field in section.model_fields.items():
             assert f"| `{prefix}.{key}` | {field.default} |" in readme, f"{prefix}.{key}"
+
+
+# --------------------------------------------------------------------------- the YAML loader
+
+#: Nine levels of nine aliases: 9**9 (about 387 million) values once expanded, in 404 bytes of text.
+ALIAS_BOMB = "".join(
+    f"{name}: &{name} [{', '.join([f'*{prev}' if prev else 'x'] * 9)}]\n"
+    for prev, name in zip(["", *"abcdefgh"], "abcdefghi"))
+
+
+class TestGuardedLoader:
+    def test_alias_bomb_is_refused_while_composing(self, tmp_path, monkeypatch):
+        """The refusal comes from the structure (the expanded node count), before any object
+        is constructed, so neither memory nor time is what stops it."""
+        from brimline.daemon.runtime import config as config_module
+
+        assert len(ALIAS_BOMB.encode()) < 420
+        constructed = []
+        monkeypatch.setattr(config_module.GuardedLoader, "construct_document",
+                            lambda self, node: constructed.append(node))
+        with pytest.raises(ConfigError, match=r"c.yaml line \d+: aliases expand this node to "
+                                              r"more than 10000 values") as info:
+            load_config(_write(tmp_path, ALIAS_BOMB))
+        assert constructed == []
+        assert info.value.__cause__ is None and not isinstance(info.value.__context__,
+                                                               MemoryError)
+
+    @pytest.mark.parametrize("text, match", [
+        ("a: &a [*a]\n", r"line 1: alias \*a lies inside the node it names"),
+        ("a: &a {b: *a}\n", r"line 1: alias \*a lies inside the node it names"),
+        ("loading: &l\n  mode: rate\n  x: *l\n", r"line 3: alias \*l lies inside"),
+        ("loading:\n  mode: rate\nloading:\n  mode: margin\n",
+         r"line 3: duplicate key 'loading' \(first on line 1\)"),
+        ("loading:\n  gap_db: 9.0\n  margin_db: 1.0\n  gap_db: 12.0\n",
+         r"line 4: duplicate key 'gap_db' \(first on line 2\)"),
+        ("a: " + "[" * 5000 + "]" * 5000 + "\n", r"line 1: nested deeper than 32 levels"),
+        ("driver:\n  sim:\n    seed: " + "9" * 5000 + "\n", r"line 3: cannot read '9999"),
+        ("service:\n  state_path: 2024-13-01\n", r"line 2: cannot read '2024-13-01'"),
+        ("loading:\n  mode: rate\x00\n", r"line 2: YAML error: character #x0000 is not allowed"),
+        ("a: *nope\n", r"line 1: YAML syntax error: found undefined alias 'nope'"),
+    ])
+    def test_refusals_are_one_line_with_the_line(self, tmp_path, text, match):
+        with pytest.raises(ConfigError, match=match) as info:
+            load_config(_write(tmp_path, text))
+        assert "\n" not in str(info.value)
+
+    def test_a_few_aliases_and_merge_keys_still_work(self, tmp_path):
+        """YAML 1.1 merge keys (``<<``) may override the merged keys; that is no duplicate."""
+        text = ("x-sim: &sim {snr_db: 20.0, seed: 3}\n"
+                "driver:\n  sim:\n    <<: *sim\n    seed: 4\n")
+        with pytest.raises(ConfigError, match="unknown key x-sim"):  # the anchor key itself
+            load_config(_write(tmp_path, text))
+        from brimline.daemon.runtime.config import read_yaml
+
+        data, lines = read_yaml(_write(tmp_path, text))
+        assert data["driver"]["sim"] == {"snr_db": 20.0, "seed": 4}
+        assert lines[("driver", "sim", "seed")] == 5
+
+    def test_oversized_file_is_refused_unread(self, tmp_path):
+        from brimline.daemon.runtime.config import MAX_CONFIG_BYTES
+
+        p = tmp_path / "big.yaml"
+        p.write_text("#" * (MAX_CONFIG_BYTES + 1))
+        with pytest.raises(ConfigError, match=r"too large for a config file"):
+            load_config(p)

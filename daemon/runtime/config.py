@@ -8,6 +8,10 @@ and the offending value, e.g.::
 
 Each section is a frozen model; the code that owns a section's meaning documents its keys in the
 model's field descriptions. Cross-section checks live in ``Config``'s validators.
+
+The YAML is read with :class:`GuardedLoader`: alias expansion, nesting depth and file size are
+bounded and a key written twice in a mapping is refused, each with its line, so a hostile or
+mistyped file costs milliseconds and a few kB, never gigabytes.
 """
 
 from __future__ import annotations
@@ -39,6 +43,9 @@ __all__ = [
     "KeyProblem",
     "load_config",
     "read_yaml",
+    "GuardedLoader",
+    "MAX_YAML_NODES",
+    "MAX_CONFIG_BYTES",
     "parse_section",
 ]
 
@@ -759,17 +766,129 @@ def _key_lines(node: yaml.Node, prefix: tuple = ()) -> dict[tuple, int]:
     return lines
 
 
+#: A config file larger than this is refused unread (a full config is a few kB of text).
+MAX_CONFIG_BYTES = 1 << 20
+#: Most YAML nodes a config may stand for once its aliases are expanded; a full config has a few
+#: hundred. Nested aliases can expand exponentially (nine levels of nine aliases: 9**9 nodes, the
+#: "billion laughs"), so the bound is on the expanded count, checked while composing, before
+#: anything is constructed.
+MAX_YAML_NODES = 10_000
+#: Deepest nesting of YAML collections a config may have (the deepest key needs five levels).
+MAX_YAML_DEPTH = 32
+
+_MERGE_TAG = "tag:yaml.org,2002:merge"
+
+
+class _Refused(yaml.MarkedYAMLError):
+    """A YAML document :class:`GuardedLoader` will not load; ``problem_mark`` has the line."""
+
+    def __init__(self, problem: str, mark: yaml.Mark) -> None:
+        super().__init__(problem=problem, problem_mark=mark)
+
+
+class GuardedLoader(yaml.SafeLoader):
+    """PyYAML's SafeLoader with bounds for hostile or mistyped configs.
+
+    Refused, each at the line where it is found, while composing (before any Python object is
+    built): a node whose alias expansion exceeds :data:`MAX_YAML_NODES`, an alias inside the node
+    it names (a recursive alias), nesting deeper than :data:`MAX_YAML_DEPTH` and a key written
+    twice in one mapping (merge keys ``<<`` may be overridden, as YAML's merge type intends).
+    A scalar Python cannot convert (an integer of thousands of digits, a timestamp like
+    ``2024-13-01``) is refused at its line while constructing.
+    """
+
+    def __init__(self, stream) -> None:
+        super().__init__(stream)
+        self._expanded: dict[int, int] = {}  # id(node) -> nodes it stands for, aliases expanded
+        self._open_anchors: set[str] = set()  # anchors whose node is still being composed
+        self._depth = 0
+
+    def compose_node(self, parent, index):
+        event = self.peek_event()
+        if isinstance(event, yaml.AliasEvent):
+            if event.anchor in self._open_anchors:
+                raise _Refused(f"alias *{event.anchor} lies inside the node it names "
+                               f"(a recursive alias)", event.start_mark)
+            return super().compose_node(parent, index)
+        self._depth += 1
+        if self._depth > MAX_YAML_DEPTH:
+            raise _Refused(f"nested deeper than {MAX_YAML_DEPTH} levels", event.start_mark)
+        anchor = event.anchor
+        if anchor is not None:
+            self._open_anchors.add(anchor)
+        try:
+            node = super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+            self._open_anchors.discard(anchor)
+        if isinstance(node, yaml.MappingNode):
+            children = [n for pair in node.value for n in pair]
+        elif isinstance(node, yaml.SequenceNode):
+            children = node.value
+        else:
+            children = []
+        size = 1 + sum(self._expanded[id(c)] for c in children)
+        if size > MAX_YAML_NODES:
+            raise _Refused(f"aliases expand this node to more than {MAX_YAML_NODES} values "
+                           f"(a config needs a few hundred)", node.start_mark)
+        self._expanded[id(node)] = size
+        return node
+
+    def compose_mapping_node(self, anchor):
+        node = super().compose_mapping_node(anchor)
+        seen: dict[tuple, yaml.Node] = {}
+        for key_node, _value in node.value:
+            if not isinstance(key_node, yaml.ScalarNode) or key_node.tag == _MERGE_TAG:
+                continue
+            key = (key_node.tag, key_node.value)
+            if key in seen:
+                first = seen[key].start_mark.line + 1
+                raise _Refused(f"duplicate key {key_node.value!r} (first on line {first})",
+                               key_node.start_mark)
+            seen[key] = key_node
+        return node
+
+    def construct_object(self, node, deep=False):
+        try:
+            return super().construct_object(node, deep=deep)
+        except (ValueError, OverflowError) as exc:
+            raise _Refused(f"cannot read {node.value[:40]!r}...: {exc}"
+                           if isinstance(node.value, str) and len(node.value) > 40
+                           else f"cannot read {node.value!r}: {exc}", node.start_mark) from None
+
+
+def _load_guarded(text: str) -> tuple[Any, dict[tuple, int]]:
+    """Compose ``text`` with :class:`GuardedLoader`, take its key lines, then construct it."""
+    loader = GuardedLoader(text)
+    try:
+        node = loader.get_single_node()
+        if node is None:
+            return None, {}
+        lines = _key_lines(node)  # before construction flattens merge keys into their mappings
+        return loader.construct_document(node), lines
+    finally:
+        loader.dispose()
+
+
 def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     """Read a YAML mapping from ``path``; return it with a key-path -> line table.
+
+    The file is read with :class:`GuardedLoader` (bounded alias expansion and nesting, no
+    duplicate keys).
 
     Raises
     ------
     ConfigError
-        Missing file, a directory, unreadable text, a YAML syntax error (with its line) or a
-        top level that is not a mapping.
+        Missing file, a directory, a file over :data:`MAX_CONFIG_BYTES`, unreadable text, a YAML
+        syntax error or a refusal of :class:`GuardedLoader` (with its line), or a top level that
+        is not a mapping.
     """
     p = Path(path)
     try:
+        size = p.stat().st_size
+        if size > MAX_CONFIG_BYTES and p.is_file():
+            raise ConfigError(f"{p}: {size} bytes is too large for a config file "
+                              f"(at most {MAX_CONFIG_BYTES})")
         text = p.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise ConfigError(f"{p}: no such config file") from None
@@ -778,20 +897,26 @@ def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(f"{p}: cannot read config: {exc}") from exc
     try:
-        node = yaml.compose(text, Loader=yaml.SafeLoader)
-        data = yaml.safe_load(text)
+        data, lines = _load_guarded(text)
+    except _Refused as exc:
+        raise ConfigError(f"{p} line {exc.problem_mark.line + 1}: {exc.problem}") from None
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         line = f" line {mark.line + 1}" if mark is not None else ""
-        raise ConfigError(f"{p}{line}: YAML syntax error: {exc.problem or exc}") from exc
+        problem = " ".join(str(exc.problem or exc).split())
+        raise ConfigError(f"{p}{line}: YAML syntax error: {problem}") from exc
+    except yaml.reader.ReaderError as exc:  # a character YAML does not allow
+        line = text.count("\n", 0, exc.position) + 1
+        raise ConfigError(f"{p} line {line}: YAML error: character #x{exc.character:04x} "
+                          f"is not allowed") from exc
     except yaml.YAMLError as exc:
-        raise ConfigError(f"{p}: YAML error: {exc}") from exc
+        raise ConfigError(f"{p}: YAML error: {' '.join(str(exc).split())}") from exc
     if data is None:
         data = {}
     if not isinstance(data, dict):
         raise ConfigError(f"{p}: top level must be a mapping of sections, got "
                           f"{type(data).__name__}")
-    return data, (_key_lines(node) if node is not None else {})
+    return data, lines
 
 
 def _at(where: str, lines: dict[tuple, int], loc: tuple) -> str:
