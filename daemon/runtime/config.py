@@ -65,6 +65,26 @@ def _non_negative(name: str, v: float) -> float:
     return v
 
 
+def _finite(name: str, v: Optional[float]) -> Optional[float]:
+    if v is not None and not math.isfinite(v):
+        raise ValueError(f"{name}={v} must be finite")
+    return v
+
+
+def _at_least(name: str, v: Optional[int], low: int) -> Optional[int]:
+    if v is not None and v < low:
+        raise ValueError(f"{name}={v} must be >= {low}")
+    return v
+
+
+def _sync_threshold_ok(v: float) -> float:
+    # brimline.drivers.link.receiver.Receiver compares a normalised correlation (0..1) with it
+    # and accepts (0, 1); 0 would detect noise as frames, 1 nothing.
+    if not 0.0 < v < 1.0:
+        raise ValueError(f"sync_threshold={v} must be in (0, 1)")
+    return v
+
+
 class Section(BaseModel):
     """Base of every config section: frozen, strict types, unknown keys rejected."""
 
@@ -193,6 +213,19 @@ class FadeEventSection(Section):
     last_tone: int = Field(description="last faded tone, signed FFT bin (inclusive)")
     depth_db: float = Field(20.0, description="attenuation, dB")
 
+    @field_validator("start_s", "depth_db")
+    @classmethod
+    def _finite_ok(cls, v, info):
+        return _finite(info.field_name, v)
+
+    @field_validator("stop_s")
+    @classmethod
+    def _window(cls, v, info):
+        start = info.data.get("start_s")
+        if v is not None and (math.isnan(v) or (start is not None and not v > start)):
+            raise ValueError(f"stop_s={v} must be after start_s={start} (absent: never ends)")
+        return v
+
     @field_validator("last_tone")
     @classmethod
     def _band(cls, v, info):
@@ -246,9 +279,23 @@ class SimSection(Section):
     @field_validator("sync_threshold")
     @classmethod
     def _threshold(cls, v):
-        if not 0.0 < v < 1.0:
-            raise ValueError(f"sync_threshold={v} must be in (0, 1)")
-        return v
+        return _sync_threshold_ok(v)
+
+    @field_validator("snr_db", "cfo_hz", "interferer_tone", "interferer_db", "drift_db",
+                     "start_s", "interferer_start_s", "interferer_stop_s")
+    @classmethod
+    def _finite_ok(cls, v, info):
+        return _finite(info.field_name, v)
+
+    @field_validator("default_bits", "seed")
+    @classmethod
+    def _count_ok(cls, v, info):
+        return _at_least(info.field_name, v, 0)
+
+    @field_validator("max_frames")
+    @classmethod
+    def _frames_ok(cls, v):
+        return _at_least("max_frames", v, 1)
 
     @field_validator("interferer_stop_s")
     @classmethod
@@ -268,6 +315,36 @@ class IqSection(Section):
     realtime: bool = Field(False, description="pace frames at the recording's own rate")
     max_frames: Optional[int] = Field(None, description="stop after this many frames")
     sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+
+    @field_validator("path")
+    @classmethod
+    def _path_ok(cls, v):
+        # A name that can only be a folder (".", "..", "", "dir/") is refused here, before any
+        # file is touched; brimline.drivers.sources.iq.read_sigmf refuses other folders by name.
+        if v.endswith(("/", "\\")) or Path(v).name in ("", ".", ".."):
+            raise ValueError(f"path={v!r} names a folder; give the recording as NAME, "
+                             f"NAME.sigmf-meta or NAME.sigmf-data")
+        return v
+
+    @field_validator("start_s")
+    @classmethod
+    def _start_ok(cls, v):
+        return _finite("start_s", v)
+
+    @field_validator("default_bits")
+    @classmethod
+    def _bits_ok(cls, v):
+        return _at_least("default_bits", v, 0)
+
+    @field_validator("max_frames")
+    @classmethod
+    def _frames_ok(cls, v):
+        return _at_least("max_frames", v, 1)
+
+    @field_validator("sync_threshold")
+    @classmethod
+    def _threshold(cls, v):
+        return _sync_threshold_ok(v)
 
 
 class RadioSection(Section):
@@ -290,6 +367,26 @@ class RadioSection(Section):
         if not 0.0 <= v <= 89.75:
             raise ValueError(f"tx_attenuation_db={v} must be in [0, 89.75]")
         return v
+
+    @field_validator("rx_gain_db")
+    @classmethod
+    def _gain_ok(cls, v):
+        return _finite("rx_gain_db", v)
+
+    @field_validator("buffer_frames")
+    @classmethod
+    def _buffer_ok(cls, v):
+        return _at_least("buffer_frames", v, 1)
+
+    @field_validator("default_bits")
+    @classmethod
+    def _bits_ok(cls, v):
+        return _at_least("default_bits", v, 0)
+
+    @field_validator("sync_threshold")
+    @classmethod
+    def _threshold(cls, v):
+        return _sync_threshold_ok(v)
 
 
 class ReplaySection(Section):
@@ -535,7 +632,21 @@ _ENDPOINT_SCHEMES = ("tcp://", "ipc://", "inproc://")
 def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
     if v is not None and (not v.startswith(_ENDPOINT_SCHEMES) or len(v) <= len("tcp://")):
         raise ValueError(f"{key}={v!r} must be a ZeroMQ endpoint such as tcp://127.0.0.1:7341")
+    if v is not None and v.startswith("tcp://"):
+        host, colon, port = v[len("tcp://"):].rpartition(":")
+        if not colon or not host:
+            raise ValueError(f"{key}={v!r} needs host:port, e.g. tcp://127.0.0.1:7341")
+        # ZeroMQ binds "*" (and 0, which the tests use) to any free port; a port past 65535
+        # must not be passed on: it was seen to bind another port.
+        if port != "*" and not (port.isascii() and port.isdigit() and int(port) <= 65535):
+            raise ValueError(f"{key}={v!r}: port {port!r} must be an integer in [0, 65535] "
+                             f"(0 or *: any free port)")
     return v
+
+
+def _fixed_endpoint(v: Optional[str]) -> bool:
+    """Whether two sockets binding ``v`` would collide (not "any free port")."""
+    return v is not None and not v.endswith((":0", ":*"))
 
 
 class PublishSection(Section):
@@ -728,6 +839,47 @@ class Config(Section):
     record: RecordSection = Field(default_factory=RecordSection)
     fallback: FallbackSection = Field(default_factory=FallbackSection)
     service: ServiceSection = Field(default_factory=ServiceSection)
+
+    @model_validator(mode="after")
+    def _fits_link(self) -> "Config":
+        link, d = self.link, self.driver
+        top = max(self.loading.bits)
+        if top > link.max_bits:
+            raise KeyProblem(("loading", "bits"), list(self.loading.bits),
+                             f"go above link.max_bits={link.max_bits}, the largest "
+                             f"constellation the link carries")
+        for kind in ("sim", "iq", "radio"):
+            section = getattr(d, kind)
+            if section is not None and section.default_bits > link.max_bits:
+                raise KeyProblem(("driver", kind, "default_bits"), section.default_bits,
+                                 f"must be in [0, link.max_bits={link.max_bits}]")
+        sim = d.sim
+        for i, event in enumerate(sim.events):
+            if event.last_tone < -link.used_tones_half or event.first_tone > link.used_tones_half:
+                raise KeyProblem(("driver", "sim", "events", str(i), "first_tone"),
+                                 [event.first_tone, event.last_tone],
+                                 f"the faded band misses the used tones "
+                                 f"[-{link.used_tones_half}, {link.used_tones_half}]")
+        slot = int(link.sample_rate_hz / sim.frame_rate_hz)
+        if sim.lead_max_samples > slot:
+            raise KeyProblem(("driver", "sim", "lead_max_samples"), sim.lead_max_samples,
+                             f"exceeds the samples of one frame interval "
+                             f"(link.sample_rate_hz / driver.sim.frame_rate_hz = {slot})")
+        return self
+
+    @model_validator(mode="after")
+    def _endpoints_distinct(self) -> "Config":
+        seen: dict[str, str] = {}
+        for loc in (("publish", "map_endpoint"), ("publish", "snapshot_endpoint"),
+                    ("publish", "ack_endpoint"), ("status", "endpoint")):
+            value = getattr(getattr(self, loc[0]), loc[1])
+            if not _fixed_endpoint(value):
+                continue
+            if value in seen:
+                raise KeyProblem(loc, value, f"is also {seen[value]}; each socket binds its "
+                                             f"own endpoint")
+            seen[value] = ".".join(loc)
+        return self
 
     @model_validator(mode="after")
     def _fallback_fits_loading(self) -> "Config":
