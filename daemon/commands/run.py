@@ -66,6 +66,10 @@ def _setup_logging(as_json: bool, quiet: bool) -> logging.Handler:
 def check_summary(path: str, config: Config) -> str:
     """Build everything a run needs except sockets (and a radio); return the OK line.
 
+    The driver is constructed and closed without producing a frame: a SigMF recording's meta and
+    data file are opened and checked (:func:`brimline.drivers.sources.iq.read_sigmf`), a replay
+    file's header is read, nothing is received.
+
     Raises
     ------
     BrimlineError
@@ -79,6 +83,21 @@ def check_summary(path: str, config: Config) -> str:
     return (f"{path}: OK: driver {d.kind}, {plan.data_tones.size} data tones of "
             f"{plan.fft_size}, loading {config.loading.mode} (gap {loader.gap_db:.2f} dB), "
             f"fallback {fb.bits} bits after {fb.stale_after_s:g} s")
+
+
+def _check(args: argparse.Namespace, config: Config) -> int:
+    """``run --check``: the OK line on stdout; warnings of the parts (a SigMF recording's, ...)
+    on stderr as they would be logged at start."""
+    root = logging.getLogger("brimline")
+    before = (root.level, root.propagate)
+    handler = _setup_logging(args.log_json, quiet=True)
+    try:
+        print(check_summary(args.config, config))
+    finally:
+        root.removeHandler(handler)
+        root.setLevel(before[0])
+        root.propagate = before[1]
+    return 0
 
 
 def end_summary(status: dict) -> str:
@@ -115,8 +134,7 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"--duration={args.duration} must be a positive number of seconds")
     config = load_config(args.config)
     if args.check:
-        print(check_summary(args.config, config))
-        return 0
+        return _check(args, config)
 
     handler = _setup_logging(args.log_json, args.quiet)
     if config.driver.kind == "radio":
