@@ -112,6 +112,9 @@ class TestGuardedLoader:
         p.write_text("#" * (MAX_CONFIG_BYTES + 1))
         with pytest.raises(ConfigError, match=r"too large for a config file"):
             load_config(p)
+        (tmp_path / "zero.yaml").symlink_to("/dev/zero")  # endless: only the bound stops it
+        with pytest.raises(ConfigError, match=r"zero.yaml: too large for a config file"):
+            load_config(tmp_path / "zero.yaml")
 
 
 # --------------------------------------------------------------------------- cross-field checks

@@ -100,6 +100,7 @@ class TestCi16Scale:
     ("[]", _cf32(N), r"r.sigmf-meta: no 'global' object"),
     ('{"global": []}', _cf32(N), r"no 'global' object"),
     ("[" * 100_000 + "]" * 100_000, _cf32(N), r"r.sigmf-meta: JSON nested too deeply"),
+    (_meta().replace("1000000.0", "1" * 5000), _cf32(N), r"r.sigmf-meta: not valid JSON: Exceeds"),
     (_meta(), None, r"r.sigmf-data: no such SigMF data file"),
 ])
 def test_bad_recordings_are_refused_in_one_line(tmp_path, meta, data, match):
@@ -161,3 +162,9 @@ def test_non_finite_samples_past_the_checked_head_are_zeroed_and_counted(tmp_pat
     with IqDriver(plan=plan, path=str(tmp_path / "n")) as drv:
         list(drv.frames())
     assert drv.counters["non_finite_samples"] == 100
+
+
+def test_a_device_as_meta_file_is_read_bounded(tmp_path):
+    (tmp_path / "z.sigmf-meta").symlink_to("/dev/zero")
+    with pytest.raises(SourceError, match=r"z.sigmf-meta: larger than \d+ bytes"):
+        read_sigmf(tmp_path / "z")

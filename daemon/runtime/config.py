@@ -1037,11 +1037,12 @@ def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     """
     p = Path(path)
     try:
-        size = p.stat().st_size
-        if size > MAX_CONFIG_BYTES and p.is_file():
-            raise ConfigError(f"{p}: {size} bytes is too large for a config file "
-                              f"(at most {MAX_CONFIG_BYTES})")
-        text = p.read_text(encoding="utf-8")
+        with open(p, "rb") as f:  # bounded: a device or a huge file is not a config
+            blob = f.read(MAX_CONFIG_BYTES + 1)
+        if len(blob) > MAX_CONFIG_BYTES:
+            raise ConfigError(f"{p}: too large for a config file (more than "
+                              f"{MAX_CONFIG_BYTES} bytes)")
+        text = blob.decode("utf-8")
     except FileNotFoundError:
         raise ConfigError(f"{p}: no such config file") from None
     except IsADirectoryError:

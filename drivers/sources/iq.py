@@ -66,6 +66,8 @@ _DTYPES = {"cf32_le": np.dtype("<c8"), "ci16_le": np.dtype("<i2")}
 _SAMPLE_BYTES = {"cf32_le": 8, "ci16_le": 4}
 SIGMF_VERSION = "1.0.0"
 _PLAUSIBILITY_SAMPLES = 65536
+#: Largest meta file read (a meta with thousands of annotations is a few MB).
+_MAX_META_BYTES = 64 << 20
 #: Largest |I| or |Q| accepted in cf32 data: far above full scale (1.0) and above any ADC's raw
 #: counts (a 24-bit converter reaches 8.4e6); int16 pairs read as float32 reach 1e38.
 _CF32_PLAUSIBLE_MAX = 1e9
@@ -130,13 +132,20 @@ def _is_number(v: Any) -> bool:
 
 def _read_meta(meta_path: Path) -> dict:
     try:
-        meta = json.loads(meta_path.read_text(encoding="utf-8"))
+        with open(meta_path, "rb") as f:  # bounded: a device or a huge file is not a meta file
+            blob = f.read(_MAX_META_BYTES + 1)
+        if len(blob) > _MAX_META_BYTES:
+            raise SourceError(f"{meta_path}: larger than {_MAX_META_BYTES} bytes; not a SigMF "
+                              f"metadata file")
+        meta = json.loads(blob.decode("utf-8"))
     except FileNotFoundError:
         raise SourceError(f"{meta_path}: no such SigMF metadata file") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise SourceError(f"{meta_path}: cannot read: {exc}") from exc
     except json.JSONDecodeError as exc:
         raise SourceError(f"{meta_path} line {exc.lineno}: not valid JSON: {exc.msg}") from exc
+    except ValueError as exc:  # an integer of thousands of digits
+        raise SourceError(f"{meta_path}: not valid JSON: {exc}") from exc
     except RecursionError:  # JSON nested thousands deep
         raise SourceError(f"{meta_path}: JSON nested too deeply") from None
     if not isinstance(meta, dict) or not isinstance(meta.get("global"), dict):
