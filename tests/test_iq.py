@@ -8,7 +8,7 @@ import re
 import numpy as np
 import pytest
 
-from brimline.daemon.errors import SourceError
+from brimline.daemon.errors import ConfigError, SourceError
 from brimline.drivers.link.frame import make_plan
 from brimline.drivers.sources.iq import CI16_FULL_SCALE, IqDriver, read_sigmf, write_sigmf
 
@@ -168,3 +168,12 @@ def test_a_device_as_meta_file_is_read_bounded(tmp_path):
     (tmp_path / "z.sigmf-meta").symlink_to("/dev/zero")
     with pytest.raises(SourceError, match=r"z.sigmf-meta: larger than \d+ bytes"):
         read_sigmf(tmp_path / "z")
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    ({"default_bits": 99}, r"driver.iq.default_bits=99 must be in \[0, link.max_bits=10\]"),
+    ({"max_frames": -1}, r"driver.iq.max_frames=-1 must be >= 1"),
+])
+def test_driver_arguments_are_checked_before_the_file(tmp_path, kwargs, match):
+    with pytest.raises(ConfigError, match=match):
+        IqDriver(plan=make_plan(), path=str(tmp_path / "absent"), **kwargs)

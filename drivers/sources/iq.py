@@ -389,7 +389,8 @@ class IqDriver(Driver):
     SourceError
         The recording cannot be read or fails a check of :func:`read_sigmf`.
     ConfigError
-        Its sample rate differs from the link's.
+        Its sample rate differs from the link's, or ``default_bits`` or ``max_frames`` is out
+        of range.
     """
 
     name = "iq"
@@ -399,6 +400,11 @@ class IqDriver(Driver):
                  sync_threshold: float = 0.3) -> None:
         super().__init__()
         self.plan = as_link_plan(plan)
+        if not 0 <= default_bits <= self.plan.max_bits:
+            raise ConfigError(f"driver.iq.default_bits={default_bits} must be in "
+                              f"[0, link.max_bits={self.plan.max_bits}]")
+        if max_frames is not None and max_frames < 1:
+            raise ConfigError(f"driver.iq.max_frames={max_frames} must be >= 1")
         self.recording = read_sigmf(path)
         rate = self.recording.sample_rate_hz
         if not math.isclose(rate, self.plan.sample_rate_hz, rel_tol=1e-9):
