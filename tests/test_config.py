@@ -145,3 +145,154 @@ def test_other_sections_default_as_their_constructors():
             ours = field.get_default(call_default_factory=True)
             assert ours == (list(default) if isinstance(default, tuple) else default), \
                 f"{section.__name__}.{key}: {ours!r} != {cls.__name__}'s {default!r}"
+
+
+# --------------------------------------------------------------------------- the YAML loader
+
+#: Nine levels of nine aliases: 9**9 (about 387 million) values once expanded, in 404 bytes of text.
+ALIAS_BOMB = "".join(
+    f"{name}: &{name} [{', '.join([f'*{prev}' if prev else 'x'] * 9)}]\n"
+    for prev, name in zip(["", *"abcdefgh"], "abcdefghi"))
+
+
+class TestGuardedLoader:
+    def test_alias_bomb_is_refused_while_composing(self, tmp_path, monkeypatch):
+        """The refusal comes from the structure (the expanded node count), before any object
+        is constructed, so neither memory nor time is what stops it."""
+        from brimline.daemon.runtime import config as config_module
+
+        assert len(ALIAS_BOMB.encode()) < 420
+        constructed = []
+        monkeypatch.setattr(config_module.GuardedLoader, "construct_document",
+                            lambda self, node: constructed.append(node))
+        with pytest.raises(ConfigError, match=r"c.yaml line \d+: aliases expand this node to "
+                                              r"more than 10000 values") as info:
+            load_config(_write(tmp_path, ALIAS_BOMB))
+        assert constructed == []
+        assert info.value.__cause__ is None and not isinstance(info.value.__context__,
+                                                               MemoryError)
+
+    @pytest.mark.parametrize("text, match", [
+        ("a: &a [*a]\n", r"line 1: alias \*a lies inside the node it names"),
+        ("a: &a {b: *a}\n", r"line 1: alias \*a lies inside the node it names"),
+        ("loading: &l\n  mode: rate\n  x: *l\n", r"line 3: alias \*l lies inside"),
+        ("loading:\n  mode: rate\nloading:\n  mode: margin\n",
+         r"line 3: duplicate key 'loading' \(first on line 1\)"),
+        ("loading:\n  gap_db: 9.0\n  margin_db: 1.0\n  gap_db: 12.0\n",
+         r"line 4: duplicate key 'gap_db' \(first on line 2\)"),
+        ("a: " + "[" * 5000 + "]" * 5000 + "\n", r"line 1: nested deeper than 32 levels"),
+        ("driver:\n  sim:\n    seed: " + "9" * 5000 + "\n", r"line 3: cannot read '9999"),
+        ("service:\n  state_path: 2024-13-01\n", r"line 2: cannot read '2024-13-01'"),
+        ("loading:\n  mode: rate\x00\n", r"line 2: YAML error: character #x0000 is not allowed"),
+        ("a: *nope\n", r"line 1: YAML syntax error: found undefined alias 'nope'"),
+    ])
+    def test_refusals_are_one_line_with_the_line(self, tmp_path, text, match):
+        with pytest.raises(ConfigError, match=match) as info:
+            load_config(_write(tmp_path, text))
+        assert "\n" not in str(info.value)
+
+    def test_a_few_aliases_and_merge_keys_still_work(self, tmp_path):
+        """YAML 1.1 merge keys (``<<``) may override the merged keys; that is no duplicate."""
+        text = ("x-sim: &sim {snr_db: 20.0, seed: 3}\n"
+                "driver:\n  sim:\n    <<: *sim\n    seed: 4\n")
+        with pytest.raises(ConfigError, match="unknown key x-sim"):  # the anchor key itself
+            load_config(_write(tmp_path, text))
+        from brimline.daemon.runtime.config import read_yaml
+
+        data, lines = read_yaml(_write(tmp_path, text))
+        assert data["driver"]["sim"] == {"snr_db": 20.0, "seed": 4}
+        assert lines[("driver", "sim", "seed")] == 5
+
+    def test_oversized_file_is_refused_unread(self, tmp_path):
+        from brimline.daemon.runtime.config import MAX_CONFIG_BYTES
+
+        p = tmp_path / "big.yaml"
+        p.write_text("#" * (MAX_CONFIG_BYTES + 1))
+        with pytest.raises(ConfigError, match=r"too large for a config file"):
+            load_config(p)
+        (tmp_path / "zero.yaml").symlink_to("/dev/zero")  # endless: only the bound stops it
+        with pytest.raises(ConfigError, match=r"zero.yaml: too large for a config file"):
+            load_config(tmp_path / "zero.yaml")
+
+
+# --------------------------------------------------------------------------- cross-field checks
+
+_IQ = "driver:\n  kind: iq\n  iq:\n    path: rec\n"
+
+
+@pytest.mark.parametrize("text, match", [
+    # allowed bits against the link's largest constellation (link.max_bits)
+    ("link:\n  max_bits: 6\nloading:\n  bits: [0, 2, 4, 6, 8]\n",
+     r"line 4: loading.bits=\[0, 2, 4, 6, 8\]: go above link.max_bits=6"),
+    # ports: TCP ports are 16-bit (RFC 793); 0 and * are ZeroMQ's "any free port"
+    ("publish:\n  map_endpoint: tcp://127.0.0.1:70000\n",
+     r"line 2: publish.map_endpoint='tcp://127.0.0.1:70000': .*\[0, 65535\]"),
+    ("status:\n  endpoint: tcp://127.0.0.1:-1\n", r"line 2: status.endpoint='tcp://127.0.0.1:-1'"),
+    ("publish:\n  snapshot_endpoint: tcp://127.0.0.1:http\n",
+     r"line 2: publish.snapshot_endpoint='tcp://127.0.0.1:http'"),
+    ("publish:\n  ack_endpoint: tcp://127.0.0.1\n", r"line 2: publish.ack_endpoint=.*needs host:port"),
+    ("publish:\n  map_endpoint: tcp://127.0.0.1:7400\nstatus:\n  endpoint: tcp://127.0.0.1:7400\n",
+     r"line 4: status.endpoint='tcp://127.0.0.1:7400': is also publish.map_endpoint"),
+    # event windows
+    ("driver:\n  sim:\n    events:\n      - {start_s: 5.0, stop_s: 2.0, first_tone: 1, last_tone: 9}\n",
+     r"line 4: driver.sim.events.0.stop_s=2.0: stop_s=2.0 must be after start_s=5.0"),
+    ("driver:\n  sim:\n    events:\n      - {start_s: 5.0, stop_s: 5.0, first_tone: 1, last_tone: 9}\n",
+     r"driver.sim.events.0.stop_s=5.0"),
+    ("driver:\n  sim:\n    events:\n      - {start_s: 1.0, first_tone: 300, last_tone: 400}\n",
+     r"line 4: driver.sim.events.0.first_tone=\[300, 400\]: the faded band misses"),
+    ("driver:\n  sim:\n    interferer_start_s: 4.0\n    interferer_stop_s: 1.0\n",
+     r"line 4: driver.sim.interferer_stop_s=1.0"),
+    # default bits: a constellation the link carries
+    ("driver:\n  sim:\n    default_bits: 99\n", r"line 3: driver.sim.default_bits=99: .*link.max_bits=10"),
+    ("driver:\n  sim:\n    default_bits: -1\n", r"line 3: driver.sim.default_bits=-1"),
+    (_IQ + "    default_bits: 99\n", r"line 5: driver.iq.default_bits=99"),
+    ("driver:\n  kind: radio\n  radio:\n    default_bits: 99\n", r"line 4: driver.radio.default_bits=99"),
+    # counts
+    ("driver:\n  sim:\n    max_frames: -1\n", r"line 3: driver.sim.max_frames=-1"),
+    (_IQ + "    max_frames: 0\n", r"line 5: driver.iq.max_frames=0"),
+    ("driver:\n  sim:\n    seed: -1\n", r"line 3: driver.sim.seed=-1"),
+    ("driver:\n  kind: radio\n  radio:\n    buffer_frames: 0\n", r"driver.radio.buffer_frames=0"),
+    ("driver:\n  sim:\n    lead_max_samples: 1000000000000\n",
+     r"line 3: driver.sim.lead_max_samples=1000000000000: exceeds the samples of one frame"),
+    # non-finite times and levels
+    ("driver:\n  sim:\n    start_s: .nan\n", r"line 3: driver.sim.start_s=nan: .*finite"),
+    ("driver:\n  sim:\n    start_s: .inf\n", r"driver.sim.start_s=inf"),
+    (_IQ + "    start_s: .nan\n", r"line 5: driver.iq.start_s=nan"),
+    ("driver:\n  sim:\n    events:\n      - {start_s: .nan, first_tone: 1, last_tone: 9}\n",
+     r"line 4: driver.sim.events.0.start_s=nan"),
+    ("driver:\n  sim:\n    events:\n      - {start_s: 1.0, stop_s: .nan, first_tone: 1, last_tone: 9}\n",
+     r"driver.sim.events.0.stop_s=nan"),
+    ("driver:\n  sim:\n    interferer_start_s: -.inf\n", r"driver.sim.interferer_start_s=-inf"),
+    ("driver:\n  sim:\n    snr_db: .nan\n", r"driver.sim.snr_db=nan"),
+    ("driver:\n  sim:\n    cfo_hz: .inf\n", r"driver.sim.cfo_hz=inf"),
+    ("driver:\n  kind: radio\n  radio:\n    rx_gain_db: .nan\n", r"driver.radio.rx_gain_db=nan"),
+    # an IQ path that can only be a folder
+    ("driver:\n  kind: iq\n  iq:\n    path: .\n", r"line 4: driver.iq.path='.': .*names a folder"),
+    ("driver:\n  kind: iq\n  iq:\n    path: ..\n", r"driver.iq.path='..'"),
+    ("driver:\n  kind: iq\n  iq:\n    path: ''\n", r"driver.iq.path=''"),
+    ("driver:\n  kind: iq\n  iq:\n    path: captures/\n", r"driver.iq.path='captures/'"),
+    # the receiver's detection threshold range, (0, 1) (brimline.drivers.link.receiver.Receiver)
+    ("driver:\n  sim:\n    sync_threshold: 1.5\n", r"line 3: driver.sim.sync_threshold=1.5"),
+    (_IQ + "    sync_threshold: 0.0\n", r"line 5: driver.iq.sync_threshold=0.0"),
+    ("driver:\n  kind: radio\n  radio:\n    sync_threshold: 2.0\n", r"driver.radio.sync_threshold=2.0"),
+    # frequencies given as text
+    ("link:\n  center_hz: '2.4 GHz'\n", r"line 2: link.center_hz='2.4 GHz'"),
+    ("driver:\n  sim:\n    doppler_hz: fast\n", r"line 3: driver.sim.doppler_hz='fast'"),
+])
+def test_cross_field_and_value_checks_name_key_value_and_line(tmp_path, text, match):
+    with pytest.raises(ConfigError, match=match) as info:
+        load_config(_write(tmp_path, text))
+    assert str(info.value).startswith(str(tmp_path / "c.yaml"))
+    assert "\n" not in str(info.value)
+
+
+@pytest.mark.parametrize("text", [
+    "publish:\n  map_endpoint: tcp://127.0.0.1:0\n  snapshot_endpoint: tcp://127.0.0.1:0\n"
+    "  ack_endpoint: tcp://127.0.0.1:0\nstatus:\n  endpoint: tcp://127.0.0.1:0\n",
+    "publish:\n  map_endpoint: tcp://127.0.0.1:*\n  ack_endpoint: null\n",
+    "publish:\n  map_endpoint: tcp://[::1]:7341\n",
+    "driver:\n  sim:\n    events:\n      - {start_s: 1.0, stop_s: .inf, first_tone: 90, last_tone: 300}\n",
+    "link:\n  max_bits: 8\nloading:\n  bits: [0, 2, 4, 6, 8]\ndriver:\n  sim:\n    default_bits: 8\n",
+])
+def test_edge_values_that_are_fine(tmp_path, text):
+    load_config(_write(tmp_path, text))

@@ -258,3 +258,52 @@ def test_a_torn_replay_tail_is_one_json_log_line(tmp_path, capsys):
     torn = [x for x in lines if x["logger"] == "brimline.recording"]
     assert len(torn) == 1 and torn[0]["level"] == "warning"
     assert torn[0]["message"].startswith(f"{rec}: record 40 is torn (")
+
+
+def _iq_config(tmp_path: Path, meta: dict, data: bytes) -> Path:
+    (tmp_path / "rec.sigmf-meta").write_text(json.dumps(meta))
+    (tmp_path / "rec.sigmf-data").write_bytes(data)
+    p = tmp_path / "iq.yaml"
+    p.write_text("driver:\n  kind: iq\n  iq:\n    path: rec\n")
+    return p
+
+
+_GLOBAL = {"core:datatype": "cf32_le", "core:sample_rate": 3.84e6, "core:version": "1.0.0"}
+
+
+@pytest.mark.parametrize("meta, data, match", [
+    ({"global": _GLOBAL, "captures": {"core:sample_start": 0}}, bytes(800),
+     r"rec.sigmf-meta: captures must be a list of objects"),
+    ({"global": _GLOBAL, "captures": [{"core:sample_start": 0, "core:frequency": "2.4e9"}]},
+     bytes(800), r"rec.sigmf-meta: captures\[0\].core:frequency='2.4e9'"),
+    ({"global": _GLOBAL, "captures": [{"core:sample_start": 500}]}, bytes(800),
+     r"captures\[0\].core:sample_start=500 is past the end of the data \(100 samples"),
+    ({"global": _GLOBAL}, b"", r"rec.sigmf-data: is empty"),
+])
+def test_check_opens_and_checks_the_sigmf_recording(tmp_path, capsys, meta, data, match):
+    """--check constructs the IQ driver (meta and data checked, nothing received)."""
+    import re
+
+    assert main(["run", "--config", str(_iq_config(tmp_path, meta, data)), "--check"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and re.search(match, err[0]), err
+
+
+def test_check_shows_sigmf_warnings_and_passes(tmp_path, capsys):
+    glob = {k: v for k, v in _GLOBAL.items() if k != "core:version"}
+    meta = {"global": glob, "annotations": [{"core:sample_start": 0, "core:sample_count": 10**6}]}
+    assert main(["run", "--config", str(_iq_config(tmp_path, meta, bytes(800))), "--check"]) == 0
+    captured = capsys.readouterr()
+    assert ": OK: driver iq" in captured.out
+    assert "global has no core:version" in captured.err
+    assert "data shorter than its annotations" in captured.err
+
+
+def test_alias_bomb_fails_check_in_one_line(tmp_path, capsys):
+    from test_config import ALIAS_BOMB
+
+    p = tmp_path / "bomb.yaml"
+    p.write_text(ALIAS_BOMB)
+    assert main(["run", "--config", str(p), "--check"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "aliases expand this node" in err[0], err

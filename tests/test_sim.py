@@ -267,9 +267,10 @@ class TestSigmf:
         assert rec.n_samples == 1000 and rec.sample_rate_hz == 1e6 and rec.center_hz == 2.4e9
         if datatype == "cf32_le":
             np.testing.assert_array_equal(rec.samples(0, 1000), x)
-        else:  # saturating at full scale, like an ADC
-            expected = np.clip(x.real, -1, 1) + 1j * np.clip(x.imag, -1, 1)
-            np.testing.assert_allclose(rec.samples(0, 1000), expected, atol=0.75 / 32767)  # half a step per axis
+        else:  # saturating at full scale (-32768 and +32767 of 32768), like an ADC
+            top = 32767 / 32768
+            expected = np.clip(x.real, -1, top) + 1j * np.clip(x.imag, -1, top)
+            np.testing.assert_allclose(rec.samples(0, 1000), expected, atol=0.75 / 32768)  # half a step per axis
 
     def test_meta_follows_sigmf_core(self, tmp_path):
         """SigMF core fields: global core:datatype, core:sample_rate, core:version; captures
@@ -334,10 +335,10 @@ class TestIqDriver:
         with pytest.raises(ConfigError, match=r"core:sample_rate=1e\+06 Hz differs"):
             IqDriver(plan=plan, path=str(tmp_path / "r"))
 
-    def test_empty_recording(self, plan, tmp_path):
+    def test_empty_recording_is_refused(self, plan, tmp_path):
         write_sigmf(tmp_path / "e", np.zeros(0, np.complex64), sample_rate_hz=plan.sample_rate_hz)
-        with IqDriver(plan=plan, path=str(tmp_path / "e")) as drv:
-            assert list(drv.frames()) == []
+        with pytest.raises(SourceError, match=r"e.sigmf-data: is empty \(no samples\)"):
+            IqDriver(plan=plan, path=str(tmp_path / "e"))
 
 
 # --------------------------------------------------------------------------- radio

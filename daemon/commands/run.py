@@ -79,6 +79,10 @@ def _setup_logging(as_json: bool, quiet: bool) -> logging.Handler:
 def check_summary(path: str, config: Config) -> str:
     """Build everything a run needs except sockets (and a radio); return the OK line.
 
+    The driver is constructed and closed without producing a frame: a SigMF recording's meta and
+    data file are opened and checked (:func:`brimline.drivers.sources.iq.read_sigmf`), a replay
+    file's header is read, nothing is received.
+
     Raises
     ------
     BrimlineError
@@ -149,6 +153,27 @@ def _cannot_create_in(folder: Path) -> str | None:
     return None
 
 
+def _check(args: argparse.Namespace, config: Config) -> int:
+    """``run --check``: the OK line on stdout; warnings of the parts (a SigMF recording's, ...)
+    on stderr as they would be logged at start."""
+    root = logging.getLogger("brimline")
+    before = (root.level, root.propagate)
+    handler = _setup_logging(args.log_json, quiet=True)
+    try:
+        line = check_summary(args.config, config)
+        problems = check_paths(config)
+        for problem in problems:  # each on its own line, as the CLI prints a BrimlineError
+            print(f"brimline run: error: {problem}", file=sys.stderr)
+        if problems:
+            return 2
+        print(line)
+    finally:
+        root.removeHandler(handler)
+        root.setLevel(before[0])
+        root.propagate = before[1]
+    return 0
+
+
 def end_summary(status: dict) -> str:
     """The lines printed when a run ends: frames, rejections, maps by kind, final figures."""
     fr = status.get("frames", {})
@@ -183,14 +208,7 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"--duration={args.duration} must be a positive number of seconds")
     config = load_config(args.config)
     if args.check:
-        line = check_summary(args.config, config)
-        problems = check_paths(config)
-        for problem in problems:  # each on its own line, as the CLI prints a BrimlineError
-            print(f"brimline run: error: {problem}", file=sys.stderr)
-        if problems:
-            return 2
-        print(line)
-        return 0
+        return _check(args, config)
 
     handler = _setup_logging(args.log_json, args.quiet)
     if config.driver.kind == "radio":

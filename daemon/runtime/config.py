@@ -21,6 +21,10 @@ into the constructor (default and limit) first, then into the section with its d
 
 YAML is read with :class:`ConfigLoader`, which adds YAML 1.2's float rule so that ``1e6`` is a
 number.
+
+The YAML is read with :class:`GuardedLoader` (a :class:`ConfigLoader`): alias expansion,
+nesting depth and file size are bounded and a key written twice in a mapping is refused, each with its line, so a hostile or
+mistyped file costs milliseconds and a few kB, never gigabytes.
 """
 
 from __future__ import annotations
@@ -39,7 +43,15 @@ from brimline.daemon.core.estimator import ESTIMATOR_LIMITS, Estimator
 from brimline.daemon.core.loading import Loader, allowed_bits, check_target_bits
 from brimline.daemon.core.qam import TARGET_SER, qam_gap_db
 from brimline.daemon.errors import ConfigError
-from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, between, check_db
+from brimline.daemon.limits import (
+    FINITE,
+    NON_NEGATIVE,
+    POSITIVE,
+    Limit,
+    at_least,
+    between,
+    check_db,
+)
 from brimline.daemon.net.publisher import PUBLISH_LIMITS, STATUS_LIMITS, check_publish_settings
 from brimline.drivers.air.channel import check_interferer_window
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
@@ -62,6 +74,9 @@ __all__ = [
     "load_config",
     "read_yaml",
     "ConfigLoader",
+    "GuardedLoader",
+    "MAX_YAML_NODES",
+    "MAX_CONFIG_BYTES",
     "parse_section",
 ]
 
@@ -81,6 +96,11 @@ _CHG = _keyword_defaults(ChangeControl)
 
 #: Frame detection threshold of the receiver, a fraction of the sync metric's peak of 1.
 _SYNC_THRESHOLD = between(0.0, 1.0, low_open=True, high_open=True)
+
+
+def _within(limit: Limit, name: str, v: Optional[float]) -> Optional[float]:
+    """``v`` checked against a shared limit rule; None (the key left unset) passes."""
+    return v if v is None else limit.check(name, v)
 
 
 class Section(BaseModel):
@@ -202,6 +222,19 @@ class FadeEventSection(Section):
     last_tone: int = Field(description="last faded tone, signed FFT bin (inclusive)")
     depth_db: float = Field(20.0, description="attenuation, dB")
 
+    @field_validator("start_s", "depth_db")
+    @classmethod
+    def _finite_ok(cls, v, info):
+        return _within(FINITE, info.field_name, v)
+
+    @field_validator("stop_s")
+    @classmethod
+    def _window(cls, v, info):
+        start = info.data.get("start_s")
+        if v is not None and (math.isnan(v) or (start is not None and not v > start)):
+            raise ValueError(f"stop_s={v} must be after start_s={start} (absent: never ends)")
+        return v
+
     @field_validator("last_tone")
     @classmethod
     def _band(cls, v, info):
@@ -255,6 +288,22 @@ class SimSection(Section):
     def _threshold(cls, v):
         return _SYNC_THRESHOLD.check("sync_threshold", v)
 
+    @field_validator("snr_db", "cfo_hz", "interferer_tone", "interferer_db", "drift_db",
+                     "start_s", "interferer_start_s", "interferer_stop_s")
+    @classmethod
+    def _finite_ok(cls, v, info):
+        return _within(FINITE, info.field_name, v)
+
+    @field_validator("default_bits", "seed")
+    @classmethod
+    def _count_ok(cls, v, info):
+        return _within(at_least(0), info.field_name, v)
+
+    @field_validator("max_frames")
+    @classmethod
+    def _frames_ok(cls, v):
+        return _within(at_least(1), "max_frames", v)
+
     @field_validator("interferer_stop_s")
     @classmethod
     def _interferer_window(cls, v, info):
@@ -271,6 +320,31 @@ class IqSection(Section):
     realtime: bool = Field(False, description="pace frames at the recording's own rate")
     max_frames: Optional[int] = Field(None, description="stop after this many frames")
     sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+
+    @field_validator("path")
+    @classmethod
+    def _path_ok(cls, v):
+        # A name that can only be a folder (".", "..", "", "dir/") is refused here, before any
+        # file is touched; brimline.drivers.sources.iq.read_sigmf refuses other folders by name.
+        if v.endswith(("/", "\\")) or Path(v).name in ("", ".", ".."):
+            raise ValueError(f"path={v!r} names a folder; give the recording as NAME, "
+                             f"NAME.sigmf-meta or NAME.sigmf-data")
+        return v
+
+    @field_validator("start_s")
+    @classmethod
+    def _start_ok(cls, v):
+        return _within(FINITE, "start_s", v)
+
+    @field_validator("default_bits")
+    @classmethod
+    def _bits_ok(cls, v):
+        return _within(at_least(0), "default_bits", v)
+
+    @field_validator("max_frames")
+    @classmethod
+    def _frames_ok(cls, v):
+        return _within(at_least(1), "max_frames", v)
 
     @field_validator("sync_threshold")
     @classmethod
@@ -301,6 +375,21 @@ class RadioSection(Section):
     @classmethod
     def _attenuation(cls, v):
         return between(0.0, 89.75).check("tx_attenuation_db", v)
+
+    @field_validator("rx_gain_db")
+    @classmethod
+    def _gain_ok(cls, v):
+        return _within(FINITE, "rx_gain_db", v)
+
+    @field_validator("buffer_frames")
+    @classmethod
+    def _buffer_ok(cls, v):
+        return _within(at_least(1), "buffer_frames", v)
+
+    @field_validator("default_bits")
+    @classmethod
+    def _bits_ok(cls, v):
+        return _within(at_least(0), "default_bits", v)
 
 
 class ReplaySection(Section):
@@ -506,7 +595,21 @@ _ENDPOINT_SCHEMES = ("tcp://", "ipc://", "inproc://")
 def _endpoint_ok(key: str, v: Optional[str]) -> Optional[str]:
     if v is not None and (not v.startswith(_ENDPOINT_SCHEMES) or len(v) <= len("tcp://")):
         raise ValueError(f"{key}={v!r} must be a ZeroMQ endpoint such as tcp://127.0.0.1:7341")
+    if v is not None and v.startswith("tcp://"):
+        host, colon, port = v[len("tcp://"):].rpartition(":")
+        if not colon or not host:
+            raise ValueError(f"{key}={v!r} needs host:port, e.g. tcp://127.0.0.1:7341")
+        # ZeroMQ binds "*" (and 0, which the tests use) to any free port; a port past 65535
+        # must not be passed on: it was seen to bind another port.
+        if port != "*" and not (port.isascii() and port.isdigit() and int(port) <= 65535):
+            raise ValueError(f"{key}={v!r}: port {port!r} must be an integer in [0, 65535] "
+                             f"(0 or *: any free port)")
     return v
+
+
+def _fixed_endpoint(v: Optional[str]) -> bool:
+    """Whether two sockets binding ``v`` would collide (not "any free port")."""
+    return v is not None and not v.endswith((":0", ":*"))
 
 
 class PublishSection(Section):
@@ -670,6 +773,47 @@ class Config(Section):
     service: ServiceSection = Field(default_factory=ServiceSection)
 
     @model_validator(mode="after")
+    def _fits_link(self) -> "Config":
+        link, d = self.link, self.driver
+        top = max(self.loading.bits)
+        if top > link.max_bits:
+            raise KeyProblem(("loading", "bits"), list(self.loading.bits),
+                             f"go above link.max_bits={link.max_bits}, the largest "
+                             f"constellation the link carries")
+        for kind in ("sim", "iq", "radio"):
+            section = getattr(d, kind)
+            if section is not None and section.default_bits > link.max_bits:
+                raise KeyProblem(("driver", kind, "default_bits"), section.default_bits,
+                                 f"must be in [0, link.max_bits={link.max_bits}]")
+        sim = d.sim
+        for i, event in enumerate(sim.events):
+            if event.last_tone < -link.used_tones_half or event.first_tone > link.used_tones_half:
+                raise KeyProblem(("driver", "sim", "events", str(i), "first_tone"),
+                                 [event.first_tone, event.last_tone],
+                                 f"the faded band misses the used tones "
+                                 f"[-{link.used_tones_half}, {link.used_tones_half}]")
+        slot = int(link.sample_rate_hz / sim.frame_rate_hz)
+        if sim.lead_max_samples > slot:
+            raise KeyProblem(("driver", "sim", "lead_max_samples"), sim.lead_max_samples,
+                             f"exceeds the samples of one frame interval "
+                             f"(link.sample_rate_hz / driver.sim.frame_rate_hz = {slot})")
+        return self
+
+    @model_validator(mode="after")
+    def _endpoints_distinct(self) -> "Config":
+        seen: dict[str, str] = {}
+        for loc in (("publish", "map_endpoint"), ("publish", "snapshot_endpoint"),
+                    ("publish", "ack_endpoint"), ("status", "endpoint")):
+            value = getattr(getattr(self, loc[0]), loc[1])
+            if not _fixed_endpoint(value):
+                continue
+            if value in seen:
+                raise KeyProblem(loc, value, f"is also {seen[value]}; each socket binds its "
+                                             f"own endpoint")
+            seen[value] = ".".join(loc)
+        return self
+
+    @model_validator(mode="after")
     def _fallback_fits_loading(self) -> "Config":
         fb, ld = self.fallback, self.loading
         if fb.bits not in ld.bits:
@@ -722,18 +866,131 @@ def _key_lines(node: yaml.Node, prefix: tuple = ()) -> dict[tuple, int]:
     return lines
 
 
+#: A config file larger than this is refused unread (a full config is a few kB of text).
+MAX_CONFIG_BYTES = 1 << 20
+#: Most YAML nodes a config may stand for once its aliases are expanded; a full config has a few
+#: hundred. Nested aliases can expand exponentially (nine levels of nine aliases: 9**9 nodes, the
+#: "billion laughs"), so the bound is on the expanded count, checked while composing, before
+#: anything is constructed.
+MAX_YAML_NODES = 10_000
+#: Deepest nesting of YAML collections a config may have (the deepest key needs five levels).
+MAX_YAML_DEPTH = 32
+
+_MERGE_TAG = "tag:yaml.org,2002:merge"
+
+
+class _Refused(yaml.MarkedYAMLError):
+    """A YAML document :class:`GuardedLoader` will not load; ``problem_mark`` has the line."""
+
+    def __init__(self, problem: str, mark: yaml.Mark) -> None:
+        super().__init__(problem=problem, problem_mark=mark)
+
+
+class GuardedLoader(ConfigLoader):
+    """The config loader (:class:`ConfigLoader`, YAML 1.2 floats) with bounds for hostile or mistyped configs.
+
+    Refused, each at the line where it is found, while composing (before any Python object is
+    built): a node whose alias expansion exceeds :data:`MAX_YAML_NODES`, an alias inside the node
+    it names (a recursive alias), nesting deeper than :data:`MAX_YAML_DEPTH` and a key written
+    twice in one mapping (merge keys ``<<`` may be overridden, as YAML's merge type intends).
+    A scalar Python cannot convert (an integer of thousands of digits, a timestamp like
+    ``2024-13-01``) is refused at its line while constructing.
+    """
+
+    def __init__(self, stream) -> None:
+        super().__init__(stream)
+        self._expanded: dict[int, int] = {}  # id(node) -> nodes it stands for, aliases expanded
+        self._open_anchors: set[str] = set()  # anchors whose node is still being composed
+        self._depth = 0
+
+    def compose_node(self, parent, index):
+        event = self.peek_event()
+        if isinstance(event, yaml.AliasEvent):
+            if event.anchor in self._open_anchors:
+                raise _Refused(f"alias *{event.anchor} lies inside the node it names "
+                               f"(a recursive alias)", event.start_mark)
+            return super().compose_node(parent, index)
+        self._depth += 1
+        if self._depth > MAX_YAML_DEPTH:
+            raise _Refused(f"nested deeper than {MAX_YAML_DEPTH} levels", event.start_mark)
+        anchor = event.anchor
+        if anchor is not None:
+            self._open_anchors.add(anchor)
+        try:
+            node = super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+            self._open_anchors.discard(anchor)
+        if isinstance(node, yaml.MappingNode):
+            children = [n for pair in node.value for n in pair]
+        elif isinstance(node, yaml.SequenceNode):
+            children = node.value
+        else:
+            children = []
+        size = 1 + sum(self._expanded[id(c)] for c in children)
+        if size > MAX_YAML_NODES:
+            raise _Refused(f"aliases expand this node to more than {MAX_YAML_NODES} values "
+                           f"(a config needs a few hundred)", node.start_mark)
+        self._expanded[id(node)] = size
+        return node
+
+    def compose_mapping_node(self, anchor):
+        node = super().compose_mapping_node(anchor)
+        seen: dict[tuple, yaml.Node] = {}
+        for key_node, _value in node.value:
+            if not isinstance(key_node, yaml.ScalarNode) or key_node.tag == _MERGE_TAG:
+                continue
+            key = (key_node.tag, key_node.value)
+            if key in seen:
+                first = seen[key].start_mark.line + 1
+                raise _Refused(f"duplicate key {key_node.value!r} (first on line {first})",
+                               key_node.start_mark)
+            seen[key] = key_node
+        return node
+
+    def construct_object(self, node, deep=False):
+        try:
+            return super().construct_object(node, deep=deep)
+        except (ValueError, OverflowError) as exc:
+            raise _Refused(f"cannot read {node.value[:40]!r}...: {exc}"
+                           if isinstance(node.value, str) and len(node.value) > 40
+                           else f"cannot read {node.value!r}: {exc}", node.start_mark) from None
+
+
+def _load_guarded(text: str) -> tuple[Any, dict[tuple, int]]:
+    """Compose ``text`` with :class:`GuardedLoader`, take its key lines, then construct it."""
+    loader = GuardedLoader(text)
+    try:
+        node = loader.get_single_node()
+        if node is None:
+            return None, {}
+        lines = _key_lines(node)  # before construction flattens merge keys into their mappings
+        return loader.construct_document(node), lines
+    finally:
+        loader.dispose()
+
+
 def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     """Read a YAML mapping from ``path``; return it with a key-path -> line table.
+
+    The file is read with :class:`GuardedLoader` (bounded alias expansion and nesting, no
+    duplicate keys).
 
     Raises
     ------
     ConfigError
-        Missing file, a directory, unreadable text, a YAML syntax error (with its line) or a
-        top level that is not a mapping.
+        Missing file, a directory, a file over :data:`MAX_CONFIG_BYTES`, unreadable text, a YAML
+        syntax error or a refusal of :class:`GuardedLoader` (with its line), or a top level that
+        is not a mapping.
     """
     p = Path(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        with open(p, "rb") as f:  # bounded: a device or a huge file is not a config
+            blob = f.read(MAX_CONFIG_BYTES + 1)
+        if len(blob) > MAX_CONFIG_BYTES:
+            raise ConfigError(f"{p}: too large for a config file (more than "
+                              f"{MAX_CONFIG_BYTES} bytes)")
+        text = blob.decode("utf-8")
     except FileNotFoundError:
         raise ConfigError(f"{p}: no such config file") from None
     except IsADirectoryError:
@@ -741,20 +998,26 @@ def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(f"{p}: cannot read config: {exc}") from exc
     try:
-        node = yaml.compose(text, Loader=ConfigLoader)
-        data = yaml.load(text, Loader=ConfigLoader)  # a SafeLoader: plain data only
+        data, lines = _load_guarded(text)
+    except _Refused as exc:
+        raise ConfigError(f"{p} line {exc.problem_mark.line + 1}: {exc.problem}") from None
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         line = f" line {mark.line + 1}" if mark is not None else ""
-        raise ConfigError(f"{p}{line}: YAML syntax error: {exc.problem or exc}") from exc
+        problem = " ".join(str(exc.problem or exc).split())
+        raise ConfigError(f"{p}{line}: YAML syntax error: {problem}") from exc
+    except yaml.reader.ReaderError as exc:  # a character YAML does not allow
+        line = text.count("\n", 0, exc.position) + 1
+        raise ConfigError(f"{p} line {line}: YAML error: character #x{exc.character:04x} "
+                          f"is not allowed") from exc
     except yaml.YAMLError as exc:
-        raise ConfigError(f"{p}: YAML error: {exc}") from exc
+        raise ConfigError(f"{p}: YAML error: {' '.join(str(exc).split())}") from exc
     if data is None:
         data = {}
     if not isinstance(data, dict):
         raise ConfigError(f"{p}: top level must be a mapping of sections, got "
                           f"{type(data).__name__}")
-    return data, (_key_lines(node) if node is not None else {})
+    return data, lines
 
 
 def _at(where: str, lines: dict[tuple, int], loc: tuple) -> str:
