@@ -13,11 +13,13 @@ import time
 
 from brimline.daemon.commands.cli import RF_CAUTION
 from brimline.daemon.errors import InputError
+from brimline.daemon.net.curve import check_server_keys, exposed_endpoints
 from brimline.daemon.runtime.config import Config, load_config
 from brimline.daemon.runtime.service import Service, build_core, make_driver
 from brimline.daemon.runtime.status import summary_line
 
-__all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "end_summary"]
+__all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "end_summary",
+           "security_warnings"]
 
 
 class JsonLogFormatter(logging.Formatter):
@@ -81,6 +83,29 @@ def check_summary(path: str, config: Config) -> str:
             f"fallback {fb.bits} bits after {fb.stale_after_s:g} s")
 
 
+def security_warnings(config: Config) -> list[str]:
+    """Read every CURVE key file the config names; return the warnings for the operator.
+
+    Returns
+    -------
+    list of str
+        One line per client key file that will be skipped and per endpoint other hosts can
+        reach while CURVE is off (wildcard, ``0.0.0.0`` or a non-loopback host).
+
+    Raises
+    ------
+    InputError
+        The daemon's secret key file or the clients directory is unusable (names the file).
+    """
+    pub = config.publish
+    warnings = check_server_keys(pub)
+    endpoints = {"publish.map_endpoint": pub.map_endpoint,
+                 "publish.snapshot_endpoint": pub.snapshot_endpoint,
+                 "publish.ack_endpoint": pub.ack_endpoint,
+                 "status.endpoint": config.status.endpoint}
+    return warnings + exposed_endpoints(endpoints, pub.curve_secret_key is not None)
+
+
 def end_summary(status: dict) -> str:
     """The lines printed when a run ends: frames, rejections, maps by kind, final figures."""
     fr = status.get("frames", {})
@@ -114,11 +139,17 @@ def run(args: argparse.Namespace) -> int:
     if args.duration is not None and not args.duration > 0:
         raise InputError(f"--duration={args.duration} must be a positive number of seconds")
     config = load_config(args.config)
+    warnings = security_warnings(config)
     if args.check:
-        print(check_summary(args.config, config))
+        summary = check_summary(args.config, config)
+        for line in warnings:
+            print(f"{args.config}: warning: {line}", file=sys.stderr)
+        print(summary)
         return 0
 
     handler = _setup_logging(args.log_json, args.quiet)
+    for line in warnings:
+        logging.getLogger("brimline.service").warning("%s", line)
     if config.driver.kind == "radio":
         print(RF_CAUTION, file=sys.stderr, flush=True)
     stop = threading.Event()

@@ -53,6 +53,7 @@ import zmq
 from brimline.daemon.core.change import ChangeControl
 from brimline.daemon.core.estimator import Estimator
 from brimline.daemon.errors import BrimlineError, ConfigError, ProtocolError, SourceError
+from brimline.daemon.net.curve import follower_keys
 from brimline.daemon.net.follower import Follower
 from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
 from brimline.daemon.records import Allocation, DecisionKind, Estimate, LoadMap
@@ -640,6 +641,7 @@ class Service:
             maps_published=self.maps_published, changes=list(self.changes),
             acks={k: {"seq": v["seq"], "age_s": wall - v["wall"]} for k, v in self.acks.items()},
             stale=self.stale, state_unsaved=self.state_unsaved,
+            protocol_errors=self._io.protocol_errors() if self._io is not None else None,
             symbol_rate_hz=self.plan.sample_rate_hz / self.plan.symbol_len)
 
     def publish_status(self) -> dict:
@@ -732,6 +734,10 @@ class _Io:
             return []
         return self.maps.poll_acks()
 
+    def protocol_errors(self) -> dict[str, dict[str, int]]:
+        """Messages the map publisher's sockets dropped, by socket and reason."""
+        return self.maps.protocol_errors
+
     def endpoints(self) -> dict[str, str]:
         return {"maps": self.maps.map_endpoint, "snapshots": self.maps.snapshot_endpoint,
                 "acks": self.maps.ack_endpoint, "status": self.status.endpoint}
@@ -742,7 +748,8 @@ class _Io:
         kwargs = dict(plan=self._plan, map_endpoint=self.maps.map_endpoint,
                       snapshot_endpoint=self.maps.snapshot_endpoint,
                       ack_endpoint=self.maps.ack_endpoint, bits=list(ld.bits),
-                      budget_db=ld.budget_db, cap_db=ld.cap_db, context=self._context)
+                      budget_db=ld.budget_db, cap_db=ld.cap_db, context=self._context,
+                      **follower_keys(self._config.publish))  # CURVE: the daemon's own pair
         return lambda: Follower(**kwargs)
 
     # -- status

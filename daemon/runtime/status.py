@@ -20,6 +20,7 @@ Layout of the message (version 1)::
      "maps_published": {kind: n},
      "changes": [{"time_s", "kind", "reason", "seq"}, ...],   # newest last
      "acks": {follower: {"seq", "age_s"}},
+     "protocol_errors": {socket: {reason: n}},   # malformed or forged messages dropped
      "alarms": ["stale", "fallback", "emergency", "driver_failed", ...]}
 
 The band is compact: tones are grouped into at most ``columns`` adjacent groups; each group shows
@@ -128,7 +129,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  maps_published: Mapping[str, int] | None = None,
                  changes: Sequence[Change] = (), acks: Mapping[str, Mapping] | None = None,
                  stale: bool = False, symbol_rate_hz: float | None = None,
-                 columns: int = 128, state_unsaved: bool = False) -> dict:
+                 columns: int = 128, state_unsaved: bool = False,
+                 protocol_errors: Mapping[str, Mapping[str, int]] | None = None) -> dict:
     """Build the status message (see the module docstring for its layout).
 
     Parameters
@@ -167,6 +169,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     state_unsaved : bool
         The daemon could not save its state (sequence-number lease): alarm ``state_unsaved``;
         no new map is sent until a save succeeds.
+    protocol_errors : mapping, optional
+        Messages the daemon's sockets dropped, by socket (``acks``, ``snapshots``) and reason
+        (a codec reason, ``forged``, ``request``).
 
     Returns
     -------
@@ -240,6 +245,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                      "seq": int(c.seq)} for c in changes],
         "acks": {str(k): {"seq": int(v.get("seq", -1)), "age_s": finite(v.get("age_s"))}
                  for k, v in dict(acks or {}).items()},
+        "protocol_errors": {str(sock): {str(r): int(n) for r, n in dict(reasons).items()}
+                            for sock, reasons in dict(protocol_errors or {}).items()},
         "alarms": alarms,
     }
 
