@@ -500,6 +500,8 @@ def decode(frames: Sequence[Any], *, types: Iterable[str] | None = None) -> tupl
         raise ProtocolError("topic is not ASCII", reason="topic") from None
     if not topic:
         raise ProtocolError("topic is empty", reason="topic")
+    if not topic.isprintable() or " " in topic:  # no control characters in log lines
+        raise ProtocolError(f"topic {topic!r} is not a printable name", reason="topic")
     header = _header(topic, views[1])
     kind = header["type"]
     if not isinstance(kind, str) or (kind != _DICT and kind not in _BY_NAME):
