@@ -279,20 +279,25 @@ _JSON = st.recursive(
     lambda inner: st.lists(inner, max_size=5) | st.dictionaries(st.text(max_size=8), inner,
                                                                 max_size=5),
     max_leaves=25)
+_LEAF = (st.none() | st.booleans() | st.integers() | st.sampled_from([2**64, -(10**30)])
+         | st.floats(allow_nan=False, allow_infinity=False) | st.text(max_size=6))
+# Cheap to draw: the near-real strategy below draws many of these per example.
+_ODD = st.one_of(_LEAF, st.lists(_LEAF, max_size=3),
+                 st.dictionaries(st.text(max_size=3), _LEAF, max_size=2))
 _DTYPES = st.sampled_from(sorted(codec._ALLOWED_DTYPES) + [">f4", "O", "<U4", "V8", "", "|S3"])
 _SIZES = st.one_of(st.integers(min_value=-2, max_value=64), st.sampled_from([10**30, 2**63]),
                    st.floats(allow_nan=False, allow_infinity=False), st.none(), st.text(max_size=3))
 _SPEC = st.fixed_dictionaries({"name": st.one_of(st.sampled_from(
     ["tone_index", "bits", "power_lin", "channel", "noise_var", "snr_db", "data_tones",
-     "pilot_tones", "null_tones", "x"]), _JSON),
-    "dtype": st.one_of(_DTYPES, _JSON),
-    "shape": st.one_of(st.lists(_SIZES, max_size=4), st.lists(st.just(1), min_size=60,
-                                                              max_size=120), _JSON)})
+     "pilot_tones", "null_tones", "x"]), _ODD),
+    "dtype": st.one_of(_DTYPES, _ODD),
+    "shape": st.one_of(st.lists(_SIZES, max_size=4), st.sampled_from([[1] * 60, [1] * 100]),
+                       _ODD)})
 _FIELDS = st.dictionaries(
     st.sampled_from(["epoch", "seq", "effective_frame", "created_s", "plan_id", "total_bits",
                      "margin_db", "gap_db", "reason", "fallback", "frame", "time_s",
                      "fft_size", "cp_len", "sample_rate_hz", "map_seq_seen", "valid", "zz"]),
-    st.one_of(_JSON, st.sampled_from(["nan", "inf", "-inf", 2**70, 10**400 // 10**300])),
+    st.one_of(_ODD, st.sampled_from(["nan", "inf", "-inf", 2**70, 10**100])),
     max_size=10)
 
 
@@ -306,12 +311,12 @@ def _near_messages(draw):
     crc = 0
     for p in parts:
         crc = zlib.crc32(p, crc)
-    header = {"v": draw(st.one_of(st.just(1), _JSON)),
+    header = {"v": draw(st.one_of(st.just(1), _ODD)),
               "type": draw(st.one_of(st.sampled_from(["load_map", "estimate", "tone_plan",
-                                                      "dict"]), _JSON)),
-              "fields": draw(st.one_of(_FIELDS, _JSON)),
-              "arrays": draw(st.one_of(st.just(specs), _JSON)),
-              "crc32": draw(st.one_of(st.just(crc), _JSON))}
+                                                      "dict"]), _ODD)),
+              "fields": draw(st.one_of(_FIELDS, _ODD)),
+              "arrays": draw(st.one_of(st.just(specs), _ODD)),
+              "crc32": draw(st.one_of(st.just(crc), _ODD))}
     for key in draw(st.lists(st.sampled_from(sorted(header)), max_size=2, unique=True)):
         del header[key]
     topic = draw(st.one_of(st.just(b"map"), st.binary(max_size=8)))
@@ -334,7 +339,7 @@ class TestHostileInput:
     def test_arbitrary_json_header(self, header, parts, topic):
         _only_protocol_errors([topic, json.dumps(header).encode(), *parts])
 
-    @settings(max_examples=1500, deadline=None)
+    @settings(max_examples=600, deadline=None)
     @given(frames=_near_messages())
     def test_headers_shaped_like_real_ones(self, frames):
         _only_protocol_errors(frames)
