@@ -21,7 +21,8 @@ Hostile input
 -------------
 Every socket here receives something (PUB sockets receive subscriptions), so every one has a
 frame ceiling (:data:`~brimline.daemon.net.drops.SMALL_MESSAGE_BYTES`, 64 KiB: requests, acks
-and subscriptions are a few hundred bytes). A malformed request or acknowledgement is dropped
+and subscriptions are a few hundred bytes), and the snapshot and ack sockets queue at most 100
+messages per peer, so what one peer can make the daemon buffer is bounded. A malformed request or acknowledgement is dropped
 and counted in :attr:`MapPublisher.protocol_errors` by socket and reason (logged at most once
 per reason every 10 s). An acknowledgement is believed only for a map this publisher sent (or
 primed) in its current epoch; any other is counted as ``forged``.
@@ -46,6 +47,10 @@ from brimline.daemon.wire import codec
 __all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint"]
 
 _MAX_PER_CALL = 64  # requests or acks handled per call, so one burst cannot starve the loop
+# Messages queued per connected peer on the snapshot and ack sockets: with the 64 KiB frame
+# ceiling a peer can make the daemon buffer at most about 100 x 64 KiB = 6.4 MB (one ack per
+# map per follower, and one request per snapshot, need far less).
+_RECEIVE_HWM = 100
 
 log = logging.getLogger("brimline.publisher")
 
@@ -199,10 +204,11 @@ class MapPublisher(_Sockets):
             self._pub.setsockopt(zmq.SNDHWM, int(map_hwm))
             self.map_endpoint = bind_endpoint(self._pub, map_endpoint)
             self.snapshot_socket = self._socket(zmq.ROUTER, self.curve)
+            self.snapshot_socket.setsockopt(zmq.RCVHWM, _RECEIVE_HWM)
             self.snapshot_endpoint = bind_endpoint(self.snapshot_socket, snapshot_endpoint)
             if ack_endpoint is not None:
                 self.ack_socket = self._socket(zmq.PULL, self.curve)
-                self.ack_socket.setsockopt(zmq.RCVHWM, 1000)
+                self.ack_socket.setsockopt(zmq.RCVHWM, _RECEIVE_HWM)
                 self.ack_endpoint = bind_endpoint(self.ack_socket, ack_endpoint)
         except BaseException:
             self.close()
@@ -350,7 +356,7 @@ class MapPublisher(_Sockets):
         if self.ack_socket is None:
             return []
         acks = []
-        while len(acks) < _MAX_PER_CALL:
+        for _ in range(_MAX_PER_CALL):  # messages, good or bad: a flood cannot hold the loop
             try:
                 frames = self.ack_socket.recv_multipart(flags=zmq.NOBLOCK, copy=False)
             except zmq.Again:
