@@ -593,3 +593,17 @@ class TestHostileClients:
             finally:
                 if f2 is not None:
                     f2.close()
+
+
+class TestWatchCli:
+    def test_key_options_go_together(self, tmp_path, capsys):
+        assert main(["watch", "--once", "--duration", "0.1", "--daemon-key", "x.key"]) == 2
+        assert "--daemon-key and --own-key go together" in capsys.readouterr().err
+
+    def test_a_bad_key_file_is_one_line(self, tmp_path, capsys):
+        main(["keys", str(tmp_path), "--name", "w"])
+        (tmp_path / "d.key").write_text('public-key = "abc"\n')
+        assert main(["watch", "--once", "--duration", "0.1", "--daemon-key",
+                     str(tmp_path / "d.key"), "--own-key", str(tmp_path / "w.key_secret")]) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and "d.key: public key has 3 characters" in err

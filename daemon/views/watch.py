@@ -331,7 +331,7 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
             if duration_s is not None and now - start >= duration_s:
                 break
             if sock.poll(250, zmq.POLLIN):
-                while True:
+                for _ in range(256):  # bounded: a flood cannot keep the view from redrawing
                     try:
                         frames = sock.recv_multipart(zmq.NOBLOCK, copy=False)
                     except zmq.Again:
