@@ -16,20 +16,23 @@ import time
 import zlib
 from pathlib import Path
 
-import numpy as np
 import pytest
 import zmq
 from _service_fakes import ScriptedDriver, loopback_config
 from protocol_helpers import ANY_PORT, FakeClock, make_map, until, wifi_like_plan
+from rich.console import Console
 
 from brimline.daemon.commands.cli import main
+from brimline.daemon.commands.run import end_summary
 from brimline.daemon.errors import InputError
 from brimline.daemon.net import curve
 from brimline.daemon.net.drops import SMALL_MESSAGE_BYTES, DropCounter
 from brimline.daemon.net.follower import Follower
 from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
+from brimline.daemon.runtime.config import load_config
 from brimline.daemon.runtime.service import Service
-from brimline.daemon.views.watch import watch
+from brimline.daemon.runtime.status import build_status
+from brimline.daemon.views.watch import render, watch
 from brimline.daemon.wire import codec
 from brimline.drivers.link.frame import make_plan
 
@@ -485,8 +488,6 @@ class TestCurveEndToEnd:
         for d, name in (("keys", "daemon"), ("clients", "watcher")):
             assert main(["keys", str(tmp_path / d), "--name", name]) == 0
         (tmp_path / "clients/broken.key").write_text("junk\n")
-        from brimline.daemon.runtime.config import load_config
-
         cfg = load_config(_write_config(tmp_path, "  curve_secret_key: keys/daemon.key_secret\n"
                                                   "  curve_clients_dir: clients"))
         results = {}
@@ -607,3 +608,14 @@ class TestWatchCli:
                      str(tmp_path / "d.key"), "--own-key", str(tmp_path / "w.key_secret")]) == 2
         err = capsys.readouterr().err
         assert err.count("\n") == 1 and "d.key: public key has 3 characters" in err
+
+
+def test_dropped_messages_reach_the_view_and_the_run_summary():
+    st = build_status(time_s=1.0, epoch="e", driver={"name": "sim", "state": "running"},
+                      frames={}, estimate_age_s=None, tone_index=None, snr_db=None,
+                      protocol_errors={"acks": {"forged": 3, "header_json": 2}})
+    assert st["protocol_errors"] == {"acks": {"forged": 3, "header_json": 2}}
+    console = Console(file=io.StringIO(), width=120, color_system=None)
+    console.print(render(st))
+    assert "daemon dropped acks forged 3, acks header_json 2" in console.file.getvalue()
+    assert "dropped msgs    acks forged 3, acks header_json 2" in end_summary(st)

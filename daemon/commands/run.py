@@ -131,6 +131,12 @@ def end_summary(status: dict) -> str:
         "  final margin    " + ("-" if margin is None else f"{margin:+.2f} dB"),
         f"  alarms          {', '.join(status.get('alarms', [])) or 'none'}",
     ]
+    dropped = {f"{sock} {reason}": n for sock, reasons in
+               dict(status.get("protocol_errors") or {}).items()
+               for reason, n in dict(reasons).items()}
+    if dropped:
+        lines.append("  dropped msgs    " + ", ".join(f"{k} {v}"
+                                                     for k, v in sorted(dropped.items())))
     return "\n".join(lines)
 
 

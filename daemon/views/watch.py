@@ -236,6 +236,12 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
             alarm_text.append(f" {ALARMS.get(a, 'no status for over 3 s') }  ")
     else:
         alarm_text.append("no alarms", style="green")
+    dropped = {f"{sock} {reason}": n for sock, reasons in
+               dict(status.get("protocol_errors") or {}).items()
+               for reason, n in dict(reasons).items()}
+    if dropped:
+        alarm_text.append("   daemon dropped " + ", ".join(
+            f"{k} {v}" for k, v in sorted(dropped.items())), style="yellow")
     if isinstance(bad_messages, dict):
         n_bad = sum(bad_messages.values())
         why = ", ".join(f"{k} {v}" for k, v in sorted(bad_messages.items()))
