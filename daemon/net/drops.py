@@ -27,8 +27,9 @@ import zmq
 __all__ = ["DropCounter", "limit_inbound", "SMALL_MESSAGE_BYTES"]
 
 #: Frame ceiling for sockets that only receive short requests, acknowledgements or
-#: subscriptions (a few hundred bytes each when legitimate).
-SMALL_MESSAGE_BYTES = 64 * 1024
+#: subscriptions: a legitimate one is under 300 bytes (an ack header is about 100), so 4 KiB
+#: leaves ample room while keeping what a queue of them can hold small.
+SMALL_MESSAGE_BYTES = 4 * 1024
 
 
 def limit_inbound(socket: zmq.Socket, max_bytes: int) -> None:

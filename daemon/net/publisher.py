@@ -20,7 +20,7 @@ to the thread that uses the publisher.
 Hostile input
 -------------
 Every socket here receives something (PUB sockets receive subscriptions), so every one has a
-frame ceiling (:data:`~brimline.daemon.net.drops.SMALL_MESSAGE_BYTES`, 64 KiB: requests, acks
+frame ceiling (:data:`~brimline.daemon.net.drops.SMALL_MESSAGE_BYTES`, 4 KiB: requests, acks
 and subscriptions are a few hundred bytes), and the snapshot and ack sockets queue at most 100
 messages per peer, so what one peer can make the daemon buffer is bounded. A malformed request or acknowledgement is dropped
 and counted in :attr:`MapPublisher.protocol_errors` by socket and reason (logged at most once
@@ -47,8 +47,8 @@ from brimline.daemon.wire import codec
 __all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint"]
 
 _MAX_PER_CALL = 64  # requests or acks handled per call, so one burst cannot starve the loop
-# Messages queued per connected peer on the snapshot and ack sockets: with the 64 KiB frame
-# ceiling a peer can make the daemon buffer at most about 100 x 64 KiB = 6.4 MB (one ack per
+# Messages queued per connected peer on the snapshot and ack sockets: with the 4 KiB frame
+# ceiling a peer can make the daemon buffer at most about 100 x 4 KiB = 400 KB (one ack per
 # map per follower, and one request per snapshot, need far less).
 _RECEIVE_HWM = 100
 
