@@ -21,7 +21,7 @@ Hostile input
 -------------
 Every socket here receives something (PUB sockets receive subscriptions), so every one has a
 frame ceiling (:data:`~brimline.daemon.net.drops.SMALL_MESSAGE_BYTES`, 4 KiB: requests, acks
-and subscriptions are a few hundred bytes), and the snapshot and ack sockets queue at most 100
+and subscriptions are a few hundred bytes), and the snapshot and ack sockets queue at most 16
 messages per peer, so what one peer can make the daemon buffer is bounded. A malformed request or acknowledgement is dropped
 and counted in :attr:`MapPublisher.protocol_errors` by socket and reason (logged at most once
 per reason every 10 s). An acknowledgement is believed only for a map this publisher sent (or
@@ -47,10 +47,17 @@ from brimline.daemon.wire import codec
 __all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint"]
 
 _MAX_PER_CALL = 64  # requests or acks handled per call, so one burst cannot starve the loop
+# Acks are cheap to refuse (a decode, ~20 us): more per call drains a flood from churning
+# connections before their queues add up (64 left 50 MB queued after a 60 s soak; 256 bounds a
+# call to a few ms on an idle core).
+_MAX_ACKS_PER_CALL = 256
 # Messages queued per connected peer on the snapshot and ack sockets: with the 4 KiB frame
-# ceiling a peer can make the daemon buffer at most about 100 x 4 KiB = 400 KB (one ack per
-# map per follower, and one request per snapshot, need far less).
-_RECEIVE_HWM = 100
+# ceiling a peer can make the daemon buffer at most 16 x 4 KiB = 64 KiB (a follower sends one
+# ack per map and one request per snapshot, read within a loop step). The queue of a peer
+# that has disconnected stays until it is read, so a client that churns connections faster
+# than the loop reads (256 acks per step) grows memory by up to that much per connection;
+# CURVE client authorisation is what keeps strangers from connecting at all.
+_RECEIVE_HWM = 16
 
 log = logging.getLogger("brimline.publisher")
 
@@ -356,7 +363,7 @@ class MapPublisher(_Sockets):
         if self.ack_socket is None:
             return []
         acks = []
-        for _ in range(_MAX_PER_CALL):  # messages, good or bad: a flood cannot hold the loop
+        for _ in range(_MAX_ACKS_PER_CALL):  # messages, good or bad: bounded under a flood
             try:
                 frames = self.ack_socket.recv_multipart(flags=zmq.NOBLOCK, copy=False)
             except zmq.Again:
