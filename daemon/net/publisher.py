@@ -22,9 +22,9 @@ Hostile input
 Every socket here receives something (PUB sockets receive subscriptions), so every one has a
 frame ceiling (:data:`~brimline.daemon.net.drops.SMALL_MESSAGE_BYTES`, 4 KiB: requests, acks
 and subscriptions are a few hundred bytes), and the snapshot and ack sockets queue at most 16
-messages per peer, so what one peer can make the daemon buffer is bounded. A malformed request or acknowledgement is dropped
-and counted in :attr:`MapPublisher.protocol_errors` by socket and reason (logged at most once
-per reason every 10 s). An acknowledgement is believed only for a map this publisher sent (or
+messages per peer, so what one peer can make the daemon buffer is bounded. A malformed request
+or acknowledgement is dropped and counted in :attr:`MapPublisher.protocol_errors` by socket and
+reason (logged at most once per reason every 10 s). An acknowledgement is believed only for a map this publisher sent (or
 primed) in its current epoch; any other is counted as ``forged``.
 """
 

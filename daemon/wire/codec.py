@@ -402,8 +402,8 @@ def _arrays(kind: str, specs: list, parts: Sequence[memoryview],
                                     f"{expected[name]!r}", reason="dtype")
         if (not isinstance(shape, list) or len(shape) > MAX_DIMS
                 or not all(_is_int(n) and n >= 0 for n in shape)):
-            raise ProtocolError(f"{kind}.{name}: shape {_short(shape)} is not a list of sizes (at most "
-                                f"{MAX_DIMS} of them)", reason="shape")
+            raise ProtocolError(f"{kind}.{name}: shape {_short(shape)} is not a list of sizes "
+                                f"(at most {MAX_DIMS} of them)", reason="shape")
         dt = np.dtype(dtype)
         # Exact integer arithmetic: a dimension of 10**30 gives a number, not an overflow.
         want = math.prod(shape) * dt.itemsize
