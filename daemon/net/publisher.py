@@ -47,15 +47,11 @@ from brimline.daemon.wire import codec
 __all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint"]
 
 _MAX_PER_CALL = 64  # requests or acks handled per call, so one burst cannot starve the loop
-# Acks are cheap to refuse (a decode, ~20 us): more per call drains a flood from churning
-# connections before their queues add up (64 left 50 MB queued after a 60 s soak; 256 bounds a
-# call to a few ms on an idle core).
-_MAX_ACKS_PER_CALL = 256
 # Messages queued per connected peer on the snapshot and ack sockets: with the 4 KiB frame
 # ceiling a peer can make the daemon buffer at most 16 x 4 KiB = 64 KiB (a follower sends one
 # ack per map and one request per snapshot, read within a loop step). The queue of a peer
 # that has disconnected stays until it is read, so a client that churns connections faster
-# than the loop reads (256 acks per step) grows memory by up to that much per connection;
+# than the loop reads (64 messages per step) grows memory by up to that much per connection;
 # CURVE client authorisation is what keeps strangers from connecting at all.
 _RECEIVE_HWM = 16
 
@@ -363,7 +359,7 @@ class MapPublisher(_Sockets):
         if self.ack_socket is None:
             return []
         acks = []
-        for _ in range(_MAX_ACKS_PER_CALL):  # messages, good or bad: bounded under a flood
+        for _ in range(_MAX_PER_CALL):  # messages, good or bad: bounded under a flood
             try:
                 frames = self.ack_socket.recv_multipart(flags=zmq.NOBLOCK, copy=False)
             except zmq.Again:
