@@ -54,7 +54,20 @@ class RecordingError(BrimlineError):
 
 
 class ProtocolError(BrimlineError):
-    """A message on the wire is malformed, from another version, or fails its checksum."""
+    """A message on the wire is malformed, from another version, or fails its checksum.
+
+    Parameters
+    ----------
+    message : str
+        What is wrong, naming the field or part.
+    reason : str
+        A short stable key for counting (``"header"``, ``"dtype"``, ``"shape"``, ...); socket
+        loops count dropped messages by it. ``"malformed"`` when the raiser gives none.
+    """
+
+    def __init__(self, message: str = "", *, reason: str = "malformed") -> None:
+        super().__init__(message)
+        self.reason = reason
 
 
 class StateError(BrimlineError):

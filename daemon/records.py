@@ -28,7 +28,13 @@ __all__ = [
     "Decision",
     "Tracked",
     "frozen_array",
+    "MAX_FFT_SIZE",
 ]
+
+
+#: Largest FFT a tone plan may have: twice the 32K mode of DVB-T2 (ETSI EN 302 755), the
+#: largest in broadcast OFDM. It also bounds what a decoded plan from the wire can allocate.
+MAX_FFT_SIZE = 1 << 16
 
 
 def frozen_array(values, dtype, name: str, ndim: int = 1) -> np.ndarray:
@@ -87,8 +93,9 @@ class TonePlan:
 
     def __post_init__(self) -> None:
         n = int(self.fft_size)
-        if n < 8 or n & (n - 1):
-            raise ValueError(f"fft_size={self.fft_size} must be a power of two >= 8")
+        if n < 8 or n & (n - 1) or n > MAX_FFT_SIZE:
+            raise ValueError(f"fft_size={self.fft_size} must be a power of two in "
+                             f"[8, {MAX_FFT_SIZE}]")
         if not 0 <= int(self.cp_len) < n:
             raise ValueError(f"cp_len={self.cp_len} must be in [0, fft_size)")
         if not (math.isfinite(self.sample_rate_hz) and self.sample_rate_hz > 0):

@@ -264,3 +264,174 @@ def test_frames_may_be_numpy_arrays_of_any_dtype():
     as_arrays = frames[:2] + [np.frombuffer(f, dtype=d) for f, d in
                               zip(frames[2:], ["<i2", "<c8", "<f4", "<f4"])]
     _assert_same(codec.decode(as_arrays)[1], _estimate())
+
+
+# --------------------------------------------------------------------------- hostile input
+#
+# Whatever bytes arrive, decode() raises ProtocolError and nothing else (a socket loop catches
+# that one exception, counts it and goes on). The property tests feed arbitrary JSON headers,
+# headers shaped almost like real ones (known type names, real and bogus dtypes, shapes,
+# correct checksums so the deeper checks run) and arbitrary parts.
+
+_JSON = st.recursive(
+    st.none() | st.booleans() | st.integers() | st.integers(min_value=-(10**40), max_value=10**40)
+    | st.floats(allow_nan=False, allow_infinity=False) | st.text(max_size=12),
+    lambda inner: st.lists(inner, max_size=5) | st.dictionaries(st.text(max_size=8), inner,
+                                                                max_size=5),
+    max_leaves=25)
+_LEAF = (st.none() | st.booleans() | st.integers() | st.sampled_from([2**64, -(10**30)])
+         | st.floats(allow_nan=False, allow_infinity=False) | st.text(max_size=6))
+# Cheap to draw: the near-real strategy below draws many of these per example.
+_ODD = st.one_of(_LEAF, st.lists(_LEAF, max_size=3),
+                 st.dictionaries(st.text(max_size=3), _LEAF, max_size=2))
+_DTYPES = st.sampled_from(sorted(codec._ALLOWED_DTYPES) + [">f4", "O", "<U4", "V8", "", "|S3"])
+_SIZES = st.one_of(st.integers(min_value=-2, max_value=64), st.sampled_from([10**30, 2**63]),
+                   st.floats(allow_nan=False, allow_infinity=False), st.none(), st.text(max_size=3))
+_SPEC = st.fixed_dictionaries({"name": st.one_of(st.sampled_from(
+    ["tone_index", "bits", "power_lin", "channel", "noise_var", "snr_db", "data_tones",
+     "pilot_tones", "null_tones", "x"]), _ODD),
+    "dtype": st.one_of(_DTYPES, _ODD),
+    "shape": st.one_of(st.lists(_SIZES, max_size=4), st.sampled_from([[1] * 60, [1] * 100]),
+                       _ODD)})
+_FIELDS = st.dictionaries(
+    st.sampled_from(["epoch", "seq", "effective_frame", "created_s", "plan_id", "total_bits",
+                     "margin_db", "gap_db", "reason", "fallback", "frame", "time_s",
+                     "fft_size", "cp_len", "sample_rate_hz", "map_seq_seen", "valid", "zz"]),
+    st.one_of(_ODD, st.sampled_from(["nan", "inf", "-inf", 2**70, 10**100])),
+    max_size=10)
+
+
+@st.composite
+def _near_messages(draw):
+    """A message shaped like a real one, with any field, spec or part wrong."""
+    specs = draw(st.lists(_SPEC, max_size=4))
+    parts = draw(st.lists(st.binary(max_size=64), min_size=len(specs), max_size=len(specs)))
+    if draw(st.integers(0, 7)) == 0:  # now and then a part count that does not match
+        parts = draw(st.lists(st.binary(max_size=64), max_size=5))
+    crc = 0
+    for p in parts:
+        crc = zlib.crc32(p, crc)
+    def mostly(good):  # a good value three times in four, so the later checks run too
+        return draw(good) if draw(st.integers(0, 3)) else draw(_ODD)
+
+    header = {"v": mostly(st.just(1)),
+              "type": mostly(st.sampled_from(["load_map", "estimate", "tone_plan", "dict"])),
+              "fields": mostly(_FIELDS),
+              "arrays": mostly(st.just(specs)),
+              "crc32": mostly(st.just(crc))}
+    if draw(st.integers(0, 9)) == 0:
+        for key in draw(st.lists(st.sampled_from(sorted(header)), max_size=2, unique=True)):
+            del header[key]
+    topic = (draw(st.sampled_from([b"map", b"ack", b"snapshot"])) if draw(st.integers(0, 3))
+             else draw(st.binary(max_size=8)))
+    return [topic, json.dumps(header).encode(), *parts]
+
+
+def _only_protocol_errors(frames):
+    try:
+        codec.decode(frames)
+    except ProtocolError as exc:
+        assert isinstance(exc.reason, str) and exc.reason
+        assert "\n" not in str(exc) and len(str(exc)) < 400  # one short line
+    # any other exception fails the test with its traceback
+
+
+class TestHostileInput:
+    @settings(max_examples=400, deadline=None)
+    @given(header=_JSON, parts=st.lists(st.binary(max_size=32), max_size=4),
+           topic=st.one_of(st.sampled_from([b"ack", b"map"]), st.binary(max_size=8)))
+    def test_arbitrary_json_header(self, header, parts, topic):
+        _only_protocol_errors([topic, json.dumps(header).encode(), *parts])
+
+    @settings(max_examples=600, deadline=None)
+    @given(frames=_near_messages())
+    def test_headers_shaped_like_real_ones(self, frames):
+        _only_protocol_errors(frames)
+
+    @settings(max_examples=300, deadline=None)
+    @given(frames=st.lists(st.binary(max_size=48), max_size=6))
+    def test_arbitrary_bytes(self, frames):
+        _only_protocol_errors(frames)
+
+    @settings(max_examples=200, deadline=None)
+    @given(cut=st.integers(min_value=0, max_value=400), flip=st.integers(min_value=0))
+    def test_real_map_truncated_or_bit_flipped(self, cut, flip):
+        frames = [bytes(f) for f in codec.encode(codec.TOPIC_MAP, _map(n=12))]
+        head = bytearray(frames[1])
+        head[flip % len(head)] ^= 1 << (flip % 8)
+        _only_protocol_errors([frames[0], bytes(head), *frames[2:]])
+        _only_protocol_errors([frames[0], frames[1][:cut], *frames[2:]])
+
+    @staticmethod
+    def _header_of(**changes):
+        frames = codec.encode(codec.TOPIC_MAP, _map())
+        return _with_header(frames, **changes)
+
+    @pytest.mark.parametrize("make, reason", [
+        # the cases a hostile local client tried on the ack socket
+        (lambda: TestHostileInput._header_of(type=["load_map"]), "type"),
+        (lambda: TestHostileInput._header_of(type={"a": 1}), "type"),
+        (lambda: _with_header(codec.encode("ack", {"x": np.zeros(3)}), arrays=[
+            {"name": "x", "dtype": ["<f8"], "shape": [3]}]), "dtype"),
+        (lambda: _with_header(codec.encode("ack", {"x": np.zeros(3)}), arrays=[
+            {"name": "x", "dtype": "<U8", "shape": [3]}]), "dtype"),
+        (lambda: _with_header(codec.encode("ack", {"x": np.zeros(1)}), arrays=[
+            {"name": "x", "dtype": "<f8", "shape": [1] * 100}]), "shape"),
+        (lambda: _with_header(codec.encode("ack", {"x": np.zeros(1)}), arrays=[
+            {"name": "x", "dtype": "<f8", "shape": [10**30]}]), "size"),
+        (lambda: _with_header(codec.encode("ack", {"x": np.zeros(1)}), arrays=[
+            {"name": "x", "dtype": "<f8", "shape": [1e30]}]), "shape"),
+        (lambda: _with_header(codec.encode("ack", {"x": np.zeros(1)}), arrays=[
+            {"name": "x", "dtype": "<f8", "shape": [-1]}]), "shape"),
+        (lambda: _with_header(codec.encode("ack", {"x": np.zeros(1)}), arrays=[
+            {"name": "x", "dtype": "<f8", "shape": [0.5]}]), "shape"),
+        (lambda: _with_header(codec.encode("ack", {"x": np.zeros(4)}), arrays=[
+            {"name": "x", "dtype": "<f8", "shape": [3]}]), "size"),
+        (lambda: _with_header(codec.encode("ack", {"x": np.zeros(1)}), arrays=[
+            {"name": "x", "dtype": "<f8", "shape": [True]}]), "shape"),
+        # NaN where integers belong: a JSON token the codec never writes, and the string form
+        (lambda: [b"ack", b'{"v":1,"type":"dict","fields":{"seq":NaN},"arrays":[],"crc32":0}'],
+         "header_json"),
+        (lambda: TestHostileInput._header_of(fields={**_header(codec.encode("map", _map()))[
+            "fields"], "seq": "nan"}), "field"),
+        (lambda: TestHostileInput._header_of(fields={**_header(codec.encode("map", _map()))[
+            "fields"], "seq": 2**64}), "field"),
+        (lambda: TestHostileInput._header_of(fields={**_header(codec.encode("map", _map()))[
+            "fields"], "margin_db": 10**400}), "field"),
+        (lambda: [b"map", b'{"v":1,"type":"dict","fields":{"a":1e999},"arrays":[],"crc32":0}'],
+         "header_json"),
+        (lambda: [b"map", "{\"v\":1}".encode("utf-16")], "header_json"),
+        (lambda: [b"map", b"\xff\xfe\x00{"], "header_json"),
+        (lambda: [b"map", b"[" * 100_000 + b"]" * 100_000], "header_json"),
+        (lambda: [b"map", b"{\"a\":" * 50_000 + b"1" + b"}" * 50_000], "header_json"),
+        (lambda: [b"map", b"1" * 5000], "header_json"),  # over Python's int digit limit
+        (lambda: [b"map", b" " * (2 << 20)], "header_size"),
+        (lambda: [b"m\xe4p", b"{}"], "topic"),
+        (lambda: [b"x" * 100, b"{}"], "topic"),
+        (lambda: [b"map"] + [b""] * 40, "parts"),
+        (lambda: TestHostileInput._header_of(v=True), "version"),
+        (lambda: TestHostileInput._header_of(crc32="0"), "checksum"),
+        # a tone plan asking for a 2**40-point FFT must not allocate it
+        (lambda: _with_header(codec.encode("plan", TonePlan(64, 16, 20e6, [1, 2], [3])),
+                              fields={"fft_size": 2**40, "cp_len": 16,
+                                      "sample_rate_hz": 20e6}), "record"),
+    ])
+    def test_table(self, make, reason):
+        with pytest.raises(ProtocolError) as info:
+            codec.decode(make())
+        assert info.value.reason == reason, str(info.value)
+
+    def test_types_restrict_what_a_socket_accepts(self):
+        frames = codec.encode(codec.TOPIC_MAP, _map())
+        with pytest.raises(ProtocolError, match="not expected here") as info:
+            codec.decode(frames, types={"dict"})
+        assert info.value.reason == "type"
+        assert codec.decode(frames, types={"load_map"})[0] == "map"
+
+    def test_frame_bound_covers_the_largest_legitimate_frame(self):
+        """An estimate of N tones has one complex64 (8 bytes) per tone in its largest part."""
+        assert codec.max_frame_bytes() == 1 << 20
+        n = 65536
+        est = _estimate(n)
+        largest = max(memoryview(f).nbytes for f in codec.encode("estimate", est))
+        assert largest <= codec.max_frame_bytes(n)

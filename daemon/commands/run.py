@@ -23,6 +23,7 @@ from pathlib import Path
 
 from brimline.daemon.commands.cli import RF_CAUTION
 from brimline.daemon.errors import InputError, StateError
+from brimline.daemon.net.curve import check_server_keys, exposed_endpoints
 from brimline.daemon.runtime.assemble import build_core, make_driver
 from brimline.daemon.runtime.config import Config, load_config
 from brimline.daemon.runtime.service import Service
@@ -30,7 +31,8 @@ from brimline.daemon.runtime.status import summary_line
 from brimline.daemon.wire.recording import recording_paths
 from brimline.daemon.wire.state import StateStore
 
-__all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "check_paths", "end_summary"]
+__all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "check_paths", "end_summary",
+           "security_warnings"]
 
 
 class JsonLogFormatter(logging.Formatter):
@@ -98,6 +100,29 @@ def check_summary(path: str, config: Config) -> str:
             f"fallback {fb.bits} bits after {fb.stale_after_s:g} s")
 
 
+def security_warnings(config: Config) -> list[str]:
+    """Read every CURVE key file the config names; return the warnings for the operator.
+
+    Returns
+    -------
+    list of str
+        One line per client key file that will be skipped and per endpoint other hosts can
+        reach while CURVE is off (wildcard, ``0.0.0.0`` or a non-loopback host).
+
+    Raises
+    ------
+    InputError
+        The daemon's secret key file or the clients directory is unusable (names the file).
+    """
+    pub = config.publish
+    warnings = check_server_keys(pub)
+    endpoints = {"publish.map_endpoint": pub.map_endpoint,
+                 "publish.snapshot_endpoint": pub.snapshot_endpoint,
+                 "publish.ack_endpoint": pub.ack_endpoint,
+                 "status.endpoint": config.status.endpoint}
+    return warnings + exposed_endpoints(endpoints, pub.curve_secret_key is not None)
+
+
 def check_paths(config: Config) -> list[str]:
     """Try the record and state paths of ``config`` as a run would use them.
 
@@ -153,14 +178,16 @@ def _cannot_create_in(folder: Path) -> str | None:
     return None
 
 
-def _check(args: argparse.Namespace, config: Config) -> int:
-    """``run --check``: the OK line on stdout; warnings of the parts (a SigMF recording's, ...)
-    on stderr as they would be logged at start."""
+def _check(args: argparse.Namespace, config: Config, warnings: list[str]) -> int:
+    """``run --check``: the OK line on stdout; the security ``warnings`` and the parts'
+    warnings (a SigMF recording's, ...) on stderr, the latter as they would be logged at start."""
     root = logging.getLogger("brimline")
     before = (root.level, root.propagate)
     handler = _setup_logging(args.log_json, quiet=True)
     try:
         line = check_summary(args.config, config)
+        for warning in warnings:
+            print(f"{args.config}: warning: {warning}", file=sys.stderr)
         problems = check_paths(config)
         for problem in problems:  # each on its own line, as the CLI prints a BrimlineError
             print(f"brimline run: error: {problem}", file=sys.stderr)
@@ -199,6 +226,12 @@ def end_summary(status: dict) -> str:
         "  final margin    " + ("-" if margin is None else f"{margin:+.2f} dB"),
         f"  alarms          {', '.join(status.get('alarms', [])) or 'none'}",
     ]
+    dropped = {f"{sock} {reason}": n for sock, reasons in
+               dict(status.get("protocol_errors") or {}).items()
+               for reason, n in dict(reasons).items()}
+    if dropped:
+        lines.append("  dropped msgs    " + ", ".join(f"{k} {v}"
+                                                     for k, v in sorted(dropped.items())))
     return "\n".join(lines)
 
 
@@ -207,10 +240,13 @@ def run(args: argparse.Namespace) -> int:
     if args.duration is not None and not args.duration > 0:
         raise InputError(f"--duration={args.duration} must be a positive number of seconds")
     config = load_config(args.config)
+    warnings = security_warnings(config)
     if args.check:
-        return _check(args, config)
+        return _check(args, config, warnings)
 
     handler = _setup_logging(args.log_json, args.quiet)
+    for line in warnings:
+        logging.getLogger("brimline.service").warning("%s", line)
     if config.driver.kind == "radio":
         print(RF_CAUTION, file=sys.stderr, flush=True)
     stop = threading.Event()

@@ -17,6 +17,12 @@ def configure(parser: argparse.ArgumentParser) -> None:
                              "or --duration)")
     parser.add_argument("--duration", type=float, default=None, metavar="S",
                         help="stop after S seconds")
+    parser.add_argument("--daemon-key", default=None, metavar="FILE",
+                        help="the daemon's public .key file: subscribe with CURVE "
+                             "(needs --own-key)")
+    parser.add_argument("--own-key", default=None, metavar="FILE",
+                        help="this watcher's .key_secret file (brimline keys); its .key must "
+                             "be in the daemon's publish.curve_clients_dir when that is set")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -26,4 +32,7 @@ def run(args: argparse.Namespace) -> int:
     if "://" not in args.endpoint:
         raise InputError(f"--endpoint={args.endpoint!r} must be a ZeroMQ address such as "
                          f"{DEFAULT_STATUS_ENDPOINT}")
-    return watch(args.endpoint, once=args.once, duration_s=args.duration)
+    if (args.daemon_key is None) != (args.own_key is None):
+        raise InputError("--daemon-key and --own-key go together (CURVE needs both)")
+    return watch(args.endpoint, once=args.once, duration_s=args.duration,
+                 curve_server_key=args.daemon_key, curve_client_key=args.own_key)

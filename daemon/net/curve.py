@@ -8,13 +8,32 @@ clients whose public key files sit in one directory.
 Key files are the usual ZeroMQ certificate text files, written by :func:`make_keypair`
 (``NAME.key`` holds the public key, ``NAME.key_secret`` the public and the secret key; only the
 latter must be kept private).
+
+Every key file is read here, by :func:`load_keypair`, and checked before ZeroMQ sees it: a
+regular file of at most 64 KiB, a ``public-key`` line, each key exactly 40 characters of the
+Z85 alphabet (ZeroMQ RFC 32/Z85) that decode to 32 bytes, and a secret key whose public key
+(Curve25519 scalar multiplication, ``zmq.curve_public``) is the one in the file. Anything else
+is an :class:`~brimline.daemon.errors.InputError` naming the file and the problem. (A key
+ZeroMQ refuses used to raise while a socket was open and unlisted, and ``context.term()``
+then waited for that socket for ever: the daemon hung instead of failing.)
+
+In a clients directory, a malformed ``.key`` file is reported by name (a warning, and in
+:attr:`CurveServer.client_key_problems`) and skipped; the good keys still admit their clients.
+The daemon's own public key is always admitted, so the daemon's in-process follower (the
+simulated transmitter) can use the daemon's key pair as its client keys
+(:func:`follower_keys`).
+
+:func:`exposed_endpoints` names the endpoints that other hosts can reach while CURVE is off.
 """
 
 from __future__ import annotations
 
+import logging
 import os
+import stat
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, Mapping
 
 import zmq
 import zmq.auth
@@ -23,7 +42,15 @@ from zmq.auth.thread import ThreadAuthenticator
 from brimline.daemon.errors import InputError
 
 __all__ = ["KeyPair", "make_keypair", "load_keypair", "load_public_key", "CurveServer",
-           "apply_client"]
+           "apply_client", "scan_client_keys", "check_server_keys", "follower_keys",
+           "exposed_endpoints", "is_loopback_endpoint"]
+
+log = logging.getLogger("brimline.curve")
+
+_Z85_ALPHABET = ("0123456789abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ"
+                 ".-:+=^!/*?&<>()[]{}@%$#")  # ZeroMQ RFC 32/Z85
+_Z85_VALUE = {c: i for i, c in enumerate(_Z85_ALPHABET)}
+_MAX_KEY_FILE_BYTES = 64 * 1024  # a key file is about 300 bytes
 
 
 @dataclass(frozen=True)
@@ -70,27 +97,211 @@ def make_keypair(directory: str | Path, name: str = "brimline") -> tuple[Path, P
     return Path(pub), Path(sec)
 
 
+def _z85_problem(key: bytes) -> str | None:
+    """Why ``key`` is not the Z85 text of a 32-byte CURVE key, or None when it is."""
+    try:
+        text = key.decode("ascii")
+    except UnicodeDecodeError:
+        return "is not ASCII text"
+    if len(text) != 40:
+        return f"has {len(text)} characters, a CURVE key has 40 (Z85 of 32 bytes)"
+    bad = sorted({c for c in text if c not in _Z85_VALUE})
+    if bad:
+        return f"holds characters that are not Z85: {''.join(bad)[:10]!r}"
+    for i in range(0, 40, 5):
+        value = 0
+        for c in text[i:i + 5]:
+            value = value * 85 + _Z85_VALUE[c]
+        if value >= 1 << 32:
+            return f"is not valid Z85 (group {i // 5 + 1} exceeds 32 bits)"
+    return None
+
+
+def _parse_key_text(p: Path, data: bytes) -> tuple[bytes | None, bytes | None]:
+    """The ``public-key`` and ``secret-key`` values of a ZeroMQ certificate text."""
+    found: dict[bytes, bytes] = {}
+    for raw in data.splitlines():
+        line = raw.strip()
+        if line.startswith(b"#"):
+            continue
+        for name in (b"public-key", b"secret-key"):
+            if line.startswith(name):
+                if b"=" not in line:
+                    raise InputError(f"{p}: line {line[:40]!r} has no '='")
+                if name in found:
+                    raise InputError(f"{p}: {name.decode()} appears twice")
+                found[name] = line.split(b"=", 1)[1].strip(b" \t'\"")
+    return found.get(b"public-key"), found.get(b"secret-key")
+
+
 def load_keypair(path: str | Path) -> KeyPair:
-    """Read a key file; a ``.key_secret`` file gives both keys, a ``.key`` file only the public.
+    """Read and check a key file; a ``.key_secret`` file gives both keys, a ``.key`` file only
+    the public one.
+
+    Parameters
+    ----------
+    path : str or Path
+        A key file written by :func:`make_keypair` (or any ZeroMQ certificate file).
+
+    Returns
+    -------
+    KeyPair
 
     Raises
     ------
     InputError
-        When the file is missing, unreadable or holds no public key.
+        One line naming the file and the problem: missing, unreadable, not a regular file,
+        over 64 KiB, no public key, a key that is not 40 Z85 characters (a truncated secret,
+        a stray character), or a secret key whose public key is not the one in the file.
+        Never hangs: nothing but a regular file is opened.
     """
     p = Path(path)
     try:
-        public, secret = zmq.auth.load_certificate(p)
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{p}: cannot read CURVE key: {exc}") from None
-    if public is None or len(public) != 40:
-        raise InputError(f"{p}: no valid CURVE public key")
+        st = p.stat()
+        if not stat.S_ISREG(st.st_mode):
+            raise InputError(f"{p}: CURVE key is not a regular file")
+        if st.st_size > _MAX_KEY_FILE_BYTES:
+            raise InputError(f"{p}: {st.st_size} bytes is too large for a CURVE key file")
+        with open(p, "rb") as f:
+            data = f.read(_MAX_KEY_FILE_BYTES + 1)
+    except OSError as exc:
+        raise InputError(f"{p}: cannot read CURVE key: {exc.strerror or exc}") from None
+    public, secret = _parse_key_text(p, data)
+    if public is None:
+        raise InputError(f"{p}: no CURVE public key (a 'public-key = \"...\"' line)")
+    problem = _z85_problem(public)
+    if problem is not None:
+        raise InputError(f"{p}: public key {problem}")
+    if secret is not None:
+        problem = _z85_problem(secret)
+        if problem is not None:
+            raise InputError(f"{p}: secret key {problem}")
+        try:
+            derived = zmq.curve_public(secret)
+        except zmq.ZMQError as exc:  # libzmq without CURVE
+            raise InputError(f"{p}: cannot check the secret key: {exc}") from None
+        if derived != public:
+            raise InputError(f"{p}: the public key is not the one of the secret key (the "
+                             f"two halves come from different key pairs)")
     return KeyPair(public=public, secret=secret)
 
 
 def load_public_key(path: str | Path) -> bytes:
-    """The Z85 public key in ``path`` (a ``.key`` or ``.key_secret`` file)."""
+    """The Z85 public key in ``path`` (a ``.key`` or ``.key_secret`` file), checked."""
     return load_keypair(path).public
+
+
+def scan_client_keys(clients_dir: str | Path) -> tuple[frozenset[bytes], list[str]]:
+    """Read every ``*.key`` file of a clients directory.
+
+    Returns
+    -------
+    keys : frozenset of bytes
+        The Z85 public keys of the good files.
+    problems : list of str
+        One line per file that cannot be used, naming it and what is wrong.
+
+    Raises
+    ------
+    InputError
+        When the directory is missing or holds no usable key at all.
+    """
+    cdir = Path(clients_dir)
+    if not cdir.is_dir():
+        raise InputError(f"{cdir}: CURVE clients directory does not exist")
+    keys, problems = set(), []
+    files = sorted(cdir.glob("*.key"))
+    for f in files:
+        try:
+            keys.add(load_keypair(f).public)
+        except InputError as exc:
+            problems.append(str(exc))
+    if not keys:
+        why = f" ({problems[0]})" if problems else ""
+        raise InputError(f"{cdir}: no usable client public keys (*.key) in it{why}")
+    return frozenset(keys), problems
+
+
+def check_server_keys(publish: Any) -> list[str]:
+    """Check the key files a ``publish`` config section names, without opening sockets.
+
+    Parameters
+    ----------
+    publish : PublishSection or object with ``curve_secret_key`` and ``curve_clients_dir``
+
+    Returns
+    -------
+    list of str
+        Warnings: client key files that will be skipped (one line each).
+
+    Raises
+    ------
+    InputError
+        The daemon's secret key file is unusable, or the clients directory is missing or has
+        no usable key.
+    """
+    if publish.curve_secret_key is None:
+        return []
+    _secret_pair(publish.curve_secret_key)
+    if publish.curve_clients_dir is None:
+        return []
+    return scan_client_keys(publish.curve_clients_dir)[1]
+
+
+def follower_keys(publish: Any) -> dict[str, str]:
+    """Client key arguments of :class:`~brimline.daemon.net.follower.Follower` for the daemon's
+    own follower (the simulated transmitter): the daemon's key pair on both sides, which the
+    daemon always admits. Empty when CURVE is off.
+    """
+    if publish.curve_secret_key is None:
+        return {}
+    return {"curve_server_key": publish.curve_secret_key,
+            "curve_client_key": publish.curve_secret_key}
+
+
+def is_loopback_endpoint(endpoint: str) -> bool:
+    """True for an endpoint only this host can reach: ``ipc://``, ``inproc://``, or TCP on
+    127.0.0.0/8, ``::1`` or ``localhost``."""
+    if not endpoint.startswith("tcp://"):
+        return endpoint.startswith(("ipc://", "inproc://"))
+    host = endpoint[len("tcp://"):].rsplit(":", 1)[0]
+    host = host.split(";")[-1].strip("[]").lower()
+    if host in ("localhost", "::1"):
+        return True
+    parts = host.split(".")
+    return len(parts) == 4 and parts[0] == "127" and all(x.isdigit() for x in parts)
+
+
+def exposed_endpoints(endpoints: Mapping[str, str | None], curve_on: bool) -> list[str]:
+    """Warnings for endpoints other hosts can reach while CURVE is off.
+
+    Parameters
+    ----------
+    endpoints : mapping of str to str or None
+        Config key (``publish.map_endpoint``) -> endpoint; None entries are skipped.
+    curve_on : bool
+        Whether CURVE protects the sockets.
+
+    Returns
+    -------
+    list of str
+        One line per exposed endpoint (wildcard, ``0.0.0.0``, or any non-loopback host).
+    """
+    if curve_on:
+        return []
+    return [f"{key}={ep} is reachable from other hosts without CURVE: anyone there can read "
+            f"maps and send acknowledgements (set publish.curve_secret_key, or bind 127.0.0.1)"
+            for key, ep in endpoints.items() if ep is not None and not is_loopback_endpoint(ep)]
+
+
+class _AdmitKeys:
+    """ZAP credentials provider of pyzmq's authenticator: admits a fixed set of Z85 keys."""
+
+    def __init__(self, keys: frozenset[bytes]) -> None:
+        self._keys = keys
+
+    def callback(self, domain: str, key: bytes) -> bool:
+        return key in self._keys
 
 
 def _secret_pair(path: str | Path) -> KeyPair:
@@ -111,7 +322,8 @@ class CurveServer:
         The daemon's ``.key_secret`` file.
     clients_dir : str or Path or None
         Directory of authorised clients' public ``.key`` files. None admits any client that
-        knows the server's public key (encryption without client authorisation).
+        knows the server's public key (encryption without client authorisation). A malformed
+        file there is logged by name, listed in :attr:`client_key_problems` and skipped.
 
     Notes
     -----
@@ -127,15 +339,15 @@ class CurveServer:
         self.keypair = _secret_pair(secret_key_file)
         self.context = context
         self._auth: ThreadAuthenticator | None = None
+        self.client_key_problems: list[str] = []
         if clients_dir is not None:
-            cdir = Path(clients_dir)
-            if not cdir.is_dir():
-                raise InputError(f"{cdir}: CURVE clients directory does not exist")
-            if not any(cdir.glob("*.key")):
-                raise InputError(f"{cdir}: no client public keys (*.key) in it")
+            keys, self.client_key_problems = scan_client_keys(clients_dir)
+            for problem in self.client_key_problems:
+                log.warning("client key skipped: %s", problem)
             self._auth = ThreadAuthenticator(context)
             self._auth.start()
-            self._auth.configure_curve(domain="*", location=str(cdir))
+            # The daemon's own key is admitted too: its in-process follower uses it.
+            self._auth.configure_curve_callback("*", _AdmitKeys(keys | {self.keypair.public}))
 
     @property
     def public_key(self) -> bytes:

@@ -13,11 +13,18 @@ uses up its ``seq``; a map of a new epoch (the daemon started afresh) starts a n
 refused map of another epoch changes nothing.
 
 Time comes from an injectable clock (default :func:`time.monotonic`), so tests need no sleeps.
+
+Whatever arrives, :meth:`Follower.poll` never raises for it: a message the codec refuses (or a
+record of a type these sockets never carry) is dropped and counted by socket (``maps`` for the
+SUB, ``snapshots`` for the DEALER) and reason in :attr:`Follower.protocol_errors`, with at most
+one logged warning per reason every 10 s. Both receiving sockets refuse frames larger than
+:func:`~brimline.daemon.wire.codec.max_frame_bytes` for the plan (1 MiB up to 65536 tones).
 """
 
 from __future__ import annotations
 
 import collections
+import logging
 import math
 import time
 from pathlib import Path
@@ -28,9 +35,10 @@ import numpy as np
 import zmq
 
 from brimline.daemon.core.loading import allowed_bits
-from brimline.daemon.errors import ProtocolError
+from brimline.daemon.errors import InputError, ProtocolError
 from brimline.daemon.limits import POSITIVE, check_values
 from brimline.daemon.net.curve import apply_client
+from brimline.daemon.net.drops import DropCounter, limit_inbound
 from brimline.daemon.records import LoadMap, TonePlan
 from brimline.daemon.wire import codec
 
@@ -38,6 +46,9 @@ __all__ = ["Follower", "check_map", "FOLLOWER_LIMITS"]
 
 _MAX_HELD = 256  # updates held while a snapshot is awaited (newest kept)
 _MAX_PER_POLL = 256  # messages handled per poll call
+_TYPES = frozenset({"load_map", "dict"})  # what the map and snapshot sockets carry
+
+log = logging.getLogger("brimline.follower")
 
 #: Limits of :class:`Follower`'s numeric keyword arguments (it has no config section of its own).
 FOLLOWER_LIMITS = MappingProxyType({
@@ -156,6 +167,9 @@ class Follower:
         ``maps`` (adopted), ``snapshots`` (replies used), ``heartbeats``, ``gaps``,
         ``old_dropped`` (not newer than the map held), ``epoch_changes``, ``acks_sent``,
         ``acks_dropped``, ``malformed``, ``rejected`` and ``rejected:<reason>``.
+    drops : DropCounter
+        Malformed messages by socket (``maps``, ``snapshots``) and reason;
+        :attr:`protocol_errors` is its JSON-ready form.
     last_rejection : str or None
         Reason of the last refused map.
     """
@@ -187,6 +201,7 @@ class Follower:
         self._clock = clock
         self.current: LoadMap | None = None
         self.counters: collections.Counter[str] = collections.Counter()
+        self.drops = DropCounter(log, clock=clock)
         self.last_rejection: str | None = None
         self.last_heartbeat: dict | None = None
         self._epoch: str | None = None  # epoch of the order we follow
@@ -199,13 +214,19 @@ class Follower:
         self.context = zmq.Context() if context is None else context
         self._sockets: list[zmq.Socket] = []
         try:
+            max_frame = codec.max_frame_bytes(plan.fft_size)
+
             def make(kind):
                 s = self.context.socket(kind)
+                self._sockets.append(s)  # first: an unclosed socket would hang term()
                 s.setsockopt(zmq.LINGER, 0)
+                limit_inbound(s, max_frame)
                 if curve_server_key is not None:
-                    apply_client(s, server_key_file=curve_server_key,
-                                 client_secret_file=curve_client_key)
-                self._sockets.append(s)
+                    try:
+                        apply_client(s, server_key_file=curve_server_key,
+                                     client_secret_file=curve_client_key)
+                    except zmq.ZMQError as exc:
+                        raise InputError(f"CURVE keys refused by ZeroMQ: {exc}") from None
                 return s
 
             self._sub = make(zmq.SUB)
@@ -263,6 +284,11 @@ class Follower:
     def held_updates(self) -> int:
         """Map updates received while a snapshot reply is awaited (applied after it if newer)."""
         return len(self._held)
+
+    @property
+    def protocol_errors(self) -> dict[str, dict[str, int]]:
+        """Dropped messages: ``{socket: {reason: n}}`` (sockets ``maps`` and ``snapshots``)."""
+        return self.drops.counts()
 
     def stale(self, now_s: float | None = None) -> bool:
         """True when nothing was heard from the daemon for ``heartbeat_timeout_s``."""
@@ -346,13 +372,17 @@ class Follower:
         self.counters["snapshot_requests"] += 1
         self._snapshot_sent_s = self._clock()
 
-    def _decode(self, frames: Sequence) -> tuple[str, object] | None:
+    def _decode(self, frames: Sequence, socket: str) -> tuple[str, object] | None:
         try:
-            return codec.decode(frames)
+            return codec.decode(frames, types=_TYPES)
         except ProtocolError as exc:
-            self.counters["malformed"] += 1
-            self.last_rejection = f"malformed: {exc}"
+            self._malformed(socket, exc.reason, str(exc))
             return None
+
+    def _malformed(self, socket: str, reason: str, detail: str) -> None:
+        self.counters["malformed"] += 1
+        self.last_rejection = f"malformed: {detail}"
+        self.drops.drop(socket, reason, detail)
 
     def _reject(self, reason: str) -> None:
         self.counters["rejected"] += 1
@@ -375,13 +405,13 @@ class Follower:
     def _on_snapshot(self, frames: Sequence) -> LoadMap | None:
         if len(frames) and len(frames[0]) == 0:
             frames = frames[1:]  # the empty delimiter
-        decoded = self._decode(frames)
+        decoded = self._decode(frames, "snapshots")
         if decoded is None:
             return None
         self._last_heard_s = self._clock()
         topic, record = decoded
         if topic != codec.TOPIC_SNAPSHOT:
-            self.counters["malformed"] += 1
+            self._malformed("snapshots", "topic", f"topic {topic[:20]!r} on the snapshot socket")
             return None
         if isinstance(record, dict) and "error" in record:
             self.counters["snapshot_errors"] += 1  # still pending: resent after the timeout
@@ -395,7 +425,8 @@ class Follower:
                 adopted = self._take(record)
             else:
                 self.counters["old_dropped"] += 1
-        elif isinstance(record, dict) and isinstance(record.get("seq"), int):
+        elif (isinstance(record, dict) and isinstance(record.get("seq"), int)
+              and isinstance(record.get("epoch"), str)):
             if record.get("epoch") != self._epoch:  # no map yet in that epoch
                 self._epoch, self._seq = record.get("epoch"), record["seq"]
         held, self._held = list(self._held), collections.deque(maxlen=_MAX_HELD)
@@ -404,7 +435,7 @@ class Follower:
         return adopted
 
     def _on_update(self, frames: Sequence) -> LoadMap | None:
-        decoded = self._decode(frames)
+        decoded = self._decode(frames, "maps")
         if decoded is None:
             return None
         self._last_heard_s = self._clock()
@@ -423,7 +454,7 @@ class Follower:
                 self._held.append(record)
                 return None
             return self._follow(record)
-        self.counters["malformed"] += 1
+        self._malformed("maps", "topic", f"a {type(record).__name__} on topic {topic[:20]!r}")
         return None
 
     def _follow(self, load_map: LoadMap) -> LoadMap | None:

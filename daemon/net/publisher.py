@@ -16,20 +16,32 @@ on): the service registers :attr:`MapPublisher.snapshot_socket` and :attr:`MapPu
 in its one ``zmq.Poller`` and calls :meth:`MapPublisher.handle_snapshot` /
 :meth:`MapPublisher.poll_acks` when they are readable. All sends are non-blocking. Sockets belong
 to the thread that uses the publisher.
+
+Hostile input
+-------------
+Every socket here receives something (PUB sockets receive subscriptions), so every one has a
+frame ceiling (:data:`~brimline.daemon.net.drops.SMALL_MESSAGE_BYTES`, 4 KiB: requests, acks
+and subscriptions are a few hundred bytes), and the snapshot and ack sockets queue at most 16
+messages per peer, so what one peer can make the daemon buffer is bounded. A malformed request
+or acknowledgement is dropped and counted in :attr:`MapPublisher.protocol_errors` by socket and
+reason (logged at most once per reason every 10 s). An acknowledgement is believed only for a map this publisher sent (or
+primed) in its current epoch; any other is counted as ``forged``.
 """
 
 from __future__ import annotations
 
 import collections
+import logging
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any, Mapping
 
 import zmq
 
-from brimline.daemon.errors import ProtocolError
+from brimline.daemon.errors import InputError, ProtocolError
 from brimline.daemon.limits import NON_NEGATIVE, POSITIVE, at_least, check_values
 from brimline.daemon.net.curve import CurveServer
+from brimline.daemon.net.drops import SMALL_MESSAGE_BYTES, DropCounter, limit_inbound
 from brimline.daemon.records import LoadMap
 from brimline.daemon.wire import codec
 
@@ -37,6 +49,15 @@ __all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint", "PUBLISH_LIMITS",
            "STATUS_LIMITS", "check_publish_settings"]
 
 _MAX_PER_CALL = 64  # requests or acks handled per call, so one burst cannot starve the loop
+# Messages queued per connected peer on the snapshot and ack sockets: with the 4 KiB frame
+# ceiling a peer can make the daemon buffer at most 16 x 4 KiB = 64 KiB (a follower sends one
+# ack per map and one request per snapshot, read within a loop step). The queue of a peer
+# that has disconnected stays until it is read, so a client that churns connections faster
+# than the loop reads (64 messages per step) grows memory by up to that much per connection;
+# CURVE client authorisation is what keeps strangers from connecting at all.
+_RECEIVE_HWM = 16
+
+log = logging.getLogger("brimline.publisher")
 
 #: Limits of :class:`MapPublisher`'s numeric keyword arguments, checked by the constructor and
 #: by the ``publish:`` config section alike; the rule between keys is
@@ -89,6 +110,10 @@ def bind_endpoint(socket: zmq.Socket, endpoint: str) -> str:
     return socket.getsockopt(zmq.LAST_ENDPOINT).decode()
 
 
+def _is_int(value: Any) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool)
+
+
 class _Sockets:
     """Context ownership and ordered, idempotent shutdown shared by both publishers."""
 
@@ -102,10 +127,16 @@ class _Sockets:
 
     def _socket(self, kind: int, curve: CurveServer | None) -> zmq.Socket:
         s = self.context.socket(kind)
-        s.setsockopt(zmq.LINGER, self._linger_ms)
-        if curve is not None:
-            curve.apply(s)
+        # Listed before anything can fail: a socket left open makes context.term() wait
+        # for ever (how a bad key once hung the daemon).
         self._sockets.append(s)
+        s.setsockopt(zmq.LINGER, self._linger_ms)
+        limit_inbound(s, SMALL_MESSAGE_BYTES)  # subscriptions, requests and acks are small
+        if curve is not None:
+            try:
+                curve.apply(s)
+            except zmq.ZMQError as exc:
+                raise InputError(f"CURVE keys refused by ZeroMQ: {exc}") from None
         return s
 
     def _check_open(self) -> None:
@@ -169,7 +200,10 @@ class MapPublisher(_Sockets):
         Last published (or primed) map; what a snapshot request gets.
     counters : collections.Counter
         ``maps``, ``heartbeats``, ``snapshots``, ``snapshots_empty``, ``bad_requests``,
-        ``acks``, ``bad_acks``, ``send_dropped``.
+        ``acks``, ``bad_acks`` (malformed or forged), ``send_dropped``.
+    drops : DropCounter
+        Malformed requests and acknowledgements by socket (``snapshots``, ``acks``) and
+        reason; :attr:`protocol_errors` is its JSON-ready form.
     curve : CurveServer or None
         CURVE setup, for :class:`StatusPublisher` to share.
     """
@@ -189,6 +223,8 @@ class MapPublisher(_Sockets):
         self.epoch = epoch
         self.current: LoadMap | None = None
         self.counters: collections.Counter[str] = collections.Counter()
+        self.drops = DropCounter(log)
+        self._sent_seqs: list[list[int]] = []  # [first, last] runs of seqs sent in self.epoch
         self._next_heartbeat_s: float | None = None
         self.curve: CurveServer | None = None
         self.snapshot_socket: zmq.Socket | None = None
@@ -201,10 +237,11 @@ class MapPublisher(_Sockets):
             self._pub.setsockopt(zmq.SNDHWM, int(map_hwm))
             self.map_endpoint = bind_endpoint(self._pub, map_endpoint)
             self.snapshot_socket = self._socket(zmq.ROUTER, self.curve)
+            self.snapshot_socket.setsockopt(zmq.RCVHWM, _RECEIVE_HWM)
             self.snapshot_endpoint = bind_endpoint(self.snapshot_socket, snapshot_endpoint)
             if ack_endpoint is not None:
                 self.ack_socket = self._socket(zmq.PULL, self.curve)
-                self.ack_socket.setsockopt(zmq.RCVHWM, 1000)
+                self.ack_socket.setsockopt(zmq.RCVHWM, _RECEIVE_HWM)
                 self.ack_endpoint = bind_endpoint(self.ack_socket, ack_endpoint)
         except BaseException:
             self.close()
@@ -242,6 +279,7 @@ class MapPublisher(_Sockets):
         self._check_open()
         self._check_order(load_map)
         frames = codec.encode(codec.TOPIC_MAP, load_map)
+        self._note_sent(load_map.epoch, load_map.seq, load_map.seq)
         self.current = load_map
         self.epoch = load_map.epoch
         self._send(self._pub, frames)
@@ -253,8 +291,31 @@ class MapPublisher(_Sockets):
         without sending it on ``map``. Same order rule as :meth:`publish`."""
         self._check_open()
         self._check_order(load_map)
+        # A primed map was sent by an earlier run of this epoch, with (perhaps) the ones
+        # before it: followers may still acknowledge any of them.
+        self._note_sent(load_map.epoch, 0, load_map.seq)
         self.current = load_map
         self.epoch = load_map.epoch
+
+    def _note_sent(self, epoch: str, first: int, last: int) -> None:
+        if epoch != self.epoch:
+            self._sent_seqs = []
+        runs = self._sent_seqs
+        if runs and runs[-1][1] + 1 >= first:
+            runs[-1][1] = max(runs[-1][1], last)
+        else:
+            runs.append([first, last])
+
+    def was_sent(self, epoch: Any, seq: Any) -> bool:
+        """True when map ``seq`` of ``epoch`` was published (or primed) by this publisher."""
+        if epoch != self.epoch or not isinstance(seq, int) or isinstance(seq, bool):
+            return False
+        return any(lo <= seq <= hi for lo, hi in self._sent_seqs)
+
+    @property
+    def protocol_errors(self) -> dict[str, dict[str, int]]:
+        """Dropped requests and acknowledgements: ``{socket: {reason: n}}``."""
+        return self.drops.counts()
 
     def heartbeat(self, now_s: float) -> None:
         """Send a heartbeat now: ``{"epoch", "seq", "time_s", "interval_s"}`` on ``heartbeat``.
@@ -309,6 +370,8 @@ class MapPublisher(_Sockets):
                     self.counters["snapshots_empty"] += 1
             else:
                 self.counters["bad_requests"] += 1
+                self.drops.drop("snapshots", "request",
+                                f"a request of {len(body)} frames that is not b'snapshot'")
                 reply = codec.encode(codec.TOPIC_SNAPSHOT,
                                      {"error": "request must be the single frame b'snapshot'"})
             self._send(self.snapshot_socket, envelope + reply)
@@ -318,26 +381,35 @@ class MapPublisher(_Sockets):
         """Acknowledgements waiting on the ack socket, without blocking.
 
         Each is a dict with at least ``epoch`` (str), ``seq``, ``frame`` (int) and ``time_s``
-        (float); malformed ones are dropped and counted as ``bad_acks``.
+        (float); malformed ones are dropped and counted as ``bad_acks`` and in
+        :attr:`protocol_errors` (socket ``acks``, by reason). One for a map this publisher
+        never sent (another epoch, a seq not published) is counted there as ``forged``.
         """
         self._check_open()
         if self.ack_socket is None:
             return []
         acks = []
-        while len(acks) < _MAX_PER_CALL:
+        for _ in range(_MAX_PER_CALL):  # messages, good or bad: bounded under a flood
             try:
                 frames = self.ack_socket.recv_multipart(flags=zmq.NOBLOCK, copy=False)
             except zmq.Again:
                 break
             try:
-                topic, body = codec.decode(frames)
-                if topic != codec.TOPIC_ACK or not isinstance(body, dict):
-                    raise ProtocolError(f"not an ack: topic {topic!r}")
-                if not (isinstance(body.get("seq"), int) and isinstance(body.get("frame"), int)
-                        and isinstance(body.get("time_s"), (int, float))):
-                    raise ProtocolError("ack needs integer seq and frame and a time_s")
-            except ProtocolError:
+                topic, body = codec.decode(frames, types={"dict"})
+                if topic != codec.TOPIC_ACK:
+                    raise ProtocolError(f"not an ack: topic {topic[:20]!r}", reason="topic")
+                if not (_is_int(body.get("seq")) and _is_int(body.get("frame"))
+                        and isinstance(body.get("time_s"), (int, float))
+                        and not isinstance(body.get("time_s"), bool)):
+                    raise ProtocolError("ack needs integer seq and frame and a time_s",
+                                        reason="ack_fields")
+                if not self.was_sent(body.get("epoch"), body["seq"]):
+                    raise ProtocolError(f"ack for seq {str(body['seq'])[:24]} of epoch "
+                                        f"{str(body.get('epoch'))[:24]!r}, which this daemon "
+                                        f"never sent", reason="forged")
+            except ProtocolError as exc:
                 self.counters["bad_acks"] += 1
+                self.drops.drop("acks", exc.reason, str(exc))
                 continue
             self.counters["acks"] += 1
             acks.append(body)

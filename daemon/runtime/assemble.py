@@ -16,6 +16,7 @@ from brimline.daemon.core.change import ChangeControl
 from brimline.daemon.core.controller import LinkController
 from brimline.daemon.core.estimator import Estimator
 from brimline.daemon.errors import ConfigError, SourceError
+from brimline.daemon.net.curve import follower_keys
 from brimline.daemon.net.follower import Follower
 from brimline.daemon.records import LoadMap
 from brimline.daemon.runtime.config import Config
@@ -154,7 +155,8 @@ def follower_factory(config: Config, plan, endpoints: dict[str, str],
         return Follower.for_daemon(config.publish, config.loading, plan=plan,
                                    map_endpoint=endpoints["maps"],
                                    snapshot_endpoint=endpoints["snapshots"],
-                                   ack_endpoint=endpoints["acks"], context=context)
+                                   ack_endpoint=endpoints["acks"], context=context,
+                                   **follower_keys(config.publish))  # CURVE: the daemon's pair
     return make
 
 

@@ -109,6 +109,10 @@ class Outlets:
             return []
         return self.maps.poll_acks()
 
+    def protocol_errors(self) -> dict[str, dict[str, int]]:
+        """Messages the map publisher's sockets dropped, by socket and reason."""
+        return self.maps.protocol_errors
+
     def endpoints(self) -> dict[str, str]:
         return {"maps": self.maps.map_endpoint, "snapshots": self.maps.snapshot_endpoint,
                 "acks": self.maps.ack_endpoint, "status": self.status.endpoint}

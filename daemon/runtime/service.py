@@ -419,7 +419,8 @@ class Service:
                     "counters": dict(getattr(self.driver, "counters", {}))},
             acks={k: {"seq": v["seq"], "age_s": wall - v["wall"]} for k, v in self.acks.items()},
             symbol_rate_hz=self.plan.sample_rate_hz / self.plan.symbol_len,
-            recording=self._io.recording_status(), **controller_fields(self.controller, now))
+            recording=self._io.recording_status(),
+            protocol_errors=self._io.protocol_errors(), **controller_fields(self.controller, now))
 
     def publish_status(self) -> dict:
         """Build, publish and record one status message now; returns it."""

@@ -21,6 +21,7 @@ Layout of the message (version 1)::
      "changes": [{"time_s", "kind", "reason", "seq"}, ...],   # newest last
      "acks": {follower: {"seq", "age_s"}},
      "recording": {"state": "off" | "on" | "failed", "path", "error"},
+     "protocol_errors": {socket: {reason: n}},   # malformed or forged messages dropped
      "alarms": ["stale", "fallback", "emergency", "driver_failed", ...]}
 
 The band is compact: tones are grouped into at most ``columns`` adjacent groups; each group shows
@@ -110,7 +111,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  changes: Sequence[Change] = (), acks: Mapping[str, Mapping] | None = None,
                  stale: bool = False, symbol_rate_hz: float | None = None,
                  columns: int = 128, state_unsaved: bool = False,
-                 recording: Mapping[str, Any] | None = None) -> dict:
+                 recording: Mapping[str, Any] | None = None,
+                 protocol_errors: Mapping[str, Mapping[str, int]] | None = None) -> dict:
     """Build the status message (see the module docstring for its layout).
 
     Parameters
@@ -152,6 +154,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     recording : mapping, optional
         ``state`` ("off", "on", "failed"), ``path`` and ``error`` of the recording; "failed"
         raises the alarm ``recording_failed``.
+    protocol_errors : mapping, optional
+        Messages the daemon's sockets dropped, by socket (``acks``, ``snapshots``) and reason
+        (a codec reason, ``forged``, ``request``).
 
     Returns
     -------
@@ -231,6 +236,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
         "recording": {"state": str(rec.get("state", "off")),
                       "path": None if rec.get("path") is None else str(rec["path"]),
                       "error": None if rec.get("error") is None else str(rec["error"])},
+        "protocol_errors": {str(sock): {str(r): int(n) for r, n in dict(reasons).items()}
+                            for sock, reasons in dict(protocol_errors or {}).items()},
         "alarms": alarms,
     }
 

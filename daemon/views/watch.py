@@ -4,13 +4,21 @@
 be tested without a terminal. :func:`watch` subscribes to the status endpoint and redraws with
 ``rich.live.Live`` on a terminal, or prints one plain line per status message when standard
 output is not a terminal (pipes, logs, CI).
+
+The watcher's SUB socket refuses frames above the codec's 1 MiB frame bound and decodes only
+plain dict messages; anything else is dropped and counted by reason (shown under the alarms).
+With a CURVE-protected status stream, give :func:`watch` the daemon's public key file and this
+watcher's own ``.key_secret`` file (made by ``brimline keys``; its ``.key`` goes into the
+daemon's ``publish.curve_clients_dir`` when that is set).
 """
 
 from __future__ import annotations
 
+import logging
 import math
 import sys
 import time
+from pathlib import Path
 from typing import Any, Callable, Mapping, TextIO
 
 import numpy as np
@@ -20,13 +28,17 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
-from brimline.daemon.errors import ProtocolError
+from brimline.daemon.errors import InputError, ProtocolError
+from brimline.daemon.net.curve import apply_client
+from brimline.daemon.net.drops import DropCounter, limit_inbound
 from brimline.daemon.runtime.status import ALARMS, band_columns, summary_line
 from brimline.daemon.wire import codec
 
 __all__ = ["render", "band_chart", "watch", "DEFAULT_STATUS_ENDPOINT"]
 
 DEFAULT_STATUS_ENDPOINT = "tcp://127.0.0.1:7343"
+
+log = logging.getLogger("brimline.watch")
 
 _EIGHTHS = " ▁▂▃▄▅▆▇█"
 # Bits 0..15 as one glyph each: '·' for an unloaded tone, then hex digits.
@@ -130,7 +142,8 @@ def _fmt(v: Any, spec: str, unit: str = "") -> str:
 
 
 def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_ENDPOINT,
-           silent_s: float | None = None, bad_messages: int = 0, width: int | None = None):
+           silent_s: float | None = None, bad_messages: int | dict = 0,
+           width: int | None = None):
     """Render one status message for a terminal.
 
     Parameters
@@ -142,8 +155,8 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
     silent_s : float or None
         Seconds since the last message arrived (None: unknown). Above a few seconds the view says
         the daemon has gone quiet.
-    bad_messages : int
-        Messages that failed to decode.
+    bad_messages : int or dict
+        Messages that failed to decode: a count, or counts by reason.
     width : int, optional
         Screen width in characters; the band chart is regrouped to fit it.
 
@@ -223,8 +236,20 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
             alarm_text.append(f" {ALARMS.get(a, 'no status for over 3 s') }  ")
     else:
         alarm_text.append("no alarms", style="green")
-    if bad_messages:
-        alarm_text.append(f"   {bad_messages} undecodable status messages", style="yellow")
+    dropped = {f"{sock} {reason}": n for sock, reasons in
+               dict(status.get("protocol_errors") or {}).items()
+               for reason, n in dict(reasons).items()}
+    if dropped:
+        alarm_text.append("   daemon dropped " + ", ".join(
+            f"{k} {v}" for k, v in sorted(dropped.items())), style="yellow")
+    if isinstance(bad_messages, dict):
+        n_bad = sum(bad_messages.values())
+        why = ", ".join(f"{k} {v}" for k, v in sorted(bad_messages.items()))
+    else:
+        n_bad, why = int(bad_messages), ""
+    if n_bad:
+        alarm_text.append(f"   {n_bad} undecodable status messages"
+                          + (f" ({why})" if why else ""), style="yellow")
 
     body = Group(head, Text(""), figures, Text(""), chart, Text("recent changes", style="dim"),
                  history, Text(""), alarm_text)
@@ -234,7 +259,10 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
 
 def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
           duration_s: float | None = None, out: TextIO | None = None,
-          clock: Callable[[], float] = time.monotonic, context=None) -> int:
+          clock: Callable[[], float] = time.monotonic, context=None,
+          curve_server_key: str | Path | None = None,
+          curve_client_key: str | Path | None = None,
+          drops: DropCounter | None = None) -> int:
     """Show the status stream at ``endpoint`` until interrupted or ``duration_s`` elapses.
 
     Parameters
@@ -252,12 +280,28 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
         Monotonic clock, s.
     context : zmq.Context, optional
         Context to use (default: a private one).
+    curve_server_key : str or Path, optional
+        The daemon's public ``.key`` file; with ``curve_client_key`` turns CURVE on.
+    curve_client_key : str or Path, optional
+        This watcher's ``.key_secret`` file.
+    drops : DropCounter, optional
+        Where malformed messages are counted (socket ``status``, by reason); a private one
+        by default.
 
     Returns
     -------
     int
         0, or 1 when ``once`` was asked and no status arrived in time.
+
+    Raises
+    ------
+    InputError
+        When only one of the two key files is given, or a key file is unusable.
     """
+    if (curve_server_key is None) != (curve_client_key is None):
+        raise InputError("CURVE needs both the daemon's public key and this watcher's "
+                         "secret key")
+    drops = DropCounter(log, clock=clock) if drops is None else drops
     out = sys.stdout if out is None else out
     tty = bool(getattr(out, "isatty", lambda: False)())
     console = Console(file=out, force_terminal=tty or None, soft_wrap=False)
@@ -266,15 +310,21 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
     own_ctx = context is None
     ctx = zmq.Context() if own_ctx else context
     sock = ctx.socket(zmq.SUB)
-    sock.setsockopt(zmq.LINGER, 0)
-    sock.setsockopt(zmq.RCVHWM, 4)
-    sock.setsockopt(zmq.SUBSCRIBE, b"")
     status: dict | None = None
-    bad = 0
     start = last = clock()
     announced_missing = False
     live = None
     try:
+        sock.setsockopt(zmq.LINGER, 0)
+        sock.setsockopt(zmq.RCVHWM, 4)
+        limit_inbound(sock, codec.max_frame_bytes())
+        if curve_server_key is not None:
+            try:
+                apply_client(sock, server_key_file=curve_server_key,
+                             client_secret_file=curve_client_key)
+            except zmq.ZMQError as exc:
+                raise InputError(f"CURVE keys refused by ZeroMQ: {exc}") from None
+        sock.setsockopt(zmq.SUBSCRIBE, b"")
         sock.connect(endpoint)
         if tty and not once:
             from rich.live import Live
@@ -287,15 +337,15 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
             if duration_s is not None and now - start >= duration_s:
                 break
             if sock.poll(250, zmq.POLLIN):
-                while True:
+                for _ in range(256):  # bounded: a flood cannot keep the view from redrawing
                     try:
-                        frames = sock.recv_multipart(zmq.NOBLOCK)
+                        frames = sock.recv_multipart(zmq.NOBLOCK, copy=False)
                     except zmq.Again:
                         break
                     try:
-                        _topic, record = codec.decode(frames)
-                    except ProtocolError:
-                        bad += 1
+                        _topic, record = codec.decode(frames, types={"dict"})
+                    except ProtocolError as exc:
+                        drops.drop("status", exc.reason, str(exc))
                         continue
                     if isinstance(record, dict) and record.get("type") == "status":
                         status, last = record, clock()
@@ -309,7 +359,8 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
                     return 0
             silent = clock() - last
             if live is not None:
-                live.update(render(status, endpoint=endpoint, silent_s=silent, bad_messages=bad,
+                live.update(render(status, endpoint=endpoint, silent_s=silent,
+                                   bad_messages=drops.counts().get("status", {}),
                                    width=console.width))
             elif status is None and not announced_missing and clock() - start > 2.0 and not once:
                 print(f"no status yet from {endpoint} (is the daemon running?)", file=out,

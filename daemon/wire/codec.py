@@ -65,6 +65,9 @@ __all__ = [
     "record_types",
     "type_name",
     "byte_view",
+    "MAX_DIMS",
+    "MAX_PARTS",
+    "max_frame_bytes",
 ]
 
 #: Version written into every header; a decoder refuses any other.
@@ -87,6 +90,13 @@ _ALLOWED_DTYPES = frozenset(
      "<f4", "<f8", "<c8", "<c16"])
 _SCALAR_KINDS = ("int", "float", "str", "bool")
 _MAX_HEADER_BYTES = 1 << 20
+_MAX_TOPIC_BYTES = 64
+_INT_MIN, _INT_MAX = -(1 << 63), (1 << 63) - 1
+
+#: Most array dimensions a decoder accepts (numpy's own limit is 64; records use 1).
+MAX_DIMS = 8
+#: Most frames in one message: topic, header and up to 30 array parts (records carry <= 4).
+MAX_PARTS = 32
 
 
 @dataclasses.dataclass(frozen=True)
@@ -286,6 +296,27 @@ def encode(topic: str, record: Any) -> list[bytes | memoryview]:
 # --------------------------------------------------------------------------- decode
 
 
+def max_frame_bytes(tones: int = 0) -> int:
+    """The largest frame a receiving socket should accept (its ``zmq.MAXMSGSIZE``).
+
+    A legitimate frame is either a header, which the decoder refuses above 1 MiB anyway, or an
+    array part of at most one complex64 (8 bytes) per tone; twice that leaves room for any
+    record a later version adds. ZeroMQ checks the limit per frame, against the size the
+    frame announces, and disconnects a peer that exceeds it before buffering the frame.
+
+    Parameters
+    ----------
+    tones : int
+        Tones of the plan the socket carries maps or estimates for (0 when it carries none).
+
+    Returns
+    -------
+    int
+        Bytes; never below the 1 MiB header limit.
+    """
+    return max(_MAX_HEADER_BYTES, 16 * int(tones))
+
+
 def byte_view(frame: Any) -> memoryview:
     """A flat byte view of a frame given as bytes, memoryview, zmq.Frame or ndarray.
 
@@ -298,7 +329,8 @@ def byte_view(frame: Any) -> memoryview:
     try:
         view = memoryview(buf)
     except TypeError:
-        raise ProtocolError(f"frame of type {type(frame).__name__} is not bytes") from None
+        raise ProtocolError(f"frame of type {type(frame).__name__} is not bytes",
+                            reason="parts") from None
     if view.format == "B" and view.ndim == 1:
         return view
     try:
@@ -309,77 +341,129 @@ def byte_view(frame: Any) -> memoryview:
 
 def _float(value: Any, where: str) -> float:
     if isinstance(value, bool):
-        raise ProtocolError(f"{where}={value!r} is not a number")
+        raise ProtocolError(f"{where}={value!r} is not a number", reason="field")
     if isinstance(value, (int, float)):
-        return float(value)
+        try:
+            return float(value)
+        except OverflowError:  # a JSON integer beyond the float range
+            raise ProtocolError(f"{where} is too large for a float", reason="field") from None
     if value in ("inf", "-inf", "nan"):
         return float(value)
-    raise ProtocolError(f"{where}={value!r} is not a number")
+    raise ProtocolError(f"{where}={_short(value)} is not a number", reason="field")
+
+
+def _short(value: Any) -> str:
+    """``repr(value)`` cut to 60 characters, so an error message stays one short line."""
+    text = repr(value)
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _is_int(value: Any) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool)
 
 
 def _scalar(kind: str, value: Any, where: str) -> Any:
     if kind == "float":
         return _float(value, where)
     if kind == "int":
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise ProtocolError(f"{where}={value!r} is not an integer")
+        if not _is_int(value):
+            raise ProtocolError(f"{where}={_short(value)} is not an integer", reason="field")
+        if not _INT_MIN <= value <= _INT_MAX:
+            raise ProtocolError(f"{where} is outside the 64-bit integer range", reason="field")
         return value
     if kind == "bool":
         if not isinstance(value, bool):
-            raise ProtocolError(f"{where}={value!r} is not a boolean")
+            raise ProtocolError(f"{where}={_short(value)} is not a boolean", reason="field")
         return value
     if not isinstance(value, str):
-        raise ProtocolError(f"{where}={value!r} is not a string")
+        raise ProtocolError(f"{where}={_short(value)} is not a string", reason="field")
     return value
 
 
-def _arrays(kind: str, specs: Any, parts: Sequence[memoryview],
+def _arrays(kind: str, specs: list, parts: Sequence[memoryview],
             expected: Mapping[str, str] | None) -> dict[str, np.ndarray]:
-    if not isinstance(specs, list):
-        raise ProtocolError(f"{kind}: header 'arrays' must be a list")
-    if len(parts) != len(specs):
-        raise ProtocolError(f"{kind}: header lists {len(specs)} arrays but the message has "
-                            f"{len(parts)} array parts")
     out: dict[str, np.ndarray] = {}
     for i, (spec, part) in enumerate(zip(specs, parts)):
         if not isinstance(spec, dict) or set(spec) != {"name", "dtype", "shape"}:
-            raise ProtocolError(f"{kind}: array spec {i} must have exactly name, dtype, shape")
+            raise ProtocolError(f"{kind}: array spec {i} must have exactly name, dtype, shape",
+                                reason="arrays")
         name, dtype, shape = spec["name"], spec["dtype"], spec["shape"]
         if not isinstance(name, str) or name in out:
-            raise ProtocolError(f"{kind}: array spec {i} has a bad or repeated name {name!r}")
-        if dtype not in _ALLOWED_DTYPES:
-            raise ProtocolError(f"{kind}.{name}: dtype {dtype!r} is not allowed")
+            raise ProtocolError(f"{kind}: array spec {i} has a bad or repeated name "
+                                f"{_short(name)}", reason="arrays")
+        if not isinstance(dtype, str) or dtype not in _ALLOWED_DTYPES:
+            raise ProtocolError(f"{kind}.{name}: dtype {_short(dtype)} is not allowed",
+                                reason="dtype")
         if expected is not None:
             if name not in expected:
-                raise ProtocolError(f"{kind}: unknown array {name!r}")
+                raise ProtocolError(f"{kind}: unknown array {name!r}", reason="arrays")
             if dtype != expected[name]:
                 raise ProtocolError(f"{kind}.{name}: dtype {dtype!r}, expected "
-                                    f"{expected[name]!r}")
-        if (not isinstance(shape, list)
-                or not all(isinstance(n, int) and not isinstance(n, bool) and n >= 0
-                           for n in shape)):
-            raise ProtocolError(f"{kind}.{name}: shape {shape!r} is not a list of sizes")
+                                    f"{expected[name]!r}", reason="dtype")
+        if (not isinstance(shape, list) or len(shape) > MAX_DIMS
+                or not all(_is_int(n) and n >= 0 for n in shape)):
+            raise ProtocolError(f"{kind}.{name}: shape {_short(shape)} is not a list of sizes "
+                                f"(at most {MAX_DIMS} of them)", reason="shape")
         dt = np.dtype(dtype)
+        # Exact integer arithmetic: a dimension of 10**30 gives a number, not an overflow.
         want = math.prod(shape) * dt.itemsize
         if part.nbytes != want:
-            raise ProtocolError(f"{kind}.{name}: shape {shape} of {dtype} needs {want} bytes, "
-                                f"part has {part.nbytes}")
+            raise ProtocolError(f"{kind}.{name}: shape {_short(shape)} of {dtype} needs "
+                                f"{_short(want)} bytes, part has {part.nbytes}", reason="size")
         arr = np.frombuffer(part, dtype=dt).reshape(shape)
         if dt.byteorder == "<" and not dt.isnative:  # big-endian host
             arr = arr.astype(dt.newbyteorder("="))
         out[name] = arr
     if expected is not None and set(out) != set(expected):
-        raise ProtocolError(f"{kind}: missing arrays {sorted(set(expected) - set(out))}")
+        raise ProtocolError(f"{kind}: missing arrays {sorted(set(expected) - set(out))}",
+                            reason="arrays")
     return out
 
 
-def decode(frames: Sequence[Any]) -> tuple[str, Any]:
+def _refuse_constant(token: str) -> Any:
+    raise ValueError(f"{token} is not JSON")
+
+
+def _finite_float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):  # 1e400 would read as inf
+        raise ValueError(f"number {text[:40]} is out of range")
+    return value
+
+
+def _header(topic: str, view: memoryview) -> dict:
+    if view.nbytes > _MAX_HEADER_BYTES:
+        raise ProtocolError(f"{topic}: header of {view.nbytes} bytes is too large",
+                            reason="header_size")
+    try:
+        header = json.loads(bytes(view).decode("utf-8"), parse_constant=_refuse_constant,
+                            parse_float=_finite_float)
+    except (UnicodeDecodeError, ValueError, RecursionError) as exc:  # nesting bombs too
+        raise ProtocolError(f"{topic}: header is not JSON: {_short(str(exc))}",
+                            reason="header_json") from None
+    if not isinstance(header, dict):
+        raise ProtocolError(f"{topic}: header is not a JSON object", reason="header")
+    missing = {"v", "type", "fields", "arrays", "crc32"} - set(header)
+    if missing:
+        raise ProtocolError(f"{topic}: header lacks {sorted(missing)}", reason="header")
+    v = header["v"]
+    if not _is_int(v) or v != PROTOCOL_VERSION:
+        raise ProtocolError(f"{topic}: protocol version {_short(v)}, this decoder reads "
+                            f"{PROTOCOL_VERSION}", reason="version")
+    return header
+
+
+def decode(frames: Sequence[Any], *, types: Iterable[str] | None = None) -> tuple[str, Any]:
     """Decode a multipart message made by :func:`encode`.
 
     Parameters
     ----------
     frames : sequence of bytes, memoryview or zmq.Frame
         ``[topic, header, *array_parts]``.
+    types : iterable of str, optional
+        Record type names this caller accepts (``{"dict"}`` for a socket that only carries
+        plain messages); any other type is refused before a record is built. None accepts
+        every registered type.
 
     Returns
     -------
@@ -390,71 +474,75 @@ def decode(frames: Sequence[Any]) -> tuple[str, Any]:
     Raises
     ------
     ProtocolError
-        Wrong part count, a non-ASCII topic, a header that is not JSON or lacks keys, another
-        protocol version, an unknown record type or field, a missing field, a dtype or shape
-        that does not match its part, a CRC mismatch, a non-finite value where the record type
-        forbids it, or field values the record itself refuses.
+        For every malformed input, and only this exception: wrong part count, a non-ASCII
+        topic, a header that is not JSON (or nests too deep, or holds NaN tokens) or lacks
+        keys, another protocol version, an unknown or unwanted record type, an unknown,
+        missing or mistyped field, an integer outside 64 bits, a dtype, shape (more than
+        :data:`MAX_DIMS` dimensions, negative or fractional sizes) or size that does not
+        match its part, a CRC mismatch, a non-finite value where the record type forbids
+        it, or field values the record itself refuses. ``exc.reason`` is a short key for
+        counting.
     """
+    if not isinstance(frames, (list, tuple)):
+        frames = list(frames)
     if len(frames) < 2:
-        raise ProtocolError(f"message has {len(frames)} parts, needs at least topic and header")
+        raise ProtocolError(f"message has {len(frames)} parts, needs at least topic and header",
+                            reason="parts")
+    if len(frames) > MAX_PARTS:
+        raise ProtocolError(f"message has {len(frames)} parts, at most {MAX_PARTS} allowed",
+                            reason="parts")
     views = [byte_view(f) for f in frames]
+    if views[0].nbytes > _MAX_TOPIC_BYTES:
+        raise ProtocolError(f"topic of {views[0].nbytes} bytes is too long", reason="topic")
     try:
         topic = bytes(views[0]).decode("ascii")
     except UnicodeDecodeError:
-        raise ProtocolError("topic is not ASCII") from None
+        raise ProtocolError("topic is not ASCII", reason="topic") from None
     if not topic:
-        raise ProtocolError("topic is empty")
-    if views[1].nbytes > _MAX_HEADER_BYTES:
-        raise ProtocolError(f"{topic}: header of {views[1].nbytes} bytes is too large")
-    try:
-        header = json.loads(bytes(views[1]).decode("utf-8"))
-    except (UnicodeDecodeError, ValueError, RecursionError) as exc:  # nesting bombs too
-        raise ProtocolError(f"{topic}: header is not JSON: {exc}") from None
-    if not isinstance(header, dict):
-        raise ProtocolError(f"{topic}: header is not a JSON object")
-    missing = {"v", "type", "fields", "arrays", "crc32"} - set(header)
-    if missing:
-        raise ProtocolError(f"{topic}: header lacks {sorted(missing)}")
-    if header["v"] != PROTOCOL_VERSION:
-        raise ProtocolError(f"{topic}: protocol version {header['v']!r}, this decoder reads "
-                            f"{PROTOCOL_VERSION}")
+        raise ProtocolError("topic is empty", reason="topic")
+    if not topic.isprintable() or " " in topic:  # no control characters in log lines
+        raise ProtocolError(f"topic {topic!r} is not a printable name", reason="topic")
+    header = _header(topic, views[1])
     kind = header["type"]
-    if kind != _DICT and kind not in _BY_NAME:
-        raise ProtocolError(f"{topic}: unknown record type {kind!r}")
+    if not isinstance(kind, str) or (kind != _DICT and kind not in _BY_NAME):
+        raise ProtocolError(f"{topic}: unknown record type {_short(kind)}", reason="type")
+    if types is not None and kind not in types:
+        raise ProtocolError(f"{topic}: a {kind!r} is not expected here", reason="type")
     fields = header["fields"]
     if not isinstance(fields, dict):
-        raise ProtocolError(f"{topic}: header 'fields' must be an object")
+        raise ProtocolError(f"{topic}: header 'fields' must be an object", reason="header")
     parts = views[2:]
     specs = header["arrays"]
     if not isinstance(specs, list):
-        raise ProtocolError(f"{kind}: header 'arrays' must be a list")
+        raise ProtocolError(f"{kind}: header 'arrays' must be a list", reason="header")
     if len(parts) != len(specs):
         raise ProtocolError(f"{kind}: header lists {len(specs)} arrays but the message has "
-                            f"{len(parts)} array parts")
+                            f"{len(parts)} array parts", reason="parts")
     crc = 0
     for part in parts:
         crc = zlib.crc32(part, crc)
-    if header["crc32"] != crc:
-        raise ProtocolError(f"{topic}: checksum mismatch (header crc32={header['crc32']!r}, "
-                            f"payload {crc})")
+    if not _is_int(header["crc32"]) or header["crc32"] != crc:
+        raise ProtocolError(f"{topic}: checksum mismatch (header crc32="
+                            f"{_short(header['crc32'])}, payload {crc})", reason="checksum")
     if kind == _DICT:
-        arrays = _arrays(kind, header["arrays"], parts, None)
+        arrays = _arrays(kind, specs, parts, None)
         record = dict(fields)
         for name, arr in arrays.items():
             if name in record:
-                raise ProtocolError(f"{topic}: key {name!r} is both a field and an array")
+                raise ProtocolError(f"{topic}: key {name!r} is both a field and an array",
+                                    reason="arrays")
             arr = arr.copy() if arr.flags.writeable else arr
             arr.setflags(write=False)
             record[name] = arr
         return topic, record
     schema = _BY_NAME[kind]
-    arrays = _arrays(kind, header["arrays"], parts, schema.arrays)
+    arrays = _arrays(kind, specs, parts, schema.arrays)
     unknown = set(fields) - set(schema.scalars)
     if unknown:
-        raise ProtocolError(f"{kind}: unknown fields {sorted(unknown)}")
+        raise ProtocolError(f"{kind}: unknown fields {_short(sorted(unknown))}", reason="field")
     absent = (schema.required - set(schema.arrays)) - set(fields)
     if absent:
-        raise ProtocolError(f"{kind}: missing fields {sorted(absent)}")
+        raise ProtocolError(f"{kind}: missing fields {sorted(absent)}", reason="field")
     values: dict[str, Any] = {}
     for name, raw in fields.items():
         values[name] = _scalar(schema.scalars[name], raw, f"{kind}.{name}")
@@ -464,10 +552,10 @@ def decode(frames: Sequence[Any]) -> tuple[str, Any]:
             continue
         ok = math.isfinite(v) if isinstance(v, float) else bool(np.isfinite(v).all())
         if not ok:
-            raise ProtocolError(f"{kind}.{name} must be finite")
+            raise ProtocolError(f"{kind}.{name} must be finite", reason="not_finite")
     values.update(arrays)
     try:
         record = schema.cls(**values)
-    except (ValueError, TypeError) as exc:
-        raise ProtocolError(f"{kind}: {exc}") from None
+    except (ValueError, TypeError, OverflowError) as exc:
+        raise ProtocolError(f"{kind}: {_short(str(exc))}", reason="record") from None
     return topic, record
