@@ -188,6 +188,51 @@ def test_replaying_twice_gives_the_same_maps_byte_for_byte(tmp_path):
     assert a == b
 
 
+class _SlowStart(ReplayDriver):
+    """A replay whose first estimate comes only after the service's clock moved 30 s, as on a
+    machine too busy to run the driver thread for a while."""
+
+    def __init__(self, clock, **kw):
+        super().__init__(**kw)
+        self._fake_clock = clock
+
+    def frames(self):
+        self._fake_clock.now_s += 30.0
+        yield from super().frames()
+
+
+class _Clock:
+    def __init__(self):
+        self.now_s = 100.0
+
+    def __call__(self):
+        self.now_s += 0.001
+        return self.now_s
+
+
+def test_a_slow_start_or_a_busy_machine_does_not_change_a_replay(tmp_path):
+    """A replay runs on its estimates' own times: wall time passing before its first estimate
+    (or between two) is no silent link, so no fallback map appears and the maps are those of
+    an undisturbed replay."""
+    recording = tmp_path / "est.brlog"
+    _record(recording, frames=200, fades=[(1.0, 20, 70, 14.0)])
+    runs = []
+    for name, slow in (("a", False), ("b", True)):
+        out = tmp_path / f"{name}.brlog"
+        cfg = loopback_config(record={"path": str(out), "topics": ["map"]},
+                              driver={"kind": "replay", "replay": {"path": str(recording)}})
+        clock = _Clock()
+        drv = (_SlowStart(clock, path=recording) if slow else ReplayDriver(path=recording))
+        with Service(cfg, driver=drv, clock=clock) as svc:
+            svc.run(60.0)
+            assert svc.driver_state == "ended"
+        with RecordReader(out) as r:
+            runs.append([m for _, m in r])
+    a, b = runs
+    assert len(a) >= 2 and not any(m.fallback for m in a + b)
+    assert [_bytes(m) for m in a] == [_bytes(m) for m in b]
+
+
 def test_without_saved_state_replays_are_identical_epoch_included(tmp_path):
     """What the README promises for a replay with no ``service.state_path``: the same maps byte
     for byte, epoch id included (it names the recording)."""

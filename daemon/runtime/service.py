@@ -29,9 +29,11 @@ The controller gets ``now_s`` as an argument. Which clock it is, is a per-source
 
 * ``source`` (sim, replay, recorded IQ): ``now_s`` is the estimate's own ``time_s``. Replay and
   the simulator therefore make the same decisions however fast they run, and replaying a file
-  twice gives the same maps byte for byte. Between estimates (a silent source), the service
-  extends the source time by the monotonic time elapsed since the last estimate arrived, only
-  to notice staleness.
+  twice gives the same maps byte for byte. Between estimates of a live or paced source (a
+  silent source), the service extends the source time by the monotonic time elapsed since the
+  last estimate arrived, only to notice staleness; a source read as fast as possible
+  (``realtime`` false: replay, recorded IQ, the simulator in fast mode) has no wall-clock
+  staleness at all (its gaps show in its own times), so a busy machine cannot change its maps.
 * ``monotonic`` (radio): ``now_s`` is the daemon's monotonic clock at arrival.
 
 Heartbeats and the status period are I/O pacing and always run on the monotonic clock.
@@ -252,6 +254,13 @@ class Service:
             return wall if self.clock_mode == "monotonic" else wall - self._started_wall
         return self._last_arrival_s + (wall - self._last_arrival_wall)
 
+    def _source_time_only(self) -> bool:
+        """True for a source-clock source that says it is not paced (``realtime`` false:
+        replay, recorded IQ, the simulator in fast mode). Its time is only what its estimates
+        say, so a pause of the machine (a busy CPU, a slow start) must not read as a silent
+        link; a live source, or one that does not say, is watched on the wall clock."""
+        return self.clock_mode == "source" and getattr(self.driver, "realtime", True) is False
+
     def run(self, duration_s: float | None = None, *, stop: threading.Event | None = None,
             on_status: Callable[[dict], None] | None = None) -> None:
         """Run the loop until ``duration_s`` (monotonic) passes, ``stop`` is set or the source ends.
@@ -316,8 +325,10 @@ class Service:
             if sock in events:
                 for ack in self._io.handle(sock):
                     self._note_ack(ack)
-        # Staleness while the source is silent.
-        if self.driver_state in ("running", "failed"):
+        # Staleness while the source is silent: not for a source that runs on its own time
+        # as fast as it is read (its gaps show in its estimates' times), unless it failed.
+        if self.driver_state == "failed" or (self.driver_state == "running"
+                                             and not self._source_time_only()):
             self._carry_out(self.controller.on_tick(self.core_now()))
         if self._io.status.due(self._clock()):
             return self.publish_status()
