@@ -443,7 +443,8 @@ class TestPlainFollowerInReadme:
         assert plain.map_for(20)[0]["seq"] == 2
         acks = []
         assert until(lambda: acks.extend(pub.poll_acks()) or len(acks) == 2)
-        assert [(a["seq"], a["frame"], a["epoch"]) for a in acks] == [(1, 10, "e1"), (2, 20, "e1")]
+        assert [(a["seq"], a["frame"], a["epoch"]) for a in acks] == \
+            [(1, 10, "e1"), (2, 20, "e1")]
         assert pub.counters["bad_acks"] == 0
 
     def test_lost_update_refused_map_and_new_epoch(self, pub, plain):
