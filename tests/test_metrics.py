@@ -155,3 +155,28 @@ class TestService:
             st["margin_db"])
         assert sum(s.value for s in got["brimline_maps_published"].samples) == \
             sum(st["maps_published"].values())
+
+
+def test_service_close_releases_the_metrics_port():
+    """The endpoint is one of the service's resources: closing the service frees its port."""
+    cfg = loopback_config(metrics={"enabled": True, "port": 0})
+    plan = make_plan(**cfg.link.model_dump())
+    with Service(cfg, driver=ScriptedDriver(plan, frames=5)) as svc:
+        port = int(svc.endpoints["metrics"].rsplit(":", 1)[1].split("/")[0])
+    with MetricsEndpoint(port=port) as again:
+        assert again.port == port
+
+
+def test_missing_client_library_is_one_line(monkeypatch):
+    import builtins
+
+    real_import = builtins.__import__
+
+    def no_client(name, *args, **kwargs):
+        if name.startswith("prometheus_client"):
+            raise ImportError(name)
+        return real_import(name, *args, **kwargs)
+
+    monkeypatch.setattr(builtins, "__import__", no_client)
+    with pytest.raises(ConfigError, match=r"pip install 'brimline\[metrics\]'"):
+        MetricsEndpoint(port=0)
