@@ -192,6 +192,31 @@ class TestRate:
             need = Loader(bits=range(11), gap_db=9.8).required_power(g, snr)
             assert a.total_power == pytest.approx(need.sum(), rel=1e-9)
 
+    def test_hughes_hartogs_on_hard_channels(self, rng):
+        """Rayleigh-deep notches and a 3 dB per-tone ceiling (most tones' tables truncated),
+        bits 0..10, gap 9.8 dB (common-practice value): the same optimum as Hughes-Hartogs
+        greedy (Cioffi's DMT notes ch. 4), both in total bits and in total power."""
+        for n, budget_db in [(1024, 0.0), (512, -6.0), (700, 3.0)]:
+            snr = rayleigh_notched(rng, n)
+            a = load_rate(snr, bits=range(11), gap_db=9.8, budget_db=budget_db, cap_db=3.0)
+            g = _greedy_oracle(snr, bits_max=10, gap_db=9.8, budget_db=budget_db, cap_db=3.0)
+            assert a.total_bits == g.sum()
+            need = Loader(bits=range(11), gap_db=9.8).required_power(g, snr)
+            assert a.total_power == pytest.approx(need.sum(), rel=1e-9)
+            assert a.power.max() <= lin(3.0)
+
+    def test_exhaustive_notched_and_capped(self, rng):
+        """Small instances with notches 20-40 dB deep next to strong tones and a tight ceiling,
+        against exhaustive search over every bit combination."""
+        for _ in range(40):
+            n = int(rng.integers(2, 5))
+            snr = lin(rng.uniform(20, 35, n))
+            snr[rng.integers(n)] /= lin(rng.uniform(20, 40))
+            cap_db = float(rng.uniform(0, 4))
+            budget_db = float(rng.uniform(-4, 4))
+            a = load_rate(snr, bits=range(7), gap_db=9.8, budget_db=budget_db, cap_db=cap_db)
+            assert a.total_bits == exhaustive_rate(snr, range(7), 9.8, budget_db, cap_db)
+
     def test_efficient_and_e_tight(self, rng):
         """Campello's optimality conditions (ICC 1999): *efficient* (no bit moved from one tone
         to another lowers the power: the dearest last increment costs no more than the cheapest
@@ -233,6 +258,15 @@ class TestRate:
     def test_single_bit_set(self):
         a = load_rate(lin(np.full(4, 30.0)), bits=[0], gap_db=9.8)
         assert a.total_bits == 0
+
+
+def rayleigh_notched(rng, n):
+    """Invented channel: 24 Rayleigh taps with an exponential power-delay profile, so the
+    per-tone power is exponentially distributed (deep notches); mean SNR 28 dB, 1 dB scatter."""
+    profile = np.exp(-np.arange(24) / 6.0)
+    g = (rng.normal(size=24) + 1j * rng.normal(size=24)) * np.sqrt(profile / profile.sum() / 2)
+    power = np.abs(np.fft.fft(g, n)) ** 2
+    return lin(28.0 + db(power + 1e-12) + rng.normal(0.0, 1.0, n))
 
 
 def exhaustive_like_constant(snr, n, gap_db):
@@ -515,6 +549,23 @@ class TestPrivateSearches:
                 results.append(ld._rate_steps(tones, budget))
             for r in results[1:]:
                 np.testing.assert_array_equal(r, results[0])
+
+    def test_truncated_table_top_matches_a_binary_search(self, rng):
+        """The ceiling's truncation of a consecutive set's table, read from the exponent, is the
+        binary search over the table (including rooms exactly on a table entry)."""
+        ld = Loader(bits=range(11), gap_db=9.8, cap_db=3.0)
+        room = np.concatenate([lin(rng.uniform(-40, 40, 2000)), ld._energy,
+                               np.nextafter(ld._energy, 0.0), np.nextafter(ld._energy, np.inf),
+                               [0.0, 1e300]])
+        expected = np.searchsorted(ld._energy, room, side="right") - 1
+        np.testing.assert_array_equal(ld._unit_top(room, 10), expected)
+
+    def test_free_functions_reuse_loaders_only_for_plain_settings(self):
+        snr = lin(np.array([20.0, 25.0, 5.0]))
+        assert load_rate(snr, bits=(0, 1, 2), gap_db=9.8).total_bits == \
+            load_rate(snr, bits=[0, 1, 2], gap_db=9.8).total_bits
+        with pytest.raises(InputError, match="bits"):  # True == 1: never served from the cache
+            load_rate(snr, bits=(False, True), gap_db=9.8)
 
     def test_margin_steps_hit_the_target(self, rng):
         ld = Loader(bits=range(13), gap_db=9.8)

@@ -65,9 +65,28 @@ class TestDemoProfile:
         assert doc["bits"] == ref.bits.tolist()
         assert doc["total_bits"] == ref.total_bits == sum(doc["bits"])
         assert doc["total_power"] == pytest.approx(ref.total_power)
-        assert doc["margin_db"] == pytest.approx(ref.margin_db)
-        assert doc["gap_db"] == pytest.approx(qam_gap_db(1e-7) + 3.0)
+        assert doc["achieved_margin_db"] == pytest.approx(ref.margin_db)
+        assert doc["effective_gap_db"] == pytest.approx(qam_gap_db(1e-7) + 3.0)
+        assert doc["gap_db"] == pytest.approx(qam_gap_db(1e-7))
+        assert doc["target_ser"] == 1e-7 and doc["target_margin_db"] == 3.0
         assert len(doc["power"]) == 256
+        assert "margin_db" not in doc  # the target and the achieved margin are named apart
+
+    def test_effective_gap_is_spelled_out(self, capsys):
+        """``--gap-db 0`` loads at 3 dB because of the default target margin: the output says
+        so (gap - coding gain + target margin = effective gap)."""
+        code, out, _ = run_plan(capsys, DEMO, "--json", "--gap-db", "0")
+        doc = json.loads(out)
+        assert code == 0
+        assert (doc["gap_db"], doc["target_ser"], doc["coding_gain_db"],
+                doc["target_margin_db"], doc["effective_gap_db"]) == (0.0, None, 0.0, 3.0, 3.0)
+        snr = 10 ** (read_snr_db(DEMO) / 10)
+        assert doc["bits"] == load_rate(snr, bits=range(9), gap_db=3.0).bits.tolist()
+        code, out, _ = run_plan(capsys, DEMO, "--gap-db", "0", "--coding-gain-db", "1.5",
+                                "--margin-db", "2")
+        assert "gap        0.50 dB = gap 0.00 dB - coding gain 1.5 dB + target margin 2 dB" \
+            in out
+        assert "achieved   margin" in out
 
 
 class TestModesAndFlags:
@@ -77,7 +96,7 @@ class TestModesAndFlags:
         doc = json.loads(out)
         assert code == 0 and doc["total_bits"] == 1200
         ref = load_margin(10 ** (read_snr_db(DEMO) / 10), target_bits=1200, gap_db=9.8)
-        assert doc["margin_db"] == pytest.approx(ref.margin_db)
+        assert doc["achieved_margin_db"] == pytest.approx(ref.margin_db)
 
     def test_waterfill_mode(self, capsys):
         code, out, _ = run_plan(capsys, DEMO, "--json", "--mode", "waterfill", "--gap-db", 0,
@@ -101,7 +120,7 @@ class TestModesAndFlags:
                                 "--target-ser", "1e-6", "--budget-db", "-3")
         doc = json.loads(out)
         assert set(doc["bits"]) <= {0, 1, 2, 4, 6, 8}
-        assert doc["gap_db"] == pytest.approx(qam_gap_db(1e-6) + 3.0)
+        assert doc["effective_gap_db"] == pytest.approx(qam_gap_db(1e-6) + 3.0)
         assert doc["total_power"] <= 256 * 10 ** -0.3 * (1 + 1e-9)
 
     def test_nothing_loaded_gives_null_margin(self, capsys, tmp_path):
@@ -109,7 +128,7 @@ class TestModesAndFlags:
         p = write(tmp_path, "dead.txt", "-150\n-150\n")
         code, out, _ = run_plan(capsys, p, "--json")
         doc = json.loads(out)
-        assert code == 0 and doc["total_bits"] == 0 and doc["margin_db"] is None
+        assert code == 0 and doc["total_bits"] == 0 and doc["achieved_margin_db"] is None
         assert doc["cap_db"] is None
         code, out, _ = run_plan(capsys, p)
         assert "unlimited" in out
@@ -120,12 +139,13 @@ class TestModesAndFlags:
         code, out, _ = run_plan(capsys, DEMO, "--json", "--config", cfg)
         doc = json.loads(out)
         assert doc["mode"] == "margin" and doc["total_bits"] == 700
-        assert doc["gap_db"] == pytest.approx(8.0)
+        assert doc["effective_gap_db"] == pytest.approx(8.0)
         code, out, _ = run_plan(capsys, DEMO, "--json", "--config", cfg, "--mode", "rate",
                                 "--margin-db", "2")
         doc = json.loads(out)
         assert doc["mode"] == "rate" and doc["total_bits"] > 700
-        assert doc["gap_db"] == pytest.approx(10.0)
+        assert doc["effective_gap_db"] == pytest.approx(10.0)
+        assert doc["target_margin_db"] == 2.0
 
     def test_npy_input(self, capsys, tmp_path):
         p = tmp_path / "snr.npy"

@@ -2,6 +2,7 @@
 
 import re
 import threading
+import time
 from pathlib import Path
 
 import numpy as np
@@ -401,3 +402,66 @@ class TestSections:
         from brimline.daemon.runtime.config import StatusSection, parse_section
         with pytest.raises(ConfigError, match=match):
             parse_section(StatusSection, data, where="demo.yaml", name="status")
+
+
+class TestPlainFollowerInReadme:
+    """The README's complete minimal follower (plain pyzmq and numpy) runs as written against a
+    MapPublisher on loopback: the follower rules of "Following the maps", one by one."""
+
+    @pytest.fixture
+    def plain(self, pub, ctx):
+        text = README.read_text()
+        code = re.search(r"<!-- snippet: plain-follower -->\n```python\n(.*?)```", text,
+                         re.S).group(1)
+        ns: dict = {"__name__": "readme_follower"}
+        exec(compile(code, "README.md:plain-follower", "exec"), ns)
+        plan = wifi_like_plan()
+        follower = ns["PlainFollower"](
+            plan.plan_id, plan.data_tones, range(9), plan.data_tones.size * 1.0, 1.0,
+            maps=pub.map_endpoint, snapshots=pub.snapshot_endpoint, acks=pub.ack_endpoint,
+            heartbeat_s=0.05, ctx=ctx)
+        yield follower
+        follower.close()
+
+    @staticmethod
+    def pump(pub, follower, condition):
+        def step():
+            pub.handle_snapshot()
+            pub.tick(time.monotonic())
+            follower.poll(0.002)
+        return until(condition, step=step)
+
+    def test_snapshot_then_updates_in_order(self, pub, plain):
+        pub.publish(make_map(1, bits=4, power=0.5))
+        assert self.pump(pub, plain, lambda: plain.pending is not None)
+        assert plain.pending[0]["seq"] == 1 and plain.req is None
+        assert plain.map_for(5) is None  # map 1 applies from frame 10 on (effective_frame)
+        fields, arrays = plain.map_for(10)
+        assert fields["seq"] == 1 and (arrays["bits"] == 4).all()
+        pub.publish(make_map(2, bits=3))
+        assert self.pump(pub, plain, lambda: plain.seq == 2)
+        assert plain.map_for(20)[0]["seq"] == 2
+        acks = []
+        assert until(lambda: acks.extend(pub.poll_acks()) or len(acks) == 2)
+        assert [(a["seq"], a["frame"], a["epoch"]) for a in acks] == \
+            [(1, 10, "e1"), (2, 20, "e1")]
+        assert pub.counters["bad_acks"] == 0
+
+    def test_lost_update_refused_map_and_new_epoch(self, pub, plain):
+        pub.publish(make_map(1))
+        assert self.pump(pub, plain, lambda: plain.seq == 1)
+        plain.map_for(10)
+        pub.publish(make_map(2, power=5.0))  # over the 1.0 cap: refused, its seq used up
+        assert self.pump(pub, plain, lambda: plain.seq == 2)
+        assert plain.pending is None and plain.map_for(99)[0]["seq"] == 1
+        pub.prime(make_map(3))  # map 3 never reaches the follower as an update (lost) ...
+        # ... but the heartbeat names seq 3, so the follower asks for the snapshot
+        assert self.pump(pub, plain, lambda: plain.seq == 3 and plain.pending is not None)
+        pub.publish(make_map(0, epoch="e2"))  # the daemon started afresh
+        assert self.pump(pub, plain, lambda: plain.epoch == "e2" and plain.seq == 0)
+
+    def test_silence_makes_it_stale(self, pub, plain):
+        pub.publish(make_map(1))
+        assert self.pump(pub, plain, lambda: plain.seq == 1)
+        assert not plain.stale()
+        assert until(lambda: plain.poll(0.01) or plain.stale())  # no heartbeats any more

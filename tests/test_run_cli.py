@@ -307,3 +307,65 @@ def test_alias_bomb_fails_check_in_one_line(tmp_path, capsys):
     assert main(["run", "--config", str(p), "--check"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "aliases expand this node" in err[0], err
+
+
+def test_failed_source_exits_3(tmp_path, monkeypatch, capsys):
+    """The source fails mid-run: the daemon goes on until stopped (here by --duration), then
+    exits with EXIT_SOURCE_FAILED, which the README's exit-code list and unit rely on."""
+    from brimline.daemon.commands import run as run_cmd
+    from brimline.daemon.runtime.service import Service
+    from brimline.drivers.link.frame import make_plan
+
+    cfg = _config(tmp_path, _recording(tmp_path / "est.brlog"))
+
+    def failing_service(config):
+        plan = make_plan(**config.link.model_dump())
+        return Service(config, driver=ScriptedDriver(plan, frames=100, fail_at=20))
+
+    monkeypatch.setattr(run_cmd, "Service", failing_service)
+    code = main(["run", "--config", str(cfg), "--duration", "1.0"])
+    assert code == run_cmd.EXIT_SOURCE_FAILED == 3
+    assert "failed" in capsys.readouterr().out
+
+
+class TestReadmeUnit:
+    """The README's systemd unit (between the snippet markers) against the CLI it starts."""
+
+    @staticmethod
+    def unit():
+        import configparser
+        import re
+
+        text = (ROOT / "README.md").read_text()
+        body = re.search(r"<!-- snippet: systemd-unit -->\n```ini\n(.*?)```", text, re.S).group(1)
+        parser = configparser.ConfigParser(interpolation=None, strict=True)
+        parser.optionxform = str  # systemd keys are case-sensitive
+        parser.read_string(body)
+        return parser
+
+    def test_exec_start_is_a_valid_run_command(self):
+        import shlex
+
+        from brimline.daemon.commands.cli import build_parser
+
+        argv = shlex.split(self.unit()["Service"]["ExecStart"])
+        assert Path(argv[0]).name == "brimline"
+        args = build_parser().parse_args(argv[1:])  # argparse exits on an unknown flag
+        assert args.command == "run" and args.config and not args.check
+        assert args.log_json and args.duration is None
+
+    def test_stop_signal_and_exit_codes_match_the_cli(self, tmp_path, capsys):
+        """SIGTERM is a signal ``run`` handles; exit 2 (refused restarts) is what a bad config
+        gives; exit 3 (a failed source) is not in the refused list, so systemd restarts it."""
+        from brimline.daemon.commands import run as run_cmd
+
+        service = self.unit()["Service"]
+        assert service["KillSignal"] == "SIGTERM"
+        assert "signal.SIGTERM" in Path(run_cmd.__file__).read_text()
+        assert service["Restart"] == "on-failure"
+        refused = {int(c) for c in service["RestartPreventExitStatus"].split()}
+        bad = tmp_path / "bad.yaml"
+        bad.write_text("loading:\n  gap_db: nope\n")
+        code = main(["run", "--config", str(bad)])
+        assert code == 2 and refused == {code}
+        assert run_cmd.EXIT_SOURCE_FAILED not in refused

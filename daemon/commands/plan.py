@@ -7,11 +7,18 @@ read as well. The loading settings come from the ``loading:`` section of a daemo
 (``--config``, the whole file is validated) or its defaults; flags override them.
 
 ``--json`` prints one object: the settings used, then ``bits``, ``power``, ``total_bits``,
-``total_power`` and ``margin_db`` of the allocation (0-bit tones carry no power), and in waterfill
-mode also ``waterfill_power`` (the continuous water-filling powers, before rounding bits down),
-``water_level`` and ``capacity_bits``. Numbers that are not finite (``margin_db`` when nothing is
-loaded, ``water_level`` when no tone can take power, ``cap_db`` when there is no ceiling) are
-written as ``null`` so that the output is strict JSON.
+``total_power`` and ``achieved_margin_db`` of the allocation (0-bit tones carry no power), and in
+waterfill mode also ``waterfill_power`` (the continuous water-filling powers, before rounding bits
+down), ``water_level`` and ``capacity_bits``. Numbers that are not finite (``achieved_margin_db``
+when nothing is loaded, ``water_level`` when no tone can take power, ``cap_db`` when there is no
+ceiling) are written as ``null`` so that the output is strict JSON.
+
+Two margins appear and are kept apart by name. The *target* margin (``--margin-db``, the
+config's ``loading.margin_db``) is an input: it is added to the gap before loading. The
+*achieved* margin is an output: how far every loaded tone's required power could still grow
+within the budget and ceilings (the allocation's ``margin_db``). The effective gap is spelled
+out as ``gap_db`` (given, or that of uncoded QAM at ``target_ser``) ``- coding_gain_db +
+target_margin_db = effective_gap_db``, in the JSON and the text alike.
 """
 
 from __future__ import annotations
@@ -25,6 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from brimline.daemon.core.loading import allowed_bits, waterfill
+from brimline.daemon.core.qam import qam_gap_db
 from brimline.daemon.errors import InputError
 from brimline.daemon.runtime.config import LoadingSection, load_config
 
@@ -191,17 +199,31 @@ def _finite_or_none(x: float):
     return float(x) if math.isfinite(x) else None
 
 
-def _gap_text(section: LoadingSection, gap_db: float) -> str:
-    if section.gap_db is not None:
-        base = f"gap {section.gap_db:g} dB"
-    else:
-        base = f"uncoded QAM at SER {section.target_ser:g}"
-    extras = []
-    if section.coding_gain_db:
-        extras.append(f"coding gain {section.coding_gain_db:g} dB")
-    if section.margin_db:
-        extras.append(f"target margin {section.margin_db:g} dB")
-    return f"{gap_db:.2f} dB ({', '.join([base] + extras)})"
+def gap_terms(section: LoadingSection) -> dict:
+    """How the loader's gap is made: the JSON keys of ``plan --json``.
+
+    Returns
+    -------
+    dict
+        ``gap_db`` (given, or uncoded QAM at ``target_ser``), ``target_ser`` (``None`` when the
+        gap was given), ``coding_gain_db``, ``target_margin_db`` and ``effective_gap_db``
+        ``= gap_db - coding_gain_db + target_margin_db``, the gap the loader uses.
+    """
+    base_db = section.gap_db if section.gap_db is not None else qam_gap_db(section.target_ser)
+    return {
+        "gap_db": base_db,
+        "target_ser": None if section.gap_db is not None else section.target_ser,
+        "coding_gain_db": section.coding_gain_db,
+        "target_margin_db": section.margin_db,
+        "effective_gap_db": section.effective_gap_db(),
+    }
+
+
+def _gap_text(terms: dict) -> str:
+    base = f"{terms['gap_db']:.2f} dB" + ("" if terms["target_ser"] is None
+                                           else f" (uncoded QAM at SER {terms['target_ser']:g})")
+    return (f"{terms['effective_gap_db']:.2f} dB = gap {base} - coding gain "
+            f"{terms['coding_gain_db']:g} dB + target margin {terms['target_margin_db']:g} dB")
 
 
 def _bits_text(bits: list[int]) -> str:
@@ -271,7 +293,8 @@ def run(args) -> int:
     """Read the SNR file, plan, print a summary and chart (or JSON). Returns 0."""
     section = _section(args)
     snr_db = read_snr_db(args.snr_file)
-    gap_db = section.effective_gap_db()
+    terms = gap_terms(section)
+    gap_db = terms["effective_gap_db"]
     loader = section.loader()
     snr = 10.0 ** (snr_db / 10.0)
     alloc = loader(snr)
@@ -284,7 +307,7 @@ def run(args) -> int:
             "file": str(args.snr_file),
             "mode": section.mode,
             "n_tones": int(snr.size),
-            "gap_db": gap_db,
+            **terms,
             "allowed_bits": list(section.bits),
             "budget_db": section.budget_db,
             "cap_db": _finite_or_none(section.cap_db),
@@ -293,7 +316,7 @@ def run(args) -> int:
             "power": alloc.power.tolist(),
             "total_bits": alloc.total_bits,
             "total_power": alloc.total_power,
-            "margin_db": _finite_or_none(alloc.margin_db),
+            "achieved_margin_db": _finite_or_none(alloc.margin_db),
         }
         if wf is not None:
             out["waterfill_power"] = wf.power.tolist()
@@ -310,7 +333,7 @@ def run(args) -> int:
         f"(median {np.median(snr_db):.1f} dB)",
         f"  mode       {section.mode}"
         + (f", target {section.target_bits} bits" if section.mode == "margin" else ""),
-        f"  gap        {_gap_text(section, gap_db)}",
+        f"  gap        {_gap_text(terms)}",
         f"  bits       {_bits_text(list(section.bits))} per tone",
         f"  power      budget {section.budget_db:g} dB ({budget:.4g} x nominal tone power), "
         f"ceiling {cap_text}",
@@ -320,9 +343,10 @@ def run(args) -> int:
         f"  uses       {alloc.total_power:.4g} of {budget:.4g} x nominal "
         f"({10 * math.log10(max(alloc.total_power, 1e-300) / budget):+.2f} dB of the budget)"
         if alloc.total_power > 0 else "  uses       no power",
-        (f"  margin     {alloc.margin_db:.2f} dB on every loaded tone, "
+        (f"  achieved   margin {alloc.margin_db:.2f} dB on every loaded tone beyond the target, "
          + ("powers raised by it" if section.mode == "margin" else "left as headroom"))
-        if math.isfinite(alloc.margin_db) else "  margin     unlimited (nothing loaded)",
+        if math.isfinite(alloc.margin_db)
+        else "  achieved   margin unlimited (nothing loaded)",
     ]
     if wf is not None:
         lines.append(f"  waterfill  level {wf.water_level:.4g}, capacity {wf.capacity_bits:.1f} "

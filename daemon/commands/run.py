@@ -5,6 +5,14 @@ and then tries the files a run writes (:func:`check_paths`): the recording must 
 (the writer never overwrites) and its folder must take a new file; the state file, when present,
 must load, and its folder must take a new file (state is saved by write-then-rename). The
 probes create and remove one hidden temporary file per folder and leave nothing behind.
+
+Exit codes of a run (a service supervisor keys its restart policy on them): 0 after a clean
+stop (SIGTERM, SIGINT, ``--duration``, or a finite source that ended); 2 for anything the user
+got wrong, reported in one line before the daemon starts (config, files, a port in use, a
+missing optional library); :data:`EXIT_SOURCE_FAILED` when the estimate source failed during
+the run (the daemon keeps serving the last map, and the fallback once estimates are stale,
+until it is stopped, with the ``driver_failed`` alarm raised); 130 for a KeyboardInterrupt that
+arrives outside the loop; 1 (a traceback) only for a bug.
 """
 
 from __future__ import annotations
@@ -32,7 +40,10 @@ from brimline.daemon.wire.recording import recording_paths
 from brimline.daemon.wire.state import StateStore
 
 __all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "check_paths", "end_summary",
-           "security_warnings"]
+           "security_warnings", "EXIT_SOURCE_FAILED"]
+
+#: Exit code of a run whose estimate source failed before the daemon was stopped.
+EXIT_SOURCE_FAILED = 3
 
 
 class JsonLogFormatter(logging.Formatter):
@@ -271,7 +282,9 @@ def run(args: argparse.Namespace) -> int:
         final = service.last_status or {}
         if not args.quiet:
             print(end_summary(final), flush=True)
-        return 0
+        # The source failed during the run: the daemon kept serving the last or fallback map
+        # until stopped; a distinct code lets a supervisor tell this stop from a clean one.
+        return EXIT_SOURCE_FAILED if service.driver_state == "failed" else 0
     finally:
         for s, h in old.items():
             signal.signal(s, h)

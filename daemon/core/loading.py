@@ -57,9 +57,8 @@ def _as_snr(snr) -> np.ndarray:
         raise InputError(f"snr must be an array of numbers, got {type(snr).__name__}") from None
     if arr.ndim != 1:
         raise InputError(f"snr must be 1-D (one value per tone), got shape {arr.shape}")
-    with np.errstate(over="ignore"):
-        if arr.size and arr.min() >= 0.0 and math.isfinite(float(arr.sum())):
-            return arr  # the usual case, in two cheap passes
+    if arr.size and arr.min() >= 0.0 and arr.max() < math.inf:
+        return arr  # the usual case, in two cheap passes (a NaN fails the first test)
     bad = ~(np.isfinite(arr) & (arr >= 0.0))
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
@@ -73,6 +72,7 @@ class _BitTables:
 
     bits: np.ndarray         # (J,) allowed bits, ascending from 0
     energy: np.ndarray       # (J,) 2**b - 1: a tone's power in units of gap/snr
+    pow2: np.ndarray         # (J,) 2**b: the table the energy formula gathers from
     step_energy: np.ndarray  # (J-1,) energy of the step from bits[j] to bits[j+1]
     step_bits: np.ndarray    # (J-1,) bits gained by that step
     step_key: np.ndarray     # (J-1,) log2 of the step's energy per bit (increasing)
@@ -174,13 +174,14 @@ def _bit_tables(values: tuple[int, ...]) -> _BitTables:
     step_bits = np.diff(bits)
     step_key = np.log2(step_energy / step_bits)
     tables = _BitTables(
-        bits=bits, energy=levels - 1.0, step_energy=step_energy, step_bits=step_bits,
+        bits=bits, energy=levels - 1.0, pow2=levels, step_energy=step_energy,
+        step_bits=step_bits,
         step_key=step_key, unit_steps=bool(np.all(step_bits == 1)),
         max_step=int(step_bits.max()) if step_bits.size else 1,
         mean_step=float(step_bits.mean()) if step_bits.size else 1.0,
         key_spacing=float(np.diff(step_key).min()) if step_key.size > 1 else 1.0)
-    for table in (tables.bits, tables.energy, tables.step_energy, tables.step_bits,
-                  tables.step_key):
+    for table in (tables.bits, tables.energy, tables.pow2, tables.step_energy,
+                  tables.step_bits, tables.step_key):
         table.setflags(write=False)
     return tables
 
@@ -298,6 +299,12 @@ def waterfill(snr, *, gap_db: float = 0.0, budget_db: float = 0.0,
 
 # --------------------------------------------------------------------------- discrete loading
 
+#: First step of the threshold walk past a Newton estimate, in key spacings: small, so that the
+#: bracket (and the sort of the tones with a step inside it) stays narrow, but enough to cross.
+_OVERSHOOT = 1.0 / 64.0
+#: A bracket at most this wide (in key spacings) skips the interpolated probe.
+_NARROW = 1.0 / 16.0
+
 
 @dataclass(frozen=True)
 class _Tones:
@@ -390,7 +397,8 @@ class Loader:
             "_gap": gap, "_log2_gap": math.log2(gap),
             "_per_tone_budget": 10.0 ** (budget_db / 10.0), "_cap": 10.0 ** (cap_db / 10.0),
             # Tables over the bit set (cached per set, read-only): see _BitTables.
-            "_energy": tables.energy, "_step_energy": tables.step_energy,
+            "_energy": tables.energy, "_pow2": tables.pow2,
+            "_step_energy": tables.step_energy,
             "_step_bits": tables.step_bits, "_step_key": tables.step_key,
             "_unit_steps": tables.unit_steps, "_max_step": tables.max_step,
             "_mean_step": tables.mean_step, "_key_spacing": tables.key_spacing,
@@ -420,7 +428,10 @@ class Loader:
         last = self.bits.size - 1
         if math.isfinite(self._cap) or last == 0:
             room = min(self._cap, budget) / unit
-            top = np.searchsorted(self._energy, room, side="right") - 1
+            if self._unit_steps:
+                top = self._unit_top(room, last)
+            else:
+                top = np.searchsorted(self._energy, room, side="right") - 1
             dead = top == 0
             top_f = top.astype(np.float64)
         else:  # only the budget limits a tone: drop those that cannot afford the first step
@@ -436,6 +447,20 @@ class Loader:
             log_unit[dead] = np.inf
         return _Tones(unit=unit, log_unit=log_unit, top=top, top_f=top_f,
                       unit_sum=float(unit.sum()))
+
+    def _unit_top(self, room: np.ndarray, last: int) -> np.ndarray:
+        """``searchsorted(energy, room, "right") - 1`` for consecutive bit sets, cheaper.
+
+        With ``energy = 2**b - 1`` the answer is ``floor(log2(room + 1))``, which ``frexp``
+        reads off the exponent exactly. Rounding ``room + 1`` can only carry it up to the next
+        power of two, so one comparison against the exact table settles it. A truncated table
+        (the ceiling) then costs a third of a binary search per tone.
+        """
+        top = np.frexp(room + 1.0)[1].astype(np.int64)
+        top -= 1
+        np.minimum(top, last, out=top)
+        top -= self._energy[top] > room
+        return top
 
     def _steps_at(self, tones: _Tones, t: float) -> np.ndarray:
         """Steps each tone takes at threshold ``t`` (log2 of the cost per bit), capped.
@@ -454,8 +479,8 @@ class Loader:
 
     def _energy_of(self, tones: _Tones, n: np.ndarray) -> float:
         """Total required power of ``n`` steps per tone, linear."""
-        if self._unit_steps:
-            return float(np.dot(tones.unit, np.exp2(n))) - tones.unit_sum
+        if self._unit_steps:  # a gather from the 2**b table is far cheaper than exp2
+            return float(np.dot(tones.unit, self._pow2[n.astype(np.intp)])) - tones.unit_sum
         return float(np.dot(tones.unit, self._energy[n]))
 
     def _bits_of(self, n: np.ndarray) -> int:
@@ -506,15 +531,18 @@ class Loader:
 
     # ---------------------------------------------------------------- searches
 
-    def _bracket(self, tones: _Tones, measure, limit: float, guess: float):
+    def _bracket(self, tones: _Tones, measure, limit: float, guess: float, newton=None):
         """Narrow the threshold until no tone has two steps inside ``(lo, hi]``.
 
         ``measure(n)`` is nondecreasing in the steps ``n``. Returns ``(n_lo, n_hi, m_lo)`` with
         ``m_lo = measure(n_lo) <= limit < measure(n_hi)``, or ``(top, None, measure(top))`` when
         everything fits. The search starts at ``guess`` and widens by doubling until it holds
         the limit, bisects until the bracket is narrower than the key spacing, then takes one
-        interpolated probe so that the final sort sees few tones. The guess and the probe only
-        save work: any bracket with the invariant gives the same exact answer.
+        interpolated probe (unless the bracket is already narrow) so that the final sort sees
+        few tones. ``newton(m)``, when given, estimates how far the threshold must move from
+        where ``measure`` gave ``m``: the first step of the walk is that distance plus a little,
+        so a good guess brackets the limit in two evaluations. The guess, the first step and
+        the probe only save work: any bracket with the invariant gives the same exact answer.
         """
         top = tones.top_f if self._unit_steps else tones.top
         live = tones.top > 0
@@ -525,6 +553,10 @@ class Loader:
         n = self._steps_at(tones, t)
         m = measure(n)
         step = 0.5 * spacing
+        if newton is not None:
+            estimate = abs(newton(m))
+            if math.isfinite(estimate):
+                step = min(estimate + _OVERSHOOT * spacing, step)
         if m <= limit:  # walk up until over the limit (or everything fits)
             lo, n_lo, m_lo = t, n, m
             # the threshold past which every tone is full
@@ -571,6 +603,8 @@ class Loader:
             else:
                 hi, n_hi, m_hi = mid, n, m
         width = hi - lo
+        if width <= _NARROW * spacing:  # few tones have a step inside: no probe needed
+            return n_lo, n_hi, m_lo
         t = lo + width * (limit - m_lo) / (m_hi - m_lo)
         t = min(max(t, lo + 0.02 * width), hi - 0.02 * width)
         n = self._steps_at(tones, t)
@@ -595,8 +629,11 @@ class Loader:
         # At threshold t a tone's energy is below twice its last step, so about
         # 1.44 * 2**t on average (mean of 2**(1 - u), u uniform): a first guess only.
         guess = math.log2((budget + tones.unit_sum) / (1.4427 * live * self._max_step))
-        n_lo, n_hi, spent = self._bracket(tones, lambda n: self._energy_of(tones, n), budget,
-                                          guess)
+        # The energy of the unsaturated tones doubles per unit of threshold: a Newton step
+        # in log2 (exact for a pure power of two, short when tones saturate on the way).
+        n_lo, n_hi, spent = self._bracket(
+            tones, lambda n: self._energy_of(tones, n), budget, guess,
+            newton=lambda m: math.log2(budget / m) if m > 0.0 else math.inf)
         if n_hi is not None:
             idx, j = self._candidates(tones, n_lo, n_hi)
             cost = tones.unit[idx] * self._step_energy[j]
@@ -800,7 +837,7 @@ def load_rate(snr, *, bits: Iterable[int] = range(9), gap_db: float, budget_db: 
     Levin-Campello loading (Campello, ICC 1999), exactly optimal for consecutive bit sets and
     within ``max_step - 1`` bits of optimal for sets with holes; see :class:`Loader`.
     """
-    return Loader(mode="rate", bits=bits, gap_db=gap_db, budget_db=budget_db, cap_db=cap_db)(snr)
+    return _loader("rate", bits, gap_db, budget_db, cap_db, None)(snr)
 
 
 def load_margin(snr, *, target_bits: int, bits: Iterable[int] = range(9), gap_db: float,
@@ -830,8 +867,33 @@ def load_margin(snr, *, target_bits: int, bits: Iterable[int] = range(9), gap_db
         ``target_bits`` is more than the budget and ceilings allow; the message gives the target
         and the maximum achievable bits.
     """
-    return Loader(mode="margin", bits=bits, gap_db=gap_db, budget_db=budget_db, cap_db=cap_db,
-                  target_bits=target_bits)(snr)
+    return _loader("margin", bits, gap_db, budget_db, cap_db, target_bits)(snr)
+
+
+def _loader(mode: str, bits, gap_db, budget_db, cap_db, target_bits) -> Loader:
+    """A :class:`Loader` for the free functions, reused while the settings repeat.
+
+    Building one validates the settings and looks up the bit tables, which costs as much as a
+    quarter of a 4096-tone frame; a loader keeps no state between calls, so sharing is safe.
+    Only plain ``int`` bits and plain numbers are cached (``True == 1`` must not hit a cache
+    entry that skipped the check refusing booleans).
+    """
+    try:
+        key = (mode, tuple(bits), gap_db, budget_db, cap_db, target_bits)
+    except TypeError:
+        key = None
+    if key is None or not all(type(b) is int for b in key[1]) \
+            or not all(type(x) in (int, float) for x in key[2:5]) \
+            or not (target_bits is None or type(target_bits) is int):
+        return Loader(mode=mode, bits=bits, gap_db=gap_db, budget_db=budget_db, cap_db=cap_db,
+                      target_bits=target_bits)
+    return _cached_loader(*key)
+
+
+@functools.lru_cache(maxsize=32)
+def _cached_loader(mode, bits, gap_db, budget_db, cap_db, target_bits) -> Loader:
+    return Loader(mode=mode, bits=bits, gap_db=gap_db, budget_db=budget_db, cap_db=cap_db,
+                  target_bits=target_bits)
 
 
 def _greedy_oracle(snr, *, bits_max: int, gap_db: float, budget_db: float = 0.0,

@@ -52,6 +52,7 @@ from brimline.daemon.limits import (
     between,
     check_db,
 )
+from brimline.daemon.net.metrics import METRICS_LIMITS, MetricsEndpoint
 from brimline.daemon.net.publisher import PUBLISH_LIMITS, STATUS_LIMITS, check_publish_settings
 from brimline.drivers.air.channel import check_interferer_window
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
@@ -92,6 +93,7 @@ def _keyword_defaults(cls) -> dict[str, Any]:
 
 
 _EST = _keyword_defaults(Estimator)
+_MET = _keyword_defaults(MetricsEndpoint)
 _CHG = _keyword_defaults(ChangeControl)
 
 #: Frame detection threshold of the receiver, a fraction of the sync metric's peak of 1.
@@ -674,6 +676,30 @@ class StatusSection(Section):
         return STATUS_LIMITS[info.field_name].check(info.field_name, v)
 
 
+class MetricsSection(Section):
+    """``metrics:`` the optional Prometheus endpoint (``brimline.daemon.net.metrics``).
+
+    ``host`` and ``port`` are the keyword arguments of ``MetricsEndpoint`` (defaults and limits
+    from there); ``enabled`` turns it on, which needs the ``metrics`` extra installed.
+    """
+
+    enabled: bool = Field(False, description="serve /metrics over HTTP (needs the metrics extra)")
+    host: str = Field(_MET["host"], description="address to bind; loopback unless firewalled")
+    port: int = Field(_MET["port"], description="TCP port (0: any free port)")
+
+    @field_validator(*METRICS_LIMITS)
+    @classmethod
+    def _within_limits(cls, v, info):
+        return METRICS_LIMITS[info.field_name].check(info.field_name, v)
+
+    @field_validator("host")
+    @classmethod
+    def _host_ok(cls, v: str) -> str:
+        if not v or any(c.isspace() for c in v) or "/" in v:
+            raise ValueError(f"host={v!r} must be an address such as 127.0.0.1")
+        return v
+
+
 class RecordSection(Section):
     """``record:`` what the daemon records, and where.
 
@@ -768,6 +794,7 @@ class Config(Section):
     change: ChangeSection = Field(default_factory=ChangeSection)
     publish: PublishSection = Field(default_factory=PublishSection)
     status: StatusSection = Field(default_factory=StatusSection)
+    metrics: MetricsSection = Field(default_factory=MetricsSection)
     record: RecordSection = Field(default_factory=RecordSection)
     fallback: FallbackSection = Field(default_factory=FallbackSection)
     service: ServiceSection = Field(default_factory=ServiceSection)

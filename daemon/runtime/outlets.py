@@ -1,4 +1,5 @@
-"""The daemon's outlets on the main thread: map and status publishers, state file, recorder.
+"""The daemon's outlets on the main thread: map and status publishers, state file, recorder,
+and the optional metrics endpoint (fed each status message as it is published).
 
 :class:`Outlets` holds the protocol objects the service's loop talks to, behind the few calls it
 needs, and keeps the rule that a recording which cannot be written never stops the maps: the
@@ -13,10 +14,12 @@ import logging
 import zmq
 
 from brimline.daemon.errors import BrimlineError, RecordingError
+from brimline.daemon.net.metrics import MetricsEndpoint
 from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
 from brimline.daemon.records import LoadMap
 from brimline.daemon.runtime.assemble import open_recorder, open_state
 from brimline.daemon.runtime.config import Config
+from brimline.daemon.runtime.status import ALARMS
 from brimline.daemon.wire.recording import recording_epoch
 from brimline.daemon.wire.state import new_epoch
 
@@ -50,6 +53,7 @@ class Outlets:
         self.status = None
         self.state = None
         self.recorder = None
+        self.metrics: MetricsEndpoint | None = None
         self._record_path = config.record.path
         self._record_error: str | None = None
         self._closed = False
@@ -61,6 +65,9 @@ class Outlets:
             self.status = StatusPublisher(context=context, curve=self.maps.curve,
                                           **config.status.model_dump())
             self.recorder = open_recorder(config, plan)
+            if config.metrics.enabled:
+                self.metrics = MetricsEndpoint(host=config.metrics.host,
+                                               port=config.metrics.port, alarms=ALARMS)
         except BaseException:
             self.close(None)
             raise
@@ -114,8 +121,17 @@ class Outlets:
         return self.maps.protocol_errors
 
     def endpoints(self) -> dict[str, str]:
-        return {"maps": self.maps.map_endpoint, "snapshots": self.maps.snapshot_endpoint,
-                "acks": self.maps.ack_endpoint, "status": self.status.endpoint}
+        out = {"maps": self.maps.map_endpoint, "snapshots": self.maps.snapshot_endpoint,
+               "acks": self.maps.ack_endpoint, "status": self.status.endpoint}
+        if self.metrics is not None:
+            out["metrics"] = self.metrics.url
+        return out
+
+    def publish_status(self, status: dict) -> None:
+        """Send ``status`` on the status stream and hand the same dict to the metrics endpoint."""
+        self.status.publish(status)
+        if self.metrics is not None:
+            self.metrics.update(status)
 
     # -- recording: a failure stops the recording, never the maps
     def record(self, topic: str, record, frames=None) -> None:
@@ -161,6 +177,6 @@ class Outlets:
                 self.recorder.close()
             except (BrimlineError, OSError) as exc:
                 log.error("recording not closed cleanly: %s", exc)
-        for obj in (self.status, self.maps):
+        for obj in (self.metrics, self.status, self.maps):
             if obj is not None:
                 obj.close()

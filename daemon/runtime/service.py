@@ -436,7 +436,7 @@ class Service:
     def publish_status(self) -> dict:
         """Build, publish and record one status message now; returns it."""
         st = self.status()
-        self._io.status.publish(st)
+        self._io.publish_status(st)
         self._io.record(codec.TOPIC_STATUS, st)
         self.last_status = st
         log.debug("status %s", summary_line(st))

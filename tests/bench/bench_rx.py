@@ -22,9 +22,9 @@ from brimline.drivers.link.frame import Transmitter, make_plan
 from brimline.drivers.link.receiver import Receiver
 
 GOALS = {
-    "rx_msps": ">= 40 Msample/s per core",
+    "rx_msps": ">= 45 Msample/s per core",
     "rx_msps_vs_ref": "Msamples per reference time (higher is better)",
-    "rx_vs_fft": "<= 4 x bare FFT time",
+    "rx_vs_fft": "<= 3.5 x bare FFT time",
     "rx_demod_vs_fft": "informational: estimates plus final data decisions",
     "snr_rmse_db_20": "raw per-tone estimate, one frame (lower is better)",
 }
