@@ -50,22 +50,27 @@ import math
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Mapping, Sequence
+from typing import Any, Callable, Iterator, Mapping, Sequence
 
 import numpy as np
+import zmq
 
-from brimline.daemon.core.controller import REJECTED, LinkController, Step
+from brimline.daemon.core.controller import LinkController, Step
 from brimline.daemon.errors import InputError, RecordingError, SourceError
+from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
 from brimline.daemon.records import Estimate, LoadMap
 from brimline.daemon.runtime.assemble import build_controller, build_core
 from brimline.daemon.runtime.config import Config, config_with, load_config
+from brimline.daemon.runtime.status import build_status, controller_fields
 from brimline.daemon.wire.codec import TOPIC_ESTIMATE
+from brimline.daemon.wire.export import ExportTables
 from brimline.daemon.wire.recording import RecordReader, recording_epoch, recording_paths
 from brimline.drivers.sources.iq import IqDriver
 from brimline.drivers.sources.replay import ReplayDriver
 
 __all__ = ["Window", "MapEvent", "Timeline", "OfflineSummary", "OfflineResult", "Divergence",
-           "Comparison", "replay_offline", "compare_results", "recording_kind"]
+           "Comparison", "replay_offline", "compare_results", "recording_kind", "source_epoch",
+           "result_tables", "result_lines", "ReplayPublisher"]
 
 _SIGMF_SUFFIXES = (".sigmf-meta", ".sigmf-data")
 _ESTIMATE_TOPIC = TOPIC_ESTIMATE.encode("ascii")
@@ -331,6 +336,23 @@ def _sigmf_epoch(path: Path) -> str:
     return hashlib.sha256(blob).hexdigest()[:16]
 
 
+def source_epoch(path: str | Path) -> str:
+    """The epoch an offline run of ``path`` gives its maps (16 hex digits, from the recording).
+
+    Raises
+    ------
+    SourceError
+        When the recording cannot be read.
+    """
+    p = Path(path)
+    if recording_kind(p) == "iq":
+        return _sigmf_epoch(p)
+    try:
+        return recording_epoch(p)
+    except RecordingError as exc:
+        raise SourceError(f"replay: {exc}") from None
+
+
 def _open_source(config: Config, plan, path: Path):
     """The driver for ``path``, its kind and the epoch its maps carry."""
     kind = recording_kind(path)
@@ -340,10 +362,10 @@ def _open_source(config: Config, plan, path: Path):
         return IqDriver(plan=plan, **settings), kind, _sigmf_epoch(path)
     driver = ReplayDriver(path=path)
     try:
-        epoch = recording_epoch(path)
-    except RecordingError as exc:
+        epoch = source_epoch(path)
+    except SourceError:
         driver.close()
-        raise SourceError(f"replay: {exc}") from None
+        raise
     return driver, kind, epoch
 
 
@@ -604,7 +626,8 @@ class Comparison:
 def compare_results(a: OfflineResult, b: OfflineResult) -> Comparison:
     """Find where two runs of one recording first decided differently.
 
-    A step differs when its kind or reason differs, when the maps it published differ (kind,
+    A step differs when its kind differs, or its reason for any kind but ``keep`` (whose
+    reason only quotes figures), when the maps it published differ (kind,
     reason, bits or power of each, or their number: a step may publish a fallback map and a
     normal one), or when the rate or fallback state after it differs. Runs over different
     estimates are compared up to the shorter one.
@@ -627,7 +650,8 @@ def compare_results(a: OfflineResult, b: OfflineResult) -> Comparison:
                | (ta.frame[:n] != tb.frame[:n]))
     first = int(np.argmax(differs)) if differs.any() else n
     for i in range(first):
-        if ta.kind[i] != tb.kind[i] or ta.reason[i] != tb.reason[i]:
+        # A keep's reason only reports figures (the worst margin seen): not a decision.
+        if ta.kind[i] != tb.kind[i] or (ta.kind[i] != "keep" and ta.reason[i] != tb.reason[i]):
             first = i
             break
     pick: tuple[str, str, str, str] | None = None
@@ -657,3 +681,150 @@ def _same_map(a: OfflineResult, b: OfflineResult, k: int) -> bool:
     ea, eb, ma, mb = a.events[k], b.events[k], a.maps[k], b.maps[k]
     return (ea.index == eb.index and ea.kind == eb.kind and ea.reason == eb.reason
             and np.array_equal(ma.bits, mb.bits) and np.array_equal(ma.power_lin, mb.power_lin))
+
+
+# --------------------------------------------------------------------------- outputs
+
+
+def result_tables(result: OfflineResult) -> ExportTables:
+    """The export tables of a run (:mod:`brimline.daemon.wire.export`)."""
+    tl = result.timeline
+    estimates = {"frame": tl.frame, "time_s": tl.time_s}
+    if result.snr_db is not None:
+        estimates["snr_db"] = result.snr_db
+    n = result.tone_index.size
+    maps = {
+        "seq": [m.seq for m in result.maps], "frame": [e.frame for e in result.events],
+        "time_s": [e.time_s for e in result.events], "kind": [e.kind for e in result.events],
+        "reason": [e.reason for e in result.events],
+        "effective_frame": [m.effective_frame for m in result.maps],
+        "total_bits": [m.total_bits for m in result.maps],
+        "margin_db": [m.margin_db for m in result.maps],
+        "gap_db": [m.gap_db for m in result.maps],
+        "fallback": [m.fallback for m in result.maps],
+        "bits": (np.vstack([m.bits for m in result.maps]) if result.maps
+                 else np.zeros((0, n), np.uint8)),
+        "power_lin": (np.vstack([m.power_lin for m in result.maps]) if result.maps
+                      else np.zeros((0, n), np.float32)),
+    }
+    decisions = {"frame": tl.frame, "time_s": tl.time_s, "kind": list(tl.kind),
+                 "reason": list(tl.reason), "bits_per_symbol": tl.bits_per_symbol,
+                 "margin_db": tl.margin_db, "live_margin_db": tl.live_margin_db, "seq": tl.seq,
+                 "fallback": tl.fallback}
+    return ExportTables(tone_index=result.tone_index, estimates=estimates, decisions=decisions,
+                        maps=maps)
+
+
+def result_lines(result: OfflineResult) -> Iterator[dict]:
+    """The JSON Lines of a run: a ``run`` line, then in order a ``decision`` line for every
+    step that was not a plain keep (rejections included) and a ``map`` line for every map,
+    then a ``summary`` line. Nothing in them depends on the wall clock."""
+    yield {"type": "run", "source": result.source, "source_kind": result.source_kind,
+           "epoch": result.epoch, "plan_id": result.plan_id, "settings": list(result.settings),
+           "tone_index": result.tone_index}
+    tl = result.timeline
+    by_index: dict[int, list[int]] = {}
+    for k, e in enumerate(result.events):
+        by_index.setdefault(e.index, []).append(k)
+    for i in range(len(tl)):
+        if tl.kind[i] == "keep" and i not in by_index:
+            continue
+        yield {"type": "decision", "frame": int(tl.frame[i]), "time_s": float(tl.time_s[i]),
+               "kind": tl.kind[i], "reason": tl.reason[i]}
+        for k in by_index.get(i, ()):
+            e, m = result.events[k], result.maps[k]
+            yield {"type": "map", "frame": e.frame, "time_s": e.time_s, "kind": e.kind,
+                   "reason": e.reason, "seq": m.seq, "epoch": m.epoch,
+                   "effective_frame": m.effective_frame, "total_bits": m.total_bits,
+                   "margin_db": m.margin_db, "gap_db": m.gap_db, "fallback": m.fallback,
+                   "bits": m.bits, "power_lin": m.power_lin}
+    yield {"type": "summary", **result.summary.as_dict()}
+
+
+class ReplayPublisher:
+    """Publishes an offline run on the daemon's sockets, so followers and ``brimline watch``
+    can attach: maps, heartbeats and snapshots (``publish:``), status (``status:``).
+
+    Pass :meth:`on_step` as ``replay_offline(..., on_step=...)``. Runs on the caller's thread
+    (the sockets stay on it). The epoch must be the run's (:func:`source_epoch`).
+
+    Parameters
+    ----------
+    config : Config
+        Validated configuration (its ``publish`` and ``status`` sections).
+    epoch : str
+        The run's epoch.
+    context : zmq.Context, optional
+        Context for the sockets; by default one is made and terminated at :meth:`close`.
+    clock : callable
+        Monotonic clock for heartbeats and the status period.
+    """
+
+    def __init__(self, config: Config, epoch: str, *, context=None,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        self._own = context is None
+        self._context = zmq.Context() if context is None else context
+        self._clock = clock
+        self._config = config
+        self.plan = None
+        self.maps = self.status = None
+        self._closed = False
+        self._controller: LinkController | None = None
+        try:
+            self.maps = MapPublisher(context=self._context, epoch=epoch,
+                                     **config.publish.model_dump())
+            self.status = StatusPublisher(context=self._context, curve=self.maps.curve,
+                                          **config.status.model_dump())
+        except BaseException:
+            self.close()
+            raise
+        self.epoch = epoch
+        self._symbol_rate_hz = config.link.sample_rate_hz / (config.link.fft_size
+                                                             + config.link.cp_len)
+
+    def endpoints(self) -> dict[str, str]:
+        """The bound endpoints (ports resolved)."""
+        return {"maps": self.maps.map_endpoint, "snapshots": self.maps.snapshot_endpoint,
+                "acks": self.maps.ack_endpoint, "status": self.status.endpoint}
+
+    def on_step(self, step: Step, estimate: Estimate, controller: LinkController) -> None:
+        """Send the step's maps; heartbeats, snapshot replies and status when due."""
+        self._controller = controller
+        for m in step.maps:
+            self.maps.publish(m)
+        self.service(estimate.time_s)
+
+    def service(self, time_s: float) -> None:
+        """Heartbeat, answer snapshot requests, drain acks, status when due."""
+        wall = self._clock()
+        self.maps.tick(wall)
+        if self.maps.snapshot_socket is not None:
+            self.maps.handle_snapshot()
+        if self.maps.ack_socket is not None:
+            self.maps.poll_acks()
+        if self._controller is not None and self.status.due(wall):
+            self.status.publish(self._status(time_s))
+
+    def _status(self, time_s: float) -> dict:
+        return build_status(time_s=time_s, epoch=self.epoch,
+                            driver={"name": "replay", "state": "running", "error": None,
+                                    "counters": {}},
+                            symbol_rate_hz=self._symbol_rate_hz,
+                            **controller_fields(self._controller, time_s))
+
+    def close(self) -> None:
+        """Close the sockets (and the context if made here). Idempotent."""
+        if self._closed:
+            return
+        self._closed = True
+        for obj in (self.status, self.maps):
+            if obj is not None:
+                obj.close()
+        if self._own:
+            self._context.term()
+
+    def __enter__(self) -> "ReplayPublisher":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
