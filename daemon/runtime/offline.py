@@ -468,7 +468,7 @@ def replay_offline(config: Config | str | Path | None, recording_path: str | Pat
     events: list[MapEvent] = []
     header_errors = 0
     done = 0
-    live_cache: tuple[int, Any, float] = (-1, None, math.nan)  # (seq, tracked, margin)
+    live_map: tuple[Any, Any] = (None, None)  # (map in force, its margins at 0 dB SNR)
     with driver:
         for est in driver.frames():
             done += 1
@@ -504,9 +504,9 @@ def replay_offline(config: Config | str | Path | None, recording_path: str | Pat
                 rate.append(cur.total_bits)
                 margin.append(cur.margin_db)
                 tracked = controller.last_tracked
-                if live_cache[0] != cur.seq or live_cache[1] is not tracked:
-                    live_cache = (cur.seq, tracked, _live_margin_db(loader, cur, tracked))
-                live.append(live_cache[2])
+                if live_map[0] is not cur:
+                    live_map = (cur, _margin_at_0db(loader, cur))
+                live.append(_live_margin_db(live_map[1], cur, tracked))
                 seqs.append(cur.seq)
                 fb.append(cur.fallback)
             if keep_snr:
@@ -533,13 +533,23 @@ def replay_offline(config: Config | str | Path | None, recording_path: str | Pat
                          summary=summary, snr_db=snr)
 
 
-def _live_margin_db(loader, m: LoadMap, tracked) -> float:
+def _margin_at_0db(loader, m: LoadMap) -> tuple[np.ndarray, np.ndarray] | None:
+    """The loaded tones of map ``m`` and their margins at an SNR of 0 dB (the loader's rule,
+    :meth:`Loader.tone_margin_db`): a tone's margin at SNR ``s`` dB is this plus ``s``, so a
+    frame costs one addition and one minimum. None when nothing is loaded."""
+    loaded = np.flatnonzero(m.bits > 0)
+    if loaded.size == 0:
+        return None
+    at_0db = loader.tone_margin_db(m.bits[loaded], m.power_lin[loaded], np.ones(loaded.size))
+    return loaded, at_0db
+
+
+def _live_margin_db(at_0db, m: LoadMap, tracked) -> float:
     """Smallest per-tone margin of map ``m`` under the tracked SNR, dB (NaN if unknown)."""
-    if tracked is None or tracked.plan_id != m.plan_id or m.total_bits == 0:
+    if at_0db is None or tracked is None or tracked.plan_id != m.plan_id:
         return math.nan
-    snr_lin = 10.0 ** (tracked.snr_db / 10.0)
-    margins = loader.tone_margin_db(m.bits, m.power_lin, snr_lin)
-    return float(np.min(margins))
+    loaded, base = at_0db
+    return float(np.min(base + tracked.snr_db[loaded]))
 
 
 def _stat(values: np.ndarray, how) -> float | None:
