@@ -73,3 +73,11 @@ def test_waterfall_bins_average_consecutive_frames():
     assert rows[0].tolist() == [1.0, 2.0]  # mean of frames 0 and 1
     _, low = waterfall_rows(t, v, max_rows=5, how="min")
     assert low[0].tolist() == [0.0, 1.0]
+
+
+def test_a_stretch_without_frames_is_a_gap_row():
+    t = np.array([0.0, 0.1, 0.2, 1.0, 1.1])
+    v = np.ones((5, 2))
+    edges, rows = waterfall_rows(t, v)
+    assert np.isnan(rows[3]).all() and rows.shape == (6, 2)
+    assert edges.tolist() == pytest.approx([0.0, 0.1, 0.2, 0.3, 1.0, 1.1, 1.2])

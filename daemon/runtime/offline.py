@@ -212,7 +212,8 @@ class OfflineSummary:
     maps : int
         Maps published.
     changes_per_min : float or None
-        Maps per minute of recording time (None for a recording shorter than one frame).
+        Maps per minute of recording time (None for a run shorter than 1 s: too short to
+        say).
     rate_mean_bits, rate_min_bits, rate_max_bits : float or None
         Bits per OFDM symbol of the map in force, over the frames that had one.
     rate_mean_bps : float or None
@@ -575,7 +576,7 @@ def _summarise(tl: Timeline, c: LinkController, counters: dict, header_errors: i
         frames=n, accepted=int(c.accepted), rejected=dict(sorted(c.rejected.items())),
         source_counters=dict(sorted(counters.items())), header_errors=int(header_errors),
         duration_s=duration, maps_by_kind=dict(sorted(c.maps_published.items())), maps=maps,
-        changes_per_min=maps / (duration / 60.0) if duration > 0 else None,
+        changes_per_min=maps / (duration / 60.0) if duration >= 1.0 else None,
         rate_mean_bits=mean_bits, rate_min_bits=_stat(rates, np.min),
         rate_max_bits=_stat(rates, np.max),
         rate_mean_bps=None if mean_bits is None else mean_bits * symbol_rate_hz,

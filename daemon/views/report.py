@@ -65,6 +65,7 @@ def waterfall_rows(time_s: np.ndarray, values: np.ndarray, max_rows: int = _MAX_
     times : ndarray, (R + 1,)
         Bin edges in time, s (for ``pcolormesh``).
     rows : ndarray, (R, T)
+        A stretch without frames (longer than two usual bins) is one row of NaN.
     """
     t = np.asarray(time_s, dtype=np.float64)
     v = np.asarray(values, dtype=np.float64)
@@ -80,6 +81,14 @@ def waterfall_rows(time_s: np.ndarray, values: np.ndarray, max_rows: int = _MAX_
     step = float(np.median(np.diff(t))) if n > 1 else 1.0
     starts = t[edges[:-1]]
     tedges = np.append(starts, t[-1] + step)
+    # A stretch without frames (over twice the usual bin) becomes a row of NaN, drawn as a
+    # gap, instead of the bin before it stretching across.
+    usual = float(np.median(np.diff(tedges))) if tedges.size > 1 else step
+    wide = np.flatnonzero(np.diff(tedges) > 2.0 * max(usual, step))
+    if wide.size:
+        ends = tedges[wide] + max(usual, step)
+        tedges = np.insert(tedges, wide + 1, ends)
+        rows = np.insert(rows, wide + 1, np.nan, axis=0)
     return tedges, rows
 
 
@@ -211,20 +220,21 @@ def render_report(result: OfflineResult, path: str | Path, *, at_s: float | None
     tedges, snr_rows = waterfall_rows(t, result.snr_db, how="mean")
     finite = snr_rows[np.isfinite(snr_rows)]
     lo, hi = (np.percentile(finite, [1, 99]) if finite.size else (0.0, 1.0))
-    mesh = ax_snr.pcolormesh(tedges, _tone_edges(tones), snr_rows.T, cmap="cividis",
+    snr_cmap = matplotlib.colormaps["cividis"].with_extremes(bad="#ffffff")
+    mesh = ax_snr.pcolormesh(tedges, _tone_edges(tones), snr_rows.T, cmap=snr_cmap,
                              vmin=lo, vmax=hi, shading="flat", rasterized=True)
     fig.colorbar(mesh, ax=ax_snr, label="SNR (dB)", pad=0.01)
-    ax_snr.set_title("Per-tone SNR of the estimates")
+    ax_snr.set_title("Per-tone SNR of the estimates (white: no estimates)")
     ax_snr.set_ylabel("tone index (signed FFT bin)")
     ax_snr.set_xlabel("time (s)")
 
     # 2. Bits per tone of the map in force.
     bits = _map_per_frame(result, "bits")
-    _, bit_rows = waterfall_rows(t, bits, how="min")
+    bit_edges, bit_rows = waterfall_rows(t, bits, how="min")
     bit_rows[np.isinf(bit_rows)] = np.nan
     top = int(np.nanmax(bits)) if np.isfinite(bits).any() else 1
-    cmap = matplotlib.colormaps["viridis"].resampled(top + 1)
-    mesh = ax_bits.pcolormesh(tedges, _tone_edges(tones), bit_rows.T, cmap=cmap,
+    cmap = matplotlib.colormaps["viridis"].resampled(top + 1).with_extremes(bad="#ffffff")
+    mesh = ax_bits.pcolormesh(bit_edges, _tone_edges(tones), bit_rows.T, cmap=cmap,
                               vmin=-0.5, vmax=top + 0.5, shading="flat", rasterized=True)
     fig.colorbar(mesh, ax=ax_bits, label="bits per tone", pad=0.01,
                  ticks=range(0, top + 1, max(1, (top + 1) // 5)))
@@ -267,8 +277,8 @@ def render_report(result: OfflineResult, path: str | Path, *, at_s: float | None
     if tl.fallback.any():
         handles.append(Patch(color="#bbbbbb", alpha=0.6))
         labels.append("fallback map in force")
-    ax_rate.legend(handles + h2, labels + l2, loc="lower left", fontsize=8, ncols=4,
-                   framealpha=0.9)
+    ax_rate.legend(handles + h2, labels + l2, loc="upper center", bbox_to_anchor=(0.5, -0.2),
+                   fontsize=8, ncols=8, frameon=False)
     s = result.summary
     ax_rate.set_title(f"Rate and margin: {s.maps} maps "
                       f"({', '.join(f'{k} {v}' for k, v in s.maps_by_kind.items()) or 'none'}), "
