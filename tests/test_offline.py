@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import math
+import pickle
 from pathlib import Path
 
 import numpy as np
@@ -127,6 +128,14 @@ class TestReplayOffline:
                        clock=lambda: now[0])
         # 10 frames 20 ms apart (0 to 0.18 s) at twice the speed: 90 ms of waiting.
         assert len(waits) == 9 and sum(waits) == pytest.approx(0.18 / 2.0)
+
+    def test_result_survives_pickling(self):
+        """Sweep tasks return results from worker processes: the result must pickle."""
+        r = replay_offline(CONFIG, DEMO, window=Window(stop_s=4.5), keep_snr=True)
+        back = pickle.loads(pickle.dumps(r))
+        assert back.summary == r.summary and back.events == r.events
+        assert np.array_equal(back.maps[-1].bits, r.maps[-1].bits)
+        assert np.array_equal(back.snr_db, r.snr_db)
 
     def test_iq_capture_goes_through_the_receiver(self):
         r = replay_offline(None, ROOT / "replay" / "link-demo.sigmf-meta")
