@@ -143,3 +143,24 @@ def test_published_maps_reach_a_subscriber(ctx):
         sub.close()
     assert [m.seq for m in got] == [m.seq for m in result.maps]
     assert np.array_equal(got[-1].bits, result.maps[-1].bits)
+
+
+def test_publisher_keeps_heartbeats_going_while_pacing_waits(ctx):
+    config = load_config(CONFIG, overrides=["publish.map_endpoint=tcp://127.0.0.1:0",
+                                            "publish.snapshot_endpoint=tcp://127.0.0.1:0",
+                                            "publish.ack_endpoint=null",
+                                            "publish.heartbeat_s=0.1",
+                                            "status.endpoint=tcp://127.0.0.1:0"])
+    now = [0.0]
+
+    def sleep(s):
+        now[0] += s
+
+    with ReplayPublisher(config, "e" * 16, context=ctx, clock=lambda: now[0],
+                         sleep=sleep) as pub:
+        beats = []
+        send = pub.maps.heartbeat
+        pub.maps.heartbeat = lambda t: (beats.append(t), send(t))
+        pub.wait(1.0)
+    assert now[0] == pytest.approx(1.0)
+    assert 8 <= len(beats) <= 12  # every 0.1 s of the fake clock while waiting

@@ -210,6 +210,7 @@ def run(args: argparse.Namespace) -> int:
         config = load_config(args.config, overrides=args.overrides)
         publisher = ReplayPublisher(config, source_epoch(args.recording))
         extra["on_step"] = publisher.on_step
+        extra["sleep"] = publisher.wait
         ends = publisher.endpoints()
         print(f"publishing maps on {ends['maps']}, status on {ends['status']}", file=sys.stderr,
               flush=True)

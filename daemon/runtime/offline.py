@@ -756,7 +756,8 @@ class ReplayPublisher:
     """Publishes an offline run on the daemon's sockets, so followers and ``brimline watch``
     can attach: maps, heartbeats and snapshots (``publish:``), status (``status:``).
 
-    Pass :meth:`on_step` as ``replay_offline(..., on_step=...)``. Runs on the caller's thread
+    Pass :meth:`on_step` as ``replay_offline(..., on_step=...)`` and, for a paced run,
+    :meth:`wait` as its ``sleep``. Runs on the caller's thread
     (the sockets stay on it). The epoch must be the run's (:func:`source_epoch`).
 
     Parameters
@@ -767,13 +768,16 @@ class ReplayPublisher:
         The run's epoch.
     context : zmq.Context, optional
         Context for the sockets; by default one is made and terminated at :meth:`close`.
-    clock : callable
-        Monotonic clock for heartbeats and the status period.
+    clock, sleep : callable
+        Monotonic clock for heartbeats and the status period; sleep of :meth:`wait`.
     """
 
     def __init__(self, config: Config, epoch: str, *, context=None,
-                 clock: Callable[[], float] = time.monotonic) -> None:
+                 clock: Callable[[], float] = time.monotonic,
+                 sleep: Callable[[float], None] = time.sleep) -> None:
         self._own = context is None
+        self._sleep = sleep
+        self._last_time_s = 0.0
         self._context = zmq.Context() if context is None else context
         self._clock = clock
         self._config = config
@@ -805,8 +809,20 @@ class ReplayPublisher:
             self.maps.publish(m)
         self.service(estimate.time_s)
 
+    def wait(self, seconds: float) -> None:
+        """Pacing's sleep while publishing: heartbeats, snapshots and status go on during a
+        long pause (a silent stretch of the recording), in slices of at most 50 ms."""
+        end = self._clock() + max(0.0, float(seconds))
+        while True:
+            left = end - self._clock()
+            if left <= 0:
+                return
+            self._sleep(min(left, 0.05))
+            self.service(self._last_time_s)
+
     def service(self, time_s: float) -> None:
         """Heartbeat, answer snapshot requests, drain acks, status when due."""
+        self._last_time_s = time_s
         wall = self._clock()
         self.maps.tick(wall)
         if self.maps.snapshot_socket is not None:
