@@ -10,7 +10,14 @@ import pytest
 from brimline.daemon.core.change import ChangeControl
 from brimline.daemon.core.estimator import Estimator
 from brimline.daemon.errors import ConfigError
-from brimline.daemon.runtime.config import ChangeSection, EstimatorSection, load_config, read_yaml
+from brimline.daemon.runtime.config import (
+    ChangeSection,
+    EstimatorSection,
+    apply_overrides,
+    config_with,
+    load_config,
+    read_yaml,
+)
 
 
 def _write(tmp_path, text):
@@ -296,3 +303,37 @@ def test_cross_field_and_value_checks_name_key_value_and_line(tmp_path, text, ma
 ])
 def test_edge_values_that_are_fine(tmp_path, text):
     load_config(_write(tmp_path, text))
+
+
+class TestOverrides:
+    """--set KEY=VALUE: applied to the YAML mapping before validation (config.apply_overrides)."""
+
+    def test_typed_values_and_new_sections(self):
+        data = {"estimator": {"tau_s": 1.0}}
+        out, lines = apply_overrides(data, ["estimator.tau_s=2.5e-1", "loading.bits=[0, 2, 4]",
+                                            "loading.gap_db=null", "change.down_deep_db=.inf"],
+                                     {("estimator",): 1, ("estimator", "tau_s"): 2})
+        assert data == {"estimator": {"tau_s": 1.0}}  # the input is not changed
+        assert out["estimator"]["tau_s"] == 0.25 and out["loading"]["bits"] == [0, 2, 4]
+        assert out["loading"]["gap_db"] is None and out["change"]["down_deep_db"] == float("inf")
+        assert lines[("estimator", "tau_s")] == "--set estimator.tau_s=2.5e-1"
+        assert lines[("estimator",)] == 1
+
+    def test_errors_name_the_override_not_a_line(self, tmp_path):
+        path = _write(tmp_path, "estimator:\n  tau_s: 1.0\n")
+        with pytest.raises(ConfigError, match=r"^--set estimator.tau_s=0: estimator.tau_s=0: "):
+            load_config(path, overrides=["estimator.tau_s=0"])
+        with pytest.raises(ConfigError, match=r"^--set estimator=3: estimator=3: "):
+            load_config(path, overrides=["estimator=3"])
+
+    def test_later_override_wins_and_defaults_without_a_file(self):
+        cfg = load_config(None, overrides=["estimator.tau_s=2", "estimator.tau_s=3"])
+        assert cfg.estimator.tau_s == 3.0
+        assert load_config(None).estimator == EstimatorSection()
+
+    def test_config_with_revalidates(self, tmp_path):
+        cfg = load_config(None)
+        assert config_with(cfg, {"estimator.tau_s": 0.5}).estimator.tau_s == 0.5
+        assert config_with(cfg, ()) is cfg
+        with pytest.raises(ConfigError, match=r"--set fallback.power_db=9.0: fallback.power_db"):
+            config_with(cfg, {"fallback.power_db": 9.0})

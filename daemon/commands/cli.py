@@ -33,6 +33,8 @@ _COMMANDS = {
     "run": "run the daemon: estimates in, maps and status out",
     "watch": "live terminal view of a running daemon's status stream",
     "keys": "create CURVE key pairs for encrypted map and status sockets",
+    "replay": "replay a recording through the decision path offline (summary, what-if, exports)",
+    "report": "pictures of a replayed recording: SNR, bits, rate and margin (PNG, PDF, HTML)",
 }
 
 

@@ -79,6 +79,9 @@ __all__ = [
     "MAX_YAML_NODES",
     "MAX_CONFIG_BYTES",
     "parse_section",
+    "parse_override",
+    "apply_overrides",
+    "config_with",
 ]
 
 
@@ -1047,16 +1050,22 @@ def read_yaml(path: str | Path) -> tuple[dict, dict[tuple, int]]:
     return data, lines
 
 
-def _at(where: str, lines: dict[tuple, int], loc: tuple) -> str:
-    """``where`` plus the line of the deepest key of ``loc`` that exists in the file."""
+def _at(where: str, lines: dict[tuple, int | str], loc: tuple) -> str:
+    """``where`` plus the line of the deepest key of ``loc`` that exists in the file.
+
+    A key set by an override (:func:`apply_overrides`) has the override's text in ``lines``
+    instead of a line number; the place is then that text (``--set loading.gap_db=x``).
+    """
     for n in range(len(loc), 0, -1):
         line = lines.get(loc[:n])
+        if isinstance(line, str):
+            return line
         if line is not None:
             return f"{where} line {line}"
     return where
 
 
-def _explain(exc: ValidationError, where: str, lines: dict[tuple, int],
+def _explain(exc: ValidationError, where: str, lines: dict[tuple, int | str],
              prefix: tuple = ()) -> ConfigError:
     err = exc.errors()[0]
     loc = prefix + tuple(str(x) for x in err["loc"])
@@ -1088,13 +1097,16 @@ def parse_section(model: type[Section], data: Any, *, where: str, name: str,
         raise _explain(exc, where, lines or {}, (name,)) from None
 
 
-def load_config(path: str | Path) -> Config:
-    """Read and validate a daemon config file.
+def load_config(path: str | Path | None, *, overrides: Any = ()) -> Config:
+    """Read and validate a daemon config file, with optional overrides of single keys.
 
     Parameters
     ----------
-    path : str or Path
-        YAML file with the sections of :class:`Config`.
+    path : str or Path or None
+        YAML file with the sections of :class:`Config`; None: every key at its default.
+    overrides : sequence of str, or mapping
+        ``"KEY=VALUE"`` strings or ``{KEY: value}`` (see :func:`apply_overrides`), applied to
+        the file's mapping before validation, so the config's own checks judge them.
 
     Returns
     -------
@@ -1104,14 +1116,142 @@ def load_config(path: str | Path) -> Config:
     Raises
     ------
     ConfigError
-        One line naming the file, line, key path and value of the first problem.
+        One line naming the file, line, key path and value of the first problem; for a key
+        set by an override, the override (``--set KEY=VALUE``) instead of the line.
+
+    Notes
+    -----
+    Relative file paths (also those given by an override) are taken relative to the config
+    file's folder, or to the working folder when ``path`` is None.
     """
-    data, lines = read_yaml(path)
+    if path is None:
+        data, lines, where, base = {}, {}, "defaults", Path(".")
+    else:
+        data, lines = read_yaml(path)
+        where, base = str(path), Path(path).parent
+    data, lines = apply_overrides(data, overrides, lines)
     try:
         config = Config.model_validate(data)
     except ValidationError as exc:
-        raise _explain(exc, str(path), lines) from None
-    return _resolve_paths(config, Path(path).parent)
+        raise _explain(exc, where, lines) from None
+    return _resolve_paths(config, base)
+
+
+_KEY_PART = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$|^[0-9]+$")
+
+
+def parse_override(text: str) -> tuple[tuple[str, ...], Any]:
+    """Split ``"KEY=VALUE"`` into the dotted key's path and the value read as YAML.
+
+    The value is read with :class:`GuardedLoader` (YAML 1.2 floats: ``1e-6`` is a number;
+    ``[0, 2, 4]`` a list; ``null`` None; ``.inf`` infinity); an empty value is None.
+
+    Raises
+    ------
+    ConfigError
+        No ``=``, an empty or malformed key (``--set KEY=VALUE`` named), or a value YAML
+        cannot read.
+    """
+    key, eq, value = str(text).partition("=")
+    key = key.strip()
+    parts = tuple(key.split("."))
+    if not eq or not key or not all(_KEY_PART.match(p) for p in parts):
+        raise ConfigError(f"--set {text!r}: expected KEY=VALUE with KEY a dotted config key "
+                          f"such as estimator.tau_s=0.5")
+    try:
+        parsed, _lines = _load_guarded(value) if value.strip() else (None, {})
+    except yaml.YAMLError as exc:
+        problem = " ".join(str(getattr(exc, "problem", None) or exc).split())
+        raise ConfigError(f"--set {key}={value}: value is not valid YAML: {problem}") from None
+    return parts, parsed
+
+
+def apply_overrides(data: dict, overrides: Any,
+                    lines: dict[tuple, int | str] | None = None
+                    ) -> tuple[dict, dict[tuple, int | str]]:
+    """A copy of a config's YAML mapping with single keys replaced, before validation.
+
+    Parameters
+    ----------
+    data : dict
+        The mapping read from a config file (not changed).
+    overrides : sequence of str, or mapping
+        ``"KEY=VALUE"`` strings (:func:`parse_override`) or a mapping of dotted key to an
+        already-typed value. A missing section on the way is created (``driver.iq.path=x``
+        with no ``iq:`` section); later overrides win.
+    lines : dict, optional
+        The file's key-path -> line table (:func:`read_yaml`).
+
+    Returns
+    -------
+    data : dict
+        The new mapping.
+    lines : dict
+        The line table with each overridden key (and everything below it) mapped to the
+        override's text, so a validation error names ``--set KEY=VALUE`` instead of a line.
+
+    Raises
+    ------
+    ConfigError
+        A malformed override, or a key whose parent is not a section (``loading.bits.x=1``).
+    """
+    out = _copy_tree(data)
+    lines = {} if lines is None else dict(lines)
+    if isinstance(overrides, dict):
+        items = [(tuple(str(k).split(".")), v, f"{k}={v!r}") for k, v in overrides.items()]
+    else:
+        items = []
+        for text in overrides or ():
+            parts, value = parse_override(text)
+            items.append((parts, value, str(text)))
+    for parts, value, text in items:
+        node = out
+        for depth, part in enumerate(parts[:-1]):
+            child = node.get(part)
+            if child is None:
+                child = node[part] = {}
+            elif not isinstance(child, dict):
+                raise ConfigError(f"--set {text}: {'.'.join(parts[:depth + 1])} is not a "
+                                  f"section, so it has no key {parts[depth + 1]!r}")
+            node = child
+        node[parts[-1]] = _copy_tree(value)
+        for loc in [k for k in lines if k[:len(parts)] == parts]:
+            del lines[loc]
+        lines[parts] = f"--set {text}"
+    return out, lines
+
+
+def _copy_tree(value: Any) -> Any:
+    """A copy of nested dicts and lists (leaves shared: YAML gives immutable scalars)."""
+    if isinstance(value, dict):
+        return {k: _copy_tree(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_copy_tree(v) for v in value]
+    return value
+
+
+def config_with(config: Config, overrides: Any) -> Config:
+    """``config`` with single keys overridden, validated again as a whole.
+
+    Parameters
+    ----------
+    config : Config
+        A validated configuration (its paths already resolved).
+    overrides : sequence of str, or mapping
+        As for :func:`apply_overrides`; relative paths given here stay as written.
+
+    Raises
+    ------
+    ConfigError
+        As :func:`load_config` does, naming the override.
+    """
+    if not overrides:
+        return config
+    data, lines = apply_overrides(config.model_dump(), overrides)
+    try:
+        return Config.model_validate(data)
+    except ValidationError as exc:
+        raise _explain(exc, "config", lines) from None
 
 
 def _resolve_paths(config: Config, base: Path) -> Config:
