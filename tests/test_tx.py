@@ -126,8 +126,8 @@ def make_loop(pub, ctx, sink, clock, **kw):
                         ack_endpoint=pub.ack_endpoint, bits=kw.pop("bits", range(0, 9)),
                         budget_db=kw.pop("budget_db", 0.0), cap_db=kw.pop("cap_db", 0.0),
                         heartbeat_timeout_s=1.0, context=ctx, clock=clock)
-    return TxLoop(plan=PLAN, follower=follower, sink=sink, frame_rate_hz=RATE_HZ,
-                  clock=clock, **kw)
+    kw.setdefault("frame_rate_hz", RATE_HZ)
+    return TxLoop(plan=PLAN, follower=follower, sink=sink, clock=clock, **kw)
 
 
 def subscribed(pub, loop, clock):

@@ -387,6 +387,3 @@ class EmulatedRadio:
 
     def __exit__(self, *exc) -> None:
         self.close()
-
-    def __del__(self) -> None:  # a dropped device must not keep its sender thread
-        self._tx_stop.set()
