@@ -213,14 +213,24 @@ class StreamChannel:
         self._tail = np.zeros(0, np.complex128)
 
     def __call__(self, samples: np.ndarray) -> np.ndarray:
-        """The received stream for the next ``samples`` sent (same length, complex128)."""
+        """The received stream for the next ``samples`` sent (same length, complex128).
+
+        Only the span between the first and last non-zero sample goes through the channel
+        (the gaps between frames cost nothing); silence still gets the receiver's noise.
+        """
         n = samples.size
         if n == 0:
             return np.zeros(0, np.complex128)
-        y = self.channel.transmit(samples, self.index / self.fs).astype(np.complex128)
-        k = min(self._tail.size, y.size)
-        y[:k] += self._tail[:k]
+        active = np.flatnonzero(samples)
+        y = np.zeros(max(n, self._tail.size), np.complex128)
+        if active.size:
+            first, last = int(active[0]), int(active[-1]) + 1
+            part = self.channel.transmit(samples[first:last], (self.index + first) / self.fs)
+            if first + part.size > y.size:
+                y = np.concatenate([y, np.zeros(first + part.size - y.size, np.complex128)])
+            y[first:first + part.size] += part
+        y[:self._tail.size] += self._tail
         out, self._tail = y[:n], y[n:]
         self.index += n
-        noise = self.rng.standard_normal(n) + 1j * self.rng.standard_normal(n)
+        noise = self.rng.standard_normal(2 * n, dtype=np.float32).view(np.complex64)
         return out + self.sigma * noise

@@ -111,6 +111,7 @@ class RadioDriver(Driver):
         scanner = FrameScanner(self.receiver)
         t0 = time.monotonic()
         count = 0
+        last: int | None = None  # unwrapped frame number of the last estimate
         while not self.closed:
             try:
                 raw = self._sdr.rx()
@@ -125,7 +126,15 @@ class RadioDriver(Driver):
                 if not res.has_estimate:
                     continue
                 self.counters["frames"] += 1
-                yield res.to_estimate(plan=self.plan, frame=count,
+                # Frames are numbered by the transmitter's header counter (16 bits, unwrapped),
+                # so a map's effective frame means the same frame at both ends.
+                if res.header_ok:
+                    frame = res.counter if last is None else \
+                        last + ((res.counter - last) & 0xFFFF or 0x10000)
+                else:
+                    frame = count if last is None else last + 1
+                last = frame
+                yield res.to_estimate(plan=self.plan, frame=frame,
                                       time_s=t0 + offset / self.plan.sample_rate_hz)
                 count += 1
 
