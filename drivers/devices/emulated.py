@@ -200,6 +200,13 @@ class EmulatedRadio:
         self.history.append(("tx_hardwaregain_chan0", value))
 
     @property
+    def air_counters(self) -> dict:
+        """The receiving air's counters (``received``, ``silent_samples``, ``late_dropped``,
+        ``malformed``); empty before the first ``rx()``."""
+        air = self._air_rx
+        return dict(air.counters) if air is not None else {}
+
+    @property
     def tx_buffer_active(self) -> bool:
         """True while a transmit buffer exists (cyclic or streaming)."""
         return self._tx_size is not None
