@@ -338,7 +338,7 @@ def test_status_is_published(pub, ctx):
     with make_loop(pub, ctx, sink, clock, status=status) as loop:
         assert until(lambda: got, step=step)
     sub.close()
-    assert got[-1]["kind"] == "tx" and got[-1]["state"] == "following"
+    assert got[-1]["type"] == "tx_status" and got[-1]["state"] == "following"
     assert {"map_seq", "frames_sent", "underruns", "maps_applied"} <= set(got[-1])
 
 
@@ -560,3 +560,27 @@ def test_signal_silences_the_transmitter(tmp_path, signum):
     assert calls[-3] == ["tx_destroy_buffer"]
     assert calls[-2][0] == "tx" and calls[-2][2] is False
     assert calls[-1] == ["tx_destroy_buffer"]
+
+
+def test_watch_shows_the_transmitter_status(pub, ctx):
+    """``brimline watch`` pointed at the transmitter's status socket prints its line."""
+    import io
+
+    from brimline.daemon.net.publisher import StatusPublisher
+    from brimline.daemon.views.watch import watch
+
+    clock, sink = FakeClock(), ListSink()
+    status = StatusPublisher(endpoint=ANY_PORT, rate_hz=1000.0, context=ctx)
+    out = io.StringIO()
+    import threading
+    with make_loop(pub, ctx, sink, clock, status=status) as loop:
+        result = []
+        t = threading.Thread(target=lambda: result.append(
+            watch(status.endpoint, once=True, duration_s=30.0, out=out)))
+        t.start()
+        while t.is_alive():
+            clock.t += 0.01
+            loop.step()
+            t.join(0.01)
+    assert result == [0]
+    assert out.getvalue().startswith("tx following: map -1, frame ")

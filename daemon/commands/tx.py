@@ -22,10 +22,10 @@ from brimline.daemon.commands.cli import RF_CAUTION
 from brimline.daemon.errors import ConfigError, InputError
 from brimline.daemon.runtime.assemble import build_core, build_tx, open_sink
 from brimline.daemon.runtime.config import Config, load_config
-from brimline.daemon.runtime.transmitter import slot_samples
+from brimline.daemon.runtime.transmitter import slot_samples, tx_summary_line
 from brimline.drivers.sinks.sigmf import sigmf_paths
 
-__all__ = ["configure", "run", "check_summary", "status_line"]
+__all__ = ["configure", "run", "check_summary"]
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
@@ -67,13 +67,6 @@ def check_summary(path: str, config: Config) -> str:
             f"{plan.fft_size}, {tx.frame_rate_hz:g} frames/s, backoff {tx.backoff_db:g} dB, "
             f"bound {tx.max_tone_db:g} dB per tone / {tx.max_total_db:g} dB total, "
             f"on heartbeat loss {loss}")
-
-
-def status_line(status: dict) -> str:
-    """One line of the transmitter's status for the terminal."""
-    return (f"tx {status['state']}: map {status['map_seq']}, frame {status['frame']}, "
-            f"sent {status['frames_sent']}, maps applied {status['maps_applied']}, "
-            f"underruns {status['underruns']}, power clipped {status['power_clipped']}")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -121,10 +114,10 @@ def run(args: argparse.Namespace) -> int:
             def _on_step(now_s: float) -> None:
                 if not args.quiet and now_s - last[0] >= 1.0:
                     last[0] = now_s
-                    print(status_line(loop.status(now_s)), flush=True)
+                    print(tx_summary_line(loop.status(now_s)), flush=True)
             loop.run(stop, realtime=tx.realtime, max_frames=tx.max_frames, on_step=_on_step)
         if not args.quiet:
-            print(status_line(loop.status(time.monotonic())), flush=True)
+            print(tx_summary_line(loop.status(time.monotonic())), flush=True)
         return 0
     finally:
         if timer is not None:

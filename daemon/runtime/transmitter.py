@@ -47,7 +47,11 @@ from brimline.drivers.link.frame import LinkPlan, Transmitter, map_arrays
 from brimline.drivers.link.schedule import MapSchedule, PowerBound
 from brimline.drivers.sinks.base import Sink
 
-__all__ = ["TxLoop", "TxState", "TX_LIMITS", "slot_samples"]
+__all__ = ["TxLoop", "TxState", "TX_LIMITS", "slot_samples", "tx_summary_line",
+           "TX_STATUS_TYPE"]
+
+#: ``type`` of the transmitter's status dict (the daemon's is ``status``).
+TX_STATUS_TYPE = "tx_status"
 
 _log = logging.getLogger("brimline.tx")
 
@@ -74,6 +78,15 @@ class TxState(str, enum.Enum):
     SAFE = "safe"
     SILENT = "silent"
     STOPPED = "stopped"
+
+
+def tx_summary_line(status: dict) -> str:
+    """One line of a transmitter status dict, for terminals (``brimline tx``, ``watch``)."""
+    return (f"tx {status.get('state', '-')}: map {status.get('map_seq', '-')}, "
+            f"frame {status.get('frame', '-')}, sent {status.get('frames_sent', '-')}, "
+            f"maps applied {status.get('maps_applied', '-')}, "
+            f"underruns {status.get('underruns', '-')}, "
+            f"power clipped {status.get('power_clipped', '-')}")
 
 
 def slot_samples(plan: LinkPlan, frame_rate_hz: float) -> int:
@@ -258,7 +271,7 @@ class TxLoop:
         m = self.in_force
         f = self.follower.counters
         return {
-            "kind": "tx", "time_s": float(now_s), "state": self.state.value,
+            "type": TX_STATUS_TYPE, "time_s": float(now_s), "state": self.state.value,
             "map_seq": -1 if m is None else int(m.seq),
             "map_epoch": "" if m is None else m.epoch,
             "total_bits": int(self.default_bits * self.plan.data_tones.size

@@ -22,6 +22,7 @@ from rich.text import Text
 
 from brimline.daemon.errors import ProtocolError
 from brimline.daemon.runtime.status import ALARMS, band_columns, summary_line
+from brimline.daemon.runtime.transmitter import TX_STATUS_TYPE, tx_summary_line
 from brimline.daemon.wire import codec
 
 __all__ = ["render", "band_chart", "watch", "DEFAULT_STATUS_ENDPOINT"]
@@ -296,6 +297,12 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
                         _topic, record = codec.decode(frames)
                     except ProtocolError:
                         bad += 1
+                        continue
+                    if isinstance(record, dict) and record.get("type") == TX_STATUS_TYPE:
+                        # a transmitter's status (brimline tx): one plain line each
+                        print(tx_summary_line(record), file=out, flush=True)
+                        if once:
+                            return 0
                         continue
                     if isinstance(record, dict) and record.get("type") == "status":
                         status, last = record, clock()
