@@ -279,3 +279,55 @@ def test_maps_switch_at_the_named_frame_over_the_emulated_air(ctx):
     assert {0, 1} <= seqs
     assert dev.history[-1] == ("tx_destroy_buffer",) and not dev.tx_buffer_active
     assert dev.tx_hardwaregain_chan0 == -89.75
+
+
+def _free_ports(n: int) -> list[int]:
+    import socket
+
+    socks = [socket.socket() for _ in range(n)]
+    try:
+        for s in socks:
+            s.bind(("127.0.0.1", 0))
+        return [s.getsockname()[1] for s in socks]
+    finally:
+        for s in socks:
+            s.close()
+
+
+@pytest.mark.slow
+def test_two_processes_close_the_loop_over_the_emulated_air(tmp_path):
+    """The rehearsal as a newcomer runs it: ``brimline run`` with an emulated receiver and
+    ``brimline tx`` with an emulated transmitter, two processes on the loopback air. The
+    transmitter applies maps the daemon made from what its receiver heard."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    maps, snap, status, acks, air, tx_status = _free_ports(6)
+    swap = {"7341": str(maps), "7342": str(snap), "7343": str(status), "7344": str(acks),
+            "7350": str(air), "7345": str(tx_status), "7353": str(_free_ports(1)[0])}
+    paths = {}
+    for side in ("rx", "tx"):
+        text = (root / "config" / f"rehearsal-{side}.yaml").read_text()
+        for old, new in swap.items():
+            text = text.replace(f"127.0.0.1:{old}", f"127.0.0.1:{new}")
+        paths[side] = tmp_path / f"rehearsal-{side}.yaml"
+        paths[side].write_text(text)
+    brimline = [sys.executable, "-c", "import sys; from brimline.daemon.commands.cli import "
+                                      "main; sys.exit(main(sys.argv[1:]))"]
+    daemon = subprocess.Popen(brimline + ["run", "--config", str(paths["rx"]), "--quiet",
+                                          "--duration", "40"],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        tx = subprocess.run(brimline + ["tx", "--config", str(paths["tx"]), "--duration", "15"],
+                            capture_output=True, text=True, timeout=120)
+    finally:
+        daemon.terminate()
+        out, err = daemon.communicate(timeout=60)
+    assert tx.returncode == 0, tx.stderr
+    last = tx.stdout.strip().splitlines()[-1]
+    assert last.startswith("tx stopped: map ")
+    applied = int(last.split("maps applied ")[1].split(",")[0])
+    assert applied >= 1 and " map -1," not in last, last
+    assert daemon.returncode == 0, err

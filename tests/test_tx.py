@@ -584,3 +584,20 @@ def test_watch_shows_the_transmitter_status(pub, ctx):
             t.join(0.01)
     assert result == [0]
     assert out.getvalue().startswith("tx following: map -1, frame ")
+
+
+@pytest.mark.hardware
+def test_radio_sink_silences_a_real_radio():
+    """With a pyadi-iio radio at BRIMLINE_TEST_URI (default ip:192.168.2.1): one slot at 60 dB
+    attenuation, then silence. RF caution: transmits briefly; cable TX to a load or through
+    attenuators and use a frequency you may use (BRIMLINE_TEST_CENTER_HZ)."""
+    pytest.importorskip("adi")
+    uri = os.environ.get("BRIMLINE_TEST_URI", "ip:192.168.2.1")
+    center = float(os.environ.get("BRIMLINE_TEST_CENTER_HZ", "nan"))
+    if not math.isfinite(center):
+        pytest.skip("set BRIMLINE_TEST_CENTER_HZ to a frequency you may use")
+    with RadioSink(sample_rate_hz=PLAN.sample_rate_hz, center_hz=center, attenuation_db=60.0,
+                   uri=uri) as sink:
+        sink.send(np.zeros(4800, np.complex64))
+        dev = sink.device
+    assert dev.tx_hardwaregain_chan0 == pytest.approx(-MAX_ATTENUATION_DB, abs=0.25)
