@@ -7,6 +7,7 @@
     ├── InputError                a file or flag given by the user is unreadable or malformed
     ├── InfeasibleError           a loading request cannot be met (target bits over the budget, ...)
     ├── SourceError               a driver cannot produce estimates (device missing, file gone)
+    ├── SinkError                 a transmit sink cannot send (device missing, file unwritable)
     ├── RecordingError            a recording cannot be written or read back
     ├── ProtocolError             a message on the wire is malformed or fails its checks
     └── StateError                the saved daemon state cannot be read or written
@@ -23,6 +24,7 @@ __all__ = [
     "InputError",
     "InfeasibleError",
     "SourceError",
+    "SinkError",
     "RecordingError",
     "ProtocolError",
     "StateError",
@@ -47,6 +49,10 @@ class InfeasibleError(BrimlineError):
 
 class SourceError(BrimlineError):
     """A driver cannot produce estimates (device missing, capture file unreadable, ...)."""
+
+
+class SinkError(BrimlineError):
+    """A transmit sink cannot send (device missing, library missing, file unwritable, ...)."""
 
 
 class RecordingError(BrimlineError):

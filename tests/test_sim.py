@@ -34,8 +34,9 @@ class TestSections:
     @pytest.mark.parametrize("section, driver", [(SimSection, SimDriver), (IqSection, IqDriver),
                                                  (RadioSection, RadioDriver)])
     def test_fields_are_constructor_arguments(self, section, driver):
-        params = set(inspect.signature(driver.__init__).parameters) - {"self", "plan",
-                                                                       "map_provider"}
+        # plan, map_provider and emulated (the config's emulated: section) come from elsewhere
+        params = set(inspect.signature(driver.__init__).parameters) - {
+            "self", "plan", "map_provider", "emulated"}
         assert set(section.model_fields) == params
 
     def test_sim_defaults_build_a_driver(self, plan):

@@ -31,6 +31,7 @@ RF_CAUTION = (
 _COMMANDS = {
     "plan": "one-shot bit/power plan from a per-tone SNR file (what-if work, no radio)",
     "run": "run the daemon: estimates in, maps and status out",
+    "tx": "transmitter side: follow the daemon's maps and send frames (radio, SigMF, ZeroMQ)",
     "watch": "live terminal view of a running daemon's status stream",
     "keys": "create CURVE key pairs for encrypted map and status sockets",
     "replay": "replay a recording through the decision path offline (summary, what-if, exports)",

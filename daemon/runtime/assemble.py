@@ -4,7 +4,8 @@ Everything that turns config sections into objects lives here, so the service on
 them: the core parts (:func:`build_core`), the link controller (:func:`build_controller`), the
 estimate source (:func:`make_driver`), the state keeper and the recorder (:func:`open_state`,
 :func:`open_recorder`) and the simulated transmitter's follower (:func:`follower_factory`,
-:class:`FollowerMapProvider`). A part that rejects its section's values becomes one
+:class:`FollowerMapProvider`), and the transmitter side of ``brimline tx``: its sink
+(:func:`open_sink`) and its loop (:func:`build_tx`). A part that rejects its section's values becomes one
 :class:`~brimline.daemon.errors.ConfigError` naming the section.
 """
 
@@ -15,21 +16,27 @@ from typing import Any, Callable
 from brimline.daemon.core.change import ChangeControl
 from brimline.daemon.core.controller import LinkController
 from brimline.daemon.core.estimator import Estimator
-from brimline.daemon.errors import ConfigError, SourceError
+from brimline.daemon.errors import ConfigError, SinkError, SourceError
 from brimline.daemon.net.curve import follower_keys
 from brimline.daemon.net.follower import Follower
+from brimline.daemon.net.publisher import StatusPublisher
 from brimline.daemon.records import LoadMap
 from brimline.daemon.runtime.config import Config
+from brimline.daemon.runtime.transmitter import TxLoop
 from brimline.daemon.wire.recording import RecordWriter
 from brimline.daemon.wire.state import StateKeeper, StateStore
 from brimline.drivers.link.frame import make_plan
+from brimline.drivers.sinks.base import Sink
+from brimline.drivers.sinks.radio import RadioSink
+from brimline.drivers.sinks.sigmf import SigmfSink
+from brimline.drivers.sinks.stream import IqStreamSink
 from brimline.drivers.sources.iq import IqDriver
 from brimline.drivers.sources.radio import RadioDriver
 from brimline.drivers.sources.replay import ReplayDriver
 from brimline.drivers.sources.sim import SimDriver
 
 __all__ = ["build_core", "build_controller", "make_driver", "open_state", "open_recorder",
-           "follower_factory", "FollowerMapProvider"]
+           "follower_factory", "FollowerMapProvider", "open_sink", "build_tx"]
 
 
 def build_core(config: Config):
@@ -110,7 +117,7 @@ def make_driver(config: Config, plan, map_provider=None):
     if kind == "iq":
         return IqDriver(plan=plan, **section)
     if kind == "radio":
-        return RadioDriver(plan=plan, **section)
+        return RadioDriver(plan=plan, emulated=config.emulated.model_dump(), **section)
     raise SourceError(f"driver.kind={kind!r} is not a known source")  # pragma: no cover
 
 
@@ -194,3 +201,68 @@ class FollowerMapProvider:
         self._closed = True
         if self._follower is not None:
             self._follower.close()
+
+
+def open_sink(config: Config, plan, *, device_object: Any = None,
+              context=None) -> Sink:
+    """The transmit sink named by ``config.tx.sink``.
+
+    Parameters
+    ----------
+    config : Config
+        Validated configuration (``tx``, ``emulated`` and ``link`` are used).
+    plan : LinkPlan
+        The tone plan (sample rate, centre frequency).
+    device_object : object, optional
+        An opened device for the radio sink (tests inject fakes).
+    context : zmq.Context, optional
+        Context for the stream sink's socket.
+
+    Raises
+    ------
+    SinkError
+        When the sink cannot be opened (library or device missing, file exists, bad endpoint).
+    """
+    tx = config.tx
+    if tx.sink == "radio":
+        return RadioSink(sample_rate_hz=plan.sample_rate_hz, center_hz=plan.center_hz,
+                         attenuation_db=tx.attenuation_db, backend=tx.backend,
+                         device=tx.device, uri=tx.uri, emulated=config.emulated.model_dump(),
+                         device_object=device_object)
+    if tx.sink == "sigmf":
+        return SigmfSink(tx.path, sample_rate_hz=plan.sample_rate_hz, center_hz=plan.center_hz)
+    if tx.sink == "stream":
+        return IqStreamSink(tx.stream_endpoint, pattern=tx.stream_pattern, bind=tx.stream_bind,
+                            context=context)
+    raise SinkError(f"tx.sink={tx.sink!r} is not a known sink")  # pragma: no cover
+
+
+def build_tx(config: Config, plan, sink: Sink, *, status: bool = True, context=None,
+             **follower_kwargs) -> TxLoop:
+    """The transmitter loop of ``brimline tx`` around ``sink``.
+
+    Its follower is :meth:`Follower.for_daemon` of the config's ``publish`` and ``loading``
+    (``follower_kwargs`` override, e.g. endpoints, ``clock``); its status socket binds
+    ``tx.status_endpoint`` (``status=False``: none). The caller owns the loop and closes it
+    (which silences the sink).
+    """
+    tx = config.tx
+    clock = follower_kwargs.get("clock")
+    follower = Follower.for_daemon(config.publish, config.loading, plan=plan, context=context,
+                                   **follower_kwargs)
+    publisher = None
+    try:
+        if status:
+            publisher = StatusPublisher(endpoint=tx.status_endpoint, rate_hz=tx.status_rate_hz,
+                                        context=context)
+        extra = {} if clock is None else {"clock": clock}
+        return TxLoop(plan=plan, follower=follower, sink=sink, frame_rate_hz=tx.frame_rate_hz,
+                      default_bits=tx.default_bits, backoff_db=tx.backoff_db,
+                      max_tone_db=tx.max_tone_db, max_total_db=tx.max_total_db,
+                      hold_s=tx.hold_s, on_loss=tx.on_loss, max_lead_frames=tx.max_lead_frames,
+                      seed=tx.seed, status=publisher, **extra)
+    except BaseException:
+        if publisher is not None:
+            publisher.close()
+        follower.close()
+        raise

@@ -54,7 +54,9 @@ from brimline.daemon.limits import (
 )
 from brimline.daemon.net.metrics import METRICS_LIMITS, MetricsEndpoint
 from brimline.daemon.net.publisher import PUBLISH_LIMITS, STATUS_LIMITS, check_publish_settings
-from brimline.drivers.air.channel import check_interferer_window
+from brimline.daemon.runtime.transmitter import TX_LIMITS
+from brimline.drivers.devices.emulated import EMULATED_LIMITS
+from brimline.drivers.air.channel import check_interferer_window, profile
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
 from brimline.drivers.sources.replay import REPLAY_LIMITS
 
@@ -68,6 +70,8 @@ __all__ = [
     "PublishSection",
     "StatusSection",
     "RecordSection",
+    "TxSection",
+    "EmulatedSection",
     "EstimatorSection",
     "ChangeSection",
     "Config",
@@ -360,6 +364,9 @@ class IqSection(Section):
 class RadioSection(Section):
     """``driver.radio:`` a pyadi-iio radio (brimline.drivers.sources.radio); tuning is ``link.center_hz``."""
 
+    backend: Literal["iio", "emulated"] = Field(
+        "iio", description="iio: a pyadi-iio device; emulated: the emulated radio of the "
+                           "emulated: section")
     uri: str = Field("ip:192.168.2.1", description="libiio context URI of the radio")
     device: str = Field("Pluto", description="pyadi-iio class name of the device")
     rx_gain_db: float = Field(30.0, description="manual receive gain, dB")
@@ -777,6 +784,102 @@ class ServiceSection(Section):
         return POSITIVE.check(info.field_name, v)
 
 
+class EmulatedSection(Section):
+    """``emulated:`` the emulated radio (brimline.drivers.devices.emulated.EmulatedRadio).
+
+    Used by a radio whose ``backend`` is ``emulated`` (``driver.radio`` or ``tx``). Fields are
+    the device's keyword arguments; their ranges are ``EMULATED_LIMITS`` beside it.
+    """
+
+    air_endpoint: str = Field("tcp://127.0.0.1:7350",
+                              description="loopback air socket (the transmitter binds it)")
+    snr_db: float = Field(30.0, description="SNR of a unit-power tone at the receiver, dB")
+    profile: str = Field("awgn", description="multipath profile (as driver.sim.profile)")
+    doppler_hz: float = Field(0.0, description="maximum Doppler shift, Hz")
+    cfo_hz: float = Field(0.0, description="carrier frequency offset, Hz")
+    path_gain_db: float = Field(0.0, description="gain from transmitter output to receiver "
+                                                 "input, dB")
+    seed: int = Field(1, description="seed of the channel's random generator")
+    overflow_every: int = Field(0, description="fault: half a buffer lost before every N-th "
+                                               "receive buffer (0: never)")
+    rx_timeout_every: int = Field(0, description="fault: every N-th receive times out "
+                                                 "(0: never)")
+    tx_underrun_every: int = Field(0, description="fault: every N-th transmit buffer period "
+                                                  "is missed (0: never)")
+    vanish_after_s: Optional[float] = Field(
+        None, description="fault: the device is gone from this long after it was first "
+                          "opened, s (null: never)")
+    vanish_for_s: float = Field(0.0, description="fault: for this long, s")
+    clock_ppm: float = Field(0.0, description="fault: receiver sample clock error, ppm")
+
+    @field_validator("air_endpoint")
+    @classmethod
+    def _endpoint(cls, v):
+        return _endpoint_ok("air_endpoint", v)
+
+    @field_validator(*EMULATED_LIMITS)
+    @classmethod
+    def _within_limits(cls, v, info):
+        return _within(EMULATED_LIMITS[info.field_name], info.field_name, v)
+
+
+class TxSection(Section):
+    """``tx:`` the transmitter side, ``brimline tx`` (brimline.daemon.runtime.transmitter).
+
+    It follows the maps of the daemon described by ``publish`` (and checks them against
+    ``loading``), with the tone plan of ``link``. Ranges are ``TX_LIMITS`` beside ``TxLoop``.
+    """
+
+    sink: Literal["radio", "sigmf", "stream"] = Field(
+        "radio", description="where frames go: radio, sigmf (IQ file), stream (raw IQ over "
+                             "ZeroMQ)")
+    backend: Literal["iio", "emulated"] = Field(
+        "iio", description="radio sink: iio (pyadi-iio) or emulated (the emulated: section)")
+    uri: str = Field("ip:192.168.2.1", description="radio sink: libiio context URI")
+    device: str = Field("Pluto", description="radio sink: pyadi-iio class name")
+    attenuation_db: float = Field(
+        30.0, description="radio sink: hardware transmit attenuation, dB (no map lowers it)")
+    backoff_db: float = Field(
+        12.0, description="digital backoff: RMS of a frame of nominal tones below full "
+                          "scale, dB")
+    max_tone_db: float = Field(0.0, description="power bound: largest power of one tone "
+                                                "relative to nominal, dB")
+    max_total_db: float = Field(0.0, description="power bound: largest total power relative "
+                                                 "to every tone at nominal, dB")
+    frame_rate_hz: float = Field(50.0, description="frame slots per second")
+    default_bits: int = Field(2, description="bits per tone before the first map and in the "
+                                             "safe map")
+    hold_s: float = Field(2.0, description="keep the last good map this long after "
+                                           "heartbeats stop, s")
+    on_loss: Literal["safe", "silent"] = Field(
+        "safe", description="after the hold: safe (default map) or silent")
+    max_lead_frames: int = Field(
+        1000, description="a map naming a frame further ahead is applied at once")
+    path: Optional[str] = Field(None, description="sigmf sink: the recording to create "
+                                                  "(relative: to the config file)")
+    stream_endpoint: str = Field("tcp://127.0.0.1:7351",
+                                 description="stream sink: ZeroMQ endpoint")
+    stream_pattern: Literal["pub", "push"] = Field("pub",
+                                                   description="stream sink: pub or push")
+    stream_bind: bool = Field(True, description="stream sink: bind (true) or connect")
+    realtime: bool = Field(True, description="pace unpaced sinks (file, stream) in real time")
+    max_frames: Optional[int] = Field(None, description="stop after this many frame slots")
+    seed: int = Field(1, description="seed of the payload generator")
+    status_endpoint: str = Field("tcp://127.0.0.1:7345",
+                                 description="the transmitter's status PUB (bind)")
+    status_rate_hz: float = Field(4.0, description="periodic status messages per second")
+
+    @field_validator("stream_endpoint", "status_endpoint")
+    @classmethod
+    def _endpoints(cls, v, info):
+        return _endpoint_ok(info.field_name, v)
+
+    @field_validator(*TX_LIMITS)
+    @classmethod
+    def _within_limits(cls, v, info):
+        return _within(TX_LIMITS[info.field_name], info.field_name, v)
+
+
 class KeyProblem(ValueError):
     """A cross-section check failed at ``loc`` (key path inside the model) with ``value``."""
 
@@ -801,6 +904,8 @@ class Config(Section):
     record: RecordSection = Field(default_factory=RecordSection)
     fallback: FallbackSection = Field(default_factory=FallbackSection)
     service: ServiceSection = Field(default_factory=ServiceSection)
+    tx: TxSection = Field(default_factory=TxSection)
+    emulated: EmulatedSection = Field(default_factory=EmulatedSection)
 
     @model_validator(mode="after")
     def _fits_link(self) -> "Config":
@@ -833,7 +938,8 @@ class Config(Section):
     def _endpoints_distinct(self) -> "Config":
         seen: dict[str, str] = {}
         for loc in (("publish", "map_endpoint"), ("publish", "snapshot_endpoint"),
-                    ("publish", "ack_endpoint"), ("status", "endpoint")):
+                    ("publish", "ack_endpoint"), ("status", "endpoint"),
+                    ("tx", "status_endpoint")):
             value = getattr(getattr(self, loc[0]), loc[1])
             if not _fixed_endpoint(value):
                 continue
@@ -841,6 +947,28 @@ class Config(Section):
                 raise KeyProblem(loc, value, f"is also {seen[value]}; each socket binds its "
                                              f"own endpoint")
             seen[value] = ".".join(loc)
+        return self
+
+    @model_validator(mode="after")
+    def _tx_fits(self) -> "Config":
+        tx, link = self.tx, self.link
+        if tx.default_bits > link.max_bits:
+            raise KeyProblem(("tx", "default_bits"), tx.default_bits,
+                             f"must be in [0, link.max_bits={link.max_bits}]")
+        if tx.default_bits not in self.loading.bits:
+            raise KeyProblem(("tx", "default_bits"), tx.default_bits,
+                             f"is not one of loading.bits={list(self.loading.bits)}")
+        slot = link.sample_rate_hz / tx.frame_rate_hz
+        frame_len = (2 + link.train_symbols + link.data_symbols) * (link.fft_size + link.cp_len)
+        if round(slot) < frame_len:
+            raise KeyProblem(("tx", "frame_rate_hz"), tx.frame_rate_hz,
+                             f"leaves {slot:.0f} samples per slot; a frame needs {frame_len}")
+        if tx.sink == "sigmf" and tx.path is None:
+            raise KeyProblem(("tx", "path"), None, "the sigmf sink needs a recording path")
+        try:
+            profile(self.emulated.profile)
+        except ValueError as exc:
+            raise KeyProblem(("emulated", "profile"), self.emulated.profile, str(exc)) from None
         return self
 
     @model_validator(mode="after")
@@ -1277,5 +1405,6 @@ def _resolve_paths(config: Config, base: Path) -> Config:
         "driver": driver,
         "service": section(config.service, "state_path"),
         "record": section(config.record, "path"),
+        "tx": section(config.tx, "path"),
         "publish": section(config.publish, "curve_secret_key", "curve_clients_dir"),
     })

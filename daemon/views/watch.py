@@ -32,6 +32,7 @@ from brimline.daemon.errors import InputError, ProtocolError
 from brimline.daemon.net.curve import apply_client
 from brimline.daemon.net.drops import DropCounter, limit_inbound
 from brimline.daemon.runtime.status import ALARMS, band_columns, summary_line
+from brimline.daemon.runtime.transmitter import TX_STATUS_TYPE, tx_summary_line
 from brimline.daemon.wire import codec
 
 __all__ = ["render", "band_chart", "watch", "DEFAULT_STATUS_ENDPOINT"]
@@ -346,6 +347,12 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
                         _topic, record = codec.decode(frames, types={"dict"})
                     except ProtocolError as exc:
                         drops.drop("status", exc.reason, str(exc))
+                        continue
+                    if isinstance(record, dict) and record.get("type") == TX_STATUS_TYPE:
+                        # a transmitter's status (brimline tx): one plain line each
+                        print(tx_summary_line(record), file=out, flush=True)
+                        if once:
+                            return 0
                         continue
                     if isinstance(record, dict) and record.get("type") == "status":
                         status, last = record, clock()

@@ -12,22 +12,22 @@ regulations and licensed practice take precedence.
 
 from __future__ import annotations
 
-import importlib
 import math
 import time
-from typing import Iterator
+from typing import Any, Iterator, Mapping
 
 import numpy as np
 
 from brimline.daemon.errors import ConfigError, SourceError
 from brimline.daemon.records import Estimate, TonePlan
+from brimline.drivers.devices.factory import INSTALL_HINT, load_adi as _load_device_library
+from brimline.drivers.devices.factory import open_device
 from brimline.drivers.link.frame import Transmitter, as_link_plan, map_arrays
 from brimline.drivers.link.receiver import FrameScanner, Receiver
 from brimline.drivers.sources.base import Driver
 
 __all__ = ["RadioDriver", "load_adi"]
 
-INSTALL_HINT = "install with pip install 'brimline[sdr]'"
 #: Receive samples come as integers of the 12-bit converter; this maps full scale to ~1.0.
 _RX_SCALE = 1.0 / 2048.0
 #: Transmit full scale of pyadi-iio's DAC interface (16-bit words, 12-bit converter).
@@ -36,10 +36,7 @@ _TX_SCALE = 2.0 ** 14
 
 def load_adi():
     """Import pyadi-iio; a missing library becomes :class:`SourceError` with the install hint."""
-    try:
-        return importlib.import_module("adi")
-    except ImportError as exc:
-        raise SourceError(f"driver.radio needs pyadi-iio ({exc}); {INSTALL_HINT}") from exc
+    return _load_device_library(where="driver.radio", error=SourceError)
 
 
 class RadioDriver(Driver):
@@ -65,6 +62,10 @@ class RadioDriver(Driver):
         Bits per tone of the transmitter's default map.
     sync_threshold : float
         Receiver frame detection threshold.
+    backend : {"iio", "emulated"}
+        Device backend (:func:`brimline.drivers.devices.factory.open_device`).
+    emulated : mapping or None
+        Settings of the emulated radio (the config's ``emulated:`` section).
     """
 
     name = "radio"
@@ -72,18 +73,16 @@ class RadioDriver(Driver):
     def __init__(self, *, plan: TonePlan, uri: str = "ip:192.168.2.1", device: str = "Pluto",
                  rx_gain_db: float = 30.0, tx_attenuation_db: float = 30.0,
                  transmit: bool = False, buffer_frames: int = 4, default_bits: int = 2,
-                 sync_threshold: float = 0.3) -> None:
+                 sync_threshold: float = 0.3, backend: str = "iio",
+                 emulated: Mapping[str, Any] | None = None) -> None:
         super().__init__()
         self.plan = as_link_plan(plan)
         if not math.isfinite(self.plan.center_hz):
             raise ConfigError("link.center_hz must be set to tune driver.radio")
-        adi = load_adi()
-        cls = getattr(adi, device, None)
-        if cls is None:
-            raise ConfigError(f"driver.radio.device={device!r} is not a pyadi-iio class")
+        sdr = open_device(backend=backend, device=device, uri=uri, emulated=emulated,
+                          where="driver.radio", error=SourceError)
         fs = int(round(self.plan.sample_rate_hz))
         try:
-            sdr = cls(uri=uri)
             sdr.sample_rate = fs
             sdr.rx_rf_bandwidth = fs
             sdr.rx_lo = int(round(self.plan.center_hz))
@@ -112,6 +111,7 @@ class RadioDriver(Driver):
         scanner = FrameScanner(self.receiver)
         t0 = time.monotonic()
         count = 0
+        last: int | None = None  # unwrapped frame number of the last estimate
         while not self.closed:
             try:
                 raw = self._sdr.rx()
@@ -126,7 +126,15 @@ class RadioDriver(Driver):
                 if not res.has_estimate:
                     continue
                 self.counters["frames"] += 1
-                yield res.to_estimate(plan=self.plan, frame=count,
+                # Frames are numbered by the transmitter's header counter (16 bits, unwrapped),
+                # so a map's effective frame means the same frame at both ends.
+                if res.header_ok:
+                    frame = res.counter if last is None else \
+                        last + ((res.counter - last) & 0xFFFF or 0x10000)
+                else:
+                    frame = count if last is None else last + 1
+                last = frame
+                yield res.to_estimate(plan=self.plan, frame=frame,
                                       time_s=t0 + offset / self.plan.sample_rate_hz)
                 count += 1
 

@@ -1,0 +1,343 @@
+"""The transmitter loop of ``brimline tx``: follow the maps, build frames, feed a sink.
+
+One :class:`TxLoop` step is one frame slot:
+
+1. poll the :class:`~brimline.daemon.net.follower.Follower` (every map it adopts has passed
+   :func:`~brimline.daemon.net.follower.check_map`) and schedule the adopted maps for their
+   effective frame (:class:`~brimline.drivers.link.schedule.MapSchedule`);
+2. decide the state from the follower's heartbeat: ``following``; ``holding`` (no heartbeat
+   for the follower's timeout: the last good map stays in force for ``hold_s``); then ``safe``
+   (the default map: ``default_bits`` on every data tone at nominal power, header sequence
+   "none") or ``silent`` (the sink silenced, no frames), as ``on_loss`` says. A heartbeat again
+   returns to ``following`` with the follower's map in force from the next frame;
+3. take the map in force at this frame's counter; when it changes, acknowledge it with that
+   frame (``follower.ack``);
+4. bound its power (:class:`~brimline.drivers.link.schedule.PowerBound`, counted when it
+   clips), build the frame with the map's sequence number and the frame counter in the header,
+   scale it by the digital backoff (a frame of nominal tones has RMS ``-backoff_db`` dBFS),
+   clip any sample beyond full scale (counted), pad it to the frame slot and send it.
+
+The loop never lowers the hardware attenuation the sink was given; together with the power
+bound and the full-scale clip no map can push the output above the configured bound.
+
+Time is injected (``clock``); :meth:`TxLoop.step` takes ``now_s`` so tests drive it with a fake
+clock. :meth:`TxLoop.close` silences the sink first (see the sinks), then closes the follower
+and the status socket; ``brimline tx`` calls it on exit, on SIGTERM/SIGINT and on an error.
+"""
+
+from __future__ import annotations
+
+import collections
+import dataclasses
+import enum
+import logging
+import math
+import threading
+import time
+from types import MappingProxyType
+from typing import Callable
+
+import numpy as np
+
+from brimline.daemon.limits import NON_NEGATIVE, POSITIVE, at_least, between, check_values
+from brimline.daemon.net.follower import Follower
+from brimline.daemon.net.publisher import StatusPublisher
+from brimline.daemon.records import LoadMap
+from brimline.drivers.link.frame import LinkPlan, Transmitter, map_arrays
+from brimline.drivers.link.schedule import MapSchedule, PowerBound
+from brimline.drivers.sinks.base import Sink
+
+__all__ = ["TxLoop", "TxState", "TX_LIMITS", "slot_samples", "tx_summary_line",
+           "TX_STATUS_TYPE"]
+
+#: ``type`` of the transmitter's status dict (the daemon's is ``status``).
+TX_STATUS_TYPE = "tx_status"
+
+_log = logging.getLogger("brimline.tx")
+
+#: Limits of :class:`TxLoop`'s numeric settings (the ``tx:`` section reads them too).
+TX_LIMITS = MappingProxyType({
+    "frame_rate_hz": POSITIVE,
+    "default_bits": at_least(0),
+    "backoff_db": between(0.0, 60.0),
+    "attenuation_db": between(0.0, 89.75),
+    "max_tone_db": between(-60.0, 20.0),
+    "max_total_db": between(-60.0, 20.0),
+    "hold_s": NON_NEGATIVE,
+    "max_lead_frames": at_least(0),
+    "status_rate_hz": POSITIVE,
+    "max_frames": at_least(1),
+})
+
+
+class TxState(str, enum.Enum):
+    """What the transmitter is doing."""
+
+    FOLLOWING = "following"
+    HOLDING = "holding"
+    SAFE = "safe"
+    SILENT = "silent"
+    STOPPED = "stopped"
+
+
+def tx_summary_line(status: dict) -> str:
+    """One line of a transmitter status dict, for terminals (``brimline tx``, ``watch``)."""
+    return (f"tx {status.get('state', '-')}: map {status.get('map_seq', '-')}, "
+            f"frame {status.get('frame', '-')}, sent {status.get('frames_sent', '-')}, "
+            f"maps applied {status.get('maps_applied', '-')}, "
+            f"underruns {status.get('underruns', '-')}, "
+            f"power clipped {status.get('power_clipped', '-')}")
+
+
+def slot_samples(plan: LinkPlan, frame_rate_hz: float) -> int:
+    """Samples per frame slot (a frame and its silent gap) at ``frame_rate_hz``.
+
+    Raises
+    ------
+    ValueError
+        When a frame does not fit in one slot.
+    """
+    slot = int(round(plan.sample_rate_hz / frame_rate_hz))
+    if slot < plan.frame_len:
+        raise ValueError(f"tx.frame_rate_hz={frame_rate_hz}: frames last "
+                         f"{plan.frame_duration_s * 1e3:.3f} ms, so at most "
+                         f"{1.0 / plan.frame_duration_s:.1f} frames per second fit")
+    return slot
+
+
+class TxLoop:
+    """Follows the maps and transmits frames through a sink, one frame slot per :meth:`step`.
+
+    Parameters
+    ----------
+    plan : LinkPlan
+        Tone plan and frame layout.
+    follower : Follower
+        The map follower (its ``on_map`` is set here).
+    sink : Sink
+        Where the slots go.
+    frame_rate_hz : float
+        Frame slots per second.
+    default_bits : int
+        Bits per tone of the default (and safe) map.
+    backoff_db : float
+        Digital backoff: RMS of a frame of nominal tones below full scale, dB.
+    max_tone_db, max_total_db : float
+        The power bound (see :class:`PowerBound`).
+    hold_s : float
+        How long the last good map stays in force after heartbeats stop, s.
+    on_loss : {"safe", "silent"}
+        What follows the hold.
+    max_lead_frames : int
+        A map naming a frame further ahead than this is in force from the next frame
+        (counted ``far_ahead``): the daemon counts frames of another transmitter run.
+    seed : int
+        Seed of the payload generator.
+    status : StatusPublisher or None
+        Where the status dict goes (periodically and on every state change).
+    clock : callable
+        Monotonic seconds.
+    """
+
+    def __init__(self, *, plan: LinkPlan, follower: Follower, sink: Sink,
+                 frame_rate_hz: float = 50.0, default_bits: int = 2, backoff_db: float = 12.0,
+                 max_tone_db: float = 0.0, max_total_db: float = 0.0, hold_s: float = 2.0,
+                 on_loss: str = "safe", max_lead_frames: int = 1000, seed: int = 1,
+                 status: StatusPublisher | None = None,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        check_values(dict(frame_rate_hz=frame_rate_hz, default_bits=default_bits,
+                          backoff_db=backoff_db, max_tone_db=max_tone_db,
+                          max_total_db=max_total_db, hold_s=hold_s,
+                          max_lead_frames=max_lead_frames), TX_LIMITS, prefix="tx.")
+        if on_loss not in ("safe", "silent"):
+            raise ValueError(f"tx.on_loss={on_loss!r} must be safe or silent")
+        if default_bits > plan.max_bits:
+            raise ValueError(f"tx.default_bits={default_bits} must be in "
+                             f"[0, link.max_bits={plan.max_bits}]")
+        self.plan = plan
+        self.follower = follower
+        self.sink = sink
+        self.frame_rate_hz = float(frame_rate_hz)
+        self.slot_len = slot_samples(plan, frame_rate_hz)
+        self.default_bits = int(default_bits)
+        self.hold_s = float(hold_s)
+        self.on_loss = on_loss
+        self.max_lead_frames = int(max_lead_frames)
+        self.status_publisher = status
+        self._clock = clock
+        self.transmitter = Transmitter(plan)
+        self.bound = PowerBound(plan.data_tones.size, max_tone_db=max_tone_db,
+                                max_total_db=max_total_db)
+        fmt = self.transmitter.format
+        nominal_rms = math.sqrt(fmt.n_used / plan.fft_size)
+        self.scale = 10.0 ** (-backoff_db / 20.0) / nominal_rms
+        self.schedule = MapSchedule()
+        self.rng = np.random.default_rng(seed)
+        self.counter = 0  # the next frame's counter (unwrapped; the header keeps 16 bits)
+        self.state = TxState.FOLLOWING
+        self.in_force: LoadMap | None = None
+        self.counters: collections.Counter[str] = collections.Counter()
+        self._loss_since_s: float | None = None
+        self._closed = False
+        follower.on_map = self._on_map
+
+    # ------------------------------------------------------------------ one slot
+
+    def _on_map(self, load_map: LoadMap) -> None:
+        if load_map.effective_frame > self.counter + self.max_lead_frames:
+            self.counters["far_ahead"] += 1
+            load_map = dataclasses.replace(load_map, effective_frame=self.counter)
+        self.schedule.schedule(load_map, self.counter)
+
+    def _update_state(self, now_s: float) -> None:
+        before = self.state
+        if not self.follower.stale(now_s):
+            if self.state in (TxState.SAFE, TxState.SILENT, TxState.HOLDING):
+                self.counters["recoveries"] += 1
+                if self.state is not TxState.HOLDING and self.follower.current is not None:
+                    self.schedule.schedule(self.follower.current, self.counter)
+            self._loss_since_s = None
+            self.state = TxState.FOLLOWING
+        else:
+            if self._loss_since_s is None:
+                self._loss_since_s = now_s
+                self.counters["heartbeat_losses"] += 1
+            if now_s - self._loss_since_s <= self.hold_s:
+                self.state = TxState.HOLDING
+            else:
+                self.state = TxState.SAFE if self.on_loss == "safe" else TxState.SILENT
+        if self.state is not before:
+            _log.info("tx: %s -> %s", before.value, self.state.value)
+            if self.state is TxState.SILENT:
+                self.sink.silence()
+            if self.state in (TxState.SAFE, TxState.SILENT):
+                self.schedule.clear()
+            self._publish(now_s, force=True)
+
+    def step(self, now_s: float | None = None) -> bool:
+        """Handle the follower's traffic and send one frame slot (none when silent).
+
+        Returns
+        -------
+        bool
+            True when a frame was sent.
+        """
+        if self._closed:
+            raise RuntimeError("TxLoop is closed")
+        now = self._clock() if now_s is None else now_s
+        self.follower.poll(0)
+        self._update_state(now)
+        sent = False
+        if self.state is not TxState.SILENT:
+            if self.state is TxState.SAFE:
+                load_map, changed = None, self.in_force is not None
+            else:
+                load_map, changed = self.schedule.at(self.counter)
+            self.in_force = load_map
+            if changed and load_map is not None:
+                self.counters["maps_applied"] += 1
+                self.follower.ack(self.counter, now, load_map.seq)
+            self._send(load_map)
+            sent = True
+        self._publish(now)
+        return sent
+
+    def _send(self, load_map: LoadMap | None) -> None:
+        seq, bits, power = map_arrays(self.plan, load_map, self.default_bits)
+        bounded = self.bound(power)
+        if bounded.clipped:
+            self.counters["power_clipped"] += 1
+        frame = self.transmitter.frame(bits=bits, power_lin=bounded.power_lin, map_seq=seq,
+                                       counter=self.counter, rng=self.rng)
+        slot = np.zeros(self.slot_len, np.complex64)
+        x = frame.samples * np.float32(self.scale)
+        mag = np.abs(x)
+        over = mag > 1.0
+        if over.any():
+            self.counters["samples_clipped"] += int(over.sum())
+            x[over] /= mag[over]
+        slot[:x.size] = x
+        self.sink.send(slot)
+        self.counters["frames_sent"] += 1
+        self.counter += 1
+
+    # ------------------------------------------------------------------ status, running
+
+    def status(self, now_s: float) -> dict:
+        """The transmitter's status dict (published on the status socket)."""
+        device = getattr(self.sink, "device", None)
+        underruns = self.counters["late_slots"] + int(
+            getattr(device, "counters", {}).get("underruns", 0))
+        m = self.in_force
+        f = self.follower.counters
+        return {
+            "type": TX_STATUS_TYPE, "time_s": float(now_s), "state": self.state.value,
+            "map_seq": -1 if m is None else int(m.seq),
+            "map_epoch": "" if m is None else m.epoch,
+            "total_bits": int(self.default_bits * self.plan.data_tones.size
+                              if m is None else m.total_bits),
+            "frame": int(self.counter), "frames_sent": int(self.counters["frames_sent"]),
+            "maps_applied": int(self.counters["maps_applied"]),
+            "underruns": int(underruns),
+            "power_clipped": int(self.counters["power_clipped"]),
+            "samples_clipped": int(self.counters["samples_clipped"]),
+            "heartbeat_losses": int(self.counters["heartbeat_losses"]),
+            "maps_rejected": int(f["rejected"]), "acks_sent": int(f["acks_sent"]),
+            "sink": self.sink.name,
+        }
+
+    def _publish(self, now_s: float, force: bool = False) -> None:
+        pub = self.status_publisher
+        if pub is not None and (pub.due(now_s) or force):
+            pub.publish(self.status(now_s))
+
+    def run(self, stop: threading.Event, *, realtime: bool = True,
+            max_frames: int | None = None,
+            on_step: Callable[[float], None] | None = None) -> None:
+        """Step until ``stop`` is set (or ``max_frames`` slots), pacing unpaced sinks on the
+        clock when ``realtime``; a slot started more than a slot late counts as ``late_slots``.
+        ``on_step(now_s)`` is called after every slot (the command's terminal line).
+        """
+        period = 1.0 / self.frame_rate_hz
+        due = self._clock()
+        slots = 0
+        while not stop.is_set() and (max_frames is None or slots < max_frames):
+            now = self._clock()
+            if realtime and not self.sink.paced:
+                if due - now > 0 and stop.wait(due - now):
+                    break
+                now = self._clock()
+                if now - due > period:
+                    self.counters["late_slots"] += 1
+                    due = now
+                due += period
+            sent = self.step(now)
+            slots += 1
+            if on_step is not None:
+                on_step(now)
+            if not sent and self.sink.paced and realtime:
+                stop.wait(period)  # silent: no device buffer paces the loop
+        self.state = TxState.STOPPED
+
+    def close(self) -> None:
+        """Silence and close the sink, then the follower and the status socket. Idempotent."""
+        if self._closed:
+            return
+        self._closed = True
+        self.state = TxState.STOPPED
+        try:
+            self.sink.close()
+        finally:
+            try:
+                if self.status_publisher is not None:
+                    self.status_publisher.publish(self.status(self._clock()))
+                    self.status_publisher.close()
+            finally:
+                self.follower.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+

@@ -1,0 +1,333 @@
+"""The emulated radio and its air: pyadi-iio buffer semantics, fault knobs, and the transmitter
+following maps over the emulated air with the switch seen in the received headers.
+
+The emulation runs at real-time pace; tests assert order, counts and content only, and their
+deadlines only catch a hang.
+"""
+
+from __future__ import annotations
+
+import errno
+import threading
+
+import numpy as np
+import pytest
+from protocol_helpers import ANY_PORT, until
+from test_tx import PLAN, make_loop, plan_map, subscribed
+
+from brimline.daemon.errors import SinkError, SourceError
+from brimline.daemon.net.publisher import MapPublisher
+from brimline.drivers.air.loopback import AirReceiver, AirSender, StreamChannel
+from brimline.drivers.devices.emulated import ADC_MAX, EmulatedRadio
+from brimline.drivers.devices.factory import open_device
+from brimline.drivers.link.frame import make_plan
+from brimline.drivers.link.receiver import FrameScanner, Receiver
+from brimline.drivers.sinks.radio import RadioSink
+
+FS = 100_000  # a slow sample rate keeps the real-time emulation light
+
+
+def pair(**rx_faults):
+    """A transmitting and a receiving emulated radio on a fresh air endpoint."""
+    tx = EmulatedRadio(air_endpoint=ANY_PORT, snr_db=60.0)
+    tx.sample_rate = FS
+    tx.tx_hardwaregain_chan0 = 0.0
+    tx.tx_cyclic_buffer = True
+    tone = np.exp(2j * np.pi * np.arange(1000) / 8) * 2 ** 13  # fs/8, half full scale
+    tx.tx(tone)
+    rx = EmulatedRadio(air_endpoint=tx.air_tx_endpoint, snr_db=60.0, **rx_faults)
+    rx.sample_rate = FS
+    rx.rx_buffer_size = 1000
+    return tx, rx
+
+
+def heard(rx, *, at_least=1, timeout_s=30.0):
+    """rx() until a buffer with signal arrives (the PUB/SUB join takes a moment)."""
+    out = []
+    assert until(lambda: len(out) >= at_least,
+                 step=lambda: out.append(y) if np.abs(y := rx.rx()).max() > 100 else None,
+                 timeout_s=timeout_s)
+    return out
+
+
+class TestBufferSemantics:
+    def test_cyclic_buffer_refuses_a_second_tx_until_destroyed(self):
+        dev = EmulatedRadio(air_endpoint=ANY_PORT)
+        dev.sample_rate = FS
+        dev.tx_cyclic_buffer = True
+        dev.tx(np.zeros(100, complex))
+        with pytest.raises(RuntimeError, match="cyclic"):
+            dev.tx(np.zeros(100, complex))
+        dev.tx_destroy_buffer()
+        assert not dev.tx_buffer_active
+        dev.tx(np.zeros(200, complex))
+        dev.close()
+
+    def test_streaming_buffers_keep_their_length(self):
+        dev = EmulatedRadio(air_endpoint=ANY_PORT)
+        dev.sample_rate = FS
+        dev.tx(np.zeros(100, complex))
+        with pytest.raises(ValueError, match=r"holds 100"):
+            dev.tx(np.zeros(50, complex))
+        dev.close()
+
+    def test_rx_buffer_size_changes_only_after_destroy(self):
+        tx, rx = pair()
+        try:
+            assert rx.rx().size == 1000
+            rx.rx_buffer_size = 500
+            assert rx.rx().size == 1000  # pyadi-iio: the buffer keeps the size it was made with
+            rx.rx_destroy_buffer()
+            assert rx.rx().size == 500
+        finally:
+            tx.close()
+            rx.close()
+
+    def test_levels_and_adc_clipping(self):
+        """A half-full-scale tone at 0 dB attenuation and 0 dB path gain arrives at 256 ADC
+        units per unit amplitude (30 dB receive gain); 40 dB more gain clips at the 12-bit
+        range."""
+        tx, rx = pair()
+        try:
+            y = heard(rx)[0]
+            rms = np.sqrt(np.mean(np.abs(y[200:]) ** 2))
+            assert rms == pytest.approx(256 * 0.5, rel=0.05)
+            rx.rx_hardwaregain_chan0 = 70.0
+            z = rx.rx()
+            assert np.abs(z.real).max() <= ADC_MAX + 1 and np.abs(z.real).max() >= ADC_MAX
+        finally:
+            tx.close()
+            rx.close()
+
+    def test_destroyed_transmitter_leaves_the_air_silent(self):
+        tx, rx = pair()
+        try:
+            heard(rx)
+            tx.tx_destroy_buffer()
+            assert until(lambda: np.abs(rx.rx()).max() < 10)
+            assert tx.history[-1] == ("tx_destroy_buffer",)
+        finally:
+            tx.close()
+            rx.close()
+
+
+class TestFaults:
+    def test_receive_timeout_every_n(self):
+        tx, rx = pair(rx_timeout_every=3)
+        try:
+            rx.rx()
+            rx.rx()
+            with pytest.raises(TimeoutError) as info:
+                rx.rx()
+            assert info.value.errno == errno.ETIMEDOUT
+            rx.rx()
+            assert rx.counters["rx_timeouts"] == 1 and rx.counters["rx_buffers"] == 3
+        finally:
+            tx.close()
+            rx.close()
+
+    def test_overflow_every_n_loses_samples(self):
+        """Every 2nd buffer half a buffer is lost before it: 500 samples of a tone at fs/8 are
+        500 * pi/4 = 125 pi of phase, so across an overflow the phase jumps by pi; across
+        contiguous buffers it runs on."""
+        tx, rx = pair(overflow_every=2)
+        try:
+            heard(rx)
+            checked = set()
+            for _ in range(50):  # pairs of buffers with no silence from a late sender
+                silent = rx.air_counters.get("silent_samples", 0)
+                first, second = rx.rx(), rx.rx()
+                if rx.air_counters.get("silent_samples", 0) != silent:
+                    continue
+                step = np.angle(first[-1] * np.conj(first[-2]))
+                jump = np.angle(second[0] * np.conj(first[-1] * np.exp(1j * step)))
+                overflowed = rx.counters["rx_buffers"] % 2 == 0  # before the second buffer
+                assert abs(abs(jump) - (np.pi if overflowed else 0.0)) < 0.3
+                checked.add(overflowed)
+                if len(checked) == 2:
+                    break
+                rx.rx()  # shift the pairing by one buffer
+            assert checked == {True, False}
+            assert rx.counters["overflows"] >= 1
+        finally:
+            tx.close()
+            rx.close()
+
+    def test_sample_clock_offset_scales_the_tone_frequency(self):
+        """Sampling at fs (1 + e) sees a tone at f as f / (1 + e) cycles per sample (the
+        definition of a sampled sinusoid's digital frequency); e = 1000 ppm here."""
+        tx, rx = pair(clock_ppm=1000.0)
+        rx.rx_hardwaregain_chan0 = 50.0  # a larger tone (1280 ADC units): finer phase
+        try:
+            y = heard(rx, at_least=2)[-1]
+            measured = np.angle(np.sum(y[1:] * np.conj(y[:-1]))) / (2 * np.pi)
+            assert measured == pytest.approx((1 / 8) / 1.001, rel=2e-4)
+            assert measured != pytest.approx(1 / 8, rel=2e-4)
+        finally:
+            tx.close()
+            rx.close()
+
+    def test_transmit_underruns_are_counted(self):
+        tx = EmulatedRadio(air_endpoint=ANY_PORT, tx_underrun_every=2)
+        tx.sample_rate = FS
+        tx.tx_cyclic_buffer = True
+        tx.tx(np.ones(500, complex))
+        assert until(lambda: tx.counters["underruns"] >= 2)
+        assert tx.counters["tx_buffers"] >= 1
+        tx.close()
+
+    def test_vanished_device_is_one_line_naming_the_uri(self):
+        with pytest.raises(SinkError, match=r"tx.radio.uri=emulated:x: emulated radio: .*"
+                                            r"vanished"):
+            open_device(backend="emulated", uri="emulated:x", where="tx.radio",
+                        error=SinkError, emulated=dict(vanish_after_s=0.0, vanish_for_s=1e9))
+
+    def test_bad_fault_setting_is_one_line(self):
+        with pytest.raises(SourceError, match=r"emulated.clock_ppm=5000.0 must be in"):
+            open_device(backend="emulated", uri="emulated:x", where="driver.radio",
+                        error=SourceError, emulated=dict(clock_ppm=5000.0))
+
+    def test_unknown_backend(self):
+        with pytest.raises(SourceError, match=r"driver.radio.backend='usrp' must be one of"):
+            open_device(backend="usrp", where="driver.radio", error=SourceError)
+
+
+class TestAir:
+    def test_malformed_messages_are_counted(self, ctx):
+        import zmq
+
+        raw = ctx.socket(zmq.PUB)
+        raw.setsockopt(zmq.LINGER, 0)
+        port = raw.bind_to_random_port("tcp://127.0.0.1")
+        with AirReceiver(f"tcp://127.0.0.1:{port}", context=ctx) as receiver:
+            assert until(lambda: receiver.counters["malformed"] > 0,
+                         step=lambda: (raw.send_multipart([b"x", b"123"]), receiver.drain()))
+            assert receiver.drain() == 0
+        raw.close()
+
+    def test_samples_arrive_in_order(self, ctx):
+        with AirSender(ANY_PORT, context=ctx) as sender, \
+                AirReceiver(sender.endpoint, context=ctx) as receiver:
+            assert until(lambda: receiver.drain() > 0,
+                         step=lambda: sender.send(0, np.zeros(4, np.complex64)))
+            receiver.take(receiver.drain())
+            sender.send(4, np.arange(3, dtype=np.complex64))
+            sender.send(7, np.arange(3, 6, dtype=np.complex64))
+            assert until(lambda: receiver.drain() >= 6)
+            assert np.array_equal(receiver.take(8), np.r_[np.arange(6), 0, 0])
+            assert receiver.counters["silent_samples"] == 2
+
+    def test_stream_channel_is_continuous_across_chunks(self, rng):
+        """Passing a stream in two chunks gives the same (noise-free) output as in one, the
+        filter tail carried over (linear time-invariant channel: convolution is associative
+        over concatenation)."""
+        plan = make_plan()
+        x = (rng.standard_normal(3000) + 1j * rng.standard_normal(3000)).astype(np.complex64)
+        one = StreamChannel(plan, snr_db=300.0, profile="awgn", rng=np.random.default_rng(1))
+        two = StreamChannel(plan, snr_db=300.0, profile="awgn", rng=np.random.default_rng(1))
+        whole = one(x)
+        parts = np.concatenate([two(x[:1234]), two(x[1234:])])
+        assert np.allclose(whole, parts, atol=1e-4)
+
+
+# --------------------------------------------------------------------------- end to end
+
+
+def test_maps_switch_at_the_named_frame_over_the_emulated_air(ctx):
+    """brimline tx's loop on an emulated transmitter, an emulated receiver on the same air and
+    the project's receiver on its buffers: every decoded header carries the map in force at its
+    frame counter (seq 0 from frame 30, seq 1 from frame 60), and both switches are seen."""
+    rate = 100.0  # slots of 19200 samples: one 1152-sample frame and a long gap
+    dev = EmulatedRadio(air_endpoint=ANY_PORT, snr_db=30.0, path_gain_db=22.0)
+    sink = RadioSink(sample_rate_hz=PLAN.sample_rate_hz, center_hz=2.4e9, attenuation_db=10.0,
+                     device_object=dev)
+    with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT, ack_endpoint=ANY_PORT,
+                      heartbeat_s=0.05, linger_s=0.0, context=ctx, epoch="e1") as pub:
+        clock_s = [0.0]
+        loop = make_loop(pub, ctx, sink, lambda: clock_s[0], backoff_db=12.0,
+                         frame_rate_hz=rate)
+        subscribed(pub, loop, lambda: clock_s[0])
+        pub.publish(plan_map(0, 30))
+        pub.publish(plan_map(1, 60, bits=4))
+        assert until(lambda: loop.follower.current is not None and
+                     loop.follower.current.seq == 1, step=lambda: loop.follower.poll(0.005))
+        loop.step(0.0)  # binds the air
+        rx = EmulatedRadio(air_endpoint=dev.air_tx_endpoint, snr_db=30.0, path_gain_db=22.0)
+        rx.sample_rate = int(PLAN.sample_rate_hz)
+        rx.rx_buffer_size = loop.slot_len
+        stop = threading.Event()
+        runner = threading.Thread(target=loop.run, args=(stop,), daemon=True)
+        runner.start()
+        scanner = FrameScanner(Receiver(PLAN, default_bits=2))
+        headers = []
+
+        def receive():
+            for _, res in scanner.feed(rx.rx() / 2048.0):
+                if res.header_ok:
+                    headers.append((res.map_seq, res.counter))
+        try:
+            assert until(lambda: headers and headers[-1][1] >= 70, step=receive,
+                         timeout_s=120.0)
+        finally:
+            stop.set()
+            runner.join(30)
+            loop.close()
+            rx.close()
+    expected = [(-1 if k < 30 else 0 if k < 60 else 1, k) for _, k in headers]
+    assert headers == expected
+    seqs = {s for s, _ in headers}
+    assert {0, 1} <= seqs
+    assert dev.history[-1] == ("tx_destroy_buffer",) and not dev.tx_buffer_active
+    assert dev.tx_hardwaregain_chan0 == -89.75
+
+
+def _free_ports(n: int) -> list[int]:
+    import socket
+
+    socks = [socket.socket() for _ in range(n)]
+    try:
+        for s in socks:
+            s.bind(("127.0.0.1", 0))
+        return [s.getsockname()[1] for s in socks]
+    finally:
+        for s in socks:
+            s.close()
+
+
+@pytest.mark.slow
+def test_two_processes_close_the_loop_over_the_emulated_air(tmp_path):
+    """The rehearsal as a newcomer runs it: ``brimline run`` with an emulated receiver and
+    ``brimline tx`` with an emulated transmitter, two processes on the loopback air. The
+    transmitter applies maps the daemon made from what its receiver heard."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    maps, snap, status, acks, air, tx_status = _free_ports(6)
+    swap = {"7341": str(maps), "7342": str(snap), "7343": str(status), "7344": str(acks),
+            "7350": str(air), "7345": str(tx_status), "7353": str(_free_ports(1)[0])}
+    paths = {}
+    for side in ("rx", "tx"):
+        text = (root / "config" / f"rehearsal-{side}.yaml").read_text()
+        for old, new in swap.items():
+            text = text.replace(f"127.0.0.1:{old}", f"127.0.0.1:{new}")
+        paths[side] = tmp_path / f"rehearsal-{side}.yaml"
+        paths[side].write_text(text)
+    brimline = [sys.executable, "-c", "import sys; from brimline.daemon.commands.cli import "
+                                      "main; sys.exit(main(sys.argv[1:]))"]
+    daemon = subprocess.Popen(brimline + ["run", "--config", str(paths["rx"]), "--quiet",
+                                          "--duration", "40"],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        tx = subprocess.run(brimline + ["tx", "--config", str(paths["tx"]), "--duration", "15"],
+                            capture_output=True, text=True, timeout=120)
+    finally:
+        daemon.terminate()
+        out, err = daemon.communicate(timeout=60)
+    assert tx.returncode == 0, tx.stderr
+    last = tx.stdout.strip().splitlines()[-1]
+    assert last.startswith("tx stopped: map ")
+    applied = int(last.split("maps applied ")[1].split(",")[0])
+    assert applied >= 1 and " map -1," not in last, last
+    assert daemon.returncode == 0, err
