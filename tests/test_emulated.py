@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import errno
 import threading
+import time
 
 import numpy as np
 import pytest
@@ -134,7 +135,9 @@ class TestFaults:
         try:
             heard(rx)
             checked = set()
-            for _ in range(50):  # pairs of buffers with no silence from a late sender
+            deadline = time.monotonic() + 120.0  # only catches a hang
+            while time.monotonic() < deadline:  # pairs of buffers with no silence from a late
+                # sender (a busy machine makes many such pairs; they are skipped, not judged)
                 silent = rx.air_counters.get("silent_samples", 0)
                 first, second = rx.rx(), rx.rx()
                 if rx.air_counters.get("silent_samples", 0) != silent:
