@@ -55,6 +55,7 @@ from brimline.daemon.limits import (
 from brimline.daemon.net.publisher import PUBLISH_LIMITS, STATUS_LIMITS, check_publish_settings
 from brimline.drivers.air.channel import check_interferer_window
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
+from brimline.drivers.sources.radio import RADIO_LIMITS, RadioDriver
 from brimline.drivers.sources.replay import REPLAY_LIMITS
 
 __all__ = [
@@ -92,6 +93,7 @@ def _keyword_defaults(cls) -> dict[str, Any]:
 
 
 _EST = _keyword_defaults(Estimator)
+_RADIO = _keyword_defaults(RadioDriver)
 _CHG = _keyword_defaults(ChangeControl)
 
 #: Frame detection threshold of the receiver, a fraction of the sync metric's peak of 1.
@@ -353,43 +355,48 @@ class IqSection(Section):
 
 
 class RadioSection(Section):
-    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.sources.radio); tuning is ``link.center_hz``."""
+    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.sources.radio); tuning is ``link.center_hz``.
 
-    uri: str = Field("ip:192.168.2.1", description="libiio context URI of the radio")
-    device: str = Field("Pluto", description="pyadi-iio class name of the device")
-    rx_gain_db: float = Field(30.0, description="manual receive gain, dB")
+    Limits are the driver's ``RADIO_LIMITS``; defaults are its constructor's.
+    """
+
+    uri: str = Field(_RADIO["uri"], description="libiio context URI of the radio")
+    device: str = Field(_RADIO["device"], description="pyadi-iio class name of the device")
+    rx_gain_db: float = Field(_RADIO["rx_gain_db"], description="manual receive gain, dB")
     tx_attenuation_db: float = Field(
-        30.0, description="transmit attenuation, dB (>= 0; more is less power)")
+        _RADIO["tx_attenuation_db"],
+        description="transmit attenuation, dB (>= 0; more is less power)")
     transmit: bool = Field(
-        False, description="also send frames of the default map from this radio (loopback)")
-    buffer_frames: int = Field(4, description="frames per receive buffer")
-    default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
-    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+        _RADIO["transmit"],
+        description="also send frames of the default map from this radio (loopback)")
+    buffer_frames: int = Field(_RADIO["buffer_frames"], description="frames per receive buffer")
+    default_bits: int = Field(
+        _RADIO["default_bits"], description="bits per tone of the transmitter's default map")
+    sync_threshold: float = Field(
+        _RADIO["sync_threshold"], description="frame detection threshold (0..1)")
+    rx_timeout_s: float = Field(
+        _RADIO["rx_timeout_s"],
+        description="receive timeout (libiio context timeout); a buffer not filled by then is "
+                    "a fault and the device is reopened, s")
+    backoff_s: float = Field(
+        _RADIO["backoff_s"], description="first wait before reopening a faulty device, s")
+    backoff_max_s: float = Field(
+        _RADIO["backoff_max_s"], description="cap of the reopening wait (it doubles), s")
+    max_attempts: int = Field(
+        _RADIO["max_attempts"],
+        description="failed reopenings in a row after which the source fails (0: never)")
 
-    @field_validator("sync_threshold")
+    @field_validator(*RADIO_LIMITS)
     @classmethod
-    def _threshold(cls, v):
-        return _SYNC_THRESHOLD.check("sync_threshold", v)
+    def _within_limits(cls, v, info):
+        return RADIO_LIMITS[info.field_name].check(info.field_name, v)
 
-    @field_validator("tx_attenuation_db")
-    @classmethod
-    def _attenuation(cls, v):
-        return between(0.0, 89.75).check("tx_attenuation_db", v)
-
-    @field_validator("rx_gain_db")
-    @classmethod
-    def _gain_ok(cls, v):
-        return _within(FINITE, "rx_gain_db", v)
-
-    @field_validator("buffer_frames")
-    @classmethod
-    def _buffer_ok(cls, v):
-        return _within(at_least(1), "buffer_frames", v)
-
-    @field_validator("default_bits")
-    @classmethod
-    def _bits_ok(cls, v):
-        return _within(at_least(0), "default_bits", v)
+    @model_validator(mode="after")
+    def _backoff_order(self) -> "RadioSection":
+        if self.backoff_max_s < self.backoff_s:
+            raise KeyProblem(("backoff_max_s",), self.backoff_max_s,
+                             f"must be >= backoff_s={self.backoff_s}")
+        return self
 
 
 class ReplaySection(Section):
@@ -433,6 +440,12 @@ class DriverSection(Section):
     def selected(self) -> Section:
         """The subsection named by ``kind``."""
         return getattr(self, self.kind)
+
+    @property
+    def live(self) -> bool:
+        """Whether the source is live (a radio or a socket): decisions then run on the daemon's
+        monotonic clock under ``service.clock: auto``."""
+        return self.kind in ("radio", "pushed", "iq_stream")
 
 
 # --------------------------------------------------------------------------- estimator, change
