@@ -23,6 +23,8 @@ from brimline.daemon.wire.recording import RecordWriter
 from brimline.daemon.wire.state import StateKeeper, StateStore
 from brimline.drivers.link.frame import make_plan
 from brimline.drivers.sources.iq import IqDriver
+from brimline.drivers.sources.iqstream import IqStreamDriver
+from brimline.drivers.sources.pushed import PushedDriver
 from brimline.drivers.sources.radio import RadioDriver
 from brimline.drivers.sources.replay import ReplayDriver
 from brimline.drivers.sources.sim import SimDriver
@@ -110,6 +112,10 @@ def make_driver(config: Config, plan, map_provider=None):
         return IqDriver(plan=plan, **section)
     if kind == "radio":
         return RadioDriver(plan=plan, **section)
+    if kind == "pushed":
+        return PushedDriver(plan=plan, **section)
+    if kind == "iq_stream":
+        return IqStreamDriver(plan=plan, **section)
     raise SourceError(f"driver.kind={kind!r} is not a known source")  # pragma: no cover
 
 

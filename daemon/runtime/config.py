@@ -55,6 +55,8 @@ from brimline.daemon.limits import (
 from brimline.daemon.net.publisher import PUBLISH_LIMITS, STATUS_LIMITS, check_publish_settings
 from brimline.drivers.air.channel import check_interferer_window
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
+from brimline.drivers.sources.iqstream import IQ_STREAM_LIMITS, IqStreamDriver
+from brimline.drivers.sources.pushed import PUSHED_LIMITS, PushedDriver, check_endpoint
 from brimline.drivers.sources.radio import RADIO_LIMITS, RadioDriver
 from brimline.drivers.sources.replay import REPLAY_LIMITS
 
@@ -63,6 +65,8 @@ __all__ = [
     "LoadingSection",
     "DriverSection",
     "ReplaySection",
+    "PushedSection",
+    "IqStreamSection",
     "FallbackSection",
     "ServiceSection",
     "PublishSection",
@@ -94,6 +98,8 @@ def _keyword_defaults(cls) -> dict[str, Any]:
 
 _EST = _keyword_defaults(Estimator)
 _RADIO = _keyword_defaults(RadioDriver)
+_PUSHED = _keyword_defaults(PushedDriver)
+_IQS = _keyword_defaults(IqStreamDriver)
 _CHG = _keyword_defaults(ChangeControl)
 
 #: Frame detection threshold of the receiver, a fraction of the sync metric's peak of 1.
@@ -399,6 +405,72 @@ class RadioSection(Section):
         return self
 
 
+class PushedSection(Section):
+    """``driver.pushed:`` estimates pushed over ZeroMQ by the user's own receiver
+    (brimline.drivers.sources.pushed); limits ``PUSHED_LIMITS``, defaults the constructor's."""
+
+    endpoint: str = Field(_PUSHED["endpoint"],
+                          description="ZeroMQ endpoint to bind (or connect to, bind: false)")
+    bind: bool = Field(_PUSHED["bind"],
+                       description="bind the endpoint (senders connect); false: connect to it")
+    pattern: Literal["pull", "sub"] = Field(
+        _PUSHED["pattern"], description="pull (senders PUSH) or sub (senders PUB)")
+    max_message_bytes: int = Field(
+        _PUSHED["max_message_bytes"], description="largest message accepted, bytes")
+    queue_messages: int = Field(
+        _PUSHED["queue_messages"],
+        description="messages waiting at most; beyond, the oldest are dropped and counted")
+    warn_every_s: float = Field(
+        _PUSHED["warn_every_s"],
+        description="least time between two warnings about rejected messages, s")
+
+    @field_validator("endpoint")
+    @classmethod
+    def _endpoint_ok(cls, v):
+        return check_endpoint("endpoint", v)
+
+    @field_validator(*PUSHED_LIMITS)
+    @classmethod
+    def _within_limits(cls, v, info):
+        return PUSHED_LIMITS[info.field_name].check(info.field_name, v)
+
+
+class IqStreamSection(Section):
+    """``driver.iq_stream:`` raw IQ over ZeroMQ through the receiver
+    (brimline.drivers.sources.iqstream); limits ``IQ_STREAM_LIMITS``, defaults the constructor's."""
+
+    endpoint: str = Field(_IQS["endpoint"],
+                          description="ZeroMQ endpoint to connect to (or bind, bind: true)")
+    bind: bool = Field(_IQS["bind"], description="bind the endpoint instead of connecting")
+    pattern: Literal["sub", "pull"] = Field(
+        _IQS["pattern"], description="sub (the sender PUBs) or pull (the sender PUSHes)")
+    sample_format: Literal["cf32", "ci16"] = Field(
+        _IQS["sample_format"],
+        description="cf32: complex float32; ci16: complex int16, full scale 32768")
+    default_bits: int = Field(
+        _IQS["default_bits"], description="bits per tone of the transmitter's default map")
+    sync_threshold: float = Field(
+        _IQS["sync_threshold"], description="frame detection threshold (0..1)")
+    max_message_bytes: int = Field(
+        _IQS["max_message_bytes"], description="largest message accepted, bytes")
+    queue_messages: int = Field(_IQS["queue_messages"],
+                                description="receive queue of the socket, messages")
+    warn_every_s: float = Field(
+        _IQS["warn_every_s"],
+        description="least time between two warnings about dropped messages, s")
+    start_s: float = Field(_IQS["start_s"], description="time_s of the first sample, s")
+
+    @field_validator("endpoint")
+    @classmethod
+    def _endpoint_ok(cls, v):
+        return check_endpoint("endpoint", v)
+
+    @field_validator(*IQ_STREAM_LIMITS)
+    @classmethod
+    def _within_limits(cls, v, info):
+        return IQ_STREAM_LIMITS[info.field_name].check(info.field_name, v)
+
+
 class ReplaySection(Section):
     """``driver.replay:`` a recorded estimate log (brimline.drivers.sources.replay).
 
@@ -423,12 +495,15 @@ class DriverSection(Section):
     (``sim`` has defaults, the others need at least their required keys).
     """
 
-    kind: Literal["sim", "iq", "radio", "replay"] = Field(
-        "sim", description="source of estimates: sim, iq (SigMF IQ), radio, replay")
+    kind: Literal["sim", "iq", "radio", "replay", "pushed", "iq_stream"] = Field(
+        "sim", description="source of estimates: sim, iq (SigMF IQ), radio, replay, pushed "
+                           "(estimates over ZeroMQ), iq_stream (raw IQ over ZeroMQ)")
     sim: SimSection = Field(default_factory=SimSection)
     iq: Optional[IqSection] = None
     radio: Optional[RadioSection] = None
     replay: Optional[ReplaySection] = None
+    pushed: Optional[PushedSection] = None
+    iq_stream: Optional[IqStreamSection] = None
 
     @model_validator(mode="after")
     def _kind_has_section(self) -> "DriverSection":
@@ -793,7 +868,7 @@ class Config(Section):
             raise KeyProblem(("loading", "bits"), list(self.loading.bits),
                              f"go above link.max_bits={link.max_bits}, the largest "
                              f"constellation the link carries")
-        for kind in ("sim", "iq", "radio"):
+        for kind in ("sim", "iq", "radio", "iq_stream"):
             section = getattr(d, kind)
             if section is not None and section.default_bits > link.max_bits:
                 raise KeyProblem(("driver", kind, "default_bits"), section.default_bits,
@@ -815,9 +890,15 @@ class Config(Section):
     @model_validator(mode="after")
     def _endpoints_distinct(self) -> "Config":
         seen: dict[str, str] = {}
-        for loc in (("publish", "map_endpoint"), ("publish", "snapshot_endpoint"),
-                    ("publish", "ack_endpoint"), ("status", "endpoint")):
-            value = getattr(getattr(self, loc[0]), loc[1])
+        locs = [("publish", "map_endpoint"), ("publish", "snapshot_endpoint"),
+                ("publish", "ack_endpoint"), ("status", "endpoint")]
+        for kind in ("pushed", "iq_stream"):  # a socket source that binds, when chosen
+            section = getattr(self.driver, kind)
+            if self.driver.kind == kind and section is not None and section.bind:
+                locs.append(("driver", kind, "endpoint"))
+        for loc in locs:
+            value = getattr(self.driver, loc[1]).endpoint if loc[0] == "driver" else \
+                getattr(getattr(self, loc[0]), loc[1])
             if not _fixed_endpoint(value):
                 continue
             if value in seen:
