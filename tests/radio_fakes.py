@@ -18,6 +18,7 @@ All invented for tests: no real device behaves exactly so.
 from __future__ import annotations
 
 import threading
+import time
 
 import numpy as np
 
@@ -59,8 +60,10 @@ class FakeRadio:
             k = air.buffer_index
             air.buffer_index += 1
             if k in air.timeouts:
+                air.fault_times.append(time.perf_counter())
                 raise TimeoutError(110, "Connection timed out")
             if k in air.errors:
+                air.fault_times.append(time.perf_counter())
                 air.gone = air.vanish_opens > 0
                 raise OSError(5, "Input/output error")
             if k in air.bad:
@@ -100,6 +103,7 @@ class FakeAir:
         self.position = 0
         self.served = 0
         self.gone = False
+        self.fault_times: list[float] = []  # perf_counter() at each injected fault
 
     def __call__(self, uri: str) -> FakeRadio:
         with self.lock:

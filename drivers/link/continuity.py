@@ -11,8 +11,8 @@ samples between them silently. The transmitter writes a 16-bit frame counter int
   lost between buffers rather than frames lost to noise inside one buffer);
 * ``counter_repeats``: the same counter again (a cyclic transmit buffer repeats one frame; no
   gap can be seen then);
-* ``counter_jumps``: a step of more than half the counter range (the transmitter restarted),
-  not counted as lost frames;
+* ``counter_jumps``: a step of more than half the counter range, i.e. backwards (the
+  transmitter restarted), not counted as lost frames;
 * ``damaged_frames``: frames that span a buffer boundary where samples were lost. Such a frame
   is spliced from two stretches of the signal; its estimate is marked invalid. A frame that
   spans a boundary is held until the next readable header says whether the boundary was

@@ -78,9 +78,12 @@ INSTALL_HINT = "install with pip install 'brimline[sdr]'"
 _RX_SCALE = 1.0 / 2048.0
 #: Transmit full scale of pyadi-iio's DAC interface (16-bit words, 12-bit converter).
 _TX_SCALE = 2.0 ** 14
-#: What opening, configuring or reading a device may raise (libiio errors arrive as OSError,
-#: TimeoutError among them; pyadi-iio's attribute writes as ValueError or AttributeError).
-_DEVICE_ERRORS = (OSError, RuntimeError, ValueError, AttributeError, TypeError, KeyError)
+#: What opening, configuring or reading a device may raise. libiio errors arrive as OSError
+#: (TimeoutError among them), pyadi-iio's attribute writes as ValueError or AttributeError, and
+#: some pyadi-iio paths raise a bare Exception: a device's answer is untrusted input, so any
+#: Exception from a device call is a device fault (counted, reopened), never a crash. At start
+#: it is one SourceError line naming the URI and the exception type.
+_DEVICE_ERRORS = (Exception,)
 
 #: Opens the device at a URI; returns an object with pyadi-iio's receive interface.
 DeviceFactory = Callable[[str], Any]
