@@ -213,3 +213,14 @@ class TestInTheService:
             st = svc.publish_status()
             assert st["driver"]["counters"]["reconnects"] == 1
             assert st["driver"]["state"] == "running"
+
+
+@pytest.mark.hardware
+def test_live_radio_after_a_buffer_rebuild():
+    """With a radio attached (pyadi-iio and a device at the default URI, a transmitter on air):
+    the versions are read, and estimates come after the buffer is destroyed and recreated."""
+    pytest.importorskip("adi")
+    with RadioDriver(plan=make_plan(center_hz=2.4e9)) as drv:
+        assert drv.versions
+        drv.rebuild_buffers(drv._device)
+        assert len(_take(drv, 2)) == 2
