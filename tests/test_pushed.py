@@ -14,6 +14,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 import zmq
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from protocol_helpers import until
 
 from brimline.daemon.errors import ConfigError, SourceError
@@ -141,6 +143,43 @@ class TestPushedEstimates:
             assert c[reason] == 1, reason
         assert c["wrong_plan"] == 2 and c["malformed"] == 3  # bad CRC, no header, not JSON
         assert col.got[0].frame == 9 and c["frames"] == 1
+
+    @settings(max_examples=300)
+    @given(st.data())
+    def test_any_mutation_is_accepted_or_counted_never_raised(self, data):
+        """Header values replaced by any JSON value, payload bytes flipped: ``check`` returns
+        an estimate or counts exactly one rejection, and never raises."""
+        drv = PushedDriver(plan=PLAN, endpoint=f"inproc://mutate-{id(data)}")
+        try:
+            good = [bytes(p) for p in codec.encode(codec.TOPIC_ESTIMATE, _estimate(1))]
+            header = json.loads(good[1])
+            json_value = st.recursive(
+                st.none() | st.booleans() | st.integers() | st.floats(allow_nan=False)
+                | st.text(max_size=5), lambda inner: st.lists(inner, max_size=3)
+                | st.dictionaries(st.text(max_size=3), inner, max_size=3), max_leaves=5)
+            where = data.draw(st.sampled_from(["v", "type", "crc32", "fields", "arrays",
+                                               "field", "array", "payload"]))
+            if where == "field":
+                header["fields"][data.draw(st.sampled_from(sorted(header["fields"])))] = \
+                    data.draw(json_value)
+            elif where == "array":
+                spec = header["arrays"][data.draw(st.integers(0, 3))]
+                spec[data.draw(st.sampled_from(["name", "dtype", "shape"]))] = \
+                    data.draw(json_value)
+            elif where != "payload":
+                header[where] = data.draw(json_value)
+            parts = [good[0], json.dumps(header).encode(), *good[2:]]
+            if where == "payload":
+                k = data.draw(st.integers(2, len(parts) - 1))
+                blob = bytearray(parts[k])
+                blob[data.draw(st.integers(0, len(blob) - 1))] ^= 0x5A
+                parts[k] = bytes(blob)
+            before = sum(drv.counters.values())
+            result = drv.check(parts)
+            counted = sum(drv.counters.values()) - before
+            assert (result is not None and counted == 0) or (result is None and counted == 1)
+        finally:
+            drv.close()
 
     def test_a_part_over_maxmsgsize_never_arrives_and_the_driver_goes_on(self, ctx):
         """ZeroMQ's MAXMSGSIZE drops the connection of a sender whose part is too large; the

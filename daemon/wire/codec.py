@@ -347,7 +347,7 @@ def _arrays(kind: str, specs: Any, parts: Sequence[memoryview],
         name, dtype, shape = spec["name"], spec["dtype"], spec["shape"]
         if not isinstance(name, str) or name in out:
             raise ProtocolError(f"{kind}: array spec {i} has a bad or repeated name {name!r}")
-        if dtype not in _ALLOWED_DTYPES:
+        if not isinstance(dtype, str) or dtype not in _ALLOWED_DTYPES:
             raise ProtocolError(f"{kind}.{name}: dtype {dtype!r} is not allowed")
         if expected is not None:
             if name not in expected:
@@ -419,7 +419,7 @@ def decode(frames: Sequence[Any]) -> tuple[str, Any]:
         raise ProtocolError(f"{topic}: protocol version {header['v']!r}, this decoder reads "
                             f"{PROTOCOL_VERSION}")
     kind = header["type"]
-    if kind != _DICT and kind not in _BY_NAME:
+    if not isinstance(kind, str) or (kind != _DICT and kind not in _BY_NAME):
         raise ProtocolError(f"{topic}: unknown record type {kind!r}")
     fields = header["fields"]
     if not isinstance(fields, dict):

@@ -206,7 +206,8 @@ class PushedDriver(Driver):
             return None
         shapes = {}
         for spec in specs:
-            if not isinstance(spec, dict) or spec.get("name") not in ESTIMATE_ARRAYS:
+            if not isinstance(spec, dict) or not isinstance(spec.get("name"), str) \
+                    or spec["name"] not in ESTIMATE_ARRAYS:
                 continue
             name = spec["name"]
             if spec.get("dtype") != ESTIMATE_ARRAYS[name]:
