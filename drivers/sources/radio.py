@@ -355,7 +355,7 @@ class RadioDriver(Driver):
                     or arr.dtype.kind not in "iufc"):
                 return None
             samples = arr.astype(np.complex64) * np.float32(_RX_SCALE)
-        except (TypeError, ValueError):
+        except Exception:  # noqa: BLE001 - a device reply is untrusted input
             return None
         if not np.isfinite(samples.view(np.float32).sum(dtype=np.float64)):
             return None
