@@ -29,7 +29,7 @@ import numpy as np
 import zmq
 
 from brimline.daemon.errors import ConfigError
-from brimline.daemon.limits import POSITIVE, FINITE, at_least, between, check_values
+from brimline.daemon.limits import FINITE, POSITIVE, at_least, between, check_values
 from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.link.continuity import Continuity
 from brimline.drivers.link.frame import as_link_plan
