@@ -120,8 +120,10 @@ def _driver_and_socket_sections():
     from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
     from brimline.daemon.runtime.config import (
         IqSection,
+        IqStreamSection,
         LinkSection,
         PublishSection,
+        PushedSection,
         RadioSection,
         ReplaySection,
         SimSection,
@@ -129,12 +131,15 @@ def _driver_and_socket_sections():
     )
     from brimline.drivers.link.frame import make_plan
     from brimline.drivers.sources.iq import IqDriver
+    from brimline.drivers.sources.iqstream import IqStreamDriver
+    from brimline.drivers.sources.pushed import PushedDriver
     from brimline.drivers.sources.radio import RadioDriver
     from brimline.drivers.sources.replay import ReplayDriver
     from brimline.drivers.sources.sim import SimDriver
     return [(PublishSection, MapPublisher), (StatusSection, StatusPublisher),
             (ReplaySection, ReplayDriver), (SimSection, SimDriver), (IqSection, IqDriver),
-            (RadioSection, RadioDriver), (LinkSection, make_plan)]
+            (RadioSection, RadioDriver), (LinkSection, make_plan),
+            (PushedSection, PushedDriver), (IqStreamSection, IqStreamDriver)]
 
 
 def test_other_sections_default_as_their_constructors():

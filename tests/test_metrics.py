@@ -12,9 +12,9 @@ import urllib.request
 import pytest
 
 prometheus_client = pytest.importorskip("prometheus_client")
+from _service_fakes import ScriptedDriver, loopback_config  # noqa: E402
 from prometheus_client.parser import text_string_to_metric_families  # noqa: E402
 
-from _service_fakes import ScriptedDriver, loopback_config  # noqa: E402
 from brimline.daemon.errors import ConfigError  # noqa: E402
 from brimline.daemon.net.metrics import MetricsEndpoint  # noqa: E402
 from brimline.daemon.runtime.config import Config  # noqa: E402
@@ -118,7 +118,7 @@ class TestEndpoint:
 class TestConfig:
     def test_defaults_loopback_and_off(self):
         section = Config().metrics
-        assert (section.enabled, section.host, section.port) == (False, "127.0.0.1", 7345)
+        assert (section.enabled, section.host, section.port) == (False, "127.0.0.1", 7349)
 
     @pytest.mark.parametrize("metrics, match", [
         ({"port": 70000}, "port=70000"),

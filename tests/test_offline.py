@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 
 from brimline.daemon.errors import ConfigError, InputError, SourceError
+from brimline.daemon.runtime.assemble import build_controller, build_core
 from brimline.daemon.runtime.config import load_config
 from brimline.daemon.runtime.offline import (
     MapEvent,
@@ -27,7 +28,6 @@ from brimline.daemon.runtime.offline import (
     result_lines,
     source_epoch,
 )
-from brimline.daemon.runtime.assemble import build_controller, build_core
 from brimline.daemon.wire import codec
 from brimline.daemon.wire.export import json_safe
 from brimline.daemon.wire.recording import read_recording

@@ -62,10 +62,53 @@ service:
 
 
 @pytest.mark.parametrize("path", SHIPPED, ids=[p.name for p in SHIPPED])
-def test_shipped_configs_pass_check(path, capsys):
+def test_shipped_configs_pass_check(path, capsys, monkeypatch):
+    if "kind: radio" in path.read_text():  # --check opens the radio: a stand-in answers
+        _stand_in_pyadi(monkeypatch)
     assert main(["run", "--config", str(path), "--check"]) == 0
     out = capsys.readouterr().out.strip().splitlines()
     assert len(out) == 1 and ": OK: driver " in out[0]
+
+
+def _stand_in_pyadi(monkeypatch, *, absent_uri=None):
+    """pyadi-iio replaced by a module whose Pluto opens unless its URI is ``absent_uri``."""
+    import types
+
+    from brimline.drivers.sources import radio
+
+    class Pluto:
+        def __init__(self, uri):
+            if uri == absent_uri:
+                raise ConnectionRefusedError(111, "Connection refused")
+
+    monkeypatch.setattr(radio, "load_adi", lambda: types.SimpleNamespace(Pluto=Pluto))
+
+
+def test_radio_check_without_pyadi_iio_is_the_install_hint(capsys, monkeypatch):
+    import builtins
+    import sys
+
+    real_import = builtins.__import__
+
+    def no_adi(name, *args, **kwargs):
+        if name == "adi":
+            raise ImportError("No module named 'adi'")
+        return real_import(name, *args, **kwargs)
+
+    monkeypatch.setattr(builtins, "__import__", no_adi)
+    monkeypatch.delitem(sys.modules, "adi", raising=False)
+    radio_yaml = next(p for p in SHIPPED if p.name == "radio.yaml")
+    assert main(["run", "--config", str(radio_yaml), "--check"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "install with pip install 'brimline[sdr]'" in err[0]
+
+
+def test_radio_check_with_no_device_at_the_uri_names_it(capsys, monkeypatch):
+    _stand_in_pyadi(monkeypatch, absent_uri="ip:192.168.2.1")
+    radio_yaml = next(p for p in SHIPPED if p.name == "radio.yaml")
+    assert main(["run", "--config", str(radio_yaml), "--check"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "driver.radio.uri=ip:192.168.2.1: no device answers" in err[0]
 
 
 def test_the_three_configs_are_shipped():

@@ -9,11 +9,20 @@ import pytest
 
 from brimline.daemon.errors import ConfigError, SourceError
 from brimline.daemon.records import LoadMap
-from brimline.daemon.runtime.config import IqSection, RadioSection, SimSection, parse_section
+from brimline.daemon.runtime.config import (
+    IqSection,
+    IqStreamSection,
+    PushedSection,
+    RadioSection,
+    SimSection,
+    parse_section,
+)
 from brimline.drivers.link.frame import make_plan
 from brimline.drivers.sources import sim as sim_module
 from brimline.drivers.sources.base import Driver
 from brimline.drivers.sources.iq import IqDriver, read_sigmf, write_sigmf
+from brimline.drivers.sources.iqstream import IqStreamDriver
+from brimline.drivers.sources.pushed import PushedDriver
 from brimline.drivers.sources.radio import RadioDriver
 from brimline.drivers.sources.sim import SimDriver
 
@@ -32,11 +41,15 @@ def _map(plan, seq, bits=4, power=1.0):
 
 class TestSections:
     @pytest.mark.parametrize("section, driver", [(SimSection, SimDriver), (IqSection, IqDriver),
-                                                 (RadioSection, RadioDriver)])
+                                                 (RadioSection, RadioDriver),
+                                                 (PushedSection, PushedDriver),
+                                                 (IqStreamSection, IqStreamDriver)])
     def test_fields_are_constructor_arguments(self, section, driver):
-        # plan, map_provider and emulated (the config's emulated: section) come from elsewhere
-        params = set(inspect.signature(driver.__init__).parameters) - {
-            "self", "plan", "map_provider", "emulated"}
+        # Objects injected by the runtime or a test (plan, map provider, device factory,
+        # clock, socket context) and the emulated: section are keywords but not config keys.
+        injected = {"self", "plan", "map_provider", "open_device", "clock", "context",
+                    "emulated"}
+        params = set(inspect.signature(driver.__init__).parameters) - injected
         assert set(section.model_fields) == params
 
     def test_sim_defaults_build_a_driver(self, plan):

@@ -440,7 +440,7 @@ def _tx_config(tmp_path: Path, extra: str = "", **tx) -> Path:
                 status_endpoint="tcp://127.0.0.1:0", frame_rate_hz=RATE_HZ)
     keys.update(tx)
     body = "\n".join(f"  {k}: {v}" for k, v in keys.items())
-    text = textwrap.dedent(f"""\
+    text = textwrap.dedent("""\
         link:
           fft_size: 128
           cp_len: 16

@@ -38,6 +38,7 @@ from brimline.daemon.runtime.service import Service
 from brimline.daemon.runtime.status import summary_line
 from brimline.daemon.wire.recording import recording_paths
 from brimline.daemon.wire.state import StateStore
+from brimline.drivers.sources.radio import probe_radio
 
 __all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "check_paths", "end_summary",
            "security_warnings", "EXIT_SOURCE_FAILED"]
@@ -94,7 +95,9 @@ def check_summary(path: str, config: Config) -> str:
 
     The driver is constructed and closed without producing a frame: a SigMF recording's meta and
     data file are opened and checked (:func:`brimline.drivers.sources.iq.read_sigmf`), a replay
-    file's header is read, nothing is received.
+    file's header is read, nothing is received. A radio is opened and closed again without
+    touching a setting (:func:`brimline.drivers.sources.radio.probe_radio`: pyadi-iio missing or
+    no device at the URI is an error); socket sources are not bound.
 
     Raises
     ------
@@ -103,7 +106,10 @@ def check_summary(path: str, config: Config) -> str:
     """
     plan, loader, _estimator, _change = build_core(config)
     d = config.driver
-    if d.kind != "radio":  # opening a radio would touch the hardware; the others are cheap
+    if d.kind == "radio":  # open and close the device only: no tuning, no transmission
+        if d.radio.backend == "iio":  # the emulated radio needs no probe (and has no device)
+            probe_radio(d.radio.uri, d.radio.device)
+    elif not d.live:  # a socket source would bind its endpoint; the others are cheap
         make_driver(config, plan).close()
     fb = config.fallback
     return (f"{path}: OK: driver {d.kind}, {plan.data_tones.size} data tones of "

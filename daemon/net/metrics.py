@@ -199,7 +199,7 @@ class MetricsEndpoint:
     ...     print(ep.url)
     """
 
-    def __init__(self, *, host: str = "127.0.0.1", port: int = 7345,
+    def __init__(self, *, host: str = "127.0.0.1", port: int = 7349,
                  alarms: Iterable[str] = ()) -> None:
         check_values({"port": port}, METRICS_LIMITS, prefix="metrics.")
         try:  # optional extra: imported only when an endpoint is opened

@@ -31,6 +31,8 @@ from brimline.drivers.sinks.radio import RadioSink
 from brimline.drivers.sinks.sigmf import SigmfSink
 from brimline.drivers.sinks.stream import IqStreamSink
 from brimline.drivers.sources.iq import IqDriver
+from brimline.drivers.sources.iqstream import IqStreamDriver
+from brimline.drivers.sources.pushed import PushedDriver
 from brimline.drivers.sources.radio import RadioDriver
 from brimline.drivers.sources.replay import ReplayDriver
 from brimline.drivers.sources.sim import SimDriver
@@ -118,6 +120,10 @@ def make_driver(config: Config, plan, map_provider=None):
         return IqDriver(plan=plan, **section)
     if kind == "radio":
         return RadioDriver(plan=plan, emulated=config.emulated.model_dump(), **section)
+    if kind == "pushed":
+        return PushedDriver(plan=plan, **section)
+    if kind == "iq_stream":
+        return IqStreamDriver(plan=plan, **section)
     raise SourceError(f"driver.kind={kind!r} is not a known source")  # pragma: no cover
 
 

@@ -55,9 +55,12 @@ from brimline.daemon.limits import (
 from brimline.daemon.net.metrics import METRICS_LIMITS, MetricsEndpoint
 from brimline.daemon.net.publisher import PUBLISH_LIMITS, STATUS_LIMITS, check_publish_settings
 from brimline.daemon.runtime.transmitter import TX_LIMITS
-from brimline.drivers.devices.emulated import EMULATED_LIMITS
 from brimline.drivers.air.channel import check_interferer_window, profile
+from brimline.drivers.devices.emulated import EMULATED_LIMITS
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
+from brimline.drivers.sources.iqstream import IQ_STREAM_LIMITS, IqStreamDriver
+from brimline.drivers.sources.pushed import PUSHED_LIMITS, PushedDriver, check_endpoint
+from brimline.drivers.sources.radio import RADIO_LIMITS, RadioDriver
 from brimline.drivers.sources.replay import REPLAY_LIMITS
 
 __all__ = [
@@ -65,6 +68,8 @@ __all__ = [
     "LoadingSection",
     "DriverSection",
     "ReplaySection",
+    "PushedSection",
+    "IqStreamSection",
     "FallbackSection",
     "ServiceSection",
     "PublishSection",
@@ -101,6 +106,9 @@ def _keyword_defaults(cls) -> dict[str, Any]:
 
 _EST = _keyword_defaults(Estimator)
 _MET = _keyword_defaults(MetricsEndpoint)
+_RADIO = _keyword_defaults(RadioDriver)
+_PUSHED = _keyword_defaults(PushedDriver)
+_IQS = _keyword_defaults(IqStreamDriver)
 _CHG = _keyword_defaults(ChangeControl)
 
 #: Frame detection threshold of the receiver, a fraction of the sync metric's peak of 1.
@@ -362,46 +370,117 @@ class IqSection(Section):
 
 
 class RadioSection(Section):
-    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.sources.radio); tuning is ``link.center_hz``."""
+    """``driver.radio:`` a pyadi-iio radio (brimline.drivers.sources.radio); tuning is ``link.center_hz``.
+
+    Limits are the driver's ``RADIO_LIMITS``; defaults are its constructor's.
+    """
 
     backend: Literal["iio", "emulated"] = Field(
         "iio", description="iio: a pyadi-iio device; emulated: the emulated radio of the "
                            "emulated: section")
-    uri: str = Field("ip:192.168.2.1", description="libiio context URI of the radio")
-    device: str = Field("Pluto", description="pyadi-iio class name of the device")
-    rx_gain_db: float = Field(30.0, description="manual receive gain, dB")
+    uri: str = Field(_RADIO["uri"], description="libiio context URI of the radio")
+    device: str = Field(_RADIO["device"], description="pyadi-iio class name of the device")
+    rx_gain_db: float = Field(_RADIO["rx_gain_db"], description="manual receive gain, dB")
     tx_attenuation_db: float = Field(
-        30.0, description="transmit attenuation, dB (>= 0; more is less power)")
+        _RADIO["tx_attenuation_db"],
+        description="transmit attenuation, dB (>= 0; more is less power)")
     transmit: bool = Field(
-        False, description="also send frames of the default map from this radio (loopback)")
-    buffer_frames: int = Field(4, description="frames per receive buffer")
-    default_bits: int = Field(2, description="bits per tone of the transmitter's default map")
-    sync_threshold: float = Field(0.3, description="frame detection threshold (0..1)")
+        _RADIO["transmit"],
+        description="also send frames of the default map from this radio (loopback)")
+    buffer_frames: int = Field(_RADIO["buffer_frames"], description="frames per receive buffer")
+    default_bits: int = Field(
+        _RADIO["default_bits"], description="bits per tone of the transmitter's default map")
+    sync_threshold: float = Field(
+        _RADIO["sync_threshold"], description="frame detection threshold (0..1)")
+    rx_timeout_s: float = Field(
+        _RADIO["rx_timeout_s"],
+        description="receive timeout (libiio context timeout); a buffer not filled by then is "
+                    "a fault and the device is reopened, s")
+    backoff_s: float = Field(
+        _RADIO["backoff_s"], description="first wait before reopening a faulty device, s")
+    backoff_max_s: float = Field(
+        _RADIO["backoff_max_s"], description="cap of the reopening wait (it doubles), s")
+    max_attempts: int = Field(
+        _RADIO["max_attempts"],
+        description="failed reopenings in a row after which the source fails (0: never)")
 
-    @field_validator("sync_threshold")
+    @field_validator(*RADIO_LIMITS)
     @classmethod
-    def _threshold(cls, v):
-        return _SYNC_THRESHOLD.check("sync_threshold", v)
+    def _within_limits(cls, v, info):
+        return RADIO_LIMITS[info.field_name].check(info.field_name, v)
 
-    @field_validator("tx_attenuation_db")
-    @classmethod
-    def _attenuation(cls, v):
-        return between(0.0, 89.75).check("tx_attenuation_db", v)
+    @model_validator(mode="after")
+    def _backoff_order(self) -> "RadioSection":
+        if self.backoff_max_s < self.backoff_s:
+            raise KeyProblem(("backoff_max_s",), self.backoff_max_s,
+                             f"must be >= backoff_s={self.backoff_s}")
+        return self
 
-    @field_validator("rx_gain_db")
-    @classmethod
-    def _gain_ok(cls, v):
-        return _within(FINITE, "rx_gain_db", v)
 
-    @field_validator("buffer_frames")
-    @classmethod
-    def _buffer_ok(cls, v):
-        return _within(at_least(1), "buffer_frames", v)
+class PushedSection(Section):
+    """``driver.pushed:`` estimates pushed over ZeroMQ by the user's own receiver
+    (brimline.drivers.sources.pushed); limits ``PUSHED_LIMITS``, defaults the constructor's."""
 
-    @field_validator("default_bits")
+    endpoint: str = Field(_PUSHED["endpoint"],
+                          description="ZeroMQ endpoint to bind (or connect to, bind: false)")
+    bind: bool = Field(_PUSHED["bind"],
+                       description="bind the endpoint (senders connect); false: connect to it")
+    pattern: Literal["pull", "sub"] = Field(
+        _PUSHED["pattern"], description="pull (senders PUSH) or sub (senders PUB)")
+    max_message_bytes: int = Field(
+        _PUSHED["max_message_bytes"], description="largest message accepted, bytes")
+    queue_messages: int = Field(
+        _PUSHED["queue_messages"],
+        description="messages waiting at most; beyond, the oldest are dropped and counted")
+    warn_every_s: float = Field(
+        _PUSHED["warn_every_s"],
+        description="least time between two warnings about rejected messages, s")
+
+    @field_validator("endpoint")
     @classmethod
-    def _bits_ok(cls, v):
-        return _within(at_least(0), "default_bits", v)
+    def _endpoint_ok(cls, v):
+        return check_endpoint("endpoint", v)
+
+    @field_validator(*PUSHED_LIMITS)
+    @classmethod
+    def _within_limits(cls, v, info):
+        return PUSHED_LIMITS[info.field_name].check(info.field_name, v)
+
+
+class IqStreamSection(Section):
+    """``driver.iq_stream:`` raw IQ over ZeroMQ through the receiver
+    (brimline.drivers.sources.iqstream); limits ``IQ_STREAM_LIMITS``, defaults the constructor's."""
+
+    endpoint: str = Field(_IQS["endpoint"],
+                          description="ZeroMQ endpoint to connect to (or bind, bind: true)")
+    bind: bool = Field(_IQS["bind"], description="bind the endpoint instead of connecting")
+    pattern: Literal["sub", "pull"] = Field(
+        _IQS["pattern"], description="sub (the sender PUBs) or pull (the sender PUSHes)")
+    sample_format: Literal["cf32", "ci16"] = Field(
+        _IQS["sample_format"],
+        description="cf32: complex float32; ci16: complex int16, full scale 32768")
+    default_bits: int = Field(
+        _IQS["default_bits"], description="bits per tone of the transmitter's default map")
+    sync_threshold: float = Field(
+        _IQS["sync_threshold"], description="frame detection threshold (0..1)")
+    max_message_bytes: int = Field(
+        _IQS["max_message_bytes"], description="largest message accepted, bytes")
+    queue_messages: int = Field(_IQS["queue_messages"],
+                                description="receive queue of the socket, messages")
+    warn_every_s: float = Field(
+        _IQS["warn_every_s"],
+        description="least time between two warnings about dropped messages, s")
+    start_s: float = Field(_IQS["start_s"], description="time_s of the first sample, s")
+
+    @field_validator("endpoint")
+    @classmethod
+    def _endpoint_ok(cls, v):
+        return check_endpoint("endpoint", v)
+
+    @field_validator(*IQ_STREAM_LIMITS)
+    @classmethod
+    def _within_limits(cls, v, info):
+        return IQ_STREAM_LIMITS[info.field_name].check(info.field_name, v)
 
 
 class ReplaySection(Section):
@@ -428,12 +507,15 @@ class DriverSection(Section):
     (``sim`` has defaults, the others need at least their required keys).
     """
 
-    kind: Literal["sim", "iq", "radio", "replay"] = Field(
-        "sim", description="source of estimates: sim, iq (SigMF IQ), radio, replay")
+    kind: Literal["sim", "iq", "radio", "replay", "pushed", "iq_stream"] = Field(
+        "sim", description="source of estimates: sim, iq (SigMF IQ), radio, replay, pushed "
+                           "(estimates over ZeroMQ), iq_stream (raw IQ over ZeroMQ)")
     sim: SimSection = Field(default_factory=SimSection)
     iq: Optional[IqSection] = None
     radio: Optional[RadioSection] = None
     replay: Optional[ReplaySection] = None
+    pushed: Optional[PushedSection] = None
+    iq_stream: Optional[IqStreamSection] = None
 
     @model_validator(mode="after")
     def _kind_has_section(self) -> "DriverSection":
@@ -445,6 +527,12 @@ class DriverSection(Section):
     def selected(self) -> Section:
         """The subsection named by ``kind``."""
         return getattr(self, self.kind)
+
+    @property
+    def live(self) -> bool:
+        """Whether the source is live (a radio or a socket): decisions then run on the daemon's
+        monotonic clock under ``service.clock: auto``."""
+        return self.kind in ("radio", "pushed", "iq_stream")
 
 
 # --------------------------------------------------------------------------- estimator, change
@@ -915,7 +1003,7 @@ class Config(Section):
             raise KeyProblem(("loading", "bits"), list(self.loading.bits),
                              f"go above link.max_bits={link.max_bits}, the largest "
                              f"constellation the link carries")
-        for kind in ("sim", "iq", "radio"):
+        for kind in ("sim", "iq", "radio", "iq_stream"):
             section = getattr(d, kind)
             if section is not None and section.default_bits > link.max_bits:
                 raise KeyProblem(("driver", kind, "default_bits"), section.default_bits,
@@ -937,10 +1025,16 @@ class Config(Section):
     @model_validator(mode="after")
     def _endpoints_distinct(self) -> "Config":
         seen: dict[str, str] = {}
-        for loc in (("publish", "map_endpoint"), ("publish", "snapshot_endpoint"),
-                    ("publish", "ack_endpoint"), ("status", "endpoint"),
-                    ("tx", "status_endpoint")):
-            value = getattr(getattr(self, loc[0]), loc[1])
+        locs = [("publish", "map_endpoint"), ("publish", "snapshot_endpoint"),
+                ("publish", "ack_endpoint"), ("status", "endpoint"),
+                ("tx", "status_endpoint")]
+        for kind in ("pushed", "iq_stream"):  # a socket source that binds, when chosen
+            section = getattr(self.driver, kind)
+            if self.driver.kind == kind and section is not None and section.bind:
+                locs.append(("driver", kind, "endpoint"))
+        for loc in locs:
+            value = getattr(self.driver, loc[1]).endpoint if loc[0] == "driver" else \
+                getattr(getattr(self, loc[0]), loc[1])
             if not _fixed_endpoint(value):
                 continue
             if value in seen:

@@ -34,7 +34,8 @@ The controller gets ``now_s`` as an argument. Which clock it is, is a per-source
   last estimate arrived, only to notice staleness; a source read as fast as possible
   (``realtime`` false: replay, recorded IQ, the simulator in fast mode) has no wall-clock
   staleness at all (its gaps show in its own times), so a busy machine cannot change its maps.
-* ``monotonic`` (radio): ``now_s`` is the daemon's monotonic clock at arrival.
+* ``monotonic`` (live sources: radio, pushed estimates, an IQ stream): ``now_s`` is the
+  daemon's monotonic clock at arrival.
 
 Heartbeats and the status period are I/O pacing and always run on the monotonic clock.
 
@@ -124,7 +125,7 @@ class Service:
         self._follow = follow
         self.plan, self.loader, self._estimator, self._change = build_core(config)
         if config.service.clock == "auto":
-            self.clock_mode = "monotonic" if config.driver.kind == "radio" else "source"
+            self.clock_mode = "monotonic" if config.driver.live else "source"
         else:
             self.clock_mode = config.service.clock
         self.controller: LinkController | None = None
@@ -425,13 +426,21 @@ class Service:
         wall, now = self._clock(), self.core_now()
         return build_status(
             time_s=now, epoch=self.epoch,
-            driver={"name": getattr(self.driver, "name", "driver"), "state": self.driver_state,
+            driver={"name": getattr(self.driver, "name", "driver"), "state": self._driver_state(),
                     "error": self.driver_error,
                     "counters": dict(getattr(self.driver, "counters", {}))},
             acks={k: {"seq": v["seq"], "age_s": wall - v["wall"]} for k, v in self.acks.items()},
             symbol_rate_hz=self.plan.sample_rate_hz / self.plan.symbol_len,
             recording=self._io.recording_status(),
             protocol_errors=self._io.protocol_errors(), **controller_fields(self.controller, now))
+
+    def _driver_state(self) -> str:
+        """The source's state for the status: a running source may say it is reconnecting
+        (a supervised driver's own ``state``: "running", "reconnecting", "failed")."""
+        own = getattr(self.driver, "state", None)
+        if self.driver_state == "running" and isinstance(own, str):
+            return own
+        return self.driver_state
 
     def publish_status(self) -> dict:
         """Build, publish and record one status message now; returns it."""

@@ -50,6 +50,7 @@ ALARMS = {
     "fallback": "the safe fallback map is in force",
     "emergency": "the last change was an emergency rate reduction",
     "driver_failed": "the estimate source stopped with an error",
+    "driver_reconnecting": "the radio is being reopened after a fault (no estimates meanwhile)",
     "no_map": "no map has been published yet",
     "state_unsaved": "the state file cannot be written: new maps are held back",
     "recording_failed": "the recording cannot be written: it stopped, the maps go on",
@@ -122,7 +123,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     epoch : str
         Daemon epoch.
     driver : mapping
-        ``name``, ``state`` ("starting", "running", "ended", "failed"), ``error`` (str or None)
+        ``name``, ``state`` ("starting", "running", "reconnecting", "ended", "failed"),
+        ``error`` (str or None)
         and ``counters`` (mapping reason -> count) of the estimate source.
     frames : mapping
         ``received``, ``accepted``, ``rejected`` (mapping reason -> count), ``decode_errors``,
@@ -192,6 +194,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
         alarms.append("emergency")
     if driver.get("state") == "failed":
         alarms.append("driver_failed")
+    if driver.get("state") == "reconnecting":
+        alarms.append("driver_reconnecting")
     if m is None:
         alarms.append("no_map")
     if state_unsaved:

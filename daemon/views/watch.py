@@ -185,7 +185,8 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
     head.append("epoch ", style="dim").append(str(status.get("epoch", "-")))
     head.append("   source ", style="dim").append(f"{drv.get('name', '-')} ")
     state = str(drv.get("state", "-"))
-    head.append(state, style="bold red" if state == "failed" else "bold green")
+    head.append(state, style="bold red" if state == "failed" else
+                "bold yellow" if state == "reconnecting" else "bold green")
     head.append("   t ", style="dim").append(_fmt(status.get("time_s"), ".1f", " s"))
     if drv.get("error"):
         head.append(f"\nsource error: {drv['error']}", style="bold red")

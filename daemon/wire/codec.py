@@ -388,7 +388,7 @@ def _arrays(kind: str, specs: list, parts: Sequence[memoryview],
             raise ProtocolError(f"{kind}: array spec {i} must have exactly name, dtype, shape",
                                 reason="arrays")
         name, dtype, shape = spec["name"], spec["dtype"], spec["shape"]
-        if not isinstance(name, str) or name in out:
+        if not isinstance(name, str) or name in out or not name.isprintable():
             raise ProtocolError(f"{kind}: array spec {i} has a bad or repeated name "
                                 f"{_short(name)}", reason="arrays")
         if not isinstance(dtype, str) or dtype not in _ALLOWED_DTYPES:

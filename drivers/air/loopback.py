@@ -23,8 +23,8 @@ import struct
 import numpy as np
 import zmq
 
-from brimline.drivers.air.channel import LinkChannel
 from brimline.daemon.records import TonePlan
+from brimline.drivers.air.channel import LinkChannel
 
 __all__ = ["AirSender", "AirReceiver", "StreamChannel", "AIR_HWM"]
 

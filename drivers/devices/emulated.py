@@ -44,7 +44,6 @@ import math
 import queue
 import threading
 import time
-
 from types import MappingProxyType
 
 import numpy as np
