@@ -11,7 +11,9 @@ goodput, frame and bit error rate, maps per minute):
   sockets, no threads, no clock: a seed gives the same run on every machine.
 * **oracle** (:class:`OracleMaps`): the same loader on the simulator's true per-tone SNR of
   the very frame being sent (no estimation noise, no delay): an upper bound for any adaptive
-  scheme with that loader and target.
+  scheme with that loader and target; :func:`best_oracle` adds the least margin with which it
+  meets the target frame error rate on the same realisation (the receiver does not deliver the
+  true SNR: see :mod:`brimline.drivers.link.receiver`).
 * **fixed** (:class:`FixedMaps`): one constellation on every data tone at nominal (flat) power,
   the non-adaptive link; :func:`best_fixed` searches the bit counts on the same channel
   realisation for the one with the most goodput that meets a target frame error rate.
@@ -34,7 +36,7 @@ from brimline.drivers.link.frame import MapSchedule
 from brimline.drivers.sources.sim import SimDriver
 
 __all__ = ["LoopFigures", "OracleMaps", "FixedMaps", "run_closed_loop", "best_fixed",
-           "frame_ser_target"]
+           "best_oracle", "frame_ser_target"]
 
 
 @dataclass(frozen=True)
@@ -141,7 +143,8 @@ class FixedMaps:
 
 def run_closed_loop(sim: SimDriver, n_frames: int, *,
                     controller: LinkController | None = None,
-                    provider: Callable[[int], LoadMap | None] | None = None) -> LoopFigures:
+                    provider: Callable[[int], LoadMap | None] | None = None,
+                    stop_after_errors: int | None = None) -> LoopFigures:
     """Run ``sim`` for ``n_frames`` frames in closed loop and count what it delivered.
 
     Parameters
@@ -157,6 +160,9 @@ def run_closed_loop(sim: SimDriver, n_frames: int, *,
     provider : callable, optional
         Otherwise: ``provider(frame) -> LoadMap`` (an :class:`OracleMaps`, a
         :class:`FixedMaps`); neither gives the default map throughout.
+    stop_after_errors : int, optional
+        Stop early once more frames than this were not delivered (a search that only needs
+        to know the target is missed); the figures are then over the frames sent.
 
     Returns
     -------
@@ -177,12 +183,17 @@ def run_closed_loop(sim: SimDriver, n_frames: int, *,
         est = sim.step()
         delivered[k] = sim.last_delivered
         sent_seq[k] = sim.last_seq
+        if stop_after_errors is not None and sim.link.frames - sim.link.frames_ok > \
+                stop_after_errors:
+            n = k + 1
+            break
         if controller is not None:
             now_s = sim.start_s + sim.frame_time_s(i)
             step = (controller.on_tick(now_s) if est is None
                     else controller.on_estimate(est, est.time_s))
             for m in step.maps:
                 schedule.add(m)
+    delivered, sent_seq = delivered[:n], sent_seq[:n]
     applied = np.count_nonzero(np.diff(sent_seq) != 0) + int(n > 0 and sent_seq[0] >= 0)
     link = sim.link.summary()
     minutes = link["link_time_s"] / 60.0
@@ -219,10 +230,53 @@ def best_fixed(make_sim: Callable[[], SimDriver], n_frames: int, target_fer: flo
         target.
     """
     best: tuple[int | None, LoopFigures | None] = (None, None)
+    limit = int(target_fer * n_frames)
     for b in sorted({int(b) for b in bits if int(b) > 0}):
         with make_sim() as sim:
-            fig = run_closed_loop(sim, n_frames, provider=FixedMaps(sim.plan, b))
+            fig = run_closed_loop(sim, n_frames, provider=FixedMaps(sim.plan, b),
+                                  stop_after_errors=limit)
         if fig.frame_error_rate <= target_fer and (best[1] is None
                                                    or fig.goodput_bps > best[1].goodput_bps):
             best = (b, fig)
     return best
+
+
+def best_oracle(make_sim: Callable[[], SimDriver], make_loader: Callable[[float], Callable],
+                n_frames: int, target_fer: float,
+                extra_margins_db: Iterable[float] = np.arange(0.0, 8.01, 0.5),
+                ) -> tuple[float | None, LoopFigures | None]:
+    """The oracle with the least extra margin whose frame error rate meets the target.
+
+    The oracle loads the true SNR, which is not what the receiver delivers: channel and noise
+    are estimated from one frame, and timing, frequency and phase corrections are not perfect.
+    So, like :func:`best_fixed`, the oracle is searched on the same realisation: extra margins
+    in increasing order until one meets ``target_fer`` (a smaller margin gives more bits).
+
+    Parameters
+    ----------
+    make_sim : callable
+        Makes a fresh simulator of the scenario.
+    make_loader : callable
+        ``make_loader(extra_margin_db)`` gives the loader with that much margin added to the
+        adaptive link's settings.
+    n_frames : int
+        Frames per candidate.
+    target_fer : float
+        Largest acceptable frame error rate.
+    extra_margins_db : iterable of float
+        Candidates, dB.
+
+    Returns
+    -------
+    tuple
+        ``(extra_margin_db, figures)`` of the first candidate that meets the target, or
+        ``(None, None)``.
+    """
+    limit = int(target_fer * n_frames)
+    for extra in sorted(float(m) for m in extra_margins_db):
+        with make_sim() as sim:
+            fig = run_closed_loop(sim, n_frames, provider=OracleMaps(sim, make_loader(extra)),
+                                  stop_after_errors=limit)
+        if fig.frames == n_frames and fig.frame_error_rate <= target_fer:
+            return extra, fig
+    return None, None
