@@ -13,8 +13,8 @@ almost never on the loop:
 
 * the **driver thread** (:class:`~brimline.daemon.runtime.handoff.DriverThread`) iterates
   ``driver.frames()`` and hands each estimate, encoded, to the main thread over an ``inproc``
-  PAIR socket, then one message saying how the source ended. In simulation the driver's
-  transmitter follows the published maps through a real :class:`Follower`, created on that
+  PAIR socket, then one message saying how the source ended. In real-time simulation the
+  driver's transmitter follows the published maps through a real :class:`Follower`, created on that
   thread on first use (:class:`~brimline.daemon.runtime.assemble.FollowerMapProvider`).
 * in **lockstep** (the simulator in fast mode, ``driver.sim.realtime: false``) there is no
   driver thread and no follower: the main thread steps the simulator frame by frame
@@ -108,8 +108,9 @@ class Service:
     driver : Driver, optional
         Source of estimates to use instead of the one ``config.driver`` names (tests, tools).
     follow : bool
-        For the simulator: let its transmitter follow the published maps through a
-        :class:`Follower` (the closed loop). Default True.
+        For the simulator: close the loop (default True): in real time its transmitter follows
+        the published maps through a :class:`Follower`; in fast mode it runs in lockstep with
+        the controller's maps (see the module notes). False: it sends its default map.
 
     Attributes
     ----------

@@ -17,7 +17,8 @@ model is uncoded, so its errors are real errors).
   on the same realisation (:func:`~brimline.drivers.sources.closed_loop.best_oracle`: the
   receiver does not deliver the true SNR).
 * Best fixed: the one constellation on every tone at flat power with the most goodput that
-  meets the target on the same realisation (:func:`~brimline.drivers.sources.closed_loop.best_fixed`).
+  meets the target on the same realisation
+  (:func:`~brimline.drivers.sources.closed_loop.best_fixed`).
 """
 
 from __future__ import annotations
