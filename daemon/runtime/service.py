@@ -14,8 +14,8 @@ almost never on the loop:
 * the **driver thread** (:class:`~brimline.daemon.runtime.handoff.DriverThread`) iterates
   ``driver.frames()`` and hands each estimate, encoded, to the main thread over an ``inproc``
   PAIR socket, then one message saying how the source ended. In real-time simulation the
-  driver's transmitter follows the published maps through a real :class:`Follower`, created on that
-  thread on first use (:class:`~brimline.daemon.runtime.assemble.FollowerMapProvider`).
+  driver's transmitter follows the published maps through a real :class:`Follower`, created on
+  that thread on first use (:class:`~brimline.daemon.runtime.assemble.FollowerMapProvider`).
 * in **lockstep** (the simulator in fast mode, ``driver.sim.realtime: false``) there is no
   driver thread and no follower: the main thread steps the simulator frame by frame
   (``SimDriver.step``), gives each estimate to the controller before the next frame is sent,
@@ -40,7 +40,8 @@ The controller gets ``now_s`` as an argument. Which clock it is, is a per-source
   the simulator therefore make the same decisions however fast they run, and replaying a file
   twice gives the same maps byte for byte. Between estimates (a silent source), the service
   extends the source time by the monotonic time elapsed since the last estimate arrived, only
-  to notice staleness.
+  to notice staleness (not in lockstep: there a frame without an estimate is a tick at its own
+  simulated time, and the wall clock never reaches the controller).
 * ``monotonic`` (radio): ``now_s`` is the daemon's monotonic clock at arrival.
 
 Heartbeats and the status period are I/O pacing and always run on the monotonic clock.
