@@ -257,3 +257,21 @@ def test_seeded_fast_run_repeats_exactly(tmp_path):
     assert runs[0][0] == runs[1][0]
     assert runs[0][1] == runs[1][1]
     assert runs[0][1]["frames"] == 180
+
+
+def test_lockstep_restart_sends_the_restored_map_from_the_first_frame(tmp_path):
+    """After a restart with saved state, the simulated transmitter sends the restored map from
+    frame 0 (its effective frame belongs to the earlier run's frame numbers)."""
+    sim = {"profile": "awgn", "snr_db": 27.0, "realtime": False, "max_frames": 40, "seed": 3}
+    cfg = loopback_config(tmp_path, driver={"kind": "sim", "sim": sim})
+    with Service(cfg) as svc:
+        deadline = time.monotonic() + 60.0  # only catches a hang
+        while svc.driver_state == "running" and time.monotonic() < deadline:
+            svc.step(0.01)
+        saved = svc.current_map
+    assert saved is not None and saved.effective_frame > 0
+    cfg = loopback_config(tmp_path, driver={"kind": "sim", "sim": {**sim, "max_frames": 1}})
+    with Service(cfg) as svc:
+        assert svc.lockstep and svc.current_map.seq == saved.seq
+        svc.step(0.01)
+        assert svc.driver.last_seq == saved.seq
