@@ -408,13 +408,14 @@ class TestEndpoints:
 # --------------------------------------------------------------------------- CLI and service
 
 
-def _write_config(tmp_path: Path, publish: str = "", status: str = "") -> Path:
+def _write_config(tmp_path: Path, publish: str = "", status: str = "",
+                  realtime: bool = False) -> Path:
     p = tmp_path / "daemon.yaml"
     p.write_text(f"""
 driver:
   kind: sim
   sim:
-    realtime: false
+    realtime: {'true' if realtime else 'false'}
     max_frames: 160
     profile: awgn
     doppler_hz: 0.0
@@ -488,8 +489,10 @@ class TestCurveEndToEnd:
         for d, name in (("keys", "daemon"), ("clients", "watcher")):
             assert main(["keys", str(tmp_path / d), "--name", name]) == 0
         (tmp_path / "clients/broken.key").write_text("junk\n")
+        # Real time: the simulated transmitter follows over the sockets (a fast simulation runs
+        # in lockstep and hands maps over directly).
         cfg = load_config(_write_config(tmp_path, "  curve_secret_key: keys/daemon.key_secret\n"
-                                                  "  curve_clients_dir: clients"))
+                                                  "  curve_clients_dir: clients", realtime=True))
         results = {}
 
         def look(name, **keys):

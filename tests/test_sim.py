@@ -178,20 +178,20 @@ class TestSimDriver:
         maps = iter([None, _map(plan, 7, bits=4), _map(plan, 7, bits=4), _map(plan, 8, bits=6)])
         calls = []
 
-        def provider():
-            calls.append(1)
+        def provider(frame):
+            calls.append(frame)
             return next(maps)
 
         with SimDriver(plan=plan, map_provider=provider, realtime=False, max_frames=4,
                        profile="awgn", snr_db=35.0) as drv:
             seen = [e.map_seq_seen for e in drv.frames()]
-        assert seen == [-1, 7, 7, 8] and len(calls) == 4
+        assert seen == [-1, 7, 7, 8] and calls == [0, 1, 2, 3]
         assert drv.counters["bits"] == plan.data_tones.size * plan.data_symbols * (2 + 4 + 4 + 6)
         assert drv.counters["bit_errors"] == 0
 
     def test_map_for_another_plan_is_rejected_and_counted(self, plan):
         other = make_plan(used_tones_half=90)
-        with SimDriver(plan=plan, map_provider=lambda: _map(other, 3), realtime=False,
+        with SimDriver(plan=plan, map_provider=lambda frame: _map(other, 3), realtime=False,
                        max_frames=2) as drv:
             seen = [e.map_seq_seen for e in drv.frames()]
         assert seen == [-1, -1] and drv.counters["map_rejected"] == 2
@@ -485,7 +485,7 @@ def test_closed_loop_estimates_with_loaded_map_and_interferer():
     plan = make_plan(fft_size=256, cp_len=32, sample_rate_hz=3.84e6, used_tones_half=100,
                      pilot_spacing=8, train_symbols=2, data_symbols=12, max_bits=10)
     box = {}
-    drv = SimDriver(plan=plan, map_provider=lambda: box.get("map"), profile="ped_b",
+    drv = SimDriver(plan=plan, map_provider=lambda frame: box.get("map"), profile="ped_b",
                     doppler_hz=0.0, snr_db=27.0, cfo_hz=900.0, interferer_tone=37.5,
                     interferer_db=12.0, realtime=False, max_frames=40, seed=20261201)
     loader = LoadingSection(mode="rate", bits=list(range(9)), target_ser=1e-6,

@@ -11,8 +11,9 @@ import numpy as np
 from _service_fakes import ScriptedDriver, loopback_config
 from rich.console import Console
 
+from brimline.daemon.commands.run import end_summary
 from brimline.daemon.records import LoadMap
-from brimline.daemon.runtime.status import Change, build_status
+from brimline.daemon.runtime.status import Change, build_status, summary_line
 from brimline.daemon.views.watch import band_chart, render, watch
 
 
@@ -126,3 +127,22 @@ def test_power_row_marks_boosted_and_unloaded_groups():
     chart = band_chart([20.0, 20.0, 3.0], [6, 6, 0], [2.0, 0.0, None]).plain
     row = [ln for ln in chart.splitlines() if ln.startswith("power")][0]
     assert row[len("power   "):] == "+= "
+
+
+def test_closed_loop_figures_in_view_line_and_summary():
+    """The simulator's link block (goodput, FER, BER) shows in the view, the status line and
+    the run summary; sources without one show none of it."""
+    link = {"frames": 200, "frames_ok": 190, "frame_errors": 10, "frames_lost": 2,
+            "bits": 400000, "bit_errors": 40, "goodput_bits": 3800000, "link_time_s": 4.0,
+            "frame_error_rate": 0.05, "bit_error_rate": 1e-4, "goodput_bps": 950000.0}
+    st = _status(link=link)
+    assert st["link"]["goodput_bps"] == 950000.0 and st["link"]["frame_errors"] == 10
+    text = _text(render(st))
+    assert "0.950 Mbit/s" in text and "FER 0.05" in text and "BER 0.0001" in text
+    line = summary_line(st)
+    assert "goodput=0.950Mbit/s fer=0.05 ber=0.0001" in line
+    summary = end_summary(st)
+    assert "goodput 0.950 Mbit/s, frame errors 10 of 200 (FER 0.05), BER 0.0001" in summary
+    plain = _status()
+    assert plain["link"] is None
+    assert "goodput" not in _text(render(plain)) + summary_line(plain) + end_summary(plain)

@@ -241,6 +241,17 @@ def end_summary(status: dict) -> str:
         f"  final rate      {rate.get('bits_per_symbol', 0)} bits/symbol"
         + (f", {rbps / 1e6:.3f} Mbit/s" if rbps is not None else ""),
         "  final margin    " + ("-" if margin is None else f"{margin:+.2f} dB"),
+    ]
+    link = status.get("link")
+    if link:
+        gp, fer, ber = (link.get(k) for k in ("goodput_bps", "frame_error_rate",
+                                              "bit_error_rate"))
+        lines.append(
+            f"  link            goodput {'-' if gp is None else f'{gp / 1e6:.3f} Mbit/s'}, "
+            f"frame errors {link.get('frame_errors', 0)} of {link.get('frames', 0)} "
+            f"(FER {'-' if fer is None else f'{fer:.3g}'}), "
+            f"BER {'-' if ber is None else f'{ber:.3g}'}")
+    lines += [
         f"  alarms          {', '.join(status.get('alarms', [])) or 'none'}",
     ]
     dropped = {f"{sock} {reason}": n for sock, reasons in

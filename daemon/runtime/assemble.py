@@ -186,7 +186,8 @@ class FollowerMapProvider:
         self._follower = None
         self._closed = False
 
-    def __call__(self) -> LoadMap | None:
+    def __call__(self, frame: int | None = None) -> LoadMap | None:
+        # Live behaviour: the map the follower holds goes out at once (``frame`` unused).
         if self._closed:
             return None
         if self._follower is None:

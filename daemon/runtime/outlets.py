@@ -9,6 +9,8 @@ and shows in :meth:`Outlets.recording_status` (the status message's ``recording`
 
 from __future__ import annotations
 
+import hashlib
+import json
 import logging
 
 import zmq
@@ -85,13 +87,20 @@ class Outlets:
 
     def _fresh_epoch(self) -> str:
         """A replay without saved state takes its recording's epoch (the same maps, byte for
-        byte, on every replay); anything else a new random one."""
+        byte, on every replay); a simulation in fast (lockstep) mode one derived from the config
+        sections that decide its maps, seed included (the same maps on every run); anything
+        else a new random one."""
         driver = self._config.driver
         if driver.kind == "replay":
             try:
                 return recording_epoch(driver.replay.path)
             except RecordingError:
                 pass  # the replay driver reports the unreadable recording itself
+        if driver.kind == "sim" and not driver.sim.realtime:
+            # What decides the maps; not the sockets, the status stream or the recording.
+            text = json.dumps(self._config.model_dump(
+                mode="json", exclude={"publish", "status", "record"}), sort_keys=True)
+            return hashlib.sha256(text.encode()).hexdigest()[:16]
         return new_epoch()
 
     def reserve(self, seq: int) -> None:

@@ -13,9 +13,18 @@ almost never on the loop:
 
 * the **driver thread** (:class:`~brimline.daemon.runtime.handoff.DriverThread`) iterates
   ``driver.frames()`` and hands each estimate, encoded, to the main thread over an ``inproc``
-  PAIR socket, then one message saying how the source ended. In simulation the driver's
-  transmitter follows the published maps through a real :class:`Follower`, created on that
-  thread on first use (:class:`~brimline.daemon.runtime.assemble.FollowerMapProvider`).
+  PAIR socket, then one message saying how the source ended. In real-time simulation the
+  driver's transmitter follows the published maps through a real :class:`Follower`, created on
+  that thread on first use (:class:`~brimline.daemon.runtime.assemble.FollowerMapProvider`).
+* in **lockstep** (the simulator in fast mode, ``driver.sim.realtime: false``) there is no
+  driver thread and no follower: the main thread steps the simulator frame by frame
+  (``SimDriver.step``), gives each estimate to the controller before the next frame is sent,
+  and hands the controller's maps to the simulated transmitter directly through a
+  :class:`~brimline.drivers.link.frame.MapSchedule` (a map is in force from its effective
+  frame). The maps are still published on the sockets for followers and ``watch``. With the
+  source clock and an epoch derived from the config (see
+  :mod:`brimline.daemon.runtime.outlets`), a seed gives the same maps byte for byte on every
+  run, however busy the machine.
 * the **main thread** owns every other socket (maps, snapshots, heartbeats, status,
   acknowledgements, the inproc receiving end) and waits on all of them with one ``zmq.Poller``
   whose timeout is the nearest deadline (heartbeat, status, staleness, the caller's stop time).
@@ -34,6 +43,8 @@ The controller gets ``now_s`` as an argument. Which clock it is, is a per-source
   last estimate arrived, only to notice staleness; a source read as fast as possible
   (``realtime`` false: replay, recorded IQ, the simulator in fast mode) has no wall-clock
   staleness at all (its gaps show in its own times), so a busy machine cannot change its maps.
+  In lockstep a frame without an estimate is a tick at its own simulated time, and the wall
+  clock never reaches the controller.
 * ``monotonic`` (live sources: radio, pushed estimates, an IQ stream): ``now_s`` is the
   daemon's monotonic clock at arrival.
 
@@ -79,6 +90,7 @@ from brimline.daemon.runtime.handoff import DriverThread, control_message
 from brimline.daemon.runtime.outlets import Outlets
 from brimline.daemon.runtime.status import build_status, controller_fields, summary_line
 from brimline.daemon.wire import codec
+from brimline.drivers.link.frame import MapSchedule
 
 __all__ = ["Service"]
 
@@ -101,8 +113,9 @@ class Service:
     driver : Driver, optional
         Source of estimates to use instead of the one ``config.driver`` names (tests, tools).
     follow : bool
-        For the simulator: let its transmitter follow the published maps through a
-        :class:`Follower` (the closed loop). Default True.
+        For the simulator: close the loop (default True): in real time its transmitter follows
+        the published maps through a :class:`Follower`; in fast mode it runs in lockstep with
+        the controller's maps (see the module notes). False: it sends its default map.
 
     Attributes
     ----------
@@ -144,6 +157,9 @@ class Service:
         self._poller = None
         self._io: Outlets | None = None  # sockets, state file, recorder
         self._provider: FollowerMapProvider | None = None
+        #: Lockstep mode (fast simulation): the maps in force by frame, fed straight from the
+        #: controller (None otherwise).
+        self.schedule: MapSchedule | None = None
         self._started = False
         self._closed = False
 
@@ -191,22 +207,32 @@ class Service:
                 self._io.maps.prime(self._io.restored)
                 log.info("restored map seq %d (epoch %s) from %s", self._io.restored.seq,
                          self.epoch, self.config.service.state_path)
+            d = self.config.driver
             if self._given_driver is not None:
                 self.driver = self._given_driver
+            elif (d.kind == "sim" and self._follow and not d.sim.realtime
+                  and self.clock_mode == "source"):
+                self.schedule = MapSchedule()
+                if self._io.restored is not None:  # its frame numbers are another run's
+                    self.schedule.add(self._io.restored, from_frame=0)
+                self.driver = make_driver(self.config, self.plan, self.schedule)
             else:
-                if self.config.driver.kind == "sim" and self._follow:
+                if d.kind == "sim" and self._follow:
                     self._provider = FollowerMapProvider(follower_factory(
                         self.config, self.plan, self.endpoints, self._context))
                 self.driver = make_driver(self.config, self.plan, self._provider)
-            self._handoff = DriverThread(self._context, self.driver, on_exit=None if
-                                         self._provider is None else self._provider.close)
             self._poller = zmq.Poller()
-            for sock in (self._handoff.rx, *self._io.poll_sockets()):
+            if self.schedule is None:
+                self._handoff = DriverThread(self._context, self.driver, on_exit=None if
+                                             self._provider is None else self._provider.close)
+                self._poller.register(self._handoff.rx, zmq.POLLIN)
+            for sock in self._io.poll_sockets():
                 self._poller.register(sock, zmq.POLLIN)
         except BaseException:
             self.close()
             raise
-        self._handoff.start()
+        if self._handoff is not None:
+            self._handoff.start()
         self.driver_state = "running"
         log.info("started: source %s, clock %s, epoch %s, maps on %s, status on %s",
                  getattr(self.driver, "name", "driver"), self.clock_mode, self.epoch,
@@ -293,8 +319,13 @@ class Service:
                 # A failed source: keep serving the last map, status and fallback until told
                 # to stop (the operator sees driver_failed in the status).
 
+    @property
+    def lockstep(self) -> bool:
+        """Whether the simulator runs in lockstep on the main thread (see the module notes)."""
+        return self.schedule is not None
+
     def _pending(self) -> bool:
-        return self._handoff.pending()
+        return self._handoff is not None and self._handoff.pending()
 
     def step(self, timeout_s: float = 0.05) -> dict | None:
         """Wait up to ``timeout_s`` for input, handle it, and run what is due.
@@ -311,9 +342,14 @@ class Service:
         # bounds the poll so heartbeats stay on time however quiet the sockets are.
         wall = self._clock()
         until_beat = self._io.heartbeat_due(wall)
+        if self.lockstep and self.driver_state == "running":
+            timeout_s = 0.0  # frames are waiting to be simulated: poll the sockets only
         events = dict(self._poller.poll(int(math.ceil(max(0.0, min(timeout_s, until_beat))
                                                       * 1000))))
-        if self._handoff.rx in events:
+        if self.lockstep and self.driver_state == "running":
+            self._lockstep_frames(min(wall + until_beat,
+                                      self._clock() + 1.0 / self.config.status.rate_hz))
+        if self._handoff is not None and self._handoff.rx in events:
             deadline = min(wall + until_beat, self._clock() + 1.0 / self.config.status.rate_hz)
             for handled in itertools.count():
                 if handled and handled % _CLOCK_EVERY == 0 and self._clock() >= deadline:
@@ -328,12 +364,36 @@ class Service:
                     self._note_ack(ack)
         # Staleness while the source is silent: not for a source that runs on its own time
         # as fast as it is read (its gaps show in its estimates' times), unless it failed.
-        if self.driver_state == "failed" or (self.driver_state == "running"
-                                             and not self._source_time_only()):
+        # (In lockstep the source is never silent: a frame without estimate is a tick.)
+        if not self.lockstep and (self.driver_state == "failed" or (
+                self.driver_state == "running" and not self._source_time_only())):
             self._carry_out(self.controller.on_tick(self.core_now()))
         if self._io.status.due(self._clock()):
             return self.publish_status()
         return None
+
+    def _lockstep_frames(self, deadline: float) -> None:
+        """Simulate frames, each processed before the next is sent, until ``deadline`` (on
+        the service clock, read every few frames) or the source ends."""
+        drv = self.driver
+        for handled in itertools.count():
+            if handled and handled % _CLOCK_EVERY == 0 and self._clock() >= deadline:
+                return
+            if drv.closed or (drv.max_frames is not None and drv.next_frame >= drv.max_frames):
+                self.driver_state = "ended"
+                log.info("source %s ended", drv.name)
+                return
+            frame = drv.next_frame
+            try:
+                estimate = drv.step()
+            except BrimlineError as exc:
+                self.driver_state, self.driver_error = "failed", str(exc)
+                log.error("source %s stopped: %s", drv.name, exc)
+                return
+            if estimate is None:
+                self._carry_out(self.controller.on_tick(drv.start_s + drv.frame_time_s(frame)))
+            else:
+                self.process(estimate)
 
     def _handle_inproc(self, frames) -> None:
         msg = control_message(frames)
@@ -391,6 +451,8 @@ class Service:
         self._holding = self.controller.state_unsaved
         sent = []
         for m in step.maps:
+            if self.schedule is not None:
+                self.schedule.add(m)
             frames = self._io.maps.publish(m)
             self._io.save_state(m, frames)
             sent.append(frames)
@@ -424,6 +486,7 @@ class Service:
     def status(self) -> dict:
         """The status message for the current state (see :mod:`brimline.daemon.runtime.status`)."""
         wall, now = self._clock(), self.core_now()
+        link = getattr(self.driver, "link", None)  # the simulator's closed-loop counts
         return build_status(
             time_s=now, epoch=self.epoch,
             driver={"name": getattr(self.driver, "name", "driver"), "state": self._driver_state(),
@@ -432,7 +495,9 @@ class Service:
             acks={k: {"seq": v["seq"], "age_s": wall - v["wall"]} for k, v in self.acks.items()},
             symbol_rate_hz=self.plan.sample_rate_hz / self.plan.symbol_len,
             recording=self._io.recording_status(),
-            protocol_errors=self._io.protocol_errors(), **controller_fields(self.controller, now))
+            protocol_errors=self._io.protocol_errors(),
+            link=None if link is None else link.summary(),
+            **controller_fields(self.controller, now))
 
     def _driver_state(self) -> str:
         """The source's state for the status: a running source may say it is reconnecting

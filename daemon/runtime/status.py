@@ -22,11 +22,18 @@ Layout of the message (version 1)::
      "acks": {follower: {"seq", "age_s"}},
      "recording": {"state": "off" | "on" | "failed", "path", "error"},
      "protocol_errors": {socket: {reason: n}},   # malformed or forged messages dropped
+     "link": {"frames", "frame_errors", "frame_error_rate", "bits", "bit_errors",
+              "bit_error_rate", "goodput_bps", "link_time_s"} | None,   # closed loop only
      "alarms": ["stale", "fallback", "emergency", "driver_failed", ...]}
 
 The band is compact: tones are grouped into at most ``columns`` adjacent groups; each group shows
 its *lowest* SNR (what limits loading), its mean bits and its mean power, rounded to 0.1.
 Non-finite numbers become ``None`` so the message is strict JSON.
+
+The ``link`` block is there when the source knows what was sent (the simulator): payload frames
+sent, those not delivered (payload CRC failed or frame lost), the frame error rate, payload bits
+demodulated and wrong ones, the bit error rate, and the goodput (data bits of delivered frames
+per second of link time); see :class:`~brimline.drivers.link.receiver.LinkTally`.
 """
 
 from __future__ import annotations
@@ -40,7 +47,7 @@ import numpy as np
 from brimline.daemon.core.controller import Change, LinkController
 
 __all__ = ["STATUS_VERSION", "ALARMS", "band_columns", "build_status", "controller_fields",
-           "finite", "summary_line"]
+           "finite", "summary_line", "link_text"]
 
 STATUS_VERSION = 1
 
@@ -113,7 +120,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  stale: bool = False, symbol_rate_hz: float | None = None,
                  columns: int = 128, state_unsaved: bool = False,
                  recording: Mapping[str, Any] | None = None,
-                 protocol_errors: Mapping[str, Mapping[str, int]] | None = None) -> dict:
+                 protocol_errors: Mapping[str, Mapping[str, int]] | None = None,
+                 link: Mapping[str, Any] | None = None) -> dict:
     """Build the status message (see the module docstring for its layout).
 
     Parameters
@@ -159,6 +167,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     protocol_errors : mapping, optional
         Messages the daemon's sockets dropped, by socket (``acks``, ``snapshots``) and reason
         (a codec reason, ``forged``, ``request``).
+    link : mapping, optional
+        The closed loop's counts (``LinkTally.summary()``); None where the source cannot know
+        what was sent.
 
     Returns
     -------
@@ -242,6 +253,14 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                       "error": None if rec.get("error") is None else str(rec["error"])},
         "protocol_errors": {str(sock): {str(r): int(n) for r, n in dict(reasons).items()}
                             for sock, reasons in dict(protocol_errors or {}).items()},
+        "link": None if link is None else {
+            "frames": int(link.get("frames", 0)),
+            "frame_errors": int(link.get("frame_errors", 0)),
+            "frame_error_rate": finite(link.get("frame_error_rate"), 6),
+            "bits": int(link.get("bits", 0)), "bit_errors": int(link.get("bit_errors", 0)),
+            "bit_error_rate": finite(link.get("bit_error_rate"), 9),
+            "goodput_bps": finite(link.get("goodput_bps"), 1),
+            "link_time_s": finite(link.get("link_time_s"))},
         "alarms": alarms,
     }
 
@@ -282,8 +301,18 @@ def summary_line(status: Mapping[str, Any]) -> str:
     alarms = status.get("alarms", [])
     return (f"t={_num(status.get('time_s'), '.1f')}s frames={fr.get('received', 0)} "
             f"rejected={rej} bits/sym={rate.get('bits_per_symbol', 0)} rate={rate_txt} "
-            f"margin={margin_txt} seq={m.get('seq', '-')} "
+            f"margin={margin_txt} seq={m.get('seq', '-')} {link_text(status.get('link'))}"
             f"alarms={','.join(alarms) if alarms else 'none'}")
+
+
+def link_text(link: Mapping[str, Any] | None) -> str:
+    """``goodput=... fer=... ber=... `` of a status message's ``link`` block ("" without one)."""
+    if not link:
+        return ""
+    gp = link.get("goodput_bps")
+    gp_txt = "-" if gp is None else f"{gp / 1e6:.3f}Mbit/s"
+    return (f"goodput={gp_txt} fer={_num(link.get('frame_error_rate'), '.2g')} "
+            f"ber={_num(link.get('bit_error_rate'), '.2g')} ")
 
 
 def _num(v, fmt: str) -> str:

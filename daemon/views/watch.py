@@ -209,6 +209,14 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
                     "rate", "-" if rbps is None else f"{rbps / 1e6:.3f} Mbit/s")
     figures.add_row("margin", _fmt(status.get("margin_db"), "+.1f", " dB"),
                     "map", f"seq {m.get('seq', '-')}  {m.get('kind') or ''}".rstrip())
+    link = status.get("link")
+    if link:
+        gp = link.get("goodput_bps")
+        figures.add_row("goodput", "-" if gp is None else f"{gp / 1e6:.3f} Mbit/s",
+                        "errors", f"FER {_fmt(link.get('frame_error_rate'), '.2g')}  "
+                                  f"BER {_fmt(link.get('bit_error_rate'), '.2g')}  "
+                                  f"({link.get('frame_errors', 0)} of "
+                                  f"{link.get('frames', 0)} frames)")
     acks = status.get("acks", {})
     ack_txt = ", ".join(("" if k == "followers" else f"{k}: ")
                         + f"acked seq {v.get('seq')} ({_fmt(v.get('age_s'), '.1f', ' s')} ago)"

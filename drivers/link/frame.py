@@ -17,6 +17,13 @@ The frame (all symbols carry a cyclic prefix of ``cp_len`` samples)::
   bit's copies lie far apart in frequency, and scrambled by a fixed BPSK pattern.
 * **data**: the data tones carry Gray-mapped QAM per the load map (0 bits = tone off), scaled by
   ``sqrt(power_lin)``; the pilot tones carry known BPSK for common-phase tracking.
+* **payload CRC**: the data symbols' bits, read as one stream (symbol by symbol, tone by tone in
+  ascending order, each tone's value most significant bit first: :func:`payload_stream`), end in
+  a CRC-32 over the bits before it (:func:`crc32`, the IEEE 802.3 CRC-32; the bits packed into
+  bytes most significant bit first, the last byte padded with zeros), written most significant
+  bit first. A map carrying at most 32 bits per frame carries no payload (no CRC either). The
+  receiver checks it (:func:`payload_ok`), so a frame decoded with a wrong map or with bit
+  errors is caught as a frame error.
 
 Every pseudo-random pattern comes from one PRBS15 stream (x^15 + x^14 + 1), so a frame is fixed
 by the plan alone. Scaling: the transmitter's IFFT is unitary, so a unit-power tone has power 1 in
@@ -30,6 +37,7 @@ tones), not the frame layout, so maps stay valid when the training or data symbo
 from __future__ import annotations
 
 import math
+import zlib
 from dataclasses import dataclass
 
 import numpy as np
@@ -45,10 +53,17 @@ __all__ = [
     "Transmitter",
     "TxFrame",
     "crc16",
+    "crc32",
+    "CRC_BITS",
+    "payload_stream",
+    "payload_values",
+    "payload_ok",
+    "payload_data_bits",
     "encode_header",
     "decode_header",
     "qam_points",
     "map_arrays",
+    "MapSchedule",
     "bit_errors",
     "NO_MAP",
     "HEADER_BITS",
@@ -58,6 +73,8 @@ __all__ = [
 NO_MAP = 0xFFFFFFFF
 #: Header length in bits: 32-bit map sequence, 16-bit frame counter, 16-bit CRC.
 HEADER_BITS = 64
+#: Length of the payload CRC at the end of the data symbols' bits.
+CRC_BITS = 32
 _MAX_BITS = 12
 
 
@@ -259,6 +276,78 @@ def crc16(data: bytes) -> int:
     return crc
 
 
+def crc32(data: bytes) -> int:
+    """The IEEE 802.3 CRC-32 of ``data``: polynomial 0x04C11DB7, reflected input and output,
+    initial value and final XOR 0xFFFFFFFF (the standard library's ``zlib.crc32``).
+
+    Examples
+    --------
+    >>> hex(crc32(b"123456789"))
+    '0xcbf43926'
+    """
+    return zlib.crc32(data) & 0xFFFFFFFF
+
+
+def _payload_layout(bits: np.ndarray):
+    """Per data tone and bit position (tones, max bits): which positions carry a bit, and the
+    shift of that bit in the tone's symbol value (most significant first)."""
+    bits = np.asarray(bits, dtype=np.int64)
+    k = np.arange(max(int(bits.max(initial=0)), 1))
+    shift = bits[:, None] - 1 - k[None, :]
+    return shift >= 0, np.maximum(shift, 0)
+
+
+def payload_stream(values: np.ndarray, bits: np.ndarray) -> np.ndarray:
+    """The data symbols' bits as one stream (uint8), in the order the payload CRC reads them.
+
+    Parameters
+    ----------
+    values : ndarray of int, shape (data symbols, data tones)
+        Symbol value per data symbol and tone.
+    bits : ndarray of int, shape (data tones,)
+        Bits per tone of the map the values were sent with.
+
+    Returns
+    -------
+    ndarray of uint8, shape (data symbols * bits.sum(),)
+        Symbol by symbol, tone by tone, each value most significant bit first.
+    """
+    present, shift = _payload_layout(bits)
+    v = np.asarray(values, dtype=np.int64)
+    grid = (v[:, :, None] >> shift[None]) & 1
+    return grid[np.broadcast_to(present, grid.shape)].astype(np.uint8)
+
+
+def payload_values(stream: np.ndarray, bits: np.ndarray, data_symbols: int) -> np.ndarray:
+    """Symbol values (int64, shape (data symbols, data tones)) of a payload bit stream: the
+    inverse of :func:`payload_stream`."""
+    present, shift = _payload_layout(bits)
+    grid = np.zeros((int(data_symbols), *present.shape), np.int64)
+    grid[np.broadcast_to(present, grid.shape)] = np.asarray(stream, dtype=np.int64)
+    return (grid << shift[None]).sum(axis=2) * present.any(axis=1)[None, :]
+
+
+def payload_data_bits(bits: np.ndarray, data_symbols: int) -> int:
+    """Data bits one frame delivers with a map of ``bits`` per tone: every payload bit but the
+    CRC's (0 when the frame carries ``CRC_BITS`` bits or fewer: no payload then)."""
+    total = int(np.asarray(bits, dtype=np.int64).sum()) * int(data_symbols)
+    return total - CRC_BITS if total > CRC_BITS else 0
+
+
+def _crc_bits(stream: np.ndarray) -> np.ndarray:
+    word = crc32(np.packbits(stream).tobytes())
+    return np.unpackbits(np.frombuffer(word.to_bytes(4, "big"), dtype=np.uint8))
+
+
+def payload_ok(values: np.ndarray, bits: np.ndarray) -> bool:
+    """Whether the payload CRC of decided symbol ``values`` sent with ``bits`` per tone passes
+    (False for a map without payload: see :func:`payload_data_bits`)."""
+    stream = payload_stream(values, bits)
+    if stream.size <= CRC_BITS:
+        return False
+    return bool(np.array_equal(_crc_bits(stream[:-CRC_BITS]), stream[-CRC_BITS:]))
+
+
 def encode_header(map_seq: int, counter: int) -> np.ndarray:
     """Header bits (uint8, length 64): map sequence (``NO_MAP`` for none), counter, CRC-16."""
     seq = NO_MAP if map_seq < 0 else int(map_seq) % NO_MAP
@@ -334,6 +423,44 @@ def map_arrays(plan: TonePlan, load_map: LoadMap | None, default_bits: int):
             load_map.tone_index != plan.data_tones):
         raise ValueError(f"map seq={load_map.seq} does not cover the plan's data tones")
     return load_map.seq, load_map.bits.astype(np.int64), load_map.power_lin.astype(np.float64)
+
+
+class MapSchedule:
+    """The transmitter's rule for when a map is in force: from its effective frame on.
+
+    Maps are added in the order they were published; :meth:`at` gives the map in force at a
+    frame: the newest added map whose ``effective_frame`` is at or before it (None before the
+    first). The lockstep simulation and the baselines use it, so a map applies at the frame it
+    names whatever the wall clock did.
+
+    Parameters
+    ----------
+    keep : int
+        Maps waiting for their effective frame that are kept (the oldest go first).
+    """
+
+    def __init__(self, keep: int = 64) -> None:
+        self._pending: list[tuple[int, LoadMap]] = []
+        self._current: LoadMap | None = None
+        self._keep = int(keep)
+
+    def add(self, load_map: LoadMap, *, from_frame: int | None = None) -> None:
+        """Schedule ``load_map`` from its effective frame (or from ``from_frame``, e.g. 0 for a
+        map restored from an earlier run, whose frame numbers mean nothing now)."""
+        start = load_map.effective_frame if from_frame is None else int(from_frame)
+        self._pending.append((start, load_map))
+        del self._pending[:-self._keep]
+
+    def at(self, frame: int) -> LoadMap | None:
+        """The map in force at ``frame`` (frames are asked for in increasing order)."""
+        due = [i for i, (start, _m) in enumerate(self._pending) if start <= frame]
+        if due:
+            self._current = self._pending[due[-1]][1]
+            del self._pending[:due[-1] + 1]
+        return self._current
+
+    def __call__(self, frame: int) -> LoadMap | None:
+        return self.at(frame)
 
 
 # --------------------------------------------------------------------------- frame format
@@ -463,6 +590,10 @@ class Transmitter:
             raise ValueError("power_lin must be finite and >= 0")
         d = plan.data_symbols
         values = rng.integers(0, 1 << bits, size=(d, bits.size))
+        stream = payload_stream(values, bits)
+        if stream.size > CRC_BITS:  # the payload ends in its CRC
+            stream[-CRC_BITS:] = _crc_bits(stream[:-CRC_BITS])
+            values = payload_values(stream, bits, d)
         tones = np.zeros((plan.n_symbols, fmt.n_used), np.complex128)
         tones[0] = fmt.sync
         tones[1:1 + plan.train_symbols] = fmt.train

@@ -16,6 +16,8 @@ take no part in the fine offset, the header vote or the other tones' noise pools
 
 :class:`FrameScanner` runs the receiver over a stream fed in pieces; :meth:`RxFrame.to_estimate`
 turns a frame into the :class:`~brimline.daemon.records.Estimate` record the sources yield.
+:class:`LinkTally` counts what a closed loop delivered: bit errors, frame errors (payload CRC)
+and goodput.
 
 Bad input never raises: a block without a frame, a truncated frame or a header failing its CRC
 comes back as an RxFrame with ``reason`` set. After a failed CRC the estimate comes from the
@@ -40,10 +42,17 @@ import numpy as np
 from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.link.demod import HeaderDemod, MapLookup, MapTableCache, decide
 from brimline.drivers.link.fit import ChannelFit, local_level, squared_magnitude
-from brimline.drivers.link.frame import GRAY, FrameFormat, decode_header
+from brimline.drivers.link.frame import (
+    GRAY,
+    FrameFormat,
+    bit_errors,
+    decode_header,
+    payload_data_bits,
+    payload_ok,
+)
 from brimline.drivers.link.sync import FrameSync
 
-__all__ = ["Receiver", "RxFrame", "MapLookup", "FrameScanner"]
+__all__ = ["Receiver", "RxFrame", "MapLookup", "FrameScanner", "LinkTally"]
 
 #: Fine offset (tone spacings) above which a frame is transformed again with it.
 _REFINE_TONES = 0.01
@@ -375,3 +384,105 @@ class FrameScanner:
         self._buffer = buf[pos:].copy()
         self._offset += pos
         return out
+
+
+class LinkTally:
+    """What a link delivered, frame by frame: bit errors, frame errors and goodput.
+
+    Parameters
+    ----------
+    frame_period_s : float
+        Link time per frame sent, s (``1 / frame_rate_hz``): goodput is per second of link time.
+
+    Attributes
+    ----------
+    frames : int
+        Frames sent whose map carries a payload (the frame error rate's denominator).
+    frames_ok : int
+        Of those, frames decoded with the map their header names and whose payload CRC passed.
+    frames_lost : int
+        Frames with a payload that were not demodulated at all (no sync, header failed, map
+        unknown): frame errors with no bit count.
+    crc_missed : int
+        Frames whose CRC passed although bits were wrong (known only where the sent bits are,
+        as in simulation; the CRC-32 misses about one error pattern in 2^32).
+    bits, bit_errors : int
+        Payload bits demodulated (CRC included) and how many were wrong.
+    goodput_bits : int
+        Data bits (CRC excluded) of the frames counted in ``frames_ok``.
+    sent : int
+        Every frame sent, with or without payload (the link time).
+
+    Notes
+    -----
+    The frame error rate counts lost frames as errors; the bit error rate is over the frames
+    that were demodulated (a lost frame has no bits to compare).
+    """
+
+    def __init__(self, frame_period_s: float) -> None:
+        self.frame_period_s = float(frame_period_s)
+        self.sent = self.frames = self.frames_ok = self.frames_lost = self.crc_missed = 0
+        self.bits = self.bit_errors = self.goodput_bits = 0
+
+    def add(self, sent_values: np.ndarray, bits: np.ndarray,
+            received_values: np.ndarray | None) -> bool:
+        """Count one frame sent with ``bits`` per tone.
+
+        Parameters
+        ----------
+        sent_values : ndarray of int, shape (data symbols, data tones)
+            Symbol values sent (payload CRC included).
+        bits : ndarray of int, shape (data tones,)
+            The map the frame was sent with.
+        received_values : ndarray or None
+            Symbol values decided with that map; None when the frame was not demodulated with
+            it (lost).
+
+        Returns
+        -------
+        bool
+            Whether the frame's payload was delivered (decoded and its CRC passed).
+        """
+        self.sent += 1
+        sent_values = np.asarray(sent_values)
+        data_bits = payload_data_bits(bits, sent_values.shape[0])
+        if data_bits == 0:
+            return False
+        self.frames += 1
+        if received_values is None:
+            self.frames_lost += 1
+            return False
+        errors = bit_errors(sent_values, received_values)
+        self.bits += int(np.asarray(bits, dtype=np.int64).sum()) * sent_values.shape[0]
+        self.bit_errors += errors
+        if not payload_ok(received_values, bits):
+            return False
+        self.crc_missed += errors > 0
+        self.frames_ok += 1
+        self.goodput_bits += data_bits
+        return True
+
+    @property
+    def link_time_s(self) -> float:
+        """Link time of the frames sent, s."""
+        return self.sent * self.frame_period_s
+
+    def summary(self) -> dict:
+        """The counts and rates as a plain dict (the status message's ``link`` block).
+
+        Returns
+        -------
+        dict
+            ``frames``, ``frames_ok``, ``frame_errors``, ``frames_lost``, ``bits``,
+            ``bit_errors``, ``goodput_bits``, ``link_time_s``, ``frame_error_rate`` and
+            ``bit_error_rate`` (None before any), ``goodput_bps``.
+        """
+        errors = self.frames - self.frames_ok
+        time_s = self.link_time_s
+        return {"frames": self.frames, "frames_ok": self.frames_ok, "frame_errors": errors,
+                "frames_lost": self.frames_lost, "bits": self.bits,
+                "bit_errors": self.bit_errors, "goodput_bits": self.goodput_bits,
+                "link_time_s": time_s,
+                "frame_error_rate": errors / self.frames if self.frames else None,
+                "bit_error_rate": self.bit_errors / self.bits if self.bits else None,
+                "goodput_bps": self.goodput_bits / time_s if time_s > 0 else None}

@@ -25,9 +25,9 @@ from brimline.daemon.records import Estimate, LoadMap
 
 __all__ = ["Driver", "MapProvider"]
 
-#: Called by a driver (on its own thread, once per frame) for the map the transmitter should use
-#: now; returns None while there is none.
-MapProvider = Callable[[], "LoadMap | None"]
+#: Called by a driver (on its own thread, once per frame) with the index of the frame about to be
+#: sent, for the map the transmitter should use for it; returns None while there is none.
+MapProvider = Callable[[int], "LoadMap | None"]
 
 
 class Driver(abc.ABC):

@@ -6,6 +6,17 @@ simulator of :mod:`brimline.drivers.air.channel`. Frame ``i`` is sent at simulat
 ``time_s = start_s + i / frame_rate_hz``. With ``realtime`` the driver sleeps until each frame's
 due time on the monotonic clock (waking at once on ``close()``); without it frames come as fast as
 the DSP runs.
+
+Closed-loop accounting: every frame's payload ends in a CRC-32 (see
+:mod:`brimline.drivers.link.frame`); the receiver decodes the data with the map its header
+names, and :attr:`SimDriver.link` (a :class:`~brimline.drivers.link.receiver.LinkTally`) counts
+bit errors, frame errors and goodput per second of link time. The service puts its summary in
+the status message's ``link`` block.
+
+Maps: the map provider is asked, before each frame, for the map to send with frame ``i``
+(``map_provider(i)``). The live daemon's provider hands over whatever its follower holds; the
+lockstep one (fast mode) and the baselines of :mod:`brimline.drivers.sources.baselines` return
+the map in force at frame ``i``, so a seeded run is the same on every machine.
 """
 
 from __future__ import annotations
@@ -22,7 +33,7 @@ from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.air.channel import FadeEvent, LinkChannel, Truth, check_interferer_window
 from brimline.drivers.air.channel import profile as _profile
 from brimline.drivers.link.frame import Transmitter, as_link_plan, bit_errors, map_arrays
-from brimline.drivers.link.receiver import Receiver
+from brimline.drivers.link.receiver import LinkTally, Receiver
 from brimline.drivers.sources.base import Driver, MapProvider
 
 __all__ = ["SimDriver"]
@@ -36,8 +47,8 @@ class SimDriver(Driver):
     plan : TonePlan
         Tone plan and frame layout (from ``ofdm.make_plan``).
     map_provider : callable, optional
-        Called once per frame for the map to transmit; None (or a None result) sends the default
-        map of ``default_bits`` per tone.
+        ``map_provider(frame_index)``, called once per frame for the map to transmit; None (or
+        a None result) sends the default map of ``default_bits`` per tone.
     profile, doppler_hz, snr_db, cfo_hz, lead_max_samples, interferer_tone, interferer_db,
     interferer_start_s, interferer_stop_s, drift_db, drift_period_s : see :class:`~brimline.drivers.air.channel.LinkChannel`
     events : list of dict or FadeEvent
@@ -63,6 +74,12 @@ class SimDriver(Driver):
         "frames" (estimates yielded), receiver reasons ("no_sync", "truncated", "crc_failed",
         "clipped"), "map_rejected" (a map that does not fit the plan), and "bits" /
         "bit_errors" over data tones demodulated with the map the transmitter used.
+    link : LinkTally
+        Frame errors (payload CRC), bit errors and goodput of every frame sent.
+    last_delivered : bool
+        Whether the last frame's payload was delivered (decoded, CRC passed).
+    last_seq : int
+        Sequence number of the map the last frame was sent with (-1: the default map).
     """
 
     name = "sim"
@@ -114,6 +131,14 @@ class SimDriver(Driver):
         self.receiver = Receiver(plan, default_bits=default_bits, sync_threshold=sync_threshold)
         self._sent: collections.OrderedDict[int, tuple] = collections.OrderedDict()
         self._index = 0
+        self.link = LinkTally(1.0 / self.frame_rate_hz)
+        self.last_delivered = False
+        self.last_seq = -1
+
+    @property
+    def next_frame(self) -> int:
+        """Index of the frame :meth:`step` sends next."""
+        return self._index
 
     def frame_time_s(self, index: int) -> float:
         """Simulated time (channel clock, seconds) at which frame ``index`` is sent."""
@@ -130,7 +155,7 @@ class SimDriver(Driver):
         """Send and receive the next frame; its Estimate, or None when it was dropped."""
         i = self._index
         self._index += 1
-        load_map = self.map_provider() if self.map_provider is not None else None
+        load_map = self.map_provider(i) if self.map_provider is not None else None
         try:
             seq, bits, power = map_arrays(self.plan, load_map, self.default_bits)
             if bits.max(initial=0) > self.plan.max_bits:
@@ -143,6 +168,7 @@ class SimDriver(Driver):
             self._sent.move_to_end(seq)
             while len(self._sent) > 32:
                 self._sent.popitem(last=False)
+        self.last_seq = seq
         t_s = self.frame_time_s(i)
         sent = self.transmitter.frame(bits=bits, power_lin=power, map_seq=seq, counter=i,
                                       rng=self.rng)
@@ -150,9 +176,11 @@ class SimDriver(Driver):
         res = self.receiver.receive(block, self._sent.get)
         if res.reason:
             self.counters[res.reason] += 1
+        decoded = res.values is not None and res.map_seq == seq
+        self.last_delivered = self.link.add(sent.values, bits, res.values if decoded else None)
         if not res.has_estimate:
             return None
-        if res.values is not None and res.map_seq == seq:
+        if decoded:
             self.counters["bits"] += int(bits.sum()) * self.plan.data_symbols
             self.counters["bit_errors"] += bit_errors(sent.values, res.values)
         self.counters["frames"] += 1
