@@ -455,8 +455,10 @@ def test_published_maps_meet_the_constraints_and_thresholds(scenario):
         if d.kind is DecisionKind.KEEP:
             assert cc.current is prev
             if d.reason.startswith("margins ok"):
+                # A common fall of the band smaller than common_drop_db is left to the
+                # common-mode rule, so a tone may sit that much below the downshift margin.
                 m = ld.tone_margin_db(prev.bits, prev.power, snr)
-                assert m.min() >= cc.downshift_margin_db - 1e-9
+                assert m.min() >= cc.downshift_margin_db - cc.common_drop_db - 1e-9
             continue
         alloc = d.allocation
         assert cc.current is alloc

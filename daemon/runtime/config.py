@@ -574,6 +574,24 @@ class ChangeSection(Section):
     emergency_margin_db: float = Field(
         _CHG["emergency_margin_db"],
         description="extra margin of the emergency map, dB (recovered by upgrades)")
+    common_drop_db: float = Field(
+        _CHG["common_drop_db"],
+        description="when most loaded tones moved together (within this of their median) "
+                    "and that median fell by this much since the map, one reload repairs the "
+                    "band instead of bit swaps tone by tone, dB")
+    sag_db: float = Field(
+        _CHG["sag_db"],
+        description="the median margin of the loaded tones below -this counts as sagging, dB")
+    sag_max_s: float = Field(
+        _CHG["sag_max_s"],
+        description="a map whose median margin sagged this long is reloaded, s")
+    lookahead_s: float = Field(
+        _CHG["lookahead_s"],
+        description="maps are made for each tone's tracked SNR this far ahead along its "
+                    "present downward slope, so a map lasts through fading (0: off), s")
+    slope_tau_s: float = Field(
+        _CHG["slope_tau_s"],
+        description="time constant of the per-tone slope tracker used by lookahead_s, s")
 
     @field_validator(*CHANGE_LIMITS)
     @classmethod
