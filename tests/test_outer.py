@@ -8,17 +8,25 @@ The frame error process here is synthetic (invented for the test): Bernoulli fra
 probability falls by a factor of ten for every 3 dB of offset, seeded.
 """
 
+import inspect
 import math
 
 import numpy as np
 import pytest
+import zmq
+from protocol_helpers import ANY_PORT, until
 
 from brimline.daemon.core.change import ChangeControl
 from brimline.daemon.core.controller import LinkController
 from brimline.daemon.core.estimator import Estimator
 from brimline.daemon.core.loading import Loader
 from brimline.daemon.core.outer import OUTER_LIMITS, OuterLoop, step_down_ratio
+from brimline.daemon.net.publisher import MapPublisher
 from brimline.daemon.records import Estimate, FrameOutcome, TonePlan
+from brimline.daemon.errors import ConfigError
+from brimline.daemon.runtime.assemble import build_controller, build_core
+from brimline.daemon.runtime.config import OuterSection, load_config
+from brimline.daemon.wire import codec
 
 
 def error_probability(offset_db, fixed_point_db, target):
@@ -111,7 +119,6 @@ class TestRule:
             OuterLoop(**kwargs)
 
     def test_limits_cover_every_keyword(self):
-        import inspect
         assert set(OUTER_LIMITS) == set(inspect.signature(OuterLoop).parameters)
 
 
@@ -179,3 +186,61 @@ def test_frame_outcome_record_checks_its_fields(fields, match):
     good = dict(epoch="e", seq=0, frame=0, errored=False, time_s=0.0)
     with pytest.raises(ValueError, match=match):
         FrameOutcome(**{**good, **fields})
+
+
+# ----------------------------------------------------------------------------- the socket
+
+class TestOutcomeSocket:
+    """The daemon's outcome PULL: good outcomes come through, anything else is counted and
+    dropped (the codec's ProtocolError path), never raised."""
+
+    def test_good_and_hostile_messages(self, ctx):
+        with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT,
+                          ack_endpoint=None, outcome_endpoint=ANY_PORT, context=ctx,
+                          linger_s=0.0) as pub:
+            push = ctx.socket(zmq.PUSH)
+            push.setsockopt(zmq.LINGER, 0)
+            push.connect(pub.outcome_endpoint)
+            good = FrameOutcome("e1", 3, 17, True, 1.5)
+            hostile = [
+                [b"outcome"],                                        # no header
+                [b"outcome", b"{not json"],                          # bad JSON
+                codec.encode("ack", {"epoch": "e1", "seq": 1, "frame": 2, "time_s": 0.0}),
+                codec.encode(codec.TOPIC_OUTCOME, {"seq": 1}),       # a dict, not the record
+                [b"outcome", b'{"v": 1, "type": "frame_outcome", "fields": {"epoch": "e", '
+                             b'"seq": -4, "frame": 1, "errored": false, "time_s": 0.0}, '
+                             b'"arrays": [], "crc32": 0}'],          # negative seq
+                [b"outcome", b"x" * (128 * 1024)],                   # over the size limit
+            ]
+            for frames in hostile:
+                push.send_multipart(frames)
+            push.send_multipart(codec.encode(codec.TOPIC_OUTCOME, good))
+            got = []
+            assert until(lambda: got.extend(pub.poll_outcomes()) or got, timeout_s=10.0)
+            assert got == [good]
+            assert until(lambda: pub.poll_outcomes() == [] and
+                         pub.counters["bad_outcomes"] == len(hostile) - 1, timeout_s=10.0)
+            push.close()
+
+
+class TestConfig:
+    def test_section_keys_are_the_constructor_kwargs(self):
+        defaults = {k: p.default for k, p in inspect.signature(OuterLoop).parameters.items()}
+        assert OuterSection().model_dump() == defaults
+
+    def test_yaml_errors_name_the_key(self, tmp_path):
+        path = tmp_path / "c.yaml"
+        path.write_text("outer:\n  step_up_db: 0.2\n  target_fer: 1.5\n")
+        with pytest.raises(ConfigError, match=r"line 3: outer.target_fer=1.5"):
+            load_config(path)
+
+    def test_outer_section_makes_the_controllers_loop(self, tmp_path):
+        path = tmp_path / "c.yaml"
+        path.write_text("outer:\n  target_fer: 0.05\n")
+        config = load_config(path)
+        parts = build_core(config)
+        ctl = build_controller(config, *parts, epoch="e")
+        assert ctl.outer.target_fer == 0.05
+        path.write_text("change:\n  up_dwell_s: 2.0\n")
+        config = load_config(path)
+        assert build_controller(config, *build_core(config), epoch="e").outer is None

@@ -40,6 +40,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from brimline.daemon.core.change import CHANGE_LIMITS, ChangeControl, check_change_settings
 from brimline.daemon.core.estimator import ESTIMATOR_LIMITS, Estimator
+from brimline.daemon.core.outer import OUTER_LIMITS, OuterLoop, check_outer_settings
 from brimline.daemon.core.loading import Loader, allowed_bits, check_target_bits
 from brimline.daemon.core.qam import TARGET_SER, qam_gap_db
 from brimline.daemon.errors import ConfigError
@@ -93,6 +94,7 @@ def _keyword_defaults(cls) -> dict[str, Any]:
 
 _EST = _keyword_defaults(Estimator)
 _CHG = _keyword_defaults(ChangeControl)
+_OUT = _keyword_defaults(OuterLoop)
 
 #: Frame detection threshold of the receiver, a fraction of the sync metric's peak of 1.
 _SYNC_THRESHOLD = between(0.0, 1.0, low_open=True, high_open=True)
@@ -604,6 +606,37 @@ class ChangeSection(Section):
         return self
 
 
+class OuterSection(Section):
+    """``outer:`` the outer margin loop (brimline.daemon.core.outer.OuterLoop).
+
+    Frame outcomes from the receiver side (``publish.outcome_endpoint``) steer an offset added to
+    the loading gap so that the frame error rate settles at ``target_fer``. Without outcomes for
+    ``quiet_s`` the offset is 0 dB.
+    """
+
+    target_fer: float = Field(_OUT["target_fer"], description="frame error rate to settle at")
+    step_up_db: float = Field(
+        _OUT["step_up_db"],
+        description="offset added per errored frame; a good frame takes off "
+                    "step_up_db * target_fer / (1 - target_fer), dB")
+    min_offset_db: float = Field(_OUT["min_offset_db"], description="lowest offset (<= 0), dB")
+    max_offset_db: float = Field(_OUT["max_offset_db"], description="highest offset (>= 0), dB")
+    window_frames: int = Field(_OUT["window_frames"],
+                               description="outcomes over which status shows the error rate")
+    quiet_s: float = Field(
+        _OUT["quiet_s"], description="no outcome for this long: the loop is off (offset 0 dB), s")
+
+    @field_validator(*OUTER_LIMITS)
+    @classmethod
+    def _within_limits(cls, v, info):
+        return OUTER_LIMITS[info.field_name].check(info.field_name, v)
+
+    @model_validator(mode="after")
+    def _keys_agree(self) -> "OuterSection":
+        check_outer_settings(self.model_dump())
+        return self
+
+
 # --------------------------------------------------------------------------- publish, status, record
 
 
@@ -644,6 +677,9 @@ class PublishSection(Section):
                                    description="ROUTER answering current-map requests (bind)")
     ack_endpoint: Optional[str] = Field("tcp://127.0.0.1:7344",
                                         description="PULL for transmitter acks; null for none")
+    outcome_endpoint: Optional[str] = Field(
+        None, description="PULL for the receiver side's frame outcomes (outer margin loop); "
+                          "null for none")
     heartbeat_s: float = Field(0.5, description="heartbeat interval, seconds")
     map_hwm: int = Field(1000, description="map PUB send high-water mark, messages")
     linger_s: float = Field(1.0, description="time unsent maps are kept at shutdown, seconds")
@@ -653,7 +689,7 @@ class PublishSection(Section):
         None, description="folder of authorised clients' .key files; null admits any client "
                           "that knows the daemon's public key")
 
-    @field_validator("map_endpoint", "snapshot_endpoint", "ack_endpoint")
+    @field_validator("map_endpoint", "snapshot_endpoint", "ack_endpoint", "outcome_endpoint")
     @classmethod
     def _endpoints(cls, v, info):
         return _endpoint_ok(info.field_name, v)
@@ -784,6 +820,8 @@ class Config(Section):
     estimator: EstimatorSection = Field(default_factory=EstimatorSection)
     loading: LoadingSection = Field(default_factory=LoadingSection)
     change: ChangeSection = Field(default_factory=ChangeSection)
+    outer: Optional[OuterSection] = Field(
+        None, description="outer margin loop; absent: none (outer: {} for the defaults)")
     publish: PublishSection = Field(default_factory=PublishSection)
     status: StatusSection = Field(default_factory=StatusSection)
     record: RecordSection = Field(default_factory=RecordSection)
@@ -821,7 +859,8 @@ class Config(Section):
     def _endpoints_distinct(self) -> "Config":
         seen: dict[str, str] = {}
         for loc in (("publish", "map_endpoint"), ("publish", "snapshot_endpoint"),
-                    ("publish", "ack_endpoint"), ("status", "endpoint")):
+                    ("publish", "ack_endpoint"), ("publish", "outcome_endpoint"),
+                    ("status", "endpoint")):
             value = getattr(getattr(self, loc[0]), loc[1])
             if not _fixed_endpoint(value):
                 continue

@@ -63,7 +63,7 @@ import zmq
 
 from brimline.daemon.core.controller import LinkController, Step
 from brimline.daemon.errors import BrimlineError, ProtocolError
-from brimline.daemon.records import Estimate, LoadMap
+from brimline.daemon.records import Estimate, FrameOutcome, LoadMap
 from brimline.daemon.runtime.assemble import (
     FollowerMapProvider,
     build_controller,
@@ -314,8 +314,11 @@ class Service:
                 self._handle_inproc(frames)
         for sock in self._io.poll_sockets():
             if sock in events:
-                for ack in self._io.handle(sock):
-                    self._note_ack(ack)
+                for message in self._io.handle(sock):
+                    if isinstance(message, FrameOutcome):
+                        self.controller.on_outcome(message, self.core_now())
+                    else:
+                        self._note_ack(message)
         # Staleness while the source is silent.
         if self.driver_state in ("running", "failed"):
             self._carry_out(self.controller.on_tick(self.core_now()))

@@ -21,6 +21,8 @@ Layout of the message (version 1)::
      "changes": [{"time_s", "kind", "reason", "seq"}, ...],   # newest last
      "acks": {follower: {"seq", "age_s"}},
      "recording": {"state": "off" | "on" | "failed", "path", "error"},
+     "outer": {"active", "offset_db", "fer", "window", "target_fer", "outcomes", "errored",
+               "repeated", "went_off", "dropped": {reason: n}} | None,   # outer margin loop
      "alarms": ["stale", "fallback", "emergency", "driver_failed", ...]}
 
 The band is compact: tones are grouped into at most ``columns`` adjacent groups; each group shows
@@ -110,7 +112,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  changes: Sequence[Change] = (), acks: Mapping[str, Mapping] | None = None,
                  stale: bool = False, symbol_rate_hz: float | None = None,
                  columns: int = 128, state_unsaved: bool = False,
-                 recording: Mapping[str, Any] | None = None) -> dict:
+                 recording: Mapping[str, Any] | None = None,
+                 outer: Mapping[str, Any] | None = None) -> dict:
     """Build the status message (see the module docstring for its layout).
 
     Parameters
@@ -152,6 +155,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     recording : mapping, optional
         ``state`` ("off", "on", "failed"), ``path`` and ``error`` of the recording; "failed"
         raises the alarm ``recording_failed``.
+    outer : mapping, optional
+        The outer margin loop's status (:meth:`LinkController.outer_status`); None without
+        an outer loop.
 
     Returns
     -------
@@ -231,6 +237,15 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
         "recording": {"state": str(rec.get("state", "off")),
                       "path": None if rec.get("path") is None else str(rec["path"]),
                       "error": None if rec.get("error") is None else str(rec["error"])},
+        "outer": None if outer is None else {
+            "active": bool(outer.get("active", False)),
+            "offset_db": finite(outer.get("offset_db"), 2),
+            "fer": finite(outer.get("fer"), 4),
+            "window": int(outer.get("window", 0)),
+            "target_fer": finite(outer.get("target_fer")),
+            **{k: int(outer.get(k, 0)) for k in ("outcomes", "errored", "repeated",
+                                                   "went_off")},
+            "dropped": {str(k): int(v) for k, v in dict(outer.get("dropped", {})).items()}},
         "alarms": alarms,
     }
 
@@ -243,7 +258,7 @@ def controller_fields(controller: LinkController, time_s: float) -> dict[str, An
     dict
         ``frames`` (counters, rejections, the estimator's tracking counters), ``estimate_age_s``,
         ``tone_index`` and ``snr_db`` of the tracked view, ``current_map``, ``current_kind``,
-        ``maps_published``, ``changes``, ``stale`` and ``state_unsaved``.
+        ``maps_published``, ``changes``, ``stale``, ``state_unsaved`` and ``outer``.
     """
     c = controller
     tracked = c.last_tracked
@@ -255,7 +270,7 @@ def controller_fields(controller: LinkController, time_s: float) -> dict[str, An
                 snr_db=None if tracked is None else tracked.snr_db,
                 current_map=c.current_map, current_kind=c.current_kind,
                 maps_published=c.maps_published, changes=list(c.changes), stale=c.stale,
-                state_unsaved=c.state_unsaved)
+                state_unsaved=c.state_unsaved, outer=c.outer_status(time_s))
 
 
 def summary_line(status: Mapping[str, Any]) -> str:
