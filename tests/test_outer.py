@@ -160,6 +160,23 @@ class TestController:
         status = ctl.outer_status(4.0)
         assert status["offset_db"] == 3.0 and status["outcomes"] == 3 and status["active"]
 
+    def test_offset_fall_reloads_at_once(self):
+        """Good frames lower the offset; once it is common_drop_db below the map's, one reload
+        follows at once (no upgrade dwell), with more bits."""
+        plan, ctl = controller(OuterLoop(target_fer=0.1, step_up_db=1.0, quiet_s=100.0))
+        for j in range(3):
+            ctl.on_outcome(FrameOutcome("e1", 0, j, True, 0.0), 0.0)
+        for k in range(300):
+            ctl.on_estimate(estimate(plan, k), k * 0.01)
+        before = ctl.current_map
+        assert before.gap_db == pytest.approx(15.8)
+        for j in range(3, 3 + 12):   # 12 good frames: -12/9 dB
+            ctl.on_outcome(FrameOutcome("e1", before.seq, j, False, 3.0), 3.0)
+        step = ctl.on_estimate(estimate(plan, 300), 3.0)
+        assert len(step.maps) == 1 and "outer loop offset" in step.reason
+        assert step.maps[0].total_bits > before.total_bits
+        assert step.maps[0].gap_db == pytest.approx(15.8 - 12 / 9)
+
     def test_foreign_and_repeated_outcomes_are_counted_and_dropped(self):
         plan, ctl = controller(OuterLoop())
         assert not ctl.on_outcome(FrameOutcome("other", 0, 1, True, 0.0), 0.0)

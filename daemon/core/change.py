@@ -244,7 +244,7 @@ class ChangeControl:
         self._counters = dict.fromkeys(
             ("keep", "bit_swap", "reload", "emergency", "fallback", "forced", "upgrade",
              "held_persist", "held_dwell", "held_rate", "infeasible", "bad_input",
-             "common_mode", "sag"), 0)
+             "common_mode", "sag", "outer"), 0)
         self._current: Allocation | None = None
         self._margin_at_0db = None      # tone margins of the current map at 0 dB SNR
         self._n_loaded = 0
@@ -257,6 +257,8 @@ class ChangeControl:
         self._eff_now = np.empty(0)      # the same, on the present call
         self._loaded = np.empty(0, dtype=bool)
         self._sag_since_s = math.nan     # since when the median loaded margin is below -sag_db
+        self._offset_now = 0.0           # the outer loop's offset on the present call
+        self._map_offset_db = 0.0        # ... and when the current map was made
         self._next_upgrade_s = -math.inf
         self._gain_since_s = math.nan   # since when an upgrade has been worth it, continuously
         self._last_gain = 0
@@ -309,7 +311,7 @@ class ChangeControl:
 
     # ------------------------------------------------------------------ decisions
 
-    def decide(self, tracked: Tracked, now_s: float) -> Decision:
+    def decide(self, tracked: Tracked, now_s: float, *, offset_db: float = 0.0) -> Decision:
         """Decide for one tracked view of the channel; adopt the new map unless ``keep``.
 
         Parameters
@@ -318,6 +320,11 @@ class ChangeControl:
             The estimator's view; ``effective_snr_db`` is what loading uses.
         now_s : float
             The caller's clock, seconds.
+        offset_db : float
+            The outer margin loop's offset, dB: added to the gap (every tone's effective SNR
+            is lowered by it after the lookahead). When it has fallen by ``common_drop_db``
+            since the current map was made, the map is reloaded at once (map rate limit
+            permitting).
 
         Returns
         -------
@@ -328,7 +335,10 @@ class ChangeControl:
         eff_db = tracked.effective_snr_db
         if not (math.isfinite(eff_db.sum()) and math.isfinite(tracked.snr_db.sum())):
             return self._hold("bad_input", "tracked SNR is not finite: map kept")
-        eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s)
+        offset_db = float(offset_db) if math.isfinite(offset_db) else 0.0
+        eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s) - offset_db
+        self._offset_now = offset_db
+        self._eff_now = eff_db   # what a map made on this call is made on
         mean_db = float(tracked.snr_db.mean())
         cur = self._current
         since_map = now_s - self._changed_s
@@ -347,7 +357,6 @@ class ChangeControl:
 
         # With power proportional to 1 / snr for given bits (the SNR-gap model), a tone's margin
         # in dB is its margin at 0 dB SNR plus its SNR in dB: one addition per frame.
-        self._eff_now = eff_db
         margins = self._margin_at_0db + eff_db
         common_db, n_common = self._common_shift(eff_db)
         coherent = n_common >= 0.5 * self._n_loaded and self._n_loaded > 0
@@ -412,6 +421,14 @@ class ChangeControl:
             self._counters[key] += 1
             return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {what}{note}", now_s,
                                mean_db, restart_upgrade=False)
+
+        if offset_db <= self._map_offset_db - self.common_drop_db and rate_wait <= 0:
+            alloc, note = self._load(_lin(eff_db))
+            self._counters["outer"] += 1
+            return self._adopt(DecisionKind.RELOAD, alloc,
+                               f"reload: outer loop offset {offset_db:+.1f} dB, "
+                               f"{self._map_offset_db - offset_db:.1f} dB below the map's{note}",
+                               now_s, mean_db, restart_upgrade=False)
 
         gain = self._upgrade_gain(eff_db, cur, now_s)
         due = self._upgrade_due(now_s)
@@ -549,6 +566,7 @@ class ChangeControl:
         self._eff_at_map = (self._eff_now if self._eff_now.size == alloc.bits.size
                             else np.full(alloc.bits.size, np.nan))
         self._sag_since_s = math.nan
+        self._map_offset_db = self._offset_now
         self._next_upgrade_s = -math.inf
         if restart_upgrade:
             self._gain_since_s = math.nan

@@ -30,10 +30,12 @@ counts from the newest accepted estimate; before the first, from the first estim
 Outer margin loop
 -----------------
 With ``outer`` (an :class:`~brimline.daemon.core.outer.OuterLoop`), :meth:`on_outcome` feeds
-it the receiver's frame outcomes, and every tracked view is handed to change control with its
-effective SNR lowered by the loop's offset at ``now_s``: the same as loading with the gap
-raised by the offset. A change of the offset is thus a common-mode change of the band, which
-change control treats as one decision. Each map's ``gap_db`` carries the gap plus the offset
+it the receiver's frame outcomes, and change control receives the loop's offset at ``now_s``
+with every tracked view (``decide(tracked, now_s, offset_db=...)``) and lowers the effective
+SNR by it: the same as loading with the gap raised by the offset. A rise of the offset is a
+common-mode fall of the band (one reload per ``change.common_drop_db``); a fall of the offset
+by as much is one reload at once, without the upgrade's dwell (the offset is no noisy
+estimate). Each map's ``gap_db`` carries the gap plus the offset
 it was made with (the fallback map carries the plain gap). Outcomes of another epoch, or with
 a frame number that does not increase, are dropped and counted.
 
@@ -50,7 +52,6 @@ until a later reserve succeeds. Without ``reserve`` every seq is publishable.
 from __future__ import annotations
 
 import collections
-import dataclasses
 import math
 from dataclasses import dataclass
 from typing import Callable
@@ -273,13 +274,12 @@ class LinkController:
             return self._step(now_s, "keep", "no tracked view yet", maps, changes, held)
         self.last_tracked = tracked
         if self.outer is not None:
-            # The outer loop's offset raises the gap: every tone's effective SNR is lowered by
-            # it, so a step of the offset is a common-mode change for change control.
+            # The outer loop's offset raises the gap: change control lowers every tone's
+            # effective SNR by it (a common-mode change of the band).
             self._offset_db = self.outer.offset_db(now_s)
-            if self._offset_db != 0.0:
-                tracked = dataclasses.replace(
-                    tracked, effective_snr_db=tracked.effective_snr_db - self._offset_db)
-        decision = self.change.decide(tracked, now_s)
+            decision = self.change.decide(tracked, now_s, offset_db=self._offset_db)
+        else:
+            decision = self.change.decide(tracked, now_s)
         kind = decision.kind.value
         if decision.kind is not DecisionKind.KEEP:
             self._make_map(decision.allocation, kind, decision.reason, now_s, False,
