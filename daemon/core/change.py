@@ -145,7 +145,7 @@ def check_change_settings(settings: Mapping[str, Any], *, prefix: str = "") -> N
 
 
 _KEEP = DecisionKind.KEEP
-_SLOPE_POOL = 9        # tones pooled (centred) for the slope of lookahead_s
+_SLOPE_KERNEL = np.full(9, 1.0 / 9)   # tones pooled (centred) for the slope of lookahead_s
 _MAX_SNR_DB = 100.0   # no tone is better than this; keeps the linear SNR finite
 
 
@@ -400,7 +400,7 @@ class ChangeControl:
 
         # Common mode: the band as a whole fell by common_drop_db since the map (most loaded
         # tones moved together); or the map's median margin sat below -sag_db for sag_max_s.
-        median_db = float(np.median(margins[self._loaded])) if self._n_loaded else math.inf
+        median_db = _median(margins[self._loaded]) if self._n_loaded else math.inf
         if median_db < -self.sag_db:
             self._sag_since_s = min(self._sag_since_s, now_s) \
                 if not math.isnan(self._sag_since_s) else now_s
@@ -493,7 +493,7 @@ class ChangeControl:
         delta = eff_db[self._loaded] - self._eff_at_map[self._loaded]
         if not np.isfinite(delta).all():
             return 0.0, 0
-        shift = float(np.median(delta))
+        shift = _median(delta)
         return shift, int(np.count_nonzero(np.abs(delta - shift) <= self.common_drop_db))
 
     def _ahead(self, eff_db: np.ndarray, now_s: float) -> np.ndarray:
@@ -511,11 +511,10 @@ class ChangeControl:
         self._prev_eff_db, self._prev_s = eff_db, now_s
         if self.lookahead_s == 0.0:
             return eff_db
-        slope = self._slope_db_s
-        if slope.size >= _SLOPE_POOL:
-            # pooled over neighbouring tones: a fade moves them together, noise does not
-            kernel = np.full(_SLOPE_POOL, 1.0 / _SLOPE_POOL)
-            slope = np.convolve(np.pad(slope, _SLOPE_POOL // 2, mode="edge"), kernel, "valid")
+        # pooled over neighbouring tones (a fade moves them together, noise does not); zeros
+        # beyond the band's edges, so the edge tones are extrapolated a little less
+        half = _SLOPE_KERNEL.size // 2
+        slope = np.convolve(self._slope_db_s, _SLOPE_KERNEL)[half:half + eff_db.size]
         # at most an emergency drop: a step (a confirmed drop) is not a trend to follow
         return eff_db - np.minimum(self.lookahead_s * np.maximum(-slope, 0.0),
                                    self.emergency_drop_db)
@@ -657,6 +656,15 @@ class ChangeControl:
         alloc = Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
                            total_power=total_power, margin_db=margin_db)
         return alloc, int(np.count_nonzero((cur.bits != bits) | (cur.power != power)))
+
+
+def _median(x: np.ndarray) -> float:
+    """Median of a non-empty 1-D array (np.median without its checks: this runs per frame)."""
+    k = x.size // 2
+    if x.size % 2:
+        return float(np.partition(x, k)[k])
+    part = np.partition(x, (k - 1, k))
+    return 0.5 * float(part[k - 1] + part[k])
 
 
 def _lin(db: np.ndarray) -> np.ndarray:
