@@ -314,11 +314,15 @@ class Service:
                 self._handle_inproc(frames)
         for sock in self._io.poll_sockets():
             if sock in events:
+                bad = self._io.maps.counters["bad_outcomes"]
                 for message in self._io.handle(sock):
                     if isinstance(message, FrameOutcome):
                         self.controller.on_outcome(message, self.core_now())
                     else:
                         self._note_ack(message)
+                # outcomes the publisher could not decode show in status outer.dropped too
+                for _ in range(self._io.maps.counters["bad_outcomes"] - bad):
+                    self.controller.count_bad_outcome()
         # Staleness while the source is silent.
         if self.driver_state in ("running", "failed"):
             self._carry_out(self.controller.on_tick(self.core_now()))
