@@ -59,6 +59,14 @@ loading target, whose gap already includes the configured target margin):
    channel the slope is near zero and nothing changes. The trade-off is visible in the
    benchmark (``fading1hz_*``: outage and rate with and without change control).
 
+9. **Outer loop offset** (``decide(..., offset_db=...)``, from the link controller's outer
+   margin loop): every tone's effective SNR is lowered by the offset after the lookahead (so a
+   step of the offset is no slope); a rise of the offset is a common fall of the band (rule 5);
+   a fall by ``common_drop_db`` since the map was made reloads at once, without the upgrade's
+   evidence and dwell, because the offset is the loop's decision, not a noisy estimate.
+   Without that, the upgrade hysteresis holds the map below the loop's offset, the offset
+   runs into its lower bound, and the frame error rate settles below the target.
+
 Separate upshift and downshift margins with minimum times follow the idea of DSL online rate
 adaptation (ITU-T G.997.1, as described in IETF RFC 5650): the map moves down fast when the
 link is failing and up slowly, only for a clear gain; the downshift persistence
@@ -187,6 +195,19 @@ class ChangeControl:
         Drop of the mean tracked SNR since the current map that makes an emergency, dB.
     emergency_margin_db : float
         Extra margin of the emergency map, dB.
+    common_drop_db : float
+        A fall of the band's common part (median change of the loaded tones, with at least
+        half of them within this of it) by this much since the map is one reload, dB; a fall
+        of the outer loop's offset by as much reloads at once as well.
+    sag_db : float
+        The median margin of the loaded tones below ``-sag_db`` counts as sagging, dB.
+    sag_max_s : float
+        A map that sagged this long without a break is reloaded, seconds.
+    lookahead_s : float
+        Maps are made, and margins judged, on each tone's effective SNR this far ahead along
+        its present downward slope (0: off), seconds.
+    slope_tau_s : float
+        Time constant of the per-tone slope tracker behind ``lookahead_s``, seconds.
 
     Notes
     -----
