@@ -274,9 +274,11 @@ class ChangeControl:
         self._plan_id: str | None = None
         self._changed_s = -math.inf     # when the current map was adopted
         self._ref_mean_db = math.nan    # mean tracked SNR when the current map was made
-        self._eff_at_map = np.empty(0)   # the (looked-ahead) effective SNR the map was made on
+        self._eff_at_map = None          # the effective SNR of the loaded tones the map was
+        #                                  made on (after lookahead and offset)
         self._eff_now = np.empty(0)      # the same, on the present call
         self._loaded = np.empty(0, dtype=bool)
+        self._loaded_index = np.empty(0, dtype=np.int64)
         self._sag_since_s = math.nan     # since when the median loaded margin is below -sag_db
         self._offset_now = 0.0           # the outer loop's offset on the present call
         self._map_offset_db = 0.0        # ... and when the current map was made
@@ -421,7 +423,7 @@ class ChangeControl:
 
         # Common mode: the band as a whole fell by common_drop_db since the map (most loaded
         # tones moved together); or the map's median margin sat below -sag_db for sag_max_s.
-        median_db = _median(margins[self._loaded]) if self._n_loaded else math.inf
+        median_db = _median(margins[self._loaded_index]) if self._n_loaded else math.inf
         if median_db < -self.sag_db:
             self._sag_since_s = min(self._sag_since_s, now_s) \
                 if not math.isnan(self._sag_since_s) else now_s
@@ -509,11 +511,9 @@ class ChangeControl:
     def _common_shift(self, eff_db: np.ndarray) -> tuple[float, int]:
         """The band's common change of effective SNR since the map (median over loaded tones),
         dB, and how many loaded tones lie within ``common_drop_db`` of it."""
-        if not self._n_loaded or self._eff_at_map.size != eff_db.size:
+        if not self._n_loaded or self._eff_at_map is None:
             return 0.0, 0
-        delta = eff_db[self._loaded] - self._eff_at_map[self._loaded]
-        if not np.isfinite(delta).all():
-            return 0.0, 0
+        delta = eff_db[self._loaded_index] - self._eff_at_map   # both finite: checked before
         shift = _median(delta)
         return shift, int(np.count_nonzero(np.abs(delta - shift) <= self.common_drop_db))
 
@@ -583,8 +583,10 @@ class ChangeControl:
         self._changed_s = float(now_s)
         self._ref_mean_db = mean_db
         self._loaded = alloc.bits > 0
-        self._eff_at_map = (self._eff_now if self._eff_now.size == alloc.bits.size
-                            else np.full(alloc.bits.size, np.nan))
+        self._loaded_index = np.flatnonzero(self._loaded)
+        # None (no common mode until the next map) for a forced map not made on this view
+        self._eff_at_map = (self._eff_now[self._loaded_index]
+                            if self._eff_now.size == alloc.bits.size else None)
         self._sag_since_s = math.nan
         self._map_offset_db = self._offset_now
         self._next_upgrade_s = -math.inf
