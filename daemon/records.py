@@ -27,6 +27,7 @@ __all__ = [
     "DecisionKind",
     "Decision",
     "Tracked",
+    "FrameOutcome",
     "frozen_array",
     "MAX_FFT_SIZE",
 ]
@@ -415,3 +416,45 @@ class Tracked:
     def n_tones(self) -> int:
         """Number of tones tracked."""
         return int(self.tone_index.size)
+
+
+@dataclass(frozen=True)
+class FrameOutcome:
+    """Whether one data frame arrived intact, as the receiver side reports it (receiver ->
+    daemon, topic ``outcome``); the outer margin loop's input.
+
+    Attributes
+    ----------
+    epoch : str
+        Epoch of the map the frame was sent with (the daemon ignores other epochs).
+    seq : int
+        Sequence number of that map (>= 0).
+    frame : int
+        The frame's counter from its header (>= 0).
+    errored : bool
+        True when the frame failed its payload check (a frame error), False when it was good.
+    time_s : float
+        Receiver's time of the frame, seconds (finite).
+    """
+
+    epoch: str
+    seq: int
+    frame: int
+    errored: bool
+    time_s: float
+
+    def __post_init__(self) -> None:
+        for name in ("seq", "frame"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+                raise ValueError(f"{name}={value!r} must be an integer")
+            if value < 0:
+                raise ValueError(f"{name}={value} must be >= 0")
+            _set(self, name, int(value))
+        if not isinstance(self.errored, (bool, np.bool_)):
+            raise ValueError(f"errored={self.errored!r} must be true or false")
+        _set(self, "errored", bool(self.errored))
+        _set(self, "time_s", float(self.time_s))
+        if not math.isfinite(self.time_s):
+            raise ValueError(f"time_s={self.time_s} must be finite")
+        _set(self, "epoch", str(self.epoch))

@@ -242,7 +242,9 @@ class TestDecisions:
         assert ups[0][0] == pytest.approx(25.0, abs=0.26)   # 5 s after the first check with gain
         assert "upgrade pending for" in ds[10][1].reason
         # a break in the gain restarts the wait
-        cc2 = ChangeControl(ld, up_dwell_s=2.0, upgrade_check_s=0.25)
+        # (lookahead off: the synthetic 4 dB step back within one call would read as a fall
+        # to extrapolate, which is the lookahead's business, not this rule's)
+        cc2 = ChangeControl(ld, up_dwell_s=2.0, upgrade_check_s=0.25, lookahead_s=0.0)
         cc2.decide(tracked(snr), 0.0)
         seq = [(t, better if not 1.0 <= t < 1.3 else snr) for t in np.arange(0.05, 4.0, 0.05)]
         ups = [t for t, x in seq if cc2.decide(tracked(x), t).kind is not DecisionKind.KEEP]
@@ -411,6 +413,75 @@ class TestWithEstimator:
             np.testing.assert_array_equal(x.allocation.power, y.allocation.power)
 
 
+class TestCommonMode:
+    """A change of the whole band is one decision; the map's margin does not sag for long.
+    (Behaviour asked for by the project's issue on drift and fading; the numbers are the
+    module's documented rules, not external values.)"""
+
+    def test_gradual_band_fall_is_reloads_not_swaps(self, rng):
+        """The band falls 2 dB in 0.1 dB steps, each tone with its own fixed offset of up to
+        +-0.3 dB (invented spread): one reload per common_drop_db, no bit swaps."""
+        ld = loader()
+        cc = ChangeControl(ld, lookahead_s=0.0)
+        snr = profile()
+        cc.decide(tracked(snr), 0.0)
+        spread = rng.uniform(-0.3, 0.3, N)
+        kinds = []
+        for k in range(1, 21):
+            d = cc.decide(tracked(snr - 0.1 * k + spread * (k / 20)), k * 0.5)
+            if d.kind is not DecisionKind.KEEP:
+                kinds.append((d.kind, d.reason))
+        assert 1 <= len(kinds) <= 2, kinds
+        assert all(k is DecisionKind.RELOAD and "band fell" in r for k, r in kinds), kinds
+        assert cc.counters["bit_swap"] == 0
+
+    def test_uniform_drop_is_one_decision(self):
+        cc = ChangeControl(loader())
+        snr = profile()
+        cc.decide(tracked(snr), 0.0)
+        out = [cc.decide(tracked(snr - 1.4), 1.0 + 0.01 * k) for k in range(100)]
+        assert len(changes(out)) == 1 and "band fell" in changes(out)[0].reason
+
+    def test_sagging_map_is_reloaded_after_sag_max_s(self):
+        """A common fall of 0.8 dB (below common_drop_db, above sag_db) is left alone for
+        sag_max_s, then reloaded once."""
+        cc = ChangeControl(loader(), sag_max_s=3.0)
+        snr = profile()
+        cc.decide(tracked(snr), 0.0)
+        times = np.arange(1.0, 8.0, 0.05)
+        out = [(t, cc.decide(tracked(snr - 0.8), t)) for t in times]
+        made = [(t, d) for t, d in out if d.kind is not DecisionKind.KEEP]
+        assert len(made) == 1 and "median margin" in made[0][1].reason
+        assert made[0][0] == pytest.approx(1.0 + 3.0, abs=0.06)
+
+    def test_slow_drift_makes_few_maps(self, rng):
+        """A sinusoidal gain drift of 2 dB peak with a 60 s period and 1 dB estimation noise:
+        at most 6 maps in the minute after the first 10 s, none of them a bit swap."""
+        link = Link(rng)
+        base = profile()
+        out = []
+        for k in range(int(70 * FPS)):
+            t = k / FPS
+            d = link.step(base + 2.0 * math.sin(2 * math.pi * max(t - 10.0, 0.0) / 60.0))
+            if t >= 10.0:
+                out.append(d)
+        made = changes(out)
+        assert len(made) <= 6, [d.reason for d in made]
+        assert all(d.kind is not DecisionKind.BIT_SWAP for d in made), [d.reason for d in made]
+
+    def test_lookahead_loads_a_falling_tone_lower(self):
+        """A tone whose SNR falls steadily is loaded for where it will be lookahead_s on."""
+        plain, ahead = ChangeControl(loader(), lookahead_s=0.0), ChangeControl(loader())
+        snr = profile()
+        for cc in (plain, ahead):
+            for k in range(30):
+                x = snr.copy()
+                x[10:20] -= 20.0 * k * 0.01        # falling 20 dB/s
+                cc.decide(tracked(x), k * 0.01)
+        assert ahead.current.bits[10:20].sum() <= plain.current.bits[10:20].sum()
+        assert ahead.current.bits[12:18].sum() < plain.current.bits[12:18].sum()
+
+
 # ----------------------------------------------------------------------------- properties
 
 BIT_SETS = [list(range(9)), [0, 1, 2, 4, 6, 8], [0, 2, 4, 6], list(range(11))]
@@ -455,8 +526,10 @@ def test_published_maps_meet_the_constraints_and_thresholds(scenario):
         if d.kind is DecisionKind.KEEP:
             assert cc.current is prev
             if d.reason.startswith("margins ok"):
+                # A common fall of the band smaller than common_drop_db is left to the
+                # common-mode rule, so a tone may sit that much below the downshift margin.
                 m = ld.tone_margin_db(prev.bits, prev.power, snr)
-                assert m.min() >= cc.downshift_margin_db - 1e-9
+                assert m.min() >= cc.downshift_margin_db - cc.common_drop_db - 1e-9
             continue
         alloc = d.allocation
         assert cc.current is alloc

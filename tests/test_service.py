@@ -21,7 +21,7 @@ from _service_fakes import ReloadEveryTime, ScriptedDriver, loopback_config
 
 from brimline.daemon.errors import RecordingError
 from brimline.daemon.net.follower import Follower
-from brimline.daemon.records import LoadMap
+from brimline.daemon.records import FrameOutcome, LoadMap
 from brimline.daemon.runtime.service import Service
 from brimline.daemon.runtime.status import band_columns, build_status
 from brimline.daemon.wire import codec
@@ -636,3 +636,32 @@ class TestRecording:
         assert "recording_failed" in st["alarms"]
         errors = [r for r in caplog.records if r.levelname == "ERROR"]
         assert len(errors) == 1 and "recording stopped" in errors[0].getMessage()
+
+
+class TestOuterLoopFeedback:
+    def test_outcomes_reach_the_outer_loop_and_bad_ones_are_dropped(self):
+        """Outcomes pushed to the daemon's outcome PULL reach the outer loop (status
+        ``outer``); garbage and foreign epochs are dropped and counted, never raised."""
+        cfg = loopback_config(publish={"outcome_endpoint": "tcp://127.0.0.1:0"},
+                              outer={"step_up_db": 0.5, "quiet_s": 1000.0})
+        ctx = zmq.Context()
+        push = ctx.socket(zmq.PUSH)
+        push.setsockopt(zmq.LINGER, 0)
+        try:
+            with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=50)) as svc:
+                push.connect(svc.endpoints["outcomes"])
+                epoch = svc.controller.epoch
+                push.send_multipart([b"outcome", b"\xff\xfe not json"])
+                push.send_multipart(codec.encode(codec.TOPIC_OUTCOME, FrameOutcome(
+                    "someone-else", 0, 1, True, 0.0)))
+                push.send_multipart(codec.encode(codec.TOPIC_OUTCOME, FrameOutcome(
+                    epoch, 0, 2, True, 0.0)))
+                assert _pump(svc, until=lambda: svc.status()["outer"]["outcomes"] == 1
+                             and svc.status()["outer"]["dropped"] == {"other_epoch": 1,
+                                                                      "undecodable": 1})
+                st = svc.status()
+            assert st["outer"]["offset_db"] == 0.5 and st["outer"]["errored"] == 1
+            assert st["outer"]["target_fer"] == 0.1
+        finally:
+            push.close()
+            ctx.term()

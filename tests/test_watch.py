@@ -146,3 +146,18 @@ def test_closed_loop_figures_in_view_line_and_summary():
     plain = _status()
     assert plain["link"] is None
     assert "goodput" not in _text(render(plain)) + summary_line(plain) + end_summary(plain)
+
+
+def test_outer_loop_row_shows_offset_and_error_rate():
+    """The outer margin loop's fields: offset, measured frame error rate against the target;
+    no row without an outer loop."""
+    outer = {"active": True, "offset_db": 1.25, "fer": 0.094, "window": 500,
+             "target_fer": 0.1, "outcomes": 2000, "errored": 190, "repeated": 0,
+             "went_off": 0, "dropped": {"other_epoch": 2}}
+    status = _status(outer=outer)
+    assert status["outer"]["offset_db"] == 1.25 and status["outer"]["dropped"] == {
+        "other_epoch": 2}
+    text = _text(render(status))
+    assert "outer loop" in text and "+1.25 dB" in text and "9.4 % of 500" in text
+    assert "target 10.0 %" in text
+    assert "outer loop" not in _text(render(_status()))

@@ -34,6 +34,39 @@ loading target, whose gap already includes the configured target margin):
    map, so those are at least ``up_dwell_s`` apart; bit swaps and downgrade reloads do not
    restart it, or a fading channel that keeps needing repairs would never be upgraded.
 
+5. **Common mode** (one decision for the whole band): per call, the change of every loaded
+   tone's effective SNR since the map was made is split into the band's *common shift* (the
+   median over loaded tones) and each tone's own part. When at least half of the loaded tones
+   lie within ``common_drop_db`` of the median, the band moved together: the per-tone rules
+   (persistence, bit swap) judge each tone by its own part only, and once the common shift
+   reaches ``-common_drop_db`` one reload repairs the band (reason ``band fell ...``). A slow
+   drift of the gain, or a step of the outer margin loop's offset, is thus one reload per
+   ``common_drop_db``, not a stream of single-tone swaps as the lowest tones cross the margin
+   one by one. Emergencies still count every tone below the downshift margin.
+6. **Sag bound**: when the median margin of the loaded tones has stayed below ``-sag_db`` for
+   ``sag_max_s`` the map is reloaded, so the map never sits far below its target margin for
+   long, whatever the per-tone and common-mode rules let pass.
+7. **Batching**: a bit swap repairs every tone below the downshift margin at that moment,
+   whether it fell by itself or with the band.
+8. **Lookahead** (``lookahead_s``): the effective SNR change control works on is each tone's
+   tracked effective SNR moved ``lookahead_s`` ahead along its present downward slope (slope:
+   first-order smoothing of the per-call change with time constant ``slope_tau_s``, pooled over
+   9 neighbouring tones, which a fade moves together and noise does not; rising tones are not
+   extrapolated; a jump deeper than ``down_deep_db`` in one call is a step, not a trend, and
+   restarts that tone's slope; the fall is at most ``emergency_drop_db``). A map rate limit
+   means a map stays in force for at least ``1 / max_maps_per_s``; without lookahead, tones in
+   a fade sink below the raw gap while the next map waits. On a static or slowly drifting
+   channel the slope is near zero and nothing changes. The trade-off is visible in the
+   benchmark (``fading1hz_*``: outage and rate with and without change control).
+
+9. **Outer loop offset** (``decide(..., offset_db=...)``, from the link controller's outer
+   margin loop): every tone's effective SNR is lowered by the offset after the lookahead (so a
+   step of the offset is no slope); a rise of the offset is a common fall of the band (rule 5);
+   a fall by ``common_drop_db`` since the map was made reloads at once, without the upgrade's
+   evidence and dwell, because the offset is the loop's decision, not a noisy estimate.
+   Without that, the upgrade hysteresis holds the map below the loop's offset, the offset
+   runs into its lower bound, and the frame error rate settles below the target.
+
 Separate upshift and downshift margins with minimum times follow the idea of DSL online rate
 adaptation (ITU-T G.997.1, as described in IETF RFC 5650): the map moves down fast when the
 link is failing and up slowly, only for a clear gain; the downshift persistence
@@ -85,6 +118,11 @@ CHANGE_LIMITS = MappingProxyType({
     "emergency_fraction": between(0, 1, low_open=True),
     "emergency_drop_db": POSITIVE,
     "emergency_margin_db": NON_NEGATIVE,
+    "common_drop_db": POSITIVE,
+    "sag_db": NON_NEGATIVE,
+    "sag_max_s": POSITIVE,
+    "lookahead_s": NON_NEGATIVE,
+    "slope_tau_s": POSITIVE,
 })
 
 
@@ -115,6 +153,7 @@ def check_change_settings(settings: Mapping[str, Any], *, prefix: str = "") -> N
 
 
 _KEEP = DecisionKind.KEEP
+_SLOPE_KERNEL = np.full(9, 1.0 / 9)   # tones pooled (centred) for the slope of lookahead_s
 _MAX_SNR_DB = 100.0   # no tone is better than this; keeps the linear SNR finite
 
 
@@ -156,6 +195,19 @@ class ChangeControl:
         Drop of the mean tracked SNR since the current map that makes an emergency, dB.
     emergency_margin_db : float
         Extra margin of the emergency map, dB.
+    common_drop_db : float
+        A fall of the band's common part (median change of the loaded tones, with at least
+        half of them within this of it) by this much since the map is one reload, dB; a fall
+        of the outer loop's offset by as much reloads at once as well.
+    sag_db : float
+        The median margin of the loaded tones below ``-sag_db`` counts as sagging, dB.
+    sag_max_s : float
+        A map that sagged this long without a break is reloaded, seconds.
+    lookahead_s : float
+        Maps are made, and margins judged, on each tone's effective SNR this far ahead along
+        its present downward slope (0: off), seconds.
+    slope_tau_s : float
+        Time constant of the per-tone slope tracker behind ``lookahead_s``, seconds.
 
     Notes
     -----
@@ -172,7 +224,9 @@ class ChangeControl:
                  upgrade_check_s: float = 0.25, max_maps_per_s: float = 10.0,
                  swap_max_tones: int = 16, swap_max_loss_bits: int = 4,
                  emergency_fraction: float = 0.25, emergency_drop_db: float = 6.0,
-                 emergency_margin_db: float = 3.0) -> None:
+                 emergency_margin_db: float = 3.0, common_drop_db: float = 1.0,
+                 sag_db: float = 0.5, sag_max_s: float = 5.0, lookahead_s: float = 0.2,
+                 slope_tau_s: float = 0.05) -> None:
         settings = dict(locals())  # the keyword arguments, before any other name is bound
         del settings["self"], settings["loader"]
         check_change_settings(settings, prefix="change.")
@@ -195,6 +249,14 @@ class ChangeControl:
         self.emergency_fraction = float(emergency_fraction)
         self.emergency_drop_db = float(emergency_drop_db)
         self.emergency_margin_db = float(emergency_margin_db)
+        self.common_drop_db = float(common_drop_db)
+        self.sag_db = float(sag_db)
+        self.sag_max_s = float(sag_max_s)
+        self.lookahead_s = float(lookahead_s)
+        self.slope_tau_s = float(slope_tau_s)
+        self._prev_eff_db = None
+        self._prev_s = math.nan
+        self._slope_db_s = np.empty(0)
         # What a bit swap must respect; without them (a foreign loader) swaps are off.
         bit_set = getattr(loader, "bits", None)
         self._bit_set = None if bit_set is None else np.asarray(bit_set, dtype=np.int64)
@@ -202,7 +264,8 @@ class ChangeControl:
         self._cap_lin = 10.0 ** (float(getattr(loader, "cap_db", math.inf)) / 10.0)
         self._counters = dict.fromkeys(
             ("keep", "bit_swap", "reload", "emergency", "fallback", "forced", "upgrade",
-             "held_persist", "held_dwell", "held_rate", "infeasible", "bad_input"), 0)
+             "held_persist", "held_dwell", "held_rate", "infeasible", "bad_input",
+             "common_mode", "sag", "outer"), 0)
         self._current: Allocation | None = None
         self._margin_at_0db = None      # tone margins of the current map at 0 dB SNR
         self._n_loaded = 0
@@ -211,6 +274,14 @@ class ChangeControl:
         self._plan_id: str | None = None
         self._changed_s = -math.inf     # when the current map was adopted
         self._ref_mean_db = math.nan    # mean tracked SNR when the current map was made
+        self._eff_at_map = None          # the effective SNR of the loaded tones the map was
+        #                                  made on (after lookahead and offset)
+        self._eff_now = np.empty(0)      # the same, on the present call
+        self._loaded = np.empty(0, dtype=bool)
+        self._loaded_index = np.empty(0, dtype=np.int64)
+        self._sag_since_s = math.nan     # since when the median loaded margin is below -sag_db
+        self._offset_now = 0.0           # the outer loop's offset on the present call
+        self._map_offset_db = 0.0        # ... and when the current map was made
         self._next_upgrade_s = -math.inf
         self._gain_since_s = math.nan   # since when an upgrade has been worth it, continuously
         self._last_gain = 0
@@ -263,7 +334,7 @@ class ChangeControl:
 
     # ------------------------------------------------------------------ decisions
 
-    def decide(self, tracked: Tracked, now_s: float) -> Decision:
+    def decide(self, tracked: Tracked, now_s: float, *, offset_db: float = 0.0) -> Decision:
         """Decide for one tracked view of the channel; adopt the new map unless ``keep``.
 
         Parameters
@@ -272,6 +343,11 @@ class ChangeControl:
             The estimator's view; ``effective_snr_db`` is what loading uses.
         now_s : float
             The caller's clock, seconds.
+        offset_db : float
+            The outer margin loop's offset, dB: added to the gap (every tone's effective SNR
+            is lowered by it after the lookahead). When it has fallen by ``common_drop_db``
+            since the current map was made, the map is reloaded at once (map rate limit
+            permitting).
 
         Returns
         -------
@@ -282,7 +358,10 @@ class ChangeControl:
         eff_db = tracked.effective_snr_db
         if not (math.isfinite(eff_db.sum()) and math.isfinite(tracked.snr_db.sum())):
             return self._hold("bad_input", "tracked SNR is not finite: map kept")
-        eff_db = np.minimum(eff_db, _MAX_SNR_DB)
+        offset_db = float(offset_db) if math.isfinite(offset_db) else 0.0
+        eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s) - offset_db
+        self._offset_now = offset_db
+        self._eff_now = eff_db   # what a map made on this call is made on
         mean_db = float(tracked.snr_db.mean())
         cur = self._current
         since_map = now_s - self._changed_s
@@ -302,7 +381,12 @@ class ChangeControl:
         # With power proportional to 1 / snr for given bits (the SNR-gap model), a tone's margin
         # in dB is its margin at 0 dB SNR plus its SNR in dB: one addition per frame.
         margins = self._margin_at_0db + eff_db
-        below = margins < self.downshift_margin_db
+        common_db, n_common = self._common_shift(eff_db)
+        coherent = n_common >= 0.5 * self._n_loaded and self._n_loaded > 0
+        # A tone's own change is judged per tone; a common fall of the whole band is one
+        # decision below (common-mode reload), not a stream of bit swaps tone by tone.
+        own = margins - common_db if coherent and common_db < 0 else margins
+        below = own < self.downshift_margin_db
         n_below = int(np.count_nonzero(below))
         # Persistence: a tone stays low once below on every call for down_persist_s, or at once
         # when the drop is deeper than down_deep_db; one vectorized update per call.
@@ -323,10 +407,11 @@ class ChangeControl:
         # Many tones low at once is an emergency when the band as a whole went down; with the
         # mean in place it is the ordinary spread of fading, which a reload handles.
         # Counted on this call alone: a band-wide drop must not wait for persistence.
-        broad = (n_below >= self.emergency_fraction * n_loaded
+        n_raw = int(np.count_nonzero(margins < self.downshift_margin_db))
+        broad = (n_raw >= self.emergency_fraction * n_loaded
                  and drop_db >= -self.downshift_margin_db)
-        if (n_below and broad) or drop_db >= self.emergency_drop_db:
-            what = (f"{n_below} of {_tones(n_loaded)} loaded below downshift margin "
+        if (n_raw and broad) or drop_db >= self.emergency_drop_db:
+            what = (f"{n_raw} of {_tones(n_loaded)} loaded below downshift margin "
                     f"({worst_text}), mean SNR {-drop_db:+.1f} dB")
             if rate_wait > 0:
                 return self._hold("held_rate", f"emergency pending: {what}; map rate limit "
@@ -335,6 +420,38 @@ class ChangeControl:
             return self._adopt(DecisionKind.EMERGENCY, alloc,
                                f"emergency: {what}; +{self.emergency_margin_db:g} dB margin"
                                f"{note}", now_s, mean_db, restart_upgrade=True)
+
+        # Common mode: the band as a whole fell by common_drop_db since the map (most loaded
+        # tones moved together); or the map's median margin sat below -sag_db for sag_max_s.
+        median_db = _median(margins[self._loaded_index]) if self._n_loaded else math.inf
+        if median_db < -self.sag_db:
+            self._sag_since_s = min(self._sag_since_s, now_s) \
+                if not math.isnan(self._sag_since_s) else now_s
+        else:
+            self._sag_since_s = math.nan
+        sag_s = now_s - self._sag_since_s if not math.isnan(self._sag_since_s) else 0.0
+        band_fell = coherent and common_db <= -self.common_drop_db
+        if band_fell or sag_s >= self.sag_max_s:
+            key = "common_mode" if band_fell else "sag"
+            what = (f"band fell {-common_db:.1f} dB since the map ({n_common} of "
+                    f"{_tones(self._n_loaded)} loaded moved together)" if band_fell else
+                    f"median margin {median_db:.1f} dB for {sag_s:.1f} s")
+            wait = max(self.down_dwell_s - since_map, rate_wait)
+            if wait > 0:
+                return self._hold("held_dwell" if self.down_dwell_s - since_map >= rate_wait
+                                  else "held_rate", f"{what}; reload in {wait:.2f} s")
+            alloc, note = self._load(_lin(eff_db))
+            self._counters[key] += 1
+            return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {what}{note}", now_s,
+                               mean_db, restart_upgrade=False)
+
+        if offset_db <= self._map_offset_db - self.common_drop_db and rate_wait <= 0:
+            alloc, note = self._load(_lin(eff_db))
+            self._counters["outer"] += 1
+            return self._adopt(DecisionKind.RELOAD, alloc,
+                               f"reload: outer loop offset {offset_db:+.1f} dB, "
+                               f"{self._map_offset_db - offset_db:.1f} dB below the map's{note}",
+                               now_s, mean_db, restart_upgrade=False)
 
         gain = self._upgrade_gain(eff_db, cur, now_s)
         due = self._upgrade_due(now_s)
@@ -357,7 +474,11 @@ class ChangeControl:
                 return self._adopt(DecisionKind.RELOAD, alloc,
                                    f"reload: {what}; upgrade due{note}", now_s, mean_db,
                                    restart_upgrade=True)
-            swap = self._bit_swap(cur, snr, below) if n_below <= self.swap_max_tones else None
+            # The change batches everything due: every tone below the margin, whether by its
+            # own fall or by the band's common one.
+            due_mask = margins < self.downshift_margin_db
+            swap = (self._bit_swap(cur, snr, due_mask) if n_raw <= self.swap_max_tones
+                    else None)
             if swap is not None:
                 alloc, changed = swap
                 delta = alloc.total_bits - cur.total_bits
@@ -386,6 +507,38 @@ class ChangeControl:
             return self._hold("keep", f"margins ok ({worst_text}); upgrade pending for "
                               f"{now_s - self._gain_since_s:.1f} of {self.up_dwell_s:g} s")
         return self._hold("keep", f"margins ok ({worst_text})")
+
+    def _common_shift(self, eff_db: np.ndarray) -> tuple[float, int]:
+        """The band's common change of effective SNR since the map (median over loaded tones),
+        dB, and how many loaded tones lie within ``common_drop_db`` of it."""
+        if not self._n_loaded or self._eff_at_map is None:
+            return 0.0, 0
+        delta = eff_db[self._loaded_index] - self._eff_at_map   # both finite: checked before
+        shift = _median(delta)
+        return shift, int(np.count_nonzero(np.abs(delta - shift) <= self.common_drop_db))
+
+    def _ahead(self, eff_db: np.ndarray, now_s: float) -> np.ndarray:
+        prev = self._prev_eff_db
+        dt = now_s - self._prev_s
+        if prev is None or prev.size != eff_db.size or not dt > 0:
+            self._slope_db_s = np.zeros(eff_db.size)
+        else:
+            a = 1.0 - math.exp(-dt / self.slope_tau_s)
+            step_db = eff_db - prev
+            self._slope_db_s += a * (step_db / dt - self._slope_db_s)
+            # A jump deeper than down_deep_db in one call is a step (a confirmed drop, a new
+            # level), not a trend to extrapolate: that tone's slope starts afresh.
+            self._slope_db_s[np.abs(step_db) > self.down_deep_db] = 0.0
+        self._prev_eff_db, self._prev_s = eff_db, now_s
+        if self.lookahead_s == 0.0:
+            return eff_db
+        # pooled over neighbouring tones (a fade moves them together, noise does not); zeros
+        # beyond the band's edges, so the edge tones are extrapolated a little less
+        half = _SLOPE_KERNEL.size // 2
+        slope = np.convolve(self._slope_db_s, _SLOPE_KERNEL)[half:half + eff_db.size]
+        # at most an emergency drop: a step (a confirmed drop) is not a trend to follow
+        return eff_db - np.minimum(self.lookahead_s * np.maximum(-slope, 0.0),
+                                   self.emergency_drop_db)
 
     def _upgrade_due(self, now_s: float) -> bool:
         return not math.isnan(self._gain_since_s) and \
@@ -429,6 +582,13 @@ class ChangeControl:
         self._low_since_s = np.full(alloc.bits.size, np.nan)
         self._changed_s = float(now_s)
         self._ref_mean_db = mean_db
+        self._loaded = alloc.bits > 0
+        self._loaded_index = np.flatnonzero(self._loaded)
+        # None (no common mode until the next map) for a forced map not made on this view
+        self._eff_at_map = (self._eff_now[self._loaded_index]
+                            if self._eff_now.size == alloc.bits.size else None)
+        self._sag_since_s = math.nan
+        self._map_offset_db = self._offset_now
         self._next_upgrade_s = -math.inf
         if restart_upgrade:
             self._gain_since_s = math.nan
@@ -519,6 +679,15 @@ class ChangeControl:
         alloc = Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
                            total_power=total_power, margin_db=margin_db)
         return alloc, int(np.count_nonzero((cur.bits != bits) | (cur.power != power)))
+
+
+def _median(x: np.ndarray) -> float:
+    """Median of a non-empty 1-D array (np.median without its checks: this runs per frame)."""
+    k = x.size // 2
+    if x.size % 2:
+        return float(np.partition(x, k)[k])
+    part = np.partition(x, (k - 1, k))
+    return 0.5 * float(part[k - 1] + part[k])
 
 
 def _lin(db: np.ndarray) -> np.ndarray:

@@ -27,6 +27,18 @@ Rules, per call
 counts from the newest accepted estimate; before the first, from the first estimate received
 (whose time opens the source's time base), or, while none has been received, from ``start_s``.
 
+Outer margin loop
+-----------------
+With ``outer`` (an :class:`~brimline.daemon.core.outer.OuterLoop`), :meth:`on_outcome` feeds
+it the receiver's frame outcomes, and change control receives the loop's offset at ``now_s``
+with every tracked view (``decide(tracked, now_s, offset_db=...)``) and lowers the effective
+SNR by it: the same as loading with the gap raised by the offset. A rise of the offset is a
+common-mode fall of the band (one reload per ``change.common_drop_db``); a fall of the offset
+by as much is one reload at once, without the upgrade's dwell (the offset is no noisy
+estimate). Each map's ``gap_db`` carries the gap plus the offset
+it was made with (the fallback map carries the plain gap). Outcomes of another epoch, or with
+a frame number that does not increase, are dropped and counted.
+
 Sequence numbers and the lease
 ------------------------------
 Every map gets ``next_seq``, which then grows by one, so seqs are strictly increasing. A caller
@@ -47,7 +59,15 @@ from typing import Callable
 import numpy as np
 
 from brimline.daemon.errors import BrimlineError
-from brimline.daemon.records import Allocation, DecisionKind, Estimate, LoadMap, TonePlan, Tracked
+from brimline.daemon.records import (
+    Allocation,
+    DecisionKind,
+    Estimate,
+    FrameOutcome,
+    LoadMap,
+    TonePlan,
+    Tracked,
+)
 
 __all__ = ["Change", "Step", "LinkController", "REJECTED"]
 
@@ -127,7 +147,8 @@ class LinkController:
         Decides map changes (``decide(tracked, now_s)``, ``force(allocation, kind, reason,
         now_s)``). Public attribute: a test or tool may replace it before the first estimate.
     gap_db : float
-        SNR gap the loader uses, dB (carried by every map).
+        SNR gap the loader uses, dB (carried by every map, plus the outer loop's offset in
+        force when the map was made).
     epoch : str
         Epoch id carried by every map.
     next_seq : int
@@ -150,6 +171,10 @@ class LinkController:
         the time of the first call.
     history : int
         Changes kept in :attr:`changes`.
+    outer : OuterLoop, optional
+        The outer margin loop (:class:`brimline.daemon.core.outer.OuterLoop`), fed by
+        :meth:`on_outcome`; its offset is added to the gap every map is loaded with. None: no
+        outer loop.
 
     Notes
     -----
@@ -162,7 +187,7 @@ class LinkController:
                  stale_after_s: float = 1.0, fallback_bits: int = 2,
                  fallback_power_db: float = 0.0,
                  reserve: Callable[[int], None] | None = None, start_s: float | None = None,
-                 history: int = 16) -> None:
+                 history: int = 16, outer=None) -> None:
         if next_seq < 0:
             raise ValueError(f"next_seq={next_seq} must be >= 0")
         if restored is not None and restored.plan_id != plan.plan_id:
@@ -171,6 +196,9 @@ class LinkController:
         self.plan = plan
         self.estimator = estimator
         self.change = change
+        self.outer = outer
+        self.outcomes_dropped: collections.Counter[str] = collections.Counter()  # by reason
+        self._offset_db = 0.0
         self.epoch = str(epoch)
         self.next_seq = int(next_seq)
         self.lead_frames = int(lead_frames)
@@ -252,7 +280,13 @@ class LinkController:
         if tracked is None:
             return self._step(now_s, "keep", "no tracked view yet", maps, changes, held)
         self.last_tracked = tracked
-        decision = self.change.decide(tracked, now_s)
+        if self.outer is not None:
+            # The outer loop's offset raises the gap: change control lowers every tone's
+            # effective SNR by it (a common-mode change of the band).
+            self._offset_db = self.outer.offset_db(now_s)
+            decision = self.change.decide(tracked, now_s, offset_db=self._offset_db)
+        else:
+            decision = self.change.decide(tracked, now_s)
         kind = decision.kind.value
         if decision.kind is not DecisionKind.KEEP:
             self._make_map(decision.allocation, kind, decision.reason, now_s, False,
@@ -285,6 +319,48 @@ class LinkController:
                               changes, held)
         return self._step(now_s, "keep", "stale" if self.stale else "fresh", maps, changes,
                           held)
+
+    def on_outcome(self, outcome: FrameOutcome, now_s: float) -> bool:
+        """Take one frame outcome reported by the receiver side (for the outer loop).
+
+        An outcome of another epoch, one arriving with no outer loop configured, or one whose
+        frame number does not increase is dropped and counted in :attr:`outcomes_dropped`
+        (``other_epoch``, ``no_outer_loop``, ``repeated``).
+
+        Parameters
+        ----------
+        outcome : FrameOutcome
+            The receiver's report.
+        now_s : float
+            The caller's time when it arrived, s.
+
+        Returns
+        -------
+        bool
+            Whether the outer loop took it.
+        """
+        if self.outer is None:
+            self.outcomes_dropped["no_outer_loop"] += 1
+            return False
+        if outcome.epoch != self.epoch:
+            self.outcomes_dropped["other_epoch"] += 1
+            return False
+        if not self.outer.record(outcome.errored, outcome.frame, now_s):
+            self.outcomes_dropped["repeated"] += 1
+            return False
+        return True
+
+    def count_bad_outcome(self) -> None:
+        """Count a feedback message the caller could not decode (``outcomes_dropped``,
+        reason ``undecodable``)."""
+        self.outcomes_dropped["undecodable"] += 1
+
+    def outer_status(self, now_s: float) -> dict | None:
+        """The outer loop's status fields at ``now_s`` plus ``dropped`` by reason (None
+        without an outer loop)."""
+        if self.outer is None:
+            return None
+        return {**self.outer.status(now_s), "dropped": dict(self.outcomes_dropped)}
 
     def count_undecodable(self) -> None:
         """Count an estimate the caller could not decode (status ``decode_errors``)."""
@@ -342,7 +418,8 @@ class LinkController:
                     effective_frame=self.last_frame + self.lead_frames, created_s=now_s,
                     plan_id=self._plan_id, tone_index=self.plan.data_tones, bits=alloc.bits,
                     power_lin=alloc.power, total_bits=alloc.total_bits,
-                    margin_db=alloc.margin_db, gap_db=self._gap_db, reason=reason,
+                    margin_db=alloc.margin_db, gap_db=self._gap_db + (
+                        0.0 if fallback else self._offset_db), reason=reason,
                     fallback=fallback)
         self.next_seq += 1
         if self.fallback_active and not fallback:

@@ -6,7 +6,12 @@
   ``heartbeat`` (epoch and last seq, every ``heartbeat_s``);
 * a ROUTER socket answering ``snapshot`` requests with the current map, so a late joiner or a
   follower that saw a gap catches up at once;
-* optionally a PULL socket receiving the transmitter's ``ack`` messages.
+* optionally a PULL socket receiving the transmitter's ``ack`` messages;
+* optionally a PULL socket receiving the receiver side's ``outcome`` messages (one
+  :class:`~brimline.daemon.records.FrameOutcome` per data frame: good or errored, with the map
+  seq and frame number), the input of the outer margin loop. Anything else arriving there (a
+  wrong topic, a wrong record, bytes that do not decode, a message over 64 KiB) is dropped and
+  counted as ``bad_outcomes``.
 
 :class:`StatusPublisher` is a separate PUB with a small send high-water mark, so a stalled
 operator's terminal can never hold up the map path.
@@ -42,7 +47,7 @@ from brimline.daemon.errors import InputError, ProtocolError
 from brimline.daemon.limits import NON_NEGATIVE, POSITIVE, at_least, check_values
 from brimline.daemon.net.curve import CurveServer
 from brimline.daemon.net.drops import SMALL_MESSAGE_BYTES, DropCounter, limit_inbound
-from brimline.daemon.records import LoadMap
+from brimline.daemon.records import FrameOutcome, LoadMap
 from brimline.daemon.wire import codec
 
 __all__ = ["MapPublisher", "StatusPublisher", "bind_endpoint", "PUBLISH_LIMITS",
@@ -58,6 +63,8 @@ _MAX_PER_CALL = 64  # requests or acks handled per call, so one burst cannot sta
 _RECEIVE_HWM = 16
 
 log = logging.getLogger("brimline.publisher")
+
+_MAX_OUTCOME_BYTES = 64 * 1024  # an outcome is a few hundred bytes; larger is refused by zmq
 
 #: Limits of :class:`MapPublisher`'s numeric keyword arguments, checked by the constructor and
 #: by the ``publish:`` config section alike; the rule between keys is
@@ -174,6 +181,8 @@ class MapPublisher(_Sockets):
         Where the ROUTER socket answering snapshot requests binds.
     ack_endpoint : str or None
         Where the PULL socket for acknowledgements binds; None for no acknowledgements.
+    outcome_endpoint : str or None
+        Where the PULL socket for frame outcomes (outer margin loop) binds; None for none.
     heartbeat_s : float
         Heartbeat interval in seconds (:meth:`tick`).
     map_hwm : int
@@ -192,9 +201,9 @@ class MapPublisher(_Sockets):
 
     Attributes
     ----------
-    map_endpoint, snapshot_endpoint, ack_endpoint : str or None
+    map_endpoint, snapshot_endpoint, ack_endpoint, outcome_endpoint : str or None
         Endpoints actually bound.
-    snapshot_socket, ack_socket : zmq.Socket or None
+    snapshot_socket, ack_socket, outcome_socket : zmq.Socket or None
         For the service's ``zmq.Poller`` (POLLIN).
     current : LoadMap or None
         Last published (or primed) map; what a snapshot request gets.
@@ -211,6 +220,7 @@ class MapPublisher(_Sockets):
     def __init__(self, *, map_endpoint: str = "tcp://127.0.0.1:7341",
                  snapshot_endpoint: str = "tcp://127.0.0.1:7342",
                  ack_endpoint: str | None = "tcp://127.0.0.1:7344",
+                 outcome_endpoint: str | None = None,
                  heartbeat_s: float = 0.5, map_hwm: int = 1000, linger_s: float = 1.0,
                  curve_secret_key: str | Path | None = None,
                  curve_clients_dir: str | Path | None = None,
@@ -230,6 +240,8 @@ class MapPublisher(_Sockets):
         self.snapshot_socket: zmq.Socket | None = None
         self.ack_socket: zmq.Socket | None = None
         self.ack_endpoint: str | None = None
+        self.outcome_socket: zmq.Socket | None = None
+        self.outcome_endpoint: str | None = None
         try:
             if curve_secret_key is not None:
                 self.curve = CurveServer(self.context, curve_secret_key, curve_clients_dir)
@@ -243,6 +255,11 @@ class MapPublisher(_Sockets):
                 self.ack_socket = self._socket(zmq.PULL, self.curve)
                 self.ack_socket.setsockopt(zmq.RCVHWM, _RECEIVE_HWM)
                 self.ack_endpoint = bind_endpoint(self.ack_socket, ack_endpoint)
+            if outcome_endpoint is not None:
+                self.outcome_socket = self._socket(zmq.PULL, self.curve)
+                self.outcome_socket.setsockopt(zmq.RCVHWM, 1000)
+                limit_inbound(self.outcome_socket, _MAX_OUTCOME_BYTES)
+                self.outcome_endpoint = bind_endpoint(self.outcome_socket, outcome_endpoint)
         except BaseException:
             self.close()
             raise
@@ -414,6 +431,36 @@ class MapPublisher(_Sockets):
             self.counters["acks"] += 1
             acks.append(body)
         return acks
+
+    def poll_outcomes(self) -> list[FrameOutcome]:
+        """Frame outcomes waiting on the outcome socket, without blocking.
+
+        Malformed messages (any :class:`~brimline.daemon.errors.ProtocolError` of the codec, a
+        topic other than ``outcome``, a record other than a frame outcome) are dropped and
+        counted as ``bad_outcomes`` and in :attr:`protocol_errors` (socket ``outcomes``, by
+        reason); good ones as ``outcomes``.
+        """
+        self._check_open()
+        if self.outcome_socket is None:
+            return []
+        outcomes: list[FrameOutcome] = []
+        for _ in range(_MAX_PER_CALL):  # messages, good or bad: bounded under a flood
+            try:
+                frames = self.outcome_socket.recv_multipart(flags=zmq.NOBLOCK, copy=False)
+            except zmq.Again:
+                break
+            try:
+                topic, body = codec.decode(frames, types={"frame_outcome"})
+                if topic != codec.TOPIC_OUTCOME:
+                    raise ProtocolError(f"not a frame outcome: topic {topic[:20]!r}",
+                                        reason="topic")
+            except ProtocolError as exc:
+                self.counters["bad_outcomes"] += 1
+                self.drops.drop("outcomes", exc.reason, str(exc))
+                continue
+            self.counters["outcomes"] += 1
+            outcomes.append(body)
+        return outcomes
 
     def close(self) -> None:
         """Close the sockets (LINGER as configured), stop CURVE, end a private context.

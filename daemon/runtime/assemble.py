@@ -16,6 +16,7 @@ from typing import Any, Callable
 from brimline.daemon.core.change import ChangeControl
 from brimline.daemon.core.controller import LinkController
 from brimline.daemon.core.estimator import Estimator
+from brimline.daemon.core.outer import OuterLoop
 from brimline.daemon.errors import ConfigError, SinkError, SourceError
 from brimline.daemon.net.curve import follower_keys
 from brimline.daemon.net.follower import Follower
@@ -78,18 +79,21 @@ def build_controller(config: Config, plan, loader, estimator, change, *, epoch: 
     Parameters
     ----------
     config : Config
-        Validated configuration (``fallback`` and ``service.lead_frames`` are used).
+        Validated configuration (``fallback``, ``service.lead_frames`` and ``outer`` are
+        used).
     plan, loader, estimator, change
         What :func:`build_core` returned (the loader gives the maps' SNR gap).
     epoch, next_seq, restored, reserve, start_s
         As for :class:`LinkController`.
     """
     fb = config.fallback
+    outer = None if config.outer is None else OuterLoop(**config.outer.model_dump())
     return LinkController(plan, estimator, change, gap_db=float(loader.gap_db), epoch=epoch,
                           next_seq=next_seq, restored=restored,
                           lead_frames=config.service.lead_frames,
                           stale_after_s=fb.stale_after_s, fallback_bits=fb.bits,
-                          fallback_power_db=fb.power_db, reserve=reserve, start_s=start_s)
+                          fallback_power_db=fb.power_db, reserve=reserve, start_s=start_s,
+                          outer=outer)
 
 
 def make_driver(config: Config, plan, map_provider=None):

@@ -41,6 +41,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 from brimline.daemon.core.change import CHANGE_LIMITS, ChangeControl, check_change_settings
 from brimline.daemon.core.estimator import ESTIMATOR_LIMITS, Estimator
 from brimline.daemon.core.loading import Loader, allowed_bits, check_target_bits
+from brimline.daemon.core.outer import OUTER_LIMITS, OuterLoop, check_outer_settings
 from brimline.daemon.core.qam import TARGET_SER, qam_gap_db
 from brimline.daemon.errors import ConfigError
 from brimline.daemon.limits import (
@@ -110,6 +111,7 @@ _RADIO = _keyword_defaults(RadioDriver)
 _PUSHED = _keyword_defaults(PushedDriver)
 _IQS = _keyword_defaults(IqStreamDriver)
 _CHG = _keyword_defaults(ChangeControl)
+_OUT = _keyword_defaults(OuterLoop)
 
 #: Frame detection threshold of the receiver, a fraction of the sync metric's peak of 1.
 _SYNC_THRESHOLD = between(0.0, 1.0, low_open=True, high_open=True)
@@ -674,6 +676,24 @@ class ChangeSection(Section):
     emergency_margin_db: float = Field(
         _CHG["emergency_margin_db"],
         description="extra margin of the emergency map, dB (recovered by upgrades)")
+    common_drop_db: float = Field(
+        _CHG["common_drop_db"],
+        description="when most loaded tones moved together (within this of their median) "
+                    "and that median fell by this much since the map, one reload repairs the "
+                    "band instead of bit swaps tone by tone, dB")
+    sag_db: float = Field(
+        _CHG["sag_db"],
+        description="the median margin of the loaded tones below -this counts as sagging, dB")
+    sag_max_s: float = Field(
+        _CHG["sag_max_s"],
+        description="a map whose median margin sagged this long is reloaded, s")
+    lookahead_s: float = Field(
+        _CHG["lookahead_s"],
+        description="maps are made for each tone's tracked SNR this far ahead along its "
+                    "present downward slope, so a map lasts through fading (0: off), s")
+    slope_tau_s: float = Field(
+        _CHG["slope_tau_s"],
+        description="time constant of the per-tone slope tracker used by lookahead_s, s")
 
     @field_validator(*CHANGE_LIMITS)
     @classmethod
@@ -683,6 +703,37 @@ class ChangeSection(Section):
     @model_validator(mode="after")
     def _keys_agree(self) -> "ChangeSection":
         check_change_settings(self.model_dump())
+        return self
+
+
+class OuterSection(Section):
+    """``outer:`` the outer margin loop (brimline.daemon.core.outer.OuterLoop).
+
+    Frame outcomes from the receiver side (``publish.outcome_endpoint``) steer an offset added to
+    the loading gap so that the frame error rate settles at ``target_fer``. Without outcomes for
+    ``quiet_s`` the offset is 0 dB.
+    """
+
+    target_fer: float = Field(_OUT["target_fer"], description="frame error rate to settle at")
+    step_up_db: float = Field(
+        _OUT["step_up_db"],
+        description="offset added per errored frame; a good frame takes off "
+                    "step_up_db * target_fer / (1 - target_fer), dB")
+    min_offset_db: float = Field(_OUT["min_offset_db"], description="lowest offset (<= 0), dB")
+    max_offset_db: float = Field(_OUT["max_offset_db"], description="highest offset (>= 0), dB")
+    window_frames: int = Field(_OUT["window_frames"],
+                               description="outcomes over which status shows the error rate")
+    quiet_s: float = Field(
+        _OUT["quiet_s"], description="no outcome for this long: the loop is off (offset 0 dB), s")
+
+    @field_validator(*OUTER_LIMITS)
+    @classmethod
+    def _within_limits(cls, v, info):
+        return OUTER_LIMITS[info.field_name].check(info.field_name, v)
+
+    @model_validator(mode="after")
+    def _keys_agree(self) -> "OuterSection":
+        check_outer_settings(self.model_dump())
         return self
 
 
@@ -726,6 +777,9 @@ class PublishSection(Section):
                                    description="ROUTER answering current-map requests (bind)")
     ack_endpoint: Optional[str] = Field("tcp://127.0.0.1:7344",
                                         description="PULL for transmitter acks; null for none")
+    outcome_endpoint: Optional[str] = Field(
+        None, description="PULL for the receiver side's frame outcomes (outer margin loop); "
+                          "null for none")
     heartbeat_s: float = Field(0.5, description="heartbeat interval, seconds")
     map_hwm: int = Field(1000, description="map PUB send high-water mark, messages")
     linger_s: float = Field(1.0, description="time unsent maps are kept at shutdown, seconds")
@@ -735,7 +789,7 @@ class PublishSection(Section):
         None, description="folder of authorised clients' .key files; null admits any client "
                           "that knows the daemon's public key")
 
-    @field_validator("map_endpoint", "snapshot_endpoint", "ack_endpoint")
+    @field_validator("map_endpoint", "snapshot_endpoint", "ack_endpoint", "outcome_endpoint")
     @classmethod
     def _endpoints(cls, v, info):
         return _endpoint_ok(info.field_name, v)
@@ -986,6 +1040,8 @@ class Config(Section):
     estimator: EstimatorSection = Field(default_factory=EstimatorSection)
     loading: LoadingSection = Field(default_factory=LoadingSection)
     change: ChangeSection = Field(default_factory=ChangeSection)
+    outer: Optional[OuterSection] = Field(
+        None, description="outer margin loop; absent: none (outer: {} for the defaults)")
     publish: PublishSection = Field(default_factory=PublishSection)
     status: StatusSection = Field(default_factory=StatusSection)
     metrics: MetricsSection = Field(default_factory=MetricsSection)
@@ -1026,7 +1082,8 @@ class Config(Section):
     def _endpoints_distinct(self) -> "Config":
         seen: dict[str, str] = {}
         locs = [("publish", "map_endpoint"), ("publish", "snapshot_endpoint"),
-                ("publish", "ack_endpoint"), ("status", "endpoint"),
+                ("publish", "ack_endpoint"), ("publish", "outcome_endpoint"),
+                ("status", "endpoint"),
                 ("tx", "status_endpoint")]
         for kind in ("pushed", "iq_stream"):  # a socket source that binds, when chosen
             section = getattr(self.driver, kind)

@@ -117,12 +117,17 @@ class Outlets:
         return self.maps.tick(wall_s)
 
     def poll_sockets(self) -> list:
-        return [s for s in (self.maps.snapshot_socket, self.maps.ack_socket) if s is not None]
+        return [s for s in (self.maps.snapshot_socket, self.maps.ack_socket,
+                            self.maps.outcome_socket) if s is not None]
 
-    def handle(self, sock) -> list[dict]:
+    def handle(self, sock) -> list:
+        """Serve a readable socket: snapshot requests (nothing returned), acks (dicts) or
+        frame outcomes (:class:`~brimline.daemon.records.FrameOutcome`)."""
         if sock is self.maps.snapshot_socket:
             self.maps.handle_snapshot()
             return []
+        if sock is self.maps.outcome_socket:
+            return self.maps.poll_outcomes()
         return self.maps.poll_acks()
 
     def protocol_errors(self) -> dict[str, dict[str, int]]:
@@ -131,7 +136,8 @@ class Outlets:
 
     def endpoints(self) -> dict[str, str]:
         out = {"maps": self.maps.map_endpoint, "snapshots": self.maps.snapshot_endpoint,
-               "acks": self.maps.ack_endpoint, "status": self.status.endpoint}
+               "acks": self.maps.ack_endpoint, "outcomes": self.maps.outcome_endpoint,
+               "status": self.status.endpoint}
         if self.metrics is not None:
             out["metrics"] = self.metrics.url
         return out

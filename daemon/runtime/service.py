@@ -77,7 +77,7 @@ import zmq
 
 from brimline.daemon.core.controller import LinkController, Step
 from brimline.daemon.errors import BrimlineError, ProtocolError
-from brimline.daemon.records import Estimate, LoadMap
+from brimline.daemon.records import Estimate, FrameOutcome, LoadMap
 from brimline.daemon.runtime.assemble import (
     FollowerMapProvider,
     build_controller,
@@ -360,8 +360,15 @@ class Service:
                 self._handle_inproc(frames)
         for sock in self._io.poll_sockets():
             if sock in events:
-                for ack in self._io.handle(sock):
-                    self._note_ack(ack)
+                bad = self._io.maps.counters["bad_outcomes"]
+                for message in self._io.handle(sock):
+                    if isinstance(message, FrameOutcome):
+                        self.controller.on_outcome(message, self.core_now())
+                    else:
+                        self._note_ack(message)
+                # outcomes the publisher could not decode show in status outer.dropped too
+                for _ in range(self._io.maps.counters["bad_outcomes"] - bad):
+                    self.controller.count_bad_outcome()
         # Staleness while the source is silent: not for a source that runs on its own time
         # as fast as it is read (its gaps show in its estimates' times), unless it failed.
         # (In lockstep the source is never silent: a frame without estimate is a tick.)

@@ -24,6 +24,8 @@ Layout of the message (version 1)::
      "protocol_errors": {socket: {reason: n}},   # malformed or forged messages dropped
      "link": {"frames", "frame_errors", "frame_error_rate", "bits", "bit_errors",
               "bit_error_rate", "goodput_bps", "link_time_s"} | None,   # closed loop only
+     "outer": {"active", "offset_db", "fer", "window", "target_fer", "outcomes", "errored",
+               "repeated", "went_off", "dropped": {reason: n}} | None,   # outer margin loop
      "alarms": ["stale", "fallback", "emergency", "driver_failed", ...]}
 
 The band is compact: tones are grouped into at most ``columns`` adjacent groups; each group shows
@@ -121,7 +123,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  columns: int = 128, state_unsaved: bool = False,
                  recording: Mapping[str, Any] | None = None,
                  protocol_errors: Mapping[str, Mapping[str, int]] | None = None,
-                 link: Mapping[str, Any] | None = None) -> dict:
+                 link: Mapping[str, Any] | None = None,
+                 outer: Mapping[str, Any] | None = None) -> dict:
     """Build the status message (see the module docstring for its layout).
 
     Parameters
@@ -170,6 +173,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     link : mapping, optional
         The closed loop's counts (``LinkTally.summary()``); None where the source cannot know
         what was sent.
+    outer : mapping, optional
+        The outer margin loop's status (:meth:`LinkController.outer_status`); None without
+        an outer loop.
 
     Returns
     -------
@@ -261,6 +267,15 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
             "bit_error_rate": finite(link.get("bit_error_rate"), 9),
             "goodput_bps": finite(link.get("goodput_bps"), 1),
             "link_time_s": finite(link.get("link_time_s"))},
+        "outer": None if outer is None else {
+            "active": bool(outer.get("active", False)),
+            "offset_db": finite(outer.get("offset_db"), 2),
+            "fer": finite(outer.get("fer"), 4),
+            "window": int(outer.get("window", 0)),
+            "target_fer": finite(outer.get("target_fer")),
+            **{k: int(outer.get(k, 0)) for k in ("outcomes", "errored", "repeated",
+                                                   "went_off")},
+            "dropped": {str(k): int(v) for k, v in dict(outer.get("dropped", {})).items()}},
         "alarms": alarms,
     }
 
@@ -273,7 +288,7 @@ def controller_fields(controller: LinkController, time_s: float) -> dict[str, An
     dict
         ``frames`` (counters, rejections, the estimator's tracking counters), ``estimate_age_s``,
         ``tone_index`` and ``snr_db`` of the tracked view, ``current_map``, ``current_kind``,
-        ``maps_published``, ``changes``, ``stale`` and ``state_unsaved``.
+        ``maps_published``, ``changes``, ``stale``, ``state_unsaved`` and ``outer``.
     """
     c = controller
     tracked = c.last_tracked
@@ -285,7 +300,7 @@ def controller_fields(controller: LinkController, time_s: float) -> dict[str, An
                 snr_db=None if tracked is None else tracked.snr_db,
                 current_map=c.current_map, current_kind=c.current_kind,
                 maps_published=c.maps_published, changes=list(c.changes), stale=c.stale,
-                state_unsaved=c.state_unsaved)
+                state_unsaved=c.state_unsaved, outer=c.outer_status(time_s))
 
 
 def summary_line(status: Mapping[str, Any]) -> str:

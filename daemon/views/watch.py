@@ -225,6 +225,18 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
                     f"{band.get('tones', 0)} ({band.get('tone_first', '-')}.."
                     f"{band.get('tone_last', '-')})")
 
+    outer = status.get("outer")
+    if outer:
+        fer = outer.get("fer")
+        fer_txt = "-" if fer is None else f"{100 * fer:.1f} % of {outer.get('window', 0)}"
+        target = outer.get("target_fer")
+        state = "on" if outer.get("active") else "off (no feedback)"
+        figures.add_row("outer loop", f"{state}, offset "
+                        f"{_fmt(outer.get('offset_db'), '+.2f', ' dB')}",
+                        "frame errors", f"{fer_txt} (target "
+                        f"{'-' if target is None else f'{100 * target:.1f} %'}, "
+                        f"{outer.get('outcomes', 0)} outcomes)")
+
     chart = band_chart(list(band.get("snr_db", [])), list(band.get("bits", [])),
                        list(band.get("power_db", [])), max_columns=None if width is None else max(8, width - 14))
 

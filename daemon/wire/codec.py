@@ -47,7 +47,7 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 
 from brimline.daemon.errors import ProtocolError
-from brimline.daemon.records import Estimate, LoadMap, TonePlan
+from brimline.daemon.records import Estimate, FrameOutcome, LoadMap, TonePlan
 
 __all__ = [
     "PROTOCOL_VERSION",
@@ -58,6 +58,7 @@ __all__ = [
     "TOPIC_ACK",
     "TOPIC_ESTIMATE",
     "TOPIC_DECISION",
+    "TOPIC_OUTCOME",
     "SNAPSHOT_REQUEST",
     "encode",
     "decode",
@@ -80,6 +81,7 @@ TOPIC_STATUS = "status"  #: operators' periodic status (status PUB)
 TOPIC_ACK = "ack"  #: transmitter acknowledgements (PUSH -> PULL)
 TOPIC_ESTIMATE = "estimate"  #: channel estimates (inproc hand-off, recordings)
 TOPIC_DECISION = "decision"  #: change-control decisions (status PUB, recordings)
+TOPIC_OUTCOME = "outcome"  #: frame outcomes from the receiver side (PUSH -> PULL, outer loop)
 
 #: The single frame a client sends (after the empty delimiter) to ask for the current map.
 SNAPSHOT_REQUEST = b"snapshot"
@@ -163,6 +165,7 @@ register_record("estimate", Estimate,
                 arrays={"tone_index": "<i2", "channel": "<c8", "noise_var": "<f4",
                         "snr_db": "<f4"},
                 finite=("time_s",))
+register_record("frame_outcome", FrameOutcome, arrays={}, finite=("time_s",))
 register_record("tone_plan", TonePlan,
                 arrays={"data_tones": "<i2", "pilot_tones": "<i2", "null_tones": "<i2"},
                 finite=("sample_rate_hz",))

@@ -9,8 +9,17 @@ simulator's true per-tone SNR; its RMS is dominated by the few tones in deep not
 below 0 dB, where no bits load), so the figure is also given over the tones above 0 dB, next to
 the receiver's raw per-frame error and a synthetic least-squares pilot estimate. The
 ``fading_*`` figures (information, no goal) run the link model's channel (EVA, 0.2 Hz and 1 Hz
-Doppler) and count map changes, rate and tone-frames left below the raw SNR gap. Frames are 100
-per second of simulated time; no sockets. Timings are the best of three passes (shared machine);
+Doppler) and count map changes, rate and tone-frames left below the raw SNR gap.
+``drift_changes_per_min`` runs the same channel frozen (no Doppler) with its slow sinusoidal gain
+drift of 2 dB peak and 60 s period, and counts maps over the 60 s after a 5 s start.
+``outer_loop_fer_error`` closes the outer margin loop on a synthetic error model: frozen EVA at
+20 dB, loading with ``margin_db: 0`` and the uncoded-QAM gap of SER 1e-7, while the frames meet
+3 dB less SNR than the loader assumes (a gap 3 dB too optimistic). Each frame's error
+probability is ``1 - prod_k (1 - SER_k)**12`` over the loaded tones (12 data symbols a frame),
+with the exact symbol error rates of ``brimline.daemon.core.qam.grid_ser`` at the true per-tone
+SNR of the map in force; a seeded Bernoulli draw decides, and the outcome goes to the link
+controller as the receiver's report. Target 10 %; the figure is |measured - target| / target
+over the frames after 10 s. Frames are 100 per second of simulated time; no sockets. Timings are the best of three passes (shared machine);
 their ``*_vs_ref`` companions relate them to the reference workload (``reference.py``), sampled
 before each pass.
 """
@@ -24,9 +33,17 @@ import numpy as np
 from reference import Reference
 
 from brimline.daemon.core.change import ChangeControl
+from brimline.daemon.core.controller import LinkController
 from brimline.daemon.core.estimator import Estimator
-from brimline.daemon.records import DecisionKind, Estimate
-from brimline.daemon.runtime.config import ChangeSection, EstimatorSection, LoadingSection
+from brimline.daemon.core.outer import OuterLoop
+from brimline.daemon.core.qam import grid_ser
+from brimline.daemon.records import DecisionKind, Estimate, FrameOutcome
+from brimline.daemon.runtime.config import (
+    ChangeSection,
+    EstimatorSection,
+    LoadingSection,
+    OuterSection,
+)
 
 GOALS = {
     "pipeline_fps_1024": ">= 5000 frames/s (estimator + change control + loading, 1024 tones)",
@@ -48,10 +65,20 @@ GOALS = {
     "fading_rate_ratio": "info: mean rate with / without change control (fading)",
     "fading_outage_cc": "info: loaded tone-frames below the raw gap, with change control",
     "fading_outage_nohyst": "info: the same without change control",
+    "fading_swaps_per_min": "info: bit swaps among fading_changes_per_min",
     "fading1hz_changes_per_min": "info: as fading_*, 1 Hz Doppler (faster fading)",
+    "fading1hz_nohyst_changes_per_min": "info: the same without change control",
+    "fading1hz_churn_vs_nohyst": ">= 10 (fading1hz changes without / with change control)",
     "fading1hz_rate_ratio": "info",
-    "fading1hz_outage_cc": "info",
+    "fading1hz_outage_cc": "<= 0.01 (loaded tone-frames below the raw gap, 1 Hz Doppler)",
     "fading1hz_outage_nohyst": "info",
+    "drift_changes_per_min": "<= 6 maps/min (frozen EVA, 2 dB peak drift, 60 s period, 25 dB)",
+    "drift_bit_swaps_per_min": "info: of which bit swaps",
+    "outer_loop_fer_error": "<= 0.25 (|FER - 10 %| / 10 %, gap 3 dB too optimistic, QAM "
+                            "error model on the true SNR)",
+    "outer_loop_fer": "info: the measured frame error rate with the outer loop (target 0.1)",
+    "outer_loop_fer_open": "info: the same scenario without the outer loop",
+    "outer_loop_offset_db": "info: the outer loop's offset at the end, dB",
     "track_rmse_db_indoor_1hz": "info: tracked snr_db vs truth, ITU-R M.1225 Indoor A, 1 Hz, "
                                 "25 dB, tones above 0 dB true SNR (defaults)",
     "track_eff_rmse_db_indoor_1hz": "info: the same for effective_snr_db (includes back-off)",
@@ -214,7 +241,8 @@ def _rmse_synthetic(seconds, settle_s, seed=13, n_tones=1024, pilots=2, pool=32)
             float(np.sqrt(np.mean(np.square(errs[:, truth > 0.0])))))
 
 
-def _fading(seconds, seed=21, doppler_hz=0.2, estimator=None, change=None):
+def _fading(seconds, seed=21, doppler_hz=0.2, estimator=None, change=None, drift_db=0.0,
+            settle_s=0.0):
     """Slow fading through the link model's channel (truth only) with 1 dB estimation noise.
 
     The map decided on frame k is used for frame k + 1; a loaded tone whose true SNR there gives
@@ -226,9 +254,11 @@ def _fading(seconds, seed=21, doppler_hz=0.2, estimator=None, change=None):
 
     plan = make_plan()
     channel = LinkChannel(plan, profile="eva", doppler_hz=doppler_hz, snr_db=25.0,
+                          drift_db=drift_db, drift_period_s=60.0,
                           rng=np.random.default_rng(seed))
     noise = np.random.default_rng(seed + 1)
     section = LoadingSection()
+    swaps = 0
     loader = section.loader()
     floor_db = -section.margin_db
     est = Estimator(**{**EstimatorSection().model_dump(), **(estimator or {})})
@@ -260,21 +290,62 @@ def _fading(seconds, seed=21, doppler_hz=0.2, estimator=None, change=None):
         tr = est.tracked(t)
         d = cc.decide(tr, t)
         plain = loader(10 ** (tr.effective_snr_db / 10))
-        if k > 0:
+        if k > 0 and t >= settle_s:
             on += d.kind is not DecisionKind.KEEP
+            swaps += d.kind is DecisionKind.BIT_SWAP
             off += prev_plain is not None and not np.array_equal(plain.bits, prev_plain.bits)
         prev_plain = plain
         bits_on += cc.current.total_bits
         bits_off += plain.total_bits
         pending = ((cc.current, True), (plain, False))
-    minutes = seconds / 60.0
+    minutes = (seconds - settle_s) / 60.0
     return {
+        "fading_swaps_per_min": swaps / minutes,
         "fading_changes_per_min": on / minutes,
         "fading_nohyst_changes_per_min": off / minutes,
         "fading_rate_ratio": bits_on / bits_off,
         "fading_outage_cc": out_on / max(loaded_on, 1),
         "fading_outage_nohyst": out_off / max(loaded_off, 1),
     }
+
+
+def _outer_loop(seconds, *, closed=True, seed=31, settle_s=10.0, loss_db=3.0, target=0.1):
+    """The outer loop on a synthetic error model (see the module docstring): measured frame
+    error rate after ``settle_s`` and the final offset."""
+    from brimline.drivers.air.channel import LinkChannel
+    from brimline.drivers.link.frame import make_plan
+
+    plan = make_plan()
+    truth = LinkChannel(plan, profile="eva", doppler_hz=0.0, snr_db=20.0,
+                        rng=np.random.default_rng(seed)).truth(0.0).snr_db
+    noise = np.random.default_rng(seed + 1)
+    draws = np.random.default_rng(seed + 2)
+    section = LoadingSection(margin_db=0.0)
+    loader = section.loader()
+    outer = OuterLoop(**{**OuterSection().model_dump(), "target_fer": target}) if closed else None
+    ctl = LinkController(plan, Estimator(**EstimatorSection().model_dump()),
+                         ChangeControl(loader, **ChangeSection().model_dump()),
+                         gap_db=loader.gap_db, epoch="bench", outer=outer)
+    n = plan.data_tones.size
+    ones = np.ones(n)
+    true_lin = 10 ** ((truth - loss_db) / 10)   # what the frames really meet
+    errors = []
+    in_force = None
+    for k in range(int(seconds * FPS)):
+        t = k / FPS
+        if in_force is not None:   # the map decided on the previous frame carries this one
+            ser = grid_ser(in_force.bits, true_lin * in_force.power_lin)
+            p_frame = 1.0 - float(np.prod((1.0 - ser) ** 12))
+            errored = bool(draws.random() < p_frame)
+            if t >= settle_s:
+                errors.append(errored)
+            ctl.on_outcome(FrameOutcome("bench", in_force.seq, k, errored, t), t)
+        e = Estimate(frame=k, time_s=t, plan_id=plan.plan_id, tone_index=plan.data_tones,
+                     channel=ones, noise_var=ones, snr_db=truth + noise.normal(0.0, 1.0, n))
+        ctl.on_estimate(e, t)
+        in_force = ctl.current_map
+    offset = outer.offset_db(seconds) if outer is not None else 0.0
+    return float(np.mean(errors)), offset
 
 
 def _track_indoor(seconds, doppler_hz=1.0, seed=3, settle_s=1.0):
@@ -340,8 +411,19 @@ def run(quick: bool) -> dict[str, float]:
     figures["snr_rmse_db_synthetic_above_0db"] = synthetic_above
     figures.update(_fading(30.0 if quick else 120.0))
     fast = _fading(20.0 if quick else 60.0, doppler_hz=1.0)
-    for key in ("changes_per_min", "rate_ratio", "outage_cc", "outage_nohyst"):
+    for key in ("changes_per_min", "nohyst_changes_per_min", "rate_ratio", "outage_cc",
+                "outage_nohyst"):
         figures[f"fading1hz_{key}"] = fast[f"fading_{key}"]
+    figures["fading1hz_churn_vs_nohyst"] = (fast["fading_nohyst_changes_per_min"]
+                                            / max(fast["fading_changes_per_min"], 1e-9))
+    drift = _fading(65.0, doppler_hz=0.0, drift_db=2.0, settle_s=5.0)
+    figures["drift_changes_per_min"] = drift["fading_changes_per_min"]
+    figures["drift_bit_swaps_per_min"] = drift["fading_swaps_per_min"]
+    fer, offset = _outer_loop(40.0 if quick else 70.0)
+    figures["outer_loop_fer"] = fer
+    figures["outer_loop_fer_error"] = abs(fer - 0.1) / 0.1
+    figures["outer_loop_offset_db"] = offset
+    figures["outer_loop_fer_open"] = _outer_loop(20.0, closed=False)[0]
     figures.update(_track_indoor(4.0 if quick else 10.0))
     return figures
 
