@@ -735,6 +735,19 @@ class CaptureWriter:
                 raise RecordingError(f"{self.meta_path}: cannot finish IQ capture: {exc}") from exc
         return self.meta_path, self.data_path
 
+    def abandon(self) -> None:
+        """Close without metadata and delete the data file if no sample was written; else
+        :meth:`close`. For a start that failed before any sample came."""
+        with self._lock:
+            if self._closed or self.n_samples:
+                pass
+            else:
+                self._closed = True
+                self._file.close()
+                self.data_path.unlink(missing_ok=True)
+                return
+        self.close()
+
     def __enter__(self) -> "CaptureWriter":
         return self
 
