@@ -33,6 +33,7 @@ _COMMANDS = {
     "run": "run the daemon: estimates in, maps and status out",
     "watch": "live terminal view of a running daemon's status stream",
     "keys": "create CURVE key pairs for encrypted map and status sockets",
+    "sweep": "replay recordings under a grid of settings on a Dask cluster (CSV and figure)",
 }
 
 
