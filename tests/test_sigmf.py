@@ -240,3 +240,15 @@ def test_the_daemon_captures_iq_while_it_runs(tmp_path):
 def test_record_iq_needs_an_iq_source():
     with pytest.raises(ValueError, match=r"needs an IQ source"):
         Config.model_validate({"record": {"iq": {"path": "cap"}}})
+
+
+def test_check_refuses_an_existing_capture(tmp_path, capsys):
+    from brimline.daemon.commands import cli
+    (tmp_path / "cap.sigmf-data").write_bytes(b"")
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(f"driver:\n  kind: iq\n  iq:\n    path: {REPLAY / 'link-demo'}\n"
+                   f"record:\n  iq:\n    path: cap\n")
+    assert cli.main(["run", "--config", str(cfg), "--check"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "record.iq.path=" in err[0] and "cap.sigmf-data exists already" \
+        in err[0]

@@ -31,6 +31,7 @@ from __future__ import annotations
 import itertools
 import logging
 import math
+import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable, Mapping, Sequence
@@ -261,7 +262,7 @@ def run_sweep(config: Config, recordings: Sequence[str], settings: Sequence[Mapp
               *, workers: int = 2, scheduler: str | None = None,
               task: Callable[[Config, str, Mapping[str, Any]], dict] = replay_summary,
               on_result: Callable[[TaskResult], None] | None = None,
-              connect_timeout_s: float = 30.0) -> list[TaskResult]:
+              connect_timeout_s: float = 30.0, client=None) -> list[TaskResult]:
     """Run every (recording, setting) task on a Dask cluster; results in grid order.
 
     Parameters
@@ -282,6 +283,9 @@ def run_sweep(config: Config, recordings: Sequence[str], settings: Sequence[Mapp
         Called with each :class:`TaskResult` as it arrives (progress).
     connect_timeout_s : float
         How long to wait for the scheduler.
+    client : distributed.Client or None
+        An existing client to use instead (``workers`` and ``scheduler`` are then ignored, and
+        the client stays open): benchmarks and tools that run several sweeps on one cluster.
 
     Returns
     -------
@@ -294,12 +298,14 @@ def run_sweep(config: Config, recordings: Sequence[str], settings: Sequence[Mapp
         dask.distributed is not installed, ``workers`` is below 1, or the scheduler cannot be
         reached.
     """
-    if scheduler is None and workers < 1:
+    if scheduler is None and client is None and workers < 1:
         raise InputError(f"--workers={workers} must be >= 1")
     distributed = _load_distributed()
     pairs = [(str(rec), dict(setting)) for rec in recordings for setting in settings]
     if not pairs:
         return []
+    if client is not None:
+        return _collect(distributed, client, config, pairs, task, on_result)
     try:
         if scheduler is None:
             cluster = distributed.LocalCluster(
@@ -325,9 +331,12 @@ def run_sweep(config: Config, recordings: Sequence[str], settings: Sequence[Mapp
 
 
 def _collect(distributed, client, config, pairs, task, on_result) -> list[TaskResult]:
-    config_future = client.scatter(config, broadcast=True)  # sent once, not once per task
+    # The config goes to the workers once, not once per task. Keys are unique per sweep so that
+    # two sweeps on one client never share (and release) each other's data.
+    run_id = uuid.uuid4().hex[:12]
+    config_future = client.scatter(config, broadcast=True, hash=False)
     futures = [client.submit(task, config_future, rec, setting, pure=False,
-                             key=f"brimline-sweep-{i}")
+                             key=f"brimline-sweep-{run_id}-{i}")
                for i, (rec, setting) in enumerate(pairs)]
     index = {fut.key: i for i, fut in enumerate(futures)}
     results: list[TaskResult | None] = [None] * len(pairs)
