@@ -3,6 +3,7 @@ over 2 recordings x 2 settings, with a failing task reported by name while the o
 No timing is asserted; the cluster run only has to end."""
 
 import csv
+import importlib.util
 import sys
 from pathlib import Path
 
@@ -49,6 +50,7 @@ class TestGrid:
         ({"estimator.nope": 1}, r"estimator.nope=1: no such config key"),
         ({"nope.tau_s": 1}, r"nope.tau_s=1: no config section 'nope'"),
         ({"estimator.tau_s": "fast"}, r"estimator.tau_s='fast'"),
+        ({"fallback.bits": 9}, r"^fallback.bits=9: is not one of loading.bits="),
     ])
     def test_bad_settings_name_key_and_value(self, setting, match):
         with pytest.raises(ConfigError, match=match):
@@ -86,7 +88,10 @@ def test_sweep_on_two_workers_reports_a_failing_task_by_name(tmp_path, capsys):
     assert len(lines) == 2 and all(str(broken) in line and "estimator.tau_s=" in line
                                    for line in lines)
     assert "2 of 6 tasks failed" in err
-    assert (tmp_path / "sweep.png").stat().st_size > 0
+    if importlib.util.find_spec("matplotlib") is not None:  # the figure is optional
+        assert (tmp_path / "sweep.png").stat().st_size > 0
+    else:
+        assert "figure skipped" in err
 
 
 def test_run_sweep_returns_results_in_grid_order():
@@ -94,6 +99,24 @@ def test_run_sweep_returns_results_in_grid_order():
                         workers=1)
     assert [r.setting for r in results] == [{"estimator.tau_s": 0.1}, {"estimator.tau_s": 1.0}]
     assert all(r.ok for r in results)
+
+
+def test_sweep_on_an_existing_scheduler(tmp_path, capsys):
+    """--scheduler: a scheduler started apart from the sweep (here a local cluster of one
+    worker process on loopback) runs the tasks and stays up afterwards."""
+    import logging
+
+    from dask import distributed
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
+                                  dashboard_address=None, silence_logs=logging.ERROR,
+                                  host="127.0.0.1") as cluster:
+        out = tmp_path / "s.csv"
+        code = cli.main(["sweep", IQ, "--grid", "estimator.tau_s=0.1,1.0", "--scheduler",
+                         cluster.scheduler_address, "-o", str(out), "--no-figure"])
+        assert code == 0, capsys.readouterr().err
+        assert [r["status"] for r in csv.DictReader(out.open())] == ["ok", "ok"]
+        assert len(cluster.scheduler_info["workers"]) == 1  # still up
+    assert not (tmp_path / "s.png").exists()
 
 
 @pytest.mark.parametrize("argv, match", [
@@ -118,6 +141,16 @@ def test_missing_dask_gives_the_install_hint(monkeypatch, capsys, tmp_path):
                      str(tmp_path / "s.csv")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "pip install 'brimline[sweep]'" in err[0]
+
+
+def test_nested_figures_become_columns(tmp_path):
+    from brimline.daemon.commands.sweep import write_table
+    results = [TaskResult("a", {"k": 1}, summary={"frames": 3, "rejected": {"outlier": 2}}),
+               TaskResult("b", {"k": 2}, error="b: unreadable")]
+    write_table(results, ["k"], tmp_path / "t.csv")
+    rows = list(csv.DictReader((tmp_path / "t.csv").open()))
+    assert rows[0]["rejected.outlier"] == "2" and rows[1]["status"] == "failed"
+    assert rows[1]["error"] == "b: unreadable" and rows[1]["frames"] == ""
 
 
 def test_figure_is_skipped_without_matplotlib(monkeypatch, tmp_path):

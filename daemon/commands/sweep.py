@@ -28,6 +28,7 @@ from brimline.daemon.runtime.config import Config, load_config
 from brimline.daemon.runtime.sweep import (
     TaskResult,
     apply_setting,
+    flat_summary,
     grid_settings,
     parse_grid,
     recording_is_sigmf,
@@ -128,7 +129,7 @@ def write_table(results: Sequence[TaskResult], keys: Sequence[str], path: Path) 
             writer = csv.writer(f)
             writer.writerow(["recording", *keys, "status", "error", *figures])
             for r in results:
-                summary = r.summary or {}
+                summary = flat_summary(r.summary)
                 writer.writerow([r.recording, *(r.setting.get(k, "") for k in keys),
                                  "ok" if r.ok else "failed", r.error or "",
                                  *("" if summary.get(k) is None else summary[k]

@@ -43,12 +43,12 @@ from pydantic import ValidationError
 from brimline.daemon.core.controller import REJECTED
 from brimline.daemon.errors import BrimlineError, ConfigError, InputError
 from brimline.daemon.runtime.assemble import build_controller, build_core
-from brimline.daemon.runtime.config import Config, ConfigLoader
+from brimline.daemon.runtime.config import Config, ConfigLoader, KeyProblem
 from brimline.drivers.sources.iq import IqDriver
 from brimline.drivers.sources.replay import ReplayDriver
 
 __all__ = ["INSTALL_HINT", "TaskResult", "parse_grid", "grid_settings", "apply_setting",
-           "replay_summary", "run_sweep", "recording_is_sigmf", "summary_columns"]
+           "replay_summary", "run_sweep", "recording_is_sigmf", "summary_columns", "flat_summary"]
 
 log = logging.getLogger("brimline.sweep")
 
@@ -155,10 +155,13 @@ def apply_setting(config: Config, setting: Mapping[str, Any]) -> Config:
         return Config.model_validate(data)
     except ValidationError as exc:
         err = exc.errors()[0]
-        where = ".".join(str(p) for p in err["loc"] if p not in ("function-after",))
-        raise ConfigError(f"{where}={err.get('input')!r}: {err['msg']}") from None
-    except ValueError as exc:  # a cross-section check
-        raise ConfigError(f"{' '.join(setting)}: {exc}") from None
+        loc = tuple(str(p) for p in err["loc"])
+        problem = (err.get("ctx") or {}).get("error")
+        if isinstance(problem, KeyProblem):  # a check across keys names its own key
+            where = ".".join(loc + problem.loc)
+            raise ConfigError(f"{where}={problem.value!r}: {problem.msg}") from None
+        msg = err["msg"].removeprefix("Value error, ")
+        raise ConfigError(f"{'.'.join(loc)}={err.get('input')!r}: {msg}") from None
 
 
 # --------------------------------------------------------------------------- the task
@@ -353,10 +356,26 @@ def _collect(distributed, client, config, pairs, task, on_result) -> list[TaskRe
     return [r for r in results if r is not None]
 
 
+def flat_summary(summary: Mapping[str, Any] | None) -> dict[str, Any]:
+    """A task's figures with nested dicts spread into ``key.sub`` entries (for one table row).
+
+    A task may return counts by reason as a dict (``{"rejected": {"outlier": 3}}``); the table
+    gets a column ``rejected.outlier``.
+    """
+    out: dict[str, Any] = {}
+    for key, value in (summary or {}).items():
+        if isinstance(value, Mapping):
+            for sub, inner in flat_summary(value).items():
+                out[f"{key}.{sub}"] = inner
+        else:
+            out[key] = value
+    return out
+
+
 def summary_columns(results: Iterable[TaskResult]) -> list[str]:
-    """Summary keys over all results, in first-seen order."""
+    """Table columns of the tasks' figures (:func:`flat_summary`), in first-seen order."""
     seen: dict[str, None] = {}
     for r in results:
-        for k in (r.summary or {}):
+        for k in flat_summary(r.summary):
             seen.setdefault(k)
     return list(seen)
