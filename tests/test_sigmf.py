@@ -86,7 +86,9 @@ class TestWriter:
         assert [c[f"{EXTENSION}:segment"] for c in captures] == ["start", "gap", "overflow",
                                                                   "retune"]
         assert [c["core:frequency"] for c in captures] == [915e6, 915e6, 915e6, 916e6]
-        assert captures[0]["core:datetime"] == "1970-01-01T00:00:00.000000Z"
+        assert [c["core:datetime"] for c in captures] == [  # global_index / 1 MS/s
+            "1970-01-01T00:00:00.000000Z", "1970-01-01T00:00:00.000150Z",
+            "1970-01-01T00:00:00.000257Z", "1970-01-01T00:00:00.000357Z"]
         _library_open(tmp_path / "s")
         rec = read_sigmf(tmp_path / "s")
         assert [(s.sample_start, s.sample_count, s.global_index) for s in rec.segments] == [

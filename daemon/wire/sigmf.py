@@ -548,7 +548,8 @@ class CaptureWriter:
     overwrite : bool
         Replace an existing recording of that name (otherwise refused).
     datetime_s : float or None
-        Wall time of the first sample (seconds since the Unix epoch) for ``core:datetime``.
+        Wall time of the first sample (seconds since the Unix epoch) for ``core:datetime``;
+        later segments get it from their ``core:global_index`` unless given their own.
 
     Raises
     ------
@@ -584,6 +585,7 @@ class CaptureWriter:
         self._closed = False
         self.n_samples = 0
         self._lost = 0
+        self._start_datetime_s = None if datetime_s is None else float(datetime_s)
         self._segments: list[dict] = []
         self._open_segment("start", None, datetime_s)
         if not overwrite and (self.meta_path.exists() or self.data_path.exists()):
@@ -607,6 +609,9 @@ class CaptureWriter:
             seg["core:frequency"] = self._center_hz
         if lost is not None:
             seg[_LOST_KEY] = int(lost)
+        if datetime_s is None and self._start_datetime_s is not None:
+            # restated from the start time and the original stream's sample count
+            datetime_s = self._start_datetime_s + seg["core:global_index"] / self.sample_rate_hz
         if datetime_s is not None:
             seg["core:datetime"] = _utc(float(datetime_s))
         if self._segments and self._segments[-1]["core:sample_start"] == self.n_samples:
