@@ -31,11 +31,12 @@ from brimline.daemon.wire.sigmf import (
     CI16_FULL_SCALE,
     CaptureWriter,
     Recording,
+    Segment,
     read_sigmf,
     write_sigmf,
 )
 from brimline.drivers.link.frame import as_link_plan
-from brimline.drivers.link.receiver import FrameScanner, Receiver
+from brimline.drivers.link.receiver import FrameScanner, Receiver, RxFrame
 from brimline.drivers.sources.base import Driver
 
 __all__ = ["IqDriver", "Recording", "CaptureWriter", "read_sigmf", "write_sigmf",
@@ -143,7 +144,7 @@ class IqDriver(Driver):
             if self.closed:
                 return
 
-    def _segment_frames(self, rec: Recording, seg) -> Iterator[tuple[int, object]]:
+    def _segment_frames(self, rec: Recording, seg: Segment) -> Iterator[tuple[int, RxFrame]]:
         """``(absolute sample index, RxFrame)`` of every frame with an estimate in ``seg``."""
         scanner = FrameScanner(self.receiver)
         chunk = 16 * self.plan.frame_len
@@ -166,7 +167,7 @@ class IqDriver(Driver):
 
     # ------------------------------------------------------------------ IQ capture
 
-    def _mark_segment(self, seg, previous) -> None:
+    def _mark_segment(self, seg: Segment, previous: Segment) -> None:
         """Start a capture segment where the played recording starts one."""
         lost = (seg.global_index - seg.sample_start) - (previous.global_index
                                                         - previous.sample_start)

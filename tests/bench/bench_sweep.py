@@ -14,6 +14,7 @@ Speed-up = time on 1 / time on 2. It needs 2 idle cores: on a busy box it reads 
 
 from __future__ import annotations
 
+import logging
 import sys
 import tempfile
 import time
@@ -25,7 +26,7 @@ from reference import Reference  # noqa: E402
 
 from brimline.daemon.runtime.config import Config  # noqa: E402
 from brimline.daemon.runtime.sweep import replay_summary, run_sweep  # noqa: E402
-from brimline.daemon.wire.sigmf import write_sigmf  # noqa: E402
+from brimline.daemon.wire.sigmf import read_sigmf, write_sigmf  # noqa: E402
 from brimline.drivers.link.frame import make_plan  # noqa: E402
 from brimline.drivers.sources.sim import SimDriver  # noqa: E402
 
@@ -47,7 +48,6 @@ def _capture(folder: Path, name: str, frames: int, seed: int) -> str:
 
 
 def _iq_msps(path: str, repeats: int, ref: Reference) -> float:
-    from brimline.daemon.wire.sigmf import read_sigmf
     n = read_sigmf(path).n_samples
     config = Config()
     times = []
@@ -63,7 +63,6 @@ def _iq_msps(path: str, repeats: int, ref: Reference) -> float:
 def _sweep_seconds(workers: int, recordings: list[str], settings: list[dict],
                    repeats: int) -> float:
     from dask import distributed  # optional extra [sweep]
-    import logging
     with distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                   dashboard_address=None, silence_logs=logging.ERROR) as cluster, \
             distributed.Client(cluster) as client:
