@@ -313,7 +313,8 @@ def run_sweep(config: Config, recordings: Sequence[str], settings: Sequence[Mapp
         if scheduler is None:
             cluster = distributed.LocalCluster(
                 n_workers=workers, threads_per_worker=1, processes=True,
-                dashboard_address=None, silence_logs=logging.ERROR)
+                dashboard_address=None, silence_logs=logging.ERROR,
+                host="127.0.0.1")
         else:
             cluster = None
     except (OSError, RuntimeError) as exc:

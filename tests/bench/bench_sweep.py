@@ -7,9 +7,10 @@ interleaved with the reference workload), with ``replay_iq_msps_vs_ref``.
 
 ``sweep_speedup_2``: the same grid (4 captures x 2 settings, each task a capture through the
 receiver and controller, about a second of work) on a local Dask cluster of 1 and of 2 worker
-processes (one thread each), time from submission to the last result; each cluster is started
-and warmed up (the grid run once, so the workers have imported brimline) before it is timed.
-Speed-up = time on 1 / time on 2. It needs 2 idle cores: on a busy box it reads low.
+processes (one thread each), time from submission to the last result. Both clusters are up at
+once and warmed up (the grid run once on each, so the workers have imported brimline); then the
+grid runs on one and on the other in turn, and the speed-up is the ratio of their lower-quartile
+times. It needs 2 idle cores: on a busy box it moves with the load.
 """
 
 from __future__ import annotations
@@ -22,7 +23,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from reference import Reference  # noqa: E402
+from reference import Reference, lower_quartile  # noqa: E402
 
 from brimline.daemon.runtime.config import Config  # noqa: E402
 from brimline.daemon.runtime.sweep import replay_summary, run_sweep  # noqa: E402
@@ -60,20 +61,30 @@ def _iq_msps(path: str, repeats: int, ref: Reference) -> float:
     return n / times[len(times) // 4] / 1e6
 
 
-def _sweep_seconds(workers: int, recordings: list[str], settings: list[dict],
-                   repeats: int) -> float:
+def _sweep_speedup(recordings: list[str], settings: list[dict], repeats: int) -> float:
+    """Time on 1 worker process / time on 2, both clusters up at once and timed in turn."""
     from dask import distributed  # optional extra [sweep]
-    with distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                  dashboard_address=None, silence_logs=logging.ERROR) as cluster, \
-            distributed.Client(cluster) as client:
-        run_sweep(Config(), recordings, settings, client=client)  # warm-up: imports, caches
-        best = float("inf")
-        for _ in range(repeats):
-            t0 = time.perf_counter()
-            results = run_sweep(Config(), recordings, settings, client=client)
-            best = min(best, time.perf_counter() - t0)
-            assert all(r.ok for r in results), [r.error for r in results if not r.ok]
-    return best
+
+    def cluster(workers: int):
+        return distributed.LocalCluster(n_workers=workers, threads_per_worker=1,
+                                        processes=True, dashboard_address=None,
+                                        silence_logs=logging.ERROR, host="127.0.0.1")
+
+    def timed(client) -> float:
+        t0 = time.perf_counter()
+        results = run_sweep(Config(), recordings, settings, client=client)
+        elapsed = time.perf_counter() - t0
+        assert all(r.ok for r in results), [r.error for r in results if not r.ok]
+        return elapsed
+
+    with cluster(1) as c1, distributed.Client(c1) as one, \
+            cluster(2) as c2, distributed.Client(c2) as two:
+        timed(one), timed(two)  # warm-up: the workers import brimline, fill caches
+        times_one, times_two = [], []
+        for _ in range(repeats):  # interleaved, so load changes hit both alike
+            times_one.append(timed(one))
+            times_two.append(timed(two))
+    return lower_quartile(times_one) / lower_quartile(times_two)
 
 
 def run(quick: bool) -> dict[str, float]:
@@ -88,10 +99,7 @@ def run(quick: bool) -> dict[str, float]:
         figures["replay_iq_msps"] = msps
         figures["replay_iq_msps_vs_ref"] = ref.rate_ratio(msps * 1e6, mark) / 1e6
         settings = [{"estimator.tau_s": 0.1}, {"estimator.tau_s": 1.0}]
-        repeats = 1 if quick else 2
-        one = _sweep_seconds(1, recordings, settings, repeats)
-        two = _sweep_seconds(2, recordings, settings, repeats)
-        figures["sweep_speedup_2"] = one / two
+        figures["sweep_speedup_2"] = _sweep_speedup(recordings, settings, 2 if quick else 4)
     return figures
 
 
