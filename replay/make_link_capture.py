@@ -2,7 +2,9 @@
 
 Invented scenario: a cabled bench link at the Kestrel Yard workshop, seen through an EPA-like
 multipath emulator at 25 dB SNR with a 1.5 kHz offset; at 0.3 s the emulator fades tones 20..60
-by 12 dB. Default link plan, default map (QPSK), 30 frames, ci16. Reproducible (seed 7).
+by 12 dB. Default link plan, default map (QPSK), 30 frames, ci16. Reproducible (seed 7): the data file
+and the metadata (with its core:sha512 and the brimline:tone_plan extension) come out byte for
+byte the same on every run.
 
     python replay/make_link_capture.py
 """
@@ -10,7 +12,7 @@ by 12 dB. Default link plan, default map (QPSK), 30 frames, ci16. Reproducible (
 from pathlib import Path
 
 from brimline.drivers.link.frame import make_plan
-from brimline.drivers.sources.iq import write_sigmf
+from brimline.daemon.wire.sigmf import write_sigmf
 from brimline.drivers.sources.sim import SimDriver
 
 HERE = Path(__file__).resolve().parent
@@ -24,7 +26,7 @@ def main() -> None:
                              "depth_db": 12.0}])
     samples = sim.capture(30, gap_samples=700) * 0.1  # leave headroom below ci16 full scale
     write_sigmf(HERE / "link-demo", samples, sample_rate_hz=plan.sample_rate_hz,
-                datatype="ci16_le",
+                datatype="ci16_le", plan=plan,
                 description="brimline demo: simulated bench link (invented scenario), default "
                             "link plan and map, 30 frames at 50 frames/s channel time, frames "
                             "packed with 700-sample gaps; band fade of tones 20..60 from 0.3 s")

@@ -47,7 +47,7 @@ class TestCi16Scale:
         """sigmf-python (1.14.0, file sigmf/sigmffile.py, ``SigMFFile._read_datafile`` and
         ``SigMFFile.__getitem__``) scales fixed-point data by ``2 ** -(component_size * 8 - 1)``,
         i.e. int16 by 1/32768: -32768 reads as -1.0 and +32767 as 32767/32768 (read from the
-        package source; sigmf is not a dependency of this project)."""
+        package source; tests/test_sigmf.py also compares with the library's own reader)."""
         assert CI16_FULL_SCALE == 2.0 ** 15
         x = np.array([0.5 - 0.5j, 1.0 - 1.0j, 0.25 + 0.0j], np.complex64)
         write_sigmf(tmp_path / "s", x, sample_rate_hz=1e6, datatype="ci16_le")

@@ -305,10 +305,11 @@ def test_record_section_builds_a_writer(tmp_path):
     import inspect
 
     from brimline.daemon.runtime.config import RecordSection
-    assert set(RecordSection.model_fields) == set(inspect.signature(RecordWriter).parameters) \
-        - {"meta"}
+    # ``record.iq`` is the IQ capture's own sub-section (brimline.daemon.wire.sigmf)
+    assert set(RecordSection.model_fields) - {"iq"} == set(
+        inspect.signature(RecordWriter).parameters) - {"meta"}
     section = RecordSection(path=str(tmp_path / "s.brl"), topics=["map"])
-    with RecordWriter(**section.model_dump()) as w:
+    with RecordWriter(**section.writer_arguments()) as w:
         assert not w.write("status", {"x": 1}) and w.write("map", make_map(1))
     assert RecordSection().path is None  # recording is off unless asked for
 

@@ -410,7 +410,7 @@ class TestRadioSink:
 def test_sigmf_sink_never_overwrites(tmp_path):
     from brimline.daemon.errors import SinkError
     (tmp_path / "x.sigmf-meta").write_text("{}")
-    with pytest.raises(SinkError, match=r"x.sigmf-meta: exists already"):
+    with pytest.raises(SinkError, match=r"tx.path=.*x.sigmf-data: .*exists already"):
         SigmfSink(tmp_path / "x", sample_rate_hz=1e6)
 
 

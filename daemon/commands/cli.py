@@ -36,6 +36,7 @@ _COMMANDS = {
     "keys": "create CURVE key pairs for encrypted map and status sockets",
     "replay": "replay a recording through the decision path offline (summary, what-if, exports)",
     "report": "pictures of a replayed recording: SNR, bits, rate and margin (PNG, PDF, HTML)",
+    "sweep": "replay recordings under a grid of settings on a Dask cluster (CSV and figure)",
 }
 
 

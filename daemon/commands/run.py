@@ -152,7 +152,7 @@ def check_paths(config: Config) -> list[str]:
     -------
     list of str
         One line per problem, each naming the key and its value (``record.path=...``,
-        ``service.state_path=...``); empty when a run could write both.
+        ``record.iq.path=...``, ``service.state_path=...``); empty when a run could write them.
 
     Notes
     -----
@@ -170,6 +170,22 @@ def check_paths(config: Config) -> list[str]:
             why = _cannot_create_in(Path(record).parent)
             if why is not None:
                 problems.append(f"record.path={record}: {why}")
+    capture = config.record.iq.path
+    if capture is not None:
+        base = Path(capture)
+        if base.suffix in (".sigmf-meta", ".sigmf-data"):
+            base = base.with_suffix("")
+        for ext in (".sigmf-meta", ".sigmf-data"):
+            existing = base.with_name(base.name + ext)
+            if existing.exists():
+                problems.append(f"record.iq.path={capture}: {existing} exists already and a "
+                                f"run never overwrites a capture; move it or choose another "
+                                f"path")
+                break
+        else:
+            why = _cannot_create_in(base.parent)
+            if why is not None:
+                problems.append(f"record.iq.path={capture}: {why}")
     state = config.service.state_path
     if state is not None:
         try:

@@ -11,6 +11,8 @@ estimate source (:func:`make_driver`), the state keeper and the recorder (:func:
 
 from __future__ import annotations
 
+import math
+import time
 from typing import Any, Callable
 
 from brimline.daemon.core.change import ChangeControl
@@ -25,6 +27,7 @@ from brimline.daemon.records import LoadMap
 from brimline.daemon.runtime.config import Config
 from brimline.daemon.runtime.transmitter import TxLoop
 from brimline.daemon.wire.recording import RecordWriter
+from brimline.daemon.wire.sigmf import CaptureWriter
 from brimline.daemon.wire.state import StateKeeper, StateStore
 from brimline.drivers.link.frame import make_plan
 from brimline.drivers.sinks.base import Sink
@@ -39,7 +42,7 @@ from brimline.drivers.sources.replay import ReplayDriver
 from brimline.drivers.sources.sim import SimDriver
 
 __all__ = ["build_core", "build_controller", "make_driver", "open_state", "open_recorder",
-           "follower_factory", "FollowerMapProvider", "open_sink", "build_tx"]
+           "open_iq_capture", "follower_factory", "FollowerMapProvider", "open_sink", "build_tx"]
 
 
 def build_core(config: Config):
@@ -96,7 +99,7 @@ def build_controller(config: Config, plan, loader, estimator, change, *, epoch: 
                           outer=outer)
 
 
-def make_driver(config: Config, plan, map_provider=None):
+def make_driver(config: Config, plan, map_provider=None, capture: CaptureWriter | None = None):
     """Build the driver named by ``config.driver.kind``.
 
     Parameters
@@ -107,6 +110,9 @@ def make_driver(config: Config, plan, map_provider=None):
         Tone plan built from ``config.link``.
     map_provider : callable, optional
         For the simulator: returns the map the transmitter should use now.
+    capture : CaptureWriter, optional
+        The IQ capture (:func:`open_iq_capture`) for a source that feeds one; the caller keeps
+        it and closes it after the driver.
 
     Raises
     ------
@@ -121,7 +127,7 @@ def make_driver(config: Config, plan, map_provider=None):
     if kind == "replay":
         return ReplayDriver(**section)
     if kind == "iq":
-        return IqDriver(plan=plan, **section)
+        return IqDriver(plan=plan, capture=capture, **section)
     if kind == "radio":
         return RadioDriver(plan=plan, emulated=config.emulated.model_dump(), **section)
     if kind == "pushed":
@@ -147,10 +153,32 @@ def open_recorder(config: Config, plan) -> RecordWriter | None:
     RecordingError
         When the file exists already or cannot be created.
     """
-    section = config.record.model_dump()
+    section = config.record.writer_arguments()
     if section.get("path") is None:
         return None
     return RecordWriter(meta={"plan_id": plan.plan_id}, **section)
+
+
+def open_iq_capture(config: Config, plan) -> CaptureWriter | None:
+    """The SigMF IQ capture of ``record.iq`` (None when ``record.iq.path`` is null).
+
+    The capture carries the link's sample rate, centre frequency (when set) and tone plan
+    (the ``brimline:tone_plan`` extension), and the wall time of its start.
+
+    Raises
+    ------
+    RecordingError
+        When the capture exists already or cannot be created.
+    """
+    section = config.record.iq
+    if section.path is None:
+        return None
+    center = getattr(plan, "center_hz", math.nan)
+    return CaptureWriter(section.path, sample_rate_hz=plan.sample_rate_hz,
+                         datatype=section.datatype,
+                         center_hz=None if math.isnan(center) else center, plan=plan,
+                         description=f"brimline IQ capture, driver.kind={config.driver.kind}",
+                         datetime_s=time.time())
 
 
 def follower_factory(config: Config, plan, endpoints: dict[str, str],

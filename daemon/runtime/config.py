@@ -78,6 +78,8 @@ __all__ = [
     "RecordSection",
     "TxSection",
     "EmulatedSection",
+    "IqCaptureSection",
+    "IQ_CAPTURE_SOURCES",
     "EstimatorSection",
     "ChangeSection",
     "Config",
@@ -852,11 +854,40 @@ class MetricsSection(Section):
         return v
 
 
+class IqCaptureSection(Section):
+    """``record.iq:`` the SigMF IQ capture written while the daemon runs from an IQ source.
+
+    Fields are keyword arguments of ``brimline.daemon.wire.sigmf.CaptureWriter`` (the runtime adds
+    the sample rate, centre frequency and tone plan from the ``link`` section); ``path: null``
+    captures nothing.
+    """
+
+    path: Optional[str] = Field(
+        None, description="SigMF capture to create, NAME (relative: to the config file); null "
+        "for none")
+    datatype: Literal["cf32_le", "ci16_le"] = Field(
+        "ci16_le", description="sample format: ci16_le (4 bytes a sample) or cf32_le (8)")
+
+    @field_validator("path")
+    @classmethod
+    def _path_ok(cls, v):
+        if v is not None and (v.endswith(("/", "\\")) or Path(v).name in ("", ".", "..")):
+            raise ValueError(f"path={v!r} names a folder; give the capture as NAME")
+        return v
+
+
+#: Sources that feed the IQ capture (``record.iq``). The radio source joins once its driver
+#: takes a ``capture`` writer (see brimline.drivers.sources.iq for the calls it makes).
+IQ_CAPTURE_SOURCES = ("iq",)
+
+
 class RecordSection(Section):
     """``record:`` what the daemon records, and where.
 
-    Fields are the keyword arguments of ``brimline.daemon.wire.recording.RecordWriter`` (which also
-    takes ``meta``); ``path: null`` records nothing.
+    Fields other than ``iq`` are the keyword arguments of
+    ``brimline.daemon.wire.recording.RecordWriter`` (which also takes ``meta``; see
+    :meth:`writer_arguments`); ``path: null`` records nothing. ``iq`` is the IQ capture
+    (:class:`IqCaptureSection`).
     """
 
     path: Optional[str] = Field(None, description="recording file to create; null for none")
@@ -872,6 +903,12 @@ class RecordSection(Section):
     def _max_bytes(cls, v):
         # the same floor as RecordWriter's own check (brimline.daemon.wire.recording)
         return v if v is None else at_least(1024).check("max_bytes", v)
+
+    iq: IqCaptureSection = Field(default_factory=IqCaptureSection)
+
+    def writer_arguments(self) -> dict:
+        """The keyword arguments of ``RecordWriter`` (every key but ``iq``)."""
+        return self.model_dump(exclude={"iq"})
 
 
 # --------------------------------------------------------------------------- whole file
@@ -1076,6 +1113,15 @@ class Config(Section):
             raise KeyProblem(("driver", "sim", "lead_max_samples"), sim.lead_max_samples,
                              f"exceeds the samples of one frame interval "
                              f"(link.sample_rate_hz / driver.sim.frame_rate_hz = {slot})")
+        return self
+
+    @model_validator(mode="after")
+    def _capture_has_iq(self) -> "Config":
+        path = self.record.iq.path
+        if path is not None and self.driver.kind not in IQ_CAPTURE_SOURCES:
+            raise KeyProblem(("record", "iq", "path"), path,
+                             f"needs an IQ source (driver.kind {' or '.join(IQ_CAPTURE_SOURCES)}"
+                             f"), not driver.kind={self.driver.kind}")
         return self
 
     @model_validator(mode="after")
@@ -1555,7 +1601,8 @@ def _resolve_paths(config: Config, base: Path) -> Config:
     return config.model_copy(update={
         "driver": driver,
         "service": section(config.service, "state_path"),
-        "record": section(config.record, "path"),
+        "record": section(config.record, "path").model_copy(
+            update={"iq": section(config.record.iq, "path")}),
         "tx": section(config.tx, "path"),
         "publish": section(config.publish, "curve_secret_key", "curve_clients_dir"),
     })

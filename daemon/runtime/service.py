@@ -59,8 +59,9 @@ recording that fails stops alone (see :mod:`brimline.daemon.runtime.outlets`).
 Shutdown order
 --------------
 ``close()``: stop the driver (``driver.close()``, the driver thread leaves at its next frame),
-join the driver thread with a timeout, publish a final status, join the state writer thread and
-save the last map, close the recording (flushed), close the main thread's sockets (explicit
+join the driver thread with a timeout, close the IQ capture (``record.iq``: checksum and metadata
+written then), publish a final status, join the state writer thread and save the last map, close
+the recording (flushed), close the main thread's sockets (explicit
 LINGER), terminate the context if the service created it. Idempotent.
 """
 
@@ -84,6 +85,7 @@ from brimline.daemon.runtime.assemble import (
     build_core,
     follower_factory,
     make_driver,
+    open_iq_capture,
 )
 from brimline.daemon.runtime.config import Config
 from brimline.daemon.runtime.handoff import DriverThread, control_message
@@ -143,6 +145,7 @@ class Service:
             self.clock_mode = config.service.clock
         self.controller: LinkController | None = None
         self.driver = None
+        self._capture = None  # the IQ capture (record.iq), closed after the driver thread
         self.epoch = ""
         self.driver_state = "starting"
         self.driver_error: str | None = None
@@ -220,7 +223,15 @@ class Service:
                 if d.kind == "sim" and self._follow:
                     self._provider = FollowerMapProvider(follower_factory(
                         self.config, self.plan, self.endpoints, self._context))
-                self.driver = make_driver(self.config, self.plan, self._provider)
+                self._capture = open_iq_capture(self.config, self.plan)
+                try:
+                    self.driver = make_driver(self.config, self.plan, self._provider,
+                                              capture=self._capture)
+                except BaseException:
+                    if self._capture is not None:  # nothing captured: leave no files behind
+                        self._capture.abandon()
+                        self._capture = None
+                    raise
             self._poller = zmq.Poller()
             if self.schedule is None:
                 self._handoff = DriverThread(self._context, self.driver, on_exit=None if
@@ -258,6 +269,11 @@ class Service:
             if self._handoff.alive:
                 log.warning("driver thread did not stop within %.1f s",
                             self.config.service.driver_join_s)
+        if self._capture is not None:
+            try:  # after the driver thread: the checksum covers every sample written
+                self._capture.close()
+            except BrimlineError as exc:
+                log.error("IQ capture not closed cleanly: %s", exc)
         if self._io is not None:
             if self.controller is not None:
                 if self._started and self.driver_state not in ("failed", "ended"):

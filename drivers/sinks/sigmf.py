@@ -1,23 +1,23 @@
 """A SigMF IQ file as the transmit sink: :class:`SigmfSink`.
 
-Samples are written as ``ci16_le`` as they come (``round(x * 32768)``, saturating at -32768 and
-+32767, the scale :func:`brimline.drivers.sources.iq.read_sigmf` and the SigMF library read
-back as ``value / 32768``); the meta file is written at ``close()``, so an unfinished file has
-no meta and is not mistaken for a recording. An existing recording is never overwritten.
-Silence in a file is the absence of frame slots: ``silence()`` writes nothing.
+Samples are written as ``ci16_le`` as they come, through the project's one SigMF writer
+(:class:`brimline.daemon.wire.sigmf.CaptureWriter`: ``round(x * 32768)`` saturating at -32768
+and +32767, the scale the SigMF library reads back as ``value / 32768``; the meta file with its
+checksum is written at ``close()``, so an unfinished file has no meta and is not mistaken for a
+recording). An existing recording is never overwritten. Silence in a file is the absence of
+frame slots: ``silence()`` writes nothing.
 """
 
 from __future__ import annotations
 
-import json
 import math
 from pathlib import Path
 
 import numpy as np
 
-from brimline.daemon.errors import SinkError
+from brimline.daemon.errors import RecordingError, SinkError
+from brimline.daemon.wire.sigmf import CaptureWriter
 from brimline.drivers.sinks.base import Sink
-from brimline.drivers.sources.iq import CI16_FULL_SCALE, SIGMF_VERSION
 
 __all__ = ["SigmfSink", "sigmf_paths"]
 
@@ -57,44 +57,25 @@ class SigmfSink(Sink):
                  center_hz: float | None = None, description: str = "brimline tx") -> None:
         super().__init__()
         self.meta_path, self.data_path = sigmf_paths(path)
-        for p in (self.meta_path, self.data_path):
-            if p.exists():
-                raise SinkError(f"tx.path={p}: exists already (the sink never overwrites)")
-        self.sample_rate_hz = float(sample_rate_hz)
-        self.center_hz = center_hz
-        self.description = description
-        self.samples_written = 0
+        centre = None if center_hz is None or not math.isfinite(center_hz) else center_hz
         try:
-            self.data_path.parent.mkdir(parents=True, exist_ok=True)
-            self._file = open(self.data_path, "xb")
-        except OSError as exc:
-            raise SinkError(f"tx.path={self.data_path}: cannot create: {exc}") from exc
+            self._writer = CaptureWriter(self.data_path, sample_rate_hz=sample_rate_hz,
+                                         datatype="ci16_le", center_hz=centre,
+                                         description=description)
+        except (RecordingError, ValueError) as exc:
+            raise SinkError(f"tx.path={self.data_path}: {exc}") from exc
+        self.sample_rate_hz = float(sample_rate_hz)
+        self.samples_written = 0
 
     def _send(self, samples: np.ndarray) -> None:
-        pairs = np.empty(2 * samples.size, np.float64)
-        pairs[0::2], pairs[1::2] = samples.real, samples.imag
-        raw = np.clip(np.rint(pairs * CI16_FULL_SCALE), -32768, 32767).astype("<i2")
         try:
-            self._file.write(raw.tobytes())
-        except OSError as exc:
+            self._writer.write(samples)
+        except RecordingError as exc:
             raise SinkError(f"tx.path={self.data_path}: cannot write: {exc}") from exc
         self.samples_written += samples.size
 
     def _release(self) -> None:
-        self._file.close()
-        capture = {"core:sample_start": 0}
-        if self.center_hz is not None and math.isfinite(self.center_hz):
-            capture["core:frequency"] = float(self.center_hz)
-        meta = {
-            "global": {"core:datatype": "ci16_le", "core:sample_rate": self.sample_rate_hz,
-                       "core:version": SIGMF_VERSION, "core:description": self.description,
-                       "core:recorder": "brimline"},
-            "captures": [capture],
-            "annotations": [],
-        }
         try:
-            with open(self.meta_path, "w", encoding="utf-8") as f:
-                json.dump(meta, f, indent=2)
-                f.write("\n")
-        except OSError as exc:
+            self._writer.close()
+        except RecordingError as exc:
             raise SinkError(f"tx.path={self.meta_path}: cannot write: {exc}") from exc
