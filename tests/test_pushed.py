@@ -299,8 +299,8 @@ class TestPushedEstimates:
                 svc.step(0.01)
             # A live source on the monotonic clock: on a busy machine the safe map may come
             # first; what counts is that the pushed estimates then make a map of their own.
-            assert until(lambda: svc.current_map is not None and not svc.current_map.fallback,
-                         60.0, step=send)
+            assert until(lambda: svc.current_map is not None and not svc.current_map.fallback
+                         and drv.counters.get("malformed", 0) >= 1, 60.0, step=send)
             st = svc.publish_status()
         push.close()
         assert st["driver"]["name"] == "pushed" and st["driver"]["counters"]["malformed"] >= 1
