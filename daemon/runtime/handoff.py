@@ -7,6 +7,16 @@ socket is created, used and closed on the driver thread only (ZeroMQ sockets nev
 threads). While the main thread is busy the driver thread blocks (replay and the simulator must
 not lose frames) but wakes every 0.1 s to notice ``driver.close()``. When the source ends or
 raises, it sends one control message (:func:`control_message` reads it) and closes its socket.
+
+:class:`LockstepFeed` is the other way to feed the main thread, for the simulator in fast mode:
+no thread at all. The main thread steps the simulator frame by frame (``SimDriver.step``) and
+gives each estimate to the controller before the next frame is sent; a frame without an
+estimate is a tick at its own simulated time, so the wall clock never reaches the controller.
+The maps reach the simulated transmitter through a
+:class:`~brimline.drivers.link.frame.MapSchedule` (a map is in force from its effective frame)
+and are still published on the sockets for followers and ``watch``. With the source clock and
+an epoch derived from the config (see :mod:`brimline.daemon.runtime.outlets`), a seed gives the
+same maps byte for byte on every run.
 """
 
 from __future__ import annotations
@@ -21,7 +31,7 @@ import zmq
 from brimline.daemon.errors import BrimlineError
 from brimline.daemon.wire import codec
 
-__all__ = ["DriverThread", "control_message"]
+__all__ = ["DriverThread", "LockstepFeed", "control_message"]
 
 log = logging.getLogger("brimline.service")
 
@@ -120,3 +130,52 @@ class DriverThread:
                 if self._on_exit is not None:
                     self._on_exit()
                 tx.close(linger=0)
+
+
+class LockstepFeed:
+    """Step a simulator on the calling thread, one frame at a time (see the module notes).
+
+    Parameters
+    ----------
+    driver : SimDriver
+        A simulator with ``step()``, ``next_frame``, ``max_frames``, ``start_s`` and
+        ``frame_time_s(frame)``.
+    clock_every : int
+        Frames simulated between two reads of the clock.
+    """
+
+    def __init__(self, driver, *, clock_every: int = 4) -> None:
+        self.driver = driver
+        self._clock_every = int(clock_every)
+
+    def run(self, deadline: float, clock: Callable[[], float], *,
+            process: Callable, tick: Callable[[float], None]) -> tuple[str, str | None] | None:
+        """Simulate frames until ``deadline`` (on ``clock``) or the source ends.
+
+        Each frame's estimate goes to ``process(estimate)`` before the next frame is sent; a
+        frame without one calls ``tick(time_s)`` with its simulated time.
+
+        Returns
+        -------
+        tuple or None
+            ``("ended", None)`` or ``("failed", error)`` when the source stopped, else None.
+        """
+        drv = self.driver
+        handled = 0
+        while True:
+            if handled and handled % self._clock_every == 0 and clock() >= deadline:
+                return None
+            handled += 1
+            if drv.closed or (drv.max_frames is not None and drv.next_frame >= drv.max_frames):
+                log.info("source %s ended", drv.name)
+                return "ended", None
+            frame = drv.next_frame
+            try:
+                estimate = drv.step()
+            except BrimlineError as exc:
+                log.error("source %s stopped: %s", drv.name, exc)
+                return "failed", str(exc)
+            if estimate is None:
+                tick(drv.start_s + drv.frame_time_s(frame))
+            else:
+                process(estimate)

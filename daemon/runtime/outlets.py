@@ -51,6 +51,8 @@ class Outlets:
     def __init__(self, config: Config, context: zmq.Context, plan) -> None:
         self._plan = plan
         self._config = config
+        #: Acknowledgements summed by follower stream: ``{"followers": {"seq", "count", ...}}``.
+        self.acks: dict[str, dict] = {}
         self.maps = None
         self.status = None
         self.state = None
@@ -120,15 +122,33 @@ class Outlets:
         return [s for s in (self.maps.snapshot_socket, self.maps.ack_socket,
                             self.maps.outcome_socket) if s is not None]
 
-    def handle(self, sock) -> list:
-        """Serve a readable socket: snapshot requests (nothing returned), acks (dicts) or
-        frame outcomes (:class:`~brimline.daemon.records.FrameOutcome`)."""
+    def handle(self, sock, controller, now_s: float, wall_s: float) -> None:
+        """Serve a readable socket: snapshot requests, acknowledgements (summed in
+        :attr:`acks`) or frame outcomes (given to ``controller`` at ``now_s``; undecodable
+        ones are counted there too, so status ``outer.dropped`` shows them)."""
         if sock is self.maps.snapshot_socket:
             self.maps.handle_snapshot()
-            return []
-        if sock is self.maps.outcome_socket:
-            return self.maps.poll_outcomes()
-        return self.maps.poll_acks()
+        elif sock is self.maps.outcome_socket:
+            bad = self.maps.counters["bad_outcomes"]
+            for outcome in self.maps.poll_outcomes():
+                controller.on_outcome(outcome, now_s)
+            for _ in range(self.maps.counters["bad_outcomes"] - bad):
+                controller.count_bad_outcome()
+        else:
+            for ack in self.maps.poll_acks():
+                self._note_ack(ack, wall_s)
+
+    def _note_ack(self, ack: dict, wall_s: float) -> None:
+        # Acknowledgements carry no follower name (PUSH/PULL); they are summed as one stream.
+        entry = self.acks.setdefault("followers", {"seq": -1, "count": 0, "wall": 0.0})
+        entry["seq"] = max(entry["seq"], int(ack.get("seq", -1)))
+        entry["frame"] = int(ack.get("frame", -1))
+        entry["count"] += 1
+        entry["wall"] = wall_s
+
+    def ack_status(self, wall_s: float) -> dict:
+        """``{"followers": {"seq", "age_s"}}`` for the status message (empty before an ack)."""
+        return {k: {"seq": v["seq"], "age_s": wall_s - v["wall"]} for k, v in self.acks.items()}
 
     def protocol_errors(self) -> dict[str, dict[str, int]]:
         """Messages the map publisher's sockets dropped, by socket and reason."""

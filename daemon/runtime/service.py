@@ -18,13 +18,9 @@ almost never on the loop:
   that thread on first use (:class:`~brimline.daemon.runtime.assemble.FollowerMapProvider`).
 * in **lockstep** (the simulator in fast mode, ``driver.sim.realtime: false``) there is no
   driver thread and no follower: the main thread steps the simulator frame by frame
-  (``SimDriver.step``), gives each estimate to the controller before the next frame is sent,
-  and hands the controller's maps to the simulated transmitter directly through a
-  :class:`~brimline.drivers.link.frame.MapSchedule` (a map is in force from its effective
-  frame). The maps are still published on the sockets for followers and ``watch``. With the
-  source clock and an epoch derived from the config (see
-  :mod:`brimline.daemon.runtime.outlets`), a seed gives the same maps byte for byte on every
-  run, however busy the machine.
+  (:class:`~brimline.daemon.runtime.handoff.LockstepFeed`) and the controller's maps reach the
+  simulated transmitter through a :class:`~brimline.drivers.link.frame.MapSchedule`; a seed
+  gives the same maps byte for byte on every run, however busy the machine.
 * the **main thread** owns every other socket (maps, snapshots, heartbeats, status,
   acknowledgements, the inproc receiving end) and waits on all of them with one ``zmq.Poller``
   whose timeout is the nearest deadline (heartbeat, status, staleness, the caller's stop time).
@@ -33,22 +29,9 @@ almost never on the loop:
 
 Time model
 ----------
-The controller gets ``now_s`` as an argument. Which clock it is, is a per-source choice
-(``service.clock``; ``auto`` picks it):
-
-* ``source`` (sim, replay, recorded IQ): ``now_s`` is the estimate's own ``time_s``. Replay and
-  the simulator therefore make the same decisions however fast they run, and replaying a file
-  twice gives the same maps byte for byte. Between estimates of a live or paced source (a
-  silent source), the service extends the source time by the monotonic time elapsed since the
-  last estimate arrived, only to notice staleness; a source read as fast as possible
-  (``realtime`` false: replay, recorded IQ, the simulator in fast mode) has no wall-clock
-  staleness at all (its gaps show in its own times), so a busy machine cannot change its maps.
-  In lockstep a frame without an estimate is a tick at its own simulated time, and the wall
-  clock never reaches the controller.
-* ``monotonic`` (live sources: radio, pushed estimates, an IQ stream): ``now_s`` is the
-  daemon's monotonic clock at arrival.
-
-Heartbeats and the status period are I/O pacing and always run on the monotonic clock.
+Which time the controller is given (the estimate's own, or the monotonic clock) is the
+:class:`~brimline.daemon.runtime.timebase.Timebase`'s policy; heartbeats and the status period
+always run on the monotonic clock.
 
 Recording
 ---------
@@ -78,7 +61,7 @@ import zmq
 
 from brimline.daemon.core.controller import LinkController, Step
 from brimline.daemon.errors import BrimlineError, ProtocolError
-from brimline.daemon.records import Estimate, FrameOutcome, LoadMap
+from brimline.daemon.records import Estimate, LoadMap
 from brimline.daemon.runtime.assemble import (
     FollowerMapProvider,
     build_controller,
@@ -88,9 +71,10 @@ from brimline.daemon.runtime.assemble import (
     open_iq_capture,
 )
 from brimline.daemon.runtime.config import Config
-from brimline.daemon.runtime.handoff import DriverThread, control_message
+from brimline.daemon.runtime.handoff import DriverThread, LockstepFeed, control_message
 from brimline.daemon.runtime.outlets import Outlets
 from brimline.daemon.runtime.status import build_status, controller_fields, summary_line
+from brimline.daemon.runtime.timebase import Timebase
 from brimline.daemon.wire import codec
 from brimline.drivers.link.frame import MapSchedule
 
@@ -139,23 +123,18 @@ class Service:
         self._given_driver = driver
         self._follow = follow
         self.plan, self.loader, self._estimator, self._change = build_core(config)
-        if config.service.clock == "auto":
-            self.clock_mode = "monotonic" if config.driver.live else "source"
-        else:
-            self.clock_mode = config.service.clock
+        mode = config.service.clock
+        self.timebase = Timebase(("monotonic" if config.driver.live else "source")
+                                 if mode == "auto" else mode, clock)
         self.controller: LinkController | None = None
         self.driver = None
         self._capture = None  # the IQ capture (record.iq), closed after the driver thread
         self.epoch = ""
         self.driver_state = "starting"
         self.driver_error: str | None = None
-        self.acks: dict[str, dict] = {}
         self.last_status: dict | None = None
         self._holding = False  # maps are being held back (logged once per episode)
         self._in_fallback = False  # the last map sent was the fallback map (for the log)
-        self._last_arrival_s: float | None = None  # core time and monotonic arrival of the
-        self._last_arrival_wall: float | None = None  # newest estimate (staleness while silent)
-        self._started_wall = 0.0
         self._handoff: DriverThread | None = None
         self._poller = None
         self._io: Outlets | None = None  # sockets, state file, recorder
@@ -163,6 +142,7 @@ class Service:
         #: Lockstep mode (fast simulation): the maps in force by frame, fed straight from the
         #: controller (None otherwise).
         self.schedule: MapSchedule | None = None
+        self._feed: LockstepFeed | None = None
         self._started = False
         self._closed = False
 
@@ -201,7 +181,7 @@ class Service:
         try:
             self._io = Outlets(self.config, self._context, self.plan)
             self.epoch = self._io.epoch
-            self._started_wall = self._clock()
+            self.timebase.start()
             self.controller = build_controller(
                 self.config, self.plan, self.loader, self._estimator, self._change,
                 epoch=self.epoch, next_seq=self._io.next_seq, restored=self._io.restored,
@@ -214,11 +194,12 @@ class Service:
             if self._given_driver is not None:
                 self.driver = self._given_driver
             elif (d.kind == "sim" and self._follow and not d.sim.realtime
-                  and self.clock_mode == "source"):
+                  and self.timebase.mode == "source"):
                 self.schedule = MapSchedule()
                 if self._io.restored is not None:  # its frame numbers are another run's
                     self.schedule.add(self._io.restored, from_frame=0)
                 self.driver = make_driver(self.config, self.plan, self.schedule)
+                self._feed = LockstepFeed(self.driver, clock_every=_CLOCK_EVERY)
             else:
                 if d.kind == "sim" and self._follow:
                     self._provider = FollowerMapProvider(follower_factory(
@@ -246,8 +227,13 @@ class Service:
             self._handoff.start()
         self.driver_state = "running"
         log.info("started: source %s, clock %s, epoch %s, maps on %s, status on %s",
-                 getattr(self.driver, "name", "driver"), self.clock_mode, self.epoch,
+                 getattr(self.driver, "name", "driver"), self.timebase.mode, self.epoch,
                  self.endpoints.get("maps"), self.endpoints.get("status"))
+
+    @property
+    def acks(self) -> dict[str, dict]:
+        """Acknowledgements received, summed by follower stream (see the outlets)."""
+        return {} if self._io is None else self._io.acks
 
     @property
     def endpoints(self) -> dict[str, str]:
@@ -290,19 +276,14 @@ class Service:
 
     # ------------------------------------------------------------------ main thread
 
-    def core_now(self) -> float:
-        """Time fed to the controller now (see the module docstring's time model), s."""
-        wall = self._clock()
-        if self.clock_mode == "monotonic" or self._last_arrival_s is None:
-            return wall if self.clock_mode == "monotonic" else wall - self._started_wall
-        return self._last_arrival_s + (wall - self._last_arrival_wall)
+    @property
+    def clock_mode(self) -> str:
+        """``"source"`` or ``"monotonic"`` (see :mod:`brimline.daemon.runtime.timebase`)."""
+        return self.timebase.mode
 
-    def _source_time_only(self) -> bool:
-        """True for a source-clock source that says it is not paced (``realtime`` false:
-        replay, recorded IQ, the simulator in fast mode). Its time is only what its estimates
-        say, so a pause of the machine (a busy CPU, a slow start) must not read as a silent
-        link; a live source, or one that does not say, is watched on the wall clock."""
-        return self.clock_mode == "source" and getattr(self.driver, "realtime", True) is False
+    def core_now(self) -> float:
+        """Time fed to the controller now, s."""
+        return self.timebase.now()
 
     def run(self, duration_s: float | None = None, *, stop: threading.Event | None = None,
             on_status: Callable[[dict], None] | None = None) -> None:
@@ -376,47 +357,22 @@ class Service:
                 self._handle_inproc(frames)
         for sock in self._io.poll_sockets():
             if sock in events:
-                bad = self._io.maps.counters["bad_outcomes"]
-                for message in self._io.handle(sock):
-                    if isinstance(message, FrameOutcome):
-                        self.controller.on_outcome(message, self.core_now())
-                    else:
-                        self._note_ack(message)
-                # outcomes the publisher could not decode show in status outer.dropped too
-                for _ in range(self._io.maps.counters["bad_outcomes"] - bad):
-                    self.controller.count_bad_outcome()
+                self._io.handle(sock, self.controller, self.core_now(), self._clock())
         # Staleness while the source is silent: not for a source that runs on its own time
         # as fast as it is read (its gaps show in its estimates' times), unless it failed.
         # (In lockstep the source is never silent: a frame without estimate is a tick.)
         if not self.lockstep and (self.driver_state == "failed" or (
-                self.driver_state == "running" and not self._source_time_only())):
+                self.driver_state == "running" and self.timebase.watches_silence(self.driver))):
             self._carry_out(self.controller.on_tick(self.core_now()))
         if self._io.status.due(self._clock()):
             return self.publish_status()
         return None
 
     def _lockstep_frames(self, deadline: float) -> None:
-        """Simulate frames, each processed before the next is sent, until ``deadline`` (on
-        the service clock, read every few frames) or the source ends."""
-        drv = self.driver
-        for handled in itertools.count():
-            if handled and handled % _CLOCK_EVERY == 0 and self._clock() >= deadline:
-                return
-            if drv.closed or (drv.max_frames is not None and drv.next_frame >= drv.max_frames):
-                self.driver_state = "ended"
-                log.info("source %s ended", drv.name)
-                return
-            frame = drv.next_frame
-            try:
-                estimate = drv.step()
-            except BrimlineError as exc:
-                self.driver_state, self.driver_error = "failed", str(exc)
-                log.error("source %s stopped: %s", drv.name, exc)
-                return
-            if estimate is None:
-                self._carry_out(self.controller.on_tick(drv.start_s + drv.frame_time_s(frame)))
-            else:
-                self.process(estimate)
+        ended = self._feed.run(deadline, self._clock, process=self.process,
+                               tick=lambda t: self._carry_out(self.controller.on_tick(t)))
+        if ended is not None:
+            self.driver_state, self.driver_error = ended
 
     def _handle_inproc(self, frames) -> None:
         msg = control_message(frames)
@@ -461,9 +417,8 @@ class Service:
         The recording is written after the maps are sent (estimate first, then the decisions
         and maps it caused), so disk writes are not on the path to the transmitter.
         """
-        now_s = estimate.time_s if self.clock_mode == "source" else self._clock()
-        step = self.controller.on_estimate(estimate, now_s)
-        self._last_arrival_s, self._last_arrival_wall = step.now_s, self._clock()
+        step = self.controller.on_estimate(estimate, self.timebase.of(estimate))
+        self.timebase.arrived(step.now_s)
         return self._carry_out(step, estimate, frames)
 
     def _carry_out(self, step: Step, estimate: Estimate | None = None,
@@ -498,14 +453,6 @@ class Service:
                          m.total_bits, margin, change.reason)
         return step.last_map
 
-    def _note_ack(self, ack: dict) -> None:
-        # Acknowledgements carry no follower name (PUSH/PULL); they are summed as one stream.
-        entry = self.acks.setdefault("followers", {"seq": -1, "count": 0, "wall": 0.0})
-        entry["seq"] = max(entry["seq"], int(ack.get("seq", -1)))
-        entry["frame"] = int(ack.get("frame", -1))
-        entry["count"] += 1
-        entry["wall"] = self._clock()
-
     def status(self) -> dict:
         """The status message for the current state (see :mod:`brimline.daemon.runtime.status`)."""
         wall, now = self._clock(), self.core_now()
@@ -515,7 +462,7 @@ class Service:
             driver={"name": getattr(self.driver, "name", "driver"), "state": self._driver_state(),
                     "error": self.driver_error,
                     "counters": dict(getattr(self.driver, "counters", {}))},
-            acks={k: {"seq": v["seq"], "age_s": wall - v["wall"]} for k, v in self.acks.items()},
+            acks=self._io.ack_status(wall),
             symbol_rate_hz=self.plan.sample_rate_hz / self.plan.symbol_len,
             recording=self._io.recording_status(),
             protocol_errors=self._io.protocol_errors(),
