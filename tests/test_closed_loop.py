@@ -24,7 +24,6 @@ from brimline.daemon.wire import codec
 from brimline.daemon.wire.recording import read_recording
 from brimline.drivers.link.frame import (
     CRC_BITS,
-    MapSchedule,
     Transmitter,
     crc32,
     make_plan,
@@ -34,6 +33,7 @@ from brimline.drivers.link.frame import (
     payload_values,
 )
 from brimline.drivers.link.receiver import LinkTally
+from brimline.drivers.link.schedule import MapSchedule
 from brimline.drivers.sources.closed_loop import (
     FixedMaps,
     OracleMaps,
@@ -164,15 +164,15 @@ class TestMapSchedule:
 
     def test_in_force_from_the_effective_frame(self, plan):
         s = MapSchedule()
-        s.add(self._m(plan, 0, 3))
-        s.add(self._m(plan, 1, 5))
-        got = [None if s.at(f) is None else s.at(f).seq for f in range(7)]
+        s.schedule(self._m(plan, 0, 3))
+        s.schedule(self._m(plan, 1, 5))
+        got = [None if s(f) is None else s(f).seq for f in range(7)]
         assert got == [None, None, None, 0, 0, 1, 1]
 
     def test_restored_map_from_frame_zero(self, plan):
         s = MapSchedule()
-        s.add(self._m(plan, 9, 100000), from_frame=0)
-        assert s.at(0).seq == 9
+        s.schedule(self._m(plan, 9, 100000), from_frame=0)
+        assert s(0).seq == 9
 
 
 def _controller(plan, loader, lead_frames=2):

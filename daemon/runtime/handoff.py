@@ -13,7 +13,7 @@ no thread at all. The main thread steps the simulator frame by frame (``SimDrive
 gives each estimate to the controller before the next frame is sent; a frame without an
 estimate is a tick at its own simulated time, so the wall clock never reaches the controller.
 The maps reach the simulated transmitter through a
-:class:`~brimline.drivers.link.frame.MapSchedule` (a map is in force from its effective frame)
+:class:`~brimline.drivers.link.schedule.MapSchedule` (a map is in force from its effective frame)
 and are still published on the sockets for followers and ``watch``. With the source clock and
 an epoch derived from the config (see :mod:`brimline.daemon.runtime.outlets`), a seed gives the
 same maps byte for byte on every run.

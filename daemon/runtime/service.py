@@ -19,7 +19,7 @@ almost never on the loop:
 * in **lockstep** (the simulator in fast mode, ``driver.sim.realtime: false``) there is no
   driver thread and no follower: the main thread steps the simulator frame by frame
   (:class:`~brimline.daemon.runtime.handoff.LockstepFeed`) and the controller's maps reach the
-  simulated transmitter through a :class:`~brimline.drivers.link.frame.MapSchedule`; a seed
+  simulated transmitter through a :class:`~brimline.drivers.link.schedule.MapSchedule`; a seed
   gives the same maps byte for byte on every run, however busy the machine.
 * the **main thread** owns every other socket (maps, snapshots, heartbeats, status,
   acknowledgements, the inproc receiving end) and waits on all of them with one ``zmq.Poller``
@@ -76,7 +76,7 @@ from brimline.daemon.runtime.outlets import Outlets
 from brimline.daemon.runtime.status import build_status, controller_fields, summary_line
 from brimline.daemon.runtime.timebase import Timebase
 from brimline.daemon.wire import codec
-from brimline.drivers.link.frame import MapSchedule
+from brimline.drivers.link.schedule import MapSchedule
 
 __all__ = ["Service"]
 
@@ -197,7 +197,7 @@ class Service:
                   and self.timebase.mode == "source"):
                 self.schedule = MapSchedule()
                 if self._io.restored is not None:  # its frame numbers are another run's
-                    self.schedule.add(self._io.restored, from_frame=0)
+                    self.schedule.schedule(self._io.restored, from_frame=0)
                 self.driver = make_driver(self.config, self.plan, self.schedule)
                 self._feed = LockstepFeed(self.driver, clock_every=_CLOCK_EVERY)
             else:
@@ -430,7 +430,7 @@ class Service:
         sent = []
         for m in step.maps:
             if self.schedule is not None:
-                self.schedule.add(m)
+                self.schedule.schedule(m)
             frames = self._io.maps.publish(m)
             self._io.save_state(m, frames)
             sent.append(frames)

@@ -63,7 +63,6 @@ __all__ = [
     "decode_header",
     "qam_points",
     "map_arrays",
-    "MapSchedule",
     "bit_errors",
     "NO_MAP",
     "HEADER_BITS",
@@ -423,44 +422,6 @@ def map_arrays(plan: TonePlan, load_map: LoadMap | None, default_bits: int):
             load_map.tone_index != plan.data_tones):
         raise ValueError(f"map seq={load_map.seq} does not cover the plan's data tones")
     return load_map.seq, load_map.bits.astype(np.int64), load_map.power_lin.astype(np.float64)
-
-
-class MapSchedule:
-    """The transmitter's rule for when a map is in force: from its effective frame on.
-
-    Maps are added in the order they were published; :meth:`at` gives the map in force at a
-    frame: the newest added map whose ``effective_frame`` is at or before it (None before the
-    first). The lockstep simulation and the baselines use it, so a map applies at the frame it
-    names whatever the wall clock did.
-
-    Parameters
-    ----------
-    keep : int
-        Maps waiting for their effective frame that are kept (the oldest go first).
-    """
-
-    def __init__(self, keep: int = 64) -> None:
-        self._pending: list[tuple[int, LoadMap]] = []
-        self._current: LoadMap | None = None
-        self._keep = int(keep)
-
-    def add(self, load_map: LoadMap, *, from_frame: int | None = None) -> None:
-        """Schedule ``load_map`` from its effective frame (or from ``from_frame``, e.g. 0 for a
-        map restored from an earlier run, whose frame numbers mean nothing now)."""
-        start = load_map.effective_frame if from_frame is None else int(from_frame)
-        self._pending.append((start, load_map))
-        del self._pending[:-self._keep]
-
-    def at(self, frame: int) -> LoadMap | None:
-        """The map in force at ``frame`` (frames are asked for in increasing order)."""
-        due = [i for i, (start, _m) in enumerate(self._pending) if start <= frame]
-        if due:
-            self._current = self._pending[due[-1]][1]
-            del self._pending[:due[-1] + 1]
-        return self._current
-
-    def __call__(self, frame: int) -> LoadMap | None:
-        return self.at(frame)
 
 
 # --------------------------------------------------------------------------- frame format

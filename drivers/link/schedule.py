@@ -32,7 +32,11 @@ _MAX_PENDING = 64  # maps waiting for their frame; more means the publisher floo
 
 
 class MapSchedule:
-    """Maps waiting for their effective frame, and the one in force.
+    """The transmitter's rule for when a map is in force: from its effective frame on.
+
+    ``brimline tx``, the lockstep simulation and the closed-loop baselines all use it, so a map
+    applies at the frame it names whatever the wall clock did. Called as ``schedule(frame)`` it
+    is a map provider for the simulator.
 
     Attributes
     ----------
@@ -45,23 +49,27 @@ class MapSchedule:
 
     def __init__(self) -> None:
         self.current: LoadMap | None = None
-        self._pending: list[LoadMap] = []
+        self._pending: list[tuple[int, LoadMap]] = []  # (first frame in force, map)
         self.counters: collections.Counter[str] = collections.Counter()
 
     @property
     def pending(self) -> tuple[LoadMap, ...]:
         """Maps scheduled for a later frame, in the order they take effect."""
-        return tuple(self._pending)
+        return tuple(m for _start, m in self._pending)
 
-    def schedule(self, load_map: LoadMap, next_frame: int) -> None:
-        """Queue ``load_map``; ``next_frame`` is the counter of the next frame to be built."""
+    def schedule(self, load_map: LoadMap, next_frame: int | None = None, *,
+                 from_frame: int | None = None) -> None:
+        """Queue ``load_map`` from its effective frame (or from ``from_frame``: 0 for a map
+        restored from an earlier run, whose frame numbers mean nothing now). ``next_frame``
+        is the counter of the next frame to be built, when known (to count late maps)."""
+        start = load_map.effective_frame if from_frame is None else int(from_frame)
         self.counters["scheduled"] += 1
-        if load_map.effective_frame < next_frame:
+        if next_frame is not None and start < next_frame:
             self.counters["late"] += 1
         # A newer map taking effect no later than a pending one replaces it.
-        kept = [m for m in self._pending if m.effective_frame < load_map.effective_frame]
+        kept = [(s, m) for s, m in self._pending if s < start]
         self.counters["superseded"] += len(self._pending) - len(kept)
-        kept.append(load_map)
+        kept.append((start, load_map))
         if len(kept) > _MAX_PENDING:
             self.counters["pending_dropped"] += len(kept) - _MAX_PENDING
             kept = kept[-_MAX_PENDING:]
@@ -73,10 +81,14 @@ class MapSchedule:
         Frames must be asked for in increasing order.
         """
         changed = False
-        while self._pending and self._pending[0].effective_frame <= frame:
-            self.current = self._pending.pop(0)
+        while self._pending and self._pending[0][0] <= frame:
+            self.current = self._pending.pop(0)[1]
             changed = True
         return self.current, changed
+
+    def __call__(self, frame: int) -> LoadMap | None:
+        """The map in force at ``frame`` (the simulator's map-provider call)."""
+        return self.at(frame)[0]
 
     def clear(self) -> None:
         """Forget the pending maps and the map in force (back to the default map)."""

@@ -6,7 +6,7 @@ goodput, frame and bit error rate, maps per minute):
 
 * **adaptive**: a :class:`~brimline.daemon.core.controller.LinkController` gets each estimate
   with ``now_s`` the estimate's time (a dropped frame is a tick at its time); its maps go into a
-  :class:`~brimline.drivers.link.frame.MapSchedule`, so each map is in force from the effective
+  :class:`~brimline.drivers.link.schedule.MapSchedule`, so each map is in force from the effective
   frame it names (the controller's ``lead_frames`` after the newest frame it had seen). No
   sockets, no threads, no clock: a seed gives the same run on every machine.
 * **oracle** (:class:`OracleMaps`): the same loader on the simulator's true per-tone SNR of
@@ -32,7 +32,7 @@ import numpy as np
 
 from brimline.daemon.core.controller import LinkController
 from brimline.daemon.records import Allocation, LoadMap, TonePlan
-from brimline.drivers.link.frame import MapSchedule
+from brimline.drivers.link.schedule import MapSchedule
 from brimline.drivers.sources.sim import SimDriver
 
 __all__ = ["LoopFigures", "OracleMaps", "FixedMaps", "run_closed_loop", "best_fixed",
@@ -192,7 +192,7 @@ def run_closed_loop(sim: SimDriver, n_frames: int, *,
             step = (controller.on_tick(now_s) if est is None
                     else controller.on_estimate(est, est.time_s))
             for m in step.maps:
-                schedule.add(m)
+                schedule.schedule(m)
     delivered, sent_seq = delivered[:n], sent_seq[:n]
     applied = np.count_nonzero(np.diff(sent_seq) != 0) + int(n > 0 and sent_seq[0] >= 0)
     link = sim.link.summary()
