@@ -11,16 +11,12 @@ Two threads own sockets, each its own (ZeroMQ sockets never cross threads); a th
 one (:class:`~brimline.daemon.wire.state.StateKeeper`'s writer) saves the last map, so that fsync is
 almost never on the loop:
 
-* the **driver thread** (:class:`~brimline.daemon.runtime.handoff.DriverThread`) iterates
-  ``driver.frames()`` and hands each estimate, encoded, to the main thread over an ``inproc``
-  PAIR socket, then one message saying how the source ended. In real-time simulation the
-  driver's transmitter follows the published maps through a real :class:`Follower`, created on
-  that thread on first use (:class:`~brimline.daemon.runtime.assemble.FollowerMapProvider`).
-* in **lockstep** (the simulator in fast mode, ``driver.sim.realtime: false``) there is no
-  driver thread and no follower: the main thread steps the simulator frame by frame
-  (:class:`~brimline.daemon.runtime.handoff.LockstepFeed`) and the controller's maps reach the
-  simulated transmitter through a :class:`~brimline.drivers.link.schedule.MapSchedule`; a seed
-  gives the same maps byte for byte on every run, however busy the machine.
+* the **driver thread** (:class:`~brimline.daemon.runtime.handoff.DriverThread`) hands each
+  estimate to the main thread; in real-time simulation its transmitter follows the published
+  maps through a real :class:`Follower`
+  (:class:`~brimline.daemon.runtime.assemble.FollowerMapProvider`).
+  In **lockstep** (fast simulation) there is no driver thread: the main thread steps the
+  simulator (:class:`~brimline.daemon.runtime.handoff.LockstepFeed`).
 * the **main thread** owns every other socket (maps, snapshots, heartbeats, status,
   acknowledgements, the inproc receiving end) and waits on all of them with one ``zmq.Poller``
   whose timeout is the nearest deadline (heartbeat, status, staleness, the caller's stop time).
@@ -73,7 +69,12 @@ from brimline.daemon.runtime.assemble import (
 from brimline.daemon.runtime.config import Config
 from brimline.daemon.runtime.handoff import DriverThread, LockstepFeed, control_message
 from brimline.daemon.runtime.outlets import Outlets
-from brimline.daemon.runtime.status import build_status, controller_fields, summary_line
+from brimline.daemon.runtime.status import (
+    build_status,
+    controller_fields,
+    driver_fields,
+    summary_line,
+)
 from brimline.daemon.runtime.timebase import Timebase
 from brimline.daemon.wire import codec
 from brimline.drivers.link.schedule import MapSchedule
@@ -456,26 +457,12 @@ class Service:
     def status(self) -> dict:
         """The status message for the current state (see :mod:`brimline.daemon.runtime.status`)."""
         wall, now = self._clock(), self.core_now()
-        link = getattr(self.driver, "link", None)  # the simulator's closed-loop counts
         return build_status(
-            time_s=now, epoch=self.epoch,
-            driver={"name": getattr(self.driver, "name", "driver"), "state": self._driver_state(),
-                    "error": self.driver_error,
-                    "counters": dict(getattr(self.driver, "counters", {}))},
-            acks=self._io.ack_status(wall),
+            time_s=now, epoch=self.epoch, acks=self._io.ack_status(wall),
             symbol_rate_hz=self.plan.sample_rate_hz / self.plan.symbol_len,
-            recording=self._io.recording_status(),
-            protocol_errors=self._io.protocol_errors(),
-            link=None if link is None else link.summary(),
+            recording=self._io.recording_status(), protocol_errors=self._io.protocol_errors(),
+            **driver_fields(self.driver, self.driver_state, self.driver_error),
             **controller_fields(self.controller, now))
-
-    def _driver_state(self) -> str:
-        """The source's state for the status: a running source may say it is reconnecting
-        (a supervised driver's own ``state``: "running", "reconnecting", "failed")."""
-        own = getattr(self.driver, "state", None)
-        if self.driver_state == "running" and isinstance(own, str):
-            return own
-        return self.driver_state
 
     def publish_status(self) -> dict:
         """Build, publish and record one status message now; returns it."""

@@ -49,7 +49,7 @@ import numpy as np
 from brimline.daemon.core.controller import Change, LinkController
 
 __all__ = ["STATUS_VERSION", "ALARMS", "band_columns", "build_status", "controller_fields",
-           "finite", "summary_line", "link_text"]
+           "driver_fields", "finite", "summary_line", "link_text"]
 
 STATUS_VERSION = 1
 
@@ -301,6 +301,21 @@ def controller_fields(controller: LinkController, time_s: float) -> dict[str, An
                 current_map=c.current_map, current_kind=c.current_kind,
                 maps_published=c.maps_published, changes=list(c.changes), stale=c.stale,
                 state_unsaved=c.state_unsaved, outer=c.outer_status(time_s))
+
+
+def driver_fields(driver, state: str, error: str | None) -> dict[str, Any]:
+    """The :func:`build_status` arguments a source gives: ``driver`` (name, state, error,
+    counters) and ``link`` (the simulator's closed-loop counts, else None).
+
+    A running source may report a state of its own (a supervised radio: "running",
+    "reconnecting", "failed"); otherwise ``state`` (the service's view) is shown.
+    """
+    own = getattr(driver, "state", None)
+    shown = own if state == "running" and isinstance(own, str) else state
+    link = getattr(driver, "link", None)
+    return dict(driver={"name": getattr(driver, "name", "driver"), "state": shown,
+                        "error": error, "counters": dict(getattr(driver, "counters", {}))},
+                link=None if link is None else link.summary())
 
 
 def summary_line(status: Mapping[str, Any]) -> str:
