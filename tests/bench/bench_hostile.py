@@ -202,7 +202,7 @@ def _soak(duration_s: float, hostile_on: bool = True) -> dict[str, float]:
                 while time.monotonic() < warm_end:
                     svc.step(0.01)
                 rss0 = _rss_mb()
-                maps0 = sum(svc.maps_published.values())
+                maps0 = sum(svc.controller.maps_published.values())
                 first_beat = len(sent_s)
                 end = time.monotonic() + duration_s
                 while time.monotonic() < end:
@@ -221,7 +221,7 @@ def _soak(duration_s: float, hostile_on: bool = True) -> dict[str, float]:
                 follower_out = follower.stdout.read()
                 status = svc.status()
                 last_seq = svc.current_map.seq if svc.current_map is not None else -1
-                maps = sum(svc.maps_published.values()) - maps0
+                maps = sum(svc.controller.maps_published.values()) - maps0
             finally:
                 for p in procs:
                     if p.poll() is None:
