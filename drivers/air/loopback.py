@@ -33,47 +33,19 @@ AIR_HWM = 64
 _INDEX = struct.Struct("<Q")
 
 
-class AirSender:
-    """The transmitting end of the air: binds a PUB at ``endpoint``.
+class _AirEnd:
+    """One end of the air: a socket on a given or private context; a context manager."""
 
-    Parameters
-    ----------
-    endpoint : str
-        Where to bind (``tcp://127.0.0.1:7350``; port 0 picks a free one, see ``endpoint``).
-    context : zmq.Context or None
-        Context for the socket; None makes (and at close terminates) a private one.
-    """
-
-    def __init__(self, endpoint: str, *, context: zmq.Context | None = None) -> None:
+    def _open(self, kind: int, context: zmq.Context | None) -> None:
+        self._closed = False
         self._own = context is None
         self.context = zmq.Context() if context is None else context
-        self._socket = self.context.socket(zmq.PUB)
+        self._socket = self.context.socket(kind)
         self._socket.setsockopt(zmq.LINGER, 0)
-        self._socket.setsockopt(zmq.SNDHWM, AIR_HWM)
-        self.counters: collections.Counter[str] = collections.Counter()
-        try:
-            self._socket.bind(endpoint)
-        except zmq.ZMQError as exc:
-            self.close()
-            raise OSError(f"air endpoint {endpoint}: cannot bind: {exc}") from exc
-        self.endpoint = self._socket.getsockopt(zmq.LAST_ENDPOINT).decode()
-        self._closed = False
-
-    def send(self, first_index: int, samples: np.ndarray) -> None:
-        """Put ``samples`` on the air; never blocks (a slow listener loses messages)."""
-        if self._closed:
-            raise RuntimeError("AirSender is closed")
-        data = np.ascontiguousarray(samples, dtype="<c8")
-        try:
-            self._socket.send_multipart([_INDEX.pack(int(first_index)), data], flags=zmq.NOBLOCK,
-                                        copy=False)
-            self.counters["sent"] += 1
-        except zmq.Again:
-            self.counters["dropped"] += 1
 
     def close(self) -> None:
         """Close the socket (and a private context). Idempotent."""
-        if getattr(self, "_closed", False):
+        if self._closed:
             return
         self._closed = True
         self._socket.close(0)
@@ -87,7 +59,41 @@ class AirSender:
         self.close()
 
 
-class AirReceiver:
+class AirSender(_AirEnd):
+    """The transmitting end of the air: binds a PUB at ``endpoint``.
+
+    Parameters
+    ----------
+    endpoint : str
+        Where to bind (``tcp://127.0.0.1:7350``; port 0 picks a free one, see ``endpoint``).
+    context : zmq.Context or None
+        Context for the socket; None makes (and at close terminates) a private one.
+    """
+
+    def __init__(self, endpoint: str, *, context: zmq.Context | None = None) -> None:
+        self._open(zmq.PUB, context)
+        self._socket.setsockopt(zmq.SNDHWM, AIR_HWM)
+        self.counters: collections.Counter[str] = collections.Counter()
+        try:
+            self._socket.bind(endpoint)
+        except zmq.ZMQError as exc:
+            self.close()
+            raise OSError(f"air endpoint {endpoint}: cannot bind: {exc}") from exc
+        self.endpoint = self._socket.getsockopt(zmq.LAST_ENDPOINT).decode()
+
+    def send(self, first_index: int, samples: np.ndarray) -> None:
+        """Put ``samples`` on the air; never blocks (a slow listener loses messages)."""
+        if self._closed:
+            raise RuntimeError("AirSender is closed")
+        data = np.ascontiguousarray(samples, dtype="<c8")
+        try:
+            self._socket.send_multipart([_INDEX.pack(int(first_index)), data], flags=zmq.NOBLOCK,
+                                        copy=False)
+            self.counters["sent"] += 1
+        except zmq.Again:
+            self.counters["dropped"] += 1
+
+class AirReceiver(_AirEnd):
     """The receiving end of the air: connects a SUB to ``endpoint``, queues what arrives.
 
     Parameters
@@ -103,13 +109,9 @@ class AirReceiver:
 
     def __init__(self, endpoint: str, *, max_queued: int = 1 << 20,
                  context: zmq.Context | None = None) -> None:
-        self._own = context is None
-        self.context = zmq.Context() if context is None else context
-        self._socket = self.context.socket(zmq.SUB)
-        self._socket.setsockopt(zmq.LINGER, 0)
+        self._open(zmq.SUB, context)
         self._socket.setsockopt(zmq.RCVHWM, AIR_HWM)
         self._socket.setsockopt(zmq.SUBSCRIBE, b"")
-        self._closed = False
         try:
             self._socket.connect(endpoint)
         except zmq.ZMQError as exc:
@@ -165,22 +167,6 @@ class AirReceiver:
     def discard(self, n: int) -> None:
         """Drop ``n`` queued samples (what a receive overflow loses)."""
         self.take(n)
-
-    def close(self) -> None:
-        """Close the socket (and a private context). Idempotent."""
-        if self._closed:
-            return
-        self._closed = True
-        self._socket.close(0)
-        if self._own:
-            self.context.term()
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc) -> None:
-        self.close()
-
 
 class StreamChannel:
     """The channel simulator applied to a continuous stream, chunk by chunk.
