@@ -39,7 +39,7 @@ import collections
 import logging
 from pathlib import Path
 from types import MappingProxyType
-from typing import Any, Mapping
+from typing import Any, Callable, Mapping
 
 import zmq
 
@@ -403,34 +403,19 @@ class MapPublisher(_Sockets):
         never sent (another epoch, a seq not published) is counted there as ``forged``.
         """
         self._check_open()
-        if self.ack_socket is None:
-            return []
-        acks = []
-        for _ in range(_MAX_PER_CALL):  # messages, good or bad: bounded under a flood
-            try:
-                frames = self.ack_socket.recv_multipart(flags=zmq.NOBLOCK, copy=False)
-            except zmq.Again:
-                break
-            try:
-                topic, body = codec.decode(frames, types={"dict"})
-                if topic != codec.TOPIC_ACK:
-                    raise ProtocolError(f"not an ack: topic {topic[:20]!r}", reason="topic")
-                if not (_is_int(body.get("seq")) and _is_int(body.get("frame"))
-                        and isinstance(body.get("time_s"), (int, float))
-                        and not isinstance(body.get("time_s"), bool)):
-                    raise ProtocolError("ack needs integer seq and frame and a time_s",
-                                        reason="ack_fields")
-                if not self.was_sent(body.get("epoch"), body["seq"]):
-                    raise ProtocolError(f"ack for seq {str(body['seq'])[:24]} of epoch "
-                                        f"{str(body.get('epoch'))[:24]!r}, which this daemon "
-                                        f"never sent", reason="forged")
-            except ProtocolError as exc:
-                self.counters["bad_acks"] += 1
-                self.drops.drop("acks", exc.reason, str(exc))
-                continue
-            self.counters["acks"] += 1
-            acks.append(body)
-        return acks
+        return self._drain(self.ack_socket, "acks", "an ack", {"dict"}, codec.TOPIC_ACK,
+                           self._check_ack)
+
+    def _check_ack(self, body: dict) -> None:
+        if not (_is_int(body.get("seq")) and _is_int(body.get("frame"))
+                and isinstance(body.get("time_s"), (int, float))
+                and not isinstance(body.get("time_s"), bool)):
+            raise ProtocolError("ack needs integer seq and frame and a time_s",
+                                reason="ack_fields")
+        if not self.was_sent(body.get("epoch"), body["seq"]):
+            raise ProtocolError(f"ack for seq {str(body['seq'])[:24]} of epoch "
+                                f"{str(body.get('epoch'))[:24]!r}, which this daemon "
+                                f"never sent", reason="forged")
 
     def poll_outcomes(self) -> list[FrameOutcome]:
         """Frame outcomes waiting on the outcome socket, without blocking.
@@ -441,26 +426,37 @@ class MapPublisher(_Sockets):
         reason); good ones as ``outcomes``.
         """
         self._check_open()
-        if self.outcome_socket is None:
+        return self._drain(self.outcome_socket, "outcomes", "a frame outcome",
+                           {"frame_outcome"}, codec.TOPIC_OUTCOME)
+
+    def _drain(self, sock, name: str, what: str, types: set, topic: str,
+               check: Callable[[Any], None] | None = None) -> list:
+        """Read what waits on ``sock`` without blocking: at most ``_MAX_PER_CALL`` messages,
+        good or bad (bounded under a flood). A message that does not decode as one of
+        ``types`` on ``topic``, or that ``check`` refuses (a ``ProtocolError``), is dropped
+        and counted as ``bad_<name>`` and in :attr:`protocol_errors` (socket ``name``, by
+        reason); good ones are counted as ``name`` and returned."""
+        if sock is None:
             return []
-        outcomes: list[FrameOutcome] = []
-        for _ in range(_MAX_PER_CALL):  # messages, good or bad: bounded under a flood
+        good = []
+        for _ in range(_MAX_PER_CALL):
             try:
-                frames = self.outcome_socket.recv_multipart(flags=zmq.NOBLOCK, copy=False)
+                frames = sock.recv_multipart(flags=zmq.NOBLOCK, copy=False)
             except zmq.Again:
                 break
             try:
-                topic, body = codec.decode(frames, types={"frame_outcome"})
-                if topic != codec.TOPIC_OUTCOME:
-                    raise ProtocolError(f"not a frame outcome: topic {topic[:20]!r}",
-                                        reason="topic")
+                got, body = codec.decode(frames, types=types)
+                if got != topic:
+                    raise ProtocolError(f"not {what}: topic {got[:20]!r}", reason="topic")
+                if check is not None:
+                    check(body)
             except ProtocolError as exc:
-                self.counters["bad_outcomes"] += 1
-                self.drops.drop("outcomes", exc.reason, str(exc))
+                self.counters[f"bad_{name}"] += 1
+                self.drops.drop(name, exc.reason, str(exc))
                 continue
-            self.counters["outcomes"] += 1
-            outcomes.append(body)
-        return outcomes
+            self.counters[name] += 1
+            good.append(body)
+        return good
 
     def close(self) -> None:
         """Close the sockets (LINGER as configured), stop CURVE, end a private context.
