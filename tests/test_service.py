@@ -608,6 +608,9 @@ class TestRecording:
         assert [(d["kind"], d["reason"], d["seq"]) for d in decisions][-len(changes):] == \
             [(c.kind, c.reason, c.seq) for c in changes]
         assert all(d["time_s"] == m.created_s for d, m in zip(decisions, maps))
+        assert [d["bits_after"] for d in decisions] == [m.total_bits for m in maps]
+        assert [d["bits_before"] for d in decisions[1:]] == [m.total_bits for m in maps[:-1]]
+        assert decisions[0]["cause"] == "first_map" and all(d["cause"] for d in decisions)
         # Status messages as published; the last one is the final status of close().
         assert len(statuses) >= 2 and statuses[-1]["driver"]["state"] == "ended"
         assert statuses[-1]["recording"] == {"state": "on", "path": str(path), "error": None}

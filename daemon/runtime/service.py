@@ -50,8 +50,9 @@ time is the record's own. Every published change is also kept in :attr:`Service.
 Recording
 ---------
 Estimates, maps (the bytes sent), decisions (a dict per published map: ``kind``, ``reason``,
-``time_s``, ``seq``) and status messages are recorded when ``record.topics`` selects them; a
-recording that fails stops alone (see :mod:`brimline.daemon.runtime.outlets`).
+``time_s``, ``seq``, ``cause``, ``bits_before``, ``bits_after``) and status messages are
+recorded when ``record.topics`` selects them; a recording that fails stops alone (see
+:mod:`brimline.daemon.runtime.outlets`).
 
 Shutdown order
 --------------
@@ -527,8 +528,10 @@ class Service:
         if estimate is not None:
             self._io.record(codec.TOPIC_ESTIMATE, estimate, estimate_frames)
         for change, frames in zip(step.changes, sent):
-            self._io.record(codec.TOPIC_DECISION, {"kind": change.kind, "reason": change.reason,
-                                                   "time_s": change.time_s, "seq": change.seq})
+            self._io.record(codec.TOPIC_DECISION, {
+                "kind": change.kind, "reason": change.reason, "time_s": change.time_s,
+                "seq": change.seq, "cause": change.cause, "bits_before": change.bits_before,
+                "bits_after": change.bits_after})
             self._io.record(codec.TOPIC_MAP, None, frames)
         for change, m in zip(step.changes, step.maps):
             self.timeline.append(change)
