@@ -342,12 +342,25 @@ class Decision:
         The new bits and powers; None for ``keep``.
     tones_changed : int
         Tones whose bits or power differ from the current map (0 for ``keep``).
+    cause : str
+        The rule that made this decision, one short key for machines (the ``reason`` says it in
+        words): ``first_map``, ``after_fallback``, ``plan_changed``, ``emergency_tones``,
+        ``emergency_drop``, ``common_mode``, ``sag``, ``outer_offset``, ``upgrade``,
+        ``repair_and_upgrade`` and ``tones_low`` (a bit swap); for a reload that repairs tones
+        below the downshift margin, the limit that ruled out a bit swap: ``swap_tones`` (more
+        tones to change than ``swap_max_tones``), ``swap_loss`` (more bits lost than
+        ``swap_max_loss_bits``), ``swap_power`` (the repair does not fit the power budget or
+        ceiling) or ``swap_off`` (bit swaps impossible with this loader or setting); the
+        kind's name for a forced map; for ``keep`` the counter it was counted under
+        (``keep``, ``held_persist``, ``held_dwell``, ``held_rate``, ``bad_input``). Empty when
+        not given.
     """
 
     kind: DecisionKind
     reason: str
     allocation: Allocation | None = None
     tones_changed: int = 0
+    cause: str = ""
 
     def __post_init__(self) -> None:
         _set(self, "kind", DecisionKind(self.kind))

@@ -160,12 +160,18 @@ class TestDecisions:
     def test_many_tones_losing_margin_reload(self):
         cc = ChangeControl(loader())
         snr = profile()
-        cc.decide(tracked(snr), 0.0)
+        first = cc.decide(tracked(snr), 0.0).allocation
         snr2 = snr.copy()
         snr2[10:30] -= 8.0          # 20 tones: more than a swap, less than an emergency
         d = cc.decide(tracked(snr2), 1.0)
         assert d.kind is DecisionKind.RELOAD
         assert d.reason.startswith("reload: 20 tones below downshift margin (")
+        # the limit that made it a reload, not a bit swap, is named in the cause and the words
+        assert d.cause == "swap_tones"
+        assert "too many for a bit swap (20 tones to repair > swap_max_tones 16)" in d.reason
+        delta = d.allocation.total_bits - first.total_bits
+        assert d.reason.endswith(f"; {delta:+d} bits") and delta < 0
+
 
     def test_downgrade_waits_for_its_dwell_and_the_rate_limit(self):
         cc = ChangeControl(loader(), down_dwell_s=0.2, max_maps_per_s=10.0)
@@ -599,3 +605,69 @@ def test_band_fade_on_the_simulated_link_gets_a_new_map_quickly():
     assert margins.min() >= cc.downshift_margin_db
     faded = (plan.data_tones >= 20) & (plan.data_tones <= 60)
     assert alloc.bits[faded].mean() < 0.6 * log[0][1].allocation.bits[faded].mean()
+
+
+class TestCauses:
+    """Decision.cause names the rule; a reload's words follow the direction of its change."""
+
+    def test_first_map_swap_and_keep(self):
+        cc = ChangeControl(loader())
+        snr = profile()
+        assert cc.decide(tracked(snr), 0.0).cause == "first_map"
+        assert cc.decide(tracked(snr), 0.01).cause == "keep"
+        snr2 = snr.copy()
+        snr2[37] -= 10.0
+        d = cc.decide(tracked(snr2), 1.0)
+        assert (d.kind, d.cause) == (DecisionKind.BIT_SWAP, "tones_low")
+
+    def test_a_swap_that_would_lose_too_much_is_a_reload_naming_the_loss(self):
+        cc = ChangeControl(loader(), swap_max_loss_bits=0)
+        snr = profile()
+        cc.decide(tracked(snr), 0.0)
+        snr2 = snr.copy()
+        snr2[37] -= 10.0
+        d = cc.decide(tracked(snr2), 1.0)
+        assert (d.kind, d.cause) == (DecisionKind.RELOAD, "swap_loss")
+        assert "(> swap_max_loss_bits 0)" in d.reason
+
+    def test_swaps_off_is_named(self):
+        cc = ChangeControl(loader(), swap_max_tones=0)
+        snr = profile()
+        cc.decide(tracked(snr), 0.0)
+        snr2 = snr.copy()
+        snr2[37] -= 10.0
+        d = cc.decide(tracked(snr2), 1.0)
+        assert (d.kind, d.cause) == (DecisionKind.RELOAD, "swap_tones")
+
+    def test_emergency_and_upgrade_causes(self):
+        cc = ChangeControl(loader(), up_dwell_s=0.5, upgrade_check_s=0.1)
+        snr = profile()
+        cc.decide(tracked(snr), 0.0)
+        d = cc.decide(tracked(snr - 12.0), 1.0)
+        assert (d.kind, d.cause) == (DecisionKind.EMERGENCY, "emergency_tones")
+        ups = [cc.decide(tracked(snr), 1.0 + 0.05 * k) for k in range(1, 40)]
+        assert [d.cause for d in ups if d.kind is not DecisionKind.KEEP][:1] == ["upgrade"]
+
+    def test_a_reload_with_more_bits_reads_as_a_gain(self):
+        """Loaded tones fall together by 1.4 dB while 20 unloaded tones come back by 30 dB:
+        the common-mode rule calls for the reload, and it carries more bits than before."""
+        cc = ChangeControl(loader())
+        snr = profile()
+        snr[40:60] = -10.0          # a deep fade: these tones carry nothing
+        first = cc.decide(tracked(snr), 0.0).allocation
+        assert (first.bits[40:60] == 0).all()
+        back = profile() - 1.4
+        out = [cc.decide(tracked(back), 1.0 + 0.01 * k) for k in range(30)]
+        made = [d for d in out if d.kind is not DecisionKind.KEEP]
+        assert made and made[0].cause == "common_mode"
+        gain = made[0].allocation.total_bits - first.total_bits
+        assert gain > 0
+        assert made[0].reason.startswith(f"reload: {gain:+d} bits (")
+        assert "made for: band fell" in made[0].reason
+
+    def test_a_forced_map_names_its_kind(self):
+        cc = ChangeControl(loader())
+        cc.decide(tracked(profile()), 0.0)
+        fb = cc.current
+        assert cc.force(fb, "fallback", "stale", 1.0).cause == "fallback"
+        assert cc.decide(tracked(profile()), 2.0).cause == "after_fallback"

@@ -57,6 +57,8 @@ class TestFirstMapAndKeep:
         assert m.plan_id == ctl.plan.plan_id
         assert np.array_equal(m.tone_index, ctl.plan.data_tones)
         assert step.changes[0].seq == 5 and step.changes[0].kind == "reload"
+        assert (step.changes[0].cause, step.changes[0].bits_before,
+                step.changes[0].bits_after) == ("first_map", None, m.total_bits)
         assert ctl.current_map is m and ctl.current_kind == "reload"
         assert ctl.frames == {"received": 1, "accepted": 1, "decode_errors": 0,
                               "last_frame": 40}
@@ -102,6 +104,11 @@ class TestStaleness:
         steps = _feed(ctl, _estimates(ctl, frames=5, t0_s=2.5, frame0=250))
         back = _maps(steps)
         assert back and not back[0].fallback  # the first decision after a fallback reloads
+        change = [c for s in steps for c in s.changes][0]
+        assert change.cause == "after_fallback"
+        assert (change.bits_before, change.bits_after) == (2 * ctl.plan.data_tones.size,
+                                                            back[0].total_bits)
+        assert ctl.changes[-2].cause == "fallback"
         assert back[0].created_s == 2.5
         assert not ctl.fallback_active and not ctl.stale
 

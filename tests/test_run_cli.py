@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import logging
 import os
 import signal
 import subprocess
@@ -15,6 +16,8 @@ import zmq
 from _service_fakes import ScriptedDriver, loopback_config
 
 from brimline.daemon.commands.cli import main
+from brimline.daemon.commands.run import JsonLogFormatter, end_summary
+from brimline.daemon.core.controller import Change
 from brimline.daemon.wire import codec
 from brimline.daemon.wire.recording import RecordWriter
 from brimline.daemon.wire.state import StateStore
@@ -412,3 +415,40 @@ class TestReadmeUnit:
         code = main(["run", "--config", str(bad)])
         assert code == 2 and refused == {code}
         assert run_cmd.EXIT_SOURCE_FAILED not in refused
+
+
+class TestLogFieldsAndTimeline:
+    def test_json_lines_carry_the_fields(self):
+        rec = logging.LogRecord("brimline.service", logging.INFO, __file__, 1, "map %d", (3,),
+                                None)
+        rec.fields = {"event": "map", "link_time_s": 4.04, "seq": 3, "kind": "reload",
+                      "cause": "swap_tones", "bits_before": 784, "bits_after": 737,
+                      "margin_achieved_db": float("nan"), "message": "not this",
+                      "time": "not this either"}
+        out = json.loads(JsonLogFormatter().format(rec))
+        assert out["message"] == "map 3" and out["time"] != "not this either"
+        assert (out["event"], out["link_time_s"], out["cause"], out["bits_after"]) == \
+            ("map", 4.04, "swap_tones", 737)
+        assert out["margin_achieved_db"] is None  # NaN is no JSON
+        plain = logging.LogRecord("brimline", logging.INFO, __file__, 1, "hello", (), None)
+        assert json.loads(JsonLogFormatter().format(plain))["event"] == "message"
+
+    def test_the_summary_lists_the_maps(self):
+        timeline = [Change(0.0, "reload", "reload: first map", 0, "first_map", None, 545),
+                    Change(13.04, "reload", "reload: 52 tones below ...", 6, "swap_tones", 784,
+                           737)]
+        text = end_summary({"maps_published": {"reload": 2}}, timeline)
+        assert "link time, kind, bits/symbol before -> after, reason" in text
+        assert "      0.00 s  reload        - -> 545   reload: first map" in text
+        assert "     13.04 s  reload      784 -> 737   reload: 52 tones below ..." in text
+        assert "behind real time" not in text
+        many = end_summary({"maps_published": {"reload": 80}}, timeline * 40, behind_s=1.26)
+        assert "(the last 50 of 80)" in many and "up to 1.26 s behind real time" in many
+
+
+def test_duration_counts_the_recording_s_own_time(tmp_path, capsys):
+    """A replay of 300 frames 10 ms apart runs 1 s of link time under --duration 1: 100
+    frames, however fast the machine reads them."""
+    cfg = _config(tmp_path, _recording(tmp_path / "est.brlog", frames=300, frame_s=0.01))
+    assert main(["run", "--config", str(cfg), "--duration", "1"]) == 0
+    assert "frames          100 received, 100 used" in capsys.readouterr().out

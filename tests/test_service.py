@@ -8,6 +8,7 @@ exactly which frames the service saw.
 from __future__ import annotations
 
 import json
+import logging
 import os
 import subprocess
 import sys
@@ -607,6 +608,9 @@ class TestRecording:
         assert [(d["kind"], d["reason"], d["seq"]) for d in decisions][-len(changes):] == \
             [(c.kind, c.reason, c.seq) for c in changes]
         assert all(d["time_s"] == m.created_s for d, m in zip(decisions, maps))
+        assert [d["bits_after"] for d in decisions] == [m.total_bits for m in maps]
+        assert [d["bits_before"] for d in decisions[1:]] == [m.total_bits for m in maps[:-1]]
+        assert decisions[0]["cause"] == "first_map" and all(d["cause"] for d in decisions)
         # Status messages as published; the last one is the final status of close().
         assert len(statuses) >= 2 and statuses[-1]["driver"]["state"] == "ended"
         assert statuses[-1]["recording"] == {"state": "on", "path": str(path), "error": None}
@@ -665,3 +669,78 @@ class TestOuterLoopFeedback:
         finally:
             push.close()
             ctx.term()
+
+
+class _ListHandler(logging.Handler):
+    def __init__(self):
+        super().__init__()
+        self.records: list[logging.LogRecord] = []
+
+    def emit(self, record):
+        self.records.append(record)
+
+
+@pytest.fixture
+def service_log():
+    """The records of the ``brimline.service`` logger (``run`` stops them propagating)."""
+    handler = _ListHandler()
+    logger = logging.getLogger("brimline.service")
+    old = logger.level
+    logger.addHandler(handler)
+    logger.setLevel(logging.INFO)
+    yield handler.records
+    logger.removeHandler(handler)
+    logger.setLevel(old)
+
+
+class TestLinkTime:
+    def test_duration_counts_link_time_not_wall_time(self):
+        """Frames every 10 ms of source time: a run of 0.5 s uses exactly the first 50, the
+        one at 0.50 s is not used, however long the machine took."""
+        cfg = loopback_config()
+        with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=200, frame_s=0.01)) as svc:
+            svc.run(0.5)
+            assert svc.controller.accepted == 50
+
+    def test_map_lines_carry_link_time_and_fields(self, service_log):
+        cfg = loopback_config()
+        with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=30, t0_s=7.0)) as svc:
+            svc.run(5.0)
+        maps = [r for r in service_log if getattr(r, "fields", {}).get("event") == "map"]
+        assert maps and len(maps) == len(svc.timeline)
+        first = maps[0].fields
+        assert first["link_time_s"] == pytest.approx(7.0) and first["cause"] == "first_map"
+        assert first["bits_before"] is None and first["bits_after"] > 0
+        assert first["margin_target_db"] == cfg.loading.margin_db
+        assert "at link time 7.00 s" in maps[0].getMessage()
+
+    def test_falling_behind_real_time_is_said_once(self, service_log):
+        """A paced source whose frames (10 ms apart) arrive while a fake wall clock runs much
+        faster: one warning, naming how far behind; the worst lag is kept."""
+
+        class Paced(ScriptedDriver):
+            realtime = True
+
+        class FastWall:
+            now_s = 0.0
+
+            def __call__(self):
+                self.now_s += 0.05
+                return self.now_s
+
+        cfg = loopback_config()
+        with Service(cfg, driver=Paced(_plan(cfg), frames=100), clock=FastWall()) as svc:
+            assert _pump(svc, until=lambda: _drained(svc))
+        behind = [r for r in service_log
+                  if getattr(r, "fields", {}).get("event") == "behind_real_time"]
+        assert len(behind) == 1
+        assert behind[0].fields["behind_s"] > 0.5
+        assert "behind real time at link time" in behind[0].getMessage()
+        assert svc.behind_max_s >= behind[0].fields["behind_s"]
+
+    def test_an_unpaced_source_is_never_behind(self, service_log):
+        cfg = loopback_config()
+        with Service(cfg, driver=ScriptedDriver(_plan(cfg), frames=50)) as svc:
+            assert _pump(svc, until=lambda: _drained(svc))
+        assert svc.behind_max_s == 0.0
+        assert not [r for r in service_log if "behind real time" in r.getMessage()]

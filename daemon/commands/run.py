@@ -21,6 +21,7 @@ import argparse
 import datetime
 import json
 import logging
+import math
 import os
 import signal
 import sys
@@ -28,27 +29,36 @@ import tempfile
 import threading
 import time
 from pathlib import Path
+from typing import Sequence
 
 from brimline.daemon.commands.cli import RF_CAUTION
+from brimline.daemon.core.controller import Change
 from brimline.daemon.errors import InputError, StateError
 from brimline.daemon.net.curve import check_server_keys, exposed_endpoints
 from brimline.daemon.runtime.assemble import build_core, make_driver
 from brimline.daemon.runtime.config import Config, load_config
-from brimline.daemon.runtime.service import Service
+from brimline.daemon.runtime.service import BEHIND_WARN_S, Service
 from brimline.daemon.runtime.status import summary_line
 from brimline.daemon.wire.recording import recording_paths
 from brimline.daemon.wire.state import StateStore
 from brimline.drivers.sources.radio import probe_radio
 
 __all__ = ["configure", "run", "JsonLogFormatter", "check_summary", "check_paths", "end_summary",
-           "security_warnings", "EXIT_SOURCE_FAILED"]
+           "timeline_fields", "security_warnings", "EXIT_SOURCE_FAILED"]
 
 #: Exit code of a run whose estimate source failed before the daemon was stopped.
 EXIT_SOURCE_FAILED = 3
 
+_TIMELINE_LINES = 50  # maps listed in the run summary (the newest)
+
 
 class JsonLogFormatter(logging.Formatter):
-    """One JSON object per log record: time (UTC, ISO 8601), level, logger, message."""
+    """One JSON object per log record: time (wall clock, UTC, ISO 8601), level, logger, message,
+    and the record's structured ``fields`` (``event``, ``link_time_s``, ``seq``, ``kind``,
+    ``cause``, ``reason``, ``bits_before``, ``bits_after``, ``margin_achieved_db``,
+    ``margin_target_db``, ... as the service logs them; see
+    :mod:`brimline.daemon.runtime.service`). A record without fields has ``event``
+    ``"message"``."""
 
     def format(self, record: logging.LogRecord) -> str:
         out = {
@@ -56,18 +66,36 @@ class JsonLogFormatter(logging.Formatter):
             .isoformat(timespec="milliseconds"),
             "level": record.levelname.lower(),
             "logger": record.name,
+            "event": "message",
             "message": record.getMessage(),
         }
+        fields = getattr(record, "fields", None)
+        if isinstance(fields, dict):
+            for key, value in fields.items():
+                if key not in ("time", "level", "logger", "message"):
+                    out[key] = _plain(value)
         if record.exc_info:
             out["exception"] = self.formatException(record.exc_info)
         return json.dumps(out, ensure_ascii=False)
+
+
+def _plain(value):
+    """A log field as JSON can carry it: non-finite floats become None."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, dict):
+        return {k: _plain(v) for k, v in value.items()}
+    return value
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
     """Add the flags of ``brimline run``."""
     parser.add_argument("--config", required=True, metavar="FILE", help="daemon config (YAML)")
     parser.add_argument("--duration", type=float, default=None, metavar="S",
-                        help="stop after S seconds (default: until Ctrl-C or the source ends)")
+                        help="stop after S seconds of link time (default: until Ctrl-C or the "
+                             "source ends)")
     parser.add_argument("--check", action="store_true",
                         help="validate the config, print a one-line summary and exit")
     parser.add_argument("--log-json", action="store_true",
@@ -81,8 +109,8 @@ def _setup_logging(as_json: bool, quiet: bool) -> logging.Handler:
     if as_json:
         handler.setFormatter(JsonLogFormatter())
     else:
-        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)-7s %(message)s",
-                                               datefmt="%H:%M:%S"))
+        handler.setFormatter(logging.Formatter(
+            "%(asctime)s.%(msecs)03d %(levelname)-7s %(message)s", datefmt="%H:%M:%S"))
     root = logging.getLogger("brimline")
     root.addHandler(handler)
     root.setLevel(logging.WARNING if quiet else logging.INFO)
@@ -234,8 +262,22 @@ def _check(args: argparse.Namespace, config: Config, warnings: list[str]) -> int
     return 0
 
 
-def end_summary(status: dict) -> str:
-    """The lines printed when a run ends: frames, rejections, maps by kind, final figures."""
+def end_summary(status: dict, timeline: Sequence[Change] = (), *,
+                behind_s: float = 0.0) -> str:
+    """The lines printed when a run ends: frames, rejections, maps by kind, final figures, and
+    the timeline of maps.
+
+    Parameters
+    ----------
+    status : dict
+        The last status message.
+    timeline : sequence of Change
+        The run's published changes, oldest first (:attr:`Service.timeline`): one line each,
+        link time, kind, bits per symbol before -> after, reason.
+    behind_s : float
+        Most the paced source fell behind the wall clock, s (said when above
+        :data:`~brimline.daemon.runtime.service.BEHIND_WARN_S`).
+    """
     fr = status.get("frames", {})
     rejected = dict(fr.get("rejected", {}))
     if fr.get("decode_errors"):
@@ -250,7 +292,8 @@ def end_summary(status: dict) -> str:
     lines = [
         "run summary",
         f"  source          {drv.get('name', '-')} ({drv.get('state', '-')})"
-        + (f": {drv['error']}" if drv.get("error") else ""),
+        + (f": {drv['error']}" if drv.get("error") else "")
+        + (f", up to {behind_s:.2f} s behind real time" if behind_s > BEHIND_WARN_S else ""),
         f"  frames          {fr.get('received', 0)} received, {fr.get('accepted', 0)} used",
         f"  rejected        {rej}",
         f"  maps published  {sum(maps.values())} ({maps_txt})",
@@ -276,7 +319,24 @@ def end_summary(status: dict) -> str:
     if dropped:
         lines.append("  dropped msgs    " + ", ".join(f"{k} {v}"
                                                      for k, v in sorted(dropped.items())))
+    if timeline:
+        shown = list(timeline)[-_TIMELINE_LINES:]
+        total = sum(maps.values())
+        lines.append("  maps            link time, kind, bits/symbol before -> after, reason"
+                     + (f" (the last {len(shown)} of {total})" if total > len(shown) else ""))
+        for c in shown:
+            before = "-" if c.bits_before is None else str(c.bits_before)
+            after = "-" if c.bits_after is None else str(c.bits_after)
+            lines.append(f"  {c.time_s:9.2f} s  {c.kind:<9} {before:>5} -> {after:<5} "
+                         f"{c.reason}")
     return "\n".join(lines)
+
+
+def timeline_fields(timeline: Sequence[Change]) -> list[dict]:
+    """The timeline of maps as JSON-ready dicts (the ``run_end`` log event's ``maps``)."""
+    return [{"link_time_s": c.time_s, "seq": c.seq, "kind": c.kind, "cause": c.cause,
+             "bits_before": c.bits_before, "bits_after": c.bits_after, "reason": c.reason}
+            for c in timeline]
 
 
 def run(args: argparse.Namespace) -> int:
@@ -313,8 +373,15 @@ def run(args: argparse.Namespace) -> int:
         with Service(config) as service:
             service.run(args.duration, stop=stop, on_status=_on_status)
         final = service.last_status or {}
+        logging.getLogger("brimline.service").info(
+            "run ended at link time %.2f s: %d maps", final.get("time_s", math.nan),
+            len(service.timeline),
+            extra={"fields": {"event": "run_end", "link_time_s": final.get("time_s"),
+                              "behind_max_s": round(service.behind_max_s, 3),
+                              "maps": timeline_fields(service.timeline)}})
         if not args.quiet:
-            print(end_summary(final), flush=True)
+            print(end_summary(final, service.timeline, behind_s=service.behind_max_s),
+                  flush=True)
         # The source failed during the run: the daemon kept serving the last or fallback map
         # until stopped; a distinct code lets a supervisor tell this stop from a clean one.
         return EXIT_SOURCE_FAILED if service.driver_state == "failed" else 0

@@ -80,6 +80,14 @@ frame times filter those dips, while a real drop waits at most ``down_persist_s`
 not at all. Spells where the per-frame estimates alternate between two states stay beyond any
 persistence of a few frames.
 
+Every decision names the rule that made it in ``Decision.cause`` (one key for machines; the
+reason says it in words), and a reload that repairs tones below the downshift margin names the
+limit that ruled out a bit swap (``swap_tones``, ``swap_loss``, ``swap_power``, ``swap_off``).
+A reload's reason follows the direction of the change: one that carries more bits than the
+map it replaces starts with the gain (``reload: +124 bits (...), made for: band fell ...``), so
+a reload called for by a fall of some tones that loads back more elsewhere never reads as a
+downgrade; any other ends with its bit change.
+
 Every map published here satisfies the loader's constraints: power within the budget, every tone
 within the ceiling, bits from the allowed set (reloads come from the loader; bit swaps only move
 a tone between allowed levels at its required power and check the totals).
@@ -326,7 +334,8 @@ class ChangeControl:
         kind = DecisionKind(kind)
         if kind is _KEEP:
             raise ValueError("force() needs a map-changing kind, not 'keep'")
-        decision = self._adopt(kind, allocation, reason, now_s, math.nan, restart_upgrade=True)
+        decision = self._adopt(kind, allocation, reason, now_s, math.nan, restart_upgrade=True,
+                               cause=kind.value)
         self._counters["forced"] += 1
         if kind is DecisionKind.FALLBACK:
             self._plan_id = None
@@ -373,10 +382,12 @@ class ChangeControl:
                                   f"({rate_wait:.2f} s)")
             why = ("first map" if cur is None or self._plan_id is None
                    else f"tone plan changed to {tracked.plan_id}")
+            cause = ("first_map" if cur is None else "after_fallback"
+                     if self._plan_id is None else "plan_changed")
             self._plan_id = tracked.plan_id
             alloc, note = self._load(_lin(eff_db))
             return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {why}{note}", now_s,
-                               mean_db, restart_upgrade=True)
+                               mean_db, restart_upgrade=True, cause=cause)
 
         # With power proportional to 1 / snr for given bits (the SNR-gap model), a tone's margin
         # in dB is its margin at 0 dB SNR plus its SNR in dB: one addition per frame.
@@ -419,7 +430,8 @@ class ChangeControl:
             alloc, note = self._load(_lin(eff_db - self.emergency_margin_db))
             return self._adopt(DecisionKind.EMERGENCY, alloc,
                                f"emergency: {what}; +{self.emergency_margin_db:g} dB margin"
-                               f"{note}", now_s, mean_db, restart_upgrade=True)
+                               f"{note}", now_s, mean_db, restart_upgrade=True,
+                               cause="emergency_tones" if n_raw and broad else "emergency_drop")
 
         # Common mode: the band as a whole fell by common_drop_db since the map (most loaded
         # tones moved together); or the map's median margin sat below -sag_db for sag_max_s.
@@ -442,16 +454,16 @@ class ChangeControl:
                                   else "held_rate", f"{what}; reload in {wait:.2f} s")
             alloc, note = self._load(_lin(eff_db))
             self._counters[key] += 1
-            return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {what}{note}", now_s,
-                               mean_db, restart_upgrade=False)
+            return self._adopt(DecisionKind.RELOAD, alloc, _reload_words(what + note, cur, alloc),
+                               now_s, mean_db, restart_upgrade=False, cause=key)
 
         if offset_db <= self._map_offset_db - self.common_drop_db and rate_wait <= 0:
             alloc, note = self._load(_lin(eff_db))
             self._counters["outer"] += 1
-            return self._adopt(DecisionKind.RELOAD, alloc,
-                               f"reload: outer loop offset {offset_db:+.1f} dB, "
-                               f"{self._map_offset_db - offset_db:.1f} dB below the map's{note}",
-                               now_s, mean_db, restart_upgrade=False)
+            return self._adopt(DecisionKind.RELOAD, alloc, _reload_words(
+                f"outer loop offset {offset_db:+.1f} dB, "
+                f"{self._map_offset_db - offset_db:.1f} dB below the map's{note}", cur, alloc),
+                now_s, mean_db, restart_upgrade=False, cause="outer_offset")
 
         gain = self._upgrade_gain(eff_db, cur, now_s)
         due = self._upgrade_due(now_s)
@@ -472,22 +484,28 @@ class ChangeControl:
                 alloc, note = self._load(snr)
                 self._counters["upgrade"] += 1
                 return self._adopt(DecisionKind.RELOAD, alloc,
-                                   f"reload: {what}; upgrade due{note}", now_s, mean_db,
-                                   restart_upgrade=True)
+                                   _reload_words(f"{what}; upgrade due{note}", cur, alloc),
+                                   now_s, mean_db, restart_upgrade=True,
+                                   cause="repair_and_upgrade")
             # The change batches everything due: every tone below the margin, whether by its
             # own fall or by the band's common one.
             due_mask = margins < self.downshift_margin_db
-            swap = (self._bit_swap(cur, snr, due_mask) if n_raw <= self.swap_max_tones
-                    else None)
+            if n_raw > self.swap_max_tones:
+                swap, changed, cause, limit = (
+                    None, 0, "swap_tones",
+                    f"too many for a bit swap ({n_raw} tones to repair > swap_max_tones "
+                    f"{self.swap_max_tones})")
+            else:
+                swap, changed, cause, limit = self._bit_swap(cur, snr, due_mask)
             if swap is not None:
-                alloc, changed = swap
-                delta = alloc.total_bits - cur.total_bits
-                return self._adopt(DecisionKind.BIT_SWAP, alloc,
+                delta = swap.total_bits - cur.total_bits
+                return self._adopt(DecisionKind.BIT_SWAP, swap,
                                    f"bit swap: {what}; {_tones(changed)} changed, {delta:+d} bits",
-                                   now_s, mean_db, restart_upgrade=False)
+                                   now_s, mean_db, restart_upgrade=False, cause=cause)
             alloc, note = self._load(snr)
-            return self._adopt(DecisionKind.RELOAD, alloc, f"reload: {what}{note}", now_s,
-                               mean_db, restart_upgrade=False)
+            return self._adopt(DecisionKind.RELOAD, alloc,
+                               _reload_words(f"{what}, {limit}{note}", cur, alloc), now_s,
+                               mean_db, restart_upgrade=False, cause=cause)
 
         if due and rate_wait <= 0:
             alloc, note = self._load(_lin(eff_db))
@@ -497,7 +515,7 @@ class ChangeControl:
                 f"upgrade: {alloc.total_bits - cur.total_bits:+d} bits ({gain:+d} even with "
                 f"{self.upshift_margin_db:g} dB more margin for "
                 f"{now_s - self._gain_since_s:.1f} s){note}", now_s, mean_db,
-                restart_upgrade=True)
+                restart_upgrade=True, cause="upgrade")
         if n_below:
             first = float(np.nanmin(since))
             return self._hold("held_persist", f"{_tones(n_below)} below downshift margin "
@@ -566,10 +584,10 @@ class ChangeControl:
         self._counters[counter] += 1
         if counter != "keep":
             self._counters["keep"] += 1
-        return Decision(kind=_KEEP, reason=reason)
+        return Decision(kind=_KEEP, reason=reason, cause=counter)
 
     def _adopt(self, kind: DecisionKind, alloc: Allocation, reason: str, now_s: float,
-               mean_db: float, *, restart_upgrade: bool) -> Decision:
+               mean_db: float, *, restart_upgrade: bool, cause: str) -> Decision:
         cur = self._current
         if cur is None or cur.bits.size != alloc.bits.size:
             changed = int(alloc.bits.size)
@@ -593,7 +611,8 @@ class ChangeControl:
         if restart_upgrade:
             self._gain_since_s = math.nan
         self._counters[kind.value] += 1
-        return Decision(kind=kind, reason=reason, allocation=alloc, tones_changed=changed)
+        return Decision(kind=kind, reason=reason, allocation=alloc, tones_changed=changed,
+                        cause=cause)
 
     def _load(self, snr: np.ndarray) -> tuple[Allocation, str]:
         """Run the loader; if a margin-mode target is infeasible, load for rate instead."""
@@ -607,8 +626,12 @@ class ChangeControl:
             return rate(snr), " (target bits infeasible: loaded for rate)"
 
     def _bit_swap(self, cur: Allocation, snr: np.ndarray,
-                  low: np.ndarray) -> tuple[Allocation, int] | None:
-        """Repair ``cur`` by moving bits off the ``low`` tones; None when a reload is needed.
+                  low: np.ndarray) -> tuple[Allocation | None, int, str, str]:
+        """Repair ``cur`` by moving bits off the ``low`` tones.
+
+        Returns the repaired allocation (None when a reload is needed), the tones it changed,
+        the decision's cause (``tones_low``, or the limit that ruled the swap out: ``swap_off``,
+        ``swap_tones``, ``swap_loss``, ``swap_power``) and that limit in words ("" for a swap).
 
         The failing tones take the highest allowed bits their present power still carries at
         the present SNR, at exactly the power those bits need. The bits lost go, one step at a
@@ -618,7 +641,9 @@ class ChangeControl:
         """
         levels = self._bit_set
         if levels is None or not math.isfinite(self._budget_lin) or self.swap_max_tones == 0:
-            return None
+            return None, 0, "swap_off", ("bit swaps off (swap_max_tones 0)"
+                                         if self.swap_max_tones == 0 else
+                                         "no bit swap with this loader")
         loader = self.loader
         n = cur.bits.size
         budget = n * self._budget_lin
@@ -668,17 +693,23 @@ class ChangeControl:
                            else np.inf)
         n_changed = int(np.count_nonzero(changed))
         loss = int(cur.total_bits - bits.sum())
-        if n_changed > self.swap_max_tones or loss > self.swap_max_loss_bits \
-                or (self._exact_rate and loss != 0):
-            return None
+        if n_changed > self.swap_max_tones:
+            return None, 0, "swap_tones", (f"a bit swap would change {n_changed} tones "
+                                           f"(> swap_max_tones {self.swap_max_tones})")
+        if loss > self.swap_max_loss_bits or (self._exact_rate and loss != 0):
+            return None, 0, "swap_loss", (
+                f"a bit swap would lose {loss} bits of the target" if self._exact_rate else
+                f"a bit swap would lose {loss} bits (> swap_max_loss_bits "
+                f"{self.swap_max_loss_bits})")
         total_power = float(power.sum())
         if total_power > budget * (1 + 1e-9) or (power > self._cap_lin * (1 + 1e-9)).any():
-            return None
+            return None, 0, "swap_power", "a bit swap does not fit the power budget or ceiling"
         need = loader.required_power(bits, snr)
         margin_db = uniform_margin_db(need, budget, self._cap_lin)
         alloc = Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
                            total_power=total_power, margin_db=margin_db)
-        return alloc, int(np.count_nonzero((cur.bits != bits) | (cur.power != power)))
+        return (alloc, int(np.count_nonzero((cur.bits != bits) | (cur.power != power))),
+                "tones_low", "")
 
 
 def _median(x: np.ndarray) -> float:
@@ -688,6 +719,18 @@ def _median(x: np.ndarray) -> float:
         return float(np.partition(x, k)[k])
     part = np.partition(x, (k - 1, k))
     return 0.5 * float(part[k - 1] + part[k])
+
+
+def _reload_words(what: str, cur: Allocation, alloc: Allocation) -> str:
+    """The reason of a reload made for ``what``, worded by the direction of the change: a
+    reload that carries more bits than ``cur`` says so first, so that it never reads as a
+    downgrade however it was called for."""
+    delta = alloc.total_bits - cur.total_bits
+    if delta > 0 and cur.bits.size == alloc.bits.size:
+        up = int(np.count_nonzero(alloc.bits > cur.bits))
+        down = int(np.count_nonzero(alloc.bits < cur.bits))
+        return f"reload: {delta:+d} bits ({_tones(up)} up, {down} down), made for: {what}"
+    return f"reload: {what}; {delta:+d} bits"
 
 
 def _lin(db: np.ndarray) -> np.ndarray:

@@ -89,12 +89,22 @@ class Change:
         Why (change control's words).
     seq : int
         Sequence number of the published map.
+    cause : str
+        The rule that made it (change control's ``Decision.cause``; ``fallback`` for the
+        fallback map).
+    bits_before : int or None
+        Bits per symbol of the map it replaced (None for the first map of a run).
+    bits_after : int or None
+        Bits per symbol of the new map.
     """
 
     time_s: float
     kind: str
     reason: str
     seq: int
+    cause: str = ""
+    bits_before: int | None = None
+    bits_after: int | None = None
 
 
 @dataclass(frozen=True)
@@ -290,7 +300,7 @@ class LinkController:
         kind = decision.kind.value
         if decision.kind is not DecisionKind.KEEP:
             self._make_map(decision.allocation, kind, decision.reason, now_s, False,
-                           maps, changes, held)
+                           maps, changes, held, cause=decision.cause)
         return self._step(now_s, kind, decision.reason, maps, changes, held)
 
     def on_tick(self, now_s: float) -> Step:
@@ -399,10 +409,10 @@ class LinkController:
         self.fallback_active = True
         self.stale = True
         self._make_map(self._fallback, DecisionKind.FALLBACK.value, self._fallback_reason,
-                       now_s, True, maps, changes, held)
+                       now_s, True, maps, changes, held, cause=DecisionKind.FALLBACK.value)
 
     def _make_map(self, alloc: Allocation, kind: str, reason: str, now_s: float,
-                  fallback: bool, maps, changes, held) -> None:
+                  fallback: bool, maps, changes, held, *, cause: str) -> None:
         if self._reserve is not None:
             try:
                 self._reserve(self.next_seq)
@@ -424,9 +434,11 @@ class LinkController:
         self.next_seq += 1
         if self.fallback_active and not fallback:
             self.fallback_active = False
+        before = None if self.current_map is None else self.current_map.total_bits
         self.current_map, self.current_kind = m, kind
         self.maps_published[kind] += 1
-        change = Change(now_s, kind, reason, m.seq)
+        change = Change(now_s, kind, reason, m.seq, cause=cause, bits_before=before,
+                        bits_after=m.total_bits)
         self.changes.append(change)
         maps.append(m)
         changes.append(change)

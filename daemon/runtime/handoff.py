@@ -149,11 +149,15 @@ class LockstepFeed:
         self._clock_every = int(clock_every)
 
     def run(self, deadline: float, clock: Callable[[], float], *,
-            process: Callable, tick: Callable[[float], None]) -> tuple[str, str | None] | None:
+            process: Callable, tick: Callable[[float], None],
+            keep_going: Callable[[float], bool] | None = None,
+            ) -> tuple[str, str | None] | None:
         """Simulate frames until ``deadline`` (on ``clock``) or the source ends.
 
         Each frame's estimate goes to ``process(estimate)`` before the next frame is sent; a
-        frame without one calls ``tick(time_s)`` with its simulated time.
+        frame without one calls ``tick(time_s)`` with its simulated time. ``keep_going``, when
+        given, is asked with the next frame's simulated time before that frame is simulated;
+        False stops here (the caller's own end in link time, such as ``--duration``).
 
         Returns
         -------
@@ -170,6 +174,8 @@ class LockstepFeed:
                 log.info("source %s ended", drv.name)
                 return "ended", None
             frame = drv.next_frame
+            if keep_going is not None and not keep_going(drv.start_s + drv.frame_time_s(frame)):
+                return None
             try:
                 estimate = drv.step()
             except BrimlineError as exc:

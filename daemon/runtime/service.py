@@ -29,11 +29,30 @@ Which time the controller is given (the estimate's own, or the monotonic clock) 
 :class:`~brimline.daemon.runtime.timebase.Timebase`'s policy; heartbeats and the status period
 always run on the monotonic clock.
 
+``run(duration_s)`` counts **link time**, the controller's: from the first estimate's own time
+with the source clock (a seeded simulation in lockstep thus stops after the same frames every
+time: the frame due at the end is not simulated), from the start with the monotonic clock. A
+source-clock source that falls silent ends the run once its time, extended by the wall clock,
+is ``fallback.stale_after_s`` past the end. A paced source-clock source (the simulator in real
+time, a paced replay) that falls more than :data:`BEHIND_WARN_S` behind the wall clock is
+logged once (``behind_real_time``: how far, at which link time); the worst lag is
+:attr:`Service.behind_max_s`.
+
+Logging
+-------
+Every map, fallback, return from the fallback and held-back map is logged with its link time in
+the words of the line and, for a structured formatter, as fields in the record's ``fields``
+dict (``event``, ``link_time_s``, ``seq``, ``kind``, ``cause``, ``reason``, ``bits_before``,
+``bits_after``, ``margin_achieved_db``, ``margin_target_db``, ``effective_frame``); the wall
+time is the record's own. Every published change is also kept in :attr:`Service.timeline`
+(the last :data:`TIMELINE_KEEP`) for the run summary.
+
 Recording
 ---------
 Estimates, maps (the bytes sent), decisions (a dict per published map: ``kind``, ``reason``,
-``time_s``, ``seq``) and status messages are recorded when ``record.topics`` selects them; a
-recording that fails stops alone (see :mod:`brimline.daemon.runtime.outlets`).
+``time_s``, ``seq``, ``cause``, ``bits_before``, ``bits_after``) and status messages are
+recorded when ``record.topics`` selects them; a recording that fails stops alone (see
+:mod:`brimline.daemon.runtime.outlets`).
 
 Shutdown order
 --------------
@@ -46,6 +65,7 @@ LINGER), terminate the context if the service created it. Idempotent.
 
 from __future__ import annotations
 
+import collections
 import itertools
 import logging
 import math
@@ -55,7 +75,7 @@ from typing import Callable
 
 import zmq
 
-from brimline.daemon.core.controller import LinkController, Step
+from brimline.daemon.core.controller import Change, LinkController, Step
 from brimline.daemon.errors import BrimlineError, ProtocolError
 from brimline.daemon.records import Estimate, LoadMap
 from brimline.daemon.runtime.assemble import (
@@ -79,9 +99,14 @@ from brimline.daemon.runtime.timebase import Timebase
 from brimline.daemon.wire import codec
 from brimline.drivers.link.schedule import MapSchedule
 
-__all__ = ["Service"]
+__all__ = ["Service", "BEHIND_WARN_S", "TIMELINE_KEEP"]
 
 log = logging.getLogger("brimline.service")
+
+#: A paced source this far behind the wall clock (s of link time) is logged, once per run.
+BEHIND_WARN_S = 0.5
+#: Changes kept in :attr:`Service.timeline` (the run summary's timeline of maps).
+TIMELINE_KEEP = 1000
 
 _CLOCK_EVERY = 4  # estimates handled between two reads of the clock in one step
 
@@ -146,6 +171,14 @@ class Service:
         self._feed: LockstepFeed | None = None
         self._started = False
         self._closed = False
+        #: Every published change of this run, oldest first (the last TIMELINE_KEEP).
+        self.timeline: collections.deque[Change] = collections.deque(maxlen=TIMELINE_KEEP)
+        #: Most a paced source-clock source fell behind the wall clock, s of link time.
+        self.behind_max_s = 0.0
+        self._pace_origin: tuple[float, float] | None = None  # (link time, wall) of the first
+        self._run_for_s: float | None = None  # run()'s duration in link time
+        self._origin_s: float | None = None   # the link time it counts from
+        self._run_over = False                # an estimate at or past the end arrived
 
     @property
     def current_map(self) -> LoadMap | None:
@@ -288,26 +321,31 @@ class Service:
 
     def run(self, duration_s: float | None = None, *, stop: threading.Event | None = None,
             on_status: Callable[[dict], None] | None = None) -> None:
-        """Run the loop until ``duration_s`` (monotonic) passes, ``stop`` is set or the source ends.
+        """Run the loop until ``duration_s`` of link time passes, ``stop`` is set or the source
+        ends.
 
         Parameters
         ----------
         duration_s : float, optional
-            Bound on the run time in seconds.
+            Bound on the run in seconds of link time (see the module notes): with the source
+            clock, estimates whose time is ``duration_s`` or more after the first one's are not
+            used, and the run ends there.
         stop : threading.Event, optional
             Set (e.g. by a signal handler) to finish the current step and return.
         on_status : callable, optional
             Called with every status message published (the CLI's live line).
         """
         self.start()
-        end = None if duration_s is None else self._clock() + duration_s
+        self._run_for_s = duration_s
+        self._run_over = False
+        self._origin_s = self.core_now() if self.timebase.mode == "monotonic" else None
+        start_wall = self._clock()
         while not (stop is not None and stop.is_set()):
-            now = self._clock()
-            if end is not None and now >= end:
+            if self._run_over or self._silent_past_end(start_wall):
                 break
             timeout = self.config.service.poll_s
-            if end is not None:
-                timeout = min(timeout, max(0.0, end - now))
+            if duration_s is not None and self.timebase.mode == "monotonic":
+                timeout = min(timeout, max(0.0, self._origin_s + duration_s - self.core_now()))
             status = self.step(timeout)
             if status is not None and on_status is not None:
                 on_status(status)
@@ -316,6 +354,48 @@ class Service:
                     break
                 # A failed source: keep serving the last map, status and fallback until told
                 # to stop (the operator sees driver_failed in the status).
+
+    def _past_end(self, link_s: float) -> bool:
+        """Whether link time ``link_s`` is at or past the end of :meth:`run`'s duration (the
+        first time seen opens the count with the source clock)."""
+        if self._run_for_s is None:
+            return False
+        if self._origin_s is None:
+            self._origin_s = link_s
+        if link_s - self._origin_s >= self._run_for_s - 1e-9:
+            self._run_over = True
+        return self._run_over
+
+    def _silent_past_end(self, start_wall: float) -> bool:
+        """The end of the duration for a source that sends nothing (see the module notes)."""
+        if self._run_for_s is None:
+            return False
+        if self.timebase.mode == "monotonic":
+            return self._past_end(self.core_now())
+        grace = self._run_for_s + self.config.fallback.stale_after_s
+        if self._origin_s is None:
+            return self._clock() - start_wall >= grace
+        return self.core_now() - self._origin_s >= grace
+
+    def _check_pace(self, link_s: float) -> None:
+        """Note how far a paced source-clock source is behind the wall clock; log it once."""
+        if self.timebase.mode != "source" or getattr(self.driver, "realtime", False) is not True:
+            return
+        wall = self._clock()
+        if self._pace_origin is None:
+            self._pace_origin = (link_s, wall)
+            return
+        behind = (wall - self._pace_origin[1]) - (link_s - self._pace_origin[0])
+        if behind > self.behind_max_s:
+            first = self.behind_max_s <= BEHIND_WARN_S < behind
+            self.behind_max_s = behind
+            if first:
+                name = getattr(self.driver, "name", "driver")
+                log.warning("source %s is %.2f s behind real time at link time %.2f s (this "
+                            "machine does not keep its pace; link time, --duration included, "
+                            "runs on)", name, behind, link_s,
+                            extra={"fields": {"event": "behind_real_time", "link_time_s": link_s,
+                                              "behind_s": round(behind, 3), "source": name}})
 
     @property
     def lockstep(self) -> bool:
@@ -352,6 +432,8 @@ class Service:
             for handled in itertools.count():
                 if handled and handled % _CLOCK_EVERY == 0 and self._clock() >= deadline:
                     break  # the rest waits for the next step, after the heartbeat
+                if self._run_over:
+                    break  # the duration is over: the rest is not used
                 frames = self._handoff.receive()
                 if frames is None:
                     break
@@ -371,7 +453,8 @@ class Service:
 
     def _lockstep_frames(self, deadline: float) -> None:
         ended = self._feed.run(deadline, self._clock, process=self.process,
-                               tick=lambda t: self._carry_out(self.controller.on_tick(t)))
+                               tick=lambda t: self._carry_out(self.controller.on_tick(t)),
+                               keep_going=lambda t: not self._past_end(t))
         if ended is not None:
             self.driver_state, self.driver_error = ended
 
@@ -418,7 +501,11 @@ class Service:
         The recording is written after the maps are sent (estimate first, then the decisions
         and maps it caused), so disk writes are not on the path to the transmitter.
         """
-        step = self.controller.on_estimate(estimate, self.timebase.of(estimate))
+        link_s = self.timebase.of(estimate)
+        if self._past_end(link_s):
+            return None  # at or past the end of run()'s duration: not used
+        self._check_pace(link_s)
+        step = self.controller.on_estimate(estimate, link_s)
         self.timebase.arrived(step.now_s)
         return self._carry_out(step, estimate, frames)
 
@@ -426,7 +513,9 @@ class Service:
                    estimate_frames=None) -> LoadMap | None:
         """Send the step's maps, hand them to the state writer, then record and log."""
         if step.held_back is not None and not self._holding:
-            log.error("new maps held back: %s", step.held_back)
+            log.error("new maps held back at link time %.2f s: %s", step.now_s, step.held_back,
+                      extra={"fields": {"event": "held_back", "link_time_s": step.now_s,
+                                        "reason": step.held_back}})
         self._holding = self.controller.state_unsaved
         sent = []
         for m in step.maps:
@@ -439,20 +528,65 @@ class Service:
         if estimate is not None:
             self._io.record(codec.TOPIC_ESTIMATE, estimate, estimate_frames)
         for change, frames in zip(step.changes, sent):
-            self._io.record(codec.TOPIC_DECISION, {"kind": change.kind, "reason": change.reason,
-                                                   "time_s": change.time_s, "seq": change.seq})
+            self._io.record(codec.TOPIC_DECISION, {
+                "kind": change.kind, "reason": change.reason, "time_s": change.time_s,
+                "seq": change.seq, "cause": change.cause, "bits_before": change.bits_before,
+                "bits_after": change.bits_after})
             self._io.record(codec.TOPIC_MAP, None, frames)
         for change, m in zip(step.changes, step.maps):
+            self.timeline.append(change)
+            t = change.time_s
             if m.fallback:
-                log.warning("fallback: %s", change.reason)
+                log.warning("fallback at link time %.2f s: %s", t, change.reason,
+                            extra={"fields": {"event": "fallback", "link_time_s": t,
+                                              "seq": m.seq, "reason": change.reason}})
             elif self._in_fallback:
-                log.info("estimates resumed: leaving the fallback map")
+                log.info("estimates resumed at link time %.2f s: leaving the fallback map", t,
+                         extra={"fields": {"event": "resumed", "link_time_s": t}})
             self._in_fallback = m.fallback
             if log.isEnabledFor(logging.INFO):
-                margin = f"{m.margin_db:.1f} dB" if math.isfinite(m.margin_db) else "unknown"
-                log.info("map %d (%s, %d bits/symbol, margin %s): %s", m.seq, change.kind,
-                         m.total_bits, margin, change.reason)
+                fields = self.map_fields(change, m)
+                achieved, target = fields["margin_achieved_db"], fields["margin_target_db"]
+                before = "-" if change.bits_before is None else str(change.bits_before)
+                margin = ("margin unknown" if achieved is None else
+                          f"margin {achieved:.1f} dB (target {target:g} dB)")
+                log.info("map %d at link time %.2f s: %s, %s -> %d bits/symbol, %s: %s",
+                         m.seq, t, change.kind, before, m.total_bits, margin, change.reason,
+                         extra={"fields": fields})
         return step.last_map
+
+    def map_fields(self, change: Change, m: LoadMap) -> dict:
+        """The structured fields of the log line of one published map.
+
+        Parameters
+        ----------
+        change : Change
+            The controller's record of the change.
+        m : LoadMap
+            The map it published.
+
+        Returns
+        -------
+        dict
+            ``event`` (``"map"``), ``link_time_s``, ``seq``, ``kind``, ``cause``, ``reason``,
+            ``bits_before`` (None for the first map), ``bits_after``, ``effective_frame``,
+            ``margin_target_db`` (``loading.margin_db``) and ``margin_achieved_db``: the margin
+            every loaded tone had, on the SNR the map was made for, when it was made (the
+            target plus the map's uniform margin above it, the outer loop's offset and, for an
+            emergency map, ``change.emergency_margin_db``; None for the fallback map).
+        """
+        target = float(self.config.loading.margin_db)
+        achieved = None
+        if not m.fallback and math.isfinite(m.margin_db):
+            extra = m.gap_db - self.loader.gap_db
+            if change.kind == "emergency":
+                extra += float(self.config.change.emergency_margin_db)
+            achieved = round(target + extra + m.margin_db, 3)
+        return {"event": "map", "link_time_s": change.time_s, "seq": m.seq,
+                "kind": change.kind, "cause": change.cause, "reason": change.reason,
+                "bits_before": change.bits_before, "bits_after": m.total_bits,
+                "effective_frame": m.effective_frame, "margin_achieved_db": achieved,
+                "margin_target_db": target}
 
     def status(self) -> dict:
         """The status message for the current state (see :mod:`brimline.daemon.runtime.status`)."""
