@@ -288,7 +288,7 @@
     sheet.width = cols; sheet.height = shown.length;
     sheet.getContext('2d').putImageData(image, 0, 0);
     ctx.imageSmoothingEnabled = false;
-    const rowH = ph / Math.max(shown.length, Math.min(KEEP_ROWS, 60));
+    const rowH = ph / Math.max(shown.length, 40);  // rows fill the chart, then scroll
     ctx.drawImage(sheet, left, top, pw, rowH * shown.length);
     const b = box(ctx, left, top, pw, ph, xr, [0, 1]);
     ctx.strokeStyle = '#b8bec9';
@@ -361,7 +361,9 @@
       return;
     }
     const t1 = pts[pts.length - 1].t;
-    const t0 = Math.max(pts[0].t, t1 - WINDOW_S);
+    // from the first point, or an earlier mark (the first map comes before the first status)
+    const firstMark = state.marks.length ? Math.max(0, state.marks[0].t) : pts[0].t;
+    const t0 = Math.max(Math.min(pts[0].t, firstMark), t1 - WINDOW_S);
     const xr = t1 > t0 ? [t0, t1] : [t0 - 1, t0 + 1];
     const inView = pts.filter(function (p) { return p.t >= xr[0]; });
     const xs = inView.map(function (p) { return p.t; });
