@@ -17,7 +17,8 @@ from test_lookout_data import _status
 
 from brimline.daemon.commands.cli import main
 from brimline.daemon.errors import InputError
-from brimline.daemon.net.publisher import StatusPublisher
+from brimline.daemon.net.curve import make_keypair
+from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
 from brimline.daemon.views.lookout import STATIC_FILES, Lookout
 from brimline.daemon.wire import codec
 
@@ -147,6 +148,33 @@ def test_pages_beyond_the_limit_are_refused(publisher):
                     assert info.value.status == 503
                     assert view.status_counts()["pages_refused"] == 1
     asyncio.run(scenario())
+
+
+def test_curve_keys_as_for_watch(tmp_path, ctx):
+    """An authorised viewer gets the CURVE-protected stream; one with another key gets none."""
+    make_keypair(tmp_path / "daemon", "daemon")
+    make_keypair(tmp_path / "clients", "viewer")
+    make_keypair(tmp_path / "strangers", "mallory")
+    with MapPublisher(map_endpoint=ANY_PORT, snapshot_endpoint=ANY_PORT, ack_endpoint=None,
+                      linger_s=0, context=ctx,
+                      curve_secret_key=str(tmp_path / "daemon/daemon.key_secret"),
+                      curve_clients_dir=str(tmp_path / "clients")) as maps, \
+            StatusPublisher(endpoint=ANY_PORT, curve=maps.curve) as pub:
+        server_key = tmp_path / "daemon/daemon.key"
+        with Lookout(pub.endpoint, port=0, curve_server_key=server_key,
+                     curve_client_key=tmp_path / "clients/viewer.key_secret") as good, \
+                Lookout(pub.endpoint, port=0, curve_server_key=server_key,
+                        curve_client_key=tmp_path / "strangers/mallory.key_secret") as stranger:
+            async def scenario():
+                await _publish_until(good, lambda: pub.publish(_status()),
+                                     lambda: good.counters["received"] > 3)
+            asyncio.run(scenario())
+            assert stranger.counters["received"] == 0
+
+
+def test_one_key_file_alone_is_refused():
+    with pytest.raises(InputError, match="CURVE needs both"):
+        Lookout("tcp://127.0.0.1:7343", curve_server_key="daemon.key")
 
 
 def test_a_taken_port_is_one_input_error(publisher):
