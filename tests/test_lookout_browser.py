@@ -37,7 +37,7 @@ def test_the_page_shows_the_tones_updates_and_draws_its_charts(ctx):
         assert "tones -50 \u2026 50" in summary and "100 data tones" in summary
         figures = chrome.find_element("id", "figures").text
         assert "Mbit/s" in figures and "not in status" in figures  # goodput: no closed loop
-        assert "EMERGENCY" in chrome.find_element("id", "alarms").text
+        assert "EMERGENCY \u00d71, last raised at 1.0 s" in chrome.find_element("id", "alarms").text
 
         # a new status arrives: the page follows without a reload
         for i, t in enumerate((1.5, 2.0, 2.5, 3.0)):
@@ -46,6 +46,8 @@ def test_the_page_shows_the_tones_updates_and_draws_its_charts(ctx):
         assert until(lambda: _page(chrome, "document.body.dataset.mapSeq") == "13", HANG_S)
         rows = chrome.find_elements("css selector", "#changes tbody tr")
         assert rows[0].text.split()[:3] == ["7.50", "13", "reload"]
+        alarms = chrome.find_element("id", "alarms").text  # the emergency stays, cleared
+        assert "no alarms now" in alarms and "EMERGENCY" in alarms and "cleared" in alarms
         assert int(_page(chrome, "document.body.dataset.updates")) >= 2
 
         assert until(lambda: _page(chrome, "document.getElementById('time').textContent")

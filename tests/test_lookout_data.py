@@ -90,10 +90,15 @@ class TestPageFrame:
         st_["band"]["something_new"] = "yes"
         assert page_frame(st_)["band"]["columns"] == 100
 
-    def test_a_given_column_tone_list_is_the_axis(self):
+    def test_the_groups_first_tones_make_the_axis_where_the_status_lists_them(self):
         st_ = _status()
-        st_["band"]["column_tone"] = list(range(100))
-        assert page_frame(st_)["band"]["tone_axis"] == list(range(100))
+        st_["band"]["tone_index"] = list(range(-50, 50))
+        st_["band"]["tones_per_column"] = 1
+        assert page_frame(st_)["band"]["tone_axis"] == list(range(-50, 50))
+        st_["band"]["tones_per_column"] = 3  # a group of 3 stands at its middle tone
+        assert page_frame(st_)["band"]["tone_axis"][:2] == [-49.0, -48.0]
+        st_["band"]["tone_index"] = [0, 1]  # does not fit the band: evenly spread instead
+        assert page_frame(st_)["band"]["tone_axis"][-1] == 50
 
     def test_alarms_with_counts_in_either_form(self):
         st_ = _status()
@@ -194,6 +199,26 @@ class TestTimeline:
             tl.add(page_frame(_status(time_s=float(i), seq=2 * i + 1)))
         snap = tl.snapshot()
         assert len(snap["points"]) == 5 and len(snap["rows"]) == 3 and len(snap["marks"]) == 4
+
+    def test_alarms_stay_in_the_book_with_their_counts_after_they_clear(self):
+        tl = Timeline()
+        tl.add(page_frame(_status(time_s=4.0)))  # emergency raised
+        calm = _status(time_s=5.0, kind="reload")
+        tl.add(page_frame(calm))
+        update = tl.add(page_frame(_status(time_s=6.0, seq=14)))  # raised again
+        (entry,) = update["alarm_book"]
+        assert entry["name"] == "emergency" and entry["count"] == 2 and entry["active"]
+        assert entry["raised_s"] == 6.0 and entry["cleared_s"] == 5.0
+        after = tl.add(page_frame(_status(time_s=7.0, seq=15, kind="reload")))
+        assert after["alarm_book"][0]["active"] is False
+        assert after["alarm_book"][0]["count"] == 2
+        assert tl.snapshot()["alarm_book"] == after["alarm_book"]
+
+    def test_a_daemon_that_counts_its_alarms_is_believed(self):
+        tl = Timeline()
+        st_ = _status(time_s=1.0)
+        st_["alarms"] = [{"name": "stale", "count": 7}]
+        assert tl.add(page_frame(st_))["alarm_book"][0]["count"] == 7
 
     def test_a_status_without_time_adds_no_point(self):
         tl = Timeline()

@@ -21,10 +21,15 @@ wins, so the page shows the net data rate and the target margin as soon as a dae
 them, under either name, and the current daemon's ``rate.rate_bps`` and ``margin_db`` until then.
 
 The band in the status is grouped into at most ``band.columns`` adjacent groups of data tones.
-The tone axis of the page is in the daemon's tone numbering: :func:`column_tones` places each
-group at its centre between ``tone_first`` and ``tone_last`` (a group then stands for its
-tones, and the pilots and the empty DC tone inside it), unless the status lists the tone of each
-group itself (``band.column_tone``).
+The tone axis of the page is in the daemon's tone numbering. Where the status lists each group's
+first tone (``band.tone_index``, with ``band.tones_per_column``), a group stands at its first
+tone plus half a group; otherwise :func:`column_tones` spreads the groups evenly between
+``tone_first`` and ``tone_last`` (a group then stands for its tones, and the pilots and the
+empty DC tone among them).
+
+Alarms stay on the page after they clear: :class:`Timeline` keeps a book of every alarm seen
+with how often it was raised and the link time it was last raised and cleared, so an emergency
+that lasted one status message still shows its count.
 """
 
 from __future__ import annotations
@@ -232,8 +237,10 @@ def page_frame(status: Mapping[str, Any]) -> dict[str, Any]:
     columns = max(len(snr), len(bits), len(power))
     tone_first = _number(band.get("tone_first"), "band.tone_first")
     tone_last = _number(band.get("tone_last"), "band.tone_last")
-    given_axis = _numbers(band.get("column_tone"), "band.column_tone")
-    axis = (given_axis if len(given_axis) == columns and None not in given_axis
+    firsts = _numbers(band.get("tone_index"), "band.tone_index")
+    per = _number(band.get("tones_per_column"), "band.tones_per_column") or 1.0
+    axis = ([round(t + (per - 1.0) / 2.0, 3) for t in firsts]
+            if columns and len(firsts) == columns and None not in firsts
             else column_tones(tone_first, tone_last, columns))
 
     figures = []
@@ -297,7 +304,8 @@ class Timeline:
     A status from another epoch, or one whose ``time_s`` runs backwards (the daemon restarted),
     starts the history afresh: the update then says ``reset`` and the page clears its charts.
     Map changes are marked once each, by sequence number, at their own ``time_s``; an alarm is
-    marked when it appears (not while it stays).
+    marked when it appears (not while it stays) and counted in the alarm book, where it stays
+    after it clears.
     """
 
     def __init__(self, *, points: int = 1200, rows: int = 240, marks: int = 400) -> None:
@@ -309,6 +317,7 @@ class Timeline:
         self._marks: collections.deque = collections.deque(maxlen=marks)
         self._marked_seqs: collections.OrderedDict = collections.OrderedDict()
         self._max_seqs = marks
+        self._book: dict[str, dict[str, Any]] = {}
         self.latest: dict[str, Any] | None = None
 
     def _clear(self) -> None:
@@ -316,6 +325,32 @@ class Timeline:
         self._rows.clear()
         self._marks.clear()
         self._marked_seqs.clear()
+        self._book.clear()
+
+    def _note_alarms(self, alarms: Sequence[Mapping[str, Any]], t: float | None) -> None:
+        now = {a["name"]: a for a in alarms}
+        for name, a in now.items():
+            entry = self._book.get(name)
+            if entry is None:
+                if len(self._book) >= 64:  # bounded: names come from the wire
+                    continue
+                entry = self._book[name] = {"name": name, "meaning": a["meaning"], "count": 0,
+                                            "raised_s": None, "cleared_s": None,
+                                            "active": False}
+            if not entry["active"]:
+                entry.update(count=entry["count"] + 1, raised_s=t, active=True)
+            if a.get("count") is not None:  # a daemon that counts its alarms knows best
+                entry["count"] = a["count"]
+        for name, entry in self._book.items():
+            if entry["active"] and name not in now:
+                entry.update(active=False, cleared_s=t)
+
+    def alarm_book(self) -> list[dict[str, Any]]:
+        """Every alarm seen since the history began: ``name``, ``meaning``, ``count`` (times
+        raised), ``raised_s`` and ``cleared_s`` (link time, s), ``active``; active ones first,
+        then the most recently raised."""
+        return sorted((dict(e) for e in self._book.values()),
+                      key=lambda e: (not e["active"], -(e["raised_s"] or 0.0), e["name"]))
 
     def add(self, frame: Mapping[str, Any]) -> dict[str, Any]:
         """Take one :func:`page_frame` and return the update message for the pages.
@@ -324,7 +359,8 @@ class Timeline:
         -------
         dict
             ``{"kind": "update", "reset": bool, "frame": frame, "point": dict or None,
-            "row": dict or None, "marks": [new marks]}``.
+            "row": dict or None, "marks": [new marks], "alarm_book": [...]}`` (see
+            :meth:`alarm_book`).
         """
         prev = self.latest
         t = frame.get("time_s")
@@ -362,8 +398,9 @@ class Timeline:
                     marks.append({"t": t, "type": "alarm", "kind": a["name"],
                                   "label": a["name"]})
             self._marks.extend(marks)
+        self._note_alarms(frame.get("alarms", []), t)
         return {"kind": "update", "reset": bool(reset), "frame": self.latest, "point": point,
-                "row": row, "marks": marks}
+                "row": row, "marks": marks, "alarm_book": self.alarm_book()}
 
     def snapshot(self) -> dict[str, Any]:
         """Everything a newly opened page starts from.
@@ -372,7 +409,8 @@ class Timeline:
         -------
         dict
             ``{"kind": "snapshot", "frame": latest frame or None, "points": [...],
-            "rows": [...], "marks": [...]}``, oldest first.
+            "rows": [...], "marks": [...], "alarm_book": [...]}``, oldest first.
         """
         return {"kind": "snapshot", "frame": self.latest, "points": list(self._points),
-                "rows": list(self._rows), "marks": list(self._marks)}
+                "rows": list(self._rows), "marks": list(self._marks),
+                "alarm_book": self.alarm_book()}

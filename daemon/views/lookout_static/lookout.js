@@ -28,7 +28,7 @@
   const RAMP = [[18, 24, 58], [44, 78, 140], [38, 150, 140], [226, 192, 92], [250, 246, 226]];
 
   const state = {
-    frame: null, points: [], rows: [], marks: [], view: null, updates: 0,
+    frame: null, points: [], rows: [], marks: [], alarmBook: [], view: null, updates: 0,
     snrRange: [-5, 45], endpoint: '', lastAt: null, connected: false, drawPending: false
   };
 
@@ -437,13 +437,22 @@
             (band.tones || 0) + ' data tones in ' + band.columns + ' groups; SNR scale ' +
             state.snrRange[0] + ' to ' + state.snrRange[1] + ' dB');
 
+    // Alarms stay: active ones first (red), then cleared ones (grey), each with how often it
+    // was raised and when last, in link time.
     const alarms = document.getElementById('alarms');
     alarms.replaceChildren();
-    if (!f.alarms.length) alarms.appendChild(el('span', 'no-alarm', 'no alarms'));
-    for (const a of f.alarms) {
-      const chip = el('span', 'alarm', a.name.toUpperCase());
-      if (a.count !== null) chip.appendChild(el('small', '', '\u00d7' + a.count));
-      if (a.since_s !== null) chip.appendChild(el('small', '', a.since_s.toFixed(0) + ' s ago'));
+    const book = state.alarmBook;
+    if (!book.some(function (a) { return a.active; })) {
+      alarms.appendChild(el('span', 'no-alarm', 'no alarms now'));
+    }
+    for (const a of book) {
+      const chip = el('span', a.active ? 'alarm' : 'alarm cleared', a.name.toUpperCase());
+      chip.appendChild(el('small', '', ' \u00d7' + a.count));
+      if (a.raised_s !== null) {
+        const ago = f.time_s === null ? '' : ', ' + (f.time_s - a.raised_s).toFixed(1) + ' s ago';
+        chip.appendChild(el('small', '', ', last raised at ' + a.raised_s.toFixed(1) + ' s' + ago));
+      }
+      if (!a.active) chip.appendChild(el('small', '', ', cleared'));
       chip.title = a.meaning || a.name;
       alarms.appendChild(chip);
     }
@@ -557,6 +566,7 @@
 
   function take(msg) {
     if (msg.view) state.view = msg.view;
+    if (msg.alarm_book) state.alarmBook = msg.alarm_book;
     if (msg.kind === 'snapshot') {
       if (msg.settings) {
         state.snrRange = msg.settings.snr_range_db;
