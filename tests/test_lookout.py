@@ -234,3 +234,31 @@ class TestCommand:
         with pytest.raises(SystemExit):
             main(["lookout", "--help"])
         assert "RF caution" in capsys.readouterr().out
+
+
+class TestTake:
+    """What the view does with each message, without sockets (``Lookout.take``)."""
+
+    def _frames(self, record):
+        return [bytes(f) for f in codec.encode(codec.TOPIC_STATUS, record)]
+
+    def test_gaps_in_status_seq_are_counted_as_missed(self):
+        view = Lookout("tcp://127.0.0.1:7343", port=0)
+        for seq in (0, 1, 4, 5):
+            assert view.take(self._frames({**_status(time_s=float(seq)), "status_seq": seq}))
+        assert view.status_counts()["missed"] == 2 and view.status_counts()["received"] == 4
+
+    def test_other_dicts_on_the_stream_are_ignored_not_dropped(self):
+        view = Lookout("tcp://127.0.0.1:7343", port=0)
+        assert view.take(self._frames({"type": "tx_status", "seq": 3})) is None
+        assert view.counters["ignored"] == 1 and view.status_counts()["dropped"] == {}
+
+    def test_undecodable_and_misshapen_messages_are_counted_by_reason(self):
+        view = Lookout("tcp://127.0.0.1:7343", port=0)
+        assert view.take([b"status", b"\x00garbage"]) is None
+        bad = _status()
+        bad["map"] = "seq 3"
+        assert view.take(self._frames(bad)) is None
+        dropped = view.status_counts()["dropped"]
+        assert dropped["status_shape"] == 1 and sum(dropped.values()) == 2
+        assert view.status_counts()["received"] == 0
