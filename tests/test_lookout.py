@@ -197,9 +197,9 @@ def test_close_is_idempotent_and_start_after_close_is_refused(publisher):
 class TestCommand:
     @pytest.mark.parametrize("argv,message", [
         (["--port", "70000"], "--port=70000 must be 0..65535"),
-        (["--snr-scale-db", "40,5"], "--snr-scale-db='40,5' must be finite with LOW below HIGH"),
-        (["--snr-scale-db", "nan,5"], "--snr-scale-db='nan,5' must be finite"),
-        (["--snr-scale-db", "low"], "--snr-scale-db='low' must be two numbers"),
+        (["--snr-scale", "40:5"], "--snr-scale='40:5' must be LOW:HIGH in dB with LOW < HIGH"),
+        (["--snr-scale", "nan:5"], "--snr-scale='nan:5' must be LOW:HIGH"),
+        (["--snr-scale", "0,40"], "--snr-scale='0,40' must be LOW:HIGH"),
         (["--duration", "-1"], "--duration=-1.0 must be a positive number"),
         (["--endpoint", "nowhere"], "--endpoint='nowhere' must be a ZeroMQ address"),
         (["--endpoint", "tcp://"], "--endpoint='tcp://'"),

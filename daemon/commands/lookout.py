@@ -25,9 +25,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--port", type=int, default=DEFAULT_PORT,
                         help=f"TCP port of the page (default {DEFAULT_PORT}; 0 picks a free one)")
     lo, hi = DEFAULT_SNR_RANGE_DB
-    parser.add_argument("--snr-scale-db", default=f"{lo:g},{hi:g}", metavar="LOW,HIGH",
+    parser.add_argument("--snr-scale", default=f"{lo:g}:{hi:g}", metavar="LOW:HIGH",
                         help=f"fixed SNR scale of the band chart and waterfall, dB "
-                             f"(default {lo:g},{hi:g})")
+                             f"(default {lo:g}:{hi:g})")
     parser.add_argument("--duration", type=float, default=None, metavar="S",
                         help="stop after S seconds")
     parser.add_argument("--daemon-key", default=None, metavar="FILE",
@@ -39,21 +39,21 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def parse_snr_scale(text: str) -> tuple[float, float]:
-    """``"LOW,HIGH"`` in dB as two finite numbers, low below high.
+    """``"LOW:HIGH"`` in dB as two finite numbers, low below high.
 
     Raises
     ------
     InputError
-        Naming ``--snr-scale-db`` and the value.
+        Naming ``--snr-scale`` and the value.
     """
-    parts = text.split(",")
+    low, sep, high = str(text).partition(":")
     try:
-        lo, hi = (float(p) for p in parts)
+        lo, hi = float(low), float(high)
     except ValueError:
-        raise InputError(f"--snr-scale-db={text!r} must be two numbers LOW,HIGH in dB "
-                         "such as -5,45") from None
-    if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
-        raise InputError(f"--snr-scale-db={text!r} must be finite with LOW below HIGH")
+        lo = hi = math.nan
+    if not sep or not (math.isfinite(lo) and math.isfinite(hi)) or not lo < hi:
+        raise InputError(f"--snr-scale={text!r} must be LOW:HIGH in dB with LOW < HIGH, "
+                         "e.g. 0:40")
     return lo, hi
 
 
@@ -79,7 +79,7 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"--host={args.host!r} must be a host name or address")
     if (args.daemon_key is None) != (args.own_key is None):
         raise InputError("--daemon-key and --own-key go together (CURVE needs both)")
-    scale = parse_snr_scale(args.snr_scale_db)
+    scale = parse_snr_scale(args.snr_scale)
     if not _is_loopback(args.host):
         print(f"brimline lookout: warning: serving on {args.host}: the page has no login, "
               "anyone who reaches that address sees the link's status", file=sys.stderr)

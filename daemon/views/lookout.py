@@ -56,7 +56,7 @@ __all__ = ["Lookout", "DEFAULT_HOST", "DEFAULT_PORT", "DEFAULT_SNR_RANGE_DB", "S
 DEFAULT_HOST = "127.0.0.1"
 DEFAULT_PORT = 7350
 #: Fixed SNR scale of the band chart and the waterfall, dB (the page never rescales it).
-DEFAULT_SNR_RANGE_DB = (-5.0, 45.0)
+DEFAULT_SNR_RANGE_DB = (0.0, 40.0)
 #: The page's files, shipped in the package (``lookout_static/``), with their content types.
 STATIC_FILES = {"index.html": "text/html", "lookout.js": "text/javascript",
                 "lookout.css": "text/css"}

@@ -29,7 +29,7 @@
 
   const state = {
     frame: null, points: [], rows: [], marks: [], alarmBook: [], view: null, updates: 0,
-    snrRange: [-5, 45], endpoint: '', lastAt: null, connected: false, drawPending: false
+    snrRange: [0, 40], endpoint: '', lastAt: null, connected: false, drawPending: false
   };
 
   // ---- small drawing kit ------------------------------------------------------------------
@@ -326,7 +326,7 @@
     }
     ctx.textAlign = 'center';
     ctx.textBaseline = 'top';
-    ctx.fillText('SNR dB', cx + cw, top + ph + 5);
+    ctx.fillText('SNR dB', cx + cw, top + ph + 18);  // below the lowest tick's label
   }
 
   function drawMarks(b) {
