@@ -117,7 +117,7 @@ class Lookout:
     context : zmq.asyncio.Context, optional
         Context of the SUB socket (default: a private one, terminated on close).
     clock : callable
-        Monotonic seconds, for the rate-limited drop warnings.
+        Monotonic seconds, for the rate-limited drop warnings and drop counts sent to pages.
 
     Raises
     ------
@@ -148,6 +148,8 @@ class Lookout:
         self._timeline = Timeline(points=history_points, rows=history_rows)
         self._own_ctx = context is None
         self._ctx = context
+        self._clock = clock
+        self._view_sent_at: float | None = None
         self.drops = DropCounter(log, clock=clock)
         self.counters: collections.Counter[str] = collections.Counter()
         self._static = _read_static()
@@ -303,7 +305,11 @@ class Lookout:
             frame = page_frame(record)
         except ProtocolError as exc:
             self.drops.drop("status", exc.reason, str(exc))
-            self._broadcast({"kind": "view", "view": self.status_counts()})
+            now = self._clock()
+            if self._view_sent_at is None or now - self._view_sent_at >= 1.0:
+                # the pages learn of drops at most once a second (a flood costs no more)
+                self._view_sent_at = now
+                self._broadcast({"kind": "view", "view": self.status_counts()})
             return None
         seq = frame.get("status_seq")
         if seq is not None and self._last_seq is not None and seq > self._last_seq + 1:
