@@ -32,7 +32,10 @@ LAYER_OF = {
     "brimline.drivers.sinks": "sinks",
     "brimline.daemon.runtime": "runtime",
     "brimline.daemon.views": "views",
+    "brimline.daemon.views.lookout": "views",  # the browser view's server (aiohttp)
+    "brimline.daemon.views.lookout_data": "views",  # its pure page data
     "brimline.daemon.commands": "commands",
+    "brimline.daemon.commands.lookout": "commands",
     "brimline.drivers": "ground",  # the package docstring only
     "brimline.daemon.__main__": "commands",
 }

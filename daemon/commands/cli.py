@@ -33,6 +33,7 @@ _COMMANDS = {
     "run": "run the daemon: estimates in, maps and status out",
     "tx": "transmitter side: follow the daemon's maps and send frames (radio, SigMF, ZeroMQ)",
     "watch": "live terminal view of a running daemon's status stream",
+    "lookout": "live view of a running daemon's status stream in a web browser (on loopback)",
     "keys": "create CURVE key pairs for encrypted map and status sockets",
     "replay": "replay a recording through the decision path offline (summary, what-if, exports)",
     "report": "pictures of a replayed recording: SNR, bits, rate and margin (PNG, PDF, HTML)",

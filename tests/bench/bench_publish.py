@@ -43,7 +43,7 @@ LINK = {"fft_size": 2048, "used_tones_half": 586}  # 1024 data tones
 
 # The follower process: adopts maps, prints "ready" once synced, then one JSON line of
 # {seq: adoption time} when told to stop on standard input.
-_FOLLOWER = r"""
+FOLLOWER_SCRIPT = r"""
 import json, os, select, sys, time
 if hasattr(os, "sched_setaffinity") and len(os.sched_getaffinity(0)) > 1:
     os.sched_setaffinity(0, {max(os.sched_getaffinity(0))})  # its own core, as on a real link
@@ -107,7 +107,7 @@ def _measure(n: int) -> dict[str, float]:
             svc._io.maps.publish = timed_send
             eps = svc.endpoints
             proc = subprocess.Popen(
-                [sys.executable, "-c", _FOLLOWER, eps["maps"], eps["snapshots"],
+                [sys.executable, "-c", FOLLOWER_SCRIPT, eps["maps"], eps["snapshots"],
                  json.dumps(LINK)], stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
             try:
                 deadline = time.monotonic() + 20
