@@ -54,7 +54,7 @@ from brimline.daemon.wire import codec
 __all__ = ["Lookout", "DEFAULT_HOST", "DEFAULT_PORT", "DEFAULT_SNR_RANGE_DB", "STATIC_FILES"]
 
 DEFAULT_HOST = "127.0.0.1"
-DEFAULT_PORT = 7350
+DEFAULT_PORT = 7360
 #: Fixed SNR scale of the band chart and the waterfall, dB (the page never rescales it).
 DEFAULT_SNR_RANGE_DB = (0.0, 40.0)
 #: The page's files, shipped in the package (``lookout_static/``), with their content types.
