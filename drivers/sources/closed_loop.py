@@ -31,7 +31,7 @@ from typing import Callable, Iterable
 import numpy as np
 
 from brimline.daemon.core.controller import LinkController
-from brimline.daemon.records import Allocation, LoadMap, TonePlan
+from brimline.daemon.records import Allocation, FrameOutcome, LoadMap, TonePlan
 from brimline.drivers.link.schedule import MapSchedule
 from brimline.drivers.sources.sim import SimDriver
 
@@ -156,7 +156,12 @@ def run_closed_loop(sim: SimDriver, n_frames: int, *,
     controller : LinkController, optional
         Adaptive loading: each estimate goes to ``controller.on_estimate(estimate,
         estimate.time_s)`` (a frame without estimate to ``on_tick`` at its time); each map
-        published is in force from its effective frame.
+        published is in force from its effective frame and is acknowledged
+        (``on_ack``) at the frame it came into force, so the controller's lead follows what
+        the transmitter meets. With an outer loop
+        (``controller.outer``), every frame sent with one of its maps is reported first, as
+        the receiver side would: ``on_outcome`` with the frame's payload check (a frame lost
+        altogether counts as errored).
     provider : callable, optional
         Otherwise: ``provider(frame) -> LoadMap`` (an :class:`OracleMaps`, a
         :class:`FixedMaps`); neither gives the default map throughout.
@@ -189,6 +194,14 @@ def run_closed_loop(sim: SimDriver, n_frames: int, *,
             break
         if controller is not None:
             now_s = sim.start_s + sim.frame_time_s(i)
+            if sent_seq[k] >= 0 and (k == 0 or sent_seq[k] != sent_seq[k - 1]):
+                # the transmitter acknowledges a map at the frame it came into force
+                controller.on_ack(int(sent_seq[k]), i)
+            if controller.outer is not None and sent_seq[k] >= 0:
+                # The receiver reports the frame's outcome with its estimate (before it, so
+                # the decision on this estimate sees the offset it moved).
+                controller.on_outcome(FrameOutcome(controller.epoch, int(sent_seq[k]), i,
+                                                   not delivered[k], now_s), now_s)
             step = (controller.on_tick(now_s) if est is None
                     else controller.on_estimate(est, est.time_s))
             for m in step.maps:
