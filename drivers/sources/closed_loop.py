@@ -7,8 +7,12 @@ goodput, frame and bit error rate, maps per minute):
 * **adaptive**: a :class:`~brimline.daemon.core.controller.LinkController` gets each estimate
   with ``now_s`` the estimate's time (a dropped frame is a tick at its time); its maps go into a
   :class:`~brimline.drivers.link.schedule.MapSchedule`, so each map is in force from the effective
-  frame it names (the controller's ``lead_frames`` after the newest frame it had seen). No
-  sockets, no threads, no clock: a seed gives the same run on every machine.
+  frame it names (the controller's lead after the newest frame it had seen). Each map is
+  acknowledged at the frame it came into force, as a follower would, so the controller's lead
+  comes down to what this transmitter meets (one frame); with an outer margin loop, each frame
+  sent with a map is reported with its payload check before the frame's estimate, as the
+  receiver side would. No sockets, no threads, no clock: a seed gives the same run on every
+  machine.
 * **oracle** (:class:`OracleMaps`): the same loader on the simulator's true per-tone SNR of
   the very frame being sent (no estimation noise, no delay): an upper bound for any adaptive
   scheme with that loader and target; :func:`best_oracle` adds the least margin with which it
