@@ -245,12 +245,17 @@ class TestDecisions:
         ds = [(t, cc.decide(tracked(better), t)) for t in np.arange(20.0, 30.0, 0.05)]
         ups = [(t, d) for t, d in ds if d.kind is not DecisionKind.KEEP]
         assert len(ups) == 1 and ups[0][1].reason.startswith("upgrade: +")
-        assert ups[0][0] == pytest.approx(25.0, abs=0.26)   # 5 s after the first check with gain
-        assert "upgrade pending for" in ds[10][1].reason
+        # the wait scales with the evidence: 5 s for min_gain_bits, 5 s * 4 / gain for more
+        gain = int(ups[0][1].reason.split("(+")[1].split()[0])
+        assert gain > 4
+        assert ups[0][0] == pytest.approx(20.0 + 5.0 * 4 / gain, abs=0.26)
+        assert any("upgrade pending for" in d.reason for t, d in ds if t < ups[0][0])
         # a break in the gain restarts the wait
         # (lookahead off: the synthetic 4 dB step back within one call would read as a fall
         # to extrapolate, which is the lookahead's business, not this rule's)
-        cc2 = ChangeControl(ld, up_dwell_s=2.0, upgrade_check_s=0.25, lookahead_s=0.0)
+        # (min_gain_bits at the gain itself: the full up_dwell_s applies)
+        cc2 = ChangeControl(ld, up_dwell_s=2.0, upgrade_check_s=0.25, lookahead_s=0.0,
+                            min_gain_bits=gain)
         cc2.decide(tracked(snr), 0.0)
         seq = [(t, better if not 1.0 <= t < 1.3 else snr) for t in np.arange(0.05, 4.0, 0.05)]
         ups = [t for t, x in seq if cc2.decide(tracked(x), t).kind is not DecisionKind.KEEP]

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from _service_fakes import ReloadEveryTime, ScriptedDriver, loopback_config
 
-from brimline.daemon.core.controller import REJECTED, LinkController
+from brimline.daemon.core.controller import ON_TIME_ACKS, REJECTED, LinkController
 from brimline.daemon.errors import StateError
 from brimline.daemon.records import Estimate, LoadMap
 from brimline.daemon.runtime.assemble import build_core
@@ -205,6 +205,63 @@ class TestSequenceAndFrames:
         e = next(ests)
         resumed = ctl.on_estimate(e, e.time_s)
         assert resumed.maps[0].seq == 7 and not ctl.state_unsaved and resumed.held_back is None
+
+
+class TestLeadFromAcks:
+    """The lead shrinks only on the follower's evidence and grows back at once."""
+
+    def _run(self, ctl, ests, late_by=0):
+        """Feed each estimate; acknowledge each map at its effective frame (+ late_by)."""
+        leads = []
+        for e in ests:
+            for m in ctl.on_estimate(e, e.time_s).maps:
+                leads.append(m.effective_frame - e.frame)
+                assert ctl.on_ack(m.seq, m.effective_frame + late_by)
+        return leads
+
+    def test_without_acks_the_configured_lead_holds(self):
+        ctl = _controller(reload_every_time=True)
+        _feed(ctl, _estimates(ctl, frames=30))
+        assert ctl.lead_in_use == LEAD
+
+    def test_on_time_acks_lower_the_lead_to_one(self):
+        ctl = _controller(reload_every_time=True)
+        leads = self._run(ctl, _estimates(ctl, frames=30))
+        # one frame less after every ON_TIME_ACKS maps in force at their frame, down to 1
+        assert leads[:ON_TIME_ACKS] == [LEAD] * ON_TIME_ACKS
+        assert leads[ON_TIME_ACKS] == LEAD - 1
+        assert leads[-1] == 1 and min(leads) == 1
+        assert ctl.acks_late == 0
+
+    def test_a_late_map_raises_the_lead_at_once_and_slows_the_next_probe(self):
+        ctl = _controller(reload_every_time=True)
+        ests = _estimates(ctl, frames=40, frame0=100)
+        self._run(ctl, ests[:3 * ON_TIME_ACKS])
+        assert ctl.lead_in_use == 1
+        e = ests[3 * ON_TIME_ACKS]
+        m = ctl.on_estimate(e, e.time_s).maps[0]
+        assert ctl.on_ack(m.seq, m.effective_frame + 2)    # two frames late
+        assert ctl.lead_in_use == 3 and ctl.acks_late == 1
+        leads = self._run(ctl, ests[3 * ON_TIME_ACKS + 1:])
+        # the next probe waits twice as many on-time maps
+        assert leads[:2 * ON_TIME_ACKS] == [3] * (2 * ON_TIME_ACKS)
+        assert leads[2 * ON_TIME_ACKS] == 2
+
+    def test_never_above_the_configured_lead_and_unknown_acks_change_nothing(self):
+        ctl = _controller(reload_every_time=True)
+        ests = _estimates(ctl, frames=5)
+        self._run(ctl, ests, late_by=50)
+        assert ctl.lead_in_use == LEAD
+        assert not ctl.on_ack(10_000, 3)
+        assert not ctl.on_ack(-1, 3)
+
+    def test_the_fallback_returns_to_the_configured_lead(self):
+        ctl = _controller(reload_every_time=True)
+        ests = _estimates(ctl, frames=3 * ON_TIME_ACKS)
+        self._run(ctl, ests)
+        assert ctl.lead_in_use == 1
+        step = ctl.on_tick(ests[-1].time_s + STALE_S + 0.1)
+        assert step.kind == "fallback" and ctl.lead_in_use == LEAD
 
 
 class TestRestoreAndDeterminism:

@@ -148,6 +148,16 @@ def test_closed_loop_figures_in_view_line_and_summary():
     assert "goodput" not in _text(render(plain)) + summary_line(plain) + end_summary(plain)
 
 
+def test_outer_loop_in_the_run_summary():
+    """The run summary names the outer loop's state, offset and outcomes; none without it."""
+    outer = {"active": True, "offset_db": 1.25, "fer": 0.1, "window": 500, "target_fer": 0.1,
+             "outcomes": 900, "errored": 88, "repeated": 0, "went_off": 0, "dropped": {}}
+    summary = end_summary(_status(outer=outer))
+    assert ("outer loop      on, offset +1.25 dB, 900 outcomes (88 errored), FER 0.1 over the "
+            "last 500 (target 0.1)") in summary
+    assert "outer loop" not in end_summary(_status())
+
+
 def test_outer_loop_row_shows_offset_and_error_rate():
     """The outer margin loop's fields: offset, measured frame error rate against the target;
     no row without an outer loop."""

@@ -264,8 +264,9 @@ def _check(args: argparse.Namespace, config: Config, warnings: list[str]) -> int
 
 def end_summary(status: dict, timeline: Sequence[Change] = (), *,
                 behind_s: float = 0.0) -> str:
-    """The lines printed when a run ends: frames, rejections, maps by kind, final figures, and
-    the timeline of maps.
+    """The lines printed when a run ends: frames, rejections, maps by kind, final figures (the
+    link's goodput and errors, the outer loop's offset and outcomes, when present), and the
+    timeline of maps.
 
     Parameters
     ----------
@@ -310,6 +311,14 @@ def end_summary(status: dict, timeline: Sequence[Change] = (), *,
             f"frame errors {link.get('frame_errors', 0)} of {link.get('frames', 0)} "
             f"(FER {'-' if fer is None else f'{fer:.3g}'}), "
             f"BER {'-' if ber is None else f'{ber:.3g}'}")
+    outer = status.get("outer")
+    if outer:
+        off, ofer = outer.get("offset_db"), outer.get("fer")
+        lines.append(
+            f"  outer loop      {'on' if outer.get('active') else 'off'}, offset "
+            f"{'-' if off is None else f'{off:+.2f} dB'}, {outer.get('outcomes', 0)} outcomes "
+            f"({outer.get('errored', 0)} errored), FER {'-' if ofer is None else f'{ofer:.3g}'}"
+            f" over the last {outer.get('window', 0)} (target {outer.get('target_fer')})")
     lines += [
         f"  alarms          {', '.join(status.get('alarms', [])) or 'none'}",
     ]

@@ -29,9 +29,13 @@ loading target, whose gap already includes the configured target margin):
    an upgrade is due as well) the map is reloaded.
 4. **Upgrade**: every ``upgrade_check_s`` the loader runs on the effective SNR lowered by
    ``upshift_margin_db``; if even that map carries ``min_gain_bits`` more than the current one,
-   the gain is real. Once it has stayed real for ``up_dwell_s`` without a break (longer than the
-   downgrade dwell) the map is reloaded. The wait restarts at every upgrade, emergency and first
-   map, so those are at least ``up_dwell_s`` apart; bit swaps and downgrade reloads do not
+   the gain is real. Once it has stayed real without a break for its wait the map is reloaded.
+   The wait scales with the evidence: ``up_dwell_s`` (longer than the downgrade dwell) for a
+   gain of ``min_gain_bits``, ``up_dwell_s * min_gain_bits / gain`` for a larger one (the gain
+   of the latest check), so a channel that clearly came back (a fade that ended, an emergency
+   map far below what the channel now carries) is used again within a few checks, while a gain
+   just above the threshold, which estimation noise can make, waits the whole dwell. The wait
+   restarts at every upgrade, emergency and first map; bit swaps and downgrade reloads do not
    restart it, or a fading channel that keeps needing repairs would never be upgraded.
 
 5. **Common mode** (one decision for the whole band): per call, the change of every loaded
@@ -188,7 +192,8 @@ class ChangeControl:
         A tone more than this below the downshift margin counts at once, without persistence,
         dB (inf: never).
     up_dwell_s : float
-        Time an upgrade must stay worth it without a break before it is made, seconds.
+        Time an upgrade of ``min_gain_bits`` must stay worth it without a break before it is
+        made (a gain ``k`` times larger waits ``1 / k`` of it), seconds.
     upgrade_check_s : float
         Interval between upgrade evaluations, seconds.
     max_maps_per_s : float
@@ -523,7 +528,7 @@ class ChangeControl:
                               f"{self.down_persist_s:g} s")
         if not math.isnan(self._gain_since_s):
             return self._hold("keep", f"margins ok ({worst_text}); upgrade pending for "
-                              f"{now_s - self._gain_since_s:.1f} of {self.up_dwell_s:g} s")
+                              f"{now_s - self._gain_since_s:.1f} of {self._up_wait_s():.2g} s")
         return self._hold("keep", f"margins ok ({worst_text})")
 
     def _common_shift(self, eff_db: np.ndarray) -> tuple[float, int]:
@@ -560,7 +565,12 @@ class ChangeControl:
 
     def _upgrade_due(self, now_s: float) -> bool:
         return not math.isnan(self._gain_since_s) and \
-            now_s - self._gain_since_s >= self.up_dwell_s
+            now_s - self._gain_since_s >= self._up_wait_s()
+
+    def _up_wait_s(self) -> float:
+        """The upgrade's wait, scaled by its evidence: ``up_dwell_s`` for a gain of
+        ``min_gain_bits``, shorter in proportion for a larger one."""
+        return self.up_dwell_s * min(1.0, max(self.min_gain_bits, 1) / max(self._last_gain, 1))
 
     def _upgrade_gain(self, eff_db: np.ndarray, cur: Allocation, now_s: float, *,
                       now: bool = False) -> int:

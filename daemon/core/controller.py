@@ -39,6 +39,20 @@ estimate). Each map's ``gap_db`` carries the gap plus the offset
 it was made with (the fallback map carries the plain gap). Outcomes of another epoch, or with
 a frame number that does not increase, are dropped and counted.
 
+Lead measured from acknowledgements
+-----------------------------------
+A map names the frame it takes effect at: the newest frame seen plus the lead. ``lead_frames``
+is the configured lead, the one used while nothing is known about the follower. A follower
+acknowledges each map with the frame at which it came into force (:meth:`on_ack`); a map in
+force later than the frame it named arrived late. The lead in use (:attr:`lead_in_use`) then
+follows the evidence: a late map raises it at once by its lateness (never above
+``lead_frames``) and doubles the run of on-time maps the next probe waits for; that run of maps
+in a row in force at their frame (:data:`ON_TIME_ACKS` at first) lowers it by one (never below
+1). A probe risks one map a frame or two late, which costs nothing but time (frames name the map
+they carry), and a follower that needs a longer lead is probed ever more rarely. Acknowledgements carry no follower name, so with several
+followers the slowest one's late maps hold the lead up. The fallback map (a link gone stale)
+returns the lead to ``lead_frames``: whoever follows next has not been measured.
+
 Sequence numbers and the lease
 ------------------------------
 Every map gets ``next_seq``, which then grows by one, so seqs are strictly increasing. A caller
@@ -69,10 +83,17 @@ from brimline.daemon.records import (
     Tracked,
 )
 
-__all__ = ["Change", "Step", "LinkController", "REJECTED"]
+__all__ = ["Change", "Step", "LinkController", "REJECTED", "ON_TIME_ACKS"]
 
 #: ``Step.kind`` of an estimate that was not used (its reason names the counter).
 REJECTED = "rejected"
+
+#: Maps acknowledged in a row at the frame they named before the lead in use is first lowered
+#: by one frame (see "Lead measured from acknowledgements"); doubled after each late map.
+ON_TIME_ACKS = 3
+_MAX_ON_TIME_ACKS = 1024
+
+_LEADS_KEPT = 64  # maps whose effective frame and lead are kept for their acknowledgement
 
 
 @dataclass(frozen=True)
@@ -166,7 +187,8 @@ class LinkController:
     restored : LoadMap or None
         A map in force from an earlier run (kind ``restored``); it must be for ``plan``.
     lead_frames : int
-        Frames between the newest received frame and the frame a new map applies from.
+        Frames between the newest received frame and the frame a new map applies from, until
+        acknowledgements (:meth:`on_ack`) show a shorter lead is met; never exceeded.
     stale_after_s : float
         Time without an accepted estimate after which the fallback map is sent, s.
     fallback_bits : int
@@ -212,6 +234,12 @@ class LinkController:
         self.epoch = str(epoch)
         self.next_seq = int(next_seq)
         self.lead_frames = int(lead_frames)
+        self.lead_in_use = self.lead_frames  #: the lead new maps get (see :meth:`on_ack`)
+        self.acks_late = 0  #: acknowledged maps that came into force after their frame
+        self._on_time = 0  # maps in a row acknowledged at their frame
+        self._probe_after = ON_TIME_ACKS  # ... that lower the lead by one
+        # seq -> (effective frame, lead it was made with), for the acknowledgements
+        self._leads: collections.OrderedDict[int, tuple[int, int]] = collections.OrderedDict()
         self.stale_after_s = float(stale_after_s)
         self._gap_db = float(gap_db)
         self._reserve = reserve
@@ -360,6 +388,43 @@ class LinkController:
             return False
         return True
 
+    def on_ack(self, seq: int, frame: int) -> bool:
+        """Take a follower's acknowledgement: map ``seq`` came into force at ``frame``.
+
+        Adjusts :attr:`lead_in_use` (see the module docstring): a map in force after the frame
+        it named raises the lead by its lateness, up to ``lead_frames``, and doubles the run of
+        on-time maps (:data:`ON_TIME_ACKS` at first) that lowers it by one, down to 1.
+
+        Parameters
+        ----------
+        seq : int
+            Sequence number of the acknowledged map.
+        frame : int
+            The follower's frame counter at which it came into force.
+
+        Returns
+        -------
+        bool
+            False for a map this controller does not remember (another run's, a fallback
+            map, or one long gone), which changes nothing.
+        """
+        known = self._leads.pop(int(seq), None)
+        if known is None:
+            return False
+        effective, lead = known
+        late = int(frame) - effective
+        if late > 0:
+            self.acks_late += 1
+            self._on_time = 0
+            self.lead_in_use = max(self.lead_in_use, min(self.lead_frames, lead + late))
+            self._probe_after = min(2 * self._probe_after, _MAX_ON_TIME_ACKS)
+            return True
+        self._on_time += 1
+        if self._on_time >= self._probe_after and self.lead_in_use > 1:
+            self.lead_in_use -= 1
+            self._on_time = 0
+        return True
+
     def count_bad_outcome(self) -> None:
         """Count a feedback message the caller could not decode (``outcomes_dropped``,
         reason ``undecodable``)."""
@@ -404,6 +469,8 @@ class LinkController:
 
     def _enter_fallback(self, now_s, maps, changes, held) -> None:
         self._floor_s = max(self._floor_s, now_s)
+        # whoever follows next has not been measured
+        self.lead_in_use, self._on_time, self._probe_after = self.lead_frames, 0, ON_TIME_ACKS
         self.change.force(self._fallback, DecisionKind.FALLBACK, self._fallback_reason, now_s)
         self.estimator.reset("stale")
         self.fallback_active = True
@@ -425,13 +492,17 @@ class LinkController:
         self.state_unsaved = False
         # The record converts and freezes the loader's arrays once.
         m = LoadMap(epoch=self.epoch, seq=self.next_seq,
-                    effective_frame=self.last_frame + self.lead_frames, created_s=now_s,
+                    effective_frame=self.last_frame + self.lead_in_use, created_s=now_s,
                     plan_id=self._plan_id, tone_index=self.plan.data_tones, bits=alloc.bits,
                     power_lin=alloc.power, total_bits=alloc.total_bits,
                     margin_db=alloc.margin_db, gap_db=self._gap_db + (
                         0.0 if fallback else self._offset_db), reason=reason,
                     fallback=fallback)
         self.next_seq += 1
+        if not fallback:
+            self._leads[m.seq] = (m.effective_frame, self.lead_in_use)
+            while len(self._leads) > _LEADS_KEPT:
+                self._leads.popitem(last=False)
         if self.fallback_active and not fallback:
             self.fallback_active = False
         before = None if self.current_map is None else self.current_map.total_bits

@@ -942,7 +942,8 @@ class ServiceSection(Section):
     """``service:`` how the daemon loop runs (brimline.daemon.runtime.service)."""
 
     lead_frames: int = Field(
-        4, description="a new map takes effect this many frames after the last frame seen")
+        4, description="a new map takes effect this many frames after the last frame seen; "
+        "the most, once the follower's acknowledgements show a shorter lead is met")
     clock: Literal["auto", "source", "monotonic"] = Field(
         "auto", description="time fed to estimator and change control: source = the estimates' "
         "time_s, monotonic = the daemon's clock; auto = monotonic for radio, source otherwise")

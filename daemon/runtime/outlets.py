@@ -124,8 +124,9 @@ class Outlets:
 
     def handle(self, sock, controller, now_s: float, wall_s: float) -> None:
         """Serve a readable socket: snapshot requests, acknowledgements (summed in
-        :attr:`acks`) or frame outcomes (given to ``controller`` at ``now_s``; undecodable
-        ones are counted there too, so status ``outer.dropped`` shows them)."""
+        :attr:`acks`, and given to ``controller.on_ack``, which measures the lead from them)
+        or frame outcomes (given to ``controller`` at ``now_s``; undecodable ones are counted
+        there too, so status ``outer.dropped`` shows them)."""
         if sock is self.maps.snapshot_socket:
             self.maps.handle_snapshot()
         elif sock is self.maps.outcome_socket:
@@ -137,6 +138,7 @@ class Outlets:
         else:
             for ack in self.maps.poll_acks():
                 self._note_ack(ack, wall_s)
+                controller.on_ack(int(ack["seq"]), int(ack["frame"]))
 
     def _note_ack(self, ack: dict, wall_s: float) -> None:
         # Acknowledgements carry no follower name (PUSH/PULL); they are summed as one stream.

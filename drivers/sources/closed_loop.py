@@ -7,8 +7,12 @@ goodput, frame and bit error rate, maps per minute):
 * **adaptive**: a :class:`~brimline.daemon.core.controller.LinkController` gets each estimate
   with ``now_s`` the estimate's time (a dropped frame is a tick at its time); its maps go into a
   :class:`~brimline.drivers.link.schedule.MapSchedule`, so each map is in force from the effective
-  frame it names (the controller's ``lead_frames`` after the newest frame it had seen). No
-  sockets, no threads, no clock: a seed gives the same run on every machine.
+  frame it names (the controller's lead after the newest frame it had seen). Each map is
+  acknowledged at the frame it came into force, as a follower would, so the controller's lead
+  comes down to what this transmitter meets (one frame); with an outer margin loop, each frame
+  sent with a map is reported with its payload check before the frame's estimate, as the
+  receiver side would. No sockets, no threads, no clock: a seed gives the same run on every
+  machine.
 * **oracle** (:class:`OracleMaps`): the same loader on the simulator's true per-tone SNR of
   the very frame being sent (no estimation noise, no delay): an upper bound for any adaptive
   scheme with that loader and target; :func:`best_oracle` adds the least margin with which it
@@ -31,7 +35,7 @@ from typing import Callable, Iterable
 import numpy as np
 
 from brimline.daemon.core.controller import LinkController
-from brimline.daemon.records import Allocation, LoadMap, TonePlan
+from brimline.daemon.records import Allocation, FrameOutcome, LoadMap, TonePlan
 from brimline.drivers.link.schedule import MapSchedule
 from brimline.drivers.sources.sim import SimDriver
 
@@ -156,7 +160,12 @@ def run_closed_loop(sim: SimDriver, n_frames: int, *,
     controller : LinkController, optional
         Adaptive loading: each estimate goes to ``controller.on_estimate(estimate,
         estimate.time_s)`` (a frame without estimate to ``on_tick`` at its time); each map
-        published is in force from its effective frame.
+        published is in force from its effective frame and is acknowledged
+        (``on_ack``) at the frame it came into force, so the controller's lead follows what
+        the transmitter meets. With an outer loop
+        (``controller.outer``), every frame sent with one of its maps is reported first, as
+        the receiver side would: ``on_outcome`` with the frame's payload check (a frame lost
+        altogether counts as errored).
     provider : callable, optional
         Otherwise: ``provider(frame) -> LoadMap`` (an :class:`OracleMaps`, a
         :class:`FixedMaps`); neither gives the default map throughout.
@@ -189,6 +198,14 @@ def run_closed_loop(sim: SimDriver, n_frames: int, *,
             break
         if controller is not None:
             now_s = sim.start_s + sim.frame_time_s(i)
+            if sent_seq[k] >= 0 and (k == 0 or sent_seq[k] != sent_seq[k - 1]):
+                # the transmitter acknowledges a map at the frame it came into force
+                controller.on_ack(int(sent_seq[k]), i)
+            if controller.outer is not None and sent_seq[k] >= 0:
+                # The receiver reports the frame's outcome with its estimate (before it, so
+                # the decision on this estimate sees the offset it moved).
+                controller.on_outcome(FrameOutcome(controller.epoch, int(sent_seq[k]), i,
+                                                   not delivered[k], now_s), now_s)
             step = (controller.on_tick(now_s) if est is None
                     else controller.on_estimate(est, est.time_s))
             for m in step.maps:
