@@ -158,13 +158,19 @@ class TestTheStory:
 
     def test_the_beacon_is_a_reload_that_names_the_limit(self, demo):
         sim = demo["config"].driver.sim
-        m = _first_from(_events(demo, "map"), sim.interferer_start_s, within_s=0.5)
-        assert m["kind"] == "reload" and m["cause"] in SWAP_LIMITS
-        assert "bit swap" in m["reason"] and m["bits_after"] < m["bits_before"]
-        assert abs(_worst_tone(m["reason"]) - sim.interferer_tone) < 15
+        start = _first_from(_events(demo, "map"), sim.interferer_start_s, within_s=0.5)
+        # the beacon's maps: those of its first half second (its skirts can come a map
+        # before the tones under it, which the estimator confirms a few frames later)
+        burst = [m for m in _events(demo, "map")
+                 if start["link_time_s"] <= m["link_time_s"] < sim.interferer_start_s + 0.5]
+        for m in burst:
+            assert m["kind"] == "reload" and m["cause"] in SWAP_LIMITS, m
+            assert "bit swap" in m["reason"]
+        assert burst[-1]["bits_after"] < start["bits_before"]
+        assert any(abs(_worst_tone(m["reason"]) - sim.interferer_tone) < 15 for m in burst)
         # the tones around the beacon are emptied; what goes on the README is checked here
-        before, after = (next(x for x in demo["maps"] if x.seq == s)
-                         for s in (m["seq"] - 1, m["seq"]))
+        before = next(x for x in demo["maps"] if x.seq == start["seq"] - 1)
+        after = next(x for x in demo["maps"] if x.seq == burst[-1]["seq"])
         emptied = before.tone_index[(before.bits > 0) & (after.bits == 0)]
         assert emptied.size >= 10
         assert np.all(np.abs(emptied - sim.interferer_tone) < 15)
