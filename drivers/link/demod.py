@@ -248,9 +248,11 @@ class HeaderDemod:
         symbols differ was tried and dropped: in deep fades it erased good copies.)
         """
         t = self.train_symbols
-        soft = (head[t] * np.conj(h_train)).real
-        soft *= self._scramble
-        np.clip(soft, -1.5 * level, 1.5 * level, out=soft)
+        soft = (head[t] * np.conj(h_train)).real * self._scramble  # contiguous from here
+        bound = 1.5 * level
+        np.minimum(soft, bound, out=soft)  # a clip to [-bound, bound] without np.clip's checks
+        np.negative(bound, out=bound)
+        np.maximum(soft, bound, out=soft)
         soft[hit] = 0.0
         reps = self._reps * HEADER_BITS
         return soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)

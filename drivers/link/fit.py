@@ -98,7 +98,8 @@ class ChannelFit:
         # small (the SNR reads high): such tones keep the known-symbol estimate instead.
         # A tone whose decision-directed SNR reads 3 dB above the need is reliable: the
         # upward bias of unreliable decisions stays below that (a cheap pre-test).
-        if np.any(squared_magnitude(h) < (2.0 * reliable_snr) * noise_var):
+        need = (2.0 * reliable_snr) * noise_var
+        if (squared_magnitude(h) < need).any():
             h_known, noise_known = self.known_rows(rows, x, known, hit)
             weak = squared_magnitude(h_known) < reliable_snr * noise_known
             if weak.any():
@@ -216,10 +217,11 @@ def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, line
         det = np.maximum(a * c - b * b, 1e-30)
         inv_det = 1.0 / det
         coef = np.empty_like(uv)  # (h0, slope) per tone
+        b_inv_det = b * inv_det
         np.multiply(c * inv_det, u, out=coef[0])
-        coef[0] -= (b * inv_det) * v
+        coef[0] -= b_inv_det * v
         np.multiply(a * inv_det, v, out=coef[1])
-        coef[1] -= (b * inv_det) * u
+        coef[1] -= b_inv_det * u
         h0, slope = coef[0], coef[1]
         # Channel per row in one product: [1, o] (rows x 2) times [h0; slope] (2 x tones).
         h_rows = as_complex(design[:2].T @ as_pairs(coef))
@@ -228,7 +230,8 @@ def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, line
         np.subtract(rows, err, out=err)
     ep = as_pairs(err)
     ep *= ep
-    residual = pair_sum(np.ones(nrow, np.float32) @ ep)
+    # The design's first row is the ones (same values, same BLAS call, no new array).
+    residual = pair_sum((design[0] if linear else ones) @ ep)
     if linear and leave_one_out is not None:
         k = leave_one_out
         w = np.multiply.outer(o[k:] * o[k:], a * inv_det)
