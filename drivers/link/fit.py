@@ -216,16 +216,24 @@ def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, line
         u, v = uv[0], uv[1]
         det = np.maximum(a * c - b * b, 1e-30)
         inv_det = 1.0 / det
+        # The real factors c/det, b/det, a/det and b/a, cast once to the complex type that
+        # multiplying them with complex values casts them to (a mixed-type multiply buffers).
+        factors = np.empty((4, a.size), np.float32)
+        np.multiply(c, inv_det, out=factors[0])
+        np.multiply(b, inv_det, out=factors[1])
+        np.multiply(a, inv_det, out=factors[2])
+        np.divide(b, a, out=factors[3])
+        factors = factors.astype(np.complex64)
         coef = np.empty_like(uv)  # (h0, slope) per tone
-        b_inv_det = b * inv_det
-        np.multiply(c * inv_det, u, out=coef[0])
-        coef[0] -= b_inv_det * v
-        np.multiply(a * inv_det, v, out=coef[1])
-        coef[1] -= b_inv_det * u
+        np.multiply(factors[0], u, out=coef[0])
+        coef[0] -= factors[1] * v
+        np.multiply(factors[2], v, out=coef[1])
+        coef[1] -= factors[1] * u
         h0, slope = coef[0], coef[1]
         # Channel per row in one product: [1, o] (rows x 2) times [h0; slope] (2 x tones).
         h_rows = as_complex(design[:2].T @ as_pairs(coef))
-        h = h0 + slope * (b / a)
+        h = slope * factors[3]
+        h += h0
         err = h_rows * x
         np.subtract(rows, err, out=err)
     ep = as_pairs(err)

@@ -196,7 +196,7 @@ class Receiver:
         self.header = HeaderDemod(fmt)
         self.maps = MapTableCache(plan.data_tones.size, default_bits)
         train = fmt.train.astype(np.float32)
-        self._train_mean = train / plan.train_symbols
+        self._train_mean = (train / plan.train_symbols).astype(np.complex64)
         self._train_data = train[fmt.data_pos]
         # Work arrays reused by every frame (none of them reaches an RxFrame): the rows of the
         # fit and their known or decided values.

@@ -61,7 +61,8 @@ class SyncPoint:
     @property
     def fraction_tones(self) -> float:
         """Fractional frequency offset ``angle(P) / pi`` in tone spacings."""
-        return float(np.angle(self.correlation)) / np.pi
+        z = self.correlation
+        return float(np.arctan2(z.imag, z.real)) / np.pi  # np.angle without its wrapper
 
 
 class FrameSync:
@@ -95,15 +96,18 @@ class FrameSync:
         # Derotation ramp exp(-2 pi i eps k / n) as an outer product of two short ramps (k = p
         # n2 + q), so each frame evaluates sqrt(n)-ish exponentials rather than n.
         self._ramp_split = 1 << (int(math.log2(n)) // 2)
-        self._ramp_coarse = -2.0 * np.pi * np.arange(n // self._ramp_split) * self._ramp_split / n
-        self._ramp_fine = -2.0 * np.pi * np.arange(self._ramp_split) / n
+        # Stored as complex128: a complex scalar times them casts them so on every frame.
+        self._ramp_coarse = (-2.0 * np.pi * np.arange(n // self._ramp_split) * self._ramp_split
+                             / n).astype(np.complex128)
+        self._ramp_fine = (-2.0 * np.pi * np.arange(self._ramp_split) / n).astype(np.complex128)
         g = math.ceil(plan.cfo_range_tones / 2)
         self._shifts = 2 * np.arange(-g, g + 1)
         used_even = fmt.used[fmt.even_pos]
         self._int_bins = (used_even[None, :] + self._shifts[:, None]) % n
         self._diff_conj = np.conj(fmt.differential).astype(np.complex64)
-        self._pilots = fmt.pilots.astype(np.float32)
-        self._sym_index = np.arange(plan.n_symbols)
+        # Per-frame operands in the type the arithmetic runs in (the same casts, made once).
+        self._pilots = fmt.pilots.astype(np.float32).astype(np.complex64)
+        self._sym_index = np.arange(plan.n_symbols).astype(np.complex128)
         index = np.arange(plan.data_symbols, dtype=np.float64)
         self._data_offsets = index - index.mean()
         self._row_offsets = (np.arange(1 + plan.train_symbols + plan.data_symbols)
@@ -258,7 +262,7 @@ class FrameSync:
         sync/training differential with its known pattern, from :meth:`spectra`."""
         cross = np.conj(spectra[0]) * spectra[1]
         score = np.abs(cross[self._int_bins] @ self._diff_conj)
-        return int(self._shifts[int(np.argmax(score))])
+        return int(self._shifts[int(score.argmax())])
 
     def fine_offset_tones(self, theta: float, eps_frac: float, shift: int) -> float:
         """Offset (tone spacings) left after ``eps_frac`` and ``shift``, from the measured
@@ -308,9 +312,9 @@ class FrameSync:
         turns[0] = common[0]
         np.multiply(common[1:], np.conj(common[:-1]), out=turns[1:])
         cpe = np.arctan2(turns.imag, turns.real).cumsum()
-        slope = np.dot(self._data_offsets, cpe) / self._data_index_spread
+        slope = np.dot(self._data_offsets, cpe.astype(np.float64)) / self._data_index_spread
         line = self._row_offsets * slope
-        line += cpe.mean()
+        line += float(cpe.sum() / cpe.size)  # cpe.mean() (float32) without its wrapper
         return phase[1:] * np.exp(-1j * line).astype(np.complex64)
 
 
