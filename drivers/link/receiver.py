@@ -198,11 +198,9 @@ class Receiver:
         train = fmt.train.astype(np.float32)
         self._train_mean = (train / plan.train_symbols).astype(np.complex64)
         self._train_data = train[fmt.data_pos]
-        # Work arrays reused by every frame (none of them reaches an RxFrame): the rows of the
-        # fit and their known or decided values.
-        n_rows = plan.n_symbols - 1
-        self._rows = np.empty((n_rows, fmt.data_pos.size), np.complex64)
-        self._x = np.empty_like(self._rows)
+        # Work array reused by every frame (it never reaches an RxFrame): the known or decided
+        # values of the fit's rows.
+        self._x = np.empty((plan.n_symbols - 1, fmt.data_pos.size), np.complex64)
         self._x[:plan.train_symbols] = self._train_data
         self._bins: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
@@ -265,7 +263,9 @@ class Receiver:
         shift = self.sync.integer_shift(spectra)
         bins, pilot_bins, data_bins = self._bins_for(shift)
         # Per-symbol phase step from the identical training symbols (all offsets together).
-        head = spectra[1:t + 2].take(bins, axis=1)  # training symbols and header
+        # Gathers in mode "clip": the bins are always in range, and the default mode checks
+        # every index (and buffers an ``out``).
+        head = spectra[1:t + 2].take(bins, axis=1, mode="clip")  # training symbols, header
         if t == 2:
             step = np.conj(head[0])
             step *= head[1]
@@ -295,11 +295,11 @@ class Receiver:
         soft_bits = self.header.soft(head, h_train, hit, level * (1.0 / n))
         header_ok, seq, counter = decode_header((soft_bits < 0).astype(np.uint8))
         # Data symbols: remove the residual phase drift measured on the pilots.
-        y_pilot = spectra[t + 2:].take(pilot_bins, axis=1)
+        y_pilot = spectra[t + 2:].take(pilot_bins, axis=1, mode="clip")
         row_phase = self.sync.row_phase(y_pilot, h_train[fmt.pilot_pos], phase)
         # Least squares over every symbol with known tone values: training, header, data.
         dp = fmt.data_pos
-        rows = spectra[1:].take(data_bins, axis=1, out=self._rows)  # (rows, data tones)
+        rows = spectra[1:].take(data_bins, axis=1, mode="clip")  # (rows, data tones)
         rows *= row_phase[:, None]
         x = self._x  # training rows preset; data rows are filled by the decisions
         if header_ok:  # the header row is known once its CRC passes

@@ -261,7 +261,7 @@ class FrameSync:
         """Integer offset (an even number of tones) maximizing the correlation of the
         sync/training differential with its known pattern, from :meth:`spectra`."""
         cross = np.conj(spectra[0]) * spectra[1]
-        score = np.abs(cross[self._int_bins] @ self._diff_conj)
+        score = np.abs(cross.take(self._int_bins, mode="clip") @ self._diff_conj)
         return int(self._shifts[int(score.argmax())])
 
     def fine_offset_tones(self, theta: float, eps_frac: float, shift: int) -> float:
