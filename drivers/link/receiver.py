@@ -24,6 +24,13 @@ comes back as an RxFrame with ``reason`` set. After a failed CRC the estimate co
 training symbols alone with the noise pooled over neighbouring tones (one tone's training has a
 single degree of freedom, and ``1/S`` then has no finite mean).
 
+Speed: a frame costs a few hundred numpy calls, and their fixed cost, not the FFT, is most of
+its time. Hence work arrays built once per plan, operands pre-cast to the type the arithmetic
+runs in (a mixed-type ufunc casts through a buffer on every call), gathers with ``take`` in
+mode "clip", and reductions called directly rather than through numpy's Python wrappers.
+``tests/test_receiver_digest.py`` pins the outputs bit for bit, so such changes must leave every
+floating-point operation and its order as it was.
+
 Known limits: the estimate is a fit over one frame, so when ``f_D * T_frame`` passes about 0.2
 the channel ages within the frame and the SNR reads lower (it is the SNR this receiver delivers);
 a delay spread that nearly fills the cyclic prefix (ETU with the default 32-sample prefix) caps
@@ -182,6 +189,11 @@ class Receiver:
         Header bit combining.
     maps : MapTableCache
         Demodulation tables of the default and recent maps.
+
+    Notes
+    -----
+    A receiver keeps work arrays that every frame reuses (the spectra, the fit's row values),
+    so one receiver serves one thread at a time; the arrays of an :class:`RxFrame` are its own.
     """
 
     def __init__(self, plan: TonePlan, *, default_bits: int = 2, sync_threshold: float = 0.3,
@@ -296,7 +308,8 @@ class Receiver:
         header_ok, seq, counter = decode_header((soft_bits < 0).astype(np.uint8))
         # Data symbols: remove the residual phase drift measured on the pilots.
         y_pilot = spectra[t + 2:].take(pilot_bins, axis=1, mode="clip")
-        row_phase = self.sync.row_phase(y_pilot, h_train[fmt.pilot_pos], phase)
+        row_phase = self.sync.row_phase(y_pilot, h_train.take(fmt.pilot_pos, mode="clip"),
+                                        phase)
         # Least squares over every symbol with known tone values: training, header, data.
         dp = fmt.data_pos
         rows = spectra[1:].take(data_bins, axis=1, mode="clip")  # (rows, data tones)
@@ -312,7 +325,8 @@ class Receiver:
         if tables is not None:
             # Decide with the training channel; fit level and slope with those decisions (the
             # estimate); decide again with the leave-one-out channel (the demodulated data).
-            decide(rows[t + 1:], h_train[dp], tables, points=x[t + 1:])  # h: one per tone
+            h_data = h_train.take(dp, mode="clip")  # one channel per tone
+            decide(rows[t + 1:], h_data, tables, points=x[t + 1:])
             h, h_rows, noise_var = self.fit.data_aided(rows, x, known, tables.reliable_snr,
                                                        hit[dp], leave_one_out=demodulate)
             used, decided = known + plan.data_symbols, None
