@@ -97,6 +97,8 @@ class MapTables:
         self.top = top.astype(np.float32)
         self.zero = np.zeros_like(self.top)
         self.half_inv_gain_tone = (0.5 * inv_gain).astype(np.float32)
+        #: The same as complex64, the type a division by the channel casts it to.
+        self.half_inv_gain_c64 = self.half_inv_gain_tone.astype(np.complex64)
         self.half_top = (0.5 * top).astype(np.float32)
         self.two_gain = np.repeat(2.0 * gain, 2).reshape(-1, 2).astype(np.float32)
         self.gain_top = (gain[:, None] * top).astype(np.float32)
@@ -180,7 +182,7 @@ def decide(y: np.ndarray, h: np.ndarray, tables: MapTables,
     valid index.
     """
     if h.ndim == 1:
-        z = y * (tables.half_inv_gain_tone / h)
+        z = y * (tables.half_inv_gain_c64 / h)
     else:  # y conj(h) / |h|^2: a complex division is several times slower
         z = np.conj(h)
         hp = as_pairs(h)
@@ -248,9 +250,11 @@ class HeaderDemod:
         symbols differ was tried and dropped: in deep fades it erased good copies.)
         """
         t = self.train_symbols
-        soft = (head[t] * np.conj(h_train)).real
-        soft *= self._scramble
-        np.clip(soft, -1.5 * level, 1.5 * level, out=soft)
+        soft = (head[t] * np.conj(h_train)).real * self._scramble  # contiguous from here
+        bound = 1.5 * level
+        np.minimum(soft, bound, out=soft)  # a clip to [-bound, bound] without np.clip's checks
+        np.negative(bound, out=bound)
+        np.maximum(soft, bound, out=soft)
         soft[hit] = 0.0
         reps = self._reps * HEADER_BITS
         return soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)

@@ -98,7 +98,8 @@ class ChannelFit:
         # small (the SNR reads high): such tones keep the known-symbol estimate instead.
         # A tone whose decision-directed SNR reads 3 dB above the need is reliable: the
         # upward bias of unreliable decisions stays below that (a cheap pre-test).
-        if np.any(squared_magnitude(h) < (2.0 * reliable_snr) * noise_var):
+        need = (2.0 * reliable_snr) * noise_var
+        if (squared_magnitude(h) < need).any():
             h_known, noise_known = self.known_rows(rows, x, known, hit)
             weak = squared_magnitude(h_known) < reliable_snr * noise_known
             if weak.any():
@@ -215,20 +216,30 @@ def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, line
         u, v = uv[0], uv[1]
         det = np.maximum(a * c - b * b, 1e-30)
         inv_det = 1.0 / det
+        # The real factors c/det, b/det, a/det and b/a, cast once to the complex type that
+        # multiplying them with complex values casts them to (a mixed-type multiply buffers).
+        factors = np.empty((4, a.size), np.float32)
+        np.multiply(c, inv_det, out=factors[0])
+        np.multiply(b, inv_det, out=factors[1])
+        np.multiply(a, inv_det, out=factors[2])
+        np.divide(b, a, out=factors[3])
+        factors = factors.astype(np.complex64)
         coef = np.empty_like(uv)  # (h0, slope) per tone
-        np.multiply(c * inv_det, u, out=coef[0])
-        coef[0] -= (b * inv_det) * v
-        np.multiply(a * inv_det, v, out=coef[1])
-        coef[1] -= (b * inv_det) * u
+        np.multiply(factors[0], u, out=coef[0])
+        coef[0] -= factors[1] * v
+        np.multiply(factors[2], v, out=coef[1])
+        coef[1] -= factors[1] * u
         h0, slope = coef[0], coef[1]
         # Channel per row in one product: [1, o] (rows x 2) times [h0; slope] (2 x tones).
         h_rows = as_complex(design[:2].T @ as_pairs(coef))
-        h = h0 + slope * (b / a)
+        h = slope * factors[3]
+        h += h0
         err = h_rows * x
         np.subtract(rows, err, out=err)
     ep = as_pairs(err)
     ep *= ep
-    residual = pair_sum(np.ones(nrow, np.float32) @ ep)
+    # The design's first row is the ones (same values, same BLAS call, no new array).
+    residual = pair_sum((design[0] if linear else ones) @ ep)
     if linear and leave_one_out is not None:
         k = leave_one_out
         w = np.multiply.outer(o[k:] * o[k:], a * inv_det)

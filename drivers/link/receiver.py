@@ -24,6 +24,13 @@ comes back as an RxFrame with ``reason`` set. After a failed CRC the estimate co
 training symbols alone with the noise pooled over neighbouring tones (one tone's training has a
 single degree of freedom, and ``1/S`` then has no finite mean).
 
+Speed: a frame costs a few hundred numpy calls, and their fixed cost, not the FFT, is most of
+its time. Hence work arrays built once per plan, operands pre-cast to the type the arithmetic
+runs in (a mixed-type ufunc casts through a buffer on every call), gathers with ``take`` in
+mode "clip", and reductions called directly rather than through numpy's Python wrappers.
+``tests/test_receiver_digest.py`` pins the outputs bit for bit, so such changes must leave every
+floating-point operation and its order as it was.
+
 Known limits: the estimate is a fit over one frame, so when ``f_D * T_frame`` passes about 0.2
 the channel ages within the frame and the SNR reads lower (it is the SNR this receiver delivers);
 a delay spread that nearly fills the cyclic prefix (ETU with the default 32-sample prefix) caps
@@ -182,6 +189,11 @@ class Receiver:
         Header bit combining.
     maps : MapTableCache
         Demodulation tables of the default and recent maps.
+
+    Notes
+    -----
+    A receiver keeps work arrays that every frame reuses (the spectra, the fit's row values),
+    so one receiver serves one thread at a time; the arrays of an :class:`RxFrame` are its own.
     """
 
     def __init__(self, plan: TonePlan, *, default_bits: int = 2, sync_threshold: float = 0.3,
@@ -196,8 +208,22 @@ class Receiver:
         self.header = HeaderDemod(fmt)
         self.maps = MapTableCache(plan.data_tones.size, default_bits)
         train = fmt.train.astype(np.float32)
-        self._train_mean = train / plan.train_symbols
+        self._train_mean = (train / plan.train_symbols).astype(np.complex64)
         self._train_data = train[fmt.data_pos]
+        # Work array reused by every frame (it never reaches an RxFrame): the known or decided
+        # values of the fit's rows.
+        self._x = np.empty((plan.n_symbols - 1, fmt.data_pos.size), np.complex64)
+        self._x[:plan.train_symbols] = self._train_data
+        self._bins: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+
+    def _bins_for(self, shift: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """FFT bins of the used, pilot and data tones under an integer offset (cached)."""
+        found = self._bins.get(shift)
+        if found is None:
+            fmt = self.format
+            bins = (fmt.used_bins + shift) % self.plan.fft_size
+            found = self._bins[shift] = (bins, bins[fmt.pilot_pos], bins[fmt.data_pos])
+        return found
 
     @property
     def sync_threshold(self) -> float:
@@ -247,18 +273,24 @@ class Receiver:
         n, t = plan.fft_size, plan.train_symbols
         spectra = self.sync.spectra(r, d0, eps_frac)
         shift = self.sync.integer_shift(spectra)
-        bins = (fmt.used_bins + shift) % n
+        bins, pilot_bins, data_bins = self._bins_for(shift)
         # Per-symbol phase step from the identical training symbols (all offsets together).
-        head = np.take(spectra[1:t + 2], bins, axis=1)  # training symbols and header
-        steps = np.conj(head[:t - 1]) * head[1:t]
-        step = steps[0] if t == 2 else steps.sum(axis=0)
+        # Gathers in mode "clip": the bins are always in range, and the default mode checks
+        # every index (and buffers an ``out``).
+        head = spectra[1:t + 2].take(bins, axis=1, mode="clip")  # training symbols, header
+        if t == 2:
+            step = np.conj(head[0])
+            step *= head[1]
+        else:
+            step = (np.conj(head[:t - 1]) * head[1:t]).sum(axis=0)
         # Tones a narrowband interferer dominates take no part: its own phase step would bias
         # the offset (and, through the time-domain correction, cost every tone some ICI).
         mag = np.abs(step)  # |H|^2 n per tone
         level = local_level(mag)
         hit = mag > 2.0 * level  # 3 dB above the local level
         step[hit] = 0.0
-        theta = float(np.angle(np.sum(step)))
+        total = step.sum()
+        theta = float(np.arctan2(total.imag, total.real))  # np.angle without its wrapper
         eps_fine = self.sync.fine_offset_tones(theta, eps_frac, shift)
         if refine and abs(eps_fine) > _REFINE_TONES:
             # The sync offset was off (an interferer's share of the sync correlation biases it):
@@ -275,14 +307,14 @@ class Receiver:
         soft_bits = self.header.soft(head, h_train, hit, level * (1.0 / n))
         header_ok, seq, counter = decode_header((soft_bits < 0).astype(np.uint8))
         # Data symbols: remove the residual phase drift measured on the pilots.
-        y_pilot = np.take(spectra[t + 2:], bins[fmt.pilot_pos], axis=1)
-        row_phase = self.sync.row_phase(y_pilot, h_train[fmt.pilot_pos], phase)
+        y_pilot = spectra[t + 2:].take(pilot_bins, axis=1, mode="clip")
+        row_phase = self.sync.row_phase(y_pilot, h_train.take(fmt.pilot_pos, mode="clip"),
+                                        phase)
         # Least squares over every symbol with known tone values: training, header, data.
         dp = fmt.data_pos
-        rows = np.take(spectra[1:], bins[dp], axis=1)  # (training + header + data, data tones)
+        rows = spectra[1:].take(data_bins, axis=1, mode="clip")  # (rows, data tones)
         rows *= row_phase[:, None]
-        x = np.empty(rows.shape, np.complex64)  # data rows are filled by the decisions
-        x[:t] = self._train_data
+        x = self._x  # training rows preset; data rows are filled by the decisions
         if header_ok:  # the header row is known once its CRC passes
             x[t] = self.header.known_row(soft_bits)
         else:
@@ -293,7 +325,8 @@ class Receiver:
         if tables is not None:
             # Decide with the training channel; fit level and slope with those decisions (the
             # estimate); decide again with the leave-one-out channel (the demodulated data).
-            decide(rows[t + 1:], h_train[dp], tables, points=x[t + 1:])  # h: one per tone
+            h_data = h_train.take(dp, mode="clip")  # one channel per tone
+            decide(rows[t + 1:], h_data, tables, points=x[t + 1:])
             h, h_rows, noise_var = self.fit.data_aided(rows, x, known, tables.reliable_snr,
                                                        hit[dp], leave_one_out=demodulate)
             used, decided = known + plan.data_symbols, None
@@ -310,7 +343,10 @@ class Receiver:
             h, noise_var = self.fit.known_constant(rows, x, known)
             used, decided = known, None
         noise_var = np.maximum(noise_var, 1e-30)
-        snr_db = 10.0 * np.log10(np.maximum(squared_magnitude(h) / noise_var, 1e-30))
+        snr_db = squared_magnitude(h) / noise_var
+        np.maximum(snr_db, 1e-30, out=snr_db)
+        np.log10(snr_db, out=snr_db)
+        snr_db *= 10.0
         reason = "" if header_ok else "crc_failed"
         if self.clip_level is not None:
             frame = r[max(d0 - plan.cp_len, 0):end]

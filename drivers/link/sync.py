@@ -61,7 +61,8 @@ class SyncPoint:
     @property
     def fraction_tones(self) -> float:
         """Fractional frequency offset ``angle(P) / pi`` in tone spacings."""
-        return float(np.angle(self.correlation)) / np.pi
+        z = self.correlation
+        return float(np.arctan2(z.imag, z.real)) / np.pi  # np.angle without its wrapper
 
 
 class FrameSync:
@@ -95,20 +96,28 @@ class FrameSync:
         # Derotation ramp exp(-2 pi i eps k / n) as an outer product of two short ramps (k = p
         # n2 + q), so each frame evaluates sqrt(n)-ish exponentials rather than n.
         self._ramp_split = 1 << (int(math.log2(n)) // 2)
-        self._ramp_coarse = -2.0 * np.pi * np.arange(n // self._ramp_split) * self._ramp_split / n
-        self._ramp_fine = -2.0 * np.pi * np.arange(self._ramp_split) / n
+        # Stored as complex128: a complex scalar times them casts them so on every frame.
+        self._ramp_coarse = (-2.0 * np.pi * np.arange(n // self._ramp_split) * self._ramp_split
+                             / n).astype(np.complex128)
+        self._ramp_fine = (-2.0 * np.pi * np.arange(self._ramp_split) / n).astype(np.complex128)
         g = math.ceil(plan.cfo_range_tones / 2)
         self._shifts = 2 * np.arange(-g, g + 1)
         used_even = fmt.used[fmt.even_pos]
         self._int_bins = (used_even[None, :] + self._shifts[:, None]) % n
         self._diff_conj = np.conj(fmt.differential).astype(np.complex64)
-        self._pilots = fmt.pilots.astype(np.float32)
-        self._sym_index = np.arange(plan.n_symbols)
+        # Per-frame operands in the type the arithmetic runs in (the same casts, made once).
+        self._pilots = fmt.pilots.astype(np.float32).astype(np.complex64)
+        self._sym_index = np.arange(plan.n_symbols).astype(np.complex128)
         index = np.arange(plan.data_symbols, dtype=np.float64)
         self._data_offsets = index - index.mean()
         self._row_offsets = (np.arange(1 + plan.train_symbols + plan.data_symbols)
                              - (1 + plan.train_symbols) - index.mean())
         self._data_index_spread = max(float(np.sum(self._data_offsets ** 2)), 1.0)
+        self._turns = np.empty(plan.data_symbols, np.complex64)
+        # The frame's derotated symbols and their spectra, reused by every frame (a fresh
+        # 32 x 1024 complex64 array is above glibc's first mmap threshold: page faults).
+        self._windows = np.empty((plan.n_symbols, n), np.complex64)
+        self._spectra = np.empty_like(self._windows)
 
     # ------------------------------------------------------------------ timing
 
@@ -135,7 +144,7 @@ class FrameSync:
         coarse = self.coarse_metric(r[:head]) if r.size > head + b else None
         if coarse is not None:
             mc, count = coarse
-            above = np.flatnonzero(mc > self.threshold)
+            above = (mc > self.threshold).nonzero()[0]
             if above.size == 0 or above[0] + reach > count:
                 coarse = None
         if coarse is None:
@@ -143,12 +152,12 @@ class FrameSync:
             if coarse is None:
                 return None
             mc, count = coarse
-            above = np.flatnonzero(mc > self.threshold)
+            above = (mc > self.threshold).nonzero()[0]
         if above.size == 0:
             return SyncPoint(-1, float(mc.max(initial=0.0)))
         first = above[0]
         stop = min(first + reach, count)
-        peak = first + int(np.argmax(mc[first:stop]))
+        peak = first + int(mc[first:stop].argmax())
         # Exact metric at every sample around the coarse peak.
         lo = max(0, peak * b - cp - 2 * b)
         hi = min(peak * b + cp + 2 * b, r.size - 2 * half)
@@ -172,12 +181,12 @@ class FrameSync:
         rf[1:] += rf[0]
         rf *= 0.5
         mf = (pf.real ** 2 + pf.imag ** 2) / np.maximum(rf * rf, 1e-30)
-        top = int(np.argmax(mf))
+        top = int(mf.argmax())
         if not mf[top] > self.threshold:  # a coarse false alarm: not confirmed exactly
             return SyncPoint(-1, float(mf[top]))
         low = mf < 0.9 * mf[top]
-        left_edges = np.flatnonzero(low[:top])
-        right_edges = np.flatnonzero(low[top:])
+        left_edges = low[:top].nonzero()[0]
+        right_edges = low[top:].nonzero()[0]
         left = left_edges[-1] + 1 if left_edges.size else 0
         right = top + right_edges[0] - 1 if right_edges.size else width - 1
         d = (left + right) // 2
@@ -229,8 +238,9 @@ class FrameSync:
 
         Returns
         -------
-        ndarray of complex, shape (symbols, fft_size)
-            One batched FFT over the frame's symbols (cyclic prefixes dropped).
+        ndarray of complex64, shape (symbols, fft_size)
+            One batched FFT over the frame's symbols (cyclic prefixes dropped). The array is
+            this object's work array: the next call overwrites it.
         """
         plan = self.plan
         n, s = plan.fft_size, plan.symbol_len
@@ -244,14 +254,15 @@ class FrameSync:
         derotate = np.multiply.outer(
             np.exp(1j * eps_frac * self._ramp_coarse).astype(np.complex64),
             np.exp(1j * eps_frac * self._ramp_fine).astype(np.complex64)).ravel()
-        return np.fft.fft(windows * derotate, axis=1)
+        np.multiply(windows, derotate, out=self._windows)
+        return np.fft.fft(self._windows, axis=1, out=self._spectra)
 
     def integer_shift(self, spectra: np.ndarray) -> int:
         """Integer offset (an even number of tones) maximizing the correlation of the
         sync/training differential with its known pattern, from :meth:`spectra`."""
         cross = np.conj(spectra[0]) * spectra[1]
-        score = np.abs(cross[self._int_bins] @ self._diff_conj)
-        return int(self._shifts[int(np.argmax(score))])
+        score = np.abs(cross.take(self._int_bins, mode="clip") @ self._diff_conj)
+        return int(self._shifts[int(score.argmax())])
 
     def fine_offset_tones(self, theta: float, eps_frac: float, shift: int) -> float:
         """Offset (tone spacings) left after ``eps_frac`` and ``shift``, from the measured
@@ -292,13 +303,19 @@ class FrameSync:
         """
         t = self.plan.train_symbols
         ref = np.conj(h_pilot) * self._pilots
-        common = np.sum(y_pilot * ref, axis=1) * phase[t + 2:]
-        steps = np.angle(common[1:] * np.conj(common[:-1]))  # unwrapped phase differences
-        cpe = np.concatenate(([np.angle(common[0])], steps)).cumsum()
-        k = self._data_offsets
-        slope = np.dot(k, cpe) / self._data_index_spread
-        return phase[1:] * np.exp(-1j * (cpe.mean() + slope * self._row_offsets)).astype(
-            np.complex64)
+        np.multiply(y_pilot, ref, out=ref)
+        common = ref.sum(axis=1)
+        common *= phase[t + 2:]
+        # The first symbol's phase, then the phase differences of neighbours (unwrapped),
+        # all in one arctan2 call; their running sum is the common phase per symbol.
+        turns = self._turns
+        turns[0] = common[0]
+        np.multiply(common[1:], np.conj(common[:-1]), out=turns[1:])
+        cpe = np.arctan2(turns.imag, turns.real).cumsum()
+        slope = np.dot(self._data_offsets, cpe.astype(np.float64)) / self._data_index_spread
+        line = self._row_offsets * slope
+        line += float(cpe.sum() / cpe.size)  # cpe.mean() (float32) without its wrapper
+        return phase[1:] * np.exp(-1j * line).astype(np.complex64)
 
 
 def sliding_sums(a: np.ndarray, width: int) -> np.ndarray:

@@ -21,12 +21,13 @@ compare ``*_vs_ref`` figures between boxes, absolute ones only on one box.
 
 from __future__ import annotations
 
+import statistics
 import time
 from typing import Callable, Sequence
 
 import numpy as np
 
-__all__ = ["Reference", "interleaved", "lower_quartile"]
+__all__ = ["Reference", "interleaved", "lower_quartile", "median"]
 
 
 def lower_quartile(times: Sequence[float]) -> float:
@@ -35,16 +36,22 @@ def lower_quartile(times: Sequence[float]) -> float:
     return ordered[len(ordered) // 4]
 
 
-def interleaved(fns: Sequence[Callable[[], object]], repeats: int) -> list[float]:
-    """Lower-quartile time (s) of each function, called in turn ``repeats`` times, so load
-    changes hit all alike."""
+def median(times: Sequence[float]) -> float:
+    """The median of ``times`` (the mean of the middle two for an even count)."""
+    return statistics.median(times)
+
+
+def interleaved(fns: Sequence[Callable[[], object]], repeats: int, *,
+                statistic: Callable[[Sequence[float]], float] = lower_quartile) -> list[float]:
+    """Time (s) of each function, called in turn ``repeats`` times, so load changes hit all
+    alike; ``statistic`` of each one's samples (the lower quartile unless told)."""
     times: list[list[float]] = [[] for _ in fns]
     for _ in range(repeats):
         for fn, out in zip(fns, times):
             t0 = time.perf_counter()
             fn()
             out.append(time.perf_counter() - t0)
-    return [lower_quartile(t) for t in times]
+    return [statistic(t) for t in times]
 
 
 class Reference:

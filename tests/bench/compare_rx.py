@@ -1,0 +1,104 @@
+"""Receiver speed of a git revision against the working tree, alternating in one process.
+
+Separate benchmark runs on a shared machine differ by 10 % or more, so a speed change of the
+receiver is judged here: the revision's ``drivers/link`` modules are copied into a temporary
+package, both receivers get the workload of ``bench_rx.py``, and the bare FFT, the revision's
+receiver and the working tree's are called in turn ``repeats`` times. It prints the medians,
+each receiver's ratio to the FFT and the ratio of the two receivers, and first checks that both
+give the same estimates and decisions bit for bit (``tests/test_receiver_digest.py`` is the
+wider check). Not a timed test: run it by hand.
+
+Usage::
+
+    python tests/bench/compare_rx.py [REV] [--repeats N] [--rounds K]
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+from bench_rx import PLAN
+
+from brimline.drivers.air.channel import LinkChannel
+from brimline.drivers.link.frame import Transmitter, make_plan
+from brimline.drivers.link.receiver import Receiver
+
+ROOT = Path(__file__).resolve().parents[2]
+PACKAGE = "_rev_link"
+
+
+def load_revision(rev: str, folder: Path):
+    """Import ``rev``'s ``drivers/link`` as the package ``_rev_link``; returns its modules
+    ``(frame, receiver)``."""
+    names = subprocess.run(["git", "ls-tree", "--name-only", f"{rev}:drivers/link"], cwd=ROOT,
+                           check=True, capture_output=True, text=True).stdout.split()
+    target = folder / PACKAGE
+    target.mkdir()
+    for name in names:
+        if name.endswith(".py"):
+            text = subprocess.run(["git", "show", f"{rev}:drivers/link/{name}"], cwd=ROOT,
+                                  check=True, capture_output=True, text=True).stdout
+            (target / name).write_text(text.replace("brimline.drivers.link", PACKAGE))
+    sys.path.insert(0, str(folder))
+    return (importlib.import_module(f"{PACKAGE}.frame"),
+            importlib.import_module(f"{PACKAGE}.receiver"))
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("rev", nargs="?", default="main", help="git revision (default: main)")
+    parser.add_argument("--repeats", type=int, default=300, help="calls of each per round")
+    parser.add_argument("--rounds", type=int, default=3, help="rounds, each printed")
+    args = parser.parse_args(argv)
+    with tempfile.TemporaryDirectory() as tmp:
+        rev_frame, rev_receiver = load_revision(args.rev, Path(tmp))
+        rng = np.random.default_rng(20261201)
+        plan = make_plan(**PLAN)
+        new = Receiver(plan)
+        old = rev_receiver.Receiver(rev_frame.make_plan(**PLAN))  # the revision's own plan type
+        bits = np.full(plan.data_tones.size, 4)
+        lookup = {1: (bits, np.ones(bits.size))}.get
+        channel = LinkChannel(plan, profile="awgn", snr_db=20.0, cfo_hz=4.1e3,
+                              lead_max_samples=plan.cp_len * 4, rng=rng)
+        sent = Transmitter(plan).frame(bits=bits, power_lin=np.ones(bits.size), map_seq=1,
+                                       counter=0, rng=rng)
+        block = channel.transmit(sent.samples, 0.0, tail_samples=plan.cp_len)
+        a, b = old.receive(block, lookup), new.receive(block, lookup)
+        same = (np.array_equal(a.channel, b.channel) and np.array_equal(a.snr_db, b.snr_db)
+                and np.array_equal(a.noise_var, b.noise_var)
+                and all(np.array_equal(p, q) for p, q in zip(a.decided, b.decided)))
+        print(f"outputs bit for bit equal: {same}")
+        symbols = np.ascontiguousarray(
+            block[:plan.n_symbols * plan.symbol_len].reshape(plan.n_symbols, plan.symbol_len)
+            [:, plan.cp_len:])
+        calls = {"fft": lambda: np.fft.fft(symbols, axis=1),
+                 "rev": lambda: old.receive(block, lookup, demodulate=False),
+                 "tree": lambda: new.receive(block, lookup, demodulate=False)}
+        for _ in range(args.rounds):
+            times: dict[str, list[float]] = {key: [] for key in calls}
+            for _ in range(args.repeats):
+                for key, call in calls.items():
+                    t0 = time.perf_counter()
+                    call()
+                    times[key].append(time.perf_counter() - t0)
+            med = {key: statistics.median(t) for key, t in times.items()}
+            print(f"medians us: fft {med['fft'] * 1e6:.0f}  {args.rev} {med['rev'] * 1e6:.0f}  "
+                  f"tree {med['tree'] * 1e6:.0f} | rx_vs_fft {args.rev} "
+                  f"{med['rev'] / med['fft']:.2f} tree {med['tree'] / med['fft']:.2f} | "
+                  f"rx_msps {args.rev} {block.size / med['rev'] / 1e6:.1f} "
+                  f"tree {block.size / med['tree'] / 1e6:.1f} | tree/{args.rev} "
+                  f"{med['tree'] / med['rev']:.3f}")
+            sys.stdout.flush()
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
