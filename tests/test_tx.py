@@ -601,3 +601,35 @@ def test_radio_sink_silences_a_real_radio():
         sink.send(np.zeros(4800, np.complex64))
         dev = sink.device
     assert dev.tx_hardwaregain_chan0 == pytest.approx(-MAX_ATTENUATION_DB, abs=0.25)
+
+
+def test_status_gives_lag_and_power_against_the_limit(pub, ctx):
+    """The status's power figures are 10 log10 of the bounded powers actually sent: a map at
+    half power on every tone gives 10 log10(0.5) = -3.01 dB total and peak; a map asking 4x on
+    every tone is cut to the 0 dB tone limit (PowerBound). A map applied at its effective frame
+    has lag 0; one that arrives after its frame is counted from that frame."""
+    clock, sink = FakeClock(), ListSink()
+    with make_loop(pub, ctx, sink, clock, max_tone_db=0.0, max_total_db=0.0, cap_db=6.5,
+                   budget_db=6.5) as loop:  # the follower accepts 4x; the bound cuts it
+        st = loop.status(0.0)
+        assert st["applied_lag_frames"] is None and st["power_db"] is None
+        subscribed(pub, loop, clock)
+        pub.publish(plan_map(0, 2, power=0.5))
+        assert until(lambda: loop.follower.current is not None,
+                     step=lambda: loop.follower.poll(0.005))
+        for _ in range(3):
+            loop.step()
+        st = loop.status(0.0)
+        assert st["map_seq"] == 0 and st["applied_lag_frames"] == 0
+        assert st["power_db"] == pytest.approx(10 * math.log10(0.5), abs=0.005)
+        assert st["peak_tone_db"] == pytest.approx(10 * math.log10(0.5), abs=0.005)
+        assert st["max_total_db"] == 0.0 and st["max_tone_db"] == 0.0
+        for _ in range(4):
+            loop.step()  # counter now 7
+        pub.publish(plan_map(1, 5, power=4.0))  # names frame 5, already sent
+        assert until(lambda: loop.follower.current.seq == 1,
+                     step=lambda: loop.follower.poll(0.005))
+        loop.step()
+        st = loop.status(0.0)
+        assert st["map_seq"] == 1 and st["applied_lag_frames"] == 7 - 5
+        assert st["power_db"] == 0.0 and st["peak_tone_db"] == 0.0
