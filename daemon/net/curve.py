@@ -43,8 +43,8 @@ from zmq.auth.thread import ThreadAuthenticator
 
 from brimline.daemon.errors import InputError
 
-__all__ = ["KeyPair", "make_keypair", "key_file_header", "load_keypair", "load_public_key", "CurveServer",
-           "apply_client", "scan_client_keys", "check_server_keys", "follower_keys",
+__all__ = ["KeyPair", "make_keypair", "key_file_header", "load_keypair", "load_public_key",
+           "CurveServer", "apply_client", "scan_client_keys", "check_server_keys", "follower_keys",
            "exposed_endpoints", "is_loopback_endpoint"]
 
 log = logging.getLogger("brimline.curve")

@@ -200,8 +200,10 @@ def _alarm_lines(book: Mapping[str, Mapping[str, Any]], status: Mapping[str, Any
 # --------------------------------------------------------------------------- band picture
 
 
-def screen_columns(n_columns: int, tones_per_column: int, width: int) -> int:
-    """Status band columns merged into one screen column so the picture fits ``width``."""
+def screen_columns(n_columns: int, width: int) -> int:
+    """Status band columns merged into one screen column so ``n_columns`` fit ``width``
+    cells: ``ceil(n_columns / width)`` (each screen column then holds that many times the
+    status's ``tones_per_column`` whole tones)."""
     if n_columns <= 0:
         return 1
     return max(1, -(-n_columns // max(1, width)))
@@ -295,7 +297,7 @@ def band_picture(band: Mapping[str, Any], *, width: int,
         return [Text("band: no tones yet (no estimate or map)", style="dim")]
     per = int(band.get("tones_per_column") or 1)
     plot_w = max(8, width - _GUTTER)
-    k = screen_columns(len(first), per, plot_w)
+    k = screen_columns(len(first), plot_w)
     cols_first = first[::k]
     n = len(cols_first)
     tone_last = int(band.get("tone_last", first[-1]))
