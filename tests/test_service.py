@@ -488,6 +488,20 @@ class TestStatusFigures:
             cfg.link.train_symbols + 2
         assert st["rate"]["data_rate_bps"] is None
 
+    def test_frame_rate_comes_from_a_source_that_knows_it(self):
+        """The simulator paces frames at ``frame_rate_hz``: the status takes it from there; a
+        source without one leaves the data rate unknown rather than guessing."""
+        from brimline.daemon.runtime.status import driver_fields
+
+        class Paced:
+            name, frame_rate_hz, counters = "sim", 50.0, {}
+
+        class Unpaced:
+            name, counters = "pushed", {}
+
+        assert driver_fields(Paced(), "running", None)["frame_rate_hz"] == 50.0
+        assert driver_fields(Unpaced(), "running", None)["frame_rate_hz"] is None
+
     def test_band_groups_hold_whole_tones_in_the_plan_numbering(self):
         """Groups of whole tones, each named by its first tone (the plan's signed bins); with
         more tones than columns every group holds ceil(N / columns) tones. Reference: numpy's
