@@ -304,6 +304,12 @@ class TestShownNumbers:
         assert "power -0.3 dB (limit +0.0 dB)" in body
         assert "peak tone +2.9 dB (limit +3.0 dB)" in body and "clipped 1" in body
 
+    def test_transmitter_figures_are_marked_when_old(self):
+        assert "[no transmitter status for 7 s]" in _body(_demo_status(), tx_status=TX,
+                                                          tx_silent_s=7.0)
+        assert "[no transmitter status for" not in _body(_demo_status(), tx_status=TX,
+                                                         tx_silent_s=1.0)
+
     def test_transmitter_place_is_marked_when_absent(self):
         assert "[not watched: --tx-endpoint" in _body(_demo_status())
         assert "[no transmitter status yet from tcp://h:1]" in _body(

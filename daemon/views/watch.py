@@ -432,7 +432,8 @@ def _wrap(segments: list[Text], width: int, sep: str = "   ") -> list[Text]:
 
 
 def _number_lines(status: Mapping[str, Any], tx: Mapping[str, Any] | None,
-                  tx_endpoint: str | None, width: int) -> list[Text]:
+                  tx_endpoint: str | None, width: int,
+                  tx_silent_s: float | None = None) -> list[Text]:
     wide = width >= 120
     rate = status.get("rate", {})
     data = rate.get("data_rate_bps")
@@ -472,6 +473,9 @@ def _number_lines(status: Mapping[str, Any], tx: Mapping[str, Any] | None,
                 _seg("peak tone ", f"{_fmt(tx.get('peak_tone_db'), '+.1f')} dB", wide=wide)
                 .append(f" (limit {_fmt(tx.get('max_tone_db'), '+.1f')} dB)", style="dim"),
                 _seg("clipped ", str(tx.get("power_clipped", 0)), "frames", wide=wide)]
+        if tx_silent_s is not None and tx_silent_s > QUIET_AFTER_S:
+            segs.append(Text(f"[no transmitter status for {tx_silent_s:.0f} s]",
+                             style="bold yellow"))
         out += _wrap(segs, width)
     elif tx_endpoint:
         out.append(_fit(Text(f"tx [no transmitter status yet from {tx_endpoint}]",
@@ -564,6 +568,7 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
            width: int | None = None, height: int | None = None,
            alarms: Mapping[str, Mapping[str, Any]] | None = None,
            tx_status: Mapping[str, Any] | None = None, tx_endpoint: str | None = None,
+           tx_silent_s: float | None = None,
            snr_scale_db: tuple[float, float] = DEFAULT_SNR_SCALE_DB):
     """Render one status message for a terminal of ``width`` x ``height`` cells.
 
@@ -588,6 +593,9 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
         The latest transmitter status (``brimline tx``), or None.
     tx_endpoint : str, optional
         The transmitter status endpoint watched (None: not watched).
+    tx_silent_s : float, optional
+        Wall-clock seconds since the transmitter's last status (above
+        :data:`QUIET_AFTER_S` its figures are marked as old).
     snr_scale_db : (float, float)
         Fixed SNR scale of the band picture, dB.
 
@@ -623,7 +631,7 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
     top = alarm_lines + head
     if drv.get("error"):
         top.append(_fit(Text(f"source error: {drv['error']}", style="bold red"), inner_w))
-    numbers = _number_lines(status, tx_status, tx_endpoint, inner_w)
+    numbers = _number_lines(status, tx_status, tx_endpoint, inner_w, tx_silent_s)
     details = [_fit(x, inner_w) for x in _detail_lines(status, bad_messages)]
     band = status.get("band", {})
 
@@ -765,6 +773,7 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
     socks = []
     status: dict | None = None
     tx_status: dict | None = None
+    tx_last: float | None = None
     book: dict = {}
     start = last = clock()
     announced_missing = False
@@ -775,7 +784,9 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
         return render(status, endpoint=endpoint, silent_s=clock() - last,
                       bad_messages=drops.counts().get("status", {}), width=size.width,
                       height=size.height if live is not None else None, alarms=book,
-                      tx_status=tx_status, tx_endpoint=tx_endpoint, snr_scale_db=snr_scale_db)
+                      tx_status=tx_status, tx_endpoint=tx_endpoint,
+                      tx_silent_s=None if tx_last is None else clock() - tx_last,
+                      snr_scale_db=snr_scale_db)
 
     try:
         sock = _sub_socket(ctx, socks, endpoint, curve_server_key, curve_client_key)
@@ -797,7 +808,7 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
             if tx_sock is not None and tx_sock in ready:
                 for record in _drain(tx_sock, drops, "tx_status"):
                     if record.get("type") == TX_STATUS_TYPE:
-                        tx_status = record
+                        tx_status, tx_last = record, clock()
             if sock in ready:
                 for record in _drain(sock, drops, "status"):
                     if record.get("type") == TX_STATUS_TYPE:
