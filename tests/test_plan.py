@@ -430,3 +430,18 @@ def test_a_file_of_one_snr_per_data_tone_uses_the_daemons_numbering(capsys, tmp_
     code, js, _ = run_plan(capsys, p, "--json")
     doc = json.loads(js)
     assert doc["tone_numbering"] == "link_plan" and doc["tone_index"] == tones.tolist()
+
+
+def test_settings_lines_and_snr_range(capsys):
+    """The settings as printed: allowed bits, the budget as N x nominal (256 tones at 0 dB),
+    the ceiling; the SNR strip's range is the file's min and max rounded to whole dB."""
+    code, out, _ = run_plan(capsys, DEMO, "--budget-db", "-3", "--cap-db", "2",
+                            "--bits", "0,1,2,4,6,8")
+    assert code == 0
+    assert _line(out, "bits") == "  bits       0,1,2,4,6,8 per tone"
+    budget = 256 * 10 ** (-3 / 10)
+    assert _line(out, "power") == (f"  power      budget -3 dB ({budget:.4g} x nominal tone "
+                                   "power), ceiling 2 dB per tone")
+    snr_db = read_snr_db(DEMO)
+    strip = next(ln for ln in out.splitlines() if ln.startswith("  snr |"))
+    assert strip.endswith(f"|  {snr_db.min():.0f} to {snr_db.max():.0f} dB")

@@ -474,3 +474,17 @@ class TestOptions:
         assert watch("tcp://127.0.0.1:1", once=True, duration_s=0.3, out=out,
                      tx_endpoint="tcp://127.0.0.1:2") == 1
         assert "no status from tcp://127.0.0.1:1" in out.getvalue()
+
+
+def test_detail_and_history_numbers():
+    """The remaining figures: silence in seconds, the map's effective frame, each change's
+    link time, last frame, estimate age, dropped and undecodable message counts."""
+    st = _demo_status(protocol_errors={"acks": {"forged": 3}}, estimate_age_s=0.25)
+    body = "\n".join(_screen(st, 160, 50, silent_s=9.4, bad_messages={"too_large": 2}))
+    assert "no status message for 9 s (wall clock)" in body
+    assert "map seq 8 emergency from frame 904" in body  # the map's effective_frame
+    for t, seq in ((14.0, 8), (13.0, 7), (4.0, 2), (0.0, 0)):
+        assert f"{t:6.1f} {seq:>4}  " in body
+    assert "last frame 900" in body and "estimate age 0.25 s" in body
+    assert "daemon dropped acks forged 3" in body
+    assert "2 undecodable status messages (too_large 2)" in body
