@@ -273,7 +273,8 @@ class TestDecisions:
         cc2 = ChangeControl(loader(), emergency_fraction=1.0, emergency_drop_db=6.0)
         cc2.decide(tracked(snr), 0.0)
         d = cc2.decide(tracked(snr - 7.0), 0.5)
-        assert d.kind is DecisionKind.EMERGENCY and "mean SNR -7.0 dB" in d.reason
+        assert d.kind is DecisionKind.EMERGENCY and "mean SNR fell 7.0 dB since the map" in d.reason
+        assert "3 dB extra margin" in d.reason
 
     def test_emergency_map_has_its_extra_margin(self):
         ld = loader()

@@ -153,6 +153,8 @@ class TestService:
             st["rate"]["rate_bps"])
         assert got["brimline_map_margin_decibels"].samples[0].value == pytest.approx(
             st["margin_db"])
+        assert got["brimline_map_target_margin_decibels"].samples[0].value == \
+            st["margin"]["target_db"] == 3.0
         assert sum(s.value for s in got["brimline_maps_published"].samples) == \
             sum(st["maps_published"].values())
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 import re
 import subprocess
 import sys
@@ -86,7 +87,7 @@ class TestDemoProfile:
                                 "--margin-db", "2")
         assert "gap        0.50 dB = gap 0.00 dB - coding gain 1.5 dB + target margin 2 dB" \
             in out
-        assert "achieved   margin" in out
+        assert "headroom   the required powers could all grow" in out
 
 
 class TestModesAndFlags:
@@ -180,7 +181,7 @@ def test_chart_shape():
     bits = np.array([0] * 8 + [8] * 8 + [3] * 16)
     rows = bit_chart(bits, width=16)
     assert len(rows) == 8 + 2  # 8 bit levels, the base line, the tone span
-    assert "2 tones per column" in rows[-1]
+    assert "2 tones per column" in rows[-1] and rows[-1].strip().startswith("tone 0 .. 31")
     assert all(len(r) == len(rows[0]) for r in rows[:-1])
 
 
@@ -285,3 +286,162 @@ def test_snr_strip_follows_the_profile():
     assert len(strip) == 12
     assert strip[0] == " " and strip[4] in "\u2588@" and strip[0] != strip[8] != strip[4]
     assert snr_strip(np.full(5, 20.0), width=5) == " " * 5
+
+
+# --------------------------------------------------------------------------- every claim
+
+
+def _plan_text_and_json(capsys, *args):
+    code, out, _ = run_plan(capsys, DEMO, *args)
+    assert code == 0
+    code, js, _ = run_plan(capsys, DEMO, "--json", *args)
+    assert code == 0
+    return out, json.loads(js)
+
+
+def _line(out: str, key: str) -> str:
+    return next(ln for ln in out.splitlines() if ln.startswith(f"  {key}"))
+
+
+def _numbers(text: str) -> list[float]:
+    return [float(x) for x in re.findall(r"[-+]?\d+(?:\.\d+)?(?:e[-+]?\d+)?", text)]
+
+
+MODES = [[], ["--mode", "margin", "--target-bits", "1200"], ["--mode", "waterfill"]]
+
+
+class TestEveryClaim:
+    """Each number ``brimline plan`` prints is recomputed here from the file and the plan's
+    own JSON, by formulas written out in the test (the loading conventions of
+    ``core/loading.py``: power needed for b bits is gap (2^b - 1) / snr)."""
+
+    @pytest.mark.parametrize("extra", MODES)
+    def test_tones_and_snr_lines(self, capsys, extra):
+        out, doc = _plan_text_and_json(capsys, *extra)
+        snr_db = read_snr_db(DEMO)
+        assert _line(out, "tones").split()[1].rstrip(",") == str(snr_db.size) == \
+            str(doc["n_tones"])
+        lo, hi, med = _numbers(_line(out, "SNR"))
+        assert (lo, hi, med) == (round(snr_db.min(), 1), round(snr_db.max(), 1),
+                                 round(float(np.median(snr_db)), 1))
+
+    @pytest.mark.parametrize("extra", MODES)
+    def test_carries_line(self, capsys, extra):
+        out, doc = _plan_text_and_json(capsys, *extra)
+        total, loaded, idle, mean = _numbers(_line(out, "carries"))
+        bits = np.array(doc["bits"])
+        assert total == bits.sum() == doc["total_bits"]
+        assert loaded == np.count_nonzero(bits) and idle == bits.size - loaded
+        assert mean == round(bits.sum() / bits.size, 2)
+
+    @pytest.mark.parametrize("extra", MODES)
+    def test_uses_line(self, capsys, extra):
+        out, doc = _plan_text_and_json(capsys, *extra)
+        used, budget, db = _numbers(_line(out, "uses"))
+        total = float(np.sum(doc["power"]))
+        assert used == pytest.approx(total, rel=1e-3)
+        assert budget == 256 * 10 ** (doc["budget_db"] / 10)
+        assert db == pytest.approx(10 * math.log10(total / 256), abs=0.006)
+
+    @pytest.mark.parametrize("extra", MODES)
+    def test_margins_line_is_the_per_tone_range(self, capsys, extra):
+        """Per-tone margin beyond the target = 10 log10(p snr / (gap (2^b - 1))) on loaded
+        tones, gap the effective gap: the printed range is their min, median and max (one
+        value when all are equal), and it matches the JSON's ``tone_margin_db``."""
+        out, doc = _plan_text_and_json(capsys, *extra)
+        snr = 10 ** (read_snr_db(DEMO) / 10)
+        b, p = np.array(doc["bits"]), np.array(doc["power"])
+        on = b > 0
+        gap = 10 ** (doc["effective_gap_db"] / 10)
+        margins = 10 * np.log10(p[on] * snr[on] / (gap * (2.0 ** b[on] - 1)))
+        assert np.allclose([m for m in doc["tone_margin_db"] if m is not None], margins)
+        assert all(m is None for m, bb in zip(doc["tone_margin_db"], b) if bb == 0)
+        line = _line(out, "margins")
+        if "per loaded tone" in line:
+            lo, hi, med = _numbers(line)
+            assert (lo, hi, med) == (round(margins.min(), 2), round(margins.max(), 2),
+                                     round(float(np.median(margins)), 2))
+            assert doc["mode"] == "waterfill"
+        else:
+            value, loaded = _numbers(line)
+            assert loaded == on.sum()
+            assert np.allclose(margins, value, atol=0.006)  # the same on every loaded tone
+
+    def test_waterfill_does_not_claim_one_margin_on_every_tone(self, capsys):
+        out, doc = _plan_text_and_json(capsys, "--mode", "waterfill")
+        assert "on every loaded tone" not in out and "on each of the" not in out
+        spread = [m for m in doc["tone_margin_db"] if m is not None]
+        assert max(spread) - min(spread) > 1.0  # rounding down spreads them out
+
+    @pytest.mark.parametrize("extra", MODES)
+    def test_headroom_line(self, capsys, extra):
+        """Headroom = 10 log10(min(budget / sum(need), cap / max(need))) of the required
+        powers need = gap (2^b - 1) / snr (no ceiling by default)."""
+        out, doc = _plan_text_and_json(capsys, *extra)
+        snr = 10 ** (read_snr_db(DEMO) / 10)
+        b = np.array(doc["bits"])
+        gap = 10 ** (doc["effective_gap_db"] / 10)
+        need = np.where(b > 0, gap * (2.0 ** b - 1) / snr, 0.0)
+        want = 10 * math.log10(256 / need.sum())
+        (value,) = _numbers(_line(out, "headroom"))
+        assert value == round(want, 2) and doc["achieved_margin_db"] == pytest.approx(want)
+
+    def test_margin_mode_spends_the_headroom(self, capsys):
+        """In margin mode every loaded tone's margin equals the headroom of its required
+        powers, and the powers then fill the budget."""
+        out, doc = _plan_text_and_json(capsys, "--mode", "margin", "--target-bits", "1200")
+        (value,) = _numbers(_line(out, "headroom"))
+        margins = [m for m in doc["tone_margin_db"] if m is not None]
+        assert np.allclose(margins, doc["achieved_margin_db"])
+        assert sum(doc["power"]) == pytest.approx(256, rel=1e-9)
+        assert "spent it on the powers" in _line(out, "headroom")
+
+    def test_waterfill_line(self, capsys):
+        """Capacity = sum log2(1 + p snr / gap) of the water-filled powers (Cover & Thomas,
+        Elements of Information Theory, 9.4, with the SNR gap); level as in the JSON."""
+        out, doc = _plan_text_and_json(capsys, "--mode", "waterfill")
+        level, capacity = _numbers(_line(out, "waterfill"))
+        snr = 10 ** (read_snr_db(DEMO) / 10)
+        gap = 10 ** (doc["effective_gap_db"] / 10)
+        cap = np.sum(np.log2(1 + np.array(doc["waterfill_power"]) * snr / gap))
+        assert capacity == round(cap, 1) and level == float(f"{doc['water_level']:.4g}")
+
+    def test_chart_axis_names_its_numbering(self, capsys):
+        out, doc = _plan_text_and_json(capsys)
+        assert doc["tone_numbering"] == "file_order" and doc["tone_index"] == list(range(256))
+        axis = next(ln for ln in out.splitlines() if ln.strip().startswith("tone "))
+        assert "tone 0 .. 255 (file positions, not the link plan's tones" in axis
+        assert "the link plan has 174 data tones -99..99" in _line(out, "tones")
+
+
+def test_a_file_of_one_snr_per_data_tone_uses_the_daemons_numbering(capsys, tmp_path,
+                                                                    monkeypatch):
+    """174 values for the default plan's 174 data tones: numbered -99..99 as in maps, status
+    and logs (pilots every 8th used tone from the edge and DC have no number)."""
+    from brimline.drivers.link.frame import make_plan
+
+    monkeypatch.setenv("COLUMNS", "80")  # chart of 72 columns: ceil(174 / 72) = 3 per column
+    tones = make_plan().data_tones
+    p = write(tmp_path, "plan174.txt", "\n".join(["20"] * tones.size))
+    code, out, _ = run_plan(capsys, p)
+    assert code == 0
+    assert "174 data tones -99..99 (the link plan's numbering" in out
+    assert "tone -99 .. 99 (data tones of the link plan; 3 tones per column)" in out
+    code, js, _ = run_plan(capsys, p, "--json")
+    doc = json.loads(js)
+    assert doc["tone_numbering"] == "link_plan" and doc["tone_index"] == tones.tolist()
+
+
+def test_settings_lines_and_snr_range(capsys):
+    """The settings as printed: allowed bits, the budget as N x nominal (256 tones at 0 dB),
+    the ceiling; the SNR strip's range is the file's min and max rounded to whole dB."""
+    code, out, _ = run_plan(capsys, DEMO, "--budget-db", "-3", "--cap-db", "2",
+                            "--bits", "0,1,2,4,6,8")
+    assert code == 0
+    assert _line(out, "bits") == "  bits       0,1,2,4,6,8 per tone"
+    budget = 256 * 10 ** (-3 / 10)
+    assert _line(out, "power") == (f"  power      budget -3 dB ({budget:.4g} x nominal tone "
+                                   "power), ceiling 2 dB per tone")
+    snr_db = read_snr_db(DEMO)
+    strip = next(ln for ln in out.splitlines() if ln.startswith("  snr |"))
+    assert strip.endswith(f"|  {snr_db.min():.0f} to {snr_db.max():.0f} dB")

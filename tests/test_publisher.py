@@ -8,6 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import zmq
+import zmq.auth
 from protocol_helpers import ANY_PORT, make_map, until, wifi_like_plan
 
 from brimline.daemon.commands.cli import main
@@ -465,3 +466,22 @@ class TestPlainFollowerInReadme:
         assert self.pump(pub, plain, lambda: plain.seq == 1)
         assert not plain.stale()
         assert until(lambda: plain.poll(0.01) or plain.stale())  # no heartbeats any more
+
+
+class TestKeyFileHeader:
+    def test_header_names_the_config_keys_not_a_home_folder(self, tmp_path, capsys):
+        """The key files' comment header says where each half goes in brimline's own config
+        (``publish.curve_secret_key``, ``publish.curve_clients_dir``) and the files still read
+        with pyzmq's own certificate reader (the format ZeroMQ's authenticator loads)."""
+        assert main(["keys", str(tmp_path / "k"), "--name", "site-b"]) == 0
+        pub_text = (tmp_path / "k/site-b.key").read_text()
+        sec_text = (tmp_path / "k/site-b.key_secret").read_text()
+        assert "publish.curve_clients_dir" in pub_text and "--daemon-key site-b.key" in pub_text
+        assert "publish.curve_secret_key: site-b.key_secret" in sec_text
+        for text in (pub_text, sec_text):
+            assert "home dir" not in text.lower() and "~" not in text and "/.curve" not in text
+            assert "secret-key" not in text.split("curve\n")[0]  # header lines are comments
+        assert "secret-key" not in pub_text
+        pub, sec = zmq.auth.load_certificate(str(tmp_path / "k/site-b.key_secret"))
+        assert zmq.curve_public(sec) == pub == load_keypair(tmp_path / "k/site-b.key").public
+        assert zmq.auth.load_certificate(str(tmp_path / "k/site-b.key"))[1] is None

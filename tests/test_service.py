@@ -24,7 +24,7 @@ from brimline.daemon.errors import RecordingError
 from brimline.daemon.net.follower import Follower
 from brimline.daemon.records import FrameOutcome, LoadMap
 from brimline.daemon.runtime.service import Service
-from brimline.daemon.runtime.status import band_columns, build_status
+from brimline.daemon.runtime.status import band_columns, build_status, frame_fields
 from brimline.daemon.wire import codec
 from brimline.daemon.wire.recording import RecordReader
 from brimline.daemon.wire.state import StateStore
@@ -396,7 +396,7 @@ class TestRobustness:
                 assert _pump(svc, until=one)
             st = got[-1]
             assert st["type"] == "status" and st["map"]["seq"] == svc.current_map.seq
-            assert len(st["band"]["snr_db"]) == st["band"]["columns"] <= 128
+            assert len(st["band"]["snr_db"]) == st["band"]["columns"] == len(st["band"]["tone_index"])
         finally:
             sub.close()
             ctx.term()
@@ -450,6 +450,77 @@ class TestStatusFigures:
                           symbol_rate_hz=20e6 / (64 + 16))
         assert st["rate"]["rate_bps"] == pytest.approx(48e6)
         assert st["rate"]["rate_bps"] * 3 / 4 == pytest.approx(36e6)
+
+    def test_data_rate_counts_data_symbols_only(self):
+        """The same 802.11a numerology as above (48 data tones of 16-QAM, 250 ksymbol/s, so a
+        line rate of 48 Mbit/s; IEEE 802.11a-1999 clause 17, from memory) in frames of 16
+        symbols of which 12 carry data, sent back to back (15625 frames/s): the data rate is
+        48 Mbit/s x 12 / 16 = 36 Mbit/s. And the demo link's figure worked by hand from its
+        config: 754 bits per data symbol x 12 data symbols x 50 frames/s = 452.4 kbit/s."""
+        tones = np.r_[-26:0, 1:27]
+        data = np.setdiff1d(tones, [-21, -7, 7, 21])
+        m = LoadMap(epoch="e", seq=0, effective_frame=0, created_s=0.0, plan_id="p",
+                    tone_index=data, bits=np.full(48, 4), power_lin=np.ones(48),
+                    total_bits=192, margin_db=0.5, gap_db=0.0)
+        st = build_status(time_s=0.0, epoch="e", driver={}, frames={}, estimate_age_s=None,
+                          tone_index=data, snr_db=None, current_map=m,
+                          symbol_rate_hz=20e6 / (64 + 16), frame_rate_hz=20e6 / 80 / 16,
+                          data_symbols=12, symbols_per_frame=16, target_margin_db=3.0)
+        assert st["rate"]["line_rate_bps"] == st["rate"]["rate_bps"] == pytest.approx(48e6)
+        assert st["rate"]["data_rate_bps"] == pytest.approx(36e6)
+        assert st["margin"] == {"headroom_db": 0.5, "target_db": 3.0}
+        assert st["margin_db"] == st["margin"]["headroom_db"]
+        demo = LoadMap(epoch="e", seq=0, effective_frame=0, created_s=0.0, plan_id="p",
+                       tone_index=np.arange(1, 175), bits=np.r_[np.full(100, 4),
+                                                               np.full(74, 5)],
+                       power_lin=np.ones(174), total_bits=754, margin_db=0.0, gap_db=0.0)
+        st = build_status(time_s=0.0, epoch="e", driver={}, frames={}, estimate_age_s=None,
+                          tone_index=demo.tone_index, snr_db=None, current_map=demo,
+                          frame_rate_hz=50.0, data_symbols=12)
+        assert st["rate"]["data_rate_bps"] == pytest.approx(452.4e3)
+        assert st["rate"]["line_rate_bps"] is None  # no symbol rate given
+
+    def test_data_rate_is_unknown_without_a_frame_rate(self):
+        cfg = loopback_config()
+        st = build_status(time_s=0.0, epoch="e", driver={}, frames={}, estimate_age_s=None,
+                          tone_index=None, snr_db=None, **frame_fields(_plan(cfg)))
+        assert st["rate"]["data_symbols"] == cfg.link.data_symbols
+        assert st["rate"]["symbols_per_frame"] == cfg.link.data_symbols + \
+            cfg.link.train_symbols + 2
+        assert st["rate"]["data_rate_bps"] is None
+
+    def test_frame_rate_comes_from_a_source_that_knows_it(self):
+        """The simulator paces frames at ``frame_rate_hz``: the status takes it from there; a
+        source without one leaves the data rate unknown rather than guessing."""
+        from brimline.daemon.runtime.status import driver_fields
+
+        class Paced:
+            name, frame_rate_hz, counters = "sim", 50.0, {}
+
+        class Unpaced:
+            name, counters = "pushed", {}
+
+        assert driver_fields(Paced(), "running", None)["frame_rate_hz"] == 50.0
+        assert driver_fields(Unpaced(), "running", None)["frame_rate_hz"] is None
+
+    def test_band_groups_hold_whole_tones_in_the_plan_numbering(self):
+        """Groups of whole tones, each named by its first tone (the plan's signed bins); with
+        more tones than columns every group holds ceil(N / columns) tones. Reference: numpy's
+        minimum.reduceat over the same starts."""
+        tones = np.r_[-99:0, 1:100]
+        snr = np.linspace(5.0, 30.0, tones.size)
+        st = build_status(time_s=0.0, epoch="e", driver={}, frames={}, estimate_age_s=None,
+                          tone_index=tones, snr_db=snr, columns=64)
+        band = st["band"]
+        per = band["tones_per_column"]
+        assert per == -(-198 // 64) == 4 and band["columns"] == 50
+        assert band["tone_index"] == tones[::4].tolist()
+        assert band["snr_db"] == np.round(np.minimum.reduceat(snr, np.arange(0, 198, 4)),
+                                          1).tolist()
+        full = build_status(time_s=0.0, epoch="e", driver={}, frames={}, estimate_age_s=None,
+                            tone_index=tones, snr_db=snr)
+        assert full["band"]["tones_per_column"] == 1
+        assert full["band"]["tone_index"] == tones.tolist()
 
     def test_band_columns_match_numpy_reduceat(self):
         """Independent reference: numpy.minimum.reduceat / add.reduceat over the same groups."""

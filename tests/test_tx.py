@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -601,3 +602,81 @@ def test_radio_sink_silences_a_real_radio():
         sink.send(np.zeros(4800, np.complex64))
         dev = sink.device
     assert dev.tx_hardwaregain_chan0 == pytest.approx(-MAX_ATTENUATION_DB, abs=0.25)
+
+
+def test_status_gives_lag_and_power_against_the_limit(pub, ctx):
+    """The status's power figures are 10 log10 of the bounded powers actually sent: a map at
+    half power on every tone gives 10 log10(0.5) = -3.01 dB total and peak; a map asking 4x on
+    every tone is cut to the 0 dB tone limit (PowerBound). A map applied at its effective frame
+    has lag 0; one that arrives after its frame is counted from that frame."""
+    clock, sink = FakeClock(), ListSink()
+    with make_loop(pub, ctx, sink, clock, max_tone_db=0.0, max_total_db=0.0, cap_db=6.5,
+                   budget_db=6.5) as loop:  # the follower accepts 4x; the bound cuts it
+        st = loop.status(0.0)
+        assert st["applied_lag_frames"] is None and st["power_db"] is None
+        subscribed(pub, loop, clock)
+        pub.publish(plan_map(0, 2, power=0.5))
+        assert until(lambda: loop.follower.current is not None,
+                     step=lambda: loop.follower.poll(0.005))
+        for _ in range(3):
+            loop.step()
+        st = loop.status(0.0)
+        assert st["map_seq"] == 0 and st["applied_lag_frames"] == 0
+        assert st["power_db"] == pytest.approx(10 * math.log10(0.5), abs=0.005)
+        assert st["peak_tone_db"] == pytest.approx(10 * math.log10(0.5), abs=0.005)
+        assert st["max_total_db"] == 0.0 and st["max_tone_db"] == 0.0
+        for _ in range(4):
+            loop.step()  # counter now 7
+        pub.publish(plan_map(1, 5, power=4.0))  # names frame 5, already sent
+        assert until(lambda: loop.follower.current.seq == 1,
+                     step=lambda: loop.follower.poll(0.005))
+        loop.step()
+        st = loop.status(0.0)
+        assert st["map_seq"] == 1 and st["applied_lag_frames"] == 7 - 5
+        assert st["power_db"] == 0.0 and st["peak_tone_db"] == 0.0
+
+
+def test_watch_shows_the_transmitter_beside_the_daemon(pub, ctx):
+    """``watch --tx-endpoint`` on a terminal: the daemon's screen carries the transmitter's
+    applied map from its own status socket. The view's clock stands still until the screen
+    shows it (a real-time deadline only catches a hang)."""
+    import io
+    import threading
+    import time as _time
+
+    from brimline.daemon.net.publisher import StatusPublisher
+    from brimline.daemon.runtime.status import build_status
+    from brimline.daemon.views.watch import watch
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    clock, sink = FakeClock(), ListSink()
+    tx_pub = StatusPublisher(endpoint=ANY_PORT, rate_hz=1000.0, context=ctx)
+    daemon_pub = StatusPublisher(endpoint=ANY_PORT, rate_hz=1000.0, context=ctx)
+    out = Terminal()
+    hang = _time.monotonic() + 60
+
+    def view_clock():
+        done = "applied map" in out.getvalue() or _time.monotonic() > hang
+        return 1e9 if done else 0.0
+
+    with make_loop(pub, ctx, sink, clock, status=tx_pub) as loop:
+        result = []
+        t = threading.Thread(target=lambda: result.append(
+            watch(daemon_pub.endpoint, duration_s=30.0, out=out, clock=view_clock,
+                  context=ctx, tx_endpoint=tx_pub.endpoint)))
+        t.start()
+        status = build_status(time_s=1.0, epoch="e1", driver={"name": "sim",
+                                                              "state": "running"},
+                              frames={}, estimate_age_s=None, tone_index=None, snr_db=None)
+        while t.is_alive():
+            clock.t += 0.01
+            loop.step()
+            daemon_pub.publish(status)
+            t.join(0.01)
+    daemon_pub.close()
+    assert result == [0]
+    screen = re.sub(r"\x1b\[[0-9;?]*[A-Za-z]", "", out.getvalue())  # styles off
+    assert "applied map -1" in screen and "tx following" in screen

@@ -6,19 +6,30 @@ comments (whole-line or trailing) are ignored, and the first non-comment line ma
 read as well. The loading settings come from the ``loading:`` section of a daemon config
 (``--config``, the whole file is validated) or its defaults; flags override them.
 
-``--json`` prints one object: the settings used, then ``bits``, ``power``, ``total_bits``,
-``total_power`` and ``achieved_margin_db`` of the allocation (0-bit tones carry no power), and in
+``--json`` prints one object: the settings used, ``tone_index`` and ``tone_numbering``, then
+``bits``, ``power``, ``tone_margin_db``, ``total_bits``, ``total_power`` and
+``achieved_margin_db`` of the allocation (0-bit tones carry no power), and in
 waterfill mode also ``waterfill_power`` (the continuous water-filling powers, before rounding bits
 down), ``water_level`` and ``capacity_bits``. Numbers that are not finite (``achieved_margin_db``
 when nothing is loaded, ``water_level`` when no tone can take power, ``cap_db`` when there is no
 ceiling) are written as ``null`` so that the output is strict JSON.
 
-Two margins appear and are kept apart by name. The *target* margin (``--margin-db``, the
+Tones are numbered as the daemon numbers them (maps, status, logs, ``brimline watch``): the
+signed FFT bins of the link plan's data tones (``link:`` of ``--config``, else the defaults,
+-99..99 without pilots and DC). That numbering applies when the file holds one SNR per data
+tone of that plan; a file of another length is numbered 0..N-1 in file order, and the output
+says so and names the plan's tones (``tone_numbering``: ``"link_plan"`` or ``"file_order"``).
+
+Three margins appear and are kept apart by name. The *target* margin (``--margin-db``, the
 config's ``loading.margin_db``) is an input: it is added to the gap before loading. The
-*achieved* margin is an output: how far every loaded tone's required power could still grow
-within the budget and ceilings (the allocation's ``margin_db``). The effective gap is spelled
-out as ``gap_db`` (given, or that of uncoded QAM at ``target_ser``) ``- coding_gain_db +
-target_margin_db = effective_gap_db``, in the JSON and the text alike.
+*per-tone* margins (``tone_margin_db``) are outputs: how far each loaded tone's planned power is
+above the power its bits need at the effective gap, i.e. its margin beyond the target (0 dB
+for every loaded tone in rate mode, the same value on every loaded tone in margin mode, spread
+out in waterfill mode where bits are rounded down under water-filled powers). The *headroom*
+(``achieved_margin_db``, the allocation's ``margin_db``) is how far all required powers could
+grow together within the budget and ceilings; margin mode spends it by raising the powers. The
+effective gap is spelled out as ``gap_db`` (given, or that of uncoded QAM at ``target_ser``)
+``- coding_gain_db + target_margin_db = effective_gap_db``, in the JSON and the text alike.
 """
 
 from __future__ import annotations
@@ -34,7 +45,8 @@ import numpy as np
 from brimline.daemon.core.loading import allowed_bits, waterfill
 from brimline.daemon.core.qam import qam_gap_db
 from brimline.daemon.errors import InputError
-from brimline.daemon.runtime.config import LoadingSection, load_config
+from brimline.daemon.runtime.config import LinkSection, LoadingSection, load_config
+from brimline.drivers.link.frame import make_plan
 
 #: SNRs beyond this magnitude in dB are taken for a unit mistake rather than a measurement.
 SNR_DB_LIMIT = 200.0
@@ -160,9 +172,8 @@ def _read_npy(p: Path) -> np.ndarray:
     return arr
 
 
-def _section(args) -> LoadingSection:
+def _section(args, base: LoadingSection) -> LoadingSection:
     """The loading settings: the config's section (or defaults) with the flags on top."""
-    base = load_config(args.config).loading if args.config else LoadingSection()
     data = base.model_dump()
     flags = {
         "mode": args.mode, "coding_gain_db": args.coding_gain_db, "margin_db": args.margin_db,
@@ -226,6 +237,33 @@ def _gap_text(terms: dict) -> str:
             f"{terms['coding_gain_db']:g} dB + target margin {terms['target_margin_db']:g} dB")
 
 
+def tone_numbers(n_values: int, link: LinkSection) -> tuple[np.ndarray, str]:
+    """Tone numbers for ``n_values`` SNRs in file order.
+
+    Returns
+    -------
+    tone_index : ndarray of int
+        The link plan's data tones (signed FFT bins, the daemon's numbering) when there is one
+        value per data tone, else ``0 .. n_values - 1``.
+    numbering : {"link_plan", "file_order"}
+    """
+    data_tones = make_plan(**link.model_dump()).data_tones
+    if data_tones.size == n_values:
+        return data_tones.astype(np.int64), "link_plan"
+    return np.arange(n_values, dtype=np.int64), "file_order"
+
+
+def tone_margins_db(bits: np.ndarray, power: np.ndarray, snr: np.ndarray,
+                    gap_db: float) -> np.ndarray:
+    """Per-tone margin beyond the target, dB: ``10 log10(power * snr / (gap (2^b - 1)))``
+    on loaded tones (``gap`` the effective gap, linear), NaN on idle ones."""
+    b = np.asarray(bits, dtype=np.float64)
+    need = 10.0 ** (gap_db / 10.0) * (np.exp2(b) - 1.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = 10.0 * np.log10(np.asarray(power, dtype=np.float64) * snr / need)
+    return np.where(b > 0, out, np.nan)
+
+
 def _bits_text(bits: list[int]) -> str:
     if bits == list(range(bits[-1] + 1)):
         return f"0-{bits[-1]}"
@@ -266,11 +304,14 @@ def snr_strip(snr_db: np.ndarray, *, width: int = 64) -> str:
     return "".join(ramp[k] for k in level)
 
 
-def bit_chart(bits: np.ndarray, *, width: int = 64) -> list[str]:
+def bit_chart(bits: np.ndarray, *, width: int = 64, tone_index: np.ndarray | None = None,
+              numbering: str = "file_order") -> list[str]:
     """Bits per tone across the band as rows of text, one column per group of tones.
 
-    Each column is the mean bits of its group of adjacent tones; a full block per whole bit and
-    a half block for a remaining half. Columns whose tones all carry 0 bits show an idle mark.
+    Each column is the mean bits of its group of adjacent tones (the same whole number of tones
+    per column, stated under the chart); a full block per whole bit and a half block for a
+    remaining half. Columns whose tones all carry 0 bits show an idle mark. The last row names
+    the first and last tone in ``tone_index`` (default ``0 .. N-1``) and their ``numbering``.
     """
     full, half, idle = _glyphs()
     n = bits.size
@@ -284,52 +325,58 @@ def bit_chart(bits: np.ndarray, *, width: int = 64) -> list[str]:
         rows.append(f"{label}|{''.join(cells)}|")
     base = np.where(mean == 0, idle, "-")
     rows.append(f"    +{''.join(base)}+")
-    span = f"tone 0 .. {n - 1}" + (f"  ({per} tones per column)" if per > 1 else "")
+    tones = np.arange(n) if tone_index is None else np.asarray(tone_index)
+    what = ("data tones of the link plan" if numbering == "link_plan"
+            else "file positions, not the link plan's tones")
+    span = (f"tone {int(tones[0])} .. {int(tones[-1])} ({what}; "
+            f"{per} tone{'s' if per > 1 else ''} per column)")
     rows.append(f"     {span}")
     return rows
 
 
-def run(args) -> int:
-    """Read the SNR file, plan, print a summary and chart (or JSON). Returns 0."""
-    section = _section(args)
-    snr_db = read_snr_db(args.snr_file)
+def summary_lines(snr_db: np.ndarray, section: LoadingSection, alloc, wf, *,
+                  tone_index: np.ndarray, numbering: str, plan_tones: np.ndarray,
+                  source: str) -> list[str]:
+    """The text summary of a plan (pure: every number comes from the arguments).
+
+    Parameters
+    ----------
+    snr_db : ndarray
+        Per-tone SNR in dB, file order.
+    section : LoadingSection
+        The loading settings used.
+    alloc : Allocation
+        The plan.
+    wf : WaterfillResult or None
+        The continuous water-filling (waterfill mode).
+    tone_index, numbering : ndarray, str
+        From :func:`tone_numbers`.
+    plan_tones : ndarray
+        The link plan's data tones (named when the file is numbered in file order).
+    source : str
+        The SNR file's name.
+
+    Returns
+    -------
+    list of str
+    """
     terms = gap_terms(section)
-    gap_db = terms["effective_gap_db"]
-    loader = section.loader()
     snr = 10.0 ** (snr_db / 10.0)
-    alloc = loader(snr)
-    wf = None
-    if section.mode == "waterfill":
-        wf = waterfill(snr, gap_db=gap_db, budget_db=section.budget_db, cap_db=section.cap_db)
     budget = snr.size * 10.0 ** (section.budget_db / 10.0)
-    if args.json:
-        out = {
-            "file": str(args.snr_file),
-            "mode": section.mode,
-            "n_tones": int(snr.size),
-            **terms,
-            "allowed_bits": list(section.bits),
-            "budget_db": section.budget_db,
-            "cap_db": _finite_or_none(section.cap_db),
-            "target_bits": section.target_bits,
-            "bits": alloc.bits.tolist(),
-            "power": alloc.power.tolist(),
-            "total_bits": alloc.total_bits,
-            "total_power": alloc.total_power,
-            "achieved_margin_db": _finite_or_none(alloc.margin_db),
-        }
-        if wf is not None:
-            out["waterfill_power"] = wf.power.tolist()
-            out["water_level"] = _finite_or_none(wf.water_level)
-            out["capacity_bits"] = wf.capacity_bits
-        print(json.dumps(out, allow_nan=False))
-        return 0
     loaded = int(np.count_nonzero(alloc.bits))
     idle = snr.size - loaded
     cap_text = "none" if not math.isfinite(section.cap_db) else f"{section.cap_db:g} dB per tone"
+    if numbering == "link_plan":
+        tones_text = (f"{snr.size} data tones {int(tone_index[0])}..{int(tone_index[-1])} "
+                      f"(the link plan's numbering, as in maps and logs)")
+    else:
+        tones_text = (f"{snr.size}, numbered 0..{snr.size - 1} in file order (the link plan "
+                      f"has {plan_tones.size} data tones {int(plan_tones[0])}.."
+                      f"{int(plan_tones[-1])}, so these are not its tone numbers)")
     lines = [
-        f"plan for {args.snr_file}",
-        f"  tones      {snr.size}, SNR {snr_db.min():.1f} to {snr_db.max():.1f} dB "
+        f"plan for {source}",
+        f"  tones      {tones_text}",
+        f"  SNR        {snr_db.min():.1f} to {snr_db.max():.1f} dB "
         f"(median {np.median(snr_db):.1f} dB)",
         f"  mode       {section.mode}"
         + (f", target {section.target_bits} bits" if section.mode == "margin" else ""),
@@ -343,18 +390,78 @@ def run(args) -> int:
         f"  uses       {alloc.total_power:.4g} of {budget:.4g} x nominal "
         f"({10 * math.log10(max(alloc.total_power, 1e-300) / budget):+.2f} dB of the budget)"
         if alloc.total_power > 0 else "  uses       no power",
-        (f"  achieved   margin {alloc.margin_db:.2f} dB on every loaded tone beyond the target, "
-         + ("powers raised by it" if section.mode == "margin" else "left as headroom"))
-        if math.isfinite(alloc.margin_db)
-        else "  achieved   margin unlimited (nothing loaded)",
     ]
+    if loaded:
+        tm = tone_margins_db(alloc.bits, alloc.power, snr, terms["effective_gap_db"])
+        tm = tm[np.isfinite(tm)]
+        lo, med, hi = float(tm.min()), float(np.median(tm)), float(tm.max())
+        if round(lo, 2) == round(hi, 2):
+            lines.append(f"  margins    {lo:.2f} dB beyond the target on each of the {loaded} "
+                         "loaded tones")
+        else:
+            lines.append(f"  margins    beyond the target, per loaded tone: {lo:.2f} to "
+                         f"{hi:.2f} dB (median {med:.2f} dB)")
+    if math.isfinite(alloc.margin_db):
+        lines.append(f"  headroom   the required powers could all grow {alloc.margin_db:.2f} dB "
+                     "within budget and ceilings"
+                     + ("; margin mode spent it on the powers" if section.mode == "margin"
+                        else ""))
+    else:
+        lines.append("  headroom   unlimited (nothing loaded)")
     if wf is not None:
         lines.append(f"  waterfill  level {wf.water_level:.4g}, capacity {wf.capacity_bits:.1f} "
                      "bits per symbol at this gap (bits above are rounded down)")
+    return lines
+
+
+def run(args) -> int:
+    """Read the SNR file, plan, print a summary and chart (or JSON). Returns 0."""
+    config = load_config(args.config) if args.config else None
+    section = _section(args, config.loading if config is not None else LoadingSection())
+    link = config.link if config is not None else LinkSection()
+    snr_db = read_snr_db(args.snr_file)
+    tone_index, numbering = tone_numbers(snr_db.size, link)
+    plan_tones = make_plan(**link.model_dump()).data_tones
+    terms = gap_terms(section)
+    gap_db = terms["effective_gap_db"]
+    loader = section.loader()
+    snr = 10.0 ** (snr_db / 10.0)
+    alloc = loader(snr)
+    wf = None
+    if section.mode == "waterfill":
+        wf = waterfill(snr, gap_db=gap_db, budget_db=section.budget_db, cap_db=section.cap_db)
+    if args.json:
+        tm = tone_margins_db(alloc.bits, alloc.power, snr, gap_db)
+        out = {
+            "file": str(args.snr_file),
+            "mode": section.mode,
+            "n_tones": int(snr.size),
+            "tone_numbering": numbering,
+            "tone_index": tone_index.tolist(),
+            **terms,
+            "allowed_bits": list(section.bits),
+            "budget_db": section.budget_db,
+            "cap_db": _finite_or_none(section.cap_db),
+            "target_bits": section.target_bits,
+            "bits": alloc.bits.tolist(),
+            "power": alloc.power.tolist(),
+            "tone_margin_db": [None if not math.isfinite(v) else float(v) for v in tm],
+            "total_bits": alloc.total_bits,
+            "total_power": alloc.total_power,
+            "achieved_margin_db": _finite_or_none(alloc.margin_db),
+        }
+        if wf is not None:
+            out["waterfill_power"] = wf.power.tolist()
+            out["water_level"] = _finite_or_none(wf.water_level)
+            out["capacity_bits"] = wf.capacity_bits
+        print(json.dumps(out, allow_nan=False))
+        return 0
+    lines = summary_lines(snr_db, section, alloc, wf, tone_index=tone_index,
+                          numbering=numbering, plan_tones=plan_tones, source=str(args.snr_file))
     lines.append("")
     lines.append("  bits per tone")
     width = max(16, min(96, shutil.get_terminal_size((80, 24)).columns - 8))
-    chart = bit_chart(alloc.bits, width=width)
+    chart = bit_chart(alloc.bits, width=width, tone_index=tone_index, numbering=numbering)
     lines.extend("  " + row for row in chart[:-1])
     lines.append(f"  snr |{snr_strip(snr_db, width=width)}|  {snr_db.min():.0f} to "
                  f"{snr_db.max():.0f} dB")

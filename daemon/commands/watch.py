@@ -5,7 +5,13 @@ from __future__ import annotations
 import argparse
 
 from brimline.daemon.errors import InputError
-from brimline.daemon.views.watch import DEFAULT_STATUS_ENDPOINT, watch
+from brimline.daemon.views.watch import (
+    DEFAULT_CLEAR_AFTER_S,
+    DEFAULT_SNR_SCALE_DB,
+    DEFAULT_STATUS_ENDPOINT,
+    parse_snr_scale,
+    watch,
+)
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
@@ -23,6 +29,16 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--own-key", default=None, metavar="FILE",
                         help="this watcher's .key_secret file (brimline keys); its .key must "
                              "be in the daemon's publish.curve_clients_dir when that is set")
+    parser.add_argument("--tx-endpoint", default=None, metavar="ADDRESS",
+                        help="also show a transmitter's status (brimline tx publishes it on "
+                             "tx.status_endpoint, e.g. tcp://127.0.0.1:7345): applied map, lag, "
+                             "power against its limits")
+    lo, hi = DEFAULT_SNR_SCALE_DB
+    parser.add_argument("--snr-scale", default=f"{lo:g}:{hi:g}", metavar="LOW:HIGH",
+                        help=f"fixed SNR scale of the band picture, dB (default {lo:g}:{hi:g})")
+    parser.add_argument("--clear-after", type=float, default=DEFAULT_CLEAR_AFTER_S, metavar="S",
+                        help="an alarm stays at the top until it has been absent for S seconds "
+                             f"of link time (default {DEFAULT_CLEAR_AFTER_S:g})")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -32,7 +48,16 @@ def run(args: argparse.Namespace) -> int:
     if "://" not in args.endpoint:
         raise InputError(f"--endpoint={args.endpoint!r} must be a ZeroMQ address such as "
                          f"{DEFAULT_STATUS_ENDPOINT}")
+    if args.tx_endpoint is not None and "://" not in args.tx_endpoint:
+        raise InputError(f"--tx-endpoint={args.tx_endpoint!r} must be a ZeroMQ address such "
+                         f"as tcp://127.0.0.1:7345")
+    if not (args.clear_after >= 0 and args.clear_after < float("inf")):
+        raise InputError(f"--clear-after={args.clear_after} must be a finite number of "
+                         f"seconds >= 0")
+    scale = parse_snr_scale(args.snr_scale)
     if (args.daemon_key is None) != (args.own_key is None):
         raise InputError("--daemon-key and --own-key go together (CURVE needs both)")
     return watch(args.endpoint, once=args.once, duration_s=args.duration,
-                 curve_server_key=args.daemon_key, curve_client_key=args.own_key)
+                 curve_server_key=args.daemon_key, curve_client_key=args.own_key,
+                 tx_endpoint=args.tx_endpoint, snr_scale_db=scale,
+                 clear_after_s=args.clear_after)

@@ -427,15 +427,17 @@ class ChangeControl:
         broad = (n_raw >= self.emergency_fraction * n_loaded
                  and drop_db >= -self.downshift_margin_db)
         if (n_raw and broad) or drop_db >= self.emergency_drop_db:
+            moved = (f"mean SNR fell {drop_db:.1f} dB" if drop_db >= 0
+                     else f"mean SNR rose {-drop_db:.1f} dB")
             what = (f"{n_raw} of {_tones(n_loaded)} loaded below downshift margin "
-                    f"({worst_text}), mean SNR {-drop_db:+.1f} dB")
+                    f"({worst_text}), {moved} since the map")
             if rate_wait > 0:
                 return self._hold("held_rate", f"emergency pending: {what}; map rate limit "
                                   f"({rate_wait:.2f} s)")
             alloc, note = self._load(_lin(eff_db - self.emergency_margin_db))
             return self._adopt(DecisionKind.EMERGENCY, alloc,
-                               f"emergency: {what}; +{self.emergency_margin_db:g} dB margin"
-                               f"{note}", now_s, mean_db, restart_upgrade=True,
+                               f"emergency: {what}; new map with {self.emergency_margin_db:g} dB extra"
+                               f" margin{note}", now_s, mean_db, restart_upgrade=True,
                                cause="emergency_tones" if n_raw and broad else "emergency_drop")
 
         # Common mode: the band as a whole fell by common_drop_db since the map (most loaded

@@ -5,9 +5,12 @@ the server's identity to clients that know its public key. Which clients may con
 by a ZAP handler: here pyzmq's :class:`zmq.auth.thread.ThreadAuthenticator`, which admits the
 clients whose public key files sit in one directory.
 
-Key files are the usual ZeroMQ certificate text files, written by :func:`make_keypair`
-(``NAME.key`` holds the public key, ``NAME.key_secret`` the public and the secret key; only the
-latter must be kept private).
+Key files are ZeroMQ certificate text files (``public-key = "..."`` and ``secret-key = "..."``
+lines under ``curve``, the layout pyzmq's ``zmq.auth.load_certificate`` and its
+``ThreadAuthenticator`` read), written by :func:`make_keypair` with a comment header of our own
+that says where each half goes in a brimline config (:func:`key_file_header`): ``NAME.key``
+holds the public key, ``NAME.key_secret`` the public and the secret key; only the latter must be
+kept private. The secret file is created with mode 0600 before any key is written to it.
 
 Every key file is read here, by :func:`load_keypair`, and checked before ZeroMQ sees it: a
 regular file of at most 64 KiB, a ``public-key`` line, each key exactly 40 characters of the
@@ -36,13 +39,12 @@ from pathlib import Path
 from typing import Any, Mapping
 
 import zmq
-import zmq.auth
 from zmq.auth.thread import ThreadAuthenticator
 
 from brimline.daemon.errors import InputError
 
-__all__ = ["KeyPair", "make_keypair", "load_keypair", "load_public_key", "CurveServer",
-           "apply_client", "scan_client_keys", "check_server_keys", "follower_keys",
+__all__ = ["KeyPair", "make_keypair", "key_file_header", "load_keypair", "load_public_key",
+           "CurveServer", "apply_client", "scan_client_keys", "check_server_keys", "follower_keys",
            "exposed_endpoints", "is_loopback_endpoint"]
 
 log = logging.getLogger("brimline.curve")
@@ -59,6 +61,55 @@ class KeyPair:
 
     public: bytes
     secret: bytes | None
+
+
+def key_file_header(name: str, *, secret: bool) -> str:
+    """The comment lines at the top of a key file written by :func:`make_keypair`.
+
+    They say, in this project's terms, where the file goes: the secret half is named by the
+    daemon's ``publish.curve_secret_key`` (or given to a client as its own key), the public half
+    of a client goes into the folder named by the daemon's ``publish.curve_clients_dir``, the
+    daemon's public half goes to its clients. Every line starts with ``#``, so readers skip it.
+
+    Parameters
+    ----------
+    name : str
+        Base name of the pair (``NAME.key``, ``NAME.key_secret``).
+    secret : bool
+        The header of the secret file (else of the public file).
+
+    Returns
+    -------
+    str
+        Lines ending in a newline.
+    """
+    if secret:
+        lines = [
+            f"brimline CURVE key pair {name!r}: SECRET half ({name}.key_secret).",
+            "Keep this file on the one machine that uses it, readable by its owner only.",
+            f"A daemon: name it in the config, publish.curve_secret_key: {name}.key_secret",
+            "(a relative path counts from the config file's folder).",
+            "A client (brimline watch, a follower): give it as the client's own key,",
+            f"e.g. brimline watch --own-key {name}.key_secret, and put {name}.key into the",
+            "folder the daemon's publish.curve_clients_dir names.",
+        ]
+    else:
+        lines = [
+            f"brimline CURVE key pair {name!r}: public half ({name}.key). Safe to copy.",
+            "A client's public half: copy this file into the folder that the daemon's",
+            "publish.curve_clients_dir names; only clients whose .key is there get in",
+            "(with no clients folder set, any client that knows the daemon's key gets in).",
+            "The daemon's public half: give it to every client as the daemon's key,",
+            f"e.g. brimline watch --daemon-key {name}.key.",
+        ]
+    return "".join(f"# {line}\n" for line in lines) + "#\n"
+
+
+def _key_file_text(name: str, public: bytes, secret: bytes | None) -> str:
+    body = f'curve\n    public-key = "{public.decode("ascii")}"\n'
+    if secret is not None:
+        body += f'    secret-key = "{secret.decode("ascii")}"\n'
+    return key_file_header(name, secret=secret is not None) + body
 
 
 def make_keypair(directory: str | Path, name: str = "brimline") -> tuple[Path, Path]:
@@ -80,6 +131,13 @@ def make_keypair(directory: str | Path, name: str = "brimline") -> tuple[Path, P
     InputError
         When ``name`` is unusable, either file exists already (keys are never overwritten) or
         the directory cannot be written.
+
+    Notes
+    -----
+    The pair comes from ``zmq.curve_keypair`` (Curve25519, ZeroMQ RFC 26/CURVEZMQ), written as
+    Z85 text (ZeroMQ RFC 32/Z85). Each file starts with :func:`key_file_header`. The secret
+    file is opened with ``O_CREAT | O_EXCL`` and mode 0600, so it is never readable by others,
+    not even for a moment, and an existing file is never replaced.
     """
     if not name or not all(c.isalnum() or c in "-_." for c in name) or name.startswith("."):
         raise InputError(f"key name {name!r} must be letters, digits, '-', '_' or '.'")
@@ -88,13 +146,19 @@ def make_keypair(directory: str | Path, name: str = "brimline") -> tuple[Path, P
     for p in (public, secret):
         if p.exists():
             raise InputError(f"{p}: exists already; keys are never overwritten")
+    pub_key, sec_key = zmq.curve_keypair()
     try:
         d.mkdir(parents=True, exist_ok=True)
-        pub, sec = zmq.auth.create_certificates(str(d), name)
-        os.chmod(sec, 0o600)
+        for path, text, mode in ((secret, _key_file_text(name, pub_key, sec_key), 0o600),
+                                 (public, _key_file_text(name, pub_key, None), 0o644)):
+            fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, mode)
+            with os.fdopen(fd, "w", encoding="ascii") as f:
+                f.write(text)
+    except FileExistsError as exc:
+        raise InputError(f"{exc.filename}: exists already; keys are never overwritten") from None
     except OSError as exc:
         raise InputError(f"{d}: cannot write keys: {exc}") from exc
-    return Path(pub), Path(sec)
+    return public, secret
 
 
 def _z85_problem(key: bytes) -> str | None:

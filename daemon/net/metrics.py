@@ -129,11 +129,21 @@ class StatusCollector:
                           value=rate.get("bits_per_symbol", 0))
         if rate.get("rate_bps") is not None:
             yield self._gauge("brimline_map_rate_bits_per_second",
-                              "raw bit rate of the map in force", value=rate["rate_bps"])
+                              "line rate of the map in force: bits per symbol x OFDM symbols "
+                              "per second, as if every symbol carried data",
+                              value=rate["rate_bps"])
+        if rate.get("data_rate_bps") is not None:
+            yield self._gauge("brimline_map_data_rate_bits_per_second",
+                              "data rate of the map in force: data symbols only",
+                              value=rate["data_rate_bps"])
         if st.get("margin_db") is not None:
             yield self._gauge("brimline_map_margin_decibels",
-                              "margin of the map in force beyond the loading gap",
+                              "headroom of the map in force beyond its target margin",
                               value=st["margin_db"])
+        target = (st.get("margin") or {}).get("target_db")
+        if target is not None:
+            yield self._gauge("brimline_map_target_margin_decibels",
+                              "target noise margin the loader adds to the gap", value=target)
         yield self._gauge("brimline_map_seq", "sequence number of the map in force",
                           value=m.get("seq", -1))
         yield self._gauge("brimline_map_fallback", "1 while the safe fallback map is in force",

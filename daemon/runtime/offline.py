@@ -61,10 +61,11 @@ from brimline.daemon.net.publisher import MapPublisher, StatusPublisher
 from brimline.daemon.records import Estimate, LoadMap
 from brimline.daemon.runtime.assemble import build_controller, build_core
 from brimline.daemon.runtime.config import Config, config_with, load_config
-from brimline.daemon.runtime.status import build_status, controller_fields
+from brimline.daemon.runtime.status import build_status, controller_fields, frame_fields
 from brimline.daemon.wire.codec import TOPIC_ESTIMATE
 from brimline.daemon.wire.export import ExportTables
 from brimline.daemon.wire.recording import RecordReader, recording_epoch, recording_paths
+from brimline.drivers.link.frame import make_plan
 from brimline.drivers.sources.iq import IqDriver
 from brimline.drivers.sources.replay import ReplayDriver
 
@@ -794,8 +795,10 @@ class ReplayPublisher:
             self.close()
             raise
         self.epoch = epoch
-        self._symbol_rate_hz = config.link.sample_rate_hz / (config.link.fft_size
-                                                             + config.link.cp_len)
+        self._target_margin_db = config.loading.margin_db
+        # symbol rate and frame layout of the config's link plan (no frame rate: a recording
+        # is replayed at its own pace, so the status gives no data rate)
+        self._frame = frame_fields(make_plan(**config.link.model_dump()))
 
     def endpoints(self) -> dict[str, str]:
         """The bound endpoints (ports resolved)."""
@@ -836,7 +839,7 @@ class ReplayPublisher:
         return build_status(time_s=time_s, epoch=self.epoch,
                             driver={"name": "replay", "state": "running", "error": None,
                                     "counters": {}},
-                            symbol_rate_hz=self._symbol_rate_hz,
+                            target_margin_db=self._target_margin_db, **self._frame,
                             **controller_fields(self._controller, time_s))
 
     def close(self) -> None:

@@ -93,6 +93,7 @@ from brimline.daemon.runtime.status import (
     build_status,
     controller_fields,
     driver_fields,
+    frame_fields,
     summary_line,
 )
 from brimline.daemon.runtime.timebase import Timebase
@@ -593,7 +594,7 @@ class Service:
         wall, now = self._clock(), self.core_now()
         return build_status(
             time_s=now, epoch=self.epoch, acks=self._io.ack_status(wall),
-            symbol_rate_hz=self.plan.sample_rate_hz / self.plan.symbol_len,
+            target_margin_db=self.config.loading.margin_db, **frame_fields(self.plan),
             recording=self._io.recording_status(), protocol_errors=self._io.protocol_errors(),
             **driver_fields(self.driver, self.driver_state, self.driver_error),
             **controller_fields(self.controller, now))

@@ -12,10 +12,12 @@ Layout of the message (version 1)::
      "frames": {"received", "accepted", "rejected": {reason: n}, "decode_errors", "last_frame",
                 "tracking": {counter: n}},   # estimator's tone outliers, jumps, resets
      "estimate_age_s": float | None,
-     "band": {"tone_first", "tone_last", "tones", "columns", "snr_db": [...], "bits": [...],
-              "power_db": [...]},
-     "rate": {"bits_per_symbol", "rate_bps"},
-     "margin_db": float | None,
+     "band": {"tone_first", "tone_last", "tones", "columns", "tones_per_column",
+              "tone_index": [...], "snr_db": [...], "bits": [...], "power_db": [...]},
+     "rate": {"bits_per_symbol", "data_rate_bps", "line_rate_bps", "rate_bps",
+              "frame_rate_hz", "data_symbols", "symbols_per_frame"},
+     "margin": {"headroom_db", "target_db"},
+     "margin_db": float | None,     # the same as margin.headroom_db (kept for older readers)
      "map": {"seq", "reason", "kind", "fallback", "effective_frame", "created_s"} | None,
      "maps_published": {kind: n},
      "changes": [{"time_s", "kind", "reason", "seq"}, ...],   # newest last
@@ -28,9 +30,27 @@ Layout of the message (version 1)::
                "repeated", "went_off", "dropped": {reason: n}} | None,   # outer margin loop
      "alarms": ["stale", "fallback", "emergency", "driver_failed", ...]}
 
-The band is compact: tones are grouped into at most ``columns`` adjacent groups; each group shows
-its *lowest* SNR (what limits loading), its mean bits and its mean power, rounded to 0.1.
+The band is compact: the data tones, in the one tone numbering used everywhere (the signed FFT
+bins of the tone plan's ``data_tones``, as in maps, estimates, logs and ``brimline plan``), are
+grouped into at most ``columns`` (256) groups of ``tones_per_column`` adjacent data tones each
+(whole tones; only the last group may hold fewer), so with up to 256 data tones every group is
+one tone. ``tone_index`` holds each group's first tone. Each group shows its *lowest* SNR (what
+limits loading), its mean bits and its mean power relative to nominal, rounded to 0.1.
 Non-finite numbers become ``None`` so the message is strict JSON.
+
+Two rates are given and named apart. ``data_rate_bps`` counts the data symbols only: bits per
+data symbol of the map in force x ``data_symbols`` per frame x ``frame_rate_hz`` (frame slots
+per second; sync, training and header symbols, pilot tones, cyclic prefixes and the silent gap
+between frames carry no data). It is None when the source does not know its frame rate.
+``line_rate_bps`` (also under its old name ``rate_bps``) is bits per symbol x OFDM symbols per
+second (``sample_rate_hz / (fft_size + cp_len)``): the rate if every symbol time carried data at
+this map, an upper bound, not what the link delivers. The payload's 32-bit CRC is part of the
+data symbols. ``goodput_bps`` (``link``) is what was delivered.
+
+Two margins are given and named apart: ``margin.target_db`` is the target noise margin the
+loader adds to the gap (``loading.margin_db``); ``margin.headroom_db`` is the achieved headroom
+of the map in force beyond that target (how far every loaded tone's required power could still
+grow within budget and ceilings; the map's ``margin_db``).
 
 The ``link`` block is there when the source knows what was sent (the simulator): payload frames
 sent, those not delivered (payload CRC failed or frame lost), the frame error rate, payload bits
@@ -48,8 +68,9 @@ import numpy as np
 
 from brimline.daemon.core.controller import Change, LinkController
 
-__all__ = ["STATUS_VERSION", "ALARMS", "band_columns", "build_status", "controller_fields",
-           "driver_fields", "finite", "summary_line", "link_text"]
+__all__ = ["STATUS_VERSION", "ALARMS", "band_columns", "tone_columns", "build_status",
+           "controller_fields", "driver_fields", "frame_fields", "finite", "summary_line",
+           "link_text", "rate_text"]
 
 STATUS_VERSION = 1
 
@@ -113,6 +134,46 @@ def band_columns(values: np.ndarray, columns: int, how: str) -> np.ndarray:
         return np.nanmin(grid, axis=1) if how == "min" else np.nanmean(grid, axis=1)
 
 
+def tone_columns(values: np.ndarray, tones_per_column: int, how: str) -> np.ndarray:
+    """Group per-tone ``values`` into groups of ``tones_per_column`` whole adjacent tones.
+
+    Parameters
+    ----------
+    values : ndarray, shape (N,)
+        Per-tone values in tone order.
+    tones_per_column : int
+        Tones per group (>= 1); only the last group may hold fewer.
+    how : {"min", "mean"}
+        Reduction inside a group; NaN entries are ignored (a group of only NaN gives NaN).
+
+    Returns
+    -------
+    ndarray of float64, shape (ceil(N / tones_per_column),)
+    """
+    v = np.asarray(values, dtype=np.float64)
+    per = max(1, int(tones_per_column))
+    if how not in ("min", "mean"):
+        raise ValueError(f"how={how!r} must be 'min' or 'mean'")
+    if v.size == 0:
+        return v
+    k = -(-v.size // per)
+    grid = np.full(k * per, np.nan)
+    grid[:v.size] = v
+    grid = grid.reshape(k, per)
+    with warnings.catch_warnings():  # groups of only NaN give NaN without a warning
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmin(grid, axis=1) if how == "min" else np.nanmean(grid, axis=1)
+
+
+def frame_fields(plan) -> dict[str, Any]:
+    """The :func:`build_status` arguments a tone plan gives: ``symbol_rate_hz`` and, for a
+    plan with a frame layout (a ``LinkPlan``), ``data_symbols`` and ``symbols_per_frame``."""
+    out: dict[str, Any] = {"symbol_rate_hz": plan.sample_rate_hz / plan.symbol_len}
+    if hasattr(plan, "data_symbols") and hasattr(plan, "n_symbols"):
+        out.update(data_symbols=int(plan.data_symbols), symbols_per_frame=int(plan.n_symbols))
+    return out
+
+
 def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  frames: Mapping[str, Any], estimate_age_s: float | None,
                  tone_index: np.ndarray | None, snr_db: np.ndarray | None,
@@ -120,11 +181,14 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  maps_published: Mapping[str, int] | None = None,
                  changes: Sequence[Change] = (), acks: Mapping[str, Mapping] | None = None,
                  stale: bool = False, symbol_rate_hz: float | None = None,
-                 columns: int = 128, state_unsaved: bool = False,
+                 columns: int = 256, state_unsaved: bool = False,
                  recording: Mapping[str, Any] | None = None,
                  protocol_errors: Mapping[str, Mapping[str, int]] | None = None,
                  link: Mapping[str, Any] | None = None,
-                 outer: Mapping[str, Any] | None = None) -> dict:
+                 outer: Mapping[str, Any] | None = None,
+                 frame_rate_hz: float | None = None, data_symbols: int | None = None,
+                 symbols_per_frame: int | None = None,
+                 target_margin_db: float | None = None) -> dict:
     """Build the status message (see the module docstring for its layout).
 
     Parameters
@@ -158,9 +222,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     stale : bool
         Whether estimates are stale (no valid estimate within the configured time).
     symbol_rate_hz : float or None
-        OFDM symbols per second (sample rate / (FFT size + CP)); gives ``rate_bps``.
+        OFDM symbols per second (sample rate / (FFT size + CP)); gives ``line_rate_bps``.
     columns : int
-        Largest number of band groups.
+        Largest number of band groups (each of whole tones).
     state_unsaved : bool
         The daemon could not save its state (sequence-number lease): alarm ``state_unsaved``;
         no new map is sent until a save succeeds.
@@ -176,6 +240,13 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     outer : mapping, optional
         The outer margin loop's status (:meth:`LinkController.outer_status`); None without
         an outer loop.
+    frame_rate_hz : float or None
+        Frame slots per second of the link (None: unknown); with ``data_symbols`` gives
+        ``data_rate_bps``.
+    data_symbols, symbols_per_frame : int or None
+        Data symbols per frame and all symbols per frame (sync, training, header, data).
+    target_margin_db : float or None
+        The loader's target noise margin (``loading.margin_db``), dB.
 
     Returns
     -------
@@ -184,23 +255,26 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     """
     m = current_map
     band: dict[str, Any] = {"tone_first": None, "tone_last": None, "tones": 0, "columns": 0,
-                            "snr_db": [], "bits": [], "power_db": []}
+                            "tones_per_column": 1, "tone_index": [], "snr_db": [], "bits": [],
+                            "power_db": []}
     tones = None
     if m is not None:
         tones = np.asarray(m.tone_index)
     elif tone_index is not None:
         tones = np.asarray(tone_index)
     if tones is not None and tones.size:
-        band.update(tone_first=int(tones[0]), tone_last=int(tones[-1]), tones=int(tones.size))
+        per = -(-int(tones.size) // max(1, int(columns)))
+        band.update(tone_first=int(tones[0]), tone_last=int(tones[-1]), tones=int(tones.size),
+                    tones_per_column=per, tone_index=[int(t) for t in tones[::per]])
         if snr_db is not None and np.asarray(snr_db).size == tones.size:
-            band["snr_db"] = _rounded_list(band_columns(snr_db, columns, "min"))
+            band["snr_db"] = _rounded_list(tone_columns(snr_db, per, "min"))
         if m is not None:
-            band["bits"] = _rounded_list(band_columns(m.bits, columns, "mean"))
+            band["bits"] = _rounded_list(tone_columns(m.bits, per, "mean"))
             with np.errstate(divide="ignore"):
                 p_db = 10.0 * np.log10(np.asarray(m.power_lin, dtype=np.float64))
             p_db[~np.isfinite(p_db)] = np.nan
-            band["power_db"] = _rounded_list(band_columns(p_db, columns, "mean"))
-        band["columns"] = max(len(band["snr_db"]), len(band["bits"]))
+            band["power_db"] = _rounded_list(tone_columns(p_db, per, "mean"))
+        band["columns"] = len(band["tone_index"])
 
     alarms = []
     if stale:
@@ -224,6 +298,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     bits_per_symbol = int(m.total_bits) if m is not None else 0
     rate_bps = (bits_per_symbol * float(symbol_rate_hz)
                 if symbol_rate_hz is not None and m is not None else None)
+    data_rate_bps = (bits_per_symbol * int(data_symbols) * float(frame_rate_hz)
+                     if None not in (frame_rate_hz, data_symbols) and m is not None else None)
     return {
         "type": "status",
         "version": STATUS_VERSION,
@@ -243,7 +319,15 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                                 dict(frames.get("tracking", {})).items() if v}},
         "estimate_age_s": finite(estimate_age_s),
         "band": band,
-        "rate": {"bits_per_symbol": bits_per_symbol, "rate_bps": finite(rate_bps, 1)},
+        "rate": {"bits_per_symbol": bits_per_symbol,
+                 "data_rate_bps": finite(data_rate_bps, 1),
+                 "line_rate_bps": finite(rate_bps, 1), "rate_bps": finite(rate_bps, 1),
+                 "frame_rate_hz": finite(frame_rate_hz),
+                 "data_symbols": None if data_symbols is None else int(data_symbols),
+                 "symbols_per_frame": None if symbols_per_frame is None
+                 else int(symbols_per_frame)},
+        "margin": {"headroom_db": finite(m.margin_db, 2) if m is not None else None,
+                   "target_db": finite(target_margin_db, 2)},
         "margin_db": finite(m.margin_db, 2) if m is not None else None,
         "map": None if m is None else {
             "seq": int(m.seq), "reason": str(m.reason), "kind": current_kind,
@@ -305,7 +389,8 @@ def controller_fields(controller: LinkController, time_s: float) -> dict[str, An
 
 def driver_fields(driver, state: str, error: str | None) -> dict[str, Any]:
     """The :func:`build_status` arguments a source gives: ``driver`` (name, state, error,
-    counters) and ``link`` (the simulator's closed-loop counts, else None).
+    counters), ``link`` (the simulator's closed-loop counts, else None) and ``frame_rate_hz``
+    (frame slots per second where the source knows it, as the simulator does, else None).
 
     A running source may report a state of its own (a supervised radio: "running",
     "reconnecting", "failed"); otherwise ``state`` (the service's view) is shown.
@@ -315,7 +400,8 @@ def driver_fields(driver, state: str, error: str | None) -> dict[str, Any]:
     link = getattr(driver, "link", None)
     return dict(driver={"name": getattr(driver, "name", "driver"), "state": shown,
                         "error": error, "counters": dict(getattr(driver, "counters", {}))},
-                link=None if link is None else link.summary())
+                link=None if link is None else link.summary(),
+                frame_rate_hz=getattr(driver, "frame_rate_hz", None))
 
 
 def summary_line(status: Mapping[str, Any]) -> str:
@@ -324,15 +410,22 @@ def summary_line(status: Mapping[str, Any]) -> str:
     rej = sum(dict(fr.get("rejected", {})).values()) + int(fr.get("decode_errors", 0))
     m = status.get("map") or {}
     rate = status.get("rate", {})
-    rbps = rate.get("rate_bps")
-    rate_txt = f"{rbps / 1e6:.2f} Mbit/s" if rbps is not None else "-"
     margin = status.get("margin_db")
-    margin_txt = f"{margin:+.1f} dB" if margin is not None else "-"
+    margin_txt = f"{margin:+.1f}dB" if margin is not None else "-"
+    target = (status.get("margin") or {}).get("target_db")
     alarms = status.get("alarms", [])
     return (f"t={_num(status.get('time_s'), '.1f')}s frames={fr.get('received', 0)} "
-            f"rejected={rej} bits/sym={rate.get('bits_per_symbol', 0)} rate={rate_txt} "
-            f"margin={margin_txt} seq={m.get('seq', '-')} {link_text(status.get('link'))}"
+            f"rejected={rej} bits/sym={rate.get('bits_per_symbol', 0)} {rate_text(rate)} "
+            f"headroom={margin_txt} target_margin={_num(target, '.1f')}dB "
+            f"seq={m.get('seq', '-')} {link_text(status.get('link'))}"
             f"alarms={','.join(alarms) if alarms else 'none'}")
+
+
+def rate_text(rate: Mapping[str, Any]) -> str:
+    """``data_rate=... line_rate=...`` of a status message's ``rate`` block, in Mbit/s."""
+    data, line = rate.get("data_rate_bps"), rate.get("line_rate_bps", rate.get("rate_bps"))
+    return (f"data_rate={'-' if data is None else f'{data / 1e6:.3f}Mbit/s'} "
+            f"line_rate={'-' if line is None else f'{line / 1e6:.2f}Mbit/s'}")
 
 
 def link_text(link: Mapping[str, Any] | None) -> str:

@@ -86,7 +86,18 @@ def tx_summary_line(status: dict) -> str:
             f"frame {status.get('frame', '-')}, sent {status.get('frames_sent', '-')}, "
             f"maps applied {status.get('maps_applied', '-')}, "
             f"underruns {status.get('underruns', '-')}, "
-            f"power clipped {status.get('power_clipped', '-')}")
+            f"power clipped {status.get('power_clipped', '-')}, "
+            f"lag {_or_dash(status.get('applied_lag_frames'))} frames, "
+            f"power {_or_dash(status.get('power_db'), '+.1f')} dB "
+            f"(limit {_or_dash(status.get('max_total_db'), '+.1f')} dB)")
+
+
+def _or_dash(value, spec: str = "") -> str:
+    return "-" if value is None else format(value, spec)
+
+
+def _rounded(value: float | None) -> float | None:
+    return None if value is None else round(value, 2)
 
 
 def slot_samples(plan: LinkPlan, frame_rate_hz: float) -> int:
@@ -179,6 +190,11 @@ class TxLoop:
         self.counters: collections.Counter[str] = collections.Counter()
         self._loss_since_s: float | None = None
         self._closed = False
+        #: frames between the map in force's effective frame and the frame it was first sent in
+        self.applied_lag_frames: int | None = None
+        #: the last frame's data-tone power after the bound: total and peak tone, dB
+        self.sent_power_db: float | None = None
+        self.sent_peak_tone_db: float | None = None
         follower.on_map = self._on_map
 
     # ------------------------------------------------------------------ one slot
@@ -236,6 +252,7 @@ class TxLoop:
             self.in_force = load_map
             if changed and load_map is not None:
                 self.counters["maps_applied"] += 1
+                self.applied_lag_frames = max(0, self.counter - int(load_map.effective_frame))
                 self.follower.ack(self.counter, now, load_map.seq)
             self._send(load_map)
             sent = True
@@ -245,6 +262,10 @@ class TxLoop:
     def _send(self, load_map: LoadMap | None) -> None:
         seq, bits, power = map_arrays(self.plan, load_map, self.default_bits)
         bounded = self.bound(power)
+        p = bounded.power_lin
+        total, peak = float(p.sum()), float(p.max(initial=0.0))
+        self.sent_power_db = 10.0 * math.log10(total / p.size) if total > 0 else None
+        self.sent_peak_tone_db = 10.0 * math.log10(peak) if peak > 0 else None
         if bounded.clipped:
             self.counters["power_clipped"] += 1
         frame = self.transmitter.frame(bits=bits, power_lin=bounded.power_lin, map_seq=seq,
@@ -264,7 +285,14 @@ class TxLoop:
     # ------------------------------------------------------------------ status, running
 
     def status(self, now_s: float) -> dict:
-        """The transmitter's status dict (published on the status socket)."""
+        """The transmitter's status dict (published on the status socket).
+
+        Besides the counters: ``applied_lag_frames`` (how many frames after its effective
+        frame the map in force was first sent; 0 is on time, None before any map),
+        ``power_db`` (the last frame's total data-tone power after the power bound, relative
+        to every data tone at nominal, dB) and ``peak_tone_db`` (its strongest tone, dB), next
+        to their limits ``max_total_db`` and ``max_tone_db``.
+        """
         device = getattr(self.sink, "device", None)
         underruns = self.counters["late_slots"] + int(
             getattr(device, "counters", {}).get("underruns", 0))
@@ -284,6 +312,11 @@ class TxLoop:
             "heartbeat_losses": int(self.counters["heartbeat_losses"]),
             "maps_rejected": int(f["rejected"]), "acks_sent": int(f["acks_sent"]),
             "sink": self.sink.name,
+            "applied_lag_frames": self.applied_lag_frames,
+            "power_db": _rounded(self.sent_power_db),
+            "peak_tone_db": _rounded(self.sent_peak_tone_db),
+            "max_total_db": self.bound.max_total_db, "max_tone_db": self.bound.max_tone_db,
+            "frame_rate_hz": self.frame_rate_hz,
         }
 
     def _publish(self, now_s: float, force: bool = False) -> None:
