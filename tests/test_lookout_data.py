@@ -125,7 +125,7 @@ class TestPageFrame:
         (("band",), [1, 2], r"band=\[1, 2\] is not a mapping"),
         (("map", "seq"), 1.5, r"map\.seq=1\.5 is not a whole number"),
         (("alarms",), [3], r"alarms\[0\]=3 is neither a name nor a mapping"),
-        (("rate", "rate_bps"), True, r"rate\.rate_bps=True is not a number"),
+        (("rate", "line_rate_bps"), True, r"rate\.line_rate_bps=True is not a number"),
     ])
     def test_a_known_field_of_the_wrong_type_is_a_protocol_error(self, where, value, match):
         st_ = _status()
