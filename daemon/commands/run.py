@@ -287,8 +287,10 @@ def end_summary(status: dict, timeline: Sequence[Change] = (), *,
     maps = status.get("maps_published", {})
     maps_txt = ", ".join(f"{k} {v}" for k, v in sorted(maps.items())) or "none"
     rate = status.get("rate", {})
-    rbps = rate.get("rate_bps")
-    margin = status.get("margin_db")
+    data_bps = rate.get("data_rate_bps")
+    line_bps = rate.get("line_rate_bps", rate.get("rate_bps"))
+    margin = status.get("margin") or {}
+    headroom, target = margin.get("headroom_db", status.get("margin_db")), margin.get("target_db")
     drv = status.get("driver", {})
     lines = [
         "run summary",
@@ -299,8 +301,11 @@ def end_summary(status: dict, timeline: Sequence[Change] = (), *,
         f"  rejected        {rej}",
         f"  maps published  {sum(maps.values())} ({maps_txt})",
         f"  final rate      {rate.get('bits_per_symbol', 0)} bits/symbol"
-        + (f", {rbps / 1e6:.3f} Mbit/s" if rbps is not None else ""),
-        "  final margin    " + ("-" if margin is None else f"{margin:+.2f} dB"),
+        + (f", data rate {data_bps / 1e6:.3f} Mbit/s" if data_bps is not None else "")
+        + (f", line rate {line_bps / 1e6:.3f} Mbit/s" if line_bps is not None else ""),
+        "  final margin    "
+        + ("-" if headroom is None else f"headroom {headroom:+.2f} dB")
+        + ("" if target is None else f" above the target margin {target:g} dB"),
     ]
     link = status.get("link")
     if link:
