@@ -25,6 +25,7 @@ from hypothesis import strategies as st
 from protocol_helpers import ANY_PORT, FakeClock, until
 
 from brimline.daemon.commands.cli import main
+from brimline.daemon.errors import SinkError
 from brimline.daemon.net.follower import Follower
 from brimline.daemon.net.publisher import MapPublisher
 from brimline.daemon.records import LoadMap
@@ -400,6 +401,66 @@ class TestRadioSink:
         with pytest.raises(SinkError, match=r"pip install 'brimline\[sdr\]'"):
             RadioSink(sample_rate_hz=1e6, center_hz=1e9)
 
+    def test_failed_device_is_rebuilt_with_capped_backoff(self):
+        """A tx() that fails: the sink drops the device, is silent (send() False, nothing
+        reaches a device), and reopens it 0.125 s after the fault; failed openings double the
+        wait up to the 0.5 s cap, and the new device gets the settings again, quiet until its
+        first slot. (Times are binary fractions, so the sums are exact.)"""
+        devices, opens = [FakeDevice()], {"fail": 0}
+
+        def opener():
+            if opens["fail"]:
+                opens["fail"] -= 1
+                raise SinkError("tx.radio.uri=x: no device")
+            devices.append(FakeDevice())
+            return devices[-1]
+        sink = RadioSink(sample_rate_hz=1e6, center_hz=1e9, attenuation_db=20.0,
+                         device_object=devices[0], open_device=opener,
+                         reopen_backoff_s=0.125, reopen_backoff_max_s=0.5)
+        slot = np.full(4, 0.5, np.complex64)
+        assert sink.ready(0.0) and sink.send(slot)
+        devices[0].fail_tx = 99
+        assert not sink.send(slot) and sink.state == "reconnecting"
+        assert sink.counters["device_errors"] == 1 and sink.device is None
+        opens["fail"] = 3
+        attempts, seen = [], 0
+        for k in range(40):
+            t = k / 16
+            opened = sink.ready(t)
+            if opened or sink.counters["reconnect_failures"] != seen:
+                seen = sink.counters["reconnect_failures"]
+                attempts.append(t)
+            if opened:
+                break
+        # the first ready() (0.0) starts the wait: 0.125 fails, +0.25 fails, +0.5 fails,
+        # +0.5 (capped) opens
+        assert attempts == [0.125, 0.375, 0.875, 1.375]
+        assert sink.state == "running" and sink.counters["reconnects"] == 1
+        assert sink.counters["reconnect_failures"] == 3 and len(devices) == 2
+        assert devices[1].calls[0] == ("set", "tx_hardwaregain_chan0", -MAX_ATTENUATION_DB)
+        assert sink.send(slot)
+        assert ("set", "tx_hardwaregain_chan0", -20.0) in devices[1].calls
+        assert sink.counters["slots"] == 2
+        sink.close()
+
+    def test_device_that_does_not_come_back_fails(self):
+        sink = RadioSink(sample_rate_hz=1e6, center_hz=1e9, device_object=FakeDevice(1),
+                         open_device=lambda: (_ for _ in ()).throw(OSError(19, "gone")),
+                         reopen_backoff_s=0.125, reopen_max_attempts=2)
+        assert not sink.send(np.zeros(4, np.complex64))
+        assert not sink.ready(0.0) and not sink.ready(0.125)
+        with pytest.raises(SinkError, match=r"tx.radio.uri=.*device gone after 2 attempts: "
+                                            r"OSError"):
+            sink.ready(0.375)
+        assert sink.state == "failed" and not sink.ready(9.0)
+        sink.close()
+
+    def test_bad_reopen_settings(self):
+        with pytest.raises(SinkError, match=r"tx.reopen_backoff_max_s=0.1 must be >= "
+                                            r"tx.reopen_backoff_s=0.2"):
+            RadioSink(sample_rate_hz=1e6, center_hz=1e9, device_object=FakeDevice(),
+                      reopen_backoff_s=0.2, reopen_backoff_max_s=0.1)
+
     def test_attenuation_out_of_range(self):
         from brimline.daemon.errors import SinkError
         with pytest.raises(SinkError, match=r"tx.attenuation_db=95.0 must be in"):
@@ -530,7 +591,7 @@ class Recorder:
     def _dump(self):
         with open(sys.argv[2], "w") as f: json.dump(self.log, f)
 
-radio.open_device = lambda **kw: Recorder()
+radio.factory_open = lambda **kw: Recorder()
 sys.exit(cli.main(["tx", "--config", sys.argv[1], "--quiet"]))
 """
 

@@ -267,7 +267,9 @@ def open_sink(config: Config, plan, *, device_object: Any = None,
         return RadioSink(sample_rate_hz=plan.sample_rate_hz, center_hz=plan.center_hz,
                          attenuation_db=tx.attenuation_db, backend=tx.backend,
                          device=tx.device, uri=tx.uri, emulated=config.emulated.model_dump(),
-                         device_object=device_object)
+                         device_object=device_object, reopen_backoff_s=tx.reopen_backoff_s,
+                         reopen_backoff_max_s=tx.reopen_backoff_max_s,
+                         reopen_max_attempts=tx.reopen_max_attempts)
     if tx.sink == "sigmf":
         return SigmfSink(tx.path, sample_rate_hz=plan.sample_rate_hz, center_hz=plan.center_hz)
     if tx.sink == "stream":

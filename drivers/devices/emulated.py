@@ -52,7 +52,8 @@ from brimline.daemon.limits import FINITE, NON_NEGATIVE, at_least, between, chec
 from brimline.drivers.air.loopback import AirReceiver, AirSender, StreamChannel
 from brimline.drivers.link.frame import make_plan
 
-__all__ = ["EmulatedRadio", "EMULATED_LIMITS", "TX_FULL_SCALE", "ADC_MAX", "MAX_ATTENUATION_DB"]
+__all__ = ["EmulatedRadio", "EMULATED_LIMITS", "TX_FULL_SCALE", "ADC_MAX", "MAX_ATTENUATION_DB",
+           "vanish_reference_s"]
 
 #: Limits of :class:`EmulatedRadio`'s numeric keyword arguments (the ``emulated:`` section).
 EMULATED_LIMITS = MappingProxyType({
@@ -78,6 +79,15 @@ _UNIT_TONE_ADC = 256.0  # ADC units RMS of a unit-power tone at the reference ga
 _REFERENCE_GAIN_DB = 30.0
 _TX_QUEUE = 4  # transmit buffers the "kernel" holds (pyadi-iio's default is four)
 _PROCESS_OPENED_S: list[float] = []  # monotonic time the first device of this process opened
+
+
+def vanish_reference_s() -> float:
+    """Monotonic time, s, that ``vanish_after_s`` counts from: the first emulated device opened
+    in this process (now, when none was yet). Tests that run many devices in one process place
+    a vanishing window with it."""
+    if not _PROCESS_OPENED_S:
+        _PROCESS_OPENED_S.append(time.monotonic())
+    return _PROCESS_OPENED_S[0]
 
 
 def _vanished(after_s: float | None, for_s: float) -> bool:
@@ -133,8 +143,7 @@ class EmulatedRadio:
                           **({} if vanish_after_s is None else
                              {"vanish_after_s": vanish_after_s})),
                      EMULATED_LIMITS, prefix="emulated.")
-        if not _PROCESS_OPENED_S:
-            _PROCESS_OPENED_S.append(time.monotonic())
+        vanish_reference_s()
         self._vanish = (vanish_after_s, float(vanish_for_s))
         self._check_present()
         self.uri = uri
