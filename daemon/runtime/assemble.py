@@ -5,7 +5,8 @@ them: the core parts (:func:`build_core`), the link controller (:func:`build_con
 estimate source (:func:`make_driver`), the state keeper and the recorder (:func:`open_state`,
 :func:`open_recorder`) and the simulated transmitter's follower (:func:`follower_factory`,
 :class:`FollowerMapProvider`), and the transmitter side of ``brimline tx``: its sink
-(:func:`open_sink`) and its loop (:func:`build_tx`). A part that rejects its section's values becomes one
+(:func:`open_sink`; :func:`open_loopback_sink` for the single-radio loopback) and its loop
+(:func:`build_tx`). A part that rejects its section's values becomes one
 :class:`~brimline.daemon.errors.ConfigError` naming the section.
 """
 
@@ -42,7 +43,8 @@ from brimline.drivers.sources.replay import ReplayDriver
 from brimline.drivers.sources.sim import SimDriver
 
 __all__ = ["build_core", "build_controller", "make_driver", "open_state", "open_recorder",
-           "open_iq_capture", "follower_factory", "FollowerMapProvider", "open_sink", "build_tx"]
+           "open_iq_capture", "follower_factory", "FollowerMapProvider", "open_sink",
+           "open_loopback_sink", "build_tx"]
 
 
 def build_core(config: Config):
@@ -276,6 +278,26 @@ def open_sink(config: Config, plan, *, device_object: Any = None,
         return IqStreamSink(tx.stream_endpoint, pattern=tx.stream_pattern, bind=tx.stream_bind,
                             context=context)
     raise SinkError(f"tx.sink={tx.sink!r} is not a known sink")  # pragma: no cover
+
+
+def open_loopback_sink(config: Config, plan) -> RadioSink:
+    """The transmit sink of the single-radio loopback (``driver.radio.transmit``).
+
+    A supervised :class:`RadioSink` on ``driver.radio``'s backend, device and URI with its
+    ``tx_attenuation_db``, rebuilt with its ``backoff_s``, ``backoff_max_s`` and
+    ``max_attempts`` (see :mod:`brimline.daemon.runtime.loopback`).
+
+    Raises
+    ------
+    SinkError
+        When the device cannot be opened (the message names ``driver.radio.uri``).
+    """
+    r = config.driver.radio
+    return RadioSink(sample_rate_hz=plan.sample_rate_hz, center_hz=plan.center_hz,
+                     attenuation_db=r.tx_attenuation_db, backend=r.backend, device=r.device,
+                     uri=r.uri, emulated=config.emulated.model_dump(),
+                     reopen_backoff_s=r.backoff_s, reopen_backoff_max_s=r.backoff_max_s,
+                     reopen_max_attempts=r.max_attempts, where="driver.radio")
 
 
 def build_tx(config: Config, plan, sink: Sink, *, status: bool = True, context=None,

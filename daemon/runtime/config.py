@@ -392,7 +392,8 @@ class RadioSection(Section):
         description="transmit attenuation, dB (>= 0; more is less power)")
     transmit: bool = Field(
         _RADIO["transmit"],
-        description="also send frames of the default map from this radio (loopback)")
+        description="also transmit from this radio, following the maps (single-radio "
+                    "loopback; brimline tx's loop with the tx: section's frame settings)")
     buffer_frames: int = Field(_RADIO["buffer_frames"], description="frames per receive buffer")
     default_bits: int = Field(
         _RADIO["default_bits"], description="bits per tone of the transmitter's default map")

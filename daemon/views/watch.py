@@ -273,8 +273,16 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
         alarm_text.append(f"   {n_bad} undecodable status messages"
                           + (f" ({why})" if why else ""), style="yellow")
 
-    body = Group(head, Text(""), figures, Text(""), chart, Text("recent changes", style="dim"),
-                 history, Text(""), alarm_text)
+    parts = [head, Text(""), figures, Text(""), chart, Text("recent changes", style="dim"),
+             history, Text(""), alarm_text]
+    transmitter = status.get("transmitter")
+    if isinstance(transmitter, dict):  # the single-radio loopback's transmitter
+        line = tx_summary_line(transmitter)
+        if transmitter.get("error"):
+            line += f": {transmitter['error']}"
+        parts[3:3] = [Text(line, style="yellow" if "transmitter_down" in alarms else ""),
+                      Text("")]
+    body = Group(*parts)
     return Panel(body, title="brimline watch", subtitle=endpoint,
                  border_style="red" if alarms else "green")
 
