@@ -15,6 +15,7 @@ import signal
 import subprocess
 import sys
 import textwrap
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -662,3 +663,102 @@ def test_radio_sink_silences_a_real_radio():
         sink.send(np.zeros(4800, np.complex64))
         dev = sink.device
     assert dev.tx_hardwaregain_chan0 == pytest.approx(-MAX_ATTENUATION_DB, abs=0.25)
+
+
+# --------------------------------------------------------------------------- CURVE
+
+
+def _curve_tx_config(tmp_path: Path, endpoints: dict, keys: str) -> Path:
+    p = tmp_path / "tx-curve.yaml"
+    p.write_text(textwrap.dedent(f"""\
+        publish:
+          map_endpoint: {endpoints.get("maps", "tcp://127.0.0.1:7341")}
+          snapshot_endpoint: {endpoints.get("snapshots", "tcp://127.0.0.1:7342")}
+          ack_endpoint: {endpoints.get("acks", "tcp://127.0.0.1:7344")}
+        tx:
+          sink: stream
+          stream_endpoint: tcp://127.0.0.1:0
+          status_endpoint: tcp://127.0.0.1:0
+        """) + keys)
+    return p
+
+
+class TestCurve:
+    def test_tx_follows_a_curve_secured_daemon(self, tmp_path):
+        """Keys from ``brimline keys``: the daemon admits the transmitter's public key (its
+        publish.curve_clients_dir). brimline tx's loop with tx.curve_daemon_key and
+        tx.curve_own_key adopts the daemon's maps, applies one and acknowledges it; a
+        transmitter with a key pair the daemon does not know never gets a map."""
+        from brimline.daemon.runtime.service import Service
+
+        for d, name in (("keys", "daemon"), ("clients", "tx1"), ("others", "stranger")):
+            assert main(["keys", str(tmp_path / d), "--name", name]) == 0
+        daemon_cfg = tmp_path / "daemon.yaml"
+        daemon_cfg.write_text(textwrap.dedent("""\
+            driver:
+              kind: sim
+              sim: {realtime: true, profile: awgn, doppler_hz: 0.0, snr_db: 27.0}
+            publish:
+              map_endpoint: tcp://127.0.0.1:0
+              snapshot_endpoint: tcp://127.0.0.1:0
+              ack_endpoint: tcp://127.0.0.1:0
+              linger_s: 0.0
+              curve_secret_key: keys/daemon.key_secret
+              curve_clients_dir: clients
+            status:
+              endpoint: tcp://127.0.0.1:0
+            """))
+        svc = Service(load_config(daemon_cfg))
+        stop = threading.Event()
+        runner = threading.Thread(target=svc.run, kwargs={"stop": stop}, daemon=True)
+        runner.start()
+        loops = []
+        try:
+            assert until(lambda: "acks" in svc.endpoints, timeout_s=60.0)
+            for own in ("clients/tx1.key_secret", "others/stranger.key_secret"):
+                cfg = load_config(_curve_tx_config(
+                    tmp_path, svc.endpoints, f"  curve_daemon_key: keys/daemon.key\n"
+                                             f"  curve_own_key: {own}\n"))
+                plan = make_plan(**cfg.link.model_dump())
+                loops.append(build_tx(cfg, plan, ListSink(), status=False))
+            good, stranger = loops
+            assert until(lambda: good.counters["maps_applied"] >= 1
+                         and good.follower.counters["acks_sent"] >= 1,
+                         step=lambda: [lp.step() for lp in loops], timeout_s=60.0)
+            assert good.in_force is not None and good.follower.synced
+            assert stranger.follower.current is None and not stranger.counters["maps_applied"]
+            seq = good.in_force.seq
+            assert until(lambda: svc.acks.get("followers", {}).get("count", 0) >= 2
+                         and svc.acks["followers"]["seq"] >= 0, timeout_s=60.0,
+                         step=lambda: good.step())
+            assert 0 <= svc.acks["followers"]["seq"] and seq >= 0
+        finally:
+            for lp in loops:
+                lp.close()
+            stop.set()
+            runner.join(60)
+            svc.close()
+
+    @pytest.mark.parametrize("keys, match", [
+        ("  curve_daemon_key: keys/daemon.key\n",
+         r"line \d+: tx.curve_own_key=None: tx.curve_daemon_key and tx.curve_own_key go "
+         r"together"),
+        ("  curve_daemon_key: keys/missing.key\n  curve_own_key: keys/tx.key_secret\n",
+         r"error: tx.curve_daemon_key=\S*/missing.key: cannot read CURVE key"),
+        ("  curve_daemon_key: keys/daemon.key\n  curve_own_key: keys/tx.key\n",
+         r"error: tx.curve_own_key=\S*/tx.key: has no secret key"),
+        ("  curve_daemon_key: keys/junk.key\n  curve_own_key: keys/tx.key_secret\n",
+         r"error: tx.curve_daemon_key=\S*/junk.key: public key "),
+    ])
+    def test_bad_key_settings_are_one_line(self, tmp_path, capsys, keys, match):
+        import re
+
+        for name in ("daemon", "tx"):
+            assert main(["keys", str(tmp_path / "keys"), "--name", name]) == 0
+        (tmp_path / "keys/junk.key").write_text("public-key = \"short\"\n")
+        cfg = _curve_tx_config(tmp_path, {}, keys)
+        capsys.readouterr()
+        for args in (["--check"], ["--duration", "5"]):
+            assert main(["tx", "--config", str(cfg), *args]) == 2
+            err = capsys.readouterr().err.strip().splitlines()
+            assert len(err) == 1 and re.search(match, err[0]), err

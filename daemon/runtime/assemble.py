@@ -304,15 +304,19 @@ def build_tx(config: Config, plan, sink: Sink, *, status: bool = True, context=N
              **follower_kwargs) -> TxLoop:
     """The transmitter loop of ``brimline tx`` around ``sink``.
 
-    Its follower is :meth:`Follower.for_daemon` of the config's ``publish`` and ``loading``
-    (``follower_kwargs`` override, e.g. endpoints, ``clock``); its status socket binds
+    Its follower is :meth:`Follower.for_daemon` of the config's ``publish`` and ``loading``,
+    a CURVE client with ``tx.curve_daemon_key`` and ``tx.curve_own_key`` when they are set
+    (``follower_kwargs`` override, e.g. endpoints, ``clock``, keys); its status socket binds
     ``tx.status_endpoint`` (``status=False``: none). The caller owns the loop and closes it
     (which silences the sink).
     """
     tx = config.tx
     clock = follower_kwargs.get("clock")
+    keys = {} if tx.curve_daemon_key is None else {
+        "curve_server_key": tx.curve_daemon_key, "curve_client_key": tx.curve_own_key}
+    keys.update(follower_kwargs)
     follower = Follower.for_daemon(config.publish, config.loading, plan=plan, context=context,
-                                   **follower_kwargs)
+                                   **keys)
     publisher = None
     try:
         if status:

@@ -1050,6 +1050,12 @@ class TxSection(Section):
     status_endpoint: str = Field("tcp://127.0.0.1:7345",
                                  description="the transmitter's status PUB (bind)")
     status_rate_hz: float = Field(4.0, description="periodic status messages per second")
+    curve_daemon_key: Optional[str] = Field(
+        None, description="the daemon's public .key file: follow it over CURVE (with "
+                          "curve_own_key)")
+    curve_own_key: Optional[str] = Field(
+        None, description="this transmitter's .key_secret file (brimline keys); its .key goes "
+                          "in the daemon's publish.curve_clients_dir")
     reopen_backoff_s: float = Field(
         _SINK["reopen_backoff_s"],
         description="radio sink: first wait before rebuilding a failed device, s")
@@ -1063,6 +1069,14 @@ class TxSection(Section):
     @classmethod
     def _reopen_within_limits(cls, v, info):
         return _within(REOPEN_LIMITS[info.field_name], info.field_name, v)
+
+    @model_validator(mode="after")
+    def _curve_pair(self) -> "TxSection":
+        if (self.curve_daemon_key is None) != (self.curve_own_key is None):
+            missing = "curve_own_key" if self.curve_own_key is None else "curve_daemon_key"
+            raise KeyProblem((missing,), None, "tx.curve_daemon_key and tx.curve_own_key go "
+                                               "together (CURVE needs both)")
+        return self
 
     @model_validator(mode="after")
     def _reopen_order(self) -> "TxSection":
@@ -1626,6 +1640,6 @@ def _resolve_paths(config: Config, base: Path) -> Config:
         "service": section(config.service, "state_path"),
         "record": section(config.record, "path").model_copy(
             update={"iq": section(config.record.iq, "path")}),
-        "tx": section(config.tx, "path"),
+        "tx": section(config.tx, "path", "curve_daemon_key", "curve_own_key"),
         "publish": section(config.publish, "curve_secret_key", "curve_clients_dir"),
     })
