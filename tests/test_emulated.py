@@ -405,3 +405,106 @@ def test_two_processes_close_the_loop_over_the_emulated_air(tmp_path):
     applied = int(last.split("maps applied ")[1].split(",")[0])
     assert applied >= 1 and " map -1," not in last, last
     assert daemon.returncode == 0, err
+
+
+def test_rehearsal_survives_every_fault_and_shows_it(monkeypatch):
+    """Both ends of the rehearsal (config/rehearsal-rx.yaml, config/rehearsal-tx.yaml) in one
+    process on the real air sockets, with every fault knob on at once: receive overflows every
+    40 buffers, a receive timeout every 150, the receiving device gone for 2 s, its sample clock
+    50 ppm fast, and a transmit underrun every 60 buffer periods. Each is survived (valid
+    estimates and new maps after all of them) and shows in the status stream (the daemon's
+    driver state and counters, the transmitter's underruns), and no map is made from a stale or
+    damaged estimate: a map published while the radio is away is the fallback map, and every
+    other map comes from a valid estimate younger than fallback.stale_after_s."""
+    from pathlib import Path
+
+    from brimline.daemon.runtime.assemble import build_core, build_tx, open_sink
+    from brimline.daemon.runtime.config import load_config
+    from brimline.daemon.runtime.service import Service
+
+    root = Path(__file__).resolve().parents[1] / "config"
+    air = f"tcp://127.0.0.1:{_free_ports(1)[0]}"
+    vanish_at = time.monotonic() - vanish_reference_s() + 8.0
+    back_s = vanish_reference_s() + vanish_at + 2.0  # monotonic time the radio returns
+    rx_cfg = load_config(root / "rehearsal-rx.yaml", overrides={
+        "emulated.air_endpoint": air, "emulated.overflow_every": 40,
+        "emulated.rx_timeout_every": 150, "emulated.vanish_after_s": vanish_at,
+        "emulated.vanish_for_s": 2.0, "emulated.clock_ppm": 50.0,
+        "driver.radio.backoff_s": 0.1, "driver.radio.backoff_max_s": 0.4,
+        "publish.map_endpoint": ANY_PORT, "publish.snapshot_endpoint": ANY_PORT,
+        "publish.ack_endpoint": ANY_PORT, "status.endpoint": ANY_PORT,
+        # quick to move, so that maps keep coming after each fault
+        "emulated.profile": "epa", "emulated.doppler_hz": 2.0,
+        "change.up_dwell_s": 0.2, "change.max_maps_per_s": 8.0})
+    tx_cfg = load_config(root / "rehearsal-tx.yaml", overrides={
+        "emulated.air_endpoint": air, "emulated.tx_underrun_every": 60,
+        "tx.status_endpoint": ANY_PORT})
+    stale_after_s = rx_cfg.fallback.stale_after_s
+    made = []  # (map, estimate valid, estimate age s, driver state) for maps from estimates
+    away = []  # maps published while the receiving radio was away
+
+    svc = Service(rx_cfg)
+    process = svc.process
+
+    def taking(estimate, **kw):
+        before = svc.current_map
+        now = time.monotonic()
+        out = process(estimate, **kw)
+        m = svc.current_map
+        if m is not None and m is not before:
+            made.append((m, estimate.valid, now - estimate.time_s))
+        return out
+    svc.process = taking
+
+    from brimline.daemon.net.publisher import MapPublisher
+    real_publish = MapPublisher.publish
+
+    def publish(self, load_map):
+        if svc.driver is not None and getattr(svc.driver, "state", "") == "reconnecting":
+            away.append(load_map)
+        return real_publish(self, load_map)
+    monkeypatch.setattr(MapPublisher, "publish", publish)
+
+    plan = build_core(tx_cfg)[0]
+    statuses, tx_statuses = [], []
+    with open_sink(tx_cfg, plan) as sink, svc:
+        svc.start()
+        ep = svc.endpoints
+        loop = build_tx(tx_cfg, plan, sink, status=False, map_endpoint=ep["maps"],
+                        snapshot_endpoint=ep["snapshots"], ack_endpoint=ep["acks"])
+        stop = threading.Event()
+        runner = threading.Thread(target=loop.run, args=(stop,), daemon=True)
+        runner.start()
+
+        def step():
+            st = svc.step(0.05)
+            if st is not None:
+                statuses.append(st)
+                tx_statuses.append(loop.status(time.monotonic()))
+
+        def done():
+            if not statuses:
+                return False
+            last = statuses[-1]
+            c = last["driver"]["counters"]
+            return (c.get("timeouts", 0) >= 1 and c.get("reconnect_failures", 0) >= 1
+                    and c.get("suspected_overflows", 0) + c.get("lost_frames", 0) >= 1
+                    and last["driver"]["state"] == "running"
+                    and tx_statuses[-1]["underruns"] >= 1
+                    and any(not m.fallback and m.created_s > back_s for m, *_ in made))
+        try:
+            assert until(done, step=step, timeout_s=240.0), statuses[-1:]
+        finally:
+            stop.set()
+            runner.join(30)
+            loop.close()
+    assert statuses[-1]["driver"]["state"] == "running"
+    shown = [s for s in statuses if s["driver"]["state"] == "reconnecting"]
+    assert all("driver_reconnecting" in s["alarms"] for s in shown)
+    c = statuses[-1]["driver"]["counters"]
+    assert c["damaged_frames"] >= 1  # frames spliced across an overflow: marked invalid
+    assert tx_statuses[-1]["state"] in ("following", "holding")
+    # No map from a stale or damaged estimate.
+    assert away and all(m.fallback for m in away), [m.reason for m in away]
+    assert all(valid and age < stale_after_s for m, valid, age in made if not m.fallback)
+    assert any(s["driver"]["state"] == "reconnecting" for s in statuses)
