@@ -220,6 +220,24 @@ class TestAir:
             assert np.array_equal(receiver.take(8), np.r_[np.arange(6), 0, 0])
             assert receiver.counters["silent_samples"] == 2
 
+    def test_messages_are_placed_by_their_index(self, ctx):
+        """A jump of the first-sample index (the transmitter sent nothing for a while) is that
+        much silence in the stream; an index that goes back (a transmitter started again) is a
+        new start."""
+        with AirSender(ANY_PORT, context=ctx) as sender, \
+                AirReceiver(sender.endpoint, context=ctx) as receiver:
+            assert until(lambda: receiver.drain() > 0,
+                         step=lambda: sender.send(0, np.zeros(4, np.complex64)))
+            receiver.take(receiver.drain())
+            sender.send(10, np.arange(1, 4, dtype=np.complex64))
+            sender.send(15, np.arange(4, 6, dtype=np.complex64))
+            sender.send(0, np.arange(6, 8, dtype=np.complex64))
+            assert until(lambda: receiver.drain() >= 15)
+            before = receiver.counters["gap_samples"]
+            assert np.array_equal(receiver.take(receiver.drain()),
+                                  np.r_[[0] * 6, 1, 2, 3, 0, 0, 4, 5, 6, 7])
+            assert before == 8 and receiver.counters["silent_samples"] == 0
+
     def test_stream_channel_is_continuous_across_chunks(self, rng):
         """Passing a stream in two chunks gives the same (noise-free) output as in one, the
         filter tail carried over (linear time-invariant channel: convolution is associative
@@ -410,7 +428,7 @@ def test_two_processes_close_the_loop_over_the_emulated_air(tmp_path):
 def test_rehearsal_survives_every_fault_and_shows_it(monkeypatch):
     """Both ends of the rehearsal (config/rehearsal-rx.yaml, config/rehearsal-tx.yaml) in one
     process on the real air sockets, with every fault knob on at once: receive overflows every
-    40 buffers, a receive timeout every 150, the receiving device gone for 2 s, its sample clock
+    10 buffers, a receive timeout every 150, the receiving device gone for 2 s, its sample clock
     50 ppm fast, and a transmit underrun every 60 buffer periods. Each is survived (valid
     estimates and new maps after all of them) and shows in the status stream (the daemon's
     driver state and counters, the transmitter's underruns), and no map is made from a stale or
@@ -427,7 +445,7 @@ def test_rehearsal_survives_every_fault_and_shows_it(monkeypatch):
     vanish_at = time.monotonic() - vanish_reference_s() + 8.0
     back_s = vanish_reference_s() + vanish_at + 2.0  # monotonic time the radio returns
     rx_cfg = load_config(root / "rehearsal-rx.yaml", overrides={
-        "emulated.air_endpoint": air, "emulated.overflow_every": 40,
+        "emulated.air_endpoint": air, "emulated.overflow_every": 10,
         "emulated.rx_timeout_every": 150, "emulated.vanish_after_s": vanish_at,
         "emulated.vanish_for_s": 2.0, "emulated.clock_ppm": 50.0,
         "driver.radio.backoff_s": 0.1, "driver.radio.backoff_max_s": 0.4,

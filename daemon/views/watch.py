@@ -378,7 +378,12 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
                         drops.drop("status", exc.reason, str(exc))
                         continue
                     if isinstance(record, dict) and record.get("type") == TX_STATUS_TYPE:
-                        # a transmitter's status (brimline tx): one plain line each
+                        # a transmitter's status (brimline tx): one plain line each, and no
+                        # daemon panel or "no status yet" for a stream that has none
+                        announced_missing = True
+                        if live is not None and status is None:
+                            live.stop()
+                            live = None
                         print(tx_summary_line(record), file=out, flush=True)
                         if once:
                             return 0
