@@ -113,3 +113,17 @@ def test_transmitter_that_cannot_start_is_shown_as_failed():
     assert "transmitter_down" in build_status(
         time_s=0.0, epoch="e", driver={"name": "radio", "state": "running"}, frames={},
         estimate_age_s=None, tone_index=None, snr_db=None, transmitter=st)["alarms"]
+
+
+def test_frame_rate_the_loopback_cannot_keep_is_one_line(tmp_path, capsys):
+    """The loopback's frame rate is the tx: section's, and the config's own check of it
+    against the frame length holds for a daemon's file (one line naming the key, exit 2)."""
+    from brimline.daemon.commands.cli import main
+
+    cfg = tmp_path / "loop.yaml"
+    cfg.write_text((ROOT / "config" / "rehearsal-rx.yaml").read_text().replace(
+        "    default_bits: 2\n", "    default_bits: 2\n    transmit: true\n", 1)
+        + "\ntx:\n  frame_rate_hz: 500.0\n")
+    assert main(["run", "--config", str(cfg), "--check"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "tx.frame_rate_hz=500.0" in err[0], err

@@ -208,7 +208,7 @@ class RadioSink(Sink):
         _log.warning("%s at %s: %s: %s; silent until the device is reopened", self.where,
                      self.uri, "transmit timeout" if timeout else "device error",
                      f"{type(exc).__name__}: {exc}"[:200])
-        self._silence()  # as far as the failed device still answers
+        self._silence_device(warn=False)  # as far as the failed device still answers
         self._tear_down(self.device)
         self.device = None
         self.state = "reconnecting"
@@ -241,6 +241,9 @@ class RadioSink(Sink):
             self._fault(exc)
 
     def _silence(self) -> None:
+        self._silence_device(warn=True)
+
+    def _silence_device(self, *, warn: bool) -> None:
         sdr = self.device
         if sdr is None:
             return  # no device: nothing is transmitting
@@ -256,7 +259,8 @@ class RadioSink(Sink):
                 step()
             except _DEVICE_ERRORS as exc:  # keep going: every later step still helps
                 self.counters[f"silence_failed:{what}"] += 1
-                _log.warning("%s: silencing step %s failed: %s", self.where, what, exc)
+                if warn:
+                    _log.warning("%s: silencing step %s failed: %s", self.where, what, exc)
         self._quiet = True
 
     def _release(self) -> None:
