@@ -419,9 +419,11 @@ class TestRadioDriver:
                 if len(ests) == 4:
                     break
         assert calls["uri"] == "ip:192.0.2.7" and calls["rx_lo"] == 2412000000
-        assert calls["tx_hardwaregain_chan0"] == -40.0 and calls["tx_cyclic_buffer"] is True
         assert calls["gain_control_mode_chan0"] == "manual" and calls["rx_hardwaregain_chan0"] == 20
-        assert calls["tx_peak"] <= 2 ** 14 and calls["rx_destroyed"] and calls["tx_destroyed"]
+        assert calls["rx_destroyed"] and calls["tx_destroyed"]
+        # transmit=True: the daemon's loopback transmitter sends (runtime/loopback.py, tested in
+        # test_loopback.py); the receive driver itself never transmits
+        assert "tx_peak" not in calls and "tx_cyclic_buffer" not in calls
         assert all(e.header_ok and e.center_hz == 2.412e9 for e in ests)
 
     def test_needs_center_frequency(self, plan):
@@ -430,9 +432,10 @@ class TestRadioDriver:
 
     @pytest.mark.hardware
     def test_live_radio(self):
+        """Needs a radio at the default URI hearing a brimline transmitter (brimline tx, or a
+        daemon with driver.radio.transmit)."""
         pytest.importorskip("adi")
-        with RadioDriver(plan=make_plan(center_hz=2.4e9), transmit=True,
-                         tx_attenuation_db=60.0) as drv:
+        with RadioDriver(plan=make_plan(center_hz=2.4e9)) as drv:
             for est in drv.frames():
                 assert est.tone_index.size
                 break

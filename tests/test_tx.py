@@ -16,6 +16,7 @@ import signal
 import subprocess
 import sys
 import textwrap
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -26,6 +27,7 @@ from hypothesis import strategies as st
 from protocol_helpers import ANY_PORT, FakeClock, until
 
 from brimline.daemon.commands.cli import main
+from brimline.daemon.errors import SinkError
 from brimline.daemon.net.follower import Follower
 from brimline.daemon.net.publisher import MapPublisher
 from brimline.daemon.records import LoadMap
@@ -401,6 +403,66 @@ class TestRadioSink:
         with pytest.raises(SinkError, match=r"pip install 'brimline\[sdr\]'"):
             RadioSink(sample_rate_hz=1e6, center_hz=1e9)
 
+    def test_failed_device_is_rebuilt_with_capped_backoff(self):
+        """A tx() that fails: the sink drops the device, is silent (send() False, nothing
+        reaches a device), and reopens it 0.125 s after the fault; failed openings double the
+        wait up to the 0.5 s cap, and the new device gets the settings again, quiet until its
+        first slot. (Times are binary fractions, so the sums are exact.)"""
+        devices, opens = [FakeDevice()], {"fail": 0}
+
+        def opener():
+            if opens["fail"]:
+                opens["fail"] -= 1
+                raise SinkError("tx.radio.uri=x: no device")
+            devices.append(FakeDevice())
+            return devices[-1]
+        sink = RadioSink(sample_rate_hz=1e6, center_hz=1e9, attenuation_db=20.0,
+                         device_object=devices[0], open_device=opener,
+                         reopen_backoff_s=0.125, reopen_backoff_max_s=0.5)
+        slot = np.full(4, 0.5, np.complex64)
+        assert sink.ready(0.0) and sink.send(slot)
+        devices[0].fail_tx = 99
+        assert not sink.send(slot) and sink.state == "reconnecting"
+        assert sink.counters["device_errors"] == 1 and sink.device is None
+        opens["fail"] = 3
+        attempts, seen = [], 0
+        for k in range(40):
+            t = k / 16
+            opened = sink.ready(t)
+            if opened or sink.counters["reconnect_failures"] != seen:
+                seen = sink.counters["reconnect_failures"]
+                attempts.append(t)
+            if opened:
+                break
+        # the first ready() (0.0) starts the wait: 0.125 fails, +0.25 fails, +0.5 fails,
+        # +0.5 (capped) opens
+        assert attempts == [0.125, 0.375, 0.875, 1.375]
+        assert sink.state == "running" and sink.counters["reconnects"] == 1
+        assert sink.counters["reconnect_failures"] == 3 and len(devices) == 2
+        assert devices[1].calls[0] == ("set", "tx_hardwaregain_chan0", -MAX_ATTENUATION_DB)
+        assert sink.send(slot)
+        assert ("set", "tx_hardwaregain_chan0", -20.0) in devices[1].calls
+        assert sink.counters["slots"] == 2
+        sink.close()
+
+    def test_device_that_does_not_come_back_fails(self):
+        sink = RadioSink(sample_rate_hz=1e6, center_hz=1e9, device_object=FakeDevice(1),
+                         open_device=lambda: (_ for _ in ()).throw(OSError(19, "gone")),
+                         reopen_backoff_s=0.125, reopen_max_attempts=2)
+        assert not sink.send(np.zeros(4, np.complex64))
+        assert not sink.ready(0.0) and not sink.ready(0.125)
+        with pytest.raises(SinkError, match=r"tx.radio.uri=.*device gone after 2 attempts: "
+                                            r"OSError"):
+            sink.ready(0.375)
+        assert sink.state == "failed" and not sink.ready(9.0)
+        sink.close()
+
+    def test_bad_reopen_settings(self):
+        with pytest.raises(SinkError, match=r"tx.reopen_backoff_max_s=0.1 must be >= "
+                                            r"tx.reopen_backoff_s=0.2"):
+            RadioSink(sample_rate_hz=1e6, center_hz=1e9, device_object=FakeDevice(),
+                      reopen_backoff_s=0.2, reopen_backoff_max_s=0.1)
+
     def test_attenuation_out_of_range(self):
         from brimline.daemon.errors import SinkError
         with pytest.raises(SinkError, match=r"tx.attenuation_db=95.0 must be in"):
@@ -531,7 +593,7 @@ class Recorder:
     def _dump(self):
         with open(sys.argv[2], "w") as f: json.dump(self.log, f)
 
-radio.open_device = lambda **kw: Recorder()
+radio.factory_open = lambda **kw: Recorder()
 sys.exit(cli.main(["tx", "--config", sys.argv[1], "--quiet"]))
 """
 
@@ -680,3 +742,102 @@ def test_watch_shows_the_transmitter_beside_the_daemon(pub, ctx):
     assert result == [0]
     screen = re.sub(r"\x1b\[[0-9;?]*[A-Za-z]", "", out.getvalue())  # styles off
     assert "applied map -1" in screen and "tx following" in screen
+
+
+# --------------------------------------------------------------------------- CURVE
+
+
+def _curve_tx_config(tmp_path: Path, endpoints: dict, keys: str) -> Path:
+    p = tmp_path / "tx-curve.yaml"
+    p.write_text(textwrap.dedent(f"""\
+        publish:
+          map_endpoint: {endpoints.get("maps", "tcp://127.0.0.1:7341")}
+          snapshot_endpoint: {endpoints.get("snapshots", "tcp://127.0.0.1:7342")}
+          ack_endpoint: {endpoints.get("acks", "tcp://127.0.0.1:7344")}
+        tx:
+          sink: stream
+          stream_endpoint: tcp://127.0.0.1:0
+          status_endpoint: tcp://127.0.0.1:0
+        """) + keys)
+    return p
+
+
+class TestCurve:
+    def test_tx_follows_a_curve_secured_daemon(self, tmp_path):
+        """Keys from ``brimline keys``: the daemon admits the transmitter's public key (its
+        publish.curve_clients_dir). brimline tx's loop with tx.curve_daemon_key and
+        tx.curve_own_key adopts the daemon's maps, applies one and acknowledges it; a
+        transmitter with a key pair the daemon does not know never gets a map."""
+        from brimline.daemon.runtime.service import Service
+
+        for d, name in (("keys", "daemon"), ("clients", "tx1"), ("others", "stranger")):
+            assert main(["keys", str(tmp_path / d), "--name", name]) == 0
+        daemon_cfg = tmp_path / "daemon.yaml"
+        daemon_cfg.write_text(textwrap.dedent("""\
+            driver:
+              kind: sim
+              sim: {realtime: true, profile: awgn, doppler_hz: 0.0, snr_db: 27.0}
+            publish:
+              map_endpoint: tcp://127.0.0.1:0
+              snapshot_endpoint: tcp://127.0.0.1:0
+              ack_endpoint: tcp://127.0.0.1:0
+              linger_s: 0.0
+              curve_secret_key: keys/daemon.key_secret
+              curve_clients_dir: clients
+            status:
+              endpoint: tcp://127.0.0.1:0
+            """))
+        svc = Service(load_config(daemon_cfg))
+        stop = threading.Event()
+        runner = threading.Thread(target=svc.run, kwargs={"stop": stop}, daemon=True)
+        runner.start()
+        loops = []
+        try:
+            assert until(lambda: "acks" in svc.endpoints, timeout_s=60.0)
+            for own in ("clients/tx1.key_secret", "others/stranger.key_secret"):
+                cfg = load_config(_curve_tx_config(
+                    tmp_path, svc.endpoints, f"  curve_daemon_key: keys/daemon.key\n"
+                                             f"  curve_own_key: {own}\n"))
+                plan = make_plan(**cfg.link.model_dump())
+                loops.append(build_tx(cfg, plan, ListSink(), status=False))
+            good, stranger = loops
+            assert until(lambda: good.counters["maps_applied"] >= 1
+                         and good.follower.counters["acks_sent"] >= 1,
+                         step=lambda: [lp.step() for lp in loops], timeout_s=60.0)
+            assert good.in_force is not None and good.follower.synced
+            assert stranger.follower.current is None and not stranger.counters["maps_applied"]
+            seq = good.in_force.seq
+            assert until(lambda: svc.acks.get("followers", {}).get("count", 0) >= 2
+                         and svc.acks["followers"]["seq"] >= 0, timeout_s=60.0,
+                         step=lambda: good.step())
+            assert 0 <= svc.acks["followers"]["seq"] and seq >= 0
+        finally:
+            for lp in loops:
+                lp.close()
+            stop.set()
+            runner.join(60)
+            svc.close()
+
+    @pytest.mark.parametrize("keys, match", [
+        ("  curve_daemon_key: keys/daemon.key\n",
+         r"line \d+: tx.curve_own_key=None: tx.curve_daemon_key and tx.curve_own_key go "
+         r"together"),
+        ("  curve_daemon_key: keys/missing.key\n  curve_own_key: keys/tx.key_secret\n",
+         r"error: tx.curve_daemon_key=\S*/missing.key: cannot read CURVE key"),
+        ("  curve_daemon_key: keys/daemon.key\n  curve_own_key: keys/tx.key\n",
+         r"error: tx.curve_own_key=\S*/tx.key: has no secret key"),
+        ("  curve_daemon_key: keys/junk.key\n  curve_own_key: keys/tx.key_secret\n",
+         r"error: tx.curve_daemon_key=\S*/junk.key: public key "),
+    ])
+    def test_bad_key_settings_are_one_line(self, tmp_path, capsys, keys, match):
+        import re
+
+        for name in ("daemon", "tx"):
+            assert main(["keys", str(tmp_path / "keys"), "--name", name]) == 0
+        (tmp_path / "keys/junk.key").write_text("public-key = \"short\"\n")
+        cfg = _curve_tx_config(tmp_path, {}, keys)
+        capsys.readouterr()
+        for args in (["--check"], ["--duration", "5"]):
+            assert main(["tx", "--config", str(cfg), *args]) == 2
+            err = capsys.readouterr().err.strip().splitlines()
+            assert len(err) == 1 and re.search(match, err[0]), err

@@ -20,12 +20,13 @@ import time
 
 from brimline.daemon.commands.cli import RF_CAUTION
 from brimline.daemon.errors import ConfigError, InputError
+from brimline.daemon.net.curve import load_keypair
 from brimline.daemon.runtime.assemble import build_core, build_tx, open_sink
 from brimline.daemon.runtime.config import Config, load_config
 from brimline.daemon.runtime.transmitter import slot_samples, tx_summary_line
 from brimline.drivers.sinks.sigmf import sigmf_paths
 
-__all__ = ["configure", "run", "check_summary"]
+__all__ = ["configure", "run", "check_summary", "check_client_keys"]
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
@@ -40,13 +41,33 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="no live status line, warnings and errors only")
 
 
+def check_client_keys(daemon_key: str, own_key: str) -> None:
+    """Read the transmitter's CURVE key files (``tx.curve_daemon_key``, ``tx.curve_own_key``).
+
+    Raises
+    ------
+    ConfigError
+        One line naming the key, its file and the problem (missing, unreadable, not a key, a
+        public ``.key`` file where the ``.key_secret`` one is needed).
+    """
+    for key, path in (("curve_daemon_key", daemon_key), ("curve_own_key", own_key)):
+        try:
+            pair = load_keypair(path)
+        except InputError as exc:
+            raise ConfigError(f"tx.{key}={exc}") from None
+        if key == "curve_own_key" and pair.secret is None:
+            raise ConfigError(f"tx.{key}={path}: has no secret key: give this transmitter's "
+                              f".key_secret file (brimline keys), not a .key file")
+
+
 def check_summary(path: str, config: Config) -> str:
     """Check what ``brimline tx`` needs without opening a socket or a radio; the OK line.
 
     Raises
     ------
     BrimlineError
-        A part's rejection, or a SigMF sink path that exists already.
+        A part's rejection, a SigMF sink path that exists already, or a CURVE key file that
+        cannot be used.
     """
     plan = build_core(config)[0]
     tx = config.tx
@@ -60,10 +81,13 @@ def check_summary(path: str, config: Config) -> str:
         for p in sigmf_paths(tx.path):
             if p.exists():
                 raise ConfigError(f"tx.path={p}: exists already (the sink never overwrites)")
+    if tx.curve_daemon_key is not None:
+        check_client_keys(tx.curve_daemon_key, tx.curve_own_key)
     where = {"radio": f"radio ({tx.backend} {tx.uri})", "sigmf": f"sigmf ({tx.path})",
              "stream": f"stream ({tx.stream_pattern} {tx.stream_endpoint})"}[tx.sink]
     loss = f"{tx.on_loss} after {tx.hold_s:g} s"
-    return (f"{path}: OK: tx sink {where}, {plan.data_tones.size} data tones of "
+    curve = "" if tx.curve_daemon_key is None else ", maps over CURVE"
+    return (f"{path}: OK: tx sink {where}{curve}, {plan.data_tones.size} data tones of "
             f"{plan.fft_size}, {tx.frame_rate_hz:g} frames/s, backoff {tx.backoff_db:g} dB, "
             f"bound {tx.max_tone_db:g} dB per tone / {tx.max_total_db:g} dB total, "
             f"on heartbeat loss {loss}")

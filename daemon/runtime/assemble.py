@@ -5,7 +5,8 @@ them: the core parts (:func:`build_core`), the link controller (:func:`build_con
 estimate source (:func:`make_driver`), the state keeper and the recorder (:func:`open_state`,
 :func:`open_recorder`) and the simulated transmitter's follower (:func:`follower_factory`,
 :class:`FollowerMapProvider`), and the transmitter side of ``brimline tx``: its sink
-(:func:`open_sink`) and its loop (:func:`build_tx`). A part that rejects its section's values becomes one
+(:func:`open_sink`; :func:`open_loopback_sink` for the single-radio loopback) and its loop
+(:func:`build_tx`). A part that rejects its section's values becomes one
 :class:`~brimline.daemon.errors.ConfigError` naming the section.
 """
 
@@ -42,7 +43,8 @@ from brimline.drivers.sources.replay import ReplayDriver
 from brimline.drivers.sources.sim import SimDriver
 
 __all__ = ["build_core", "build_controller", "make_driver", "open_state", "open_recorder",
-           "open_iq_capture", "follower_factory", "FollowerMapProvider", "open_sink", "build_tx"]
+           "open_iq_capture", "follower_factory", "FollowerMapProvider", "open_sink",
+           "open_loopback_sink", "build_tx"]
 
 
 def build_core(config: Config):
@@ -267,7 +269,9 @@ def open_sink(config: Config, plan, *, device_object: Any = None,
         return RadioSink(sample_rate_hz=plan.sample_rate_hz, center_hz=plan.center_hz,
                          attenuation_db=tx.attenuation_db, backend=tx.backend,
                          device=tx.device, uri=tx.uri, emulated=config.emulated.model_dump(),
-                         device_object=device_object)
+                         device_object=device_object, reopen_backoff_s=tx.reopen_backoff_s,
+                         reopen_backoff_max_s=tx.reopen_backoff_max_s,
+                         reopen_max_attempts=tx.reopen_max_attempts)
     if tx.sink == "sigmf":
         return SigmfSink(tx.path, sample_rate_hz=plan.sample_rate_hz, center_hz=plan.center_hz)
     if tx.sink == "stream":
@@ -276,19 +280,43 @@ def open_sink(config: Config, plan, *, device_object: Any = None,
     raise SinkError(f"tx.sink={tx.sink!r} is not a known sink")  # pragma: no cover
 
 
+def open_loopback_sink(config: Config, plan) -> RadioSink:
+    """The transmit sink of the single-radio loopback (``driver.radio.transmit``).
+
+    A supervised :class:`RadioSink` on ``driver.radio``'s backend, device and URI with its
+    ``tx_attenuation_db``, rebuilt with its ``backoff_s``, ``backoff_max_s`` and
+    ``max_attempts`` (see :mod:`brimline.daemon.runtime.loopback`).
+
+    Raises
+    ------
+    SinkError
+        When the device cannot be opened (the message names ``driver.radio.uri``).
+    """
+    r = config.driver.radio
+    return RadioSink(sample_rate_hz=plan.sample_rate_hz, center_hz=plan.center_hz,
+                     attenuation_db=r.tx_attenuation_db, backend=r.backend, device=r.device,
+                     uri=r.uri, emulated=config.emulated.model_dump(),
+                     reopen_backoff_s=r.backoff_s, reopen_backoff_max_s=r.backoff_max_s,
+                     reopen_max_attempts=r.max_attempts, where="driver.radio")
+
+
 def build_tx(config: Config, plan, sink: Sink, *, status: bool = True, context=None,
              **follower_kwargs) -> TxLoop:
     """The transmitter loop of ``brimline tx`` around ``sink``.
 
-    Its follower is :meth:`Follower.for_daemon` of the config's ``publish`` and ``loading``
-    (``follower_kwargs`` override, e.g. endpoints, ``clock``); its status socket binds
+    Its follower is :meth:`Follower.for_daemon` of the config's ``publish`` and ``loading``,
+    a CURVE client with ``tx.curve_daemon_key`` and ``tx.curve_own_key`` when they are set
+    (``follower_kwargs`` override, e.g. endpoints, ``clock``, keys); its status socket binds
     ``tx.status_endpoint`` (``status=False``: none). The caller owns the loop and closes it
     (which silences the sink).
     """
     tx = config.tx
     clock = follower_kwargs.get("clock")
+    keys = {} if tx.curve_daemon_key is None else {
+        "curve_server_key": tx.curve_daemon_key, "curve_client_key": tx.curve_own_key}
+    keys.update(follower_kwargs)
     follower = Follower.for_daemon(config.publish, config.loading, plan=plan, context=context,
-                                   **follower_kwargs)
+                                   **keys)
     publisher = None
     try:
         if status:

@@ -59,6 +59,7 @@ from brimline.daemon.runtime.transmitter import TX_LIMITS
 from brimline.drivers.air.channel import check_interferer_window, profile
 from brimline.drivers.devices.emulated import EMULATED_LIMITS
 from brimline.drivers.link.frame import check_link  # the one place the link's rules live
+from brimline.drivers.sinks.radio import REOPEN_LIMITS, RadioSink, check_reopen_settings
 from brimline.drivers.sources.iqstream import IQ_STREAM_LIMITS, IqStreamDriver
 from brimline.drivers.sources.pushed import PUSHED_LIMITS, PushedDriver, check_endpoint
 from brimline.drivers.sources.radio import RADIO_LIMITS, RadioDriver
@@ -110,6 +111,7 @@ def _keyword_defaults(cls) -> dict[str, Any]:
 _EST = _keyword_defaults(Estimator)
 _MET = _keyword_defaults(MetricsEndpoint)
 _RADIO = _keyword_defaults(RadioDriver)
+_SINK = _keyword_defaults(RadioSink)
 _PUSHED = _keyword_defaults(PushedDriver)
 _IQS = _keyword_defaults(IqStreamDriver)
 _CHG = _keyword_defaults(ChangeControl)
@@ -390,7 +392,8 @@ class RadioSection(Section):
         description="transmit attenuation, dB (>= 0; more is less power)")
     transmit: bool = Field(
         _RADIO["transmit"],
-        description="also send frames of the default map from this radio (loopback)")
+        description="also transmit from this radio, following the maps (single-radio "
+                    "loopback; brimline tx's loop with the tx: section's frame settings)")
     buffer_frames: int = Field(_RADIO["buffer_frames"], description="frames per receive buffer")
     default_bits: int = Field(
         _RADIO["default_bits"], description="bits per tone of the transmitter's default map")
@@ -1048,6 +1051,40 @@ class TxSection(Section):
     status_endpoint: str = Field("tcp://127.0.0.1:7345",
                                  description="the transmitter's status PUB (bind)")
     status_rate_hz: float = Field(4.0, description="periodic status messages per second")
+    curve_daemon_key: Optional[str] = Field(
+        None, description="the daemon's public .key file: follow it over CURVE (with "
+                          "curve_own_key)")
+    curve_own_key: Optional[str] = Field(
+        None, description="this transmitter's .key_secret file (brimline keys); its .key goes "
+                          "in the daemon's publish.curve_clients_dir")
+    reopen_backoff_s: float = Field(
+        _SINK["reopen_backoff_s"],
+        description="radio sink: first wait before rebuilding a failed device, s")
+    reopen_backoff_max_s: float = Field(
+        _SINK["reopen_backoff_max_s"], description="radio sink: cap of that wait (it doubles), s")
+    reopen_max_attempts: int = Field(
+        _SINK["reopen_max_attempts"],
+        description="radio sink: failed rebuilds in a row after which tx stops (0: never)")
+
+    @field_validator(*REOPEN_LIMITS)
+    @classmethod
+    def _reopen_within_limits(cls, v, info):
+        return _within(REOPEN_LIMITS[info.field_name], info.field_name, v)
+
+    @model_validator(mode="after")
+    def _curve_pair(self) -> "TxSection":
+        if (self.curve_daemon_key is None) != (self.curve_own_key is None):
+            missing = "curve_own_key" if self.curve_own_key is None else "curve_daemon_key"
+            raise KeyProblem((missing,), None, "tx.curve_daemon_key and tx.curve_own_key go "
+                                               "together (CURVE needs both)")
+        return self
+
+    @model_validator(mode="after")
+    def _reopen_order(self) -> "TxSection":
+        if check_reopen_settings(self.reopen_backoff_s, self.reopen_backoff_max_s):
+            raise KeyProblem(("reopen_backoff_max_s",), self.reopen_backoff_max_s,
+                             f"must be >= tx.reopen_backoff_s={self.reopen_backoff_s}")
+        return self
 
     @field_validator("stream_endpoint", "status_endpoint")
     @classmethod
@@ -1604,6 +1641,6 @@ def _resolve_paths(config: Config, base: Path) -> Config:
         "service": section(config.service, "state_path"),
         "record": section(config.record, "path").model_copy(
             update={"iq": section(config.record.iq, "path")}),
-        "tx": section(config.tx, "path"),
+        "tx": section(config.tx, "path", "curve_daemon_key", "curve_own_key"),
         "publish": section(config.publish, "curve_secret_key", "curve_clients_dir"),
     })

@@ -88,6 +88,7 @@ from brimline.daemon.runtime.assemble import (
 )
 from brimline.daemon.runtime.config import Config
 from brimline.daemon.runtime.handoff import DriverThread, LockstepFeed, control_message
+from brimline.daemon.runtime.loopback import LoopbackTransmitter
 from brimline.daemon.runtime.outlets import Outlets
 from brimline.daemon.runtime.status import (
     build_status,
@@ -166,6 +167,8 @@ class Service:
         self._poller = None
         self._io: Outlets | None = None  # sockets, state file, recorder
         self._provider: FollowerMapProvider | None = None
+        #: The single-radio loopback transmitter (``driver.radio.transmit``), else None.
+        self.loopback: LoopbackTransmitter | None = None
         #: Lockstep mode (fast simulation): the maps in force by frame, fed straight from the
         #: controller (None otherwise).
         self.schedule: MapSchedule | None = None
@@ -260,6 +263,12 @@ class Service:
             raise
         if self._handoff is not None:
             self._handoff.start()
+        d = self.config.driver
+        if d.kind == "radio" and d.radio.transmit:
+            # The single-radio loopback: brimline tx's loop on this radio, following these maps.
+            self.loopback = LoopbackTransmitter(self.config, self.plan, self.endpoints,
+                                                context=self._context, clock=self._clock)
+            self.loopback.start()
         self.driver_state = "running"
         log.info("started: source %s, clock %s, epoch %s, maps on %s, status on %s",
                  getattr(self.driver, "name", "driver"), self.timebase.mode, self.epoch,
@@ -280,6 +289,8 @@ class Service:
         if self._closed:
             return
         self._closed = True
+        if self.loopback is not None:
+            self.loopback.close()  # silences the radio first
         if self.driver is not None:
             try:
                 self.driver.close()
@@ -597,7 +608,8 @@ class Service:
             target_margin_db=self.config.loading.margin_db, **frame_fields(self.plan),
             recording=self._io.recording_status(), protocol_errors=self._io.protocol_errors(),
             **driver_fields(self.driver, self.driver_state, self.driver_error),
-            **controller_fields(self.controller, now))
+            **controller_fields(self.controller, now),
+            transmitter=None if self.loopback is None else self.loopback.status())
 
     def publish_status(self) -> dict:
         """Build, publish and record one status message now; returns it."""

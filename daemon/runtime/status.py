@@ -28,6 +28,7 @@ Layout of the message (version 1)::
               "bit_error_rate", "goodput_bps", "link_time_s"} | None,   # closed loop only
      "outer": {"active", "offset_db", "fer", "window", "target_fer", "outcomes", "errored",
                "repeated", "went_off", "dropped": {reason: n}} | None,   # outer margin loop
+     "transmitter": {...} | None,   # single-radio loopback: the transmitter's own status
      "alarms": ["stale", "fallback", "emergency", "driver_failed", ...]}
 
 The band is compact: the data tones, in the one tone numbering used everywhere (the signed FFT
@@ -56,6 +57,10 @@ The ``link`` block is there when the source knows what was sent (the simulator):
 sent, those not delivered (payload CRC failed or frame lost), the frame error rate, payload bits
 demodulated and wrong ones, the bit error rate, and the goodput (data bits of delivered frames
 per second of link time); see :class:`~brimline.drivers.link.receiver.LinkTally`.
+
+The ``transmitter`` block is there in the single-radio loopback (``driver.radio.transmit``): the
+status dict of its transmitter loop, as ``brimline tx`` publishes it (``type: tx_status``;
+:meth:`~brimline.daemon.runtime.transmitter.TxLoop.status`), with ``error`` when it stopped.
 """
 
 from __future__ import annotations
@@ -84,6 +89,7 @@ ALARMS = {
     "no_map": "no map has been published yet",
     "state_unsaved": "the state file cannot be written: new maps are held back",
     "recording_failed": "the recording cannot be written: it stopped, the maps go on",
+    "transmitter_down": "the loopback transmitter's radio is being rebuilt, or it stopped",
 }
 
 
@@ -188,7 +194,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
                  outer: Mapping[str, Any] | None = None,
                  frame_rate_hz: float | None = None, data_symbols: int | None = None,
                  symbols_per_frame: int | None = None,
-                 target_margin_db: float | None = None) -> dict:
+                 target_margin_db: float | None = None,
+                 transmitter: Mapping[str, Any] | None = None) -> dict:
     """Build the status message (see the module docstring for its layout).
 
     Parameters
@@ -247,6 +254,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
         Data symbols per frame and all symbols per frame (sync, training, header, data).
     target_margin_db : float or None
         The loader's target noise margin (``loading.margin_db``), dB.
+    transmitter : mapping, optional
+        The single-radio loopback transmitter's status dict; None without one.
 
     Returns
     -------
@@ -294,6 +303,9 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     rec = dict(recording or {"state": "off"})
     if rec.get("state") == "failed":
         alarms.append("recording_failed")
+    if transmitter is not None and (transmitter.get("state") == "failed"
+                                    or transmitter.get("device", "running") != "running"):
+        alarms.append("transmitter_down")
 
     bits_per_symbol = int(m.total_bits) if m is not None else 0
     rate_bps = (bits_per_symbol * float(symbol_rate_hz)
@@ -360,6 +372,7 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
             **{k: int(outer.get(k, 0)) for k in ("outcomes", "errored", "repeated",
                                                    "went_off")},
             "dropped": {str(k): int(v) for k, v in dict(outer.get("dropped", {})).items()}},
+        "transmitter": None if transmitter is None else dict(transmitter),
         "alarms": alarms,
     }
 

@@ -10,12 +10,19 @@ One :class:`TxLoop` step is one frame slot:
    (the default map: ``default_bits`` on every data tone at nominal power, header sequence
    "none") or ``silent`` (the sink silenced, no frames), as ``on_loss`` says. A heartbeat again
    returns to ``following`` with the follower's map in force from the next frame;
-3. take the map in force at this frame's counter; when it changes, acknowledge it with that
-   frame (``follower.ack``);
-4. bound its power (:class:`~brimline.drivers.link.schedule.PowerBound`, counted when it
-   clips), build the frame with the map's sequence number and the frame counter in the header,
-   scale it by the digital backoff (a frame of nominal tones has RMS ``-backoff_db`` dBFS),
-   clip any sample beyond full scale (counted), pad it to the frame slot and send it.
+3. ask the sink whether it can send (:meth:`~brimline.drivers.sinks.base.Sink.ready`): a radio
+   whose device failed or vanished is being rebuilt with capped exponential backoff (see
+   :mod:`brimline.drivers.sinks.radio`); meanwhile no frame is built, the transmitter is
+   silent, the frame counter stands still (counted ``slots_down``), and the status says
+   ``device: reconnecting`` (or ``failed``, which ends the loop with a ``SinkError``). When the
+   device is back, frames resume with the map in force at the counter;
+4. take the map in force at this frame's counter, bound its power
+   (:class:`~brimline.drivers.link.schedule.PowerBound`, counted when it clips), build the
+   frame with the map's sequence number and the frame counter in the header, scale it by the
+   digital backoff (a frame of nominal tones has RMS ``-backoff_db`` dBFS), clip any sample
+   beyond full scale (counted), pad it to the frame slot and send it; when the map in force
+   changed with this frame, acknowledge it with the frame (``follower.ack``) once the slot
+   went out.
 
 The loop never lowers the hardware attenuation the sink was given; together with the power
 bound and the full-scale clip no map can push the output above the configured bound.
@@ -39,6 +46,7 @@ from typing import Callable
 
 import numpy as np
 
+from brimline.daemon.errors import SinkError
 from brimline.daemon.limits import NON_NEGATIVE, POSITIVE, at_least, between, check_values
 from brimline.daemon.net.follower import Follower
 from brimline.daemon.net.publisher import StatusPublisher
@@ -89,7 +97,8 @@ def tx_summary_line(status: dict) -> str:
             f"power clipped {status.get('power_clipped', '-')}, "
             f"lag {_or_dash(status.get('applied_lag_frames'))} frames, "
             f"power {_or_dash(status.get('power_db'), '+.1f')} dB "
-            f"(limit {_or_dash(status.get('max_total_db'), '+.1f')} dB)")
+            f"(limit {_or_dash(status.get('max_total_db'), '+.1f')} dB), "
+            f"device {status.get('device', '-')} (reconnects {status.get('reconnects', '-')})")
 
 
 def _or_dash(value, spec: str = "") -> str:
@@ -189,6 +198,7 @@ class TxLoop:
         self.in_force: LoadMap | None = None
         self.counters: collections.Counter[str] = collections.Counter()
         self._loss_since_s: float | None = None
+        self._device_state = sink.state
         self._closed = False
         #: frames between the map in force's effective frame and the frame it was first sent in
         self.applied_lag_frames: int | None = None
@@ -231,12 +241,19 @@ class TxLoop:
             self._publish(now_s, force=True)
 
     def step(self, now_s: float | None = None) -> bool:
-        """Handle the follower's traffic and send one frame slot (none when silent).
+        """Handle the follower's traffic and send one frame slot (none when silent or while
+        the sink's device is being rebuilt).
 
         Returns
         -------
         bool
             True when a frame was sent.
+
+        Raises
+        ------
+        SinkError
+            The sink cannot work any more (a device that did not come back; the status says
+            ``device: failed`` first).
         """
         if self._closed:
             raise RuntimeError("TxLoop is closed")
@@ -245,21 +262,35 @@ class TxLoop:
         self._update_state(now)
         sent = False
         if self.state is not TxState.SILENT:
-            if self.state is TxState.SAFE:
-                load_map, changed = None, self.in_force is not None
+            try:
+                ready = self.sink.ready(now)
+            except SinkError:
+                self._publish(now, force=True)
+                raise
+            if not ready:
+                self.counters["slots_down"] += 1  # the device is down: silent, no frame number
             else:
-                load_map, changed = self.schedule.at(self.counter)
-            self.in_force = load_map
-            if changed and load_map is not None:
-                self.counters["maps_applied"] += 1
-                self.applied_lag_frames = max(0, self.counter - int(load_map.effective_frame))
-                self.follower.ack(self.counter, now, load_map.seq)
-            self._send(load_map)
-            sent = True
-        self._publish(now)
+                if self.state is TxState.SAFE:
+                    load_map = None
+                else:
+                    load_map = self.schedule.at(self.counter)[0]
+                changed = load_map is not self.in_force
+                frame_no = self.counter
+                sent = self._send(load_map)
+                if sent:
+                    self.in_force = load_map
+                    if changed and load_map is not None:
+                        self.counters["maps_applied"] += 1
+                        self.applied_lag_frames = max(0, frame_no - int(load_map.effective_frame))
+                        self.follower.ack(frame_no, now, load_map.seq)
+                else:
+                    self.counters["slots_lost"] += 1
+        device = self.sink.state
+        self._publish(now, force=device != self._device_state)
+        self._device_state = device
         return sent
 
-    def _send(self, load_map: LoadMap | None) -> None:
+    def _send(self, load_map: LoadMap | None) -> bool:
         seq, bits, power = map_arrays(self.plan, load_map, self.default_bits)
         bounded = self.bound(power)
         p = bounded.power_lin
@@ -278,9 +309,11 @@ class TxLoop:
             self.counters["samples_clipped"] += int(over.sum())
             x[over] /= mag[over]
         slot[:x.size] = x
-        self.sink.send(slot)
+        if not self.sink.send(slot):
+            return False  # the device failed during the slot: this frame number is used again
         self.counters["frames_sent"] += 1
         self.counter += 1
+        return True
 
     # ------------------------------------------------------------------ status, running
 
@@ -311,7 +344,12 @@ class TxLoop:
             "samples_clipped": int(self.counters["samples_clipped"]),
             "heartbeat_losses": int(self.counters["heartbeat_losses"]),
             "maps_rejected": int(f["rejected"]), "acks_sent": int(f["acks_sent"]),
-            "sink": self.sink.name,
+            "sink": self.sink.name, "device": self.sink.state,
+            "slots_down": int(self.counters["slots_down"] + self.counters["slots_lost"]),
+            "device_errors": int(self.sink.counters["device_errors"]
+                                 + self.sink.counters["timeouts"]),
+            "reconnects": int(self.sink.counters["reconnects"]),
+            "reconnect_failures": int(self.sink.counters["reconnect_failures"]),
             "applied_lag_frames": self.applied_lag_frames,
             "power_db": _rounded(self.sent_power_db),
             "peak_tone_db": _rounded(self.sent_peak_tone_db),

@@ -631,6 +631,8 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
     top = alarm_lines + head
     if drv.get("error"):
         top.append(_fit(Text(f"source error: {drv['error']}", style="bold red"), inner_w))
+    if tx_status is None and isinstance(status.get("transmitter"), dict):
+        tx_status = status["transmitter"]  # the single-radio loopback's own transmitter
     numbers = _number_lines(status, tx_status, tx_endpoint, inner_w, tx_silent_s)
     details = [_fit(x, inner_w) for x in _detail_lines(status, bad_messages)]
     band = status.get("band", {})
@@ -812,7 +814,13 @@ def watch(endpoint: str = DEFAULT_STATUS_ENDPOINT, *, once: bool = False,
             if sock in ready:
                 for record in _drain(sock, drops, "status"):
                     if record.get("type") == TX_STATUS_TYPE:
-                        # a transmitter's status on the main endpoint: one plain line each
+                        # a transmitter's status on the main endpoint (brimline tx): one plain
+                        # line each, and no daemon panel or "no status yet" for a stream that
+                        # has none
+                        announced_missing = True
+                        if live is not None and status is None:
+                            live.stop()
+                            live = None
                         print(tx_summary_line(record), file=out, flush=True)
                         if once:
                             return 0

@@ -9,7 +9,10 @@ noise. Nothing arriving is silence: the receiver still hears noise.
 
 Message layout (two frames): the first sample's index as a little-endian uint64, then the
 samples as little-endian complex64 in transmitter full-scale units (1.0 = the DAC's full scale,
-after its attenuation). A message of another shape is dropped and counted (``malformed``).
+after its attenuation). A message of another shape is dropped and counted (``malformed``). The
+receiver places messages by their index: a jump forward (the transmitter sent nothing for a
+while, an underrun) becomes that much silence (counted ``gap_samples``); an index that goes
+back (a transmitter started again) is taken as a new start.
 
 Sockets use ``LINGER=0``; each object is a context manager and belongs to one thread.
 """
@@ -19,6 +22,7 @@ from __future__ import annotations
 import collections
 import math
 import struct
+import time
 
 import numpy as np
 import zmq
@@ -118,6 +122,9 @@ class AirReceiver(_AirEnd):
             self.close()
             raise OSError(f"air endpoint {endpoint}: cannot connect: {exc}") from exc
         self.max_queued = int(max_queued)
+        self._next: int | None = None  # index of the sample expected next from the sender
+        #: Monotonic time of the last message taken in (None before the first).
+        self.last_arrival_s: float | None = None
         self._queue: collections.deque[np.ndarray] = collections.deque()
         self._queued = 0
         self.counters: collections.Counter[str] = collections.Counter()
@@ -138,9 +145,18 @@ class AirReceiver(_AirEnd):
             if not np.isfinite(samples).all():
                 self.counters["malformed"] += 1
                 continue
+            first = _INDEX.unpack(frames[0])[0]
+            gap = 0 if self._next is None else first - self._next
+            if 0 < gap <= self.max_queued:
+                # the transmitter sent nothing for a while (an underrun): silence on the air
+                self._queue.append(np.zeros(gap, np.complex64))
+                self._queued += gap
+                self.counters["gap_samples"] += gap
+            self._next = first + samples.size  # (a restarted transmitter counts from 0 again)
             self._queue.append(samples)
             self._queued += samples.size
             self.counters["received"] += 1
+            self.last_arrival_s = time.monotonic()
         while self._queued > self.max_queued and self._queue:
             self._queued -= self._queue.popleft().size
             self.counters["late_dropped"] += 1

@@ -18,7 +18,9 @@ device object (``sample_rate``, ``rx_lo``/``tx_lo``, ``rx_rf_bandwidth``/``tx_rf
 
 Transmit and receive run at real-time pace on the monotonic clock: a sender thread puts one
 buffer on the air (:mod:`brimline.drivers.air.loopback`) every buffer period, and ``rx()``
-returns when the air has had time to carry a buffer's worth of samples. Two processes, each
+returns when the air has had time to carry a buffer's worth of samples and, while a transmitter
+is on the air, once its samples have arrived (they come in bursts of a transmit buffer; a
+receiver that read ahead would put silence into the middle of the stream). Two processes, each
 with an EmulatedRadio on the same ``air_endpoint``, talk exactly as two radios would; the
 transmitting one binds the endpoint.
 
@@ -52,7 +54,8 @@ from brimline.daemon.limits import FINITE, NON_NEGATIVE, at_least, between, chec
 from brimline.drivers.air.loopback import AirReceiver, AirSender, StreamChannel
 from brimline.drivers.link.frame import make_plan
 
-__all__ = ["EmulatedRadio", "EMULATED_LIMITS", "TX_FULL_SCALE", "ADC_MAX", "MAX_ATTENUATION_DB"]
+__all__ = ["EmulatedRadio", "EMULATED_LIMITS", "TX_FULL_SCALE", "ADC_MAX", "MAX_ATTENUATION_DB",
+           "vanish_reference_s"]
 
 #: Limits of :class:`EmulatedRadio`'s numeric keyword arguments (the ``emulated:`` section).
 EMULATED_LIMITS = MappingProxyType({
@@ -77,7 +80,18 @@ MAX_ATTENUATION_DB = 89.75
 _UNIT_TONE_ADC = 256.0  # ADC units RMS of a unit-power tone at the reference gain
 _REFERENCE_GAIN_DB = 30.0
 _TX_QUEUE = 4  # transmit buffers the "kernel" holds (pyadi-iio's default is four)
+_AIR_WAIT_S = 0.25  # longest wait of rx() for a transmitter's samples that are due
+_AIR_QUIET_S = 0.25  # nothing heard for this long: no transmitter, the air is silence
 _PROCESS_OPENED_S: list[float] = []  # monotonic time the first device of this process opened
+
+
+def vanish_reference_s() -> float:
+    """Monotonic time, s, that ``vanish_after_s`` counts from: the first emulated device opened
+    in this process (now, when none was yet). Tests that run many devices in one process place
+    a vanishing window with it."""
+    if not _PROCESS_OPENED_S:
+        _PROCESS_OPENED_S.append(time.monotonic())
+    return _PROCESS_OPENED_S[0]
 
 
 def _vanished(after_s: float | None, for_s: float) -> bool:
@@ -133,8 +147,7 @@ class EmulatedRadio:
                           **({} if vanish_after_s is None else
                              {"vanish_after_s": vanish_after_s})),
                      EMULATED_LIMITS, prefix="emulated.")
-        if not _PROCESS_OPENED_S:
-            _PROCESS_OPENED_S.append(time.monotonic())
+        vanish_reference_s()
         self._vanish = (vanish_after_s, float(vanish_for_s))
         self._check_present()
         self.uri = uri
@@ -236,6 +249,10 @@ class EmulatedRadio:
         delay = due - time.monotonic()
         if delay > 0:
             time.sleep(delay)
+        # what this call takes off the air: the buffer, and what a fault loses with it
+        lost = n if self.rx_timeout_every and count % self.rx_timeout_every == 0 else (
+            n // 2 if self.overflow_every and count % self.overflow_every == 0 else 0)
+        self._await_air(n + lost, fs)
         with self._lock:
             if self._air_rx is None:
                 raise OSError(errno.EBADF, "receive buffer destroyed")
@@ -255,6 +272,25 @@ class EmulatedRadio:
         adc = np.clip(np.rint(y.real * gain), -ADC_MAX - 1, ADC_MAX) + 1j * np.clip(
             np.rint(y.imag * gain), -ADC_MAX - 1, ADC_MAX)
         return adc
+
+    def _await_air(self, n: int, fs: float) -> None:
+        """While a transmitter is on the air, wait (up to ``_AIR_WAIT_S``) until it has carried
+        this buffer's samples: its buffers arrive in bursts, and a receiver that read ahead of
+        one would fill silence into the middle of the stream, which no radio does. With no
+        transmitter (nothing heard for ``_AIR_QUIET_S``) the air is silence, on time."""
+        deadline = time.monotonic() + _AIR_WAIT_S
+        need = int(math.ceil(n / (1.0 + self.clock_ppm * 1e-6))) + 2 - self._carry.size
+        while True:
+            with self._lock:
+                air = self._air_rx
+                if air is None:
+                    return
+                queued = air.drain()
+                last = air.last_arrival_s
+            now = time.monotonic()
+            if queued >= need or last is None or now - last > _AIR_QUIET_S or now > deadline:
+                return
+            time.sleep(0.001)
 
     def _receive(self, n: int) -> np.ndarray:
         """The next ``n`` samples at the receiver's sample clock (unit-tone scale)."""

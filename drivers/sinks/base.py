@@ -6,6 +6,9 @@ full scale), ``silence()`` (stop the output now: zero output, buffers destroyed,
 its maximum where there is hardware; the next ``send()`` starts again), ``close()`` (silences
 first, then releases; idempotent) and a ``counters`` mapping, and is a context manager.
 
+A sink that can lose its device for a while (the radio) says so in ``state`` (``running``,
+``reconnecting``, ``failed``) and ``ready(now_s)``; ``send()`` returns whether the slot went out.
+
 ``paced`` says whether ``send()`` itself keeps real-time pace (a radio's buffers block while the
 hardware is busy); for an unpaced sink (file, socket) the transmitter paces itself when asked.
 Only a sink that cannot work at all raises :class:`~brimline.daemon.errors.SinkError`.
@@ -28,6 +31,8 @@ class Sink(abc.ABC):
     name: str = "sink"
     #: True when ``send()`` blocks at real-time pace.
     paced: bool = False
+    #: "running"; a supervised sink also "reconnecting" (device being rebuilt) or "failed".
+    state: str = "running"
 
     def __init__(self) -> None:
         self._closed = False
@@ -39,12 +44,26 @@ class Sink(abc.ABC):
         """True once ``close()`` has been called."""
         return self._closed
 
-    def send(self, samples: np.ndarray) -> None:
-        """Send one frame slot of samples (complex, full-scale units)."""
+    def ready(self, now_s: float) -> bool:
+        """True when a slot can go out now (a supervised sink reopens its device when due)."""
+        return self.state == "running"
+
+    def send(self, samples: np.ndarray) -> bool:
+        """Send one frame slot of samples (complex, full-scale units).
+
+        Returns
+        -------
+        bool
+            True when the slot went out; False when the sink lost its device (it is silent
+            until :meth:`ready` has rebuilt it).
+        """
         if self._closed:
             raise RuntimeError(f"{self.name} sink is closed")
         self._send(np.asarray(samples, dtype=np.complex64))
+        if self.state != "running":
+            return False
         self.counters["slots"] += 1
+        return True
 
     @abc.abstractmethod
     def _send(self, samples: np.ndarray) -> None:

@@ -39,8 +39,12 @@ Counters (reach the status stream as ``driver.counters``): ``frames``, the recei
 Estimates carry ``time_s`` on the driver's clock (monotonic by default): the arrival time of
 their buffer less the samples that came after the frame.
 
-RF caution: with ``transmit`` the radio sends the default-map frame continuously (a cyclic
-buffer; it does not follow the maps). Operate only within your licence or the band's
+Single-radio loopback: with ``transmit`` this driver still only receives; the daemon runs
+``brimline tx``'s transmitter loop on the same radio, following its own maps
+(:mod:`brimline.daemon.runtime.loopback`, with ``tx_attenuation_db`` and this driver's backoff
+settings), so the frame counters in the headers advance and maps switch at their frames.
+
+RF caution: with ``transmit`` the radio transmits. Operate only within your licence or the band's
 licence-exempt rules (frequency, power, emission mask), put enough attenuation between cabled TX
 and RX ports, keep clear of antennas for RF exposure; local regulations and licensed practice
 take precedence.
@@ -65,7 +69,7 @@ from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, bet
 from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.devices.factory import open_device as open_backend
 from brimline.drivers.link.continuity import Continuity
-from brimline.drivers.link.frame import Transmitter, as_link_plan, map_arrays
+from brimline.drivers.link.frame import as_link_plan
 from brimline.drivers.link.receiver import FrameScanner, Receiver
 from brimline.drivers.sources.base import Driver
 
@@ -77,8 +81,6 @@ log = logging.getLogger("brimline.sources.radio")
 INSTALL_HINT = "install with pip install 'brimline[sdr]'"
 #: Receive samples come as integers of the 12-bit converter; this maps full scale to ~1.0.
 _RX_SCALE = 1.0 / 2048.0
-#: Transmit full scale of pyadi-iio's DAC interface (16-bit words, 12-bit converter).
-_TX_SCALE = 2.0 ** 14
 #: What opening, configuring or reading a device may raise. libiio errors arrive as OSError
 #: (TimeoutError among them), pyadi-iio's attribute writes as ValueError or AttributeError, and
 #: some pyadi-iio paths raise a bare Exception: a device's answer is untrusted input, so any
@@ -208,9 +210,10 @@ class RadioDriver(Driver):
     rx_gain_db : float
         Manual receive gain, dB.
     tx_attenuation_db : float
-        Transmit attenuation, dB (only with ``transmit``).
+        Transmit attenuation, dB (only with ``transmit``; read by the loopback transmitter).
     transmit : bool
-        Send default-map frames cyclically from the same radio (cabled loopback tests).
+        The daemon also transmits from this radio, following its own maps (single-radio
+        loopback through attenuators; the runtime runs the transmitter, not this driver).
     buffer_frames : int
         Receive buffer length in frames.
     default_bits : int
@@ -283,7 +286,6 @@ class RadioDriver(Driver):
         self._clock = clock
         self.receiver = Receiver(self.plan, default_bits=default_bits,
                                  sync_threshold=sync_threshold, clip_level=0.999)
-        self._burst = self._default_burst(default_bits) if self.transmit else None
         #: "running", "reconnecting" or "failed" (read by the service for the status stream).
         self.state = "running"
         #: Library and device versions found at start (also logged).
@@ -302,13 +304,6 @@ class RadioDriver(Driver):
 
     # ------------------------------------------------------------------ device handling
 
-    def _default_burst(self, default_bits: int) -> np.ndarray:
-        seq, bits, power = map_arrays(self.plan, None, default_bits)
-        sent = Transmitter(self.plan).frame(bits=bits, power_lin=power, map_seq=seq, counter=0,
-                                            rng=np.random.default_rng(0))
-        burst = np.concatenate([sent.samples, np.zeros(self.plan.frame_len, np.complex64)])
-        return burst * (_TX_SCALE * 0.5 / max(float(np.abs(burst).max()), 1e-12))
-
     def _open(self):
         """Open and configure the device (raises what the device raises)."""
         device = self._open_device(self.uri)
@@ -320,7 +315,7 @@ class RadioDriver(Driver):
         return device
 
     def configure(self, device) -> None:
-        """Tune a freshly opened device, set its timeout and buffers, start transmitting."""
+        """Tune a freshly opened device, set its timeout and its receive buffer."""
         fs = int(round(self.plan.sample_rate_hz))
         ctx = getattr(device, "_ctx", None)
         if ctx is not None and hasattr(ctx, "set_timeout"):
@@ -331,13 +326,6 @@ class RadioDriver(Driver):
         device.gain_control_mode_chan0 = "manual"
         device.rx_hardwaregain_chan0 = self.settings["rx_gain_db"]
         self.rebuild_buffers(device)
-        if self.transmit:
-            device.tx_rf_bandwidth = fs
-            device.tx_lo = int(round(self.plan.center_hz))
-            device.tx_hardwaregain_chan0 = -abs(self.settings["tx_attenuation_db"])
-            device.tx_destroy_buffer()
-            device.tx_cyclic_buffer = True
-            device.tx(self._burst)
 
     def rebuild_buffers(self, device) -> None:
         """The one place buffer settings change: destroy the receive buffer, then size it.
