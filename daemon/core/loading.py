@@ -25,8 +25,9 @@ from __future__ import annotations
 
 import functools
 import math
+import struct
 from dataclasses import dataclass
-from typing import Iterable
+from typing import Iterable, NamedTuple
 
 import numpy as np
 
@@ -51,19 +52,27 @@ __all__ = [
 
 def _as_snr(snr) -> np.ndarray:
     """Validate a linear per-tone SNR array; return it as float64 (N,)."""
+    return _checked_snr(snr)[0]
+
+
+def _checked_snr(snr) -> tuple[np.ndarray, float, float]:
+    """Validate a linear per-tone SNR array; return it as float64 (N,), its least and its
+    greatest value (0, 0 when empty)."""
     try:
         arr = np.asarray(snr, dtype=np.float64)
     except (TypeError, ValueError):
         raise InputError(f"snr must be an array of numbers, got {type(snr).__name__}") from None
     if arr.ndim != 1:
         raise InputError(f"snr must be 1-D (one value per tone), got shape {arr.shape}")
-    if arr.size and arr.min() >= 0.0 and arr.max() < math.inf:
-        return arr  # the usual case, in two cheap passes (a NaN fails the first test)
+    if arr.size:
+        low, high = float(np.minimum.reduce(arr)), float(np.maximum.reduce(arr))
+        if low >= 0.0 and high < math.inf:
+            return arr, low, high  # the usual case, two cheap passes (a NaN fails the first)
     bad = ~(np.isfinite(arr) & (arr >= 0.0))
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
         raise InputError(f"snr[{i}]={float(arr[i])!r} must be finite and >= 0 (linear SNR)")
-    return arr
+    return arr, 0.0, 0.0
 
 
 @dataclass(frozen=True)
@@ -125,7 +134,8 @@ def allowed_bits(bits, *, key: str = "bits", shown: str | None = None,
     return values
 
 
-def uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
+def uniform_margin_db(need: np.ndarray, budget: float, cap: float, *,
+                      total: float | None = None) -> float:
     """Largest uniform growth of the required powers within budget and ceiling, dB.
 
     Parameters
@@ -136,6 +146,8 @@ def uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
         Total power budget, linear.
     cap : float
         Per-tone ceiling, linear (``inf``: none).
+    total : float, optional
+        ``need.sum()``, when the caller has it already.
 
     Returns
     -------
@@ -144,12 +156,13 @@ def uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
         This is an allocation's ``margin_db`` (see the module notes), for the loader and for
         change control's bit swaps alike.
     """
-    total = float(need.sum())
+    if total is None:
+        total = float(need.sum())
     if total <= 0.0:
         return math.inf
     factor = budget / total
     if math.isfinite(cap):
-        factor = min(factor, cap / float(need.max()))
+        factor = min(factor, cap / float(np.maximum.reduce(need)))
     return 10.0 * math.log10(factor)
 
 
@@ -319,6 +332,53 @@ class _Tones:
     top: np.ndarray       # highest index into the bit set the ceiling (and budget) allow
     top_f: np.ndarray     # top as float64, for the unit-step search
     unit_sum: float       # sum(unit): the energy of n steps is dot(unit, 2**n) - unit_sum
+
+
+#: Leading mantissa bits that, with the exponent, name a cost level of the ladder (below):
+#: 2**4 = 16 levels per octave. More levels make a longer table; fewer put more tones on the
+#: level that is cut, which is sorted.
+_LEVEL_BITS = 5
+_LEVEL_SHIFT = 52 - _LEVEL_BITS
+_PER_OCTAVE = 1 << _LEVEL_BITS
+_MANTISSA = (1 << 52) - 1
+_ONE = 1023 << 52  # the bit pattern of 1.0
+
+
+def _pattern(x: float) -> int:
+    """IEEE 754 bit pattern of a positive double, as an int (it orders like the value)."""
+    return struct.unpack("<q", struct.pack("<d", x))[0]
+
+
+@functools.lru_cache(maxsize=256)
+def _row_scale(rows: int) -> np.ndarray:
+    """``2**(r - rows + 1)`` for rows ``r = 0 .. rows - 1``, as a column (read-only).
+
+    Relative to the top row, so that it cannot overflow; far rows underflow to 0, which only
+    makes the level table (a guide) ignore costs below 2**-1000 of the top row's.
+    """
+    scale = np.exp2(np.arange(1 - rows, 1, dtype=np.float64))[:, None]
+    scale.setflags(write=False)
+    return scale
+
+
+class _Ladder(NamedTuple):
+    """Per-frame increments of a consecutive bit set, on the ladder of cost levels.
+
+    Tone ``i``'s ``k``-th increment (from ``k`` to ``k + 1`` bits) costs ``unit_i * 2**k``.
+    Scaling by ``2**k`` adds ``k`` to the exponent field, so the cost's bit pattern is
+    ``pattern(unit_i) + (k << 52)``, and patterns of positive doubles order like the values.
+    A *level* is a pattern shifted right by ``_LEVEL_SHIFT`` (the exponent and the leading
+    ``_LEVEL_BITS`` mantissa bits): the increments of tone ``i`` sit on levels
+    ``level_i + k * _PER_OCTAVE``, every increment on a lower level is cheaper than every one
+    on a higher level, and inside a level the full cost decides.
+    """
+
+    unit: np.ndarray    # gap / snr, clamped to 2 * limit (such a tone never loads either way)
+    top: np.ndarray     # int64 most bits per tone within ceiling, budget and bit set (0: none)
+    level: np.ndarray   # int64 level of each tone's first increment, counted from row 0
+    weight: np.ndarray  # mantissa of unit in [1, 2): an increment's cost inside its octave
+    octave0: int        # unbiased exponent of the costs on row 0 (levels 0 .. _PER_OCTAVE-1)
+    rows: int           # octaves in the level table: every increment lies on a lower level
 
 
 class Loader:
@@ -529,6 +589,121 @@ class Loader:
         """Largest uniform growth factor of the required powers, in dB (+inf if none loaded)."""
         return uniform_margin_db(need, budget, self._cap)
 
+    # ---------------------------------------------------------------- the ladder
+
+    def _ladder(self, snr: np.ndarray, snr_min: float, snr_max: float,
+                budget: float) -> _Ladder | None:
+        """The cost ladder of a consecutive bit set, or None when it does not apply.
+
+        It does not apply when some cost would be a subnormal double (``gap / snr`` below about
+        ``2**-960``, an SNR near 2900 dB): then the exponent no longer moves with ``2**k``.
+        """
+        limit = min(self._cap, budget)
+        ceiling = 2.0 * limit
+        if snr_min > 0.0 and self._gap / snr_min <= ceiling:
+            unit = self._gap / snr
+        else:  # some tones never load (zero SNR among them): clamp their units, same verdict
+            with np.errstate(divide="ignore", over="ignore"):
+                unit = self._gap / snr
+            np.minimum(unit, ceiling, out=unit)
+        # The least unit is gap / snr_max (division is monotonic), clamped like the rest.
+        first = _pattern(min(self._gap / snr_max, ceiling)) >> _LEVEL_SHIFT if snr_max > 0.0 \
+            else _pattern(ceiling) >> _LEVEL_SHIFT
+        if first < _PER_OCTAVE:  # exponent field 0: a subnormal (or zero) unit
+            return None
+        pattern = unit.view(np.int64)
+        level = pattern >> _LEVEL_SHIFT
+        base = first & -_PER_OCTAVE  # row 0 starts an octave
+        level -= base
+        # Most bits: the largest b with unit * (2**b - 1) <= limit, decided by the greedy
+        # reference's own comparison. t = floor(log2(2 * limit / unit)) comes exactly from the
+        # patterns (exponents subtract, the mantissa comparison borrows); unit * 2**t (exact,
+        # at most 2 * limit) is a pattern sum, and unit * 2**t - unit rounds once, as the
+        # product unit * (2**t - 1) does. The top is t when that fits, else t - 1.
+        top_limit = _pattern(ceiling)
+        top = np.subtract(top_limit, pattern)
+        top >>= 52
+        over = top << 52
+        over += pattern
+        over = over.view(np.float64)
+        over -= unit
+        top -= over > limit
+        np.minimum(top, self.bits.size - 1, out=top)
+        weight = pattern & _MANTISSA
+        weight |= _ONE
+        rows = ((top_limit >> _LEVEL_SHIFT) - base >> _LEVEL_BITS) + self.bits.size
+        return _Ladder(unit=unit, top=top, level=level, weight=weight.view(np.float64),
+                       octave0=(base >> _LEVEL_BITS) - 1023, rows=rows)
+
+    def _climb(self, ladder: _Ladder, budget: float, target: int | None = None):
+        """Steps per tone, the cheapest increments first, and each tone's required power.
+
+        Rate mode (``target`` None): the increments that fit ``budget`` when taken in order of
+        cost; margin mode: the ``target`` cheapest ones. Equal costs go to the lower tone index,
+        as in the greedy reference (Hughes-Hartogs), whose ``argmin`` takes the first minimum.
+
+        A table over the levels holds the cost (rate) or number (margin) of the increments on
+        each level, from two histograms: tone ``i`` enters at ``level_i`` and leaves at
+        ``level_i + top_i * 16``; a running sum down each column of the (octave, level) table
+        gives the tones present, whose cost doubles per row. Its cumulative sum finds the level
+        where the budget or the target is crossed (the cut): every increment below the cut is
+        taken, a closed form per tone, and only the increments on the cut level are sorted.
+        Rounding of the table matters only where the budget is met to within rounding: the
+        power is summed again from the tones, and the dearest increments taken (then the cut)
+        give way while that sum is over the budget.
+
+        Returns ``(n, need, spent)``: int64 steps (= bits), float64 power per tone and its sum.
+        """
+        level, top, unit, rows = ladder.level, ladder.top, ladder.unit, ladder.rows
+        weight = ladder.weight if target is None else None
+        span = top << _LEVEL_BITS  # levels from a tone's first increment to past its last
+        stop = span + level
+        size = rows << _LEVEL_BITS
+        table = np.bincount(level, weights=weight, minlength=size)
+        table -= np.bincount(stop, weights=weight, minlength=size)
+        table = np.add.accumulate(table.reshape(rows, _PER_OCTAVE), axis=0)  # present per level
+        if target is None:
+            table *= _row_scale(rows)  # in units of the top row's octave
+            unit_exp = ladder.octave0 + rows - 1
+            limit = math.ldexp(budget, -unit_exp)
+        else:
+            unit_exp, limit = 0, target
+        total = np.add.accumulate(table.ravel())
+        cut = int(total.searchsorted(limit, side="right"))
+        room = limit - (float(total[cut - 1]) if cut else 0.0)
+        room = math.ldexp(room, unit_exp) if target is None else int(round(room))
+        energy = self._energy
+        while True:
+            # Steps below the cut: ceil((cut - level) / 32) within 0 .. top, from x = cut + 31 -
+            # level clipped to 0 .. 32 * top. A tone has an increment on the cut level itself
+            # exactly when x = 32 k + 31 after clipping (the clip leaves no false ones).
+            n = np.subtract(cut + _PER_OCTAVE - 1, level)
+            np.maximum(n, 0, out=n)
+            np.minimum(n, span, out=n)
+            on = (n & (_PER_OCTAVE - 1) == _PER_OCTAVE - 1).nonzero()[0]
+            n >>= _LEVEL_BITS
+            cost = ((n[on] << 52) + unit[on].view(np.int64)).view(np.float64)
+            order = cost.argsort(kind="stable")  # on is ascending: ties keep tone order
+            if room is None:  # the cut moved: what is left, from the tones themselves
+                room = budget - float(np.dot(unit, energy.take(n)))
+            if target is None:
+                take = int(np.add.accumulate(cost[order]).searchsorted(room, side="right"))
+            else:
+                take = room
+            n[on[order[:take]]] += 1
+            need = unit * energy.take(n)
+            spent = float(np.add.reduce(need))
+            while target is None and spent > budget and take:  # the table's rounding
+                take -= 1
+                i = on[order[take]]
+                n[i] -= 1
+                need[i] = unit[i] * energy[n[i]]
+                spent = float(need.sum())
+            if target is None and spent > budget and cut > 0:
+                cut, room = cut - 1, None
+                continue
+            return n, need, spent
+
     # ---------------------------------------------------------------- searches
 
     def _bracket(self, tones: _Tones, measure, limit: float, guess: float, newton=None):
@@ -738,22 +913,25 @@ class Loader:
         >>> alloc.bits.tolist(), round(alloc.margin_db, 2)
         ([7, 4, 1, 0], 0.46)
         """
-        snr = _as_snr(snr)
         if self.mode == "rate":
-            return self._rate(snr)
+            return self._rate(*_checked_snr(snr))
         if self.mode == "margin":
-            return self._margin_mode(snr, self.target_bits)
+            return self._margin_mode(*_checked_snr(snr), self.target_bits)
         return self.quantized_waterfill(snr)
 
     def rate(self, snr) -> Allocation:
         """Rate mode for ``snr``, whatever ``mode`` this loader was built with."""
-        return self._rate(_as_snr(snr))
+        return self._rate(*_checked_snr(snr))
 
-    def _rate(self, snr: np.ndarray) -> Allocation:
+    def _rate(self, snr: np.ndarray, snr_min: float, snr_max: float) -> Allocation:
         budget = self._budget(snr.size)
+        ladder = self._ladder(snr, snr_min, snr_max, budget) if self._unit_steps else None
+        if ladder is not None:
+            n, need, spent = self._climb(ladder, budget)
+            return self._allocation(n, need, budget, scale=False, total=spent)
         tones = self._tones(snr, budget)
         n = self._rate_steps(tones, budget)
-        return self._allocation(tones, n, budget, scale=False)
+        return self._allocation(self.bits[n], tones.unit * self._energy[n], budget, scale=False)
 
     def margin(self, snr, target_bits: int) -> Allocation:
         """Margin mode for ``snr`` and ``target_bits``.
@@ -764,23 +942,34 @@ class Loader:
             When ``target_bits`` exceeds the most bits the budget and ceilings allow; the
             message gives both numbers.
         """
-        return self._margin_mode(_as_snr(snr), target_bits)
+        return self._margin_mode(*_checked_snr(snr), target_bits)
 
-    def _margin_mode(self, snr: np.ndarray, target_bits: int) -> Allocation:
+    def _margin_mode(self, snr: np.ndarray, snr_min: float, snr_max: float,
+                     target_bits: int) -> Allocation:
         target = check_target_bits(target_bits, error=InputError)
         budget = self._budget(snr.size)
-        tones = self._tones(snr, budget)
-        if target > int(self.bits[tones.top].sum()):
-            self._raise_infeasible(target, tones, budget)
-        n = self._margin_steps(tones, target)
+        ladder = self._ladder(snr, snr_min, snr_max, budget) if self._unit_steps else None
+        if ladder is not None:
+            if target > int(ladder.top.sum()):
+                self._raise_infeasible(target, self._climb(ladder, budget)[0], budget)
+            bits, need, _ = self._climb(ladder, budget, target)
+        else:
+            tones = self._tones(snr, budget)
+            if target > int(self.bits[tones.top].sum()):
+                self._raise_infeasible(target, self._rate_steps(tones, budget), budget)
+            n = self._margin_steps(tones, target)
+            bits, need = self.bits[n], tones.unit * self._energy[n]
         # The rate search sums energies in another order; allow for that rounding so that the
         # rate-mode maximum is always a feasible target.
-        if float(np.dot(tones.unit, self._energy[n])) > budget * (1.0 + 1e-12):
-            self._raise_infeasible(target, tones, budget)
-        return self._allocation(tones, n, budget, scale=True)
+        if float(need.sum()) > budget * (1.0 + 1e-12):
+            best = (self._climb(ladder, budget)[0] if ladder is not None
+                    else self._rate_steps(tones, budget))
+            self._raise_infeasible(target, best, budget)
+        return self._allocation(bits, need, budget, scale=True)
 
-    def _raise_infeasible(self, target: int, tones: _Tones, budget: float):
-        best = int(self.bits[self._rate_steps(tones, budget)].sum())
+    def _raise_infeasible(self, target: int, rate_steps: np.ndarray, budget: float):
+        """Refuse ``target``, given the steps per tone of the rate-mode allocation."""
+        best = int(self.bits[rate_steps].sum())
         if best >= target:  # only with holes in the bit set: see the class notes
             raise InfeasibleError(f"target_bits={target} with bits={self.bits.tolist()} does "
                                   f"not fit the budget (budget_db={self.budget_db:g}) in the "
@@ -803,15 +992,18 @@ class Loader:
                           total_power=float(power.sum()),
                           margin_db=self._margin(need, self._budget(snr.size)))
 
-    def _allocation(self, tones: _Tones, n: np.ndarray, budget: float, *,
-                    scale: bool) -> Allocation:
-        bits = n if self._unit_steps else self.bits[n]  # with unit steps, index = bits
-        need = tones.unit * self._energy[n]
-        margin_db = self._margin(need, budget)
-        power = need * 10.0 ** (margin_db / 10.0) if (scale and math.isfinite(margin_db)) \
-            else need
-        return Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
-                          total_power=float(power.sum()), margin_db=margin_db)
+    def _allocation(self, bits: np.ndarray, need: np.ndarray, budget: float, *,
+                    scale: bool, total: float | None = None) -> Allocation:
+        """The record; ``total`` is ``need.sum()`` when the caller has it."""
+        margin_db = uniform_margin_db(need, budget, self._cap, total=total)
+        if scale and math.isfinite(margin_db):
+            power = need * 10.0 ** (margin_db / 10.0)
+            total = float(power.sum())
+        else:
+            power = need
+            total = float(need.sum()) if total is None else total
+        return Allocation(bits=bits, power=power, total_bits=int(np.add.reduce(bits)),
+                          total_power=total, margin_db=margin_db)
 
 
 def load_rate(snr, *, bits: Iterable[int] = range(9), gap_db: float, budget_db: float = 0.0,
