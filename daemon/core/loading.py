@@ -26,6 +26,7 @@ from __future__ import annotations
 import functools
 import math
 import struct
+import threading
 from dataclasses import dataclass
 from typing import Iterable, NamedTuple
 
@@ -340,8 +341,6 @@ class _Tones:
 _LEVEL_BITS = 5
 _LEVEL_SHIFT = 52 - _LEVEL_BITS
 _PER_OCTAVE = 1 << _LEVEL_BITS
-_MANTISSA = (1 << 52) - 1
-_ONE = 1023 << 52  # the bit pattern of 1.0
 
 
 def _pattern(x: float) -> int:
@@ -350,13 +349,15 @@ def _pattern(x: float) -> int:
 
 
 @functools.lru_cache(maxsize=256)
-def _row_scale(rows: int) -> np.ndarray:
-    """``2**(r - rows + 1)`` for rows ``r = 0 .. rows - 1``, as a column (read-only).
+def _row_scale(rows: int, first: int, step: int = 1) -> np.ndarray:
+    """``2**(first + step * r)`` for rows ``r = 0 .. rows - 1``, as a column (read-only).
 
-    Relative to the top row, so that it cannot overflow; far rows underflow to 0, which only
-    makes the level table (a guide) ignore costs below 2**-1000 of the top row's.
+    With ``first = 1 - rows`` it is relative to the top row and cannot overflow; far rows
+    underflow to 0, which only makes the level table (a guide) ignore costs below 2**-1000 of
+    the top row's. With ``first = -octave0, step = -1`` it undoes the exponents of the rows'
+    costs, which lie within the range of normal doubles.
     """
-    scale = np.exp2(np.arange(1 - rows, 1, dtype=np.float64))[:, None]
+    scale = np.exp2(first + step * np.arange(rows, dtype=np.float64))[:, None]
     scale.setflags(write=False)
     return scale
 
@@ -374,11 +375,37 @@ class _Ladder(NamedTuple):
     """
 
     unit: np.ndarray    # gap / snr, clamped to 2 * limit (such a tone never loads either way)
-    top: np.ndarray     # int64 most bits per tone within ceiling, budget and bit set (0: none)
     level: np.ndarray   # int64 level of each tone's first increment, counted from row 0
-    weight: np.ndarray  # mantissa of unit in [1, 2): an increment's cost inside its octave
+    top: np.ndarray | None  # int64 most bits per tone within the limit; None: not decided yet
+    span: np.ndarray    # int64 top * _PER_OCTAVE (every top = the bit set's last until decided)
+    limit: float        # per-tone power limit: min(ceiling, budget)
+    half: int           # the level holding limit / 2: on lower levels no limit binds
     octave0: int        # unbiased exponent of the costs on row 0 (levels 0 .. _PER_OCTAVE-1)
     rows: int           # octaves in the level table: every increment lies on a lower level
+    work: _Scratch      # the arrays above live here
+
+
+class _Scratch:
+    """One thread's work arrays for the ladder, for frames of ``size`` tones.
+
+    Reused from call to call: allocating a dozen arrays of a frame's size on every call costs
+    more than the arithmetic. Nothing here leaves the loader (the records copy their arrays).
+    ``zeros``, ``last``, ``last_span`` and ``ceiling`` are constants: array operands keep the
+    element-wise
+    minimum and maximum on numpy's contiguous fast path, where a scalar operand does not.
+    """
+
+    def __init__(self, size: int, last: int, ceiling: float) -> None:
+        self.size = size
+        self.unit = np.empty(size)
+        self.need = np.empty(size)
+        self.level, self.top, self.span, self.stop, self.n, self.spare = \
+            np.empty((6, size), dtype=np.int64)
+        self.flag = np.empty(size, dtype=bool)
+        self.zeros = np.zeros(size, dtype=np.int64)
+        self.last = np.full(size, last, dtype=np.int64)
+        self.last_span = self.last << _LEVEL_BITS
+        self.ceiling = np.full(size, ceiling)
 
 
 class Loader:
@@ -462,6 +489,7 @@ class Loader:
             "_step_bits": tables.step_bits, "_step_key": tables.step_key,
             "_unit_steps": tables.unit_steps, "_max_step": tables.max_step,
             "_mean_step": tables.mean_step, "_key_spacing": tables.key_spacing,
+            "_per_thread": threading.local(),  # work arrays (see _Scratch), not settings
         }
         self.__dict__.update(settings)
         self._frozen = True
@@ -591,49 +619,112 @@ class Loader:
 
     # ---------------------------------------------------------------- the ladder
 
+    def _scratch(self, size: int, budget: float) -> _Scratch:
+        """This thread's work arrays for ``size`` tones (made on first use)."""
+        work = getattr(self._per_thread, "work", None)
+        if work is None or work.size != size:
+            work = _Scratch(size, self.bits.size - 1, 2.0 * min(self._cap, budget))
+            self._per_thread.work = work
+        return work
+
     def _ladder(self, snr: np.ndarray, snr_min: float, snr_max: float,
                 budget: float) -> _Ladder | None:
         """The cost ladder of a consecutive bit set, or None when it does not apply.
 
         It does not apply when some cost would be a subnormal double (``gap / snr`` below about
         ``2**-960``, an SNR near 2900 dB): then the exponent no longer moves with ``2**k``.
+        The tops are left undecided (see :meth:`_with_tops`).
         """
         limit = min(self._cap, budget)
         ceiling = 2.0 * limit
+        # The least unit is gap / snr_max (division is monotonic), clamped like the rest.
+        first = _pattern(min(self._gap / snr_max, ceiling) if snr_max > 0.0 else ceiling)
+        if first >> 52 == 0:  # exponent field 0: a subnormal (or zero) unit
+            return None
+        work = self._scratch(snr.size, budget)
+        unit = work.unit
         if snr_min > 0.0 and self._gap / snr_min <= ceiling:
-            unit = self._gap / snr
+            np.divide(self._gap, snr, out=unit)
         else:  # some tones never load (zero SNR among them): clamp their units, same verdict
             with np.errstate(divide="ignore", over="ignore"):
-                unit = self._gap / snr
-            np.minimum(unit, ceiling, out=unit)
-        # The least unit is gap / snr_max (division is monotonic), clamped like the rest.
-        first = _pattern(min(self._gap / snr_max, ceiling)) >> _LEVEL_SHIFT if snr_max > 0.0 \
-            else _pattern(ceiling) >> _LEVEL_SHIFT
-        if first < _PER_OCTAVE:  # exponent field 0: a subnormal (or zero) unit
-            return None
+                np.divide(self._gap, snr, out=unit)
+            np.minimum(unit, work.ceiling, out=unit)
         pattern = unit.view(np.int64)
-        level = pattern >> _LEVEL_SHIFT
-        base = first & -_PER_OCTAVE  # row 0 starts an octave
+        base = first >> _LEVEL_SHIFT & -_PER_OCTAVE  # row 0 starts an octave
+        level = np.right_shift(pattern, _LEVEL_SHIFT, out=work.level)
         level -= base
-        # Most bits: the largest b with unit * (2**b - 1) <= limit, decided by the greedy
-        # reference's own comparison. t = floor(log2(2 * limit / unit)) comes exactly from the
-        # patterns (exponents subtract, the mantissa comparison borrows); unit * 2**t (exact,
-        # at most 2 * limit) is a pattern sum, and unit * 2**t - unit rounds once, as the
-        # product unit * (2**t - 1) does. The top is t when that fits, else t - 1.
-        top_limit = _pattern(ceiling)
-        top = np.subtract(top_limit, pattern)
+        rows = ((_pattern(ceiling) >> _LEVEL_SHIFT) - base >> _LEVEL_BITS) + self.bits.size
+        return _Ladder(unit=unit, level=level, top=None,
+                       span=work.last_span, limit=limit,
+                       half=(_pattern(0.5 * limit) >> _LEVEL_SHIFT) - base,
+                       octave0=(base >> _LEVEL_BITS) - 1023, rows=rows, work=work)
+
+    def _with_tops(self, ladder: _Ladder) -> _Ladder:
+        """The ladder with each tone's top decided: the most bits within the limit.
+
+        The largest b with unit * (2**b - 1) <= limit, decided by the greedy reference's own
+        comparison. t = floor(log2(2 * limit / unit)) comes exactly from the patterns (exponents
+        subtract, the mantissa comparison borrows); unit * 2**t (exact, at most 2 * limit) is a
+        pattern sum, and unit * 2**t - unit rounds once, as the product unit * (2**t - 1) does.
+        The top is t when that fits, else t - 1: the sign bit of limit - (unit * 2**t - unit),
+        shifted down, is that -1 or 0.
+        """
+        work, unit, limit = ladder.work, ladder.unit, ladder.limit
+        pattern = unit.view(np.int64)
+        top = np.subtract(_pattern(2.0 * limit), pattern, out=work.top)
         top >>= 52
-        over = top << 52
+        over = np.left_shift(top, 52, out=work.spare)
         over += pattern
-        over = over.view(np.float64)
-        over -= unit
-        top -= over > limit
-        np.minimum(top, self.bits.size - 1, out=top)
-        weight = pattern & _MANTISSA
-        weight |= _ONE
-        rows = ((top_limit >> _LEVEL_SHIFT) - base >> _LEVEL_BITS) + self.bits.size
-        return _Ladder(unit=unit, top=top, level=level, weight=weight.view(np.float64),
-                       octave0=(base >> _LEVEL_BITS) - 1023, rows=rows)
+        excess = over.view(np.float64)
+        excess -= unit
+        np.subtract(limit, excess, out=excess)
+        over >>= 63
+        top += over
+        np.minimum(top, work.last, out=top)
+        span = np.left_shift(top, _LEVEL_BITS, out=work.span)
+        return ladder._replace(top=top, span=span)
+
+    def _cut(self, ladder: _Ladder, budget: float, target: int | None):
+        """The level where the budget (or the target) is crossed, and what is left below it.
+
+        The level table (see :meth:`_climb`); returns ``(cut, room)``. Rate mode weighs each
+        tone by its unit, the cost of its first increment; divided by ``2**e`` for the exponent
+        ``e`` of its row, that is the mantissa, the same on every row the tone climbs through.
+        Before the tops are decided every tone leaves ``last`` rows after it enters, so the
+        leaving histogram is the entering one moved down ``last`` rows.
+        """
+        level, rows, work = ladder.level, ladder.rows, ladder.work
+        size = rows << _LEVEL_BITS
+        rate = target is None
+        table = np.bincount(level, weights=ladder.unit if rate else None, minlength=size)
+        table = table.reshape(rows, _PER_OCTAVE)
+        if rate:
+            table *= _row_scale(rows, -ladder.octave0, -1)  # mantissa sums
+        if ladder.top is None:
+            last = self.bits.size - 1
+            table[last:] -= table[:rows - last].copy()
+        else:
+            stop = np.add(ladder.span, level, out=work.stop)
+            leaving = None
+            if rate:  # weigh by the cost of the first increment not taken: unit * 2**top
+                leaving = np.left_shift(ladder.top, 52, out=work.spare)
+                leaving += ladder.unit.view(np.int64)
+                leaving = leaving.view(np.float64)
+            out = np.bincount(stop, weights=leaving, minlength=size).reshape(rows, _PER_OCTAVE)
+            if rate:
+                out *= _row_scale(rows, -ladder.octave0, -1)
+            table -= out
+        table = np.add.accumulate(table, axis=0)  # present on each level
+        if rate:
+            table *= _row_scale(rows, 1 - rows)  # in units of the top row's octave
+            unit_exp = ladder.octave0 + rows - 1
+            limit = math.ldexp(budget, -unit_exp)
+        else:
+            unit_exp, limit = 0, target
+        total = np.add.accumulate(table.ravel())
+        cut = int(total.searchsorted(limit, side="right"))
+        room = limit - (float(total[cut - 1]) if cut else 0.0)
+        return cut, (math.ldexp(room, unit_exp) if rate else int(round(room)))
 
     def _climb(self, ladder: _Ladder, budget: float, target: int | None = None):
         """Steps per tone, the cheapest increments first, and each tone's required power.
@@ -654,33 +745,21 @@ class Loader:
 
         Returns ``(n, need, spent)``: int64 steps (= bits), float64 power per tone and its sum.
         """
-        level, top, unit, rows = ladder.level, ladder.top, ladder.unit, ladder.rows
-        weight = ladder.weight if target is None else None
-        span = top << _LEVEL_BITS  # levels from a tone's first increment to past its last
-        stop = span + level
-        size = rows << _LEVEL_BITS
-        table = np.bincount(level, weights=weight, minlength=size)
-        table -= np.bincount(stop, weights=weight, minlength=size)
-        table = np.add.accumulate(table.reshape(rows, _PER_OCTAVE), axis=0)  # present per level
-        if target is None:
-            table *= _row_scale(rows)  # in units of the top row's octave
-            unit_exp = ladder.octave0 + rows - 1
-            limit = math.ldexp(budget, -unit_exp)
-        else:
-            unit_exp, limit = 0, target
-        total = np.add.accumulate(table.ravel())
-        cut = int(total.searchsorted(limit, side="right"))
-        room = limit - (float(total[cut - 1]) if cut else 0.0)
-        room = math.ldexp(room, unit_exp) if target is None else int(round(room))
+        cut, room = self._cut(ladder, budget, target)
+        if ladder.top is None and cut >= ladder.half:  # the limit may bind below the cut
+            ladder = self._with_tops(ladder)
+            cut, room = self._cut(ladder, budget, target)
+        level, span, unit, work = ladder.level, ladder.span, ladder.unit, ladder.work
         energy = self._energy
         while True:
             # Steps below the cut: ceil((cut - level) / 32) within 0 .. top, from x = cut + 31 -
             # level clipped to 0 .. 32 * top. A tone has an increment on the cut level itself
             # exactly when x = 32 k + 31 after clipping (the clip leaves no false ones).
-            n = np.subtract(cut + _PER_OCTAVE - 1, level)
-            np.maximum(n, 0, out=n)
+            n = np.subtract(cut + _PER_OCTAVE - 1, level, out=work.n)
+            np.maximum(n, work.zeros, out=n)
             np.minimum(n, span, out=n)
-            on = (n & (_PER_OCTAVE - 1) == _PER_OCTAVE - 1).nonzero()[0]
+            residue = np.bitwise_and(n, _PER_OCTAVE - 1, out=work.spare)
+            on = np.equal(residue, _PER_OCTAVE - 1, out=work.flag).nonzero()[0]
             n >>= _LEVEL_BITS
             cost = ((n[on] << 52) + unit[on].view(np.int64)).view(np.float64)
             order = cost.argsort(kind="stable")  # on is ascending: ties keep tone order
@@ -691,7 +770,7 @@ class Loader:
             else:
                 take = room
             n[on[order[:take]]] += 1
-            need = unit * energy.take(n)
+            need = np.multiply(unit, energy.take(n), out=work.need)
             spent = float(np.add.reduce(need))
             while target is None and spent > budget and take:  # the table's rounding
                 take -= 1
@@ -950,6 +1029,7 @@ class Loader:
         budget = self._budget(snr.size)
         ladder = self._ladder(snr, snr_min, snr_max, budget) if self._unit_steps else None
         if ladder is not None:
+            ladder = self._with_tops(ladder)
             if target > int(ladder.top.sum()):
                 self._raise_infeasible(target, self._climb(ladder, budget)[0], budget)
             bits, need, _ = self._climb(ladder, budget, target)
@@ -1066,20 +1146,27 @@ def _loader(mode: str, bits, gap_db, budget_db, cap_db, target_bits) -> Loader:
     """A :class:`Loader` for the free functions, reused while the settings repeat.
 
     Building one validates the settings and looks up the bit tables, which costs as much as a
-    quarter of a 4096-tone frame; a loader keeps no state between calls, so sharing is safe.
-    Only plain ``int`` bits and plain numbers are cached (``True == 1`` must not hit a cache
-    entry that skipped the check refusing booleans).
+    quarter of a 4096-tone frame; a loader's only state is per-thread work arrays, so sharing
+    is safe. Only plain ``int`` bits (a ``range`` holds nothing else) and plain numbers are
+    cached (``True == 1`` must not hit a cache entry that skipped the check refusing booleans).
     """
-    try:
-        key = (mode, tuple(bits), gap_db, budget_db, cap_db, target_bits)
-    except TypeError:
-        key = None
-    if key is None or not all(type(b) is int for b in key[1]) \
-            or not all(type(x) in (int, float) for x in key[2:5]) \
-            or not (target_bits is None or type(target_bits) is int):
+    if type(bits) is range:
+        key = bits
+    else:
+        try:
+            key = tuple(bits)
+        except TypeError:
+            key = None
+        if key is not None and not all(type(b) is int for b in key):
+            key = None
+    if key is None or type(gap_db) not in _PLAIN or type(budget_db) not in _PLAIN \
+            or type(cap_db) not in _PLAIN or not (target_bits is None or type(target_bits) is int):
         return Loader(mode=mode, bits=bits, gap_db=gap_db, budget_db=budget_db, cap_db=cap_db,
                       target_bits=target_bits)
-    return _cached_loader(*key)
+    return _cached_loader(mode, key, gap_db, budget_db, cap_db, target_bits)
+
+
+_PLAIN = (int, float)
 
 
 @functools.lru_cache(maxsize=32)
