@@ -17,8 +17,15 @@ Conventions shared by everything here (other modules and the tests rely on them)
 The discrete loaders work on each tone's energy-versus-bits table. The table is the same for
 every tone up to the factor ``gap / snr``, so the per-bit tables (step sizes, incremental
 energies, their efficiencies) are built once by :class:`Loader` and every frame costs a few
-vectorized passes over the tones plus one small sort. The hard searches are private helpers
-(``_rate_steps``, ``_margin_steps``, ``_water_level``) that the tests call directly.
+vectorized passes over the tones plus one small sort. Consecutive bit sets climb the *ladder*
+of cost levels read off the floating-point bit patterns (:class:`_Ladder`, ``_cut``,
+``_climb``); sets with holes take a threshold search (``_rate_steps``, ``_margin_steps``).
+These and ``_water_level`` are private helpers that the tests call directly.
+
+Ties: when increments on different tones cost exactly the same, the lower tone index takes
+its increment first, as the greedy reference does (``_greedy_oracle``: its ``argmin`` returns
+the first minimum), so for consecutive bit sets the allocation equals the greedy one bit for
+bit, not merely in total.
 """
 
 from __future__ import annotations
@@ -336,8 +343,8 @@ class _Tones:
 
 
 #: Leading mantissa bits that, with the exponent, name a cost level of the ladder (below):
-#: 2**4 = 16 levels per octave. More levels make a longer table; fewer put more tones on the
-#: level that is cut, which is sorted.
+#: 2**5 = 32 levels per octave. More levels make a longer table; fewer put more tones on the
+#: level that is cut, which is sorted (about 1/32 of them).
 _LEVEL_BITS = 5
 _LEVEL_SHIFT = 52 - _LEVEL_BITS
 _PER_OCTAVE = 1 << _LEVEL_BITS
@@ -439,20 +446,24 @@ class Loader:
 
     *Rate mode* gives the allocation that Levin-Campello loading defines (Campello,
     "Practical bit loading for DMT", ICC 1999: efficient, i.e. no bit moved between tones saves
-    power, and E-tight, i.e. no further bit fits), but by a threshold search instead of
-    Levin-Campello's bit-by-bit iteration. At a Lagrange threshold ``t`` on ``log2`` of the cost
+    power, and E-tight, i.e. no further bit fits), without Levin-Campello's bit-by-bit
+    iteration. For consecutive bit sets every step is one bit and costs ``u * 2**k``: the
+    increments are taken cheapest first (ties to the lower tone index) while they fit, found
+    on the ladder of cost levels (:meth:`_climb`), which gives Hughes-Hartogs greedy loading's
+    result exactly. For sets with holes, at a Lagrange threshold ``t`` on ``log2`` of the cost
     per bit a tone takes every step with ``log2(u) + log2(eff_j) <= t``, a closed form per tone.
     A search on ``t`` (a first guess, doubling steps, bisection until the bracket is narrower
     than the spacing of the ``log2(eff_j)`` so that no tone has two steps inside it, one
     interpolated probe) brackets the budget; the steps inside the bracket are sorted by
-    efficiency and taken while they fit. With unit steps
-    (consecutive bit sets) it is exactly optimal: it takes the cheapest increments there are.
-    With holes it is the Lagrangian (convex-hull) solution and is within ``max_step - 1`` bits
+    efficiency and taken while they fit. (With unit steps that search too would be exactly
+    optimal; the ladder is faster and settles ties as the greedy reference does.) With holes
+    it is the Lagrangian (convex-hull) solution and is within ``max_step - 1`` bits
     of the optimum (one bit for ``0, 1, 2, 4, 6, 8``), since the continuous relaxation over the
     hull exceeds it by less than the one step that did not fit.
 
-    *Margin mode*: the same search on the bit count gives the least power for exactly
-    ``target_bits`` (exact for consecutive sets). With holes, a remainder smaller than the next
+    *Margin mode*: the same climb (or search) on the bit count gives the least power for
+    exactly ``target_bits`` (exact for consecutive sets: the ``target_bits`` cheapest
+    increments). With holes, a remainder smaller than the next
     step is filled by the cheapest single step of the right size, or a step up on one tone and
     down on another; the power is then near-minimal, not guaranteed minimal.
 
@@ -461,7 +472,8 @@ class Loader:
 
     The settings are fixed once built (attributes ``mode``, ``bits``, ``gap_db``,
     ``budget_db``, ``cap_db``, ``target_bits`` are read-only); build another loader to change
-    them. Calls keep no state, so one loader may serve many threads.
+    them. Calls keep no state between frames; the only thing kept is each thread's work arrays
+    (reused, never returned), so one loader may serve many threads.
     """
 
     def __init__(self, *, mode: str = "rate", bits: Iterable[int] = range(9), gap_db: float,
@@ -735,7 +747,7 @@ class Loader:
 
         A table over the levels holds the cost (rate) or number (margin) of the increments on
         each level, from two histograms: tone ``i`` enters at ``level_i`` and leaves at
-        ``level_i + top_i * 16``; a running sum down each column of the (octave, level) table
+        ``level_i + top_i * 32``; a running sum down each column of the (octave, level) table
         gives the tones present, whose cost doubles per row. Its cumulative sum finds the level
         where the budget or the target is crossed (the cut): every increment below the cut is
         taken, a closed form per tone, and only the increments on the cut level are sorted.
