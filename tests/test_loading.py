@@ -256,6 +256,15 @@ class TestRate:
         z = load_rate(np.zeros(5), bits=range(5), gap_db=9.8)
         assert z.total_bits == 0 and z.margin_db == math.inf and not z.power.any()
 
+    def test_empty_frame(self):
+        """No tones: an empty allocation with nothing loaded (it used to raise a math domain
+        error from the threshold search's first guess)."""
+        for bits in (range(11), HOLES):
+            a = load_rate(np.array([]), bits=bits, gap_db=9.8, cap_db=3.0)
+            assert a.bits.size == 0 and a.total_bits == 0 and a.margin_db == math.inf
+        m = load_margin(np.array([]), target_bits=0, gap_db=9.8)
+        assert m.bits.size == 0 and m.total_bits == 0
+
     def test_single_bit_set(self):
         a = load_rate(lin(np.full(4, 30.0)), bits=[0], gap_db=9.8)
         assert a.total_bits == 0

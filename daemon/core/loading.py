@@ -651,7 +651,7 @@ class Loader:
         ceiling = 2.0 * limit
         # The least unit is gap / snr_max (division is monotonic), clamped like the rest.
         first = _pattern(min(self._gap / snr_max, ceiling) if snr_max > 0.0 else ceiling)
-        if first >> 52 == 0:  # exponent field 0: a subnormal (or zero) unit
+        if first >> 52 == 0 and snr.size:  # exponent field 0: a subnormal (or zero) unit
             return None
         work = self._scratch(snr.size, budget)
         unit = work.unit
@@ -696,10 +696,13 @@ class Loader:
         span = np.left_shift(top, _LEVEL_BITS, out=work.span)
         return ladder._replace(top=top, span=span)
 
-    def _cut(self, ladder: _Ladder, budget: float, target: int | None):
+    def _cut(self, ladder: _Ladder, budget: float, target: int | None,
+             entering: np.ndarray | None = None):
         """The level where the budget (or the target) is crossed, and what is left below it.
 
-        The level table (see :meth:`_climb`); returns ``(cut, room)``. Rate mode weighs each
+        The level table (see :meth:`_climb`); returns ``(cut, room, entering)``, the last the
+        entering histogram, which a second call for the same frame may pass back in (it does
+        not depend on the tops). Rate mode weighs each
         tone by its unit, the cost of its first increment; divided by ``2**e`` for the exponent
         ``e`` of its row, that is the mantissa, the same on every row the tone climbs through.
         Before the tops are decided every tone leaves ``last`` rows after it enters, so the
@@ -708,10 +711,12 @@ class Loader:
         level, rows, work = ladder.level, ladder.rows, ladder.work
         size = rows << _LEVEL_BITS
         rate = target is None
-        table = np.bincount(level, weights=ladder.unit if rate else None, minlength=size)
-        table = table.reshape(rows, _PER_OCTAVE)
-        if rate:
-            table *= _row_scale(rows, -ladder.octave0, -1)  # mantissa sums
+        if entering is None:
+            entering = np.bincount(level, weights=ladder.unit if rate else None,
+                                   minlength=size).reshape(rows, _PER_OCTAVE)
+            if rate:
+                entering = entering * _row_scale(rows, -ladder.octave0, -1)  # mantissa sums
+        table = entering.copy()
         if ladder.top is None:
             last = self.bits.size - 1
             table[last:] -= table[:rows - last].copy()
@@ -724,7 +729,7 @@ class Loader:
                 leaving = leaving.view(np.float64)
             out = np.bincount(stop, weights=leaving, minlength=size).reshape(rows, _PER_OCTAVE)
             if rate:
-                out *= _row_scale(rows, -ladder.octave0, -1)
+                out = out * _row_scale(rows, -ladder.octave0, -1)
             table -= out
         table = np.add.accumulate(table, axis=0)  # present on each level
         if rate:
@@ -736,7 +741,7 @@ class Loader:
         total = np.add.accumulate(table.ravel())
         cut = int(total.searchsorted(limit, side="right"))
         room = limit - (float(total[cut - 1]) if cut else 0.0)
-        return cut, (math.ldexp(room, unit_exp) if rate else int(round(room)))
+        return cut, (math.ldexp(room, unit_exp) if rate else int(round(room))), entering
 
     def _climb(self, ladder: _Ladder, budget: float, target: int | None = None):
         """Steps per tone, the cheapest increments first, and each tone's required power.
@@ -757,10 +762,10 @@ class Loader:
 
         Returns ``(n, need, spent)``: int64 steps (= bits), float64 power per tone and its sum.
         """
-        cut, room = self._cut(ladder, budget, target)
+        cut, room, entering = self._cut(ladder, budget, target)
         if ladder.top is None and cut >= ladder.half:  # the limit may bind below the cut
             ladder = self._with_tops(ladder)
-            cut, room = self._cut(ladder, budget, target)
+            cut, room, _ = self._cut(ladder, budget, target, entering)
         level, span, unit, work = ladder.level, ladder.span, ladder.unit, ladder.work
         energy = self._energy
         while True:
@@ -891,7 +896,9 @@ class Loader:
 
     def _rate_steps(self, tones: _Tones, budget: float) -> np.ndarray:
         """Steps per tone of the rate-maximising allocation (see the class notes)."""
-        live = max(int(np.count_nonzero(tones.top)), 1)
+        if not tones.top.any():  # nothing can load (no tones, or none affordable)
+            return np.zeros(tones.top.size, dtype=np.int64)
+        live = int(np.count_nonzero(tones.top))
         # At threshold t a tone's energy is below twice its last step, so about
         # 1.44 * 2**t on average (mean of 2**(1 - u), u uniform): a first guess only.
         guess = math.log2((budget + tones.unit_sum) / (1.4427 * live * self._max_step))
