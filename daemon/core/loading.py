@@ -25,7 +25,10 @@ These and ``_water_level`` are private helpers that the tests call directly.
 Ties: when increments on different tones cost exactly the same, the lower tone index takes
 its increment first, as the greedy reference does (``_greedy_oracle``: its ``argmin`` returns
 the first minimum), so for consecutive bit sets the allocation equals the greedy one bit for
-bit, not merely in total.
+bit, not merely in total. The one exception is a budget equal to the power of an allocation to
+within rounding (about 1e-16 relative): whether that last increment fits then depends on the
+order of summation, which differs (the greedy adds increment by increment; the loader sums the
+powers per tone), and the two may differ by that one increment.
 """
 
 from __future__ import annotations
