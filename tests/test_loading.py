@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pytest
@@ -254,6 +255,15 @@ class TestRate:
         assert (a.bits == 4).all()
         z = load_rate(np.zeros(5), bits=range(5), gap_db=9.8)
         assert z.total_bits == 0 and z.margin_db == math.inf and not z.power.any()
+
+    def test_empty_frame(self):
+        """No tones: an empty allocation with nothing loaded (it used to raise a math domain
+        error from the threshold search's first guess)."""
+        for bits in (range(11), HOLES):
+            a = load_rate(np.array([]), bits=bits, gap_db=9.8, cap_db=3.0)
+            assert a.bits.size == 0 and a.total_bits == 0 and a.margin_db == math.inf
+        m = load_margin(np.array([]), target_bits=0, gap_db=9.8)
+        assert m.bits.size == 0 and m.total_bits == 0
 
     def test_single_bit_set(self):
         a = load_rate(lin(np.full(4, 30.0)), bits=[0], gap_db=9.8)
@@ -528,6 +538,48 @@ def test_module_exports():
         assert hasattr(loading, name)
 
 
+@st.composite
+def hard_channels(draw):
+    """Invented hard channels for the greedy comparison: per-tone SNR in dB, some tones notched
+    20-60 dB deeper, some at SNR 0, and ties: tones copied exactly, or scaled by an exact power
+    of two (their costs then meet one bit apart); or every tone a power of two, where every
+    cost, sum and ceiling comparison is exact (gap 0 dB, ceiling 0 dB among the draws)."""
+    n = draw(st.integers(1, 40))
+    if draw(st.booleans()):
+        snr = lin(np.array(draw(st.lists(st.floats(-10, 45), min_size=n, max_size=n))))
+        notched = np.array(draw(st.lists(st.booleans(), min_size=n, max_size=n)))
+        snr[notched] /= lin(draw(st.floats(20, 60)))
+    else:
+        snr = np.ldexp(1.0, np.array(draw(st.lists(st.integers(-6, 14), min_size=n,
+                                                        max_size=n))))
+    for i, j, k in draw(st.lists(st.tuples(st.integers(0, n - 1), st.integers(0, n - 1),
+                                           st.integers(-3, 3)), max_size=6)):
+        snr[i] = np.ldexp(snr[j], k)
+    snr[draw(st.lists(st.integers(0, n - 1), max_size=3))] = 0.0
+    return snr
+
+
+@settings(max_examples=400, deadline=None)
+@given(snr=hard_channels(), bits_max=st.sampled_from([1, 2, 6, 10, 15]),
+       gap_db=st.one_of(st.sampled_from([0.0, 9.8]), st.floats(0, 12)),
+       budget_db=st.one_of(st.just(0.0), st.floats(-10, 10)),
+       cap_db=st.one_of(st.sampled_from([math.inf, 0.0, 3.0]), st.floats(-3, 10)))
+def test_rate_equals_greedy_bit_for_bit(snr, bits_max, gap_db, budget_db, cap_db):
+    """Consecutive bit sets: the same bits on every tone as Hughes-Hartogs greedy loading (one
+    cheapest increment at a time; Cioffi's DMT notes ch. 4), which Levin-Campello's optimum
+    equals (Campello, ICC 1999). Ties: equal costs go to the lower tone index, as the greedy's
+    argmin does. Margin mode with the greedy's bit count as its target takes the same
+    increments (the cheapest ones)."""
+    bits = range(bits_max + 1)
+    greedy = _greedy_oracle(snr, bits_max=bits_max, gap_db=gap_db, budget_db=budget_db,
+                            cap_db=cap_db)
+    a = load_rate(snr, bits=bits, gap_db=gap_db, budget_db=budget_db, cap_db=cap_db)
+    np.testing.assert_array_equal(a.bits, greedy)
+    m = load_margin(snr, target_bits=int(greedy.sum()), bits=bits, gap_db=gap_db,
+                    budget_db=budget_db, cap_db=cap_db)
+    np.testing.assert_array_equal(m.bits, greedy)
+
+
 class TestPrivateSearches:
     """The hard searches, called directly."""
 
@@ -559,6 +611,42 @@ class TestPrivateSearches:
                                [0.0, 1e300]])
         expected = np.searchsorted(ld._energy, room, side="right") - 1
         np.testing.assert_array_equal(ld._unit_top(room, 10), expected)
+
+    def test_ladder_tops_use_the_greedy_comparison(self, rng):
+        """A tone's top is the largest b <= last with unit * (2**b - 1) <= limit, evaluated in
+        floating point exactly as the greedy reference evaluates it, also for units that meet
+        the limit exactly and one rounding step either side of that."""
+        ld = Loader(bits=range(11), gap_db=0.0, cap_db=0.0)  # limit 1, unit = 1 / snr
+        exact = 1.0 / (2.0 ** np.arange(1, 11) - 1.0)
+        units = np.concatenate([lin(rng.uniform(-40, 5, 500)), exact,
+                                np.nextafter(exact, 0.0), np.nextafter(exact, 1.0),
+                                [1.0, 0.5, 1e-30]])
+        snr = 1.0 / units
+        ladder = ld._with_tops(ld._ladder(snr, snr.min(), snr.max(), ld._budget(snr.size)))
+        unit = ladder.unit[:units.size]
+        expected = np.array([max(b for b in range(11) if u * (2.0 ** b - 1.0) <= 1.0)
+                             for u in unit])
+        np.testing.assert_array_equal(ladder.top[:units.size], expected)
+
+    def test_subnormal_costs_take_the_threshold_search(self):
+        """SNR near the largest double with a negative gap makes gap/snr subnormal, where the
+        exponent no longer tracks 2**k: the threshold search answers, with the greedy's bits."""
+        snr = np.array([1.7e308, 1e300, 1e5, 30.0, 0.0])
+        ld = Loader(bits=range(11), gap_db=-30.0)
+        assert ld._ladder(snr, 0.0, snr.max(), ld._budget(snr.size)) is None
+        np.testing.assert_array_equal(
+            ld(snr).bits, _greedy_oracle(snr, bits_max=10, gap_db=-30.0))
+
+    def test_one_loader_serves_many_threads(self, rng):
+        """Work arrays are per thread: concurrent frames of different sizes give the same
+        allocations as one after another."""
+        ld = Loader(bits=range(11), gap_db=9.8, cap_db=3.0)
+        frames = [rayleigh_notched(rng, int(n)) for n in rng.integers(50, 2000, 24)]
+        alone = [ld(f).bits for f in frames]
+        with ThreadPoolExecutor(4) as pool:
+            together = list(pool.map(lambda f: ld(f).bits, frames * 4))
+        for got, want in zip(together, alone * 4):
+            np.testing.assert_array_equal(got, want)
 
     def test_free_functions_reuse_loaders_only_for_plain_settings(self):
         snr = lin(np.array([20.0, 25.0, 5.0]))

@@ -75,7 +75,6 @@ def _cell(points: np.ndarray, i: int, box: float) -> list[tuple[float, float]]:
 def _outside(poly, sigma: float) -> float:
     """P(a zero-mean Gaussian with std ``sigma`` per dimension falls outside ``poly``)."""
     xs = np.array([p[0] for p in poly])
-    ys = np.array([p[1] for p in poly])
     x_min, x_max = xs.min(), xs.max()
     total = special.ndtr(x_min / sigma) + special.ndtr(-x_max / sigma)
     edges = list(zip(poly, poly[1:] + poly[:1]))

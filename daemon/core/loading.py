@@ -17,16 +17,28 @@ Conventions shared by everything here (other modules and the tests rely on them)
 The discrete loaders work on each tone's energy-versus-bits table. The table is the same for
 every tone up to the factor ``gap / snr``, so the per-bit tables (step sizes, incremental
 energies, their efficiencies) are built once by :class:`Loader` and every frame costs a few
-vectorized passes over the tones plus one small sort. The hard searches are private helpers
-(``_rate_steps``, ``_margin_steps``, ``_water_level``) that the tests call directly.
+vectorized passes over the tones plus one small sort. Consecutive bit sets climb the *ladder*
+of cost levels read off the floating-point bit patterns (:class:`_Ladder`, ``_cut``,
+``_climb``); sets with holes take a threshold search (``_rate_steps``, ``_margin_steps``).
+These and ``_water_level`` are private helpers that the tests call directly.
+
+Ties: when increments on different tones cost exactly the same, the lower tone index takes
+its increment first, as the greedy reference does (``_greedy_oracle``: its ``argmin`` returns
+the first minimum), so for consecutive bit sets the allocation equals the greedy one bit for
+bit, not merely in total. The one exception is a budget equal to the power of an allocation to
+within rounding (about 1e-16 relative): whether that last increment fits then depends on the
+order of summation, which differs (the greedy adds increment by increment; the loader sums the
+powers per tone), and the two may differ by that one increment.
 """
 
 from __future__ import annotations
 
 import functools
 import math
+import struct
+import threading
 from dataclasses import dataclass
-from typing import Iterable
+from typing import Iterable, NamedTuple
 
 import numpy as np
 
@@ -51,19 +63,27 @@ __all__ = [
 
 def _as_snr(snr) -> np.ndarray:
     """Validate a linear per-tone SNR array; return it as float64 (N,)."""
+    return _checked_snr(snr)[0]
+
+
+def _checked_snr(snr) -> tuple[np.ndarray, float, float]:
+    """Validate a linear per-tone SNR array; return it as float64 (N,), its least and its
+    greatest value (0, 0 when empty)."""
     try:
         arr = np.asarray(snr, dtype=np.float64)
     except (TypeError, ValueError):
         raise InputError(f"snr must be an array of numbers, got {type(snr).__name__}") from None
     if arr.ndim != 1:
         raise InputError(f"snr must be 1-D (one value per tone), got shape {arr.shape}")
-    if arr.size and arr.min() >= 0.0 and arr.max() < math.inf:
-        return arr  # the usual case, in two cheap passes (a NaN fails the first test)
+    if arr.size:
+        low, high = float(np.minimum.reduce(arr)), float(np.maximum.reduce(arr))
+        if low >= 0.0 and high < math.inf:
+            return arr, low, high  # the usual case, two cheap passes (a NaN fails the first)
     bad = ~(np.isfinite(arr) & (arr >= 0.0))
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
         raise InputError(f"snr[{i}]={float(arr[i])!r} must be finite and >= 0 (linear SNR)")
-    return arr
+    return arr, 0.0, 0.0
 
 
 @dataclass(frozen=True)
@@ -125,7 +145,8 @@ def allowed_bits(bits, *, key: str = "bits", shown: str | None = None,
     return values
 
 
-def uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
+def uniform_margin_db(need: np.ndarray, budget: float, cap: float, *,
+                      total: float | None = None) -> float:
     """Largest uniform growth of the required powers within budget and ceiling, dB.
 
     Parameters
@@ -136,6 +157,8 @@ def uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
         Total power budget, linear.
     cap : float
         Per-tone ceiling, linear (``inf``: none).
+    total : float, optional
+        ``need.sum()``, when the caller has it already.
 
     Returns
     -------
@@ -144,12 +167,13 @@ def uniform_margin_db(need: np.ndarray, budget: float, cap: float) -> float:
         This is an allocation's ``margin_db`` (see the module notes), for the loader and for
         change control's bit swaps alike.
     """
-    total = float(need.sum())
+    if total is None:
+        total = float(need.sum())
     if total <= 0.0:
         return math.inf
     factor = budget / total
     if math.isfinite(cap):
-        factor = min(factor, cap / float(need.max()))
+        factor = min(factor, cap / float(np.maximum.reduce(need)))
     return 10.0 * math.log10(factor)
 
 
@@ -321,6 +345,79 @@ class _Tones:
     unit_sum: float       # sum(unit): the energy of n steps is dot(unit, 2**n) - unit_sum
 
 
+#: Leading mantissa bits that, with the exponent, name a cost level of the ladder (below):
+#: 2**5 = 32 levels per octave. More levels make a longer table; fewer put more tones on the
+#: level that is cut, which is sorted (about 1/32 of them).
+_LEVEL_BITS = 5
+_LEVEL_SHIFT = 52 - _LEVEL_BITS
+_PER_OCTAVE = 1 << _LEVEL_BITS
+
+
+def _pattern(x: float) -> int:
+    """IEEE 754 bit pattern of a positive double, as an int (it orders like the value)."""
+    return struct.unpack("<q", struct.pack("<d", x))[0]
+
+
+@functools.lru_cache(maxsize=256)
+def _row_scale(rows: int, first: int, step: int = 1) -> np.ndarray:
+    """``2**(first + step * r)`` for rows ``r = 0 .. rows - 1``, as a column (read-only).
+
+    With ``first = 1 - rows`` it is relative to the top row and cannot overflow; far rows
+    underflow to 0, which only makes the level table (a guide) ignore costs below 2**-1000 of
+    the top row's. With ``first = -octave0, step = -1`` it undoes the exponents of the rows'
+    costs, which lie within the range of normal doubles.
+    """
+    scale = np.exp2(first + step * np.arange(rows, dtype=np.float64))[:, None]
+    scale.setflags(write=False)
+    return scale
+
+
+class _Ladder(NamedTuple):
+    """Per-frame increments of a consecutive bit set, on the ladder of cost levels.
+
+    Tone ``i``'s ``k``-th increment (from ``k`` to ``k + 1`` bits) costs ``unit_i * 2**k``.
+    Scaling by ``2**k`` adds ``k`` to the exponent field, so the cost's bit pattern is
+    ``pattern(unit_i) + (k << 52)``, and patterns of positive doubles order like the values.
+    A *level* is a pattern shifted right by ``_LEVEL_SHIFT`` (the exponent and the leading
+    ``_LEVEL_BITS`` mantissa bits): the increments of tone ``i`` sit on levels
+    ``level_i + k * _PER_OCTAVE``, every increment on a lower level is cheaper than every one
+    on a higher level, and inside a level the full cost decides.
+    """
+
+    unit: np.ndarray    # gap / snr, clamped to 2 * limit (such a tone never loads either way)
+    level: np.ndarray   # int64 level of each tone's first increment, counted from row 0
+    top: np.ndarray | None  # int64 most bits per tone within the limit; None: not decided yet
+    span: np.ndarray    # int64 top * _PER_OCTAVE (every top = the bit set's last until decided)
+    limit: float        # per-tone power limit: min(ceiling, budget)
+    half: int           # the level holding limit / 2: on lower levels no limit binds
+    octave0: int        # unbiased exponent of the costs on row 0 (levels 0 .. _PER_OCTAVE-1)
+    rows: int           # octaves in the level table: every increment lies on a lower level
+    work: _Scratch      # the arrays above live here
+
+
+class _Scratch:
+    """One thread's work arrays for the ladder, for frames of ``size`` tones.
+
+    Reused from call to call: allocating a dozen arrays of a frame's size on every call costs
+    more than the arithmetic. Nothing here leaves the loader (the records copy their arrays).
+    ``zeros``, ``last``, ``last_span`` and ``ceiling`` are constants: array operands keep the
+    element-wise
+    minimum and maximum on numpy's contiguous fast path, where a scalar operand does not.
+    """
+
+    def __init__(self, size: int, last: int, ceiling: float) -> None:
+        self.size = size
+        self.unit = np.empty(size)
+        self.need = np.empty(size)
+        self.level, self.top, self.span, self.stop, self.n, self.spare = \
+            np.empty((6, size), dtype=np.int64)
+        self.flag = np.empty(size, dtype=bool)
+        self.zeros = np.zeros(size, dtype=np.int64)
+        self.last = np.full(size, last, dtype=np.int64)
+        self.last_span = self.last << _LEVEL_BITS
+        self.ceiling = np.full(size, ceiling)
+
+
 class Loader:
     """Precomputed discrete bit loader, called once per frame with the per-tone SNR.
 
@@ -352,20 +449,24 @@ class Loader:
 
     *Rate mode* gives the allocation that Levin-Campello loading defines (Campello,
     "Practical bit loading for DMT", ICC 1999: efficient, i.e. no bit moved between tones saves
-    power, and E-tight, i.e. no further bit fits), but by a threshold search instead of
-    Levin-Campello's bit-by-bit iteration. At a Lagrange threshold ``t`` on ``log2`` of the cost
+    power, and E-tight, i.e. no further bit fits), without Levin-Campello's bit-by-bit
+    iteration. For consecutive bit sets every step is one bit and costs ``u * 2**k``: the
+    increments are taken cheapest first (ties to the lower tone index) while they fit, found
+    on the ladder of cost levels (:meth:`_climb`), which gives Hughes-Hartogs greedy loading's
+    result exactly. For sets with holes, at a Lagrange threshold ``t`` on ``log2`` of the cost
     per bit a tone takes every step with ``log2(u) + log2(eff_j) <= t``, a closed form per tone.
     A search on ``t`` (a first guess, doubling steps, bisection until the bracket is narrower
     than the spacing of the ``log2(eff_j)`` so that no tone has two steps inside it, one
     interpolated probe) brackets the budget; the steps inside the bracket are sorted by
-    efficiency and taken while they fit. With unit steps
-    (consecutive bit sets) it is exactly optimal: it takes the cheapest increments there are.
-    With holes it is the Lagrangian (convex-hull) solution and is within ``max_step - 1`` bits
+    efficiency and taken while they fit. (With unit steps that search too would be exactly
+    optimal; the ladder is faster and settles ties as the greedy reference does.) With holes
+    it is the Lagrangian (convex-hull) solution and is within ``max_step - 1`` bits
     of the optimum (one bit for ``0, 1, 2, 4, 6, 8``), since the continuous relaxation over the
     hull exceeds it by less than the one step that did not fit.
 
-    *Margin mode*: the same search on the bit count gives the least power for exactly
-    ``target_bits`` (exact for consecutive sets). With holes, a remainder smaller than the next
+    *Margin mode*: the same climb (or search) on the bit count gives the least power for
+    exactly ``target_bits`` (exact for consecutive sets: the ``target_bits`` cheapest
+    increments). With holes, a remainder smaller than the next
     step is filled by the cheapest single step of the right size, or a step up on one tone and
     down on another; the power is then near-minimal, not guaranteed minimal.
 
@@ -374,7 +475,8 @@ class Loader:
 
     The settings are fixed once built (attributes ``mode``, ``bits``, ``gap_db``,
     ``budget_db``, ``cap_db``, ``target_bits`` are read-only); build another loader to change
-    them. Calls keep no state, so one loader may serve many threads.
+    them. Calls keep no state between frames; the only thing kept is each thread's work arrays
+    (reused, never returned), so one loader may serve many threads.
     """
 
     def __init__(self, *, mode: str = "rate", bits: Iterable[int] = range(9), gap_db: float,
@@ -402,6 +504,7 @@ class Loader:
             "_step_bits": tables.step_bits, "_step_key": tables.step_key,
             "_unit_steps": tables.unit_steps, "_max_step": tables.max_step,
             "_mean_step": tables.mean_step, "_key_spacing": tables.key_spacing,
+            "_per_thread": threading.local(),  # work arrays (see _Scratch), not settings
         }
         self.__dict__.update(settings)
         self._frozen = True
@@ -529,6 +632,177 @@ class Loader:
         """Largest uniform growth factor of the required powers, in dB (+inf if none loaded)."""
         return uniform_margin_db(need, budget, self._cap)
 
+    # ---------------------------------------------------------------- the ladder
+
+    def _scratch(self, size: int, budget: float) -> _Scratch:
+        """This thread's work arrays for ``size`` tones (made on first use)."""
+        work = getattr(self._per_thread, "work", None)
+        if work is None or work.size != size:
+            work = _Scratch(size, self.bits.size - 1, 2.0 * min(self._cap, budget))
+            self._per_thread.work = work
+        return work
+
+    def _ladder(self, snr: np.ndarray, snr_min: float, snr_max: float,
+                budget: float) -> _Ladder | None:
+        """The cost ladder of a consecutive bit set, or None when it does not apply.
+
+        It does not apply when some cost would be a subnormal double (``gap / snr`` below about
+        ``2**-960``, an SNR near 2900 dB): then the exponent no longer moves with ``2**k``.
+        The tops are left undecided (see :meth:`_with_tops`).
+        """
+        limit = min(self._cap, budget)
+        ceiling = 2.0 * limit
+        # The least unit is gap / snr_max (division is monotonic), clamped like the rest.
+        first = _pattern(min(self._gap / snr_max, ceiling) if snr_max > 0.0 else ceiling)
+        if first >> 52 == 0 and snr.size:  # exponent field 0: a subnormal (or zero) unit
+            return None
+        work = self._scratch(snr.size, budget)
+        unit = work.unit
+        if snr_min > 0.0 and self._gap / snr_min <= ceiling:
+            np.divide(self._gap, snr, out=unit)
+        else:  # some tones never load (zero SNR among them): clamp their units, same verdict
+            with np.errstate(divide="ignore", over="ignore"):
+                np.divide(self._gap, snr, out=unit)
+            np.minimum(unit, work.ceiling, out=unit)
+        pattern = unit.view(np.int64)
+        base = first >> _LEVEL_SHIFT & -_PER_OCTAVE  # row 0 starts an octave
+        level = np.right_shift(pattern, _LEVEL_SHIFT, out=work.level)
+        level -= base
+        rows = ((_pattern(ceiling) >> _LEVEL_SHIFT) - base >> _LEVEL_BITS) + self.bits.size
+        return _Ladder(unit=unit, level=level, top=None,
+                       span=work.last_span, limit=limit,
+                       half=(_pattern(0.5 * limit) >> _LEVEL_SHIFT) - base,
+                       octave0=(base >> _LEVEL_BITS) - 1023, rows=rows, work=work)
+
+    def _with_tops(self, ladder: _Ladder) -> _Ladder:
+        """The ladder with each tone's top decided: the most bits within the limit.
+
+        The largest b with unit * (2**b - 1) <= limit, decided by the greedy reference's own
+        comparison. t = floor(log2(2 * limit / unit)) comes exactly from the patterns (exponents
+        subtract, the mantissa comparison borrows); unit * 2**t (exact, at most 2 * limit) is a
+        pattern sum, and unit * 2**t - unit rounds once, as the product unit * (2**t - 1) does.
+        The top is t when that fits, else t - 1: the sign bit of limit - (unit * 2**t - unit),
+        shifted down, is that -1 or 0.
+        """
+        work, unit, limit = ladder.work, ladder.unit, ladder.limit
+        pattern = unit.view(np.int64)
+        top = np.subtract(_pattern(2.0 * limit), pattern, out=work.top)
+        top >>= 52
+        over = np.left_shift(top, 52, out=work.spare)
+        over += pattern
+        excess = over.view(np.float64)
+        excess -= unit
+        np.subtract(limit, excess, out=excess)
+        over >>= 63
+        top += over
+        np.minimum(top, work.last, out=top)
+        span = np.left_shift(top, _LEVEL_BITS, out=work.span)
+        return ladder._replace(top=top, span=span)
+
+    def _cut(self, ladder: _Ladder, budget: float, target: int | None,
+             entering: np.ndarray | None = None):
+        """The level where the budget (or the target) is crossed, and what is left below it.
+
+        The level table (see :meth:`_climb`); returns ``(cut, room, entering)``, the last the
+        entering histogram, which a second call for the same frame may pass back in (it does
+        not depend on the tops). Rate mode weighs each
+        tone by its unit, the cost of its first increment; divided by ``2**e`` for the exponent
+        ``e`` of its row, that is the mantissa, the same on every row the tone climbs through.
+        Before the tops are decided every tone leaves ``last`` rows after it enters, so the
+        leaving histogram is the entering one moved down ``last`` rows.
+        """
+        level, rows, work = ladder.level, ladder.rows, ladder.work
+        size = rows << _LEVEL_BITS
+        rate = target is None
+        if entering is None:
+            entering = np.bincount(level, weights=ladder.unit if rate else None,
+                                   minlength=size).reshape(rows, _PER_OCTAVE)
+            if rate:
+                entering = entering * _row_scale(rows, -ladder.octave0, -1)  # mantissa sums
+        table = entering.copy()
+        if ladder.top is None:
+            last = self.bits.size - 1
+            table[last:] -= table[:rows - last].copy()
+        else:
+            stop = np.add(ladder.span, level, out=work.stop)
+            leaving = None
+            if rate:  # weigh by the cost of the first increment not taken: unit * 2**top
+                leaving = np.left_shift(ladder.top, 52, out=work.spare)
+                leaving += ladder.unit.view(np.int64)
+                leaving = leaving.view(np.float64)
+            out = np.bincount(stop, weights=leaving, minlength=size).reshape(rows, _PER_OCTAVE)
+            if rate:
+                out = out * _row_scale(rows, -ladder.octave0, -1)
+            table -= out
+        table = np.add.accumulate(table, axis=0)  # present on each level
+        if rate:
+            table *= _row_scale(rows, 1 - rows)  # in units of the top row's octave
+            unit_exp = ladder.octave0 + rows - 1
+            limit = math.ldexp(budget, -unit_exp)
+        else:
+            unit_exp, limit = 0, target
+        total = np.add.accumulate(table.ravel())
+        cut = int(total.searchsorted(limit, side="right"))
+        room = limit - (float(total[cut - 1]) if cut else 0.0)
+        return cut, (math.ldexp(room, unit_exp) if rate else int(round(room))), entering
+
+    def _climb(self, ladder: _Ladder, budget: float, target: int | None = None):
+        """Steps per tone, the cheapest increments first, and each tone's required power.
+
+        Rate mode (``target`` None): the increments that fit ``budget`` when taken in order of
+        cost; margin mode: the ``target`` cheapest ones. Equal costs go to the lower tone index,
+        as in the greedy reference (Hughes-Hartogs), whose ``argmin`` takes the first minimum.
+
+        A table over the levels holds the cost (rate) or number (margin) of the increments on
+        each level, from two histograms: tone ``i`` enters at ``level_i`` and leaves at
+        ``level_i + top_i * 32``; a running sum down each column of the (octave, level) table
+        gives the tones present, whose cost doubles per row. Its cumulative sum finds the level
+        where the budget or the target is crossed (the cut): every increment below the cut is
+        taken, a closed form per tone, and only the increments on the cut level are sorted.
+        Rounding of the table matters only where the budget is met to within rounding: the
+        power is summed again from the tones, and the dearest increments taken (then the cut)
+        give way while that sum is over the budget.
+
+        Returns ``(n, need, spent)``: int64 steps (= bits), float64 power per tone and its sum.
+        """
+        cut, room, entering = self._cut(ladder, budget, target)
+        if ladder.top is None and cut >= ladder.half:  # the limit may bind below the cut
+            ladder = self._with_tops(ladder)
+            cut, room, _ = self._cut(ladder, budget, target, entering)
+        level, span, unit, work = ladder.level, ladder.span, ladder.unit, ladder.work
+        energy = self._energy
+        while True:
+            # Steps below the cut: ceil((cut - level) / 32) within 0 .. top, from x = cut + 31 -
+            # level clipped to 0 .. 32 * top. A tone has an increment on the cut level itself
+            # exactly when x = 32 k + 31 after clipping (the clip leaves no false ones).
+            n = np.subtract(cut + _PER_OCTAVE - 1, level, out=work.n)
+            np.maximum(n, work.zeros, out=n)
+            np.minimum(n, span, out=n)
+            residue = np.bitwise_and(n, _PER_OCTAVE - 1, out=work.spare)
+            on = np.equal(residue, _PER_OCTAVE - 1, out=work.flag).nonzero()[0]
+            n >>= _LEVEL_BITS
+            cost = ((n[on] << 52) + unit[on].view(np.int64)).view(np.float64)
+            order = cost.argsort(kind="stable")  # on is ascending: ties keep tone order
+            if room is None:  # the cut moved: what is left, from the tones themselves
+                room = budget - float(np.dot(unit, energy.take(n)))
+            if target is None:
+                take = int(np.add.accumulate(cost[order]).searchsorted(room, side="right"))
+            else:
+                take = room
+            n[on[order[:take]]] += 1
+            need = np.multiply(unit, energy.take(n), out=work.need)
+            spent = float(np.add.reduce(need))
+            while target is None and spent > budget and take:  # the table's rounding
+                take -= 1
+                i = on[order[take]]
+                n[i] -= 1
+                need[i] = unit[i] * energy[n[i]]
+                spent = float(need.sum())
+            if target is None and spent > budget and cut > 0:
+                cut, room = cut - 1, None
+                continue
+            return n, need, spent
+
     # ---------------------------------------------------------------- searches
 
     def _bracket(self, tones: _Tones, measure, limit: float, guess: float, newton=None):
@@ -625,7 +899,9 @@ class Loader:
 
     def _rate_steps(self, tones: _Tones, budget: float) -> np.ndarray:
         """Steps per tone of the rate-maximising allocation (see the class notes)."""
-        live = max(int(np.count_nonzero(tones.top)), 1)
+        if not tones.top.any():  # nothing can load (no tones, or none affordable)
+            return np.zeros(tones.top.size, dtype=np.int64)
+        live = int(np.count_nonzero(tones.top))
         # At threshold t a tone's energy is below twice its last step, so about
         # 1.44 * 2**t on average (mean of 2**(1 - u), u uniform): a first guess only.
         guess = math.log2((budget + tones.unit_sum) / (1.4427 * live * self._max_step))
@@ -738,22 +1014,25 @@ class Loader:
         >>> alloc.bits.tolist(), round(alloc.margin_db, 2)
         ([7, 4, 1, 0], 0.46)
         """
-        snr = _as_snr(snr)
         if self.mode == "rate":
-            return self._rate(snr)
+            return self._rate(*_checked_snr(snr))
         if self.mode == "margin":
-            return self._margin_mode(snr, self.target_bits)
+            return self._margin_mode(*_checked_snr(snr), self.target_bits)
         return self.quantized_waterfill(snr)
 
     def rate(self, snr) -> Allocation:
         """Rate mode for ``snr``, whatever ``mode`` this loader was built with."""
-        return self._rate(_as_snr(snr))
+        return self._rate(*_checked_snr(snr))
 
-    def _rate(self, snr: np.ndarray) -> Allocation:
+    def _rate(self, snr: np.ndarray, snr_min: float, snr_max: float) -> Allocation:
         budget = self._budget(snr.size)
+        ladder = self._ladder(snr, snr_min, snr_max, budget) if self._unit_steps else None
+        if ladder is not None:
+            n, need, spent = self._climb(ladder, budget)
+            return self._allocation(n, need, budget, scale=False, total=spent)
         tones = self._tones(snr, budget)
         n = self._rate_steps(tones, budget)
-        return self._allocation(tones, n, budget, scale=False)
+        return self._allocation(self.bits[n], tones.unit * self._energy[n], budget, scale=False)
 
     def margin(self, snr, target_bits: int) -> Allocation:
         """Margin mode for ``snr`` and ``target_bits``.
@@ -764,23 +1043,35 @@ class Loader:
             When ``target_bits`` exceeds the most bits the budget and ceilings allow; the
             message gives both numbers.
         """
-        return self._margin_mode(_as_snr(snr), target_bits)
+        return self._margin_mode(*_checked_snr(snr), target_bits)
 
-    def _margin_mode(self, snr: np.ndarray, target_bits: int) -> Allocation:
+    def _margin_mode(self, snr: np.ndarray, snr_min: float, snr_max: float,
+                     target_bits: int) -> Allocation:
         target = check_target_bits(target_bits, error=InputError)
         budget = self._budget(snr.size)
-        tones = self._tones(snr, budget)
-        if target > int(self.bits[tones.top].sum()):
-            self._raise_infeasible(target, tones, budget)
-        n = self._margin_steps(tones, target)
+        ladder = self._ladder(snr, snr_min, snr_max, budget) if self._unit_steps else None
+        if ladder is not None:
+            ladder = self._with_tops(ladder)
+            if target > int(ladder.top.sum()):
+                self._raise_infeasible(target, self._climb(ladder, budget)[0], budget)
+            bits, need, _ = self._climb(ladder, budget, target)
+        else:
+            tones = self._tones(snr, budget)
+            if target > int(self.bits[tones.top].sum()):
+                self._raise_infeasible(target, self._rate_steps(tones, budget), budget)
+            n = self._margin_steps(tones, target)
+            bits, need = self.bits[n], tones.unit * self._energy[n]
         # The rate search sums energies in another order; allow for that rounding so that the
         # rate-mode maximum is always a feasible target.
-        if float(np.dot(tones.unit, self._energy[n])) > budget * (1.0 + 1e-12):
-            self._raise_infeasible(target, tones, budget)
-        return self._allocation(tones, n, budget, scale=True)
+        if float(need.sum()) > budget * (1.0 + 1e-12):
+            best = (self._climb(ladder, budget)[0] if ladder is not None
+                    else self._rate_steps(tones, budget))
+            self._raise_infeasible(target, best, budget)
+        return self._allocation(bits, need, budget, scale=True)
 
-    def _raise_infeasible(self, target: int, tones: _Tones, budget: float):
-        best = int(self.bits[self._rate_steps(tones, budget)].sum())
+    def _raise_infeasible(self, target: int, rate_steps: np.ndarray, budget: float):
+        """Refuse ``target``, given the steps per tone of the rate-mode allocation."""
+        best = int(self.bits[rate_steps].sum())
         if best >= target:  # only with holes in the bit set: see the class notes
             raise InfeasibleError(f"target_bits={target} with bits={self.bits.tolist()} does "
                                   f"not fit the budget (budget_db={self.budget_db:g}) in the "
@@ -803,15 +1094,18 @@ class Loader:
                           total_power=float(power.sum()),
                           margin_db=self._margin(need, self._budget(snr.size)))
 
-    def _allocation(self, tones: _Tones, n: np.ndarray, budget: float, *,
-                    scale: bool) -> Allocation:
-        bits = n if self._unit_steps else self.bits[n]  # with unit steps, index = bits
-        need = tones.unit * self._energy[n]
-        margin_db = self._margin(need, budget)
-        power = need * 10.0 ** (margin_db / 10.0) if (scale and math.isfinite(margin_db)) \
-            else need
-        return Allocation(bits=bits, power=power, total_bits=int(bits.sum()),
-                          total_power=float(power.sum()), margin_db=margin_db)
+    def _allocation(self, bits: np.ndarray, need: np.ndarray, budget: float, *,
+                    scale: bool, total: float | None = None) -> Allocation:
+        """The record; ``total`` is ``need.sum()`` when the caller has it."""
+        margin_db = uniform_margin_db(need, budget, self._cap, total=total)
+        if scale and math.isfinite(margin_db):
+            power = need * 10.0 ** (margin_db / 10.0)
+            total = float(power.sum())
+        else:
+            power = need
+            total = float(need.sum()) if total is None else total
+        return Allocation(bits=bits, power=power, total_bits=int(np.add.reduce(bits)),
+                          total_power=total, margin_db=margin_db)
 
 
 def load_rate(snr, *, bits: Iterable[int] = range(9), gap_db: float, budget_db: float = 0.0,
@@ -874,20 +1168,27 @@ def _loader(mode: str, bits, gap_db, budget_db, cap_db, target_bits) -> Loader:
     """A :class:`Loader` for the free functions, reused while the settings repeat.
 
     Building one validates the settings and looks up the bit tables, which costs as much as a
-    quarter of a 4096-tone frame; a loader keeps no state between calls, so sharing is safe.
-    Only plain ``int`` bits and plain numbers are cached (``True == 1`` must not hit a cache
-    entry that skipped the check refusing booleans).
+    quarter of a 4096-tone frame; a loader's only state is per-thread work arrays, so sharing
+    is safe. Only plain ``int`` bits (a ``range`` holds nothing else) and plain numbers are
+    cached (``True == 1`` must not hit a cache entry that skipped the check refusing booleans).
     """
-    try:
-        key = (mode, tuple(bits), gap_db, budget_db, cap_db, target_bits)
-    except TypeError:
-        key = None
-    if key is None or not all(type(b) is int for b in key[1]) \
-            or not all(type(x) in (int, float) for x in key[2:5]) \
-            or not (target_bits is None or type(target_bits) is int):
+    if type(bits) is range:
+        key = bits
+    else:
+        try:
+            key = tuple(bits)
+        except TypeError:
+            key = None
+        if key is not None and not all(type(b) is int for b in key):
+            key = None
+    if key is None or type(gap_db) not in _PLAIN or type(budget_db) not in _PLAIN \
+            or type(cap_db) not in _PLAIN or not (target_bits is None or type(target_bits) is int):
         return Loader(mode=mode, bits=bits, gap_db=gap_db, budget_db=budget_db, cap_db=cap_db,
                       target_bits=target_bits)
-    return _cached_loader(*key)
+    return _cached_loader(mode, key, gap_db, budget_db, cap_db, target_bits)
+
+
+_PLAIN = (int, float)
 
 
 @functools.lru_cache(maxsize=32)
