@@ -206,6 +206,7 @@ class Estimator:
     def _clear(self) -> None:
         self._plan_id: str | None = None
         self._tones = None
+        self._tone_bytes = b""         # the tracked tone indices as bytes: one compare a frame
         self._center_hz = math.nan
         self._frames = 0
         self._time_s = math.nan        # source time of the last accepted frame
@@ -219,12 +220,14 @@ class Estimator:
         self._pend_sum = None
         self._pend_n = None
         self._pend_sign = None
+        self._pending = False          # some tone holds pending outlier evidence
 
     def _seed(self, estimate: Estimate, now_s: float) -> None:
         x = estimate.snr_db.astype(np.float64)
         n = x.size
         self._plan_id = estimate.plan_id
         self._tones = estimate.tone_index
+        self._tone_bytes = estimate.tone_index.tobytes()
         self._center_hz = estimate.center_hz
         self._mean_db = x.copy()
         self._var_db2 = np.full(n, self.std_init_db ** 2)
@@ -239,6 +242,7 @@ class Estimator:
         self._pend_sum = np.zeros(n)
         self._pend_n = np.zeros(n, dtype=np.int64)
         self._pend_sign = np.zeros(n)
+        self._pending = False
         self._frames = 1
         self._time_s = self._seen_s = estimate.time_s
         self._accepted_now_s = float(now_s)
@@ -308,7 +312,7 @@ class Estimator:
                 self.reset("tuning")
             elif estimate.n_tones != self._tones.size:
                 return self._reject("tone_count")
-            elif not np.array_equal(estimate.tone_index, self._tones):
+            elif estimate.tone_index.tobytes() != self._tone_bytes:  # same count and dtype
                 return self._reject("tone_index")
             elif not estimate.time_s > self._seen_s:
                 return self._reject("time_order")
@@ -367,7 +371,9 @@ class Estimator:
         self._seen_s = estimate.time_s
         if n_out == 0:
             confirmed = None
-            self._pend_n[:] = 0
+            if self._pending:
+                self._pend_n[:] = 0
+                self._pending = False
         else:
             sign = np.sign(d)
             pend_n = self._pend_n
@@ -380,6 +386,7 @@ class Estimator:
             confirmed = new_n >= self.confirm_frames
             n_confirmed = int(np.count_nonzero(confirmed))
             self._pend_n = np.where(confirmed, 0, new_n)
+            self._pending = True
             self._pend_sum = np.where(confirmed, 0.0, new_sum)
             self._pend_sign = sign
             self._counters["tone_outliers"] += n_out - n_confirmed
@@ -500,14 +507,19 @@ class Estimator:
         snr_db = self._mean_db
         if self.tone_window > 0 and snr_db.size > 1:
             snr_db = _agree_smooth(snr_db, self.tone_window, self.tone_agree_db)
+            snr_db.setflags(write=False)
         std_db = np.sqrt(self._var_db2)
         mean_std_db = np.sqrt(self._p11)
         spread = self._var_db2 + self._p11
         np.sqrt(spread, out=spread)
         spread *= self.backoff_sigmas
+        effective = np.subtract(snr_db, spread, out=spread)
+        # Fresh arrays, read-only before anyone sees them: the record keeps them uncopied.
+        for arr in (std_db, mean_std_db, effective):
+            arr.setflags(write=False)
         return Tracked(
             plan_id=self._plan_id, tone_index=self._tones, snr_db=snr_db, std_db=std_db,
-            effective_snr_db=snr_db - spread, mean_std_db=mean_std_db,
+            effective_snr_db=effective, mean_std_db=mean_std_db,
             age_s=max(0.0, float(now_s) - self._accepted_now_s), frames=self._frames,
             center_hz=self._center_hz, time_s=self._time_s)
 
