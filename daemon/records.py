@@ -70,8 +70,7 @@ def frozen_array(values, dtype, name: str, ndim: int = 1) -> np.ndarray:
     return arr
 
 
-def _set(obj, name, value) -> None:
-    object.__setattr__(obj, name, value)
+_set = object.__setattr__  # sets a field of a frozen record in __post_init__
 
 
 @dataclass(frozen=True)

@@ -106,6 +106,9 @@ ESTIMATOR_LIMITS = MappingProxyType({
     "tau_min_s": POSITIVE,
 })
 
+_sum = np.add.reduce
+_min = np.minimum.reduce
+
 #: Reasons :meth:`Estimator.update` can return, each also a key of :attr:`Estimator.counters`.
 REJECT_REASONS = (
     "invalid",        # the source marked the frame unusable (valid=False)
@@ -236,8 +239,10 @@ class Estimator:
         self._p22 = np.zeros(n)            # variance of the slope
         self._slope_db_s = np.zeros(n)
         self._lag_db = np.zeros(n)         # short-term mean of the innovations
-        self._pool_w = min(LAG_POOL_TONES, max(n - 1, 0) // 2)
-        self._cumsum = np.zeros(n + 1 + 2 * self._pool_w)
+        w = self._pool_w = min(LAG_POOL_TONES, max(n - 1, 0) // 2)
+        c = np.zeros(n + 1 + 2 * w)
+        # Views of the running-sum buffer used by _window_sum, made once per seed.
+        self._cumsum_views = (c[w + 1:w + 1 + n], c[w + 1 + n:], c[2 * w + 1:], c[:n])
         self._lag_gain = 1.0
         self._pend_sum = np.zeros(n)
         self._pend_n = np.zeros(n, dtype=np.int64)
@@ -277,12 +282,13 @@ class Estimator:
         if not estimate.valid:
             return "invalid"
         # A float64 sum is finite exactly when every (float32) term is: one pass per array.
+        # (np.add.reduce is what ndarray.sum calls, without its wrapper: this runs per frame.)
         if not (math.isfinite(estimate.time_s)
-                and math.isfinite(estimate.snr_db.sum(dtype=np.float64))
-                and math.isfinite(estimate.noise_var.sum(dtype=np.float64))
-                and math.isfinite(estimate.channel.view(np.float32).sum(dtype=np.float64))):
+                and math.isfinite(_sum(estimate.snr_db, dtype=np.float64))
+                and math.isfinite(_sum(estimate.noise_var, dtype=np.float64))
+                and math.isfinite(_sum(estimate.channel.view(np.float32), dtype=np.float64))):
             return "non_finite"
-        if estimate.noise_var.size and not estimate.noise_var.min() > 0:
+        if estimate.noise_var.size and not _min(estimate.noise_var) > 0:
             return "noise_var"
         return None
 
@@ -459,11 +465,11 @@ class Estimator:
     def _window_sum(self, values: np.ndarray) -> np.ndarray:
         """Sum over each tone's pooling window (clipped at the band edges), by a running sum
         padded with ``w`` zeros in front and ``w`` copies of the total behind."""
-        w, c = self._pool_w, self._cumsum
-        n = values.size
-        np.cumsum(values, out=c[w + 1:w + 1 + n])
-        c[w + 1 + n:] = c[w + n]
-        return c[2 * w + 1:] - c[:n]
+        body, tail, ahead, behind = self._cumsum_views
+        values.cumsum(out=body)
+        if tail.size:
+            tail.fill(body[-1])
+        return ahead - behind
 
     def _adapt_gain(self, d: np.ndarray, dt: float) -> np.ndarray:
         """Per-tone smoothing gain, shortened where the innovations show lag.
@@ -550,5 +556,6 @@ def _agree_smooth(values_db: np.ndarray, window: int, agree_db: float) -> np.nda
         pair = v[:n - 2 * shift] + v[2 * shift:]
         pair *= ok
         acc[shift:n - shift] += pair
-        count[shift:n - shift] += 2.0 * ok
-    return acc / count
+        inner = count[shift:n - shift]
+        np.add(inner, 2.0, out=inner, where=ok)   # counts are small integers: exact
+    return np.divide(acc, count, out=acc)
