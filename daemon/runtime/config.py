@@ -876,9 +876,9 @@ class IqCaptureSection(Section):
         return v
 
 
-#: Sources that feed the IQ capture (``record.iq``). The radio source joins once its driver
-#: takes a ``capture`` writer (see brimline.drivers.sources.iq for the calls it makes).
-IQ_CAPTURE_SOURCES = ("iq",)
+#: Sources that feed the IQ capture (``record.iq``): each takes a ``capture`` writer and feeds
+#: it through brimline.drivers.sources.base.CaptureFeed.
+IQ_CAPTURE_SOURCES = ("iq", "radio")
 
 
 class RecordSection(Section):
