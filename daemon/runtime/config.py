@@ -1387,7 +1387,10 @@ def _at(where: str, lines: dict[tuple, int | str], loc: tuple) -> str:
             return line
         if line is not None:
             return f"{where} line {line}"
-    return where
+    # a section an override made on its way to its key (--set nope.tau_s=1 makes nope)
+    made = [text for key, text in lines.items()
+            if isinstance(text, str) and loc and key[:len(loc)] == loc]
+    return made[0] if made else where
 
 
 def _explain(exc: ValidationError, where: str, lines: dict[tuple, int | str],
