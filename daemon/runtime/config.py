@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import inspect
 import math
+import os
 import re
 from pathlib import Path
 from typing import Any, Literal, Optional
@@ -1583,10 +1584,14 @@ def config_with(config: Config, overrides: Any) -> Config:
 
 
 def _resolve_paths(config: Config, base: Path) -> Config:
-    """Make every relative file path in the config relative to the config file's folder."""
+    """Make every relative file path in the config relative to the config file's folder (a
+    leading ``~`` is the home folder)."""
 
     def rebase(value: str | None) -> str | None:
-        if value is None or Path(value).is_absolute():
+        if value is None:
+            return value
+        value = os.path.expanduser(value)  # ~ and ~user: a home folder
+        if Path(value).is_absolute():
             return value
         return str(base / value)
 
