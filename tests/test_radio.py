@@ -15,7 +15,6 @@ from protocol_helpers import until
 from radio_fakes import FakeAir
 
 from brimline.daemon.errors import ConfigError, SourceError
-from brimline.daemon.runtime.config import Config
 from brimline.daemon.runtime.service import Service
 from brimline.daemon.wire.sigmf import CaptureWriter, read_sigmf
 from brimline.drivers.link.frame import Transmitter, make_plan, map_arrays
@@ -294,7 +293,6 @@ class TestIqCapture:
             emulated={"air_endpoint": _free_endpoint(), "path_gain_db": 22.0,
                       "rx_timeout_every": 12},
             record={"iq": {"path": str(tmp_path / "live")}})
-        assert isinstance(cfg, Config)
         with Service(cfg) as svc:
             svc.start()
             assert until(lambda: (svc.step(0.01) or True)

@@ -386,9 +386,9 @@ def _scalar(kind: str, value: Any, where: str) -> Any:
 
 
 #: Array layouts of record types already checked in full: ``(type, repr(specs))`` -> one
-#: ``(name, dtype text, dtype, shape, bytes, shape text)`` per part. A stream of one record type repeats
-#: one layout, so each message costs a lookup and a size check per part instead of the checks
-#: of every spec. ``repr`` of JSON values is one-to-one (``1``, ``1.0``, ``True`` and ``"1"``
+#: ``(name, dtype text, dtype, shape, bytes, shape text)`` per part. A stream of one record
+#: type repeats one layout, so each message costs a lookup and a size check per part instead
+#: of the checks of every spec. ``repr`` of JSON values is one-to-one (``1``, ``1.0``, ``True`` and ``"1"``
 #: differ), so only a layout that passed every check is ever taken from here. Bounded: a peer
 #: that varies layouts only empties it now and then.
 _LAYOUTS: dict[tuple[str, str], tuple[tuple[str, str, np.dtype, tuple, int, str], ...]] = {}
