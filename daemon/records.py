@@ -44,7 +44,10 @@ def frozen_array(values, dtype, name: str, ndim: int = 1) -> np.ndarray:
     Parameters
     ----------
     values : array_like
-        The data; copied when it is not already of the right dtype.
+        The data. Copied, unless it is already a read-only array of ``dtype`` with ``ndim``
+        dimensions that owns its memory: another record's array, or a fresh array its maker
+        set read-only before making any view of it (the per-frame path hands its results on
+        this way instead of paying for a copy per field and frame).
     dtype : numpy dtype
         The dtype the record documents for this field.
     name : str
@@ -57,6 +60,9 @@ def frozen_array(values, dtype, name: str, ndim: int = 1) -> np.ndarray:
     ValueError
         When the shape has the wrong number of dimensions.
     """
+    if (type(values) is np.ndarray and not values.flags.writeable and values.base is None
+            and values.dtype == dtype and values.ndim == ndim):
+        return values
     arr = np.array(values, dtype=dtype, copy=True)
     if arr.ndim != ndim:
         raise ValueError(f"{name} must be {ndim}-D, got shape {arr.shape}")
@@ -64,8 +70,7 @@ def frozen_array(values, dtype, name: str, ndim: int = 1) -> np.ndarray:
     return arr
 
 
-def _set(obj, name, value) -> None:
-    object.__setattr__(obj, name, value)
+_set = object.__setattr__  # sets a field of a frozen record in __post_init__
 
 
 @dataclass(frozen=True)

@@ -342,3 +342,13 @@ class TestOverrides:
         assert config_with(cfg, ()) is cfg
         with pytest.raises(ConfigError, match=r"--set fallback.power_db=9.0: fallback.power_db"):
             config_with(cfg, {"fallback.power_db": 9.0})
+
+
+def test_a_path_under_the_home_folder(tmp_path, monkeypatch):
+    """``~`` in a path key is the home folder (os.path.expanduser), not a folder named ``~``
+    beside the config; other relative paths stay relative to the config file."""
+    monkeypatch.setenv("HOME", str(tmp_path / "home"))
+    cfg = load_config(_write(tmp_path, "service:\n  state_path: ~/.local/state/b/s.bin\n"
+                                       "record:\n  path: rec.brlog\n"))
+    assert cfg.service.state_path == str(tmp_path / "home" / ".local" / "state" / "b" / "s.bin")
+    assert cfg.record.path == str(tmp_path / "rec.brlog")

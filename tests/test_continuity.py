@@ -63,6 +63,23 @@ class TestContinuity:
         assert _feed(c, [(400, 6)]) == [(150, False), (400, True)]
         assert c.counters["damaged_frames"] == 1 and c.counters["lost_frames"] == 3
 
+    def test_where_the_samples_were_lost(self):
+        """The boundary of a suspected overflow: between the two frames when no frame spans
+        it; inside the frame before the gap when that frame was spliced there."""
+        c = Continuity()
+        c.boundary(0)
+        _feed(c, [(0, 1)])
+        c.boundary(120)
+        _feed(c, [(200, 9)])
+        assert c.overflow_positions == [120]
+        c = Continuity()
+        c.boundary(0)
+        _feed(c, [(0, 1)])
+        c.boundary(200)  # inside the next frame, where samples were lost
+        c.boundary(300)  # inside the frame after the gap: not where they were lost
+        _feed(c, [(150, 2), (260, 6)])
+        assert c.counters["suspected_overflows"] == 1 and c.overflow_positions == [200]
+
     def test_a_repeated_counter_is_a_cyclic_buffer(self):
         c = Continuity()
         _feed(c, [(0, 0), (150, 0), (300, 0)])

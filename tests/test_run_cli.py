@@ -287,11 +287,29 @@ class TestCheckTriesThePaths:
 
     def test_every_problem_is_its_own_line(self, tmp_path, capsys):
         rec = _recording(tmp_path / "est.brlog", frames=20)
-        cfg = _config(tmp_path, rec, record="est.brlog", state_path="gone/state.bin")
+        (tmp_path / "state.bin").write_bytes(b"")  # what a full disk could leave
+        cfg = _config(tmp_path, rec, record="est.brlog")
         code, _out, err = self._check(cfg, capsys)
         assert code == 2 and len(err) == 2
         assert "record.path=" in err[0] and "service.state_path=" in err[1]
-        assert err[1].endswith(f"folder {tmp_path / 'gone'} does not exist")
+        assert err[1].endswith("not a brimline state file (bad magic)")
+
+    def test_a_state_folder_that_cannot_be_made(self, tmp_path, capsys):
+        (tmp_path / "plain").write_text("a file where a folder would go")
+        cfg = _config(tmp_path, _recording(tmp_path / "est.brlog", frames=20),
+                      state_path="plain/sub/state.bin")
+        code, _out, err = self._check(cfg, capsys)
+        assert code == 2 and len(err) == 1
+        assert err[0].startswith(f"brimline run: error: service.state_path={tmp_path}")
+        assert "cannot read state" in err[0]
+
+    def test_a_missing_state_folder_is_made_by_the_run(self, tmp_path, capsys):
+        """The state file's folders are made at its first save, so --check accepts them
+        missing (and makes nothing)."""
+        cfg = _config(tmp_path, _recording(tmp_path / "est.brlog", frames=20),
+                      state_path="state/brimline/state.bin")
+        code, _out, err = self._check(cfg, capsys)
+        assert code == 0 and err == [] and not (tmp_path / "state").exists()
 
 
 def test_a_torn_replay_tail_is_one_json_log_line(tmp_path, capsys):

@@ -101,9 +101,16 @@ class TestDamagedFiles:
         with pytest.raises(StateError, match="cannot read state"):
             StateStore(tmp_path / "d").load()
 
-    def test_missing_directory_on_save(self, tmp_path):
+    def test_missing_folders_are_made_owner_only_on_save(self, tmp_path):
+        store = StateStore(tmp_path / "nowhere" / "deeper" / "state.bin")
+        store.save("e1", 5, make_map(1))
+        assert store.load().seq_ceiling == 5
+        assert (tmp_path / "nowhere" / "deeper").stat().st_mode & 0o777 == 0o700
+
+    def test_a_folder_that_cannot_be_made_on_save(self, tmp_path):
+        (tmp_path / "plain").write_text("a file where a folder would go")
         with pytest.raises(StateError, match="cannot save state"):
-            StateStore(tmp_path / "nowhere" / "state.bin").save("e1", 5, make_map(1))
+            StateStore(tmp_path / "plain" / "state.bin").save("e1", 5, make_map(1))
 
 
 class TestCrash:
@@ -194,7 +201,7 @@ class TestLease:
         keeper = StateKeeper(store, lease=10)
         keeper.restore()
         keeper.reserve(10)
-        store.path = tmp_path / "gone" / "state.bin"
+        store.path = tmp_path / "gone" / "state.bin"  # after the first save: not made
         with pytest.raises(StateError, match="cannot save state"):
             keeper.reserve(11)
         assert keeper.ceiling == 10

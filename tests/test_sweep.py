@@ -12,10 +12,10 @@ import pytest
 from brimline.daemon.commands import cli
 from brimline.daemon.commands.sweep import write_figure
 from brimline.daemon.errors import ConfigError, InputError
-from brimline.daemon.runtime.config import Config
+from brimline.daemon.runtime.config import Config, config_with
+from brimline.daemon.runtime.offline import replay_offline
 from brimline.daemon.runtime.sweep import (
     TaskResult,
-    apply_setting,
     grid_settings,
     parse_grid,
     replay_summary,
@@ -40,30 +40,51 @@ class TestGrid:
         (["estimator.tau_s"], r"--grid 'estimator.tau_s': expected KEY=V1,V2"),
         (["=1,2"], r"expected KEY=V1,V2"),
         (["a=1", "a=2"], r"--grid a: given twice"),
-        (["a=[1"], r"--grid a: value '\[1' is not a YAML scalar"),
     ])
     def test_bad_items(self, items, match):
         with pytest.raises(InputError, match=match):
             parse_grid(items)
 
+    @pytest.mark.parametrize("items, match", [
+        # the config's override parser reads each value (config.parse_override's messages)
+        (["a=[1"], r"^--set a=\[1: value is not valid YAML"),
+        (["estimator.tau s=1"], r"^--set 'estimator.tau s=1': expected KEY=VALUE"),
+    ])
+    def test_values_and_keys_are_read_by_the_configs_parser(self, items, match):
+        with pytest.raises(ConfigError, match=match):
+            parse_grid(items)
+
     @pytest.mark.parametrize("setting, match", [
-        ({"estimator.nope": 1}, r"estimator.nope=1: no such config key"),
-        ({"nope.tau_s": 1}, r"nope.tau_s=1: no config section 'nope'"),
-        ({"estimator.tau_s": "fast"}, r"estimator.tau_s='fast'"),
-        ({"fallback.bits": 9}, r"^fallback.bits=9: is not one of loading.bits="),
+        # the config's own validation and messages (config.config_with)
+        ({"estimator.nope": 1}, r"^--set estimator.nope=1: unknown key estimator.nope"),
+        ({"nope.tau_s": 1}, r"^--set nope.tau_s=1: unknown key nope"),
+        ({"estimator.tau_s": "fast"},
+         r"^--set estimator.tau_s='fast': estimator.tau_s='fast': Input should be a valid"),
+        ({"fallback.bits": 9}, r"^--set fallback.bits=9: fallback.bits=9: is not one of "
+                               r"loading.bits="),
     ])
     def test_bad_settings_name_key_and_value(self, setting, match):
         with pytest.raises(ConfigError, match=match):
-            apply_setting(Config(), setting)
+            config_with(Config(), setting)
 
-    def test_setting_reaches_the_config(self):
-        assert apply_setting(Config(), {"estimator.tau_s": 0.5}).estimator.tau_s == 0.5
+    def test_a_grid_setting_reaches_the_config(self):
+        (setting,) = grid_settings(parse_grid(["estimator.tau_s=0.5"]))
+        assert config_with(Config(), setting).estimator.tau_s == 0.5
 
 
-def test_task_runs_a_recording_through_the_controller():
+def test_task_is_the_offline_replay_of_the_recording():
     summary = replay_summary(Config(), IQ, {})
     assert summary["frames"] == summary["accepted"] == 30 and summary["maps"] >= 1
     assert summary == replay_summary(Config(), IQ, {})  # same recording and setting, same figures
+    # the row is brimline replay's summary of the same recording under the same setting
+    setting = {"estimator.tau_s": 0.5}
+    replayed = replay_offline(Config(), IQ, overrides=setting).summary
+    assert replay_summary(Config(), IQ, setting) == __import__("dataclasses").asdict(replayed)
+
+
+def test_a_task_with_a_bad_setting_fails_with_the_configs_message():
+    with pytest.raises(ConfigError, match=r"^--set estimator.tau_s=-1.0: estimator.tau_s=-1.0"):
+        replay_summary(Config(), IQ, {"estimator.tau_s": -1.0})
 
 
 def test_sweep_on_two_workers_reports_a_failing_task_by_name(tmp_path, capsys):
@@ -120,8 +141,10 @@ def test_sweep_on_an_existing_scheduler(tmp_path, capsys):
 
 
 @pytest.mark.parametrize("argv, match", [
-    (["--grid", "estimator.tau_s=-1"], r"brimline sweep: error: estimator.tau_s=-1"),
-    (["--grid", "estimator.what=1"], r"estimator.what=1: no such config key"),
+    (["--grid", "estimator.tau_s=-1"],
+     r"brimline sweep: error: --set estimator.tau_s=-1: estimator.tau_s=-1: tau_s=-1.0 must "
+     r"be a positive"),
+    (["--grid", "estimator.what=1"], r"--set estimator.what=1: unknown key estimator.what"),
     (["--grid", "oops"], r"--grid 'oops': expected KEY=V1,V2"),
 ])
 def test_bad_settings_stop_before_the_cluster(argv, match, capsys, tmp_path):

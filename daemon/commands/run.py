@@ -220,15 +220,23 @@ def check_paths(config: Config) -> list[str]:
             StateStore(state).load()
         except StateError as exc:
             problems.append(f"service.state_path={state}: {exc}")
-        why = _cannot_create_in(Path(state).parent)
-        if why is not None:
-            problems.append(f"service.state_path={state}: {why}")
+        else:
+            why = _cannot_create_in(Path(state).parent, made=True)
+            if why is not None:
+                problems.append(f"service.state_path={state}: {why}")
     return problems
 
 
-def _cannot_create_in(folder: Path) -> str | None:
-    """Why a new file cannot be created in ``folder`` (tried with a probe), or None."""
-    if not folder.is_dir():
+def _cannot_create_in(folder: Path, *, made: bool = False) -> str | None:
+    """Why a new file cannot be created in ``folder`` (tried with a probe), or None.
+
+    With ``made`` the run makes a missing folder itself (the state file's): then the probe
+    goes into the nearest folder that exists on the way up.
+    """
+    if made:
+        while not folder.exists() and folder.parent != folder:
+            folder = folder.parent
+    elif not folder.is_dir():
         return f"folder {folder} does not exist"
     try:
         fd, probe = tempfile.mkstemp(dir=folder, prefix=".brimline-check-")

@@ -24,14 +24,13 @@ from pathlib import Path
 from typing import Sequence
 
 from brimline.daemon.errors import InputError, RecordingError
-from brimline.daemon.runtime.config import Config, load_config
+from brimline.daemon.runtime.config import Config, config_with, load_config
+from brimline.daemon.runtime.offline import recording_kind
 from brimline.daemon.runtime.sweep import (
     TaskResult,
-    apply_setting,
     flat_summary,
     grid_settings,
     parse_grid,
-    recording_is_sigmf,
     run_sweep,
     summary_columns,
 )
@@ -65,7 +64,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
 def _check_recordings(recordings: Sequence[str]) -> None:
     for rec in recordings:
         p = Path(rec)
-        if recording_is_sigmf(rec):
+        if recording_kind(rec) == "iq":
             meta = p.with_suffix(".sigmf-meta") if p.suffix else p.with_name(
                 p.name + ".sigmf-meta")
             if not meta.is_file():
@@ -84,7 +83,7 @@ def run(args: argparse.Namespace) -> int:
     grid = parse_grid(args.grid)
     settings = grid_settings(grid)
     for setting in settings:
-        apply_setting(config, setting)  # a bad key or value stops here, before the cluster
+        config_with(config, setting)  # a bad key or value stops here, before the cluster
     _check_recordings(args.recordings)
     total = len(args.recordings) * len(settings)
     done = [0]
@@ -162,7 +161,7 @@ def write_figure(results: Sequence[TaskResult], path: Path) -> str:
     for rec in recordings:
         by_label = {_setting_text(r.setting): r.summary or {} for r in results
                     if r.recording == rec}
-        for ax, key in ((ax_rate, "rate_mean_bits"), (ax_maps, "maps_per_min")):
+        for ax, key in ((ax_rate, "rate_mean_bits"), (ax_maps, "changes_per_min")):
             y = [by_label.get(label, {}).get(key) for label in labels]
             y = [math.nan if v is None else float(v) for v in y]
             ax.plot(list(x), y, marker="o", label=Path(rec).name)

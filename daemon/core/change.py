@@ -370,13 +370,14 @@ class ChangeControl:
         """
         now_s = float(now_s)
         eff_db = tracked.effective_snr_db
-        if not (math.isfinite(eff_db.sum()) and math.isfinite(tracked.snr_db.sum())):
+        snr_sum = tracked.snr_db.sum()   # also gives the mean below: np.mean is sum / count
+        if not (math.isfinite(eff_db.sum()) and math.isfinite(snr_sum)):
             return self._hold("bad_input", "tracked SNR is not finite: map kept")
         offset_db = float(offset_db) if math.isfinite(offset_db) else 0.0
         eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s) - offset_db
         self._offset_now = offset_db
         self._eff_now = eff_db   # what a map made on this call is made on
-        mean_db = float(tracked.snr_db.mean())
+        mean_db = float(snr_sum / tracked.snr_db.size)
         cur = self._current
         since_map = now_s - self._changed_s
         rate_wait = 1.0 / self.max_maps_per_s - since_map

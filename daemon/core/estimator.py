@@ -106,6 +106,9 @@ ESTIMATOR_LIMITS = MappingProxyType({
     "tau_min_s": POSITIVE,
 })
 
+_sum = np.add.reduce
+_min = np.minimum.reduce
+
 #: Reasons :meth:`Estimator.update` can return, each also a key of :attr:`Estimator.counters`.
 REJECT_REASONS = (
     "invalid",        # the source marked the frame unusable (valid=False)
@@ -206,6 +209,7 @@ class Estimator:
     def _clear(self) -> None:
         self._plan_id: str | None = None
         self._tones = None
+        self._tone_bytes = b""         # the tracked tone indices as bytes: one compare a frame
         self._center_hz = math.nan
         self._frames = 0
         self._time_s = math.nan        # source time of the last accepted frame
@@ -219,12 +223,14 @@ class Estimator:
         self._pend_sum = None
         self._pend_n = None
         self._pend_sign = None
+        self._pending = False          # some tone holds pending outlier evidence
 
     def _seed(self, estimate: Estimate, now_s: float) -> None:
         x = estimate.snr_db.astype(np.float64)
         n = x.size
         self._plan_id = estimate.plan_id
         self._tones = estimate.tone_index
+        self._tone_bytes = estimate.tone_index.tobytes()
         self._center_hz = estimate.center_hz
         self._mean_db = x.copy()
         self._var_db2 = np.full(n, self.std_init_db ** 2)
@@ -233,12 +239,15 @@ class Estimator:
         self._p22 = np.zeros(n)            # variance of the slope
         self._slope_db_s = np.zeros(n)
         self._lag_db = np.zeros(n)         # short-term mean of the innovations
-        self._pool_w = min(LAG_POOL_TONES, max(n - 1, 0) // 2)
-        self._cumsum = np.zeros(n + 1 + 2 * self._pool_w)
+        w = self._pool_w = min(LAG_POOL_TONES, max(n - 1, 0) // 2)
+        c = np.zeros(n + 1 + 2 * w)
+        # Views of the running-sum buffer used by _window_sum, made once per seed.
+        self._cumsum_views = (c[w + 1:w + 1 + n], c[w + 1 + n:], c[2 * w + 1:], c[:n])
         self._lag_gain = 1.0
         self._pend_sum = np.zeros(n)
         self._pend_n = np.zeros(n, dtype=np.int64)
         self._pend_sign = np.zeros(n)
+        self._pending = False
         self._frames = 1
         self._time_s = self._seen_s = estimate.time_s
         self._accepted_now_s = float(now_s)
@@ -273,12 +282,13 @@ class Estimator:
         if not estimate.valid:
             return "invalid"
         # A float64 sum is finite exactly when every (float32) term is: one pass per array.
+        # (np.add.reduce is what ndarray.sum calls, without its wrapper: this runs per frame.)
         if not (math.isfinite(estimate.time_s)
-                and math.isfinite(estimate.snr_db.sum(dtype=np.float64))
-                and math.isfinite(estimate.noise_var.sum(dtype=np.float64))
-                and math.isfinite(estimate.channel.view(np.float32).sum(dtype=np.float64))):
+                and math.isfinite(_sum(estimate.snr_db, dtype=np.float64))
+                and math.isfinite(_sum(estimate.noise_var, dtype=np.float64))
+                and math.isfinite(_sum(estimate.channel.view(np.float32), dtype=np.float64))):
             return "non_finite"
-        if estimate.noise_var.size and not estimate.noise_var.min() > 0:
+        if estimate.noise_var.size and not _min(estimate.noise_var) > 0:
             return "noise_var"
         return None
 
@@ -308,7 +318,7 @@ class Estimator:
                 self.reset("tuning")
             elif estimate.n_tones != self._tones.size:
                 return self._reject("tone_count")
-            elif not np.array_equal(estimate.tone_index, self._tones):
+            elif estimate.tone_index.tobytes() != self._tone_bytes:  # same count and dtype
                 return self._reject("tone_index")
             elif not estimate.time_s > self._seen_s:
                 return self._reject("time_order")
@@ -367,7 +377,9 @@ class Estimator:
         self._seen_s = estimate.time_s
         if n_out == 0:
             confirmed = None
-            self._pend_n[:] = 0
+            if self._pending:
+                self._pend_n[:] = 0
+                self._pending = False
         else:
             sign = np.sign(d)
             pend_n = self._pend_n
@@ -380,6 +392,7 @@ class Estimator:
             confirmed = new_n >= self.confirm_frames
             n_confirmed = int(np.count_nonzero(confirmed))
             self._pend_n = np.where(confirmed, 0, new_n)
+            self._pending = True
             self._pend_sum = np.where(confirmed, 0.0, new_sum)
             self._pend_sign = sign
             self._counters["tone_outliers"] += n_out - n_confirmed
@@ -452,11 +465,11 @@ class Estimator:
     def _window_sum(self, values: np.ndarray) -> np.ndarray:
         """Sum over each tone's pooling window (clipped at the band edges), by a running sum
         padded with ``w`` zeros in front and ``w`` copies of the total behind."""
-        w, c = self._pool_w, self._cumsum
-        n = values.size
-        np.cumsum(values, out=c[w + 1:w + 1 + n])
-        c[w + 1 + n:] = c[w + n]
-        return c[2 * w + 1:] - c[:n]
+        body, tail, ahead, behind = self._cumsum_views
+        values.cumsum(out=body)
+        if tail.size:
+            tail.fill(body[-1])
+        return ahead - behind
 
     def _adapt_gain(self, d: np.ndarray, dt: float) -> np.ndarray:
         """Per-tone smoothing gain, shortened where the innovations show lag.
@@ -500,14 +513,19 @@ class Estimator:
         snr_db = self._mean_db
         if self.tone_window > 0 and snr_db.size > 1:
             snr_db = _agree_smooth(snr_db, self.tone_window, self.tone_agree_db)
+            snr_db.setflags(write=False)
         std_db = np.sqrt(self._var_db2)
         mean_std_db = np.sqrt(self._p11)
         spread = self._var_db2 + self._p11
         np.sqrt(spread, out=spread)
         spread *= self.backoff_sigmas
+        effective = np.subtract(snr_db, spread, out=spread)
+        # Fresh arrays, read-only before anyone sees them: the record keeps them uncopied.
+        for arr in (std_db, mean_std_db, effective):
+            arr.setflags(write=False)
         return Tracked(
             plan_id=self._plan_id, tone_index=self._tones, snr_db=snr_db, std_db=std_db,
-            effective_snr_db=snr_db - spread, mean_std_db=mean_std_db,
+            effective_snr_db=effective, mean_std_db=mean_std_db,
             age_s=max(0.0, float(now_s) - self._accepted_now_s), frames=self._frames,
             center_hz=self._center_hz, time_s=self._time_s)
 
@@ -538,5 +556,6 @@ def _agree_smooth(values_db: np.ndarray, window: int, agree_db: float) -> np.nda
         pair = v[:n - 2 * shift] + v[2 * shift:]
         pair *= ok
         acc[shift:n - shift] += pair
-        count[shift:n - shift] += 2.0 * ok
-    return acc / count
+        inner = count[shift:n - shift]
+        np.add(inner, 2.0, out=inner, where=ok)   # counts are small integers: exact
+    return np.divide(acc, count, out=acc)

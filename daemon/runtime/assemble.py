@@ -131,7 +131,8 @@ def make_driver(config: Config, plan, map_provider=None, capture: CaptureWriter 
     if kind == "iq":
         return IqDriver(plan=plan, capture=capture, **section)
     if kind == "radio":
-        return RadioDriver(plan=plan, emulated=config.emulated.model_dump(), **section)
+        return RadioDriver(plan=plan, emulated=config.emulated.model_dump(), capture=capture,
+                           **section)
     if kind == "pushed":
         return PushedDriver(plan=plan, **section)
     if kind == "iq_stream":

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import inspect
 import math
+import os
 import re
 from pathlib import Path
 from typing import Any, Literal, Optional
@@ -879,9 +880,9 @@ class IqCaptureSection(Section):
         return v
 
 
-#: Sources that feed the IQ capture (``record.iq``). The radio source joins once its driver
-#: takes a ``capture`` writer (see brimline.drivers.sources.iq for the calls it makes).
-IQ_CAPTURE_SOURCES = ("iq",)
+#: Sources that feed the IQ capture (``record.iq``): each takes a ``capture`` writer and feeds
+#: it through brimline.drivers.sources.base.CaptureFeed.
+IQ_CAPTURE_SOURCES = ("iq", "radio")
 
 
 class RecordSection(Section):
@@ -1425,7 +1426,10 @@ def _at(where: str, lines: dict[tuple, int | str], loc: tuple) -> str:
             return line
         if line is not None:
             return f"{where} line {line}"
-    return where
+    # a section an override made on its way to its key (--set nope.tau_s=1 makes nope)
+    made = [text for key, text in lines.items()
+            if isinstance(text, str) and loc and key[:len(loc)] == loc]
+    return made[0] if made else where
 
 
 def _explain(exc: ValidationError, where: str, lines: dict[tuple, int | str],
@@ -1618,10 +1622,14 @@ def config_with(config: Config, overrides: Any) -> Config:
 
 
 def _resolve_paths(config: Config, base: Path) -> Config:
-    """Make every relative file path in the config relative to the config file's folder."""
+    """Make every relative file path in the config relative to the config file's folder (a
+    leading ``~`` is the home folder)."""
 
     def rebase(value: str | None) -> str | None:
-        if value is None or Path(value).is_absolute():
+        if value is None:
+            return value
+        value = os.path.expanduser(value)  # ~ and ~user: a home folder
+        if Path(value).is_absolute():
             return value
         return str(base / value)
 

@@ -458,6 +458,7 @@ def replay_offline(config: Config | str | Path | None, recording_path: str | Pat
         raise SourceError(f"{path}: no such recording")
     plan, loader, estimator, change = build_core(cfg)
     window = window or Window()
+    windowed = window != Window()
     pacer = None if speed is None else _Pacer(speed, sleep, clock)
     driver, kind, epoch = _open_source(cfg, plan, path)
     controller = build_controller(cfg, plan, loader, estimator, change, epoch=epoch)
@@ -476,7 +477,7 @@ def replay_offline(config: Config | str | Path | None, recording_path: str | Pat
             done += 1
             if on_progress is not None:
                 on_progress(done, total)
-            if not window.admits(est):
+            if windowed and not window.admits(est):
                 if window.past(est):
                     break
                 continue
@@ -551,7 +552,9 @@ def _live_margin_db(at_0db, m: LoadMap, tracked) -> float:
     if at_0db is None or tracked is None or tracked.plan_id != m.plan_id:
         return math.nan
     loaded, base = at_0db
-    return float(np.min(base + tracked.snr_db[loaded]))
+    margins = tracked.snr_db[loaded]
+    margins += base
+    return float(margins.min())
 
 
 def _stat(values: np.ndarray, how) -> float | None:

@@ -2,8 +2,8 @@
 
 A sweep takes recordings (estimate recordings or SigMF IQ captures), a base config and a grid of
 settings (``KEY=V1,V2`` for dotted config keys; the grid is their Cartesian product) and runs one
-task per (recording, setting): the recording through the link controller under the config with
-that setting, returning the task's summary figures. Tasks run on a ``dask.distributed`` cluster:
+task per (recording, setting): the recording replayed offline under the config with that
+setting, returning the replay's summary figures. Tasks run on a ``dask.distributed`` cluster:
 a :class:`distributed.LocalCluster` of worker *processes* (one thread each: the work is numpy
 and Python that holds the GIL, so threads would not run in parallel) or an existing scheduler's
 address for a real cluster. Results come back as they finish; a task that fails is reported
@@ -12,48 +12,44 @@ with its recording and setting and does not stop the others.
 ``dask[distributed]`` is an optional extra (``pip install 'brimline[sweep]'``), imported inside
 :func:`run_sweep`; without it the sweep stops with one line saying how to install it.
 
+One mechanism
+-------------
+A sweep has no override or replay code of its own. A grid value is read by the config's own
+override parser (:func:`~brimline.daemon.runtime.config.parse_override`), a setting is applied
+by :func:`~brimline.daemon.runtime.config.config_with` (the config's validation and messages),
+and a task is :func:`~brimline.daemon.runtime.offline.replay_offline`, the engine of ``brimline
+replay``: the same recording and setting give a sweep row the same figures as that replay's
+summary.
+
 The task function
 -----------------
-:func:`replay_summary` is the task: it applies the setting to the config (validated by the
-config's own model, so a bad setting fails that task with the config's message), builds the
-tone plan, estimator, change control and :class:`~brimline.daemon.core.controller.LinkController`
-with :mod:`brimline.daemon.runtime.assemble`, feeds it every estimate of the recording at the
-estimate's own ``time_s`` and returns a dict of plain figures. It runs in worker processes, so
-its arguments (a :class:`~brimline.daemon.runtime.config.Config`, a path, a dict) and its result
-are picklable, and it is found by name (``brimline.daemon.runtime.sweep.replay_summary``): the
-workers need brimline installed. Another task function with the same call
-``task(config, recording, setting) -> dict`` can be given to :func:`run_sweep` (the offline
-replay engine's summary, when it is there).
+:func:`replay_summary` is the task: ``replay_offline(config, recording, overrides=setting)``
+and the summary's figures as a plain dict. It runs in worker processes, so its arguments (a
+:class:`~brimline.daemon.runtime.config.Config`, a path, a dict) and its result are picklable,
+and it is found by name (``brimline.daemon.runtime.sweep.replay_summary``): the workers need
+brimline installed. Another task function with the same call
+``task(config, recording, setting) -> dict`` can be given to :func:`run_sweep`.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import logging
-import math
 import uuid
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
-import numpy as np
-import yaml
-from pydantic import ValidationError
+from brimline.daemon.errors import BrimlineError, InputError
+from brimline.daemon.runtime.config import Config, parse_override
+from brimline.daemon.runtime.offline import replay_offline
 
-from brimline.daemon.core.controller import REJECTED
-from brimline.daemon.errors import BrimlineError, ConfigError, InputError
-from brimline.daemon.runtime.assemble import build_controller, build_core
-from brimline.daemon.runtime.config import Config, ConfigLoader, KeyProblem
-from brimline.drivers.sources.iq import IqDriver
-from brimline.drivers.sources.replay import ReplayDriver
-
-__all__ = ["INSTALL_HINT", "TaskResult", "parse_grid", "grid_settings", "apply_setting",
-           "replay_summary", "run_sweep", "recording_is_sigmf", "summary_columns", "flat_summary"]
+__all__ = ["INSTALL_HINT", "TaskResult", "parse_grid", "grid_settings", "replay_summary",
+           "run_sweep", "summary_columns", "flat_summary"]
 
 log = logging.getLogger("brimline.sweep")
 
 INSTALL_HINT = "install with pip install 'brimline[sweep]'"
-_SIGMF_SUFFIXES = (".sigmf-meta", ".sigmf-data")
 
 
 @dataclass(frozen=True)
@@ -91,26 +87,21 @@ class TaskResult:
 # --------------------------------------------------------------------------- the grid
 
 
-def _value(text: str, key: str) -> Any:
-    """One grid value as YAML reads it (``3`` int, ``0.5``/``1e-3`` float, ``true``, text)."""
-    try:
-        value = yaml.load(text, Loader=ConfigLoader)  # noqa: S506 - a safe loader subclass
-    except yaml.YAMLError as exc:
-        raise InputError(f"--grid {key}: value {text!r} is not a YAML scalar: "
-                         f"{' '.join(str(exc).split())}") from None
-    if isinstance(value, (dict, list)):
-        raise InputError(f"--grid {key}: value {text!r} must be a single value, not a "
-                         f"{type(value).__name__}")
-    return value
-
-
 def parse_grid(items: Sequence[str]) -> dict[str, list]:
-    """``["KEY=V1,V2", ...]`` -> ``{KEY: [v1, v2], ...}`` (values typed as YAML reads them).
+    """``["KEY=V1,V2", ...]`` -> ``{KEY: [v1, v2], ...}``.
+
+    Each ``KEY=V`` is read by the config's override parser
+    (:func:`~brimline.daemon.runtime.config.parse_override`: the value as YAML 1.2 reads it,
+    ``0.5``, ``1e-3``, ``true``, ``rate``); whether the key exists and the value is allowed is
+    the config's to say when the setting is applied (:func:`~brimline.daemon.runtime.config.
+    config_with`).
 
     Raises
     ------
     InputError
         An item without ``=``, an empty key or value list, a key given twice.
+    ConfigError
+        A malformed key or a value YAML cannot read (the config's message).
     """
     grid: dict[str, list] = {}
     for item in items:
@@ -121,7 +112,7 @@ def parse_grid(items: Sequence[str]) -> dict[str, list]:
                              f"such as change.hysteresis_db)")
         if key in grid:
             raise InputError(f"--grid {key}: given twice; list every value in one --grid")
-        grid[key] = [_value(v.strip(), key) for v in values.split(",")]
+        grid[key] = [parse_override(f"{key}={v.strip()}")[1] for v in values.split(",")]
     return grid
 
 
@@ -131,58 +122,11 @@ def grid_settings(grid: Mapping[str, Sequence]) -> list[dict]:
     return [dict(zip(keys, combo)) for combo in itertools.product(*(grid[k] for k in keys))]
 
 
-def apply_setting(config: Config, setting: Mapping[str, Any]) -> Config:
-    """``config`` with dotted keys set, validated again by the config's own model.
-
-    Raises
-    ------
-    ConfigError
-        A key that does not name a config key, or a value the config refuses (the message
-        names the key and the value).
-    """
-    data = config.model_dump()
-    for key, value in setting.items():
-        node = data
-        parts = key.split(".")
-        for part in parts[:-1]:
-            if not isinstance(node.get(part), dict):
-                raise ConfigError(f"{key}={value!r}: no config section {part!r}")
-            node = node[part]
-        if parts[-1] not in node:
-            raise ConfigError(f"{key}={value!r}: no such config key")
-        node[parts[-1]] = value
-    try:
-        return Config.model_validate(data)
-    except ValidationError as exc:
-        err = exc.errors()[0]
-        loc = tuple(str(p) for p in err["loc"])
-        problem = (err.get("ctx") or {}).get("error")
-        if isinstance(problem, KeyProblem):  # a check across keys names its own key
-            where = ".".join(loc + problem.loc)
-            raise ConfigError(f"{where}={problem.value!r}: {problem.msg}") from None
-        msg = err["msg"].removeprefix("Value error, ")
-        raise ConfigError(f"{'.'.join(loc)}={err.get('input')!r}: {msg}") from None
-
-
 # --------------------------------------------------------------------------- the task
 
 
-def recording_is_sigmf(path: str | Path) -> bool:
-    """Whether ``path`` names a SigMF capture (else an estimate recording)."""
-    p = Path(path)
-    return p.suffix in _SIGMF_SUFFIXES or p.with_name(p.name + ".sigmf-meta").exists()
-
-
-def _driver(config: Config, plan, recording: str):
-    if recording_is_sigmf(recording):
-        iq = config.driver.iq
-        section = {} if iq is None else iq.model_dump(exclude={"path", "realtime"})
-        return IqDriver(plan=plan, path=recording, **section)
-    return ReplayDriver(path=recording)
-
-
 def replay_summary(config: Config, recording: str, setting: Mapping[str, Any]) -> dict:
-    """Run one recording through the link controller under ``config`` with ``setting``.
+    """Replay one recording offline under ``config`` with ``setting``; its summary figures.
 
     Parameters
     ----------
@@ -192,55 +136,24 @@ def replay_summary(config: Config, recording: str, setting: Mapping[str, Any]) -
     recording : str
         An estimate recording or a SigMF capture.
     setting : dict
-        Dotted config key -> value (see :func:`apply_setting`).
+        Dotted config key -> value, applied by
+        :func:`~brimline.daemon.runtime.config.config_with`.
 
     Returns
     -------
     dict
-        ``frames``, ``accepted``, ``rejected``, ``maps``, ``fallback_maps``, ``duration_s``,
-        ``maps_per_min`` (None for less than one frame interval), ``rate_mean_bits`` and
-        ``rate_min_bits`` (bits per OFDM symbol of the map in force, over the frames that had
-        one; None without a map), ``margin_mean_db`` (the maps' own margin, finite values).
+        The fields of :class:`~brimline.daemon.runtime.offline.OfflineSummary` (``frames``,
+        ``accepted``, ``rejected`` and ``maps_by_kind`` by reason, ``maps``,
+        ``changes_per_min``, ``rate_mean_bits``, ``margin_mean_db``, ``live_margin_min_db``,
+        ``time_below_target_s``, ...), plain values.
 
     Raises
     ------
     BrimlineError
-        The setting or the recording is refused (one line naming it).
+        The setting (the config's message) or the recording is refused (one line naming it).
     """
-    cfg = apply_setting(config, setting)
-    plan, loader, estimator, change = build_core(cfg)
-    controller = build_controller(cfg, plan, loader, estimator, change, epoch="sweep")
-    bits: list[int] = []
-    margins: list[float] = []
-    first_s = last_s = math.nan
-    frames = 0
-    with _driver(cfg, plan, recording) as source:
-        for est in source.frames():
-            step = controller.on_estimate(est, est.time_s)
-            frames += 1
-            first_s = est.time_s if frames == 1 else first_s
-            last_s = est.time_s
-            if step.kind == REJECTED and controller.current_map is None:
-                continue
-            current = controller.current_map
-            if current is not None:
-                bits.append(int(current.total_bits))
-                if math.isfinite(current.margin_db):
-                    margins.append(float(current.margin_db))
-    duration_s = 0.0 if frames < 2 else float(last_s - first_s)
-    maps = sum(controller.maps_published.values())
-    return {
-        "frames": frames,
-        "accepted": controller.accepted,
-        "rejected": sum(controller.rejected.values()),
-        "maps": maps,
-        "fallback_maps": controller.maps_published.get("fallback", 0),
-        "duration_s": duration_s,
-        "maps_per_min": maps / duration_s * 60.0 if duration_s > 0 else None,
-        "rate_mean_bits": float(np.mean(bits)) if bits else None,
-        "rate_min_bits": float(np.min(bits)) if bits else None,
-        "margin_mean_db": float(np.mean(margins)) if margins else None,
-    }
+    result = replay_offline(config, recording, overrides=dict(setting))
+    return dataclasses.asdict(result.summary)
 
 
 # --------------------------------------------------------------------------- the cluster

@@ -91,6 +91,8 @@ _ALLOWED_DTYPES = frozenset(
     ["|b1", "|u1", "|i1", "<u2", "<i2", "<u4", "<i4", "<u8", "<i8",
      "<f4", "<f8", "<c8", "<c16"])
 _SCALAR_KINDS = ("int", "float", "str", "bool")
+# Decoded JSON values whose type already is the scalar kind (exact types: bool is no int).
+_SAME_TYPE = {int: "int", float: "float", str: "str", bool: "bool"}
 _MAX_HEADER_BYTES = 1 << 20
 _MAX_TOPIC_BYTES = 64
 _INT_MIN, _INT_MAX = -(1 << 63), (1 << 63) - 1
@@ -383,9 +385,26 @@ def _scalar(kind: str, value: Any, where: str) -> Any:
     return value
 
 
+#: Array layouts of record types already checked in full: ``(type, repr(specs))`` -> one
+#: ``(name, dtype text, dtype, shape, bytes, shape text)`` per part. A stream of one record
+#: type repeats one layout, so each message costs a lookup and a size check per part instead
+#: of the checks of every spec. ``repr`` of JSON values is one-to-one (``1``, ``1.0``, ``True`` and ``"1"``
+#: differ), so only a layout that passed every check is ever taken from here. Bounded: a peer
+#: that varies layouts only empties it now and then.
+_LAYOUTS: dict[tuple[str, str], tuple[tuple[str, str, np.dtype, tuple, int, str], ...]] = {}
+_MAX_LAYOUTS = 64
+
+
 def _arrays(kind: str, specs: list, parts: Sequence[memoryview],
             expected: Mapping[str, str] | None) -> dict[str, np.ndarray]:
+    key = None
+    if expected is not None:
+        key = (kind, repr(specs))
+        layout = _LAYOUTS.get(key)
+        if layout is not None:
+            return _known_arrays(kind, layout, parts)
     out: dict[str, np.ndarray] = {}
+    checked = []
     for i, (spec, part) in enumerate(zip(specs, parts)):
         if not isinstance(spec, dict) or set(spec) != {"name", "dtype", "shape"}:
             raise ProtocolError(f"{kind}: array spec {i} must have exactly name, dtype, shape",
@@ -417,9 +436,30 @@ def _arrays(kind: str, specs: list, parts: Sequence[memoryview],
         if dt.byteorder == "<" and not dt.isnative:  # big-endian host
             arr = arr.astype(dt.newbyteorder("="))
         out[name] = arr
+        checked.append((name, dtype, dt, tuple(shape), want, _short(shape)))
     if expected is not None and set(out) != set(expected):
         raise ProtocolError(f"{kind}: missing arrays {sorted(set(expected) - set(out))}",
                             reason="arrays")
+    if key is not None:
+        if len(_LAYOUTS) >= _MAX_LAYOUTS:
+            _LAYOUTS.clear()
+        _LAYOUTS[key] = tuple(checked)
+    return out
+
+
+def _known_arrays(kind: str, layout: tuple, parts: Sequence[memoryview]
+                  ) -> dict[str, np.ndarray]:
+    """``_arrays`` for a layout that passed every check before: only the part sizes are
+    left to check (same messages)."""
+    out: dict[str, np.ndarray] = {}
+    for (name, dtype, dt, shape, want, shape_text), part in zip(layout, parts):
+        if part.nbytes != want:
+            raise ProtocolError(f"{kind}.{name}: shape {shape_text} of {dtype} needs "
+                                f"{_short(want)} bytes, part has {part.nbytes}", reason="size")
+        arr = np.frombuffer(part, dtype=dt).reshape(shape)
+        if dt.byteorder == "<" and not dt.isnative:  # big-endian host
+            arr = arr.astype(dt.newbyteorder("="))
+        out[name] = arr
     return out
 
 
@@ -494,7 +534,7 @@ def decode(frames: Sequence[Any], *, types: Iterable[str] | None = None) -> tupl
     if len(frames) > MAX_PARTS:
         raise ProtocolError(f"message has {len(frames)} parts, at most {MAX_PARTS} allowed",
                             reason="parts")
-    views = [byte_view(f) for f in frames]
+    views = [memoryview(f) if type(f) is bytes else byte_view(f) for f in frames]
     if views[0].nbytes > _MAX_TOPIC_BYTES:
         raise ProtocolError(f"topic of {views[0].nbytes} bytes is too long", reason="topic")
     try:
@@ -547,8 +587,15 @@ def decode(frames: Sequence[Any], *, types: Iterable[str] | None = None) -> tupl
     if absent:
         raise ProtocolError(f"{kind}: missing fields {sorted(absent)}", reason="field")
     values: dict[str, Any] = {}
+    scalars = schema.scalars
     for name, raw in fields.items():
-        values[name] = _scalar(schema.scalars[name], raw, f"{kind}.{name}")
+        want = scalars[name]
+        # The common case needs no conversion (the checks below would return raw as it is);
+        # the message text is only made for the rest.
+        if _SAME_TYPE.get(type(raw)) == want and (want != "int" or _INT_MIN <= raw <= _INT_MAX):
+            values[name] = raw
+        else:
+            values[name] = _scalar(want, raw, f"{kind}.{name}")
     for name in schema.finite:
         v = values.get(name, arrays.get(name))
         if v is None:

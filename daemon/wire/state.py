@@ -87,7 +87,9 @@ class StateStore:
     Parameters
     ----------
     path : str or Path
-        State file; its directory must exist.
+        State file. Its folder (and any missing parents) is made by this store's first save,
+        readable by its owner only (the state names the daemon's epoch and lease); a folder
+        that vanishes later is a failed save, not made again (that would hide a lost volume).
     fsync : bool
         fsync the file and the directory on save (default True; tests of speed may turn it off).
     """
@@ -95,6 +97,7 @@ class StateStore:
     def __init__(self, path: str | Path, *, fsync: bool = True) -> None:
         self.path = Path(path)
         self.fsync = bool(fsync)
+        self._saved = False
 
     def load(self) -> SavedState | None:
         """The saved state, or None when there is no state file.
@@ -176,6 +179,8 @@ class StateStore:
         d = self.path.parent
         tmp = None
         try:
+            if not self._saved:
+                d.mkdir(mode=0o700, parents=True, exist_ok=True)
             fd, tmp = tempfile.mkstemp(dir=d, prefix=f".{self.path.name}.", suffix=".tmp")
             with os.fdopen(fd, "wb") as f:
                 f.write(data)
@@ -184,6 +189,7 @@ class StateStore:
                     os.fsync(f.fileno())
             os.replace(tmp, self.path)
             tmp = None
+            self._saved = True
             if self.fsync:
                 self._fsync_dir(d)
             for stale in d.glob(f".{self.path.name}.*.tmp"):  # left by an earlier crash

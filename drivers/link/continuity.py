@@ -58,6 +58,12 @@ class Continuity:
     counters : collections.Counter
         ``lost_frames``, ``suspected_overflows``, ``counter_repeats``, ``counter_jumps``,
         ``damaged_frames`` (see the module docstring).
+    overflow_positions : list of int
+        For each suspected overflow, the buffer boundary (stream position) where the samples
+        were most likely lost: one inside the frame before the gap (a header read before the
+        loss, the rest spliced), else the last one before the frame after the gap starts, else
+        the first one inside that frame. The caller takes them out (an IQ capture starts a new
+        segment there).
 
     Examples
     --------
@@ -78,8 +84,10 @@ class Continuity:
         self._boundaries: collections.deque[int] = collections.deque(maxlen=64)
         self._last_counter: int | None = None
         self._last_end = 0
+        self._last_start = 0
         self._unread = 0  # frames with a failed header since the last readable one
         self._held: list[_Held] = []
+        self.overflow_positions: list[int] = []
 
     def restart(self) -> list[tuple[Any, bool]]:
         """Forget the stream (a new one begins at sample 0); held frames come out invalid."""
@@ -88,6 +96,7 @@ class Continuity:
         self._held.clear()
         self._boundaries.clear()
         self._last_counter, self._last_end, self._unread = None, 0, 0
+        self._last_start = 0
         return out
 
     def boundary(self, position: int) -> None:
@@ -96,6 +105,16 @@ class Continuity:
 
     def _boundary_in(self, low: int, high: int) -> bool:
         return any(low < b < high for b in self._boundaries)
+
+    def _gap_boundary(self, start: int, end: int) -> int | None:
+        spliced = [b for b in self._boundaries if self._last_start < b < self._last_end]
+        if spliced:
+            return spliced[-1]
+        before = [b for b in self._boundaries if self._last_end - 1 < b <= start]
+        if before:
+            return before[-1]
+        inside = [b for b in self._boundaries if start < b < end]
+        return inside[0] if inside else None
 
     def frame(self, item: Any, *, start: int, end: int, header_ok: bool,
               counter: int) -> list[tuple[Any, bool]]:
@@ -142,7 +161,11 @@ class Continuity:
                     self.counters["lost_frames"] += missing
                     if self._boundary_in(self._last_end - 1, end):
                         self.counters["suspected_overflows"] += 1
+                        where = self._gap_boundary(start, end)
+                        if where is not None:
+                            self.overflow_positions.append(where)
         self._last_counter, self._last_end, self._unread = int(counter) % self.modulus, end, 0
+        self._last_start = start
         out = self._release(gap)
         if spans and not gap:
             self._held.append(_Held(item, True, True))  # judged by the next readable header

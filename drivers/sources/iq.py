@@ -10,10 +10,9 @@ the sample stream, so no frame is searched across one), and an estimate's ``time
 samples lost before its segment (``core:global_index``).
 
 IQ capture while running: given a :class:`CaptureWriter` (``capture=``, opened by the runtime
-from the ``record.iq`` section), the driver copies every block it reads into it and starts a new
-capture segment wherever the recording it plays had one. The runtime owns the writer and closes
-it after the driver thread has stopped; a capture that cannot be written is logged once and
-dropped (``capture_errors`` counter), the estimates go on.
+from the ``record.iq`` section), the driver copies every block it reads into it through a
+:class:`~brimline.drivers.sources.base.CaptureFeed` and starts a new capture segment wherever
+the recording it plays had one.
 """
 
 from __future__ import annotations
@@ -25,7 +24,7 @@ from typing import Iterator
 
 import numpy as np
 
-from brimline.daemon.errors import ConfigError, RecordingError
+from brimline.daemon.errors import ConfigError
 from brimline.daemon.records import Estimate, TonePlan
 from brimline.daemon.wire.sigmf import (
     CI16_FULL_SCALE,
@@ -37,7 +36,7 @@ from brimline.daemon.wire.sigmf import (
 )
 from brimline.drivers.link.frame import as_link_plan
 from brimline.drivers.link.receiver import FrameScanner, Receiver, RxFrame
-from brimline.drivers.sources.base import Driver
+from brimline.drivers.sources.base import CaptureFeed, Driver
 
 __all__ = ["IqDriver", "Recording", "CaptureWriter", "read_sigmf", "write_sigmf",
            "CI16_FULL_SCALE"]
@@ -117,14 +116,14 @@ class IqDriver(Driver):
         self.start_s = float(start_s)
         self.realtime = bool(realtime)
         self.max_frames = max_frames
-        self.capture = capture
+        self._capture = CaptureFeed(capture, self.counters, log)
 
     def _frames(self) -> Iterator[Estimate]:
         rec = self.recording
         t0 = time.monotonic()
         count = 0
         for i, seg in enumerate(rec.segments):
-            if i and self.capture is not None:
+            if i:
                 self._mark_segment(seg, rec.segments[i - 1])
             # Samples lost before this segment shift its time (core:global_index).
             shift = seg.global_index - seg.sample_start
@@ -158,7 +157,7 @@ class IqDriver(Driver):
             if not finite.all():  # cf32 damage past the samples read_sigmf checked
                 self.counters["non_finite_samples"] += int(block.size - finite.sum())
                 block = np.where(finite, block, np.complex64(0))
-            self._capture_write(block)
+            self._capture.write(block)
             for offset, res in scanner.feed(block, final=stop >= end):
                 if res.reason:
                     self.counters[res.reason] += 1
@@ -171,27 +170,12 @@ class IqDriver(Driver):
         """Start a capture segment where the played recording starts one."""
         lost = (seg.global_index - seg.sample_start) - (previous.global_index
                                                         - previous.sample_start)
-        try:
-            if seg.reason == "retune" and math.isfinite(seg.center_hz):
-                self.capture.retune(seg.center_hz)
-            elif seg.reason == "overflow":
-                self.capture.overflow(max(lost, 0))
-            else:
-                self.capture.gap(max(lost, 0))
-        except RuntimeError:  # closed under us by the runtime's shutdown
-            self.capture = None
-
-    def _capture_write(self, block: np.ndarray) -> None:
-        if self.capture is None:
-            return
-        try:
-            self.capture.write(block)
-        except RecordingError as exc:
-            self.counters["capture_errors"] += 1
-            log.error("IQ capture stopped, estimates go on without it: %s", exc)
-            self.capture = None
-        except RuntimeError:  # closed under us by the runtime's shutdown
-            self.capture = None
+        if seg.reason == "retune" and math.isfinite(seg.center_hz):
+            self._capture.retune(seg.center_hz)
+        elif seg.reason == "overflow":
+            self._capture.overflow(max(lost, 0))
+        else:
+            self._capture.gap(max(lost, 0))
 
     def _release(self) -> None:
         self.recording = None  # drops the memory map; a running generator keeps its own reference

@@ -44,6 +44,16 @@ Single-radio loopback: with ``transmit`` this driver still only receives; the da
 (:mod:`brimline.daemon.runtime.loopback`, with ``tx_attenuation_db`` and this driver's backoff
 settings), so the frame counters in the headers advance and maps switch at their frames.
 
+IQ capture while running (``record.iq``): given a capture writer (``capture=``, opened and
+closed by the runtime), every good receive buffer is copied into it through the same
+:class:`~brimline.drivers.sources.base.CaptureFeed` as the recorded-IQ source uses, with a new
+capture segment where the stream broke: ``overflow`` at the buffer boundary where the frame
+counters say samples were lost, ``gap`` before the buffer after a malformed (dropped) one and
+before the first buffer after a reconnect. The number of samples lost is not known there (the
+counters count frames, not samples), so those segments carry none. An overflow is seen only
+once the next readable header has been read, which may be in the following buffer; so a buffer
+is copied once the one after it has been scanned (the last ones when the source stops).
+
 RF caution: with ``transmit`` the radio transmits. Operate only within your licence or the band's
 licence-exempt rules (frequency, power, emission mask), put enough attenuation between cabled TX
 and RX ports, keep clear of antennas for RF exposure; local regulations and licensed practice
@@ -71,7 +81,7 @@ from brimline.drivers.devices.factory import open_device as open_backend
 from brimline.drivers.link.continuity import Continuity
 from brimline.drivers.link.frame import as_link_plan
 from brimline.drivers.link.receiver import FrameScanner, Receiver
-from brimline.drivers.sources.base import Driver
+from brimline.drivers.sources.base import CaptureFeed, Driver
 
 __all__ = ["RadioDriver", "RADIO_LIMITS", "DeviceFactory", "load_adi", "pyadi_factory",
            "device_versions", "probe_radio", "INSTALL_HINT"]
@@ -236,6 +246,9 @@ class RadioDriver(Driver):
         :func:`pyadi_factory` of ``device``.
     clock : callable
         Clock of the estimates' ``time_s``, s (monotonic).
+    capture : CaptureWriter, optional
+        The runtime's IQ capture (``record.iq``; not a config key of this section): receive
+        buffers are copied into it (see the module docstring). The runtime closes it.
 
     Raises
     ------
@@ -254,7 +267,7 @@ class RadioDriver(Driver):
                  backoff_s: float = 0.25, backoff_max_s: float = 8.0, max_attempts: int = 0,
                  backend: str = "iio", emulated: Mapping[str, Any] | None = None,
                  open_device: DeviceFactory | None = None,
-                 clock: Callable[[], float] = time.monotonic) -> None:
+                 clock: Callable[[], float] = time.monotonic, capture=None) -> None:
         super().__init__()
         check_values(dict(rx_gain_db=rx_gain_db, tx_attenuation_db=tx_attenuation_db,
                           buffer_frames=buffer_frames, default_bits=default_bits,
@@ -284,6 +297,7 @@ class RadioDriver(Driver):
                            else _factory_of(backend, device, emulated))
         self._open_device = open_device
         self._clock = clock
+        self._capture = CaptureFeed(capture, self.counters, log)
         self.receiver = Receiver(self.plan, default_bits=default_bits,
                                  sync_threshold=sync_threshold, clip_level=0.999)
         #: "running", "reconnecting" or "failed" (read by the service for the status stream).
@@ -410,13 +424,22 @@ class RadioDriver(Driver):
                 self._tear_down(device)
 
     def _work(self) -> Iterator[Estimate]:
+        copy = _LaggedCopy(self._capture)
+        try:
+            yield from self._streams(copy)
+        finally:
+            copy.flush()
+
+    def _streams(self, copy: "_LaggedCopy") -> Iterator[Estimate]:
         fs = self.plan.sample_rate_hz
         count = 0
         last_frame: int | None = None  # unwrapped number of the last estimate's frame
         last_time = -math.inf
         while not self.closed:
-            if self._device is None and not self._reopen():
-                return
+            if self._device is None:
+                if not self._reopen():
+                    return
+                copy.mark(0, "gap")  # a new stream: samples were lost while reconnecting
             scanner, continuity, fed = FrameScanner(self.receiver), Continuity(), 0
             while not self.closed:
                 device = self._device
@@ -431,14 +454,17 @@ class RadioDriver(Driver):
                     before = dict(continuity.counters)
                     continuity.restart()  # frames held across the fault are dropped (damaged)
                     self._merge(continuity, before)
+                    copy.flush()  # the old stream ends here
                     break
                 arrived = self._clock()
                 samples = self._samples(raw)
                 if samples is None:
                     self.counters["bad_buffers"] += 1
+                    copy.mark(fed, "gap")  # the next good buffer follows lost samples
                     continue
                 self.counters["buffers"] += 1
                 continuity.boundary(fed)
+                copy.add(fed, samples)
                 fed += samples.size
                 before = dict(continuity.counters)
                 for start, res in scanner.feed(samples):
@@ -470,6 +496,10 @@ class RadioDriver(Driver):
                         self.counters["frames"] += 1
                         yield estimate
                 self._merge(continuity, before)
+                for position in continuity.overflow_positions:
+                    copy.mark(position, "overflow")
+                continuity.overflow_positions.clear()
+                copy.settle()
 
     def _merge(self, continuity: Continuity, before: dict) -> None:
         for key, value in continuity.counters.items():
@@ -485,6 +515,51 @@ class RadioDriver(Driver):
             device, self._device = self._device, None
         if device is not None:
             self._tear_down(device)
+
+
+class _LaggedCopy:
+    """Receive buffers on their way to the IQ capture, copied once the next one is scanned.
+
+    ``add(position, samples)`` queues a buffer before it is scanned; ``mark(position,
+    reason)`` notes a break of the stream before the buffer that starts at ``position`` (the
+    first reason given wins); ``settle()``, after a scan, copies every queued buffer but the
+    newest, starting a capture segment first where one is marked. A break noted only after
+    its buffer was copied starts the segment at the next buffer copied.
+    """
+
+    def __init__(self, feed: CaptureFeed) -> None:
+        self.feed = feed
+        self._pending: list[tuple[int, np.ndarray]] = []
+        self._marks: dict[int, str] = {}
+
+    def mark(self, position: int, reason: str) -> None:
+        if self.feed.active:
+            self._marks.setdefault(int(position), reason)
+
+    def add(self, position: int, samples: np.ndarray) -> None:
+        if self.feed.active:
+            self._pending.append((int(position), samples))
+
+    def settle(self) -> None:
+        while len(self._pending) > 1:
+            self._copy(*self._pending.pop(0))
+
+    def flush(self) -> None:
+        """Copy every queued buffer; the stream ends (positions start again from 0)."""
+        while self._pending:
+            self._copy(*self._pending.pop(0))
+        self._marks.clear()  # breaks after the last buffer: the next stream starts with its own
+
+    def _copy(self, position: int, samples: np.ndarray) -> None:
+        reason = self._marks.pop(position, None)
+        for p in [p for p in self._marks if p < position]:  # noticed too late for its place
+            reason = reason or self._marks[p]
+            del self._marks[p]
+        if reason == "overflow":
+            self.feed.overflow(None)
+        elif reason == "gap":
+            self.feed.gap(None)
+        self.feed.write(samples)
 
 
 def _factory_of(backend: str, device: str, emulated: Mapping[str, Any] | None) -> DeviceFactory:
