@@ -58,16 +58,16 @@ EVA_DB = (0.0, -1.5, -1.4, -3.6, -0.6, -9.1, -7.0, -12.0, -16.9)
 
 #: Settings of each case (over the recording's config) and the digest recorded for it.
 CASES = {
-    "demo": ({}, "92fdb48a71afdb66"),
-    "eventful": ({}, "49335a3e3bfc7ce3"),
+    "demo": ({}, "cc408ab38039dfe7"),
+    "eventful": ({}, "38f378d86820c975"),
     "eventful_trend": ({"estimator.trend_tau_s": 0.5, "change.lookahead_s": 0.0},
-                       "0386f7be7b232d02"),
+                       "6723ccf0fb5b3ad7"),
     "eventful_plain": ({"estimator.lag_sigmas": 0.0, "estimator.tone_window": 0},
-                       "51490525ece95367"),
+                       "fb345a87aea8c865"),
     "eventful_margin": ({"loading.mode": "margin", "loading.target_bits": 450},
-                        "4dc81821fd23055b"),
+                        "e08e260330054f0e"),
     "eventful_waterfill": ({"loading.mode": "waterfill", "loading.cap_db": 3.0},
-                           "47cc76f70f21737d"),
+                           "88b48c7f71b0f2fd"),
 }
 
 
