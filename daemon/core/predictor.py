@@ -112,7 +112,7 @@ def align_phase(channel: np.ndarray, reference: np.ndarray, tone_index: np.ndarr
     bins = np.asarray(tone_index, dtype=np.int64)
     d = h * np.conj(reference)
     span = int(bins.max() - bins.min()) + 1 if bins.size else 1
-    size = 1 << max(6, int(math.ceil(math.log2(8 * span))))
+    size = 1 << max(6, int(math.ceil(math.log2(4 * span))))
     grid = np.zeros(size, dtype=np.complex128)
     grid[(bins - bins.min()) % size] = d
     power = np.abs(np.fft.fft(grid)) ** 2
