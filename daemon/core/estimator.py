@@ -68,6 +68,18 @@ Why these choices:
   ``max(outlier_db, outlier_sigmas * sqrt(var + predicted variance))``. It is off by default:
   with it, the estimation noise of a static channel moves the slope and the maps churn.
 
+* **Channel prediction** (``predict_s > 0``): a map made now is in force from ``lead`` frames
+  on for at least the shortest map life, so on a fading channel the SNR it meets is not today's.
+  A :class:`~brimline.daemon.core.predictor.ChannelPredictor` follows each tone's *complex*
+  channel (a path through a notch stays smooth there, where a fit in dB or in power does not)
+  and the effective SNR falls by each tone's worst predicted fall over ``predict_s``, less
+  ``predict_sigmas`` measured prediction errors. The back-off then covers only the part of the
+  frames' spread that the prediction does not explain: ``var`` is replaced by the smaller of
+  itself and the spread of the frames about what the prediction expected one frame ahead. A tone
+  holding back an outlier keeps the plain view, and a confirmed jump restarts that tone's line
+  (a step is no trend). On a static channel the prediction is the held value and nothing
+  changes; estimates without a channel that moves (``channel`` all ones) leave it inert.
+
 Frames that cannot be used are dropped and counted by reason (see :data:`REJECT_REASONS`); the
 state stays as it was.
 """
@@ -79,6 +91,7 @@ from types import MappingProxyType
 
 import numpy as np
 
+from brimline.daemon.core.predictor import PREDICTOR_LIMITS, ChannelPredictor
 from brimline.daemon.limits import NON_NEGATIVE, POSITIVE, between, check_values
 from brimline.daemon.records import Estimate, Tracked
 
@@ -104,6 +117,9 @@ ESTIMATOR_LIMITS = MappingProxyType({
     "trend_tau_s": NON_NEGATIVE,
     "lag_sigmas": NON_NEGATIVE,
     "tau_min_s": POSITIVE,
+    "predict_s": PREDICTOR_LIMITS["horizon_s"],
+    "predict_window": PREDICTOR_LIMITS["window"],
+    "predict_sigmas": PREDICTOR_LIMITS["allowance_sigmas"],
 })
 
 _sum = np.add.reduce
@@ -159,6 +175,15 @@ class Estimator:
         Time constant of the per-tone slope tracker (Holt's linear trend), seconds; 0 turns it
         off. With it on the tracked value is predicted ``slope * min(dt, tau_s)`` ahead before
         the innovation is taken, so a steady fade is followed without lag.
+    predict_s : float
+        Horizon of the per-tone complex channel prediction, seconds after the newest estimate
+        (the lead plus a map's shortest life, ``1 / change.max_maps_per_s``); the effective SNR
+        falls by each tone's worst predicted fall over it; 0 turns it off.
+    predict_window : int
+        Estimates in each tone's least-squares line of the prediction.
+    predict_sigmas : float
+        Measured prediction errors (beyond the one-frame error) taken off the predicted channel
+        magnitude.
 
     Notes
     -----
@@ -180,7 +205,8 @@ class Estimator:
                  frame_outlier_fraction: float = 0.5, stale_s: float = 5.0,
                  tone_window: int = 2, tone_agree_db: float = 2.0,
                  trend_tau_s: float = 0.0, lag_sigmas: float = 2.0,
-                 tau_min_s: float = 0.015) -> None:
+                 tau_min_s: float = 0.015, predict_s: float = 0.12,
+                 predict_window: int = 5, predict_sigmas: float = 0.5) -> None:
         # locals() holds exactly the keyword arguments here, before any other name is bound.
         check_values(locals(), ESTIMATOR_LIMITS, prefix="estimator.")
         self.tau_s = float(tau_s)
@@ -197,6 +223,11 @@ class Estimator:
         self.trend_tau_s = float(trend_tau_s)
         self.lag_sigmas = float(lag_sigmas)
         self.tau_min_s = float(tau_min_s)
+        self.predict_s = float(predict_s)
+        self.predict_window = int(predict_window)
+        self.predict_sigmas = float(predict_sigmas)
+        self._predictor = ChannelPredictor(horizon_s=self.predict_s, window=self.predict_window,
+                                           allowance_sigmas=self.predict_sigmas)
         self._counters = dict.fromkeys(
             ("accepted",) + REJECT_REASONS
             + ("tone_outliers", "tone_changes", "reset_plan", "reset_tuning", "reset_stale",
@@ -224,6 +255,10 @@ class Estimator:
         self._pend_n = None
         self._pend_sign = None
         self._pending = False          # some tone holds pending outlier evidence
+        self._noise_var = None
+        self._expect_db = None   # this frame's SNR as the channel prediction expected it
+        self._var_moving_db2 = None  # spread of single frames about that expectation
+        self._predictor.reset()
 
     def _seed(self, estimate: Estimate, now_s: float) -> None:
         x = estimate.snr_db.astype(np.float64)
@@ -251,6 +286,17 @@ class Estimator:
         self._frames = 1
         self._time_s = self._seen_s = estimate.time_s
         self._accepted_now_s = float(now_s)
+        self._predict(estimate)
+
+    def _predict(self, estimate: Estimate) -> None:
+        if self.predict_s > 0:
+            p = self._predictor
+            p.update(estimate.time_s, estimate.channel, estimate.tone_index)
+            self._noise_var = estimate.noise_var
+            if self._var_moving_db2 is None:
+                self._var_moving_db2 = self._var_db2.copy()
+            change = p.change_db(p.frame_interval_s, estimate.noise_var)
+            self._expect_db = None if change is None else self._mean_db + change
 
     def reset(self, reason: str = "other") -> None:
         """Forget all tracking; the next valid frame starts afresh.
@@ -345,6 +391,12 @@ class Estimator:
         # prior std_init_db counting as one frame): the spread is learnt within a few frames.
         beta = max(-math.expm1(-dt / self.std_tau_s), 1.0 / (self._frames + 1))
         x = estimate.snr_db.astype(np.float64)
+        if self._expect_db is not None:
+            # the spread of a frame about what the channel prediction expected: the part of
+            # the frames' spread (var) that the prediction does not explain
+            miss = x - self._expect_db
+            miss *= miss
+            self._var_moving_db2 += beta * (miss - self._var_moving_db2)
         slope = self._slope_db_s
         if k2:
             pred = slope * horizon
@@ -449,6 +501,10 @@ class Estimator:
         self._accepted_now_s = float(now_s)
         self._frames += 1
         self._counters["accepted"] += 1
+        self._predict(estimate)
+        if self.predict_s > 0 and confirmed is not None and n_confirmed:
+            # a confirmed jump is a step, not a trend: those tones' lines start at the new level
+            self._predictor.restart(confirmed)
         return None
 
     def _lag_z2(self) -> tuple[np.ndarray, np.ndarray]:
@@ -516,10 +572,21 @@ class Estimator:
             snr_db.setflags(write=False)
         std_db = np.sqrt(self._var_db2)
         mean_std_db = np.sqrt(self._p11)
-        spread = self._var_db2 + self._p11
+        fall = self._predictor.fall_db(self._noise_var) if self.predict_s > 0 else None
+        if fall is None:
+            spread = self._var_db2 + self._p11
+        else:
+            # the channel prediction covers the motion it explains: back off for the rest
+            spread = np.minimum(self._var_db2, self._var_moving_db2)
+            spread += self._p11
         np.sqrt(spread, out=spread)
         spread *= self.backoff_sigmas
         effective = np.subtract(snr_db, spread, out=spread)
+        if fall is not None:
+            # Tones holding back an outlier (a jump not yet confirmed) keep the plain view: a
+            # line through one odd frame is no trend.
+            fall[self._pend_n > 0] = 0.0
+            effective += fall
         # Fresh arrays, read-only before anyone sees them: the record keeps them uncopied.
         for arr in (std_db, mean_std_db, effective):
             arr.setflags(write=False)

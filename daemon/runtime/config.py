@@ -612,6 +612,18 @@ class EstimatorSection(Section):
         _EST["tau_min_s"],
         description="shortest smoothing time constant while a fade is followed, and the "
                     "time constant of the innovations' short-term mean, s")
+    predict_s: float = Field(
+        _EST["predict_s"],
+        description="far end of the horizon over which each tone's complex channel is "
+                    "predicted (newest estimate to the end of the next map's life), s; the "
+                    "effective SNR falls by the worst predicted fall over it; 0: off")
+    predict_window: int = Field(
+        _EST["predict_window"],
+        description="estimates in each tone's least-squares line of the channel prediction")
+    predict_sigmas: float = Field(
+        _EST["predict_sigmas"],
+        description="measured prediction errors (beyond the one-frame error) taken off the "
+                    "predicted channel magnitude")
 
     @field_validator(*ESTIMATOR_LIMITS)
     @classmethod
