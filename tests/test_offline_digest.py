@@ -58,16 +58,16 @@ EVA_DB = (0.0, -1.5, -1.4, -3.6, -0.6, -9.1, -7.0, -12.0, -16.9)
 
 #: Settings of each case (over the recording's config) and the digest recorded for it.
 CASES = {
-    "demo": ({}, "cc408ab38039dfe7"),
-    "eventful": ({}, "38f378d86820c975"),
+    "demo": ({}, "1e457ba14e171f28"),
+    "eventful": ({}, "be54495160d9c451"),
     "eventful_trend": ({"estimator.trend_tau_s": 0.5, "change.lookahead_s": 0.0},
-                       "6723ccf0fb5b3ad7"),
+                       "14b3f9b03fe63065"),
     "eventful_plain": ({"estimator.lag_sigmas": 0.0, "estimator.tone_window": 0},
-                       "fb345a87aea8c865"),
+                       "601bdcfde93f7252"),
     "eventful_margin": ({"loading.mode": "margin", "loading.target_bits": 450},
-                        "e08e260330054f0e"),
+                        "a2044809e0cd8234"),
     "eventful_waterfill": ({"loading.mode": "waterfill", "loading.cap_db": 3.0},
-                           "88b48c7f71b0f2fd"),
+                           "cf3461b306233eca"),
 }
 
 
