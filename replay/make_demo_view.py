@@ -1,6 +1,6 @@
 """Makes ``demo-view.png``: the browser view (``brimline lookout``) at the end of the demo run.
 
-Runs ``config/demo.yaml`` for 20 s of link time in lockstep, with the link time as the service's
+Runs ``config/demo.yaml`` for 25 s of link time in lockstep, with the link time as the service's
 clock, so the status messages are the same every run; hands each to the view (and so to a page
 open in Debian's headless chromium) and waits until the view has it; photographs the whole page
 at the end of the run. The machinery is the
@@ -27,7 +27,7 @@ from protocol_helpers import until  # noqa: E402
 
 from brimline.daemon.views.lookout import Lookout  # noqa: E402
 
-LINK_TIME_S = 20.0
+LINK_TIME_S = 25.0
 WIDTH_PX = 1280
 HANG_S = 60.0
 
