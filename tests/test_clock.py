@@ -38,6 +38,34 @@ class TestClockOffsetPpm:
         k = np.r_[0:10, 25:40]  # 15 frames lost to noise in between
         assert clock_offset_ppm(starts(k, 20.0, rng), k, SLOT) == pytest.approx(20.0, abs=2.0)
 
+    def test_one_frame_found_off_does_not_tilt_the_robust_fit(self):
+        """The first frame of a stream found 9 samples late (as the synchroniser finds it at
+        the very start of a stream): plain least squares tilts (by about 1.7 ppm here), the
+        fit over the inliers of the Theil-Sen line does not."""
+        k = np.arange(40)
+        p = 100.0 + k * SLOT * (1 + 30e-6)
+        p[0] += 9.0
+        assert abs(clock_offset_ppm(p, k, SLOT) - 30.0) > 1.0
+        assert clock_offset_ppm(p, k, SLOT, inlier_samples=3.0) == pytest.approx(30.0,
+                                                                                 abs=1e-6)
+
+    def test_robust_fit_matches_scipy_theilslopes_and_numpy_polyfit(self, rng):
+        """A quarter of the frames 40 samples off: the inliers of scipy.stats.theilslopes'
+        line (independent implementation of Theil-Sen), fitted by numpy.polyfit, give the
+        same offset."""
+        stats = pytest.importorskip("scipy.stats")
+        k = np.arange(48)
+        p = starts(k, 75.0, rng)
+        p[rng.choice(k.size, 12, replace=False)] += 40.0
+        x = k * SLOT
+        slope, intercept = stats.theilslopes(p, x)[:2]
+        inl = np.abs(p - np.median(p - slope * x) - slope * x) <= 5.0
+        assert inl.sum() == 36
+        expected = (np.polyfit(x[inl], p[inl], 1)[0] - 1) * 1e6
+        assert clock_offset_ppm(p, k, SLOT, inlier_samples=5.0) == pytest.approx(expected,
+                                                                                 abs=1e-6)
+        assert expected == pytest.approx(75.0, abs=3.0)
+
     @pytest.mark.parametrize("p,k,slot", [
         ([], [], SLOT), ([1.0], [3], SLOT), ([1.0, 2.0], [3, 3], SLOT),
         ([1.0, np.nan], [0, 1], SLOT), ([1.0, 2.0], [0, 1], 0.0), ([1.0, 2.0], [0, 1], np.nan),

@@ -9,7 +9,7 @@ frame numbered ``k`` starts at sample ``p_k``; with the receiver's sample clock 
     p_k = p_0 + (1 + e 1e-6) L k + jitter.
 
 The offset is therefore the least-squares slope of the start positions against ``k L``, less 1,
-times 1e6 (:func:`clock_offset_ppm`). :class:`ClockFit` keeps that fit over a sliding window of
+times 1e6 (:func:`clock_offset_ppm`; robustly: over the points near a Theil-Sen line). :class:`ClockFit` keeps that fit over a sliding window of
 recent frames of one contiguous stretch of samples:
 
 * a gap in the counters (frames lost to noise) needs nothing: the counters say how many slots
@@ -29,7 +29,8 @@ would be 1 by construction). Without it no offset is given.
 Notes
 -----
 Ordinary least squares of a straight line (e.g. Press et al., *Numerical Recipes*, 3rd ed.,
-section 15.2, "Fitting Data to a Straight Line"); the outlier rule is a plain residual gate,
+section 15.2, "Fitting Data to a Straight Line", from memory), over the inliers of a Theil-Sen
+line (references at :func:`clock_offset_ppm`); the restart rule is a plain residual gate,
 common practice rather than a published estimator.
 """
 
@@ -48,8 +49,8 @@ __all__ = ["clock_offset_ppm", "ClockFit", "MAX_OFFSET_PPM"]
 MAX_OFFSET_PPM = 2000.0
 
 
-def clock_offset_ppm(positions: np.ndarray, counters: np.ndarray,
-                     slot_samples: float) -> float | None:
+def clock_offset_ppm(positions: np.ndarray, counters: np.ndarray, slot_samples: float, *,
+                     inlier_samples: float | None = None) -> float | None:
     """Sample clock offset from frame start positions and their (unwrapped) frame counters.
 
     Parameters
@@ -60,14 +61,25 @@ def clock_offset_ppm(positions: np.ndarray, counters: np.ndarray,
         The frames' unwrapped header counters (slots since any fixed origin).
     slot_samples : float
         Samples per frame slot at the transmitter's sample clock.
+    inlier_samples : float or None
+        When given, the fit is robust: a Theil-Sen line first (the median of the slopes of
+        all pairs), then least squares over the points within ``inlier_samples`` of it, so a
+        frame found a few samples off (the first one of a stream, where the synchroniser
+        cannot look back) does not tilt the line. None: least squares over all points.
 
     Returns
     -------
     float or None
         ``(slope - 1) * 1e6`` of the least-squares line of ``positions`` against
         ``counters * slot_samples``: positive when the receiver's clock runs fast. None with
-        fewer than two distinct counters, a non-positive or non-finite slot, or non-finite
-        input.
+        fewer than two distinct counters (among the inliers), a non-positive or non-finite
+        slot, or non-finite input.
+
+    Notes
+    -----
+    Theil-Sen: H. Theil, "A rank-invariant method of linear and polynomial regression
+    analysis", 1950; P. K. Sen, "Estimates of the regression coefficient based on Kendall's
+    tau", JASA 63, 1968.
 
     Examples
     --------
@@ -82,6 +94,18 @@ def clock_offset_ppm(positions: np.ndarray, counters: np.ndarray,
         return None
     if not (np.isfinite(p).all() and np.isfinite(k).all()):
         return None
+    if inlier_samples is not None:
+        i, j = np.triu_indices(k.size, 1)
+        dk = k[j] - k[i]
+        pair = dk != 0
+        if not pair.any():
+            return None
+        theil = float(np.median((p[j] - p[i])[pair] / dk[pair]))  # samples per counter step
+        offset = float(np.median(p - theil * k))
+        keep = np.abs(p - offset - theil * k) <= float(inlier_samples)
+        p, k = p[keep], k[keep]
+        if p.size < 2:
+            return None
     x = (k - k.mean()) * slot
     sxx = float(x @ x)
     if sxx <= 0.0:
@@ -105,6 +129,9 @@ class ClockFit:
         Largest distance of a frame start from the fitted line (or, before ``min_frames``,
         from the nominal slot spacing beyond :data:`MAX_OFFSET_PPM`) still taken as jitter;
         beyond it samples were lost and the fit restarts at that frame.
+    inlier_samples : float
+        Points further than this from the robust line are left out of the least squares
+        (:func:`clock_offset_ppm`).
 
     Attributes
     ----------
@@ -121,7 +148,7 @@ class ClockFit:
     """
 
     def __init__(self, slot_samples: float, *, window: int = 64, min_frames: int = 8,
-                 tolerance_samples: float = 16.0) -> None:
+                 tolerance_samples: float = 16.0, inlier_samples: float = 3.0) -> None:
         slot = float(slot_samples)
         if not (math.isfinite(slot) and slot > 0):
             raise ValueError(f"slot_samples={slot_samples} must be a positive number")
@@ -131,6 +158,7 @@ class ClockFit:
         self.window = int(window)
         self.min_frames = int(min_frames)
         self.tolerance_samples = float(tolerance_samples)
+        self.inlier_samples = float(inlier_samples)
         self.restarts = 0
         self._points: collections.deque[tuple[float, int]] = collections.deque(
             maxlen=self.window)
@@ -157,7 +185,8 @@ class ClockFit:
         self._points.append((position, counter))
         if len(self._points) >= self.min_frames:
             p, k = np.array(self._points, dtype=np.float64).T
-            self._offset_ppm = clock_offset_ppm(p, k, self.slot_samples)
+            self._offset_ppm = clock_offset_ppm(p, k, self.slot_samples,
+                                                inlier_samples=self.inlier_samples)
         else:
             self._offset_ppm = None
 
