@@ -157,6 +157,7 @@ class TestClockFit:
         (dict(slot_samples=0.0), r"slot_samples=0.0 must be a positive number"),
         (dict(slot_samples=SLOT, min_frames=1), r"min_frames=1 must be >= 2"),
         (dict(slot_samples=SLOT, min_frames=10, window=5), r"<= window=5"),
+        (dict(slot_samples=SLOT, refit_every=0), r"refit_every=0 must be >= 1"),
     ])
     def test_bad_settings(self, kw, msg):
         with pytest.raises(ValueError, match=msg):

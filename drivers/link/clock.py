@@ -9,8 +9,9 @@ frame numbered ``k`` starts at sample ``p_k``; with the receiver's sample clock 
     p_k = p_0 + (1 + e 1e-6) L k + jitter.
 
 The offset is therefore the least-squares slope of the start positions against ``k L``, less 1,
-times 1e6 (:func:`clock_offset_ppm`; robustly: over the points near a Theil-Sen line). :class:`ClockFit` keeps that fit over a sliding window of
-recent frames of one contiguous stretch of samples:
+times 1e6 (:func:`clock_offset_ppm`; robustly: over the points near a Theil-Sen line).
+:class:`ClockFit` keeps that fit over a sliding window of recent frames of one contiguous
+stretch of samples:
 
 * a gap in the counters (frames lost to noise) needs nothing: the counters say how many slots
   passed;
@@ -37,6 +38,7 @@ common practice rather than a published estimator.
 from __future__ import annotations
 
 import collections
+import functools
 import math
 
 import numpy as np
@@ -95,7 +97,7 @@ def clock_offset_ppm(positions: np.ndarray, counters: np.ndarray, slot_samples: 
     if not (np.isfinite(p).all() and np.isfinite(k).all()):
         return None
     if inlier_samples is not None:
-        i, j = np.triu_indices(k.size, 1)
+        i, j = _pairs(k.size)
         dk = k[j] - k[i]
         pair = dk != 0
         if not pair.any():
@@ -112,6 +114,15 @@ def clock_offset_ppm(positions: np.ndarray, counters: np.ndarray, slot_samples: 
         return None
     slope = float(x @ (p - p.mean())) / sxx
     return (slope - 1.0) * 1e6
+
+
+@functools.lru_cache(maxsize=8)
+def _pairs(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Index pairs ``i < j`` of ``n`` points (read-only, cached: the window size repeats)."""
+    i, j = np.triu_indices(n, 1)
+    i.setflags(write=False)
+    j.setflags(write=False)
+    return i, j
 
 
 class ClockFit:
@@ -132,6 +143,9 @@ class ClockFit:
     inlier_samples : float
         Points further than this from the robust line are left out of the least squares
         (:func:`clock_offset_ppm`).
+    refit_every : int
+        Frames between fits once there is one (the fit is O(window**2); the clock drifts
+        slowly); frames are checked against the last fitted line in between.
 
     Attributes
     ----------
@@ -148,28 +162,34 @@ class ClockFit:
     """
 
     def __init__(self, slot_samples: float, *, window: int = 64, min_frames: int = 8,
-                 tolerance_samples: float = 16.0, inlier_samples: float = 3.0) -> None:
+                 tolerance_samples: float = 16.0, inlier_samples: float = 3.0,
+                 refit_every: int = 8) -> None:
         slot = float(slot_samples)
         if not (math.isfinite(slot) and slot > 0):
             raise ValueError(f"slot_samples={slot_samples} must be a positive number")
         if int(min_frames) < 2 or int(window) < int(min_frames):
             raise ValueError(f"min_frames={min_frames} must be >= 2 and <= window={window}")
+        if int(refit_every) < 1:
+            raise ValueError(f"refit_every={refit_every} must be >= 1")
         self.slot_samples = slot
         self.window = int(window)
         self.min_frames = int(min_frames)
         self.tolerance_samples = float(tolerance_samples)
         self.inlier_samples = float(inlier_samples)
+        self.refit_every = int(refit_every)
         self.restarts = 0
         self._points: collections.deque[tuple[float, int]] = collections.deque(
             maxlen=self.window)
         self._offset_ppm: float | None = None
+        self._line: tuple[float, float] | None = None  # start = a + b * counter, samples
+        self._since_fit = 0
 
     def restart(self) -> None:
         """Forget the stretch: samples were lost (or a new stream begins)."""
         if self._points:
             self.restarts += 1
         self._points.clear()
-        self._offset_ppm = None
+        self._offset_ppm, self._line, self._since_fit = None, None, 0
 
     def add(self, position: float, counter: int) -> None:
         """One frame of the stretch: its start ``position`` (samples) and unwrapped ``counter``.
@@ -183,27 +203,35 @@ class ClockFit:
         if self._points and not self._fits(position, counter):
             self.restart()
         self._points.append((position, counter))
-        if len(self._points) >= self.min_frames:
-            p, k = np.array(self._points, dtype=np.float64).T
-            self._offset_ppm = clock_offset_ppm(p, k, self.slot_samples,
-                                                inlier_samples=self.inlier_samples)
-        else:
-            self._offset_ppm = None
+        self._since_fit += 1
+        if len(self._points) < self.min_frames:
+            return
+        if self._line is not None and self._since_fit < self.refit_every:
+            return
+        self._since_fit = 0
+        p, k = np.array(self._points, dtype=np.float64).T
+        k0 = k[0]
+        k = k - k0  # small numbers for the fit
+        off = clock_offset_ppm(p, k, self.slot_samples, inlier_samples=self.inlier_samples)
+        self._offset_ppm = off
+        if off is None or not math.isfinite(off):
+            self._line = None
+            return
+        b = (1.0 + off * 1e-6) * self.slot_samples
+        a = float(np.median(p - b * k)) - b * k0
+        self._line = (a, b)
 
     def _fits(self, position: float, counter: int) -> bool:
         last_p, last_k = self._points[-1]
         step = counter - last_k
         if step <= 0:  # a repeated or older counter: no slot count to go by
             return False
-        span = step * self.slot_samples
-        if self._offset_ppm is None:
+        if self._line is None:
+            span = step * self.slot_samples
             error = abs(position - last_p - span)
             return error <= self.tolerance_samples + MAX_OFFSET_PPM * 1e-6 * span
-        p, k = np.array(self._points, dtype=np.float64).T
-        slope = 1.0 + self._offset_ppm * 1e-6
-        intercept = float(np.mean(p - slope * k * self.slot_samples))
-        expected = intercept + slope * counter * self.slot_samples
-        return abs(position - expected) <= self.tolerance_samples
+        a, b = self._line
+        return abs(position - (a + b * counter)) <= self.tolerance_samples
 
     @property
     def offset_ppm(self) -> float | None:

@@ -282,7 +282,8 @@ class RadioDriver(Driver):
                  transmit: bool = False, buffer_frames: int = 4, default_bits: int = 2,
                  sync_threshold: float = 0.3, rx_timeout_s: float = 1.0,
                  backoff_s: float = 0.25, backoff_max_s: float = 8.0, max_attempts: int = 0,
-                 frame_rate_hz: float | None = None, backend: str = "iio", emulated: Mapping[str, Any] | None = None,
+                 frame_rate_hz: float | None = None, backend: str = "iio",
+                 emulated: Mapping[str, Any] | None = None,
                  open_device: DeviceFactory | None = None,
                  clock: Callable[[], float] = time.monotonic, capture=None) -> None:
         super().__init__()
