@@ -431,7 +431,8 @@ def test_rehearsal_survives_every_fault_and_shows_it(monkeypatch):
     10 buffers, a receive timeout every 150, the receiving device gone for 2 s, its sample clock
     50 ppm fast, and a transmit underrun every 60 buffer periods. Each is survived (valid
     estimates and new maps after all of them) and shows in the status stream (the daemon's
-    driver state and counters, the transmitter's underruns), and no map is made from a stale or
+    driver state and counters, its measured sample clock offset, the transmitter's underruns),
+    and no map is made from a stale or
     damaged estimate: a map published while the radio is away is the fallback map, and every
     other map comes from a valid estimate younger than fallback.stale_after_s."""
     from pathlib import Path
@@ -526,3 +527,8 @@ def test_rehearsal_survives_every_fault_and_shows_it(monkeypatch):
     assert away and all(m.fallback for m in away), [m.reason for m in away]
     assert all(valid and age < stale_after_s for m, valid, age in made if not m.fallback)
     assert any(s["driver"]["state"] == "reconnecting" for s in statuses)
+    # The sample clock, 50 ppm fast, shows as measured from the frame starts (between the
+    # overflows, which restart the fit); generous tolerance: starts come in whole samples.
+    shown = [s["driver"]["clock_offset_ppm"] for s in statuses
+             if s["driver"]["clock_offset_ppm"] is not None]
+    assert shown and abs(shown[-1] - 50.0) < 20.0, shown[-10:]

@@ -40,10 +40,14 @@ def test_the_page_shows_the_tones_updates_and_draws_its_charts(ctx):
         assert "EMERGENCY \u00d71, last raised at 1.0 s" in chrome.find_element("id", "alarms").text
 
         # a new status arrives: the page follows without a reload
+        radio = {"name": "radio", "state": "running", "counters": {},
+                 "clock_offset_ppm": -12.34}  # the radio's sample clock offset, measured
         for i, t in enumerate((1.5, 2.0, 2.5, 3.0)):
             pub.publish(_status(time_s=t, seq=12 + (i == 3), kind="reload" if i == 3
-                                else "emergency"))
+                                else "emergency", **({"driver": radio} if i == 3 else {})))
         assert until(lambda: _page(chrome, "document.body.dataset.mapSeq") == "13", HANG_S)
+        assert until(lambda: "radio running, sample clock -12.3 ppm" in
+                     chrome.find_element("id", "source").text, HANG_S)
         rows = chrome.find_elements("css selector", "#changes tbody tr")
         assert rows[0].text.split()[:3] == ["7.50", "13", "reload"]
         alarms = chrome.find_element("id", "alarms").text  # the emergency stays, cleared

@@ -67,6 +67,15 @@ class TestPageFrame:
         assert _figure(frame, "net_rate_mbps") is None  # not in this daemon's status
         assert _figure(frame, "target_margin_db") is None
 
+    def test_the_radios_sample_clock_offset_rides_with_the_source(self):
+        st_ = _status()
+        assert page_frame(st_)["source"]["clock_offset_ppm"] is None  # the simulator: none
+        st_["driver"]["clock_offset_ppm"] = 49.8
+        assert page_frame(st_)["source"]["clock_offset_ppm"] == pytest.approx(49.8)
+        st_["driver"]["clock_offset_ppm"] = "fast"
+        with pytest.raises(ProtocolError, match="driver.clock_offset_ppm"):
+            page_frame(st_)
+
     def test_newer_names_win_and_closed_loop_goodput_shows(self):
         st_ = _status(link={"goodput_bps": 452e3, "frame_error_rate": 0.01})
         st_["rate"]["net_rate_bps"] = 452e3

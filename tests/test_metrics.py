@@ -80,6 +80,7 @@ class TestEndpoint:
         assert got["brimline_estimate_age_seconds"].type == "gauge"
         assert got["brimline_estimate_age_seconds"].samples[0].value == 0.25
         assert got["brimline_last_frame"].samples[0].value == 119.0
+        assert "brimline_sample_clock_offset_ppm" not in got  # the simulator measures none
         state = samples(got["brimline_driver_state"])
         assert state[("brimline_driver_state", (("state", "running"),))] == 1.0
         assert sum(state.values()) == 1.0
@@ -94,6 +95,15 @@ class TestEndpoint:
         assert not {"brimline_map_bits", "brimline_map_margin_decibels"} & set(got)
         assert samples(got["brimline_daemon_epoch"]) == {
             ("brimline_daemon_epoch", (("epoch", "ab12"),)): 1.0}
+
+    def test_the_radios_sample_clock_offset_is_a_gauge(self):
+        st = a_status()
+        st["driver"]["clock_offset_ppm"] = 49.96
+        with MetricsEndpoint(host="127.0.0.1", port=0, alarms=ALARMS) as ep:
+            ep.update(st)
+            got = scrape(ep.url)
+        fam = got["brimline_sample_clock_offset_ppm"]
+        assert fam.type == "gauge" and fam.samples[0].value == 49.96
 
     def test_close_is_idempotent_and_releases_the_port(self):
         ep = MetricsEndpoint(port=0)

@@ -136,6 +136,76 @@ class TestFaults:
         assert drv.counters["bad_buffers"] == 2 and len(ests) == 10
 
 
+def _clock_stream(n_frames: int, gap: int, ppm: float):
+    """The periodic stream as a receiver whose sample clock runs ``ppm`` fast samples it: at
+    transmitter sample times n / (1 + ppm 1e-6), linearly interpolated (the definition of a
+    clock offset in ppm; the same resampling as the emulated radio's)."""
+    x, period = _periodic_stream(n_frames, gap)
+    at = np.arange(int(x.size * (1 + ppm * 1e-6)) - 2) / (1 + ppm * 1e-6)
+    grid = np.arange(x.size)
+    y = np.interp(at, grid, x.real) + 1j * np.interp(at, grid, x.imag)
+    return y.astype(np.complex64), period
+
+
+class TestSampleClockOffset:
+    """driver.clock_offset_ppm from frame starts against counters x slot (drivers/link/clock)."""
+
+    def test_offset_of_a_fast_receiver_clock_is_measured(self):
+        stream, period = _clock_stream(60, gap=4000, ppm=200.0)
+        rate_hz = PLAN.sample_rate_hz / period  # the slot is exactly `period` samples
+        with RadioDriver(plan=PLAN, open_device=FakeAir(stream), frame_rate_hz=rate_hz,
+                         **FAST) as drv:
+            assert drv.clock_offset_ppm is None  # nothing received yet
+            _take(drv, 40)
+            # 200 ppm of an 8608-sample slot is 1.7 samples per slot; start positions come in
+            # whole samples, so a tolerance of 10 % over 40 frames is generous
+            assert drv.clock_offset_ppm == pytest.approx(200.0, abs=20.0)
+
+    def test_no_offset_without_the_frame_rate(self):
+        stream, _ = _clock_stream(30, gap=4000, ppm=200.0)
+        with RadioDriver(plan=PLAN, open_device=FakeAir(stream), **FAST) as drv:
+            _take(drv, 20)
+            assert drv.slot_samples is None and drv.clock_offset_ppm is None
+
+    def test_lost_samples_do_not_bend_the_fit(self):
+        """Buffers lost in an overflow: the positions skip what was lost, the fit starts again
+        after it, and the offset after it is still the clock's (here none)."""
+        stream, period = _periodic_stream(80, gap=700)
+        air = FakeAir(stream, skips={5: 3})
+        with RadioDriver(plan=PLAN, buffer_frames=2, open_device=air,
+                         frame_rate_hz=PLAN.sample_rate_hz / period, **FAST) as drv:
+            _take(drv, 50)
+            assert drv.counters["suspected_overflows"] == 1
+            assert drv.clock_offset_ppm == pytest.approx(0.0, abs=20.0)
+
+    @pytest.mark.parametrize("clock_ppm", [50.0, 0.0])
+    def test_the_emulated_radios_clock_fault_shows_in_the_status(self, clock_ppm):
+        """The emulated radio's clock_ppm knob (its receiver samples at fs (1 + ppm 1e-6)) in
+        the single-radio loopback through the daemon: the status's driver.clock_offset_ppm
+        shows it; without the knob it is near 0. Generous tolerance: start positions come in
+        whole samples (50 ppm of the 9600-sample slot is half a sample per slot), and the
+        emulated air's timing is not exact."""
+        cfg = loopback_config(
+            link={"center_hz": 2.4e9, "sample_rate_hz": 480000.0},
+            driver={"kind": "radio", "radio": {"backend": "emulated", "uri": "emulated:rx",
+                                               "transmit": True, "backoff_s": 0.01}},
+            emulated={"air_endpoint": _free_endpoint(), "path_gain_db": 22.0,
+                      "clock_ppm": clock_ppm})
+        with Service(cfg) as svc:
+            svc.start()
+            assert until(lambda: (svc.step(0.01) or True)
+                         and svc.driver.counters["frames"] >= 80
+                         and svc.driver.clock_offset_ppm is not None, 120)
+            st = svc.publish_status()
+        shown = st["driver"]["clock_offset_ppm"]
+        assert shown == pytest.approx(clock_ppm, abs=15.0), st["driver"]
+
+    def test_a_frame_rate_that_leaves_no_room_for_a_frame_is_refused(self):
+        with pytest.raises(ConfigError, match=r"driver.radio.frame_rate_hz=10000.0: frames "
+                                              r"last 4608 samples, a slot only 384"):
+            RadioDriver(plan=PLAN, open_device=FakeAir(np.zeros(4)), frame_rate_hz=10000.0)
+
+
 class TestStartAndSettings:
     def test_no_device_at_the_uri_is_one_line_naming_it(self):
         air = FakeAir(np.zeros(10), absent=True)

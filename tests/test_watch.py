@@ -68,6 +68,22 @@ def test_render_shows_figures_history_and_alarms():
         assert needed in text, needed
 
 
+def test_source_line_shows_the_sample_clock_offset():
+    """driver.clock_offset_ppm on the source line, signed, at 80 and 160 columns; nothing
+    when the source measures none (the simulator) or the field holds junk."""
+    st = _status(driver={"name": "radio", "state": "running", "counters": {},
+                         "clock_offset_ppm": 49.96})
+    assert st["driver"]["clock_offset_ppm"] == 50.0
+    for width in (80, 160):
+        assert "sample clock +50.0 ppm" in _text(render(st, width=width), width=width)
+    neg = _status(driver={"name": "radio", "state": "running", "clock_offset_ppm": -3.25})
+    assert "sample clock -3.2 ppm" in _text(render(neg))
+    assert "sample clock" not in _text(render(_status()))
+    junk = _status()
+    junk["driver"]["clock_offset_ppm"] = "fast"
+    assert "sample clock" not in _text(render(junk))
+
+
 def test_bits_strip_marks_faded_tones_as_unloaded():
     st = _status()
     rows = [t.plain for t in band_picture(st["band"], width=110)]

@@ -160,6 +160,11 @@ class StatusCollector:
         yield _labelled(self._counter("brimline_driver_events",
                                       "the estimate source's own counters", labels=["counter"]),
                         drv.get("counters", {}))
+        ppm = drv.get("clock_offset_ppm")
+        if ppm is not None:
+            yield self._gauge("brimline_sample_clock_offset_ppm",
+                              "the radio's sample clock offset against the transmitter's, "
+                              "parts per million (positive: fast)", value=ppm)
 
     def _acks(self, st: Mapping[str, Any]) -> Iterator:
         acks = st.get("acks", {})

@@ -131,6 +131,8 @@ def make_driver(config: Config, plan, map_provider=None, capture: CaptureWriter 
     if kind == "iq":
         return IqDriver(plan=plan, capture=capture, **section)
     if kind == "radio":
+        if section["frame_rate_hz"] is None:  # the transmitter heard runs this file's tx:
+            section["frame_rate_hz"] = config.tx.frame_rate_hz
         return RadioDriver(plan=plan, emulated=config.emulated.model_dump(), capture=capture,
                            **section)
     if kind == "pushed":

@@ -411,10 +411,16 @@ class RadioSection(Section):
     max_attempts: int = Field(
         _RADIO["max_attempts"],
         description="failed reopenings in a row after which the source fails (0: never)")
+    frame_rate_hz: Optional[float] = Field(
+        _RADIO["frame_rate_hz"],
+        description="frame slots per second of the transmitter heard (its tx.frame_rate_hz), "
+                    "for the sample clock offset; null: this file's tx.frame_rate_hz")
 
     @field_validator(*RADIO_LIMITS)
     @classmethod
     def _within_limits(cls, v, info):
+        if v is None and info.field_name == "frame_rate_hz":
+            return v
         return RADIO_LIMITS[info.field_name].check(info.field_name, v)
 
     @model_validator(mode="after")

@@ -8,7 +8,7 @@ the same dict back and renders it.
 Layout of the message (version 1)::
 
     {"type": "status", "version": 1, "time_s": ..., "epoch": "...",
-     "driver": {"name", "state", "error", "counters"},
+     "driver": {"name", "state", "error", "counters", "clock_offset_ppm"},
      "frames": {"received", "accepted", "rejected": {reason: n}, "decode_errors", "last_frame",
                 "tracking": {counter: n}},   # estimator's tone outliers, jumps, resets
      "estimate_age_s": float | None,
@@ -207,7 +207,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
     driver : mapping
         ``name``, ``state`` ("starting", "running", "reconnecting", "ended", "failed"),
         ``error`` (str or None)
-        and ``counters`` (mapping reason -> count) of the estimate source.
+        and ``counters`` (mapping reason -> count) of the estimate source; optionally
+        ``clock_offset_ppm`` (the radio's sample clock offset, ppm, or None).
     frames : mapping
         ``received``, ``accepted``, ``rejected`` (mapping reason -> count), ``decode_errors``,
         ``last_frame`` and optionally ``tracking`` (estimator counters that are not frame
@@ -320,7 +321,8 @@ def build_status(*, time_s: float, epoch: str, driver: Mapping[str, Any],
         "driver": {"name": str(driver.get("name", "")), "state": str(driver.get("state", "")),
                    "error": driver.get("error"),
                    "counters": {str(k): int(v) for k, v in
-                                dict(driver.get("counters", {})).items()}},
+                                dict(driver.get("counters", {})).items()},
+                   "clock_offset_ppm": finite(driver.get("clock_offset_ppm"), 1)},
         "frames": {"received": int(frames.get("received", 0)),
                    "accepted": int(frames.get("accepted", 0)),
                    "rejected": {str(k): int(v) for k, v in
@@ -407,12 +409,16 @@ def driver_fields(driver, state: str, error: str | None) -> dict[str, Any]:
 
     A running source may report a state of its own (a supervised radio: "running",
     "reconnecting", "failed"); otherwise ``state`` (the service's view) is shown.
+    ``driver.clock_offset_ppm`` is the radio's measured sample clock offset, ppm, rounded to
+    0.1 (None from other sources and until it is measured).
     """
     own = getattr(driver, "state", None)
     shown = own if state == "running" and isinstance(own, str) else state
     link = getattr(driver, "link", None)
     return dict(driver={"name": getattr(driver, "name", "driver"), "state": shown,
-                        "error": error, "counters": dict(getattr(driver, "counters", {}))},
+                        "error": error, "counters": dict(getattr(driver, "counters", {})),
+                        "clock_offset_ppm": finite(getattr(driver, "clock_offset_ppm", None),
+                                                   1)},
                 link=None if link is None else link.summary(),
                 frame_rate_hz=getattr(driver, "frame_rate_hz", None))
 

@@ -216,7 +216,8 @@ def page_frame(status: Mapping[str, Any]) -> dict[str, Any]:
     Returns
     -------
     dict
-        JSON-safe: ``status_seq``, ``time_s``, ``epoch``, ``source`` (name, state, error),
+        JSON-safe: ``status_seq``, ``time_s``, ``epoch``, ``source`` (name, state, error,
+        ``clock_offset_ppm``: the radio's sample clock offset, None where not measured),
         ``band`` (tone_first, tone_last, tones, columns, ``tone_axis``, snr_db, bits,
         power_db), ``figures`` (list of key, label, unit and value, None where the status does
         not carry it), ``map``, ``changes`` (all of the message's changes, newest first),
@@ -272,7 +273,9 @@ def page_frame(status: Mapping[str, Any]) -> dict[str, Any]:
         "time_s": _number(status.get("time_s"), "time_s"),
         "epoch": _text(status.get("epoch")),
         "source": {"name": _text(driver.get("name")), "state": _text(driver.get("state")),
-                   "error": _text(driver.get("error"))},
+                   "error": _text(driver.get("error")),
+                   "clock_offset_ppm": _number(driver.get("clock_offset_ppm"),
+                                               "driver.clock_offset_ppm")},
         "band": {"tone_first": tone_first, "tone_last": tone_last,
                  "tones": _integer(band.get("tones"), "band.tones"), "columns": columns,
                  "tone_axis": axis, "snr_db": snr, "bits": bits, "power_db": power},

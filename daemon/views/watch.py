@@ -7,7 +7,8 @@ status, ``brimline tx``) and redraws with ``rich.live.Live`` on a terminal, or p
 line per status message when standard output is not a terminal (pipes, logs, CI).
 
 The screen, top to bottom, in the order things fold away when the terminal is small (the last
-folds first): alarms with their counts (always kept); a line with link time, source and map;
+folds first): alarms with their counts (always kept); a line with link time, source (with the
+radio's sample clock offset, ``sample clock +50.0 ppm``, once measured) and map;
 the numbers (data rate and line rate, headroom and target margin, goodput and errors, the
 transmitter); the band picture; the latest maps; details (frames, followers, outer loop).
 
@@ -403,6 +404,13 @@ def _fmt(v: Any, spec: str, unit: str = "") -> str:
     return f"{format(v, spec)}{unit}"
 
 
+def _clock_text(ppm: Any) -> str:
+    """`` sample clock +50.0 ppm`` for the source line ("" when the source measures none)."""
+    if not isinstance(ppm, (int, float)) or isinstance(ppm, bool) or not math.isfinite(ppm):
+        return ""
+    return f" sample clock {ppm:+.1f} ppm"
+
+
 def _mbit(v: Any) -> str:
     return "-" if v is None else f"{v / 1e6:.3f} Mbit/s"
 
@@ -623,7 +631,8 @@ def render(status: Mapping[str, Any] | None, *, endpoint: str = DEFAULT_STATUS_E
         .append(" link time", style="dim"),
         Text("source ", style="dim").append(f"{drv.get('name', '-')} ")
         .append(state, style="bold red" if state == "failed" else
-                "bold yellow" if state == "reconnecting" else "bold green"),
+                "bold yellow" if state == "reconnecting" else "bold green")
+        .append(_clock_text(drv.get("clock_offset_ppm")), style="dim"),
         Text("map ", style="dim").append(f"seq {m.get('seq', '-')} {m.get('kind') or ''}"
                                          .rstrip())
         .append("" if m.get("effective_frame") is None

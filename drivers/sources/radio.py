@@ -36,6 +36,17 @@ Counters (reach the status stream as ``driver.counters``): ``frames``, the recei
 ``buffers`` and the continuity counts (``lost_frames``, ``suspected_overflows``,
 ``damaged_frames``, ``counter_repeats``, ``counter_jumps``).
 
+Sample clock offset: with the transmitter's frame rate known (``frame_rate_hz``, so its slot
+length in samples), :attr:`RadioDriver.clock_offset_ppm` is the receiver's sample clock offset
+against the transmitter's, fitted by :class:`~brimline.drivers.link.clock.ClockFit` from the
+start positions of the frames with a readable header against their unwrapped counters, within
+stretches of the stream with no lost samples: the fit starts again with a new stream (after a
+reconnect), after a malformed buffer (its samples are not counted in the positions) and at a
+suspected overflow (the positions do not count the samples lost); a loss nobody reported shows
+as a start off the fitted line and restarts it too. None until enough frames of one stretch
+(or without ``frame_rate_hz``: a slot length taken from the received spacing would contain the
+offset it is meant to measure).
+
 Estimates carry ``time_s`` on the driver's clock (monotonic by default): the arrival time of
 their buffer less the samples that came after the frame.
 
@@ -78,6 +89,7 @@ from brimline.daemon.errors import ConfigError, SourceError
 from brimline.daemon.limits import FINITE, NON_NEGATIVE, POSITIVE, at_least, between, check_values
 from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.devices.factory import open_device as open_backend
+from brimline.drivers.link.clock import ClockFit
 from brimline.drivers.link.continuity import Continuity
 from brimline.drivers.link.frame import as_link_plan
 from brimline.drivers.link.receiver import FrameScanner, Receiver
@@ -112,6 +124,7 @@ RADIO_LIMITS = {
     "backoff_s": POSITIVE,
     "backoff_max_s": POSITIVE,
     "max_attempts": NON_NEGATIVE,
+    "frame_rate_hz": POSITIVE,  # or None (unknown)
 }
 
 
@@ -236,6 +249,10 @@ class RadioDriver(Driver):
         First wait before reopening a faulty device, and its cap (the wait doubles), s.
     max_attempts : int
         Failed openings in a row after which the source fails (0: retry for ever).
+    frame_rate_hz : float or None
+        Frame slots per second of the transmitter heard (its ``tx.frame_rate_hz``): its slot
+        length, ``round(sample rate / frame_rate_hz)`` samples, is what the sample clock offset
+        is measured against. None: unknown, no offset is measured.
     backend : {"iio", "emulated"}
         Device backend when ``open_device`` is not given: pyadi-iio, or the emulated radio
         (:func:`brimline.drivers.devices.factory.open_device`) with the ``emulated`` settings.
@@ -265,7 +282,8 @@ class RadioDriver(Driver):
                  transmit: bool = False, buffer_frames: int = 4, default_bits: int = 2,
                  sync_threshold: float = 0.3, rx_timeout_s: float = 1.0,
                  backoff_s: float = 0.25, backoff_max_s: float = 8.0, max_attempts: int = 0,
-                 backend: str = "iio", emulated: Mapping[str, Any] | None = None,
+                 frame_rate_hz: float | None = None, backend: str = "iio",
+                 emulated: Mapping[str, Any] | None = None,
                  open_device: DeviceFactory | None = None,
                  clock: Callable[[], float] = time.monotonic, capture=None) -> None:
         super().__init__()
@@ -273,8 +291,10 @@ class RadioDriver(Driver):
                           buffer_frames=buffer_frames, default_bits=default_bits,
                           sync_threshold=sync_threshold, rx_timeout_s=rx_timeout_s,
                           backoff_s=backoff_s, backoff_max_s=backoff_max_s,
-                          max_attempts=max_attempts), RADIO_LIMITS, prefix="driver.radio.",
-                     error=ConfigError)
+                          max_attempts=max_attempts,
+                          **({} if frame_rate_hz is None else
+                             {"frame_rate_hz": frame_rate_hz})),
+                     RADIO_LIMITS, prefix="driver.radio.", error=ConfigError)
         if backoff_max_s < backoff_s:
             raise ConfigError(f"driver.radio.backoff_max_s={backoff_max_s} must be >= "
                               f"driver.radio.backoff_s={backoff_s}")
@@ -284,6 +304,16 @@ class RadioDriver(Driver):
         if not 0 <= default_bits <= self.plan.max_bits:
             raise ConfigError(f"driver.radio.default_bits={default_bits} must be in "
                               f"[0, link.max_bits={self.plan.max_bits}]")
+        #: Samples per transmitter frame slot, or None when its frame rate is not known.
+        self.slot_samples: int | None = None
+        if frame_rate_hz is not None:
+            slot = int(round(self.plan.sample_rate_hz / float(frame_rate_hz)))
+            if slot < self.plan.frame_len:
+                raise ConfigError(f"driver.radio.frame_rate_hz={frame_rate_hz}: frames last "
+                                  f"{self.plan.frame_len} samples, a slot only {slot}")
+            self.slot_samples = slot
+        self._clock_fit = None if self.slot_samples is None else ClockFit(self.slot_samples)
+        self._clock_overflows = 0  # suspected overflows of the stream seen by the clock fit
         self.uri = str(uri)
         self.settings = dict(rx_gain_db=float(rx_gain_db),
                              tx_attenuation_db=float(tx_attenuation_db))
@@ -315,6 +345,14 @@ class RadioDriver(Driver):
         self.versions = device_versions(self._device)
         log.info("radio at %s: %s", self.uri,
                  ", ".join(f"{k} {v}" for k, v in self.versions.items()) or "versions unknown")
+
+    @property
+    def clock_offset_ppm(self) -> float | None:
+        """The receiver's sample clock offset against the transmitter's, ppm (positive: the
+        receiver's runs fast), or None before enough frames of one stretch of the stream or
+        without ``frame_rate_hz`` (see the module docstring)."""
+        fit = self._clock_fit
+        return None if fit is None else fit.offset_ppm
 
     # ------------------------------------------------------------------ device handling
 
@@ -441,6 +479,8 @@ class RadioDriver(Driver):
                     return
                 copy.mark(0, "gap")  # a new stream: samples were lost while reconnecting
             scanner, continuity, fed = FrameScanner(self.receiver), Continuity(), 0
+            self._clock_restart()  # a new stream: positions count from 0 again
+            self._clock_overflows = 0
             while not self.closed:
                 device = self._device
                 if device is None:
@@ -460,6 +500,7 @@ class RadioDriver(Driver):
                 samples = self._samples(raw)
                 if samples is None:
                     self.counters["bad_buffers"] += 1
+                    self._clock_restart()  # its samples are missing from the positions
                     copy.mark(fed, "gap")  # the next good buffer follows lost samples
                     continue
                 self.counters["buffers"] += 1
@@ -475,9 +516,9 @@ class RadioDriver(Driver):
                     end = start - res.start + res.end
                     t = arrived - (fed - end) / fs
                     for est, ok in continuity.frame(
-                            (res, t), start=start - self.plan.cp_len, end=end,
-                            header_ok=res.header_ok, counter=res.counter):
-                        frame_res, frame_t = est
+                            (res, t, start - self.plan.cp_len), start=start - self.plan.cp_len,
+                            end=end, header_ok=res.header_ok, counter=res.counter):
+                        frame_res, frame_t, frame_start = est
                         frame_t = max(frame_t, last_time + 1.0 / fs)
                         last_time = frame_t
                         # Frames are numbered by the transmitter's header counter (16 bits,
@@ -489,6 +530,8 @@ class RadioDriver(Driver):
                         elif last_frame is not None:
                             count = last_frame + 1
                         last_frame = count
+                        self._clock_frame(continuity, frame_res.header_ok and ok, frame_start,
+                                          count)
                         estimate = frame_res.to_estimate(plan=self.plan, frame=count,
                                                          time_s=frame_t)
                         if not ok:
@@ -500,6 +543,24 @@ class RadioDriver(Driver):
                     copy.mark(position, "overflow")
                 continuity.overflow_positions.clear()
                 copy.settle()
+
+    def _clock_restart(self) -> None:
+        if self._clock_fit is not None:
+            self._clock_fit.restart()
+
+    def _clock_frame(self, continuity: Continuity, usable: bool, start: int,
+                     count: int) -> None:
+        """A judged frame for the clock fit: its start and number when ``usable`` (a readable
+        header, not spliced across lost samples); a suspected overflow first ends the stretch."""
+        fit = self._clock_fit
+        if fit is None:
+            return
+        overflows = continuity.counters["suspected_overflows"]
+        if overflows != self._clock_overflows:
+            self._clock_overflows = overflows
+            fit.restart()  # samples were lost somewhere before this frame
+        if usable:
+            fit.add(start, count)
 
     def _merge(self, continuity: Continuity, before: dict) -> None:
         for key, value in continuity.counters.items():

@@ -423,7 +423,10 @@
     if (!f) return;
     setText('time', f.time_s === null ? '\u2014' : f.time_s.toFixed(1) + ' s');
     const src = f.source;
+    const ppm = src.clock_offset_ppm;
     setText('source', (src.name || '\u2014') + ' ' + (src.state || '') +
+            (typeof ppm === 'number' ? ', sample clock ' + (ppm >= 0 ? '+' : '') +
+             ppm.toFixed(1) + ' ppm' : '') +
             (src.error ? ' (' + src.error + ')' : ''));
     setText('map', f.map ? 'seq ' + f.map.seq + ' ' + (f.map.kind || '') +
             (f.map.fallback ? ' (fallback)' : '') : 'none yet');
