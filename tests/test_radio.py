@@ -202,7 +202,7 @@ class TestSampleClockOffset:
 
     def test_a_frame_rate_that_leaves_no_room_for_a_frame_is_refused(self):
         with pytest.raises(ConfigError, match=r"driver.radio.frame_rate_hz=10000.0: frames "
-                                              r"last 4608 samples, a slot only 384"):
+                                              r"last 1.200 ms, so at most 833.3 frames"):
             RadioDriver(plan=PLAN, open_device=FakeAir(np.zeros(4)), frame_rate_hz=10000.0)
 
 

@@ -23,7 +23,8 @@ from brimline.daemon.errors import ConfigError, InputError
 from brimline.daemon.net.curve import load_keypair
 from brimline.daemon.runtime.assemble import build_core, build_tx, open_sink
 from brimline.daemon.runtime.config import Config, load_config
-from brimline.daemon.runtime.transmitter import slot_samples, tx_summary_line
+from brimline.daemon.runtime.transmitter import tx_summary_line
+from brimline.drivers.link.frame import slot_samples
 from brimline.drivers.sinks.sigmf import sigmf_paths
 
 __all__ = ["configure", "run", "check_summary", "check_client_keys"]
@@ -72,7 +73,7 @@ def check_summary(path: str, config: Config) -> str:
     plan = build_core(config)[0]
     tx = config.tx
     try:
-        slot_samples(plan, tx.frame_rate_hz)
+        slot_samples(plan, tx.frame_rate_hz, "tx.frame_rate_hz")
     except ValueError as exc:
         raise ConfigError(str(exc)) from None
     if tx.sink == "radio" and plan.center_hz != plan.center_hz:  # NaN: not set

@@ -51,11 +51,11 @@ from brimline.daemon.limits import NON_NEGATIVE, POSITIVE, at_least, between, ch
 from brimline.daemon.net.follower import Follower
 from brimline.daemon.net.publisher import StatusPublisher
 from brimline.daemon.records import LoadMap
-from brimline.drivers.link.frame import LinkPlan, Transmitter, map_arrays
+from brimline.drivers.link.frame import LinkPlan, Transmitter, map_arrays, slot_samples
 from brimline.drivers.link.schedule import MapSchedule, PowerBound
 from brimline.drivers.sinks.base import Sink
 
-__all__ = ["TxLoop", "TxState", "TX_LIMITS", "slot_samples", "tx_summary_line",
+__all__ = ["TxLoop", "TxState", "TX_LIMITS", "tx_summary_line",
            "TX_STATUS_TYPE"]
 
 #: ``type`` of the transmitter's status dict (the daemon's is ``status``).
@@ -107,22 +107,6 @@ def _or_dash(value, spec: str = "") -> str:
 
 def _rounded(value: float | None) -> float | None:
     return None if value is None else round(value, 2)
-
-
-def slot_samples(plan: LinkPlan, frame_rate_hz: float) -> int:
-    """Samples per frame slot (a frame and its silent gap) at ``frame_rate_hz``.
-
-    Raises
-    ------
-    ValueError
-        When a frame does not fit in one slot.
-    """
-    slot = int(round(plan.sample_rate_hz / frame_rate_hz))
-    if slot < plan.frame_len:
-        raise ValueError(f"tx.frame_rate_hz={frame_rate_hz}: frames last "
-                         f"{plan.frame_duration_s * 1e3:.3f} ms, so at most "
-                         f"{1.0 / plan.frame_duration_s:.1f} frames per second fit")
-    return slot
 
 
 class TxLoop:
@@ -178,7 +162,7 @@ class TxLoop:
         self.follower = follower
         self.sink = sink
         self.frame_rate_hz = float(frame_rate_hz)
-        self.slot_len = slot_samples(plan, frame_rate_hz)
+        self.slot_len = slot_samples(plan, frame_rate_hz, "tx.frame_rate_hz")
         self.default_bits = int(default_bits)
         self.hold_s = float(hold_s)
         self.on_loss = on_loss

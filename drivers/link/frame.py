@@ -47,6 +47,7 @@ from brimline.daemon.records import LoadMap, TonePlan, frozen_array
 __all__ = [
     "LinkPlan",
     "make_plan",
+    "slot_samples",
     "check_link",
     "as_link_plan",
     "FrameFormat",
@@ -232,6 +233,31 @@ def as_link_plan(plan: TonePlan) -> LinkPlan:
     return LinkPlan(fft_size=plan.fft_size, cp_len=plan.cp_len,
                     sample_rate_hz=plan.sample_rate_hz, data_tones=plan.data_tones,
                     pilot_tones=plan.pilot_tones)
+
+
+def slot_samples(plan: LinkPlan, frame_rate_hz: float, key: str = "frame_rate_hz") -> int:
+    """Samples per frame slot (a frame and its silent gap) at ``frame_rate_hz``.
+
+    Parameters
+    ----------
+    plan : LinkPlan
+        Tone plan and frame layout (sample rate, frame length).
+    frame_rate_hz : float
+        Frame slots per second.
+    key : str
+        The config key that gave ``frame_rate_hz``, named in the error.
+
+    Raises
+    ------
+    ValueError
+        When a frame does not fit in one slot (the message names ``key``).
+    """
+    slot = int(round(plan.sample_rate_hz / float(frame_rate_hz)))
+    if slot < plan.frame_len:
+        raise ValueError(f"{key}={frame_rate_hz}: frames last "
+                         f"{plan.frame_duration_s * 1e3:.3f} ms, so at most "
+                         f"{1.0 / plan.frame_duration_s:.1f} frames per second fit")
+    return slot
 
 
 # --------------------------------------------------------------------------- sequences, CRC

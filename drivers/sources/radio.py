@@ -91,7 +91,7 @@ from brimline.daemon.records import Estimate, TonePlan
 from brimline.drivers.devices.factory import open_device as open_backend
 from brimline.drivers.link.clock import ClockFit
 from brimline.drivers.link.continuity import Continuity
-from brimline.drivers.link.frame import as_link_plan
+from brimline.drivers.link.frame import as_link_plan, slot_samples
 from brimline.drivers.link.receiver import FrameScanner, Receiver
 from brimline.drivers.sources.base import CaptureFeed, Driver
 
@@ -307,11 +307,11 @@ class RadioDriver(Driver):
         #: Samples per transmitter frame slot, or None when its frame rate is not known.
         self.slot_samples: int | None = None
         if frame_rate_hz is not None:
-            slot = int(round(self.plan.sample_rate_hz / float(frame_rate_hz)))
-            if slot < self.plan.frame_len:
-                raise ConfigError(f"driver.radio.frame_rate_hz={frame_rate_hz}: frames last "
-                                  f"{self.plan.frame_len} samples, a slot only {slot}")
-            self.slot_samples = slot
+            try:
+                self.slot_samples = slot_samples(self.plan, frame_rate_hz,
+                                                 "driver.radio.frame_rate_hz")
+            except ValueError as exc:
+                raise ConfigError(str(exc)) from None
         self._clock_fit = None if self.slot_samples is None else ClockFit(self.slot_samples)
         self._clock_overflows = 0  # suspected overflows of the stream seen by the clock fit
         self.uri = str(uri)
