@@ -148,7 +148,11 @@ class _PhaseSearch:
         np.exp(rest, out=rest)
         np.multiply(d, rest, out=rest)
         total = rest.sum()
-        phi = np.angle(rest * np.conj(total)) if total != 0 else np.zeros(bins.size)
+        if total != 0:
+            phi = rest * np.conj(total)
+            phi = np.arctan2(phi.imag, phi.real)   # np.angle, without its wrapper
+        else:
+            phi = np.zeros(bins.size)
         w = np.abs(rest)
         centred = bins - (w @ bins) / max(float(w.sum()), 1e-300)
         wc = np.multiply(w, centred, out=w)
@@ -262,6 +266,7 @@ class ChannelPredictor:
         self.pool_tones = int(pool_tones)
         self.floor_db = float(floor_db)
         self._search: _PhaseSearch | None = None   # per tone plan
+        self._weights: dict[tuple, tuple] = {}      # per pattern of times, see _line_weights
         self.reset()
 
     def reset(self) -> None:
@@ -361,28 +366,31 @@ class ChannelPredictor:
         del self._line_t[n_steps:]
 
     def _fit(self, replace: bool = False) -> None:
-        t = np.asarray(self._times) - self._times[-1]
         hs = self._hist.block()                    # (frames, tones), contiguous
-        m = t.size
+        m = hs.shape[0]
         if m < 2:
             self._a, self._b = hs[-1].copy(), np.zeros(hs.shape[1], dtype=np.complex128)
         else:
-            tm = t.mean()
-            tc = t - tm
-            sxx = float(tc @ tc)
-            hm = hs.mean(axis=0)
+            t, t_col, tm, tc, sxx = self._line_weights()
+            hm = np.add.reduce(hs, axis=0)         # hs.mean(axis=0), step by step
+            np.true_divide(hm, m, out=hm)
             # real weights on the real and imaginary parts: BLAS, not a complex-object loop
             pair = hs.view(np.float64)             # (frames, 2 * tones), re/im interleaved
             b = (tc @ pair).view(np.complex128) / sxx
             if m > 2:
                 a = hm - b * tm                    # value of the line at the newest time
                 resid = np.subtract(hs, a)
-                resid -= t[:, None] * b
+                resid -= t_col * b
                 resid = resid.view(np.float64)
                 s2 = np.einsum("ij,ij->j", resid, resid).reshape(-1, 2).sum(axis=1) / (m - 2)
-                b2 = b.real ** 2 + b.imag ** 2
-                with np.errstate(divide="ignore", invalid="ignore"):
-                    shrink = np.where(b2 > 0, np.maximum(0.0, 1.0 - s2 / sxx / b2), 0.0)
+                b2 = b.real ** 2
+                b2 += b.imag ** 2
+                # max(0, 1 - s2 / sxx / b2) where b2 > 0, else 0
+                moving = b2 > 0
+                shrink = np.divide(s2 / sxx, b2, out=np.zeros_like(b2), where=moving)
+                np.subtract(1.0, shrink, out=shrink)
+                np.maximum(0.0, shrink, out=shrink)
+                shrink[~moving] = 0.0
                 b *= shrink
                 np.multiply(b, tm, out=a)
                 a = np.subtract(hm, a, out=a)
@@ -392,6 +400,22 @@ class ChannelPredictor:
             self._a, self._b = a, b
         self._a_pow = None
         self._keep_line(replace)
+
+    def _line_weights(self) -> tuple:
+        """The kept estimates' times relative to the newest (as a row and a column), their
+        mean, centred times and sum of squares: the constants of the least-squares line,
+        remembered per pattern of times (a steady frame rate repeats a few)."""
+        last = self._times[-1]
+        key = tuple([x - last for x in self._times])   # what np.subtract gives, element by element
+        found = self._weights.get(key)
+        if found is None:
+            if len(self._weights) >= 64:
+                self._weights.clear()
+            t = np.array(key)
+            tm = t.mean()
+            tc = t - tm
+            found = self._weights[key] = (t, t[:, None], tm, tc, float(tc @ tc))
+        return found
 
     def _keep_line(self, replace: bool) -> None:
         """Keep the newest line (a, b) for scoring; ``replace`` overwrites the newest kept."""
