@@ -35,6 +35,14 @@ time ``0.423 / fd`` a line predicts it far better than holding the last value, w
 as ``2 (1 - J0(2 pi fd tau))`` of the power. Beyond that, prediction needs the Doppler spectrum
 (long AR models, as in Duel-Hallen, Hu and Hallen, "Long-range prediction of fading signals",
 IEEE Signal Processing Magazine 17(3), 2000), which a short map horizon does not.
+
+Cost: the predictor runs on every estimate, so its state is kept for reuse and its arithmetic
+is fixed. The kept estimates and each fit's line sit in rings stored twice over (the newest
+rows are always one contiguous block, so nothing is stacked or rolled), all horizons are scored
+in one pass, and the phase search keeps its FFT size and work arrays per tone plan. Every
+elementwise operation keeps its operands and their order and every reduction is the same call
+on the same shape as the plain formulas above, so the outputs are the same bit for bit
+(``tests/test_predictor.py`` pins them).
 """
 
 from __future__ import annotations
@@ -117,8 +125,8 @@ class _PhaseSearch:
     grid's zero padding written once)."""
 
     def __init__(self, tone_index: np.ndarray) -> None:
-        self.key = np.asarray(tone_index).tobytes()
         bins = np.array(tone_index, dtype=np.int64)
+        self.key = bins.tobytes()
         self.bins = bins
         span = int(bins.max() - bins.min()) + 1 if bins.size else 1
         self.size = size = 1 << max(6, int(math.ceil(math.log2(4 * span))))
@@ -315,7 +323,7 @@ class ChannelPredictor:
 
     def _search_for(self, tone_index: np.ndarray) -> _PhaseSearch:
         search = self._search
-        if search is None or search.key != np.asarray(tone_index).tobytes():
+        if search is None or search.key != np.asarray(tone_index, dtype=np.int64).tobytes():
             search = self._search = _PhaseSearch(tone_index)
         return search
 
