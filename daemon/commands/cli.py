@@ -17,7 +17,7 @@ from typing import NoReturn, Sequence
 from brimline.daemon import __version__
 from brimline.daemon.errors import BrimlineError
 
-__all__ = ["main", "RF_CAUTION", "build_parser"]
+__all__ = ["main", "RF_CAUTION", "build_parser", "add_viewer_key_options"]
 
 RF_CAUTION = (
     "RF caution: brimline drives a transmitter. Operate only within your licence or the band's "
@@ -46,6 +46,24 @@ class _OneLineParser(argparse.ArgumentParser):
 
     def error(self, message: str) -> NoReturn:
         self.exit(2, f"{self.prog}: error: {message}\n")
+
+
+def add_viewer_key_options(parser: argparse.ArgumentParser, who: str) -> None:
+    """Add ``--daemon-key`` and ``--own-key``, the CURVE options of a status subscriber.
+
+    Parameters
+    ----------
+    parser : argparse.ArgumentParser
+        The subcommand's parser.
+    who : str
+        What the subscriber is called in the help ("watcher", "viewer").
+    """
+    parser.add_argument("--daemon-key", default=None, metavar="FILE",
+                        help="the daemon's public .key file: subscribe with CURVE "
+                             "(needs --own-key)")
+    parser.add_argument("--own-key", default=None, metavar="FILE",
+                        help=f"this {who}'s .key_secret file (brimline keys); its .key must "
+                             "be in the daemon's publish.curve_clients_dir when that is set")
 
 
 def _command_module(name: str):

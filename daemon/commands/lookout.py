@@ -7,12 +7,12 @@ import ipaddress
 import math
 import sys
 
+from brimline.daemon.commands.cli import add_viewer_key_options
 from brimline.daemon.errors import InputError
-from brimline.daemon.views.lookout import (DEFAULT_HOST, DEFAULT_PORT, DEFAULT_SNR_RANGE_DB,
-                                           Lookout)
-from brimline.daemon.views.watch import DEFAULT_STATUS_ENDPOINT
+from brimline.daemon.views.lookout import DEFAULT_HOST, DEFAULT_PORT, DEFAULT_SNR_RANGE_DB, Lookout
+from brimline.daemon.views.watch import DEFAULT_STATUS_ENDPOINT, parse_snr_scale
 
-__all__ = ["configure", "run", "parse_snr_scale"]
+__all__ = ["configure", "run"]
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
@@ -30,31 +30,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
                              f"(default {lo:g}:{hi:g})")
     parser.add_argument("--duration", type=float, default=None, metavar="S",
                         help="stop after S seconds")
-    parser.add_argument("--daemon-key", default=None, metavar="FILE",
-                        help="the daemon's public .key file: subscribe with CURVE "
-                             "(needs --own-key)")
-    parser.add_argument("--own-key", default=None, metavar="FILE",
-                        help="this viewer's .key_secret file (brimline keys); its .key must "
-                             "be in the daemon's publish.curve_clients_dir when that is set")
-
-
-def parse_snr_scale(text: str) -> tuple[float, float]:
-    """``"LOW:HIGH"`` in dB as two finite numbers, low below high.
-
-    Raises
-    ------
-    InputError
-        Naming ``--snr-scale`` and the value.
-    """
-    low, sep, high = str(text).partition(":")
-    try:
-        lo, hi = float(low), float(high)
-    except ValueError:
-        lo = hi = math.nan
-    if not sep or not (math.isfinite(lo) and math.isfinite(hi)) or not lo < hi:
-        raise InputError(f"--snr-scale={text!r} must be LOW:HIGH in dB with LOW < HIGH, "
-                         "e.g. 0:40")
-    return lo, hi
+    add_viewer_key_options(parser, "viewer")
 
 
 def _is_loopback(host: str) -> bool:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 
+from brimline.daemon.commands.cli import add_viewer_key_options
 from brimline.daemon.errors import InputError
 from brimline.daemon.views.watch import (
     DEFAULT_CLEAR_AFTER_S,
@@ -23,12 +24,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
                              "or --duration)")
     parser.add_argument("--duration", type=float, default=None, metavar="S",
                         help="stop after S seconds")
-    parser.add_argument("--daemon-key", default=None, metavar="FILE",
-                        help="the daemon's public .key file: subscribe with CURVE "
-                             "(needs --own-key)")
-    parser.add_argument("--own-key", default=None, metavar="FILE",
-                        help="this watcher's .key_secret file (brimline keys); its .key must "
-                             "be in the daemon's publish.curve_clients_dir when that is set")
+    add_viewer_key_options(parser, "watcher")
     parser.add_argument("--tx-endpoint", default=None, metavar="ADDRESS",
                         help="also show a transmitter's status (brimline tx publishes it on "
                              "tx.status_endpoint, e.g. tcp://127.0.0.1:7345): applied map, lag, "
