@@ -16,6 +16,7 @@ from radio_fakes import FakeAir
 
 from brimline.daemon.errors import ConfigError, SourceError
 from brimline.daemon.runtime.service import Service
+from brimline.daemon.runtime.status import driver_fields
 from brimline.daemon.wire.sigmf import CaptureWriter, read_sigmf
 from brimline.drivers.link.frame import Transmitter, make_plan, map_arrays
 from brimline.drivers.sources.radio import RadioDriver, device_versions
@@ -199,6 +200,15 @@ class TestSampleClockOffset:
             st = svc.publish_status()
         shown = st["driver"]["clock_offset_ppm"]
         assert shown == pytest.approx(clock_ppm, abs=15.0), st["driver"]
+
+    def test_the_transmitters_frame_rate_gives_the_status_its_data_rate(self):
+        """With ``frame_rate_hz`` known, the radio's status carries the data rate (bits per data
+        symbol x data symbols per frame x frames per second), as the simulator's does."""
+        with RadioDriver(plan=PLAN, open_device=FakeAir(np.zeros(4)), frame_rate_hz=25.0) as drv:
+            fields = driver_fields(drv, "running", None)
+        assert fields["frame_rate_hz"] == 25.0
+        with RadioDriver(plan=PLAN, open_device=FakeAir(np.zeros(4))) as drv:
+            assert driver_fields(drv, "running", None)["frame_rate_hz"] is None
 
     def test_a_frame_rate_that_leaves_no_room_for_a_frame_is_refused(self):
         with pytest.raises(ConfigError, match=r"driver.radio.frame_rate_hz=10000.0: frames "

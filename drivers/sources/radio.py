@@ -304,6 +304,9 @@ class RadioDriver(Driver):
         if not 0 <= default_bits <= self.plan.max_bits:
             raise ConfigError(f"driver.radio.default_bits={default_bits} must be in "
                               f"[0, link.max_bits={self.plan.max_bits}]")
+        #: Frame slots per second of the transmitter heard, or None when not known (gives the
+        #: status its data rate).
+        self.frame_rate_hz: float | None = None if frame_rate_hz is None else float(frame_rate_hz)
         #: Samples per transmitter frame slot, or None when its frame rate is not known.
         self.slot_samples: int | None = None
         if frame_rate_hz is not None:
