@@ -429,14 +429,9 @@ def _arrays(kind: str, specs: list, parts: Sequence[memoryview],
         dt = np.dtype(dtype)
         # Exact integer arithmetic: a dimension of 10**30 gives a number, not an overflow.
         want = math.prod(shape) * dt.itemsize
-        if part.nbytes != want:
-            raise ProtocolError(f"{kind}.{name}: shape {_short(shape)} of {dtype} needs "
-                                f"{_short(want)} bytes, part has {part.nbytes}", reason="size")
-        arr = np.frombuffer(part, dtype=dt).reshape(shape)
-        if dt.byteorder == "<" and not dt.isnative:  # big-endian host
-            arr = arr.astype(dt.newbyteorder("="))
-        out[name] = arr
-        checked.append((name, dtype, dt, tuple(shape), want, _short(shape)))
+        entry = (name, dtype, dt, tuple(shape), want, _short(shape))
+        out[name] = _part_array(kind, entry, part)
+        checked.append(entry)
     if expected is not None and set(out) != set(expected):
         raise ProtocolError(f"{kind}: missing arrays {sorted(set(expected) - set(out))}",
                             reason="arrays")
@@ -451,16 +446,20 @@ def _known_arrays(kind: str, layout: tuple, parts: Sequence[memoryview]
                   ) -> dict[str, np.ndarray]:
     """``_arrays`` for a layout that passed every check before: only the part sizes are
     left to check (same messages)."""
-    out: dict[str, np.ndarray] = {}
-    for (name, dtype, dt, shape, want, shape_text), part in zip(layout, parts):
-        if part.nbytes != want:
-            raise ProtocolError(f"{kind}.{name}: shape {shape_text} of {dtype} needs "
-                                f"{_short(want)} bytes, part has {part.nbytes}", reason="size")
-        arr = np.frombuffer(part, dtype=dt).reshape(shape)
-        if dt.byteorder == "<" and not dt.isnative:  # big-endian host
-            arr = arr.astype(dt.newbyteorder("="))
-        out[name] = arr
-    return out
+    return {entry[0]: _part_array(kind, entry, part) for entry, part in zip(layout, parts)}
+
+
+def _part_array(kind: str, entry: tuple, part: memoryview) -> np.ndarray:
+    """One array part as described by a checked layout entry ``(name, dtype, dt, shape,
+    bytes, shape text)``: its size checked, viewed without a copy, in native byte order."""
+    name, dtype, dt, shape, want, shape_text = entry
+    if part.nbytes != want:
+        raise ProtocolError(f"{kind}.{name}: shape {shape_text} of {dtype} needs "
+                            f"{_short(want)} bytes, part has {part.nbytes}", reason="size")
+    arr = np.frombuffer(part, dtype=dt).reshape(shape)
+    if dt.byteorder == "<" and not dt.isnative:  # big-endian host
+        arr = arr.astype(dt.newbyteorder("="))
+    return arr
 
 
 def _refuse_constant(token: str) -> Any:
