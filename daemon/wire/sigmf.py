@@ -744,9 +744,7 @@ class CaptureWriter:
         """Close without metadata and delete the data file if no sample was written; else
         :meth:`close`. For a start that failed before any sample came."""
         with self._lock:
-            if self._closed or self.n_samples:
-                pass
-            else:
+            if not (self._closed or self.n_samples):
                 self._closed = True
                 self._file.close()
                 self.data_path.unlink(missing_ok=True)
