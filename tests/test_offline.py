@@ -129,6 +129,30 @@ class TestReplayOffline:
         # 10 frames 20 ms apart (0 to 0.18 s) at twice the speed: 90 ms of waiting.
         assert len(waits) == 9 and sum(waits) == pytest.approx(0.18 / 2.0)
 
+    def test_decision_and_map_lines_carry_the_controllers_cause(self, demo_run):
+        """The JSON Lines name the rule behind each decision and map as the daemon's logs do:
+        the same controller, fed the recording's estimates directly, gives the same causes."""
+        cfg = load_config(CONFIG)
+        plan, loader, estimator, change = build_core(cfg)
+        controller = build_controller(cfg, plan, loader, estimator, change, epoch="direct")
+        step_causes, map_causes = [], []
+        for _t, est in read_recording(DEMO, topics=[codec.TOPIC_ESTIMATE]):
+            step = controller.on_estimate(est, est.time_s)
+            if step.kind != "keep" or step.maps:
+                step_causes.append(step.cause)
+            map_causes += [c.cause for c in step.changes]
+        lines = list(result_lines(demo_run))
+        decisions = [x for x in lines if x["type"] == "decision"]
+        maps = [x for x in lines if x["type"] == "map"]
+        assert [x["cause"] for x in decisions] == step_causes
+        assert [x["cause"] for x in maps] == map_causes
+        assert [x["kind"] for x in maps] == [e.kind for e in demo_run.events]
+        # the fallback map's cause is its kind; every other map names a change-control rule
+        assert {m["cause"] for m in maps if m["kind"] == "fallback"} == {"fallback"}
+        assert all(m["cause"] and m["cause"] != "keep" for m in maps)
+        rejected = [x for x in decisions if x["kind"] == "rejected"]
+        assert all(x["cause"] == x["reason"] for x in rejected)
+
     def test_result_survives_pickling(self):
         """Sweep tasks return results from worker processes: the result must pickle."""
         r = replay_offline(CONFIG, DEMO, window=Window(stop_s=4.5), keep_snr=True)
