@@ -368,7 +368,8 @@ class Decision:
     cause: str = ""
 
     def __post_init__(self) -> None:
-        _set(self, "kind", DecisionKind(self.kind))
+        if type(self.kind) is not DecisionKind:
+            _set(self, "kind", DecisionKind(self.kind))
         if (self.allocation is None) != (self.kind is DecisionKind.KEEP):
             raise ValueError("a decision carries an allocation exactly when it is not 'keep'")
 

@@ -93,6 +93,7 @@ _ALLOWED_DTYPES = frozenset(
 _SCALAR_KINDS = ("int", "float", "str", "bool")
 # Decoded JSON values whose type already is the scalar kind (exact types: bool is no int).
 _SAME_TYPE = {int: "int", float: "float", str: "str", bool: "bool"}
+_NON_FINITE_TEXT = frozenset(("inf", "-inf", "nan"))  # how non-finite floats are written
 _MAX_HEADER_BYTES = 1 << 20
 _MAX_TOPIC_BYTES = 64
 _INT_MIN, _INT_MAX = -(1 << 63), (1 << 63) - 1
@@ -614,6 +615,8 @@ def decode(frames: Sequence[Any], *, types: Iterable[str] | None = None) -> tupl
         # the message text is only made for the rest.
         if _SAME_TYPE.get(type(raw)) == want and (want != "int" or _INT_MIN <= raw <= _INT_MAX):
             values[name] = raw
+        elif want == "float" and type(raw) is str and raw in _NON_FINITE_TEXT:
+            values[name] = float(raw)
         else:
             values[name] = _scalar(want, raw, f"{kind}.{name}")
     for name in schema.finite:
