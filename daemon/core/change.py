@@ -562,10 +562,14 @@ class ChangeControl:
         else:
             a = 1.0 - math.exp(-dt / self.slope_tau_s)
             step_db = eff_db - prev
-            self._slope_db_s += a * (step_db / dt - self._slope_db_s)
+            rate = step_db / dt   # slope += a * (rate - slope), in place
+            rate -= self._slope_db_s
+            rate *= a
+            self._slope_db_s += rate
             # A jump deeper than down_deep_db in one call is a step (a confirmed drop, a new
             # level), not a trend to extrapolate: that tone's slope starts afresh.
-            self._slope_db_s[np.abs(step_db) > self.down_deep_db] = 0.0
+            np.abs(step_db, out=step_db)
+            self._slope_db_s[step_db > self.down_deep_db] = 0.0
         self._prev_eff_db, self._prev_s = eff_db, now_s
         if self.lookahead_s == 0.0:
             return eff_db
@@ -575,9 +579,13 @@ class ChangeControl:
         # (np.convolve is this correlation with the kernel reversed, after argument checks
         # that cost more than the sum; the kernel is symmetric)
         slope = np.correlate(self._slope_db_s, _SLOPE_KERNEL, "full")[half:half + eff_db.size]
-        # at most an emergency drop: a step (a confirmed drop) is not a trend to follow
-        return eff_db - np.minimum(self.lookahead_s * np.maximum(-slope, 0.0),
-                                   self.emergency_drop_db)
+        # the fall ahead, min(lookahead_s * max(-slope, 0), emergency_drop_db), in place: at
+        # most an emergency drop (a step, a confirmed drop, is not a trend to follow)
+        np.negative(slope, out=slope)
+        np.maximum(slope, 0.0, out=slope)
+        slope *= self.lookahead_s
+        np.minimum(slope, self.emergency_drop_db, out=slope)
+        return eff_db - slope
 
     def _upgrade_due(self, now_s: float) -> bool:
         return not math.isnan(self._gain_since_s) and \

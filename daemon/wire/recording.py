@@ -57,6 +57,9 @@ _HEAD = struct.Struct("<II")
 _U16 = struct.Struct("<H")
 _U32 = struct.Struct("<I")
 _MAX_BODY = 1 << 28  # 256 MiB: anything larger is a corrupt length, not a record
+# Read buffer of RecordReader: an estimate record of a few hundred tones is several KiB, more
+# than half of Python's default 8 KiB buffer, so most reads would be a system call of their own.
+_READ_BUFFER = 1 << 20
 # Errors of os.link that mean "this file system has no hard links", not "cannot write here".
 _NO_LINKS = {errno.EPERM, errno.ENOTSUP, errno.EOPNOTSUPP, errno.ENOSYS, errno.EXDEV}
 
@@ -492,7 +495,7 @@ class RecordReader:
         self.meta: dict = {}
         self._closed = False
         try:
-            self._file: BinaryIO = open(self.path, "rb")
+            self._file: BinaryIO = open(self.path, "rb", buffering=_READ_BUFFER)
         except OSError as exc:
             raise RecordingError(f"{self.path}: cannot open recording: {exc}") from None
         try:
