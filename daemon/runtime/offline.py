@@ -64,7 +64,7 @@ from brimline.daemon.runtime.config import Config, config_with, load_config
 from brimline.daemon.runtime.status import build_status, controller_fields, frame_fields
 from brimline.daemon.wire.codec import TOPIC_ESTIMATE
 from brimline.daemon.wire.export import ExportTables
-from brimline.daemon.wire.recording import RecordReader, recording_epoch, recording_paths
+from brimline.daemon.wire.recording import count_records, recording_epoch
 from brimline.drivers.link.frame import make_plan
 from brimline.drivers.sources.iq import IqDriver
 from brimline.drivers.sources.replay import ReplayDriver
@@ -74,7 +74,6 @@ __all__ = ["Window", "MapEvent", "Timeline", "OfflineSummary", "OfflineResult", 
            "result_tables", "result_lines", "ReplayPublisher"]
 
 _SIGMF_SUFFIXES = (".sigmf-meta", ".sigmf-data")
-_ESTIMATE_TOPIC = TOPIC_ESTIMATE.encode("ascii")
 
 
 @dataclass(frozen=True)
@@ -381,19 +380,10 @@ def _open_source(config: Config, plan, path: Path):
 
 
 def _count_estimates(path: Path, kind: str) -> int | None:
-    """How many estimates a run will see, for progress (a cheap upper bound for IQ)."""
+    """How many estimates a run will see, for progress (None for IQ: not known before)."""
     if kind == "iq":
         return None
-    total = 0
-    for p in recording_paths(path):
-        try:
-            with RecordReader(p) as reader:
-                for frames in reader.frames():
-                    if bytes(frames[0]) == _ESTIMATE_TOPIC:
-                        total += 1
-        except RecordingError:
-            break
-    return total
+    return count_records(path, TOPIC_ESTIMATE)
 
 
 class _Pacer:
