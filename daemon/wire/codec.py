@@ -470,8 +470,10 @@ def _part_array(kind: str, entry: tuple, part: memoryview) -> np.ndarray:
     if part.nbytes != want:
         raise ProtocolError(f"{kind}.{name}: shape {shape_text} of {dtype} needs "
                             f"{_short(want)} bytes, part has {part.nbytes}", reason="size")
-    arr = np.frombuffer(part, dtype=dt).reshape(shape)
-    if dt.byteorder == "<" and not dt.isnative:  # big-endian host
+    arr = np.frombuffer(part, dtype=dt)   # 1-D, of exactly the size a 1-D shape names
+    if len(shape) != 1:
+        arr = arr.reshape(shape)
+    if not dt.isnative:  # "<" on a big-endian host (allowed dtypes are "<" or "|")
         arr = arr.astype(dt.newbyteorder("="))
     return arr
 
