@@ -46,6 +46,7 @@ error counts yet, so goodput is ``None`` ("not recorded"); header CRC failures a
 from __future__ import annotations
 
 import hashlib
+import itertools
 import math
 import time
 from dataclasses import dataclass, field
@@ -74,6 +75,10 @@ __all__ = ["Window", "MapEvent", "Timeline", "OfflineSummary", "OfflineResult", 
            "result_tables", "result_lines", "ReplayPublisher"]
 
 _SIGMF_SUFFIXES = (".sigmf-meta", ".sigmf-data")
+
+#: Estimates of a recording decoded ahead at a time when a replay runs as fast as it can (see
+#: :func:`_in_blocks`).
+DECODE_BLOCK = 64
 
 
 @dataclass(frozen=True)
@@ -386,6 +391,23 @@ def _count_estimates(path: Path, kind: str) -> int | None:
     return count_records(path, TOPIC_ESTIMATE)
 
 
+def _in_blocks(items: Iterator, size: int) -> Iterator:
+    """``items`` as they come, drawn ``size`` at a time.
+
+    An unpaced replay decodes a block of estimates, then decides on them one after the other:
+    the decoder and the controller each run on with their own code and data still in the CPU's
+    caches, where frame by frame each pushed the other's out. Same estimates, same order; the
+    source has only read further ahead when a step runs (5 to 13 % less CPU time per frame
+    without channel prediction, blocks of 1 and 64 timed alternately on the 200-tone bench
+    recording on a shared box).
+    """
+    while True:
+        block = list(itertools.islice(items, size))
+        if not block:
+            return
+        yield from block
+
+
 class _Pacer:
     """Waits so that estimates go out ``speed`` times as fast as their recorded times."""
 
@@ -477,7 +499,12 @@ def replay_offline(config: Config | str | Path | None, recording_path: str | Pat
     in_force: LoadMap | None = None
     map_row: tuple = (0, math.nan, -1, False)
     with driver:
-        for est in driver.frames():
+        estimates = driver.frames()
+        if kind == "estimates" and pacer is None and not windowed:
+            # Nothing waits on a single estimate and nothing stops the read early (a window
+            # would, and the driver would count the estimates read past it).
+            estimates = _in_blocks(estimates, DECODE_BLOCK)
+        for est in estimates:
             done += 1
             if on_progress is not None:
                 on_progress(done, total)
