@@ -94,6 +94,8 @@ ON_TIME_ACKS = 3
 _MAX_ON_TIME_ACKS = 1024
 
 _LEADS_KEPT = 64  # maps whose effective frame and lead are kept for their acknowledgement
+# each decision kind's value (a dict lookup per estimate instead of the enum's value property)
+_KIND_TEXT = {k: k.value for k in DecisionKind}
 
 
 @dataclass(frozen=True)
@@ -332,7 +334,7 @@ class LinkController:
             decision = self.change.decide(tracked, now_s, offset_db=self._offset_db)
         else:
             decision = self.change.decide(tracked, now_s)
-        kind = decision.kind.value
+        kind = _KIND_TEXT[decision.kind]
         if decision.kind is not DecisionKind.KEEP:
             self._make_map(decision.allocation, kind, decision.reason, now_s, False,
                            maps, changes, held, cause=decision.cause)
