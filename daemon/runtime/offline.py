@@ -33,7 +33,8 @@ gives the fallback map dated when a live daemon would have sent it (the controll
 
 Figures
 -------
-Per frame the timeline keeps the step's kind and reason, the rate of the map in force (bits per
+Per frame the timeline keeps the step's kind, reason and cause (the rule behind it, as the
+daemon's logs carry it), the rate of the map in force (bits per
 OFDM symbol; ``rate_bps`` = bits times ``sample_rate_hz / (fft_size + cp_len)``, the status
 message's formula), the map's own margin (``LoadMap.margin_db``) and the *live margin*: the
 smallest per-tone margin of the map in force under the tracked SNR (``Tracked.snr_db``,
@@ -41,6 +42,15 @@ smallest per-tone margin of the map in force under the tracked SNR (``Tracked.sn
 ``loading.margin_db``. A live margin below 0 dB means the link runs below its target margin;
 ``time_below_target_s`` adds up the frame intervals where it does. Estimates carry no payload
 error counts yet, so goodput is ``None`` ("not recorded"); header CRC failures are counted.
+
+Speed
+-----
+An unpaced run of a whole estimate recording decodes :data:`DECODE_BLOCK` estimates ahead and
+then steps the controller through them (:func:`_in_blocks`); the live margin is worked out a
+run of frames under one map at a time (:class:`_LiveMargins`); the progress total comes from
+:func:`~brimline.daemon.wire.recording.count_records` (record lengths and topics, no second
+decode). None of it changes a figure: the replay digests (``tests/test_offline_digest.py``)
+pin the results.
 """
 
 from __future__ import annotations
