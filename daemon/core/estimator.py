@@ -123,6 +123,7 @@ ESTIMATOR_LIMITS = MappingProxyType({
 })
 
 _min = np.minimum.reduce
+_accumulate = np.add.accumulate
 #: Zero vectors by length, for :func:`_all_finite` (read-only, shared).
 _ZEROS: dict[int, np.ndarray] = {}
 
@@ -537,7 +538,7 @@ class Estimator:
         """Sum over each tone's pooling window (clipped at the band edges), by a running sum
         padded with ``w`` zeros in front and ``w`` copies of the total behind."""
         body, tail, ahead, behind = self._cumsum_views
-        values.cumsum(out=body)
+        _accumulate(values, out=body)   # ndarray.cumsum, without its method wrapper
         if tail.size:
             tail.fill(body[-1])
         return ahead - behind
