@@ -17,6 +17,7 @@ import pytest
 
 from brimline.daemon.errors import ConfigError, InputError, SourceError
 from brimline.daemon.runtime.assemble import build_controller, build_core
+from brimline.daemon.runtime import offline
 from brimline.daemon.runtime.config import load_config
 from brimline.daemon.runtime.offline import (
     MapEvent,
@@ -184,6 +185,43 @@ class TestLiveMargin:
         need = 10 ** (gap_db / 10) * (2.0 ** m.bits[loaded] - 1)
         by_hand = 10 * np.log10(m.power_lin[loaded] * 10 ** (snr_db[loaded] / 10) / need)
         assert demo_run.timeline.live_margin_db[99] == pytest.approx(by_hand.min(), abs=1e-4)
+
+    def test_every_frame_matches_the_gap_formula(self, demo_run):
+        """The same formula as above on every replayed frame, with the map in force and the
+        tracked SNR after that frame (the replay works the live margin out a run of frames
+        under one map at a time; this checks the runs, their ends and the frames without a
+        map, which have none)."""
+        cfg = load_config(CONFIG)
+        plan, loader, est, chg = build_core(cfg)
+        c = build_controller(cfg, plan, loader, est, chg, epoch="x")
+        expected = []
+        for e in (r for _t, r in read_recording(DEMO, topics=["estimate"])):
+            c.on_estimate(e, e.time_s)
+            m, tracked = c.current_map, c.last_tracked
+            if m is None or tracked is None or not (m.bits > 0).any():
+                expected.append(math.nan)
+                continue
+            loaded = m.bits > 0
+            need = 10 ** (m.gap_db / 10) * (2.0 ** m.bits[loaded] - 1)
+            snr = 10 ** (tracked.snr_db[loaded] / 10)
+            expected.append(float((10 * np.log10(m.power_lin[loaded] * snr / need)).min()))
+        live = demo_run.timeline.live_margin_db
+        assert len(live) == len(expected) > 2 * 256   # several blocks of the replay's runs
+        assert np.array_equal(np.isnan(live), np.isnan(expected))
+        assert np.allclose(live, expected, atol=1e-4, equal_nan=True)
+
+    def test_decoding_ahead_changes_nothing(self, demo_run, monkeypatch):
+        """An unpaced replay decodes estimates a block at a time; one at a time gives the
+        same run, to the byte."""
+        monkeypatch.setattr(offline, "DECODE_BLOCK", 1)
+        one = replay_offline(CONFIG, DEMO, keep_snr=True)
+        a = [json.dumps(json_safe(x)) for x in result_lines(demo_run)]
+        assert a == [json.dumps(json_safe(x)) for x in result_lines(one)]
+        for name in ("frame", "time_s", "bits_per_symbol", "margin_db", "live_margin_db",
+                     "seq", "fallback"):
+            assert getattr(one.timeline, name).tobytes() == \
+                getattr(demo_run.timeline, name).tobytes()
+        assert one.summary == demo_run.summary and one.events == demo_run.events
 
 
 def _timeline(kinds, rates):
