@@ -148,6 +148,9 @@ class TonePlan:
         return h.hexdigest()[:12]
 
 
+_ESTIMATE_ARRAYS = (("channel", np.complex64), ("noise_var", np.float32), ("snr_db", np.float32))
+
+
 @dataclass(frozen=True)
 class Estimate:
     """One frame's pilot-based channel estimate, for the data tones of a tone plan.
@@ -197,22 +200,24 @@ class Estimate:
     center_hz: float = math.nan
 
     def __post_init__(self) -> None:
-        _set(self, "frame", int(self.frame))
-        _set(self, "time_s", float(self.time_s))
-        _set(self, "map_seq_seen", int(self.map_seq_seen))
-        _set(self, "sync_metric", float(self.sync_metric))
-        _set(self, "cfo_hz", float(self.cfo_hz))
-        _set(self, "center_hz", float(self.center_hz))
-        _set(self, "header_ok", bool(self.header_ok))
-        _set(self, "valid", bool(self.valid))
-        tones = frozen_array(self.tone_index, np.int16, "tone_index")
-        _set(self, "tone_index", tones)
-        for name, dtype in (("channel", np.complex64), ("noise_var", np.float32),
-                            ("snr_db", np.float32)):
-            arr = frozen_array(getattr(self, name), dtype, name)
+        # Fields are converted in the instance dict: the frozen record's attributes are set
+        # once here, before anyone sees it (one dict store each instead of a setattr call;
+        # the per-frame path builds one of these per estimate).
+        d = self.__dict__
+        d["frame"] = int(d["frame"])
+        d["time_s"] = float(d["time_s"])
+        d["map_seq_seen"] = int(d["map_seq_seen"])
+        d["sync_metric"] = float(d["sync_metric"])
+        d["cfo_hz"] = float(d["cfo_hz"])
+        d["center_hz"] = float(d["center_hz"])
+        d["header_ok"] = bool(d["header_ok"])
+        d["valid"] = bool(d["valid"])
+        tones = d["tone_index"] = frozen_array(d["tone_index"], np.int16, "tone_index")
+        for name, dtype in _ESTIMATE_ARRAYS:
+            arr = frozen_array(d[name], dtype, name)
             if arr.shape != tones.shape:
                 raise ValueError(f"{name} has {arr.size} tones, tone_index has {tones.size}")
-            _set(self, name, arr)
+            d[name] = arr
 
     @property
     def n_tones(self) -> int:
@@ -368,7 +373,8 @@ class Decision:
     cause: str = ""
 
     def __post_init__(self) -> None:
-        _set(self, "kind", DecisionKind(self.kind))
+        if type(self.kind) is not DecisionKind:
+            _set(self, "kind", DecisionKind(self.kind))
         if (self.allocation is None) != (self.kind is DecisionKind.KEEP):
             raise ValueError("a decision carries an allocation exactly when it is not 'keep'")
 
@@ -416,19 +422,19 @@ class Tracked:
     time_s: float = math.nan
 
     def __post_init__(self) -> None:
-        tones = frozen_array(self.tone_index, np.int16, "tone_index")
-        _set(self, "tone_index", tones)
-        if self.mean_std_db is None:
-            _set(self, "mean_std_db", np.zeros(tones.size))
+        d = self.__dict__   # set once, before anyone sees the record (as in Estimate)
+        tones = d["tone_index"] = frozen_array(d["tone_index"], np.int16, "tone_index")
+        if d["mean_std_db"] is None:
+            d["mean_std_db"] = np.zeros(tones.size)
         for name in ("snr_db", "std_db", "effective_snr_db", "mean_std_db"):
-            arr = frozen_array(getattr(self, name), np.float64, name)
+            arr = frozen_array(d[name], np.float64, name)
             if arr.shape != tones.shape:
                 raise ValueError(f"{name} has {arr.size} tones, tone_index has {tones.size}")
-            _set(self, name, arr)
-        _set(self, "age_s", float(self.age_s))
-        _set(self, "frames", int(self.frames))
-        _set(self, "center_hz", float(self.center_hz))
-        _set(self, "time_s", float(self.time_s))
+            d[name] = arr
+        d["age_s"] = float(d["age_s"])
+        d["frames"] = int(d["frames"])
+        d["center_hz"] = float(d["center_hz"])
+        d["time_s"] = float(d["time_s"])
 
     @property
     def n_tones(self) -> int:

@@ -79,10 +79,12 @@ class TestStaleness:
         -1 dB is 10**(-1/10) = 0.794 in linear power (definition of the decibel)."""
         ctl = _controller()
         _feed(ctl, _estimates(ctl, frames=10))  # last accepted at 0.09 s
-        assert ctl.on_tick(0.09 + STALE_S - 0.01).maps == ()
+        quiet = ctl.on_tick(0.09 + STALE_S - 0.01)
+        assert quiet.maps == () and quiet.cause == "fresh"
         assert not ctl.stale
         step = ctl.on_tick(0.09 + STALE_S)
         assert step.kind == "fallback" and len(step.maps) == 1
+        assert step.cause == "fallback" and step.changes[0].cause == "fallback"
         fb = step.maps[0]
         assert fb.fallback and np.all(fb.bits == 2)
         assert np.allclose(fb.power_lin, 0.794, atol=5e-4)

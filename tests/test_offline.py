@@ -17,6 +17,7 @@ import pytest
 
 from brimline.daemon.errors import ConfigError, InputError, SourceError
 from brimline.daemon.runtime.assemble import build_controller, build_core
+from brimline.daemon.runtime import offline
 from brimline.daemon.runtime.config import load_config
 from brimline.daemon.runtime.offline import (
     MapEvent,
@@ -129,6 +130,30 @@ class TestReplayOffline:
         # 10 frames 20 ms apart (0 to 0.18 s) at twice the speed: 90 ms of waiting.
         assert len(waits) == 9 and sum(waits) == pytest.approx(0.18 / 2.0)
 
+    def test_decision_and_map_lines_carry_the_controllers_cause(self, demo_run):
+        """The JSON Lines name the rule behind each decision and map as the daemon's logs do:
+        the same controller, fed the recording's estimates directly, gives the same causes."""
+        cfg = load_config(CONFIG)
+        plan, loader, estimator, change = build_core(cfg)
+        controller = build_controller(cfg, plan, loader, estimator, change, epoch="direct")
+        step_causes, map_causes = [], []
+        for _t, est in read_recording(DEMO, topics=[codec.TOPIC_ESTIMATE]):
+            step = controller.on_estimate(est, est.time_s)
+            if step.kind != "keep" or step.maps:
+                step_causes.append(step.cause)
+            map_causes += [c.cause for c in step.changes]
+        lines = list(result_lines(demo_run))
+        decisions = [x for x in lines if x["type"] == "decision"]
+        maps = [x for x in lines if x["type"] == "map"]
+        assert [x["cause"] for x in decisions] == step_causes
+        assert [x["cause"] for x in maps] == map_causes
+        assert [x["kind"] for x in maps] == [e.kind for e in demo_run.events]
+        # the fallback map's cause is its kind; every other map names a change-control rule
+        assert {m["cause"] for m in maps if m["kind"] == "fallback"} == {"fallback"}
+        assert all(m["cause"] and m["cause"] != "keep" for m in maps)
+        rejected = [x for x in decisions if x["kind"] == "rejected"]
+        assert all(x["cause"] == x["reason"] for x in rejected)
+
     def test_result_survives_pickling(self):
         """Sweep tasks return results from worker processes: the result must pickle."""
         r = replay_offline(CONFIG, DEMO, window=Window(stop_s=4.5), keep_snr=True)
@@ -160,6 +185,43 @@ class TestLiveMargin:
         need = 10 ** (gap_db / 10) * (2.0 ** m.bits[loaded] - 1)
         by_hand = 10 * np.log10(m.power_lin[loaded] * 10 ** (snr_db[loaded] / 10) / need)
         assert demo_run.timeline.live_margin_db[99] == pytest.approx(by_hand.min(), abs=1e-4)
+
+    def test_every_frame_matches_the_gap_formula(self, demo_run):
+        """The same formula as above on every replayed frame, with the map in force and the
+        tracked SNR after that frame (the replay works the live margin out a run of frames
+        under one map at a time; this checks the runs, their ends and the frames without a
+        map, which have none)."""
+        cfg = load_config(CONFIG)
+        plan, loader, est, chg = build_core(cfg)
+        c = build_controller(cfg, plan, loader, est, chg, epoch="x")
+        expected = []
+        for e in (r for _t, r in read_recording(DEMO, topics=["estimate"])):
+            c.on_estimate(e, e.time_s)
+            m, tracked = c.current_map, c.last_tracked
+            if m is None or tracked is None or not (m.bits > 0).any():
+                expected.append(math.nan)
+                continue
+            loaded = m.bits > 0
+            need = 10 ** (m.gap_db / 10) * (2.0 ** m.bits[loaded] - 1)
+            snr = 10 ** (tracked.snr_db[loaded] / 10)
+            expected.append(float((10 * np.log10(m.power_lin[loaded] * snr / need)).min()))
+        live = demo_run.timeline.live_margin_db
+        assert len(live) == len(expected) > 2 * 256   # several blocks of the replay's runs
+        assert np.array_equal(np.isnan(live), np.isnan(expected))
+        assert np.allclose(live, expected, atol=1e-4, equal_nan=True)
+
+    def test_decoding_ahead_changes_nothing(self, demo_run, monkeypatch):
+        """An unpaced replay decodes estimates a block at a time; one at a time gives the
+        same run, to the byte."""
+        monkeypatch.setattr(offline, "DECODE_BLOCK", 1)
+        one = replay_offline(CONFIG, DEMO, keep_snr=True)
+        a = [json.dumps(json_safe(x)) for x in result_lines(demo_run)]
+        assert a == [json.dumps(json_safe(x)) for x in result_lines(one)]
+        for name in ("frame", "time_s", "bits_per_symbol", "margin_db", "live_margin_db",
+                     "seq", "fallback"):
+            assert getattr(one.timeline, name).tobytes() == \
+                getattr(demo_run.timeline, name).tobytes()
+        assert one.summary == demo_run.summary and one.events == demo_run.events
 
 
 def _timeline(kinds, rates):

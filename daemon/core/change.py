@@ -165,6 +165,7 @@ def check_change_settings(settings: Mapping[str, Any], *, prefix: str = "") -> N
 
 
 _KEEP = DecisionKind.KEEP
+_sum = np.add.reduce
 _SLOPE_KERNEL = np.full(9, 1.0 / 9)   # tones pooled (centred) for the slope of lookahead_s
 _MAX_SNR_DB = 100.0   # no tone is better than this; keeps the linear SNR finite
 
@@ -282,6 +283,7 @@ class ChangeControl:
         self._current: Allocation | None = None
         self._margin_at_0db = None      # tone margins of the current map at 0 dB SNR
         self._n_loaded = 0
+        self._none_below = np.empty(0)   # all NaN, read-only: _low_since_s with no tone below
         self._low_since_s = np.empty(0)  # per tone: when it went below the downshift margin,
         #                                  NaN while it is not below (reset at every map)
         self._plan_id: str | None = None
@@ -370,11 +372,14 @@ class ChangeControl:
         """
         now_s = float(now_s)
         eff_db = tracked.effective_snr_db
-        snr_sum = tracked.snr_db.sum()   # also gives the mean below: np.mean is sum / count
-        if not (math.isfinite(eff_db.sum()) and math.isfinite(snr_sum)):
+        # (np.add.reduce is what ndarray.sum calls, without its wrapper: this runs per frame)
+        snr_sum = _sum(tracked.snr_db)   # also gives the mean below: np.mean is sum / count
+        if not (math.isfinite(_sum(eff_db)) and math.isfinite(snr_sum)):
             return self._hold("bad_input", "tracked SNR is not finite: map kept")
         offset_db = float(offset_db) if math.isfinite(offset_db) else 0.0
-        eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s) - offset_db
+        eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s)
+        if offset_db != 0.0 or math.copysign(1.0, offset_db) < 0:
+            eff_db = eff_db - offset_db   # x - (+0.0) is x: no copy without an outer loop
         self._offset_now = offset_db
         self._eff_now = eff_db   # what a map made on this call is made on
         mean_db = float(snr_sum / tracked.snr_db.size)
@@ -407,16 +412,21 @@ class ChangeControl:
         n_below = int(np.count_nonzero(below))
         # Persistence: a tone stays low once below on every call for down_persist_s, or at once
         # when the drop is deeper than down_deep_db; one vectorized update per call.
-        since = np.where(below, np.fmin(self._low_since_s, now_s), np.nan)
-        self._low_since_s = since
-        with np.errstate(invalid="ignore"):
-            low = below & ((now_s - since >= self.down_persist_s - 1e-9)
+        if n_below:
+            first_s = np.fmin(self._low_since_s, now_s)   # when each tone went below, if now
+            since = np.where(below, first_s, np.nan)
+            low = below & ((now_s - first_s >= self.down_persist_s - 1e-9)
                            | (margins < self.downshift_margin_db - self.down_deep_db))
-        n_low = int(np.count_nonzero(low))
+            n_low = int(np.count_nonzero(low))
+        else:   # nothing below: no tone is low, and none has been below since any time
+            since = self._none_below
+            n_low = 0
+        self._low_since_s = since
         n_loaded = self._n_loaded
-        worst = int(np.argmin(margins))
-        worst_text = (f"{margins[worst]:.1f} dB worst at tone {int(tracked.tone_index[worst])}"
-                      if math.isfinite(margins[worst]) else "no tone loaded")
+        worst = int(margins.argmin())
+        worst_db = float(margins[worst])
+        worst_text = (f"{worst_db:.1f} dB worst at tone {int(tracked.tone_index[worst])}"
+                      if math.isfinite(worst_db) else "no tone loaded")
         if math.isnan(self._ref_mean_db):
             self._ref_mean_db = mean_db
         drop_db = self._ref_mean_db - mean_db
@@ -424,7 +434,8 @@ class ChangeControl:
         # Many tones low at once is an emergency when the band as a whole went down; with the
         # mean in place it is the ordinary spread of fading, which a reload handles.
         # Counted on this call alone: a band-wide drop must not wait for persistence.
-        n_raw = int(np.count_nonzero(margins < self.downshift_margin_db))
+        n_raw = (int(np.count_nonzero(margins < self.downshift_margin_db)) if own is not margins
+                 else n_below)
         broad = (n_raw >= self.emergency_fraction * n_loaded
                  and drop_db >= -self.downshift_margin_db)
         if (n_raw and broad) or drop_db >= self.emergency_drop_db:
@@ -551,20 +562,30 @@ class ChangeControl:
         else:
             a = 1.0 - math.exp(-dt / self.slope_tau_s)
             step_db = eff_db - prev
-            self._slope_db_s += a * (step_db / dt - self._slope_db_s)
+            rate = step_db / dt   # slope += a * (rate - slope), in place
+            rate -= self._slope_db_s
+            rate *= a
+            self._slope_db_s += rate
             # A jump deeper than down_deep_db in one call is a step (a confirmed drop, a new
             # level), not a trend to extrapolate: that tone's slope starts afresh.
-            self._slope_db_s[np.abs(step_db) > self.down_deep_db] = 0.0
+            np.abs(step_db, out=step_db)
+            self._slope_db_s[step_db > self.down_deep_db] = 0.0
         self._prev_eff_db, self._prev_s = eff_db, now_s
         if self.lookahead_s == 0.0:
             return eff_db
         # pooled over neighbouring tones (a fade moves them together, noise does not); zeros
         # beyond the band's edges, so the edge tones are extrapolated a little less
         half = _SLOPE_KERNEL.size // 2
-        slope = np.convolve(self._slope_db_s, _SLOPE_KERNEL)[half:half + eff_db.size]
-        # at most an emergency drop: a step (a confirmed drop) is not a trend to follow
-        return eff_db - np.minimum(self.lookahead_s * np.maximum(-slope, 0.0),
-                                   self.emergency_drop_db)
+        # (np.convolve is this correlation with the kernel reversed, after argument checks
+        # that cost more than the sum; the kernel is symmetric)
+        slope = np.correlate(self._slope_db_s, _SLOPE_KERNEL, "full")[half:half + eff_db.size]
+        # the fall ahead, min(lookahead_s * max(-slope, 0), emergency_drop_db), in place: at
+        # most an emergency drop (a step, a confirmed drop, is not a trend to follow)
+        np.negative(slope, out=slope)
+        np.maximum(slope, 0.0, out=slope)
+        slope *= self.lookahead_s
+        np.minimum(slope, self.emergency_drop_db, out=slope)
+        return eff_db - slope
 
     def _upgrade_due(self, now_s: float) -> bool:
         return not math.isnan(self._gain_since_s) and \
@@ -610,7 +631,9 @@ class ChangeControl:
         self._margin_at_0db = self.loader.tone_margin_db(alloc.bits, alloc.power,
                                                          np.ones(alloc.bits.size))
         self._n_loaded = int(np.count_nonzero(alloc.bits))
-        self._low_since_s = np.full(alloc.bits.size, np.nan)
+        self._none_below = np.full(alloc.bits.size, np.nan)
+        self._none_below.setflags(write=False)   # shared by every call with no tone below
+        self._low_since_s = self._none_below
         self._changed_s = float(now_s)
         self._ref_mean_db = mean_db
         self._loaded = alloc.bits > 0
@@ -726,12 +749,15 @@ class ChangeControl:
 
 
 def _median(x: np.ndarray) -> float:
-    """Median of a non-empty 1-D array (np.median without its checks: this runs per frame)."""
+    """Median of a non-empty 1-D array (np.median without its checks: this runs per frame).
+
+    Sorts ``x`` in place (callers pass a temporary): for a few hundred values a sort costs
+    less than a partition around two elements, and gives the same middle values."""
     k = x.size // 2
+    x.sort()
     if x.size % 2:
-        return float(np.partition(x, k)[k])
-    part = np.partition(x, (k - 1, k))
-    return 0.5 * float(part[k - 1] + part[k])
+        return float(x[k])
+    return 0.5 * float(x[k - 1] + x[k])
 
 
 def _reload_words(what: str, cur: Allocation, alloc: Allocation) -> str:

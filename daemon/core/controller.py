@@ -94,6 +94,8 @@ ON_TIME_ACKS = 3
 _MAX_ON_TIME_ACKS = 1024
 
 _LEADS_KEPT = 64  # maps whose effective frame and lead are kept for their acknowledgement
+# each decision kind's value (a dict lookup per estimate instead of the enum's value property)
+_KIND_TEXT = {k: k.value for k in DecisionKind}
 
 
 @dataclass(frozen=True)
@@ -149,6 +151,12 @@ class Step:
     held_back : str or None
         When a decision called for a map but its seq could not be reserved (so no map was
         made and the seq stays unused): the reserve error's text.
+    cause : str
+        The rule behind the step, one short key for machines: change control's
+        ``Decision.cause`` for a decision (keeps included: the counter it was counted under),
+        the rejection counter's name for a rejected estimate (as ``reason``), ``fallback``
+        when :meth:`LinkController.on_tick` entered the fallback map, ``stale`` or ``fresh``
+        for another tick, and empty when nothing was decided (no tracked view yet).
     """
 
     now_s: float
@@ -157,6 +165,7 @@ class Step:
     maps: tuple[LoadMap, ...] = ()
     changes: tuple[Change, ...] = ()
     held_back: str | None = None
+    cause: str = ""
 
     @property
     def last_map(self) -> LoadMap | None:
@@ -325,11 +334,11 @@ class LinkController:
             decision = self.change.decide(tracked, now_s, offset_db=self._offset_db)
         else:
             decision = self.change.decide(tracked, now_s)
-        kind = decision.kind.value
+        kind = _KIND_TEXT[decision.kind]
         if decision.kind is not DecisionKind.KEEP:
             self._make_map(decision.allocation, kind, decision.reason, now_s, False,
                            maps, changes, held, cause=decision.cause)
-        return self._step(now_s, kind, decision.reason, maps, changes, held)
+        return self._step(now_s, kind, decision.reason, maps, changes, held, decision.cause)
 
     def on_tick(self, now_s: float) -> Step:
         """Time passed without an estimate: send the fallback map once the link is stale.
@@ -354,9 +363,9 @@ class LinkController:
         entered = self._check_stale(now_s, maps, changes, held)
         if entered:
             return self._step(now_s, DecisionKind.FALLBACK.value, self._fallback_reason, maps,
-                              changes, held)
-        return self._step(now_s, "keep", "stale" if self.stale else "fresh", maps, changes,
-                          held)
+                              changes, held, DecisionKind.FALLBACK.value)
+        quiet = "stale" if self.stale else "fresh"
+        return self._step(now_s, "keep", quiet, maps, changes, held, quiet)
 
     def on_outcome(self, outcome: FrameOutcome, now_s: float) -> bool:
         """Take one frame outcome reported by the receiver side (for the outer loop).
@@ -455,7 +464,7 @@ class LinkController:
 
     def _rejected(self, reason, now_s, maps, changes, held) -> Step:
         self._check_stale(now_s, maps, changes, held)
-        return self._step(now_s, REJECTED, reason, maps, changes, held)
+        return self._step(now_s, REJECTED, reason, maps, changes, held, reason)
 
     def _check_stale(self, now_s, maps, changes, held) -> bool:
         start = self.last_valid_s if self.last_valid_s is not None else self._quiet_from_s
@@ -515,6 +524,6 @@ class LinkController:
         changes.append(change)
 
     @staticmethod
-    def _step(now_s, kind, reason, maps, changes, held) -> Step:
+    def _step(now_s, kind, reason, maps, changes, held, cause="") -> Step:
         return Step(now_s=now_s, kind=kind, reason=reason, maps=tuple(maps),
-                    changes=tuple(changes), held_back=held[0] if held else None)
+                    changes=tuple(changes), held_back=held[0] if held else None, cause=cause)

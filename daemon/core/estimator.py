@@ -122,8 +122,27 @@ ESTIMATOR_LIMITS = MappingProxyType({
     "predict_sigmas": PREDICTOR_LIMITS["allowance_sigmas"],
 })
 
-_sum = np.add.reduce
 _min = np.minimum.reduce
+_accumulate = np.add.accumulate
+#: Zero vectors by length, for :func:`_all_finite` (read-only, shared).
+_ZEROS: dict[int, np.ndarray] = {}
+
+
+def _all_finite(*arrays: np.ndarray) -> bool:
+    """Whether every element of some 1-D float arrays is finite: an array's dot product with
+    zeros is 0 exactly then, and NaN as soon as one element is NaN or infinite (``inf * 0``
+    is NaN). One BLAS call per array instead of ``isfinite`` and a reduction, or a float64
+    sum of float32 values: this runs per frame."""
+    with np.errstate(invalid="ignore"):   # inf * 0 is the answer here, not a warning
+        for values in arrays:
+            zeros = _ZEROS.get(values.size)
+            if zeros is None or zeros.dtype != values.dtype:
+                zeros = np.zeros(values.size, dtype=values.dtype)
+                zeros.setflags(write=False)
+                _ZEROS[values.size] = zeros
+            if not values.dot(zeros) == 0.0:
+                return False
+    return True
 
 #: Reasons :meth:`Estimator.update` can return, each also a key of :attr:`Estimator.counters`.
 REJECT_REASONS = (
@@ -327,12 +346,9 @@ class Estimator:
     def _check(self, estimate: Estimate) -> str | None:
         if not estimate.valid:
             return "invalid"
-        # A float64 sum is finite exactly when every (float32) term is: one pass per array.
-        # (np.add.reduce is what ndarray.sum calls, without its wrapper: this runs per frame.)
         if not (math.isfinite(estimate.time_s)
-                and math.isfinite(_sum(estimate.snr_db, dtype=np.float64))
-                and math.isfinite(_sum(estimate.noise_var, dtype=np.float64))
-                and math.isfinite(_sum(estimate.channel.view(np.float32), dtype=np.float64))):
+                and _all_finite(estimate.snr_db, estimate.noise_var,
+                                estimate.channel.view(np.float32))):
             return "non_finite"
         if estimate.noise_var.size and not _min(estimate.noise_var) > 0:
             return "noise_var"
@@ -410,8 +426,8 @@ class Estimator:
             s11, s12, s22 = self._p11, self._p12, self._p22
         d = x - pred
         var = self._var_db2
-        gate = var + s11
-        np.sqrt(gate, out=gate)
+        var_s11 = var + s11     # the gate's and the variance correction's sum
+        gate = np.sqrt(var_s11)
         gate *= self.outlier_sigmas
         np.maximum(gate, self.outlier_db, out=gate)
         if alpha < 0.5:
@@ -460,7 +476,7 @@ class Estimator:
         # Innovation variance, less the part the prediction's own spread explains (see module
         # notes). Held-back tones keep their variance (d is 0 there) and follow the prediction.
         new_var = d * d
-        new_var *= var / (var + s11)
+        new_var *= var / var_s11
         new_var *= beta
         new_var += (1.0 - beta) * var
         # Covariance of the tracked level and slope after the update (Joseph form, gain
@@ -522,7 +538,7 @@ class Estimator:
         """Sum over each tone's pooling window (clipped at the band edges), by a running sum
         padded with ``w`` zeros in front and ``w`` copies of the total behind."""
         body, tail, ahead, behind = self._cumsum_views
-        values.cumsum(out=body)
+        _accumulate(values, out=body)   # ndarray.cumsum, without its method wrapper
         if tail.size:
             tail.fill(body[-1])
         return ahead - behind
@@ -614,15 +630,20 @@ def _agree_smooth(values_db: np.ndarray, window: int, agree_db: float) -> np.nda
     v = values_db
     n = v.size
     acc = v.copy()
-    count = np.ones(n)
+    pairs = np.zeros(n)   # pairs taken per tone
+    step = np.empty(n - 1)
     ok = None
     for shift in range(1, min(window, (n - 1) // 2) + 1):
-        step = np.abs(v[shift:] - v[:-shift])          # |v[i + shift] - v[i]|
-        pair_ok = np.maximum(step[:n - 2 * shift], step[shift:]) <= agree_db
+        step_s = step[:n - shift]
+        np.subtract(v[shift:], v[:-shift], out=step_s)
+        np.abs(step_s, out=step_s)                   # |v[i + shift] - v[i]|
+        pair_ok = np.maximum(step_s[:n - 2 * shift], step_s[shift:]) <= agree_db
         ok = pair_ok if ok is None else ok[1:-1] & pair_ok
         pair = v[:n - 2 * shift] + v[2 * shift:]
         pair *= ok
         acc[shift:n - shift] += pair
-        inner = count[shift:n - shift]
-        np.add(inner, 2.0, out=inner, where=ok)   # counts are small integers: exact
-    return np.divide(acc, count, out=acc)
+        pairs[shift:n - shift] += ok
+    # 1 + 2 * pairs values: small integers, exact in any order
+    pairs *= 2.0
+    pairs += 1.0
+    return np.divide(acc, pairs, out=acc)

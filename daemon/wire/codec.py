@@ -93,6 +93,7 @@ _ALLOWED_DTYPES = frozenset(
 _SCALAR_KINDS = ("int", "float", "str", "bool")
 # Decoded JSON values whose type already is the scalar kind (exact types: bool is no int).
 _SAME_TYPE = {int: "int", float: "float", str: "str", bool: "bool"}
+_NON_FINITE_TEXT = frozenset(("inf", "-inf", "nan"))  # how non-finite floats are written
 _MAX_HEADER_BYTES = 1 << 20
 _MAX_TOPIC_BYTES = 64
 _INT_MIN, _INT_MAX = -(1 << 63), (1 << 63) - 1
@@ -111,6 +112,7 @@ class _Schema:
     arrays: dict[str, str]  # field -> dtype string, in field order
     finite: frozenset[str]
     required: frozenset[str]
+    required_scalars: frozenset[str]  # required fields that travel in the header's fields
 
 
 _BY_NAME: dict[str, _Schema] = {}
@@ -155,7 +157,7 @@ def register_record(name: str, cls: type, *, arrays: Mapping[str, str],
         raise TypeError(f"{cls.__name__} has no fields {sorted(unknown)}")
     order = [f.name for f in dataclasses.fields(cls) if f.name in arrays]
     schema = _Schema(name, cls, scalars, {k: arrays[k] for k in order}, frozenset(finite),
-                     frozenset(required))
+                     frozenset(required), frozenset(required - set(arrays)))
     _BY_NAME[name] = schema
     _BY_CLASS[cls] = schema
 
@@ -385,24 +387,34 @@ def _scalar(kind: str, value: Any, where: str) -> Any:
     return value
 
 
-#: Array layouts of record types already checked in full: ``(type, repr(specs))`` -> one
-#: ``(name, dtype text, dtype, shape, bytes, shape text)`` per part. A stream of one record
-#: type repeats one layout, so each message costs a lookup and a size check per part instead
-#: of the checks of every spec. ``repr`` of JSON values is one-to-one (``1``, ``1.0``, ``True`` and ``"1"``
-#: differ), so only a layout that passed every check is ever taken from here. Bounded: a peer
-#: that varies layouts only empties it now and then.
-_LAYOUTS: dict[tuple[str, str], tuple[tuple[str, str, np.dtype, tuple, int, str], ...]] = {}
-_MAX_LAYOUTS = 64
+#: The last array layout of each record type that passed every check: ``type`` -> (the specs
+#: as decoded, one ``(name, dtype text, dtype, shape, bytes, shape text)`` per part). A stream
+#: of one record type repeats one layout, so each message costs a comparison and a size check
+#: per part instead of the checks of every spec. The comparison is exact for JSON values: the
+#: lists of dicts must be equal, which fixes the keys, the names and dtypes (a string equals
+#: only a string), and every size must be an ``int`` (equality alone would let ``200.0`` or
+#: ``True`` stand for a checked ``200`` or ``1``). One entry per registered type: a peer that
+#: varies layouts only makes itself the full checks.
+_LAYOUTS: dict[str, tuple[list, tuple[tuple[str, str, np.dtype, tuple, int, str], ...]]] = {}
+
+
+def _same_specs(specs: list, known: list) -> bool:
+    """Whether ``specs`` (decoded JSON) is the layout ``known`` (checked before), exactly."""
+    if specs != known:
+        return False
+    for spec in specs:
+        for n in spec["shape"]:
+            if type(n) is not int:
+                return False
+    return True
 
 
 def _arrays(kind: str, specs: list, parts: Sequence[memoryview],
             expected: Mapping[str, str] | None) -> dict[str, np.ndarray]:
-    key = None
     if expected is not None:
-        key = (kind, repr(specs))
-        layout = _LAYOUTS.get(key)
-        if layout is not None:
-            return _known_arrays(kind, layout, parts)
+        cached = _LAYOUTS.get(kind)
+        if cached is not None and _same_specs(specs, cached[0]):
+            return _known_arrays(kind, cached[1], parts)
     out: dict[str, np.ndarray] = {}
     checked = []
     for i, (spec, part) in enumerate(zip(specs, parts)):
@@ -435,10 +447,12 @@ def _arrays(kind: str, specs: list, parts: Sequence[memoryview],
     if expected is not None and set(out) != set(expected):
         raise ProtocolError(f"{kind}: missing arrays {sorted(set(expected) - set(out))}",
                             reason="arrays")
-    if key is not None:
-        if len(_LAYOUTS) >= _MAX_LAYOUTS:
-            _LAYOUTS.clear()
-        _LAYOUTS[key] = tuple(checked)
+    if expected is not None:
+        # a deep copy of the decoded specs (lists and dicts of str and int): the caller's
+        # header is never kept or shared
+        known = [{"name": sp["name"], "dtype": sp["dtype"], "shape": list(sp["shape"])}
+                 for sp in specs]
+        _LAYOUTS[kind] = (known, tuple(checked))
     return out
 
 
@@ -456,8 +470,10 @@ def _part_array(kind: str, entry: tuple, part: memoryview) -> np.ndarray:
     if part.nbytes != want:
         raise ProtocolError(f"{kind}.{name}: shape {shape_text} of {dtype} needs "
                             f"{_short(want)} bytes, part has {part.nbytes}", reason="size")
-    arr = np.frombuffer(part, dtype=dt).reshape(shape)
-    if dt.byteorder == "<" and not dt.isnative:  # big-endian host
+    arr = np.frombuffer(part, dtype=dt)   # 1-D, of exactly the size a 1-D shape names
+    if len(shape) != 1:
+        arr = arr.reshape(shape)
+    if not dt.isnative:  # "<" on a big-endian host (allowed dtypes are "<" or "|")
         arr = arr.astype(dt.newbyteorder("="))
     return arr
 
@@ -473,13 +489,21 @@ def _finite_float(text: str) -> float:
     return value
 
 
+#: The header parser, made once (``json.loads`` with hooks would build one per message). It
+#: keeps no state between calls that matters: its key memo only shares equal key strings.
+_JSON = json.JSONDecoder(parse_constant=_refuse_constant, parse_float=_finite_float)
+
+
 def _header(topic: str, view: memoryview) -> dict:
     if view.nbytes > _MAX_HEADER_BYTES:
         raise ProtocolError(f"{topic}: header of {view.nbytes} bytes is too large",
                             reason="header_size")
     try:
-        header = json.loads(bytes(view).decode("utf-8"), parse_constant=_refuse_constant,
-                            parse_float=_finite_float)
+        text = str(view, "utf-8")
+        if text.startswith("\ufeff"):  # as json.loads: a byte order mark is no JSON
+            raise json.JSONDecodeError("Unexpected UTF-8 BOM (decode using utf-8-sig)",
+                                       text, 0)
+        header = _JSON.decode(text)
     except (UnicodeDecodeError, ValueError, RecursionError) as exc:  # nesting bombs too
         raise ProtocolError(f"{topic}: header is not JSON: {_short(str(exc))}",
                             reason="header_json") from None
@@ -579,20 +603,22 @@ def decode(frames: Sequence[Any], *, types: Iterable[str] | None = None) -> tupl
         return topic, record
     schema = _BY_NAME[kind]
     arrays = _arrays(kind, specs, parts, schema.arrays)
-    unknown = set(fields) - set(schema.scalars)
-    if unknown:
+    scalars = schema.scalars
+    if not fields.keys() <= scalars.keys():
+        unknown = set(fields) - set(scalars)
         raise ProtocolError(f"{kind}: unknown fields {_short(sorted(unknown))}", reason="field")
-    absent = (schema.required - set(schema.arrays)) - set(fields)
-    if absent:
+    if not schema.required_scalars <= fields.keys():
+        absent = schema.required_scalars - set(fields)
         raise ProtocolError(f"{kind}: missing fields {sorted(absent)}", reason="field")
     values: dict[str, Any] = {}
-    scalars = schema.scalars
     for name, raw in fields.items():
         want = scalars[name]
         # The common case needs no conversion (the checks below would return raw as it is);
         # the message text is only made for the rest.
         if _SAME_TYPE.get(type(raw)) == want and (want != "int" or _INT_MIN <= raw <= _INT_MAX):
             values[name] = raw
+        elif want == "float" and type(raw) is str and raw in _NON_FINITE_TEXT:
+            values[name] = float(raw)
         else:
             values[name] = _scalar(want, raw, f"{kind}.{name}")
     for name in schema.finite:

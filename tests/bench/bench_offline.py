@@ -8,10 +8,12 @@ spacing), 50 frames per second, a static frequency response drawn once from the 
 tapped delay line (TS 36.101 Annex B.2, Table B.2.1-3; Rayleigh taps, seeded) at 25 dB with
 1 dB of Gaussian estimation noise per tone and frame, and a 10 dB fade of a quarter of the
 band from 4 s to 8 s so that change control has work to do. ``replay_fps_vs_ref`` is the
-frames replayed in one reference time (``reference.py``), sampled around each pass. The two
-parts of a replay are also timed alone (information): reading and decoding the recording
-(``replay_read_fps``) and the link controller on the decoded estimates
-(``replay_controller_fps``), to show where the time goes.
+frames replayed in one reference time (``reference.py``), sampled around each pass.
+``replay_fps_nopredict`` is the same replay with ``estimator.predict_s: 0`` (no channel
+prediction), so the prediction's share of the time shows. The two parts of a replay are also
+timed alone (information): reading and decoding the recording (``replay_read_fps``) and the
+link controller on the decoded estimates (``replay_controller_fps``), to show where the time
+goes.
 """
 
 from __future__ import annotations
@@ -34,6 +36,8 @@ from brimline.drivers.link.frame import make_plan
 GOALS = {
     "replay_fps": ">= 5000 frames/s (estimate recording, 200 tones, as fast as possible)",
     "replay_fps_vs_ref": "frames replayed per reference time (higher is better)",
+    "replay_fps_nopredict": "info: the same replay with estimator.predict_s: 0, frames/s",
+    "replay_fps_nopredict_vs_ref": "info: frames replayed without prediction per reference time",
     "replay_read_fps": "info: reading and decoding the recording alone, frames/s",
     "replay_read_fps_vs_ref": "info: frames read per reference time",
     "replay_controller_fps": "info: the link controller alone on decoded estimates, frames/s",
@@ -41,6 +45,7 @@ GOALS = {
 }
 
 OVERRIDES = {"link.used_tones_half": 115}
+NO_PREDICTION = {**OVERRIDES, "estimator.predict_s": 0}
 FRAME_S = 0.02
 # 3GPP TS 36.101 Table B.2.1-3 (EVA): delays in ns, relative powers in dB.
 EVA_NS = (0, 30, 150, 310, 370, 710, 1090, 1730, 2510)
@@ -88,7 +93,7 @@ def run(quick: bool = False) -> dict[str, float]:
     frames = 1000 if quick else 3000
     passes = 2 if quick else 3
     ref = Reference()
-    best = {"replay": 0.0, "read": 0.0, "controller": 0.0}
+    best = {"replay": 0.0, "nopredict": 0.0, "read": 0.0, "controller": 0.0}
     with tempfile.TemporaryDirectory() as folder:
         path = Path(folder) / "bench.brlog"
         n_tones = _write_recording(path, frames)
@@ -96,9 +101,12 @@ def run(quick: bool = False) -> dict[str, float]:
         estimates = _read(path)
         mark = ref.mark()
         for _ in range(passes):
-            # The whole replay, then its two main parts alone, with the reference between.
+            # The whole replay (with and without prediction), then its two main parts alone,
+            # with the reference between.
             for name, work in (("replay", lambda: replay_offline(None, path,
                                                                  overrides=OVERRIDES)),
+                               ("nopredict", lambda: replay_offline(None, path,
+                                                                    overrides=NO_PREDICTION)),
                                ("read", lambda: _read(path)),
                                ("controller", lambda: _decide(estimates))):
                 ref.sample(3)
@@ -107,7 +115,8 @@ def run(quick: bool = False) -> dict[str, float]:
                 best[name] = max(best[name], frames / (time.perf_counter() - t0))
             ref.sample(3)
     out = {}
-    for name, key in (("replay", "replay_fps"), ("read", "replay_read_fps"),
+    for name, key in (("replay", "replay_fps"), ("nopredict", "replay_fps_nopredict"),
+                      ("read", "replay_read_fps"),
                       ("controller", "replay_controller_fps")):
         out[key] = best[name]
         out[f"{key}_vs_ref"] = ref.rate_ratio(best[name], mark)
@@ -116,4 +125,4 @@ def run(quick: bool = False) -> dict[str, float]:
 
 if __name__ == "__main__":
     for key, value in run(quick=True).items():
-        print(f"{key:20s} {value:10.4g}   {GOALS[key]}")
+        print(f"{key:28s} {value:10.4g}   {GOALS[key]}")
