@@ -61,7 +61,10 @@ loading target, whose gap already includes the configured target margin):
    means a map stays in force for at least ``1 / max_maps_per_s``; without lookahead, tones in
    a fade sink below the raw gap while the next map waits. On a static or slowly drifting
    channel the slope is near zero and nothing changes. The trade-off is visible in the
-   benchmark (``fading1hz_*``: outage and rate with and without change control).
+   benchmark (``fading1hz_*``: outage and rate with and without change control). Where the
+   estimator already predicted the channel (``Tracked.predicted_s`` > 0: each tone at its
+   predicted worst over the map's life) there is no lookahead: extrapolating the slope of a
+   prediction again would count a fall twice.
 
 9. **Outer loop offset** (``decide(..., offset_db=...)``, from the link controller's outer
    margin loop): every tone's effective SNR is lowered by the offset after the lookahead (so a
@@ -374,7 +377,10 @@ class ChangeControl:
         if not (math.isfinite(eff_db.sum()) and math.isfinite(snr_sum)):
             return self._hold("bad_input", "tracked SNR is not finite: map kept")
         offset_db = float(offset_db) if math.isfinite(offset_db) else 0.0
-        eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s) - offset_db
+        # where the estimator predicted the channel, its worst over the map's life replaces
+        # the extrapolation of the slope (which would count a fall twice)
+        lookahead_s = 0.0 if tracked.predicted_s > 0 else self.lookahead_s
+        eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s, lookahead_s) - offset_db
         self._offset_now = offset_db
         self._eff_now = eff_db   # what a map made on this call is made on
         mean_db = float(snr_sum / tracked.snr_db.size)
@@ -543,7 +549,7 @@ class ChangeControl:
         shift = _median(delta)
         return shift, int(np.count_nonzero(np.abs(delta - shift) <= self.common_drop_db))
 
-    def _ahead(self, eff_db: np.ndarray, now_s: float) -> np.ndarray:
+    def _ahead(self, eff_db: np.ndarray, now_s: float, lookahead_s: float) -> np.ndarray:
         prev = self._prev_eff_db
         dt = now_s - self._prev_s
         if prev is None or prev.size != eff_db.size or not dt > 0:
@@ -556,14 +562,14 @@ class ChangeControl:
             # level), not a trend to extrapolate: that tone's slope starts afresh.
             self._slope_db_s[np.abs(step_db) > self.down_deep_db] = 0.0
         self._prev_eff_db, self._prev_s = eff_db, now_s
-        if self.lookahead_s == 0.0:
+        if lookahead_s == 0.0:
             return eff_db
         # pooled over neighbouring tones (a fade moves them together, noise does not); zeros
         # beyond the band's edges, so the edge tones are extrapolated a little less
         half = _SLOPE_KERNEL.size // 2
         slope = np.convolve(self._slope_db_s, _SLOPE_KERNEL)[half:half + eff_db.size]
         # at most an emergency drop: a step (a confirmed drop) is not a trend to follow
-        return eff_db - np.minimum(self.lookahead_s * np.maximum(-slope, 0.0),
+        return eff_db - np.minimum(lookahead_s * np.maximum(-slope, 0.0),
                                    self.emergency_drop_db)
 
     def _upgrade_due(self, now_s: float) -> bool:
