@@ -273,6 +273,7 @@ class Estimator:
         self._noise_var = None
         self._expect_db = None   # this frame's SNR as the channel prediction expected it
         self._explained = False  # the estimates' channel and noise give their SNR
+        self._inert = False      # the estimates carry no channel to predict
         self._var_moving_db2 = None  # spread of single frames about that expectation
         self._predictor.reset()
 
@@ -309,11 +310,18 @@ class Estimator:
             p = self._predictor
             if self._frames == 1:
                 self._explained = _explains(estimate)
-            p.update(estimate.time_s, estimate.channel, estimate.tone_index,
-                     estimate.noise_var if self._explained else None)
+                # a source that sends no channel (the same value on every tone) has nothing to
+                # predict: its predicted change and fall are 0, without the predictor's work
+                channel = estimate.channel
+                self._inert = not self._explained and bool(np.all(channel == channel[0]))
             self._noise_var = estimate.noise_var
             if self._var_moving_db2 is None:
                 self._var_moving_db2 = self._var_db2.copy()
+            if self._inert:
+                self._expect_db = self._mean_db.copy() if self._frames > 1 else None
+                return
+            p.update(estimate.time_s, estimate.channel, estimate.tone_index,
+                     estimate.noise_var if self._explained else None)
             # the spread about the one-frame prediction serves the relative fall only
             change = (None if self._explained
                       else p.change_db(p.frame_interval_s, estimate.noise_var))
@@ -595,8 +603,11 @@ class Estimator:
         mean_std_db = np.sqrt(self._p11)
         worst = (self._predictor.worst_snr_db() if self.predict_s > 0 and self._explained
                  else None)
-        fall = (self._predictor.fall_db(self._noise_var)
-                if self.predict_s > 0 and worst is None else None)
+        if self.predict_s > 0 and self._inert:
+            fall = np.zeros(snr_db.size) if self._frames > 1 else None
+        else:
+            fall = (self._predictor.fall_db(self._noise_var)
+                    if self.predict_s > 0 and worst is None else None)
         if fall is None:
             spread = self._var_db2 + self._p11
         else:
