@@ -299,7 +299,8 @@ def band_basis(tone_index: np.ndarray, width: float) -> np.ndarray:
     dim = min(n, int(round(2.0 * width * (bins.max() - bins.min() + 1))) + 2)
     diff = bins[:, None] - bins[None, :]
     with np.errstate(invalid="ignore", divide="ignore"):
-        kernel = np.where(diff == 0, 2.0 * width, np.sin(2 * np.pi * width * diff) / (np.pi * diff))
+        kernel = np.where(diff == 0, 2.0 * width,
+                          np.sin(2 * np.pi * width * diff) / (np.pi * diff))
     _, vectors = eigh(kernel, subset_by_index=[n - dim, n - 1])
     if len(_BASES) >= 16:
         _BASES.clear()
@@ -337,7 +338,8 @@ def clarke_weights(doppler_x: float, window: int, ahead: np.ndarray,
     lags = np.arange(window, dtype=np.float64)
     r_mat = j0(doppler_x * (lags[:, None] - lags[None, :]))
     r_mat[np.diag_indices(window)] += ridge
-    rhs = j0(doppler_x * (np.asarray(ahead, dtype=np.float64)[None, :] + (window - 1) - lags[:, None]))
+    ahead = np.asarray(ahead, dtype=np.float64)
+    rhs = j0(doppler_x * (ahead[None, :] + (window - 1) - lags[:, None]))
     return np.linalg.solve(r_mat, rhs).T
 
 
