@@ -408,6 +408,10 @@ class Tracked:
         Radio tuning of the tracked frames in hertz (NaN when unknown).
     time_s : float
         Source time of the last accepted frame, seconds.
+    predicted_s : float
+        How far ahead of ``time_s`` ``effective_snr_db`` already looks (the channel
+        prediction's horizon, each tone at its predicted worst), seconds; 0 when it is the
+        present view. Change control does not extrapolate such a view again.
     """
 
     plan_id: str
@@ -420,6 +424,7 @@ class Tracked:
     mean_std_db: np.ndarray = None
     center_hz: float = math.nan
     time_s: float = math.nan
+    predicted_s: float = 0.0
 
     def __post_init__(self) -> None:
         d = self.__dict__   # set once, before anyone sees the record (as in Estimate)

@@ -340,8 +340,9 @@ class TestFadingLoop:
 
     def test_prediction_cuts_the_errors_of_fading(self, plan):
         """Without an outer loop, loading each tone for its worst predicted SNR over the map's
-        life (the default) loses far fewer frames than loading the tracked SNR
-        (``predict_s`` 0), at little cost in goodput, on the same realisation."""
+        life (the default) both loses fewer frames and delivers more than loading the tracked
+        SNR (``predict_s`` 0) on the same realisation: the prediction is nearer the SNR the
+        frames meet than the tracked SNR's back-off is."""
         loader = self._loader(plan)
         figs = {}
         for horizon_s in (0.0, EstimatorSection().predict_s):
@@ -351,8 +352,8 @@ class TestFadingLoop:
             with SimDriver(plan=plan, **self.KW) as sim:
                 figs[horizon_s] = run_closed_loop(sim, 150, controller=ctl)
         plain, predicted = figs[0.0], figs[EstimatorSection().predict_s]
-        assert predicted.frame_error_rate < 0.5 * plain.frame_error_rate
-        assert predicted.goodput_bps > 0.85 * plain.goodput_bps
+        assert predicted.frame_error_rate < 0.75 * plain.frame_error_rate
+        assert predicted.goodput_bps > 1.1 * plain.goodput_bps
 
     def test_acks_bring_the_lead_down_to_what_the_transmitter_meets(self, plan):
         """The closed loop's transmitter applies a map from the frame after it was made: the

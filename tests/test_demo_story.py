@@ -111,7 +111,11 @@ class TestTheStory:
             assert rec["bits_after"] == m.total_bits and rec["time"]  # wall time alongside
             assert rec["kind"] in ("reload", "bit_swap", "emergency") and rec["cause"]
             assert rec["margin_target_db"] == demo["config"].loading.margin_db
-            assert rec["margin_achieved_db"] >= rec["margin_target_db"] - 0.05
+            # a bit swap repairs only the tones below the downshift margin and keeps the
+            # others as they were: its margin lies between that and the target
+            floor = rec["margin_target_db"] + (demo["config"].change.downshift_margin_db
+                                               if rec["kind"] == "bit_swap" else 0.0)
+            assert rec["margin_achieved_db"] >= floor - 0.05
             assert f"at link time {rec['link_time_s']:.2f} s" in rec["message"]
         assert [m["bits_before"] for m in maps[1:]] == [m["bits_after"] for m in maps[:-1]]
 
@@ -163,9 +167,13 @@ class TestTheStory:
         # before the tones under it, which the estimator confirms a few frames later)
         burst = [m for m in _events(demo, "map")
                  if start["link_time_s"] <= m["link_time_s"] < sim.interferer_start_s + 0.5]
-        for m in burst:
-            assert m["kind"] == "reload" and m["cause"] in SWAP_LIMITS, m
-            assert "bit swap" in m["reason"]
+        # the first is a reload that names the limit; a tone of the beacon's skirt that
+        # sinks a few frames later may be repaired on its own (a bit swap), near the beacon
+        assert burst[0]["kind"] == "reload" and burst[0]["cause"] in SWAP_LIMITS, burst[0]
+        assert "bit swap" in burst[0]["reason"]
+        for m in burst[1:]:
+            assert m["kind"] in ("reload", "bit_swap"), m
+            assert abs(_worst_tone(m["reason"]) - sim.interferer_tone) < 15, m
         assert burst[-1]["bits_after"] < start["bits_before"]
         assert any(abs(_worst_tone(m["reason"]) - sim.interferer_tone) < 15 for m in burst)
         # the tones around the beacon are emptied; what goes on the README is checked here

@@ -58,16 +58,16 @@ EVA_DB = (0.0, -1.5, -1.4, -3.6, -0.6, -9.1, -7.0, -12.0, -16.9)
 
 #: Settings of each case (over the recording's config) and the digest recorded for it.
 CASES = {
-    "demo": ({}, "1e457ba14e171f28"),
-    "eventful": ({}, "be54495160d9c451"),
+    "demo": ({}, "72962f8bf7fb87ad"),
+    "eventful": ({}, "13ae8e279eb429cc"),
     "eventful_trend": ({"estimator.trend_tau_s": 0.5, "change.lookahead_s": 0.0},
-                       "14b3f9b03fe63065"),
+                       "0222fea3eaafe43f"),
     "eventful_plain": ({"estimator.lag_sigmas": 0.0, "estimator.tone_window": 0},
-                       "601bdcfde93f7252"),
+                       "158d0288ce3f02b6"),
     "eventful_margin": ({"loading.mode": "margin", "loading.target_bits": 450},
-                        "a2044809e0cd8234"),
+                        "8085033da1efecb9"),
     "eventful_waterfill": ({"loading.mode": "waterfill", "loading.cap_db": 3.0},
-                           "cf3461b306233eca"),
+                           "b9ab88d26ba5b1e2"),
 }
 
 

@@ -61,7 +61,10 @@ loading target, whose gap already includes the configured target margin):
    means a map stays in force for at least ``1 / max_maps_per_s``; without lookahead, tones in
    a fade sink below the raw gap while the next map waits. On a static or slowly drifting
    channel the slope is near zero and nothing changes. The trade-off is visible in the
-   benchmark (``fading1hz_*``: outage and rate with and without change control).
+   benchmark (``fading1hz_*``: outage and rate with and without change control). Where the
+   estimator already predicted the channel (``Tracked.predicted_s`` > 0: each tone at its
+   predicted worst over the map's life) there is no lookahead: extrapolating the slope of a
+   prediction again would count a fall twice.
 
 9. **Outer loop offset** (``decide(..., offset_db=...)``, from the link controller's outer
    margin loop): every tone's effective SNR is lowered by the offset after the lookahead (so a
@@ -377,7 +380,10 @@ class ChangeControl:
         if not (math.isfinite(_sum(eff_db)) and math.isfinite(snr_sum)):
             return self._hold("bad_input", "tracked SNR is not finite: map kept")
         offset_db = float(offset_db) if math.isfinite(offset_db) else 0.0
-        eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s)
+        # where the estimator predicted the channel, its worst over the map's life replaces
+        # the extrapolation of the slope (which would count a fall twice)
+        lookahead_s = 0.0 if tracked.predicted_s > 0 else self.lookahead_s
+        eff_db = self._ahead(np.minimum(eff_db, _MAX_SNR_DB), now_s, lookahead_s)
         if offset_db != 0.0 or math.copysign(1.0, offset_db) < 0:
             eff_db = eff_db - offset_db   # x - (+0.0) is x: no copy without an outer loop
         self._offset_now = offset_db
@@ -554,7 +560,7 @@ class ChangeControl:
         shift = _median(delta)
         return shift, int(np.count_nonzero(np.abs(delta - shift) <= self.common_drop_db))
 
-    def _ahead(self, eff_db: np.ndarray, now_s: float) -> np.ndarray:
+    def _ahead(self, eff_db: np.ndarray, now_s: float, lookahead_s: float) -> np.ndarray:
         prev = self._prev_eff_db
         dt = now_s - self._prev_s
         if prev is None or prev.size != eff_db.size or not dt > 0:
@@ -571,7 +577,7 @@ class ChangeControl:
             np.abs(step_db, out=step_db)
             self._slope_db_s[step_db > self.down_deep_db] = 0.0
         self._prev_eff_db, self._prev_s = eff_db, now_s
-        if self.lookahead_s == 0.0:
+        if lookahead_s == 0.0:
             return eff_db
         # pooled over neighbouring tones (a fade moves them together, noise does not); zeros
         # beyond the band's edges, so the edge tones are extrapolated a little less
@@ -583,7 +589,7 @@ class ChangeControl:
         # most an emergency drop (a step, a confirmed drop, is not a trend to follow)
         np.negative(slope, out=slope)
         np.maximum(slope, 0.0, out=slope)
-        slope *= self.lookahead_s
+        slope *= lookahead_s
         np.minimum(slope, self.emergency_drop_db, out=slope)
         return eff_db - slope
 

@@ -68,17 +68,24 @@ Why these choices:
   ``max(outlier_db, outlier_sigmas * sqrt(var + predicted variance))``. It is off by default:
   with it, the estimation noise of a static channel moves the slope and the maps churn.
 
-* **Channel prediction** (``predict_s > 0``): a map made now is in force from ``lead`` frames
-  on for at least the shortest map life, so on a fading channel the SNR it meets is not today's.
-  A :class:`~brimline.daemon.core.predictor.ChannelPredictor` follows each tone's *complex*
-  channel (a path through a notch stays smooth there, where a fit in dB or in power does not)
-  and the effective SNR falls by each tone's worst predicted fall over ``predict_s``, less
-  ``predict_sigmas`` measured prediction errors. The back-off then covers only the part of the
-  frames' spread that the prediction does not explain: ``var`` is replaced by the smaller of
-  itself and the spread of the frames about what the prediction expected one frame ahead. A tone
-  holding back an outlier keeps the plain view, and a confirmed jump restarts that tone's line
-  (a step is no trend). On a static channel the prediction is the held value and nothing
-  changes; estimates without a channel that moves (``channel`` all ones) leave it inert.
+* **Channel prediction** (``predict_s > 0``): a map made now is in force from the next frames
+  on for at least the shortest map life, so on a fading channel the SNR it meets is not
+  today's. A :class:`~brimline.daemon.core.predictor.ChannelPredictor` follows each tone's
+  *complex* channel (a path through a notch stays smooth there, where a fit in dB or in power
+  does not). Where the estimates' channel and noise variance give their SNR (checked on the
+  first frame of each tracking; a real receiver's do), the effective SNR *is* the predictor's
+  worst predicted SNR over ``predict_s`` (predicted channel, less ``predict_sigmas`` measured
+  prediction errors, over the noise variance smoothed in time and floored by its neighbours):
+  the dB smoothing above lags a fade and carries the per-frame noise of the noise estimate,
+  which the channel and a slowly moving noise floor do not. Tones holding back an outlier keep
+  the plain view, and a confirmed jump restarts that tone's prediction (a step is no trend).
+  ``Tracked.predicted_s`` then says so, and change control does not extrapolate again. While
+  the channel is not predictable over the horizon (fading faster than a fraction of it: the
+  predictor's measured far-horizon error above half the channel's power; also in the first
+  frames, before that is measured) the plain view serves. Sources that send only an SNR (a
+  channel of ones) get the plain view throughout, lowered by the predicted relative fall
+  (``var`` is then replaced by the smaller of itself and the spread of the frames about what
+  the prediction expected one frame ahead), which a channel that does not move leaves at 0.
 
 Frames that cannot be used are dropped and counted by reason (see :data:`REJECT_REASONS`); the
 state stays as it was.
@@ -120,6 +127,7 @@ ESTIMATOR_LIMITS = MappingProxyType({
     "predict_s": PREDICTOR_LIMITS["horizon_s"],
     "predict_window": PREDICTOR_LIMITS["window"],
     "predict_sigmas": PREDICTOR_LIMITS["allowance_sigmas"],
+    "predict_delay_width": PREDICTOR_LIMITS["delay_width"],
 })
 
 _min = np.minimum.reduce
@@ -196,13 +204,17 @@ class Estimator:
         the innovation is taken, so a steady fade is followed without lag.
     predict_s : float
         Horizon of the per-tone complex channel prediction, seconds after the newest estimate
-        (the lead plus a map's shortest life, ``1 / change.max_maps_per_s``); the effective SNR
-        falls by each tone's worst predicted fall over it; 0 turns it off.
+        (a map's shortest life, ``1 / change.max_maps_per_s``, its first frame one frame
+        interval on); each tone is loaded on its worst predicted SNR over it; 0 turns it off.
     predict_window : int
-        Estimates in each tone's least-squares line of the prediction.
+        Estimates each prediction is made from.
     predict_sigmas : float
         Measured prediction errors (beyond the one-frame error) taken off the predicted channel
         magnitude.
+    predict_delay_width : float
+        Half-width of the channel's delay window times the tone spacing, cycles per tone:
+        estimates are projected on the channels of that delay spread before prediction
+        (:func:`~brimline.daemon.core.predictor.band_basis`); 0 turns it off.
 
     Notes
     -----
@@ -224,8 +236,9 @@ class Estimator:
                  frame_outlier_fraction: float = 0.5, stale_s: float = 5.0,
                  tone_window: int = 2, tone_agree_db: float = 2.0,
                  trend_tau_s: float = 0.0, lag_sigmas: float = 2.0,
-                 tau_min_s: float = 0.015, predict_s: float = 0.12,
-                 predict_window: int = 5, predict_sigmas: float = 0.5) -> None:
+                 tau_min_s: float = 0.015, predict_s: float = 0.1,
+                 predict_window: int = 8, predict_sigmas: float = 0.5,
+                 predict_delay_width: float = 0.075) -> None:
         # locals() holds exactly the keyword arguments here, before any other name is bound.
         check_values(locals(), ESTIMATOR_LIMITS, prefix="estimator.")
         self.tau_s = float(tau_s)
@@ -245,8 +258,10 @@ class Estimator:
         self.predict_s = float(predict_s)
         self.predict_window = int(predict_window)
         self.predict_sigmas = float(predict_sigmas)
+        self.predict_delay_width = float(predict_delay_width)
         self._predictor = ChannelPredictor(horizon_s=self.predict_s, window=self.predict_window,
-                                           allowance_sigmas=self.predict_sigmas)
+                                           allowance_sigmas=self.predict_sigmas,
+                                           delay_width=self.predict_delay_width)
         self._counters = dict.fromkeys(
             ("accepted",) + REJECT_REASONS
             + ("tone_outliers", "tone_changes", "reset_plan", "reset_tuning", "reset_stale",
@@ -276,6 +291,8 @@ class Estimator:
         self._pending = False          # some tone holds pending outlier evidence
         self._noise_var = None
         self._expect_db = None   # this frame's SNR as the channel prediction expected it
+        self._explained = False  # the estimates' channel and noise give their SNR
+        self._inert = False      # the estimates carry no channel to predict
         self._var_moving_db2 = None  # spread of single frames about that expectation
         self._predictor.reset()
 
@@ -310,11 +327,23 @@ class Estimator:
     def _predict(self, estimate: Estimate) -> None:
         if self.predict_s > 0:
             p = self._predictor
-            p.update(estimate.time_s, estimate.channel, estimate.tone_index)
+            if self._frames == 1:
+                self._explained = _explains(estimate)
+                # a source that sends no channel (the same value on every tone) has nothing to
+                # predict: its predicted change and fall are 0, without the predictor's work
+                channel = estimate.channel
+                self._inert = not self._explained and bool(np.all(channel == channel[0]))
             self._noise_var = estimate.noise_var
             if self._var_moving_db2 is None:
                 self._var_moving_db2 = self._var_db2.copy()
-            change = p.change_db(p.frame_interval_s, estimate.noise_var)
+            if self._inert:
+                self._expect_db = self._mean_db.copy() if self._frames > 1 else None
+                return
+            p.update(estimate.time_s, estimate.channel, estimate.tone_index,
+                     estimate.noise_var if self._explained else None)
+            # the spread about the one-frame prediction serves the relative fall only
+            change = (None if self._explained
+                      else p.change_db(p.frame_interval_s, estimate.noise_var))
             self._expect_db = None if change is None else self._mean_db + change
 
     def reset(self, reason: str = "other") -> None:
@@ -588,7 +617,13 @@ class Estimator:
             snr_db.setflags(write=False)
         std_db = np.sqrt(self._var_db2)
         mean_std_db = np.sqrt(self._p11)
-        fall = self._predictor.fall_db(self._noise_var) if self.predict_s > 0 else None
+        worst = (self._predictor.worst_snr_db() if self.predict_s > 0 and self._explained
+                 else None)
+        if self.predict_s > 0 and self._inert:
+            fall = np.zeros(snr_db.size) if self._frames > 1 else None
+        else:
+            fall = (self._predictor.fall_db(self._noise_var)
+                    if self.predict_s > 0 and worst is None else None)
         if fall is None:
             spread = self._var_db2 + self._p11
         else:
@@ -598,7 +633,13 @@ class Estimator:
         np.sqrt(spread, out=spread)
         spread *= self.backoff_sigmas
         effective = np.subtract(snr_db, spread, out=spread)
-        if fall is not None:
+        if worst is not None:
+            # the predicted worst SNR itself (channel and smoothed noise; the measured
+            # prediction error is its back-off); tones holding back an outlier keep the plain
+            # view (a prediction through one odd frame is no trend)
+            np.copyto(worst, effective, where=self._pend_n > 0)
+            effective = worst
+        elif fall is not None:
             # Tones holding back an outlier (a jump not yet confirmed) keep the plain view: a
             # line through one odd frame is no trend.
             fall[self._pend_n > 0] = 0.0
@@ -610,7 +651,19 @@ class Estimator:
             plan_id=self._plan_id, tone_index=self._tones, snr_db=snr_db, std_db=std_db,
             effective_snr_db=effective, mean_std_db=mean_std_db,
             age_s=max(0.0, float(now_s) - self._accepted_now_s), frames=self._frames,
-            center_hz=self._center_hz, time_s=self._time_s)
+            center_hz=self._center_hz, time_s=self._time_s,
+            predicted_s=self.predict_s if worst is not None else 0.0)
+
+
+def _explains(estimate: Estimate) -> bool:
+    """Whether the estimate's channel and noise variance give its SNR (within 0.5 dB on every
+    tone): then the predicted channel over the smoothed noise is the SNR to load on. Sources
+    that send only an SNR (a channel of ones) use the predicted fall instead."""
+    h = estimate.channel.astype(np.complex128)
+    power = h.real * h.real + h.imag * h.imag
+    with np.errstate(divide="ignore", invalid="ignore"):
+        implied = 10.0 * np.log10(power / estimate.noise_var)
+    return bool(np.all(np.abs(implied - estimate.snr_db) < 0.5))
 
 
 def _same_tuning(a: float, b: float) -> bool:

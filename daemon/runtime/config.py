@@ -621,15 +621,20 @@ class EstimatorSection(Section):
     predict_s: float = Field(
         _EST["predict_s"],
         description="far end of the horizon over which each tone's complex channel is "
-                    "predicted (newest estimate to the end of the next map's life), s; the "
-                    "effective SNR falls by the worst predicted fall over it; 0: off")
+                    "predicted (newest estimate to the end of the next map's shortest life), "
+                    "s; each tone is loaded on its worst predicted SNR over it; 0: off")
     predict_window: int = Field(
         _EST["predict_window"],
-        description="estimates in each tone's least-squares line of the channel prediction")
+        description="estimates each prediction of the channel is made from")
     predict_sigmas: float = Field(
         _EST["predict_sigmas"],
         description="measured prediction errors (beyond the one-frame error) taken off the "
                     "predicted channel magnitude")
+    predict_delay_width: float = Field(
+        _EST["predict_delay_width"],
+        description="half-width of the channel's delay window times the tone spacing "
+                    "(cycles per tone): estimates are projected on the channels of that "
+                    "delay spread before prediction (0.075: 5 us at 15 kHz tones); 0: off")
 
     @field_validator(*ESTIMATOR_LIMITS)
     @classmethod
