@@ -29,13 +29,15 @@ def _tables(rng, frames=7, maps=3) -> ExportTables:
                    "snr_db": rng.normal(20, 5, (frames, n)).astype(np.float32)},
         decisions={"frame": np.arange(frames), "time_s": np.arange(frames) * 0.02,
                    "kind": ["keep", "rejected", "reload", "keep", "bit_swap", "keep", "keep"],
+                   "cause": ["keep", "stale_frame", "gain", "", "sag", "keep", "keep"],
                    "reason": ["a, with a comma", 'quote "x"', "", "é", "b", "c", "d"],
                    "bits_per_symbol": np.arange(frames) * 10,
                    "margin_db": [math.nan, math.inf, -math.inf, 0.1, 1e-300, -2.5, 3.0],
                    "live_margin_db": rng.normal(0, 1, frames), "seq": np.arange(frames) - 1,
                    "fallback": [False, True, False, False, True, False, False]},
         maps={"seq": np.arange(maps), "frame": [0, 2, 4], "time_s": [0.0, 0.04, 0.08],
-              "kind": ["reload", "fallback", "bit_swap"], "reason": ["x", "y", "z"],
+              "kind": ["reload", "fallback", "bit_swap"], "cause": ["gain", "fallback", "sag"],
+              "reason": ["x", "y", "z"],
               "effective_frame": [4, 6, 8], "total_bits": [12, 12, 14],
               "margin_db": [1.5, math.nan, 0.25], "gap_db": [9.8] * maps,
               "fallback": [False, True, False],
@@ -63,6 +65,20 @@ def test_round_trip_is_exact(tmp_path, rng, suffix):
     written = write_export(tmp_path / f"run{suffix}", tables)
     assert all(p.exists() for p in written)
     _assert_same(tables, read_export(tmp_path / f"run{suffix}"))
+
+
+@pytest.mark.parametrize("suffix", [".npz", ".csv"])
+def test_an_export_without_the_cause_column_still_reads(tmp_path, rng, suffix):
+    """Exports written before decisions and maps carried ``cause`` read back as they were."""
+    full = _tables(rng)
+    older = ExportTables(
+        tone_index=full.tone_index, estimates=full.table("estimates"),
+        decisions={k: v for k, v in full.table("decisions").items() if k != "cause"},
+        maps={k: v for k, v in full.table("maps").items() if k != "cause"})
+    write_export(tmp_path / f"old{suffix}", older)
+    back = read_export(tmp_path / f"old{suffix}")
+    _assert_same(older, back)
+    assert "cause" not in back.table("decisions") and "cause" not in back.table("maps")
 
 
 def test_csv_is_three_files_with_tone_columns(tmp_path, rng):

@@ -16,8 +16,8 @@ import numpy as np
 import pytest
 
 from brimline.daemon.errors import ConfigError, InputError, SourceError
-from brimline.daemon.runtime.assemble import build_controller, build_core
 from brimline.daemon.runtime import offline
+from brimline.daemon.runtime.assemble import build_controller, build_core
 from brimline.daemon.runtime.config import load_config
 from brimline.daemon.runtime.offline import (
     MapEvent,
@@ -27,6 +27,7 @@ from brimline.daemon.runtime.offline import (
     compare_results,
     replay_offline,
     result_lines,
+    result_tables,
     source_epoch,
 )
 from brimline.daemon.wire import codec
@@ -153,6 +154,17 @@ class TestReplayOffline:
         assert all(m["cause"] and m["cause"] != "keep" for m in maps)
         rejected = [x for x in decisions if x["kind"] == "rejected"]
         assert all(x["cause"] == x["reason"] for x in rejected)
+
+    def test_export_tables_carry_the_same_causes_as_the_lines(self, demo_run):
+        """``--export`` tables name the rule behind every decision and map, as the lines do."""
+        tables = result_tables(demo_run)
+        lines = list(result_lines(demo_run))
+        maps = [x["cause"] for x in lines if x["type"] == "map"]
+        assert list(tables.table("maps")["cause"]) == maps
+        decisions = tables.table("decisions")
+        shown = {(x["frame"], x["cause"]) for x in lines if x["type"] == "decision"}
+        assert shown <= set(zip(decisions["frame"].tolist(), decisions["cause"].tolist()))
+        assert len(decisions["cause"]) == len(demo_run.timeline)
 
     def test_result_survives_pickling(self):
         """Sweep tasks return results from worker processes: the result must pickle."""

@@ -792,6 +792,8 @@ def result_tables(result: OfflineResult) -> ExportTables:
     maps = {
         "seq": [m.seq for m in result.maps], "frame": [e.frame for e in result.events],
         "time_s": [e.time_s for e in result.events], "kind": [e.kind for e in result.events],
+        "cause": [(result.changes[k].cause if k < len(result.changes) else "")
+                  for k in range(len(result.events))],
         "reason": [e.reason for e in result.events],
         "effective_frame": [m.effective_frame for m in result.maps],
         "total_bits": [m.total_bits for m in result.maps],
@@ -804,6 +806,7 @@ def result_tables(result: OfflineResult) -> ExportTables:
                       else np.zeros((0, n), np.float32)),
     }
     decisions = {"frame": tl.frame, "time_s": tl.time_s, "kind": list(tl.kind),
+                 "cause": list(tl.cause) if tl.cause else [""] * len(tl),
                  "reason": list(tl.reason), "bits_per_symbol": tl.bits_per_symbol,
                  "margin_db": tl.margin_db, "live_margin_db": tl.live_margin_db, "seq": tl.seq,
                  "fallback": tl.fallback}

@@ -5,12 +5,13 @@ An export holds three tables (:class:`ExportTables`), each a mapping of column n
 ``estimates`` (one row per replayed estimate)
     ``frame``, ``time_s``, ``snr_db`` (frames x tones, dB, when the run kept it).
 ``decisions`` (one row per replayed estimate)
-    ``frame``, ``time_s``, ``kind``, ``reason``, ``bits_per_symbol``, ``margin_db``,
-    ``live_margin_db``, ``seq``, ``fallback``: what the controller did and the map in force
-    after it.
+    ``frame``, ``time_s``, ``kind``, ``cause``, ``reason``, ``bits_per_symbol``, ``margin_db``,
+    ``live_margin_db``, ``seq``, ``fallback``: what the controller did, the rule behind it, and
+    the map in force after it.
 ``maps`` (one row per published map)
-    ``seq``, ``frame``, ``time_s``, ``kind``, ``reason``, ``effective_frame``, ``total_bits``,
-    ``margin_db``, ``gap_db``, ``fallback``, ``bits`` and ``power_lin`` (maps x tones).
+    ``seq``, ``frame``, ``time_s``, ``kind``, ``cause``, ``reason``, ``effective_frame``,
+    ``total_bits``, ``margin_db``, ``gap_db``, ``fallback``, ``bits`` and ``power_lin``
+    (maps x tones).
 
 plus ``tone_index``, the data tones (signed FFT bins) that the per-tone columns follow.
 
@@ -48,10 +49,11 @@ __all__ = ["ExportTables", "COLUMNS", "write_export", "read_export", "write_npz"
 #: Column dtypes of each table; a 2-D column has one entry per tone.
 COLUMNS: dict[str, dict[str, str]] = {
     "estimates": {"frame": "<i8", "time_s": "<f8", "snr_db": "<f4"},
-    "decisions": {"frame": "<i8", "time_s": "<f8", "kind": "U", "reason": "U",
+    "decisions": {"frame": "<i8", "time_s": "<f8", "kind": "U", "cause": "U", "reason": "U",
                   "bits_per_symbol": "<i8", "margin_db": "<f8", "live_margin_db": "<f8",
                   "seq": "<i8", "fallback": "?"},
-    "maps": {"seq": "<i8", "frame": "<i8", "time_s": "<f8", "kind": "U", "reason": "U",
+    "maps": {"seq": "<i8", "frame": "<i8", "time_s": "<f8", "kind": "U", "cause": "U",
+             "reason": "U",
              "effective_frame": "<i8", "total_bits": "<i8", "margin_db": "<f8",
              "gap_db": "<f8", "fallback": "?", "bits": "|u1", "power_lin": "<f4"},
 }
