@@ -387,18 +387,16 @@ class Receiver:
         (1) or data (2) bins of each frame's integer offset.
 
         Gathers in mode "clip" (the bins are always in range, and the default mode checks
-        every index and buffers an ``out``). ``take`` copies a non-contiguous source first, and
-        ``spectra[:, rows]`` is one: many rows are gathered from every row and sliced after.
-        Frames with different integer offsets are gathered one at a time.
+        every index and buffers an ``out``), each from a contiguous source: ``take`` copies a
+        strided one first, and ``spectra[:, rows]`` of several frames is strided.
         """
-        first = shifts[0]
-        if all(shift == first for shift in shifts):
-            bins = self._bins_for(first)[which]
-            if 2 * len(range(*rows.indices(spectra.shape[1]))) > spectra.shape[1]:
-                return spectra.take(bins, axis=2, mode="clip")[:, rows]
-            return spectra[:, rows].take(bins, axis=2, mode="clip")
-        return np.stack([spectra[k, rows].take(self._bins_for(shift)[which], axis=1,
-                                               mode="clip") for k, shift in enumerate(shifts)])
+        part = spectra[:, rows]
+        if part.shape[0] == 1:  # one frame: contiguous
+            return part.take(self._bins_for(shifts[0])[which], axis=2, mode="clip")
+        out = np.empty(part.shape[:2] + (self._bins_for(shifts[0])[which].size,), np.complex64)
+        for k, shift in enumerate(shifts):
+            part[k].take(self._bins_for(shift)[which], axis=1, mode="clip", out=out[k])
+        return out
 
     def _frames(self, r, found, starts, eps, spectra, offsets, lookup,
                 demodulate) -> list[RxFrame]:
