@@ -457,7 +457,7 @@ class Receiver:
                 tables = table_of[members[0]]
                 # Decide with the training channel; fit level and slope with those decisions
                 # (the estimate); decide again with the leave-one-out channel (the data).
-                h_data = h_train[members].take(dp, axis=1, mode="clip")  # one per tone
+                h_data = (h_train if whole else h_train[members]).take(dp, axis=1, mode="clip")
                 decide(rows_g[:, t + 1:], h_data[:, None, :], tables, points=x_g[:, t + 1:])
                 h, h_rows, noise_var, pooled = self.fit.data_aided(
                     rows_g, x_g, known, tables.reliable_snr, hit_g, leave_one_out=demodulate)

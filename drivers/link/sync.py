@@ -113,6 +113,7 @@ class FrameSync:
         self._row_offsets = (np.arange(1 + plan.train_symbols + plan.data_symbols)
                              - (1 + plan.train_symbols) - index.mean())
         self._data_index_spread = max(float(np.sum(self._data_offsets ** 2)), 1.0)
+        self._turns = np.empty((1, plan.data_symbols), np.complex64)
         # The frames' derotated symbols and their spectra, reused by every call and grown to
         # the most frames asked for at once (a fresh 32 x 1024 complex64 array is above
         # glibc's first mmap threshold: page faults).
@@ -328,7 +329,9 @@ class FrameSync:
         common *= phase[:, t + 2:]
         # The first symbol's phase, then the phase differences of neighbours (unwrapped),
         # all in one arctan2 call; their running sum is the common phase per symbol.
-        turns = np.empty_like(common)
+        turns = self._turns[:common.shape[0]]
+        if turns.shape[0] < common.shape[0]:
+            turns = self._turns = np.empty_like(common)
         turns[:, 0] = common[:, 0]
         np.multiply(common[:, 1:], np.conj(common[:, :-1]), out=turns[:, 1:])
         cpe = np.arctan2(turns.imag, turns.real).cumsum(axis=-1)
