@@ -230,18 +230,19 @@ class HeaderDemod:
 
         Parameters
         ----------
-        head : ndarray of complex, shape (frames, train_symbols + 1, used tones)
-            Phase-corrected training rows and the header row.
-        h_train : ndarray of complex, shape (frames, used tones)
+        head : ndarray of complex, shape ([frames,] train_symbols + 1, used tones)
+            Phase-corrected training rows and the header row (the frame axis may be left out,
+            here and in the other arguments).
+        h_train : ndarray of complex, shape ([frames,] used tones)
             Channel per used tone from the training symbols.
-        hit : ndarray of bool, shape (frames, used tones)
+        hit : ndarray of bool, shape ([frames,] used tones)
             Used tones a narrowband interferer hits (erased).
-        level : ndarray of float, shape (frames, used tones)
+        level : ndarray of float, shape ([frames,] used tones)
             Local channel power per used tone (each vote is clipped to 1.5 times it).
 
         Returns
         -------
-        ndarray of float, shape (frames, HEADER_BITS)
+        ndarray of float, shape ([frames,] HEADER_BITS)
 
         Notes
         -----
@@ -251,19 +252,24 @@ class HeaderDemod:
         symbols differ was tried and dropped: in deep fades it erased good copies.)
         """
         t = self.train_symbols
-        soft = (head[:, t] * np.conj(h_train)).real * self._scramble  # contiguous from here
+        soft = (head[..., t, :] * np.conj(h_train)).real * self._scramble  # contiguous now
         bound = 1.5 * level
         np.minimum(soft, bound, out=soft)  # a clip to [-bound, bound] without np.clip's checks
         np.negative(bound, out=bound)
         np.maximum(soft, bound, out=soft)
         soft[hit] = 0.0
         reps = self._reps * HEADER_BITS
-        return soft[:, :reps].reshape(-1, self._reps, HEADER_BITS).sum(axis=1)
+        # The sum over the copies without its Python wrapper.
+        return np.add.reduce(
+            soft[..., :reps].reshape(soft.shape[:-1] + (self._reps, HEADER_BITS)), axis=-2)
 
     def known_row(self, soft_bits: np.ndarray) -> np.ndarray:
         """The header row's values on the data tones (float32), from decided ``soft_bits``
-        (shape (frames, HEADER_BITS)) whose CRC passed: they join the known rows of the
-        channel fit. Returns shape (frames, data tones)."""
-        signs = np.ones((soft_bits.shape[0], HEADER_BITS + 1), np.float32)  # last: fillers
-        signs[:, :HEADER_BITS][soft_bits < 0] = -1.0
-        return signs[:, self._header_bit_data] * self._scramble_data
+        (shape ([frames,] HEADER_BITS)) whose CRC passed: they join the known rows of the
+        channel fit. Returns shape ([frames,] data tones)."""
+        signs = np.ones(soft_bits.shape[:-1] + (HEADER_BITS + 1,), np.float32)  # last: fillers
+        np.copyto(signs[..., :HEADER_BITS], np.float32(-1.0), where=soft_bits < 0)
+        # A gather along the tone axis (a fancy index with a leading slice costs more).
+        signs = signs.take(self._header_bit_data, axis=-1, mode="clip")
+        signs *= self._scramble_data
+        return signs

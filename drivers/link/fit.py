@@ -62,6 +62,10 @@ class ChannelFit:
         lo = np.maximum(tone - NOISE_POOL_HALF, 0)
         hi = np.minimum(tone + NOISE_POOL_HALF + 1, tone.size)
         self._pool = (lo, hi, hi - lo)  # noise pool per data tone: [lo, hi) and its size
+        # Built once rather than per frame: the ones row of the constant fit over the known
+        # rows, and the pooled noise divisor per degrees of freedom (filled as they occur).
+        self._known_ones = np.ones(1 + plan.train_symbols, np.float32)
+        self._pool_divisor: dict[int, np.ndarray] = {}
 
     def data_aided(self, rows: np.ndarray, x: np.ndarray, known: int,
                    reliable_snr: np.ndarray, hit: np.ndarray, *,
@@ -70,14 +74,15 @@ class ChannelFit:
 
         Parameters
         ----------
-        rows, x : ndarray of complex64, shape (frames, rows, data tones)
-            Phase-corrected received rows and their known or decided values, per frame.
+        rows, x : ndarray of complex64, shape ([frames,] rows, data tones)
+            Phase-corrected received rows and their known or decided values, per frame (the
+            frame axis may be left out, here, in ``hit`` and in what is returned).
         known : int
             Rows known without decisions (training, plus the header when its CRC passed).
         reliable_snr : ndarray
             Per tone, the channel SNR ``|H|^2 / noise`` above which its decisions count
             (``demod.MapTables.reliable_snr``).
-        hit : ndarray of bool, shape (frames, data tones)
+        hit : ndarray of bool, shape ([frames,] data tones)
             Tones a narrowband interferer hits (kept out of the other tones' noise pools).
         leave_one_out : bool
             Make the data rows' channel the fit without that row (for the final decisions).
@@ -106,12 +111,13 @@ class ChannelFit:
         # A tone whose decision-directed SNR reads 3 dB above the need is reliable: the
         # upward bias of unreliable decisions stays below that (a cheap pre-test, per frame).
         need = (2.0 * reliable_snr) * noise_var
-        doubtful = (squared_magnitude(h) < need).any(axis=-1)
-        pooled = np.zeros(h.shape[0], bool)
-        if doubtful.any():
+        below = squared_magnitude(h) < need
+        pooled = np.zeros(h.shape[:-1], bool)
+        if below.any():
+            doubtful = below.any(axis=-1)
             h_known, noise_known = self.known_rows(rows, x, known, hit)
             weak = squared_magnitude(h_known) < reliable_snr * noise_known
-            weak &= doubtful[:, None]
+            weak &= doubtful[..., None]
             pooled = weak.any(axis=-1)
             if pooled.any():
                 h = np.where(weak, h_known, h)
@@ -124,7 +130,8 @@ class ChannelFit:
         residual (``known - 2`` in the divisor, see the module notes); ``rows`` and ``x`` as for
         :meth:`data_aided`; returns ``(channel, noise_var)`` per frame and tone."""
         t = self.train_symbols
-        h, _, residual = fit_rows(rows[:, :t + 1], x[:, :t + 1], None, linear=False)
+        h, _, residual = fit_rows(rows[..., :t + 1, :], x[..., :t + 1, :], None, linear=False,
+                                  ones=self._known_ones)
         return h, residual * (1.0 / max(known - 2, 1))
 
     def known_rows(self, rows: np.ndarray, x: np.ndarray, known: int,
@@ -133,11 +140,11 @@ class ChannelFit:
 
         Parameters
         ----------
-        rows, x : ndarray of complex64, shape (frames, rows, data tones)
+        rows, x : ndarray of complex64, shape ([frames,] rows, data tones)
             As for :meth:`data_aided`; only the training and header rows are used.
         known : int
             Rows known without decisions (training, plus the header when its CRC passed).
-        hit : ndarray of bool, shape (frames, data tones), optional
+        hit : ndarray of bool, shape ([frames,] data tones), optional
             Tones a narrowband interferer hits.
 
         Returns
@@ -159,38 +166,45 @@ class ChannelFit:
         included.
         """
         t = self.train_symbols
-        h, _, residual = fit_rows(rows[:, :t + 1], x[:, :t + 1], None, linear=False)
+        h, _, residual = fit_rows(rows[..., :t + 1, :], x[..., :t + 1, :], None, linear=False,
+                                  ones=self._known_ones)
         dof = max(known - 1, 1)
         lo, hi, count = self._pool
-        frames = residual.shape[0]
+        divisor = self._pool_divisor.get(dof)
+        if divisor is None:
+            divisor = self._pool_divisor[dof] = np.maximum(count * dof - 1, 1)
+        lead = residual.shape[:-1]  # (frames,), or () without the frame axis
         # Gathers along the tone axis with take (a 2-D fancy index costs more per call).
-        c = np.zeros((frames, residual.shape[-1] + 1), np.float64)
-        residual.cumsum(axis=-1, out=c[:, 1:])
-        noise = c.take(hi, axis=1)
-        noise -= c.take(lo, axis=1)
-        noise /= np.maximum(count * dof - 1, 1)
-        struck = None if hit is None else hit.any(axis=-1)
-        if struck is not None and struck.any():
+        c = np.zeros(lead + (residual.shape[-1] + 1,), np.float64)
+        residual.cumsum(axis=-1, out=c[..., 1:])
+        noise = c.take(hi, axis=-1)
+        noise -= c.take(lo, axis=-1)
+        noise /= divisor
+        if hit is not None and hit.any():
+            struck = hit.any(axis=-1)
             clean = ~hit
-            np.where(clean, residual, 0.0).cumsum(axis=-1, out=c[:, 1:])
-            n_clean = np.zeros((frames, residual.shape[-1] + 1), np.int64)
-            clean.cumsum(axis=-1, out=n_clean[:, 1:])
-            n_clean = n_clean.take(hi, axis=1) - n_clean.take(lo, axis=1)
-            pooled = (c.take(hi, axis=1) - c.take(lo, axis=1)) / np.maximum(n_clean * dof - 1, 1)
+            np.where(clean, residual, 0.0).cumsum(axis=-1, out=c[..., 1:])
+            n_clean = np.zeros(lead + (residual.shape[-1] + 1,), np.int64)
+            clean.cumsum(axis=-1, out=n_clean[..., 1:])
+            n_clean = n_clean.take(hi, axis=-1) - n_clean.take(lo, axis=-1)
+            pooled = ((c.take(hi, axis=-1) - c.take(lo, axis=-1))
+                      / np.maximum(n_clean * dof - 1, 1))
             take = clean & (n_clean * dof > 1)
-            take &= struck[:, None]  # a frame with no hit tone keeps the first pool
+            take &= struck[..., None]  # a frame with no hit tone keeps the first pool
             noise = np.where(take, pooled, noise)
         return h, noise
 
 
 def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, linear: bool,
-             leave_one_out: int | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+             leave_one_out: int | None = None,
+             ones: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-tone least-squares channel ``h0 + slope * o[n]`` over symbol rows, per frame.
 
     Parameters
     ----------
-    rows, x : ndarray of complex64, shape (frames, rows, tones)
-        Received values and the known (or decided) values sent, for one or more frames.
+    rows, x : ndarray of complex64, shape ([frames,] rows, tones)
+        Received values and the known (or decided) values sent, for one or more frames (the
+        frame axis may be left out, and then is in what is returned).
     design : ndarray of float32, shape (3, rows), or None
         The rows ``(1, o, o^2)`` with ``o`` the row times about their mean (None with
         ``linear=False``, which fits a constant).
@@ -198,12 +212,15 @@ def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, line
         Fit level and slope in time rather than a constant.
     leave_one_out : int, optional
         With ``k``, the channel of rows ``k:`` is the fit *without* that row.
+    ones : ndarray of float32, shape (rows,), optional
+        For the constant fit: a ones vector the caller keeps (default: made on each call).
 
     Returns
     -------
     tuple of ndarray
         ``(h, h_rows, residual)``: the channel at each tone's energy centroid in time (what the
-        estimate reports), shape (frames, tones), the channel per row, shaped like ``rows``,
+        estimate reports), shape (frames, tones), the channel per row, shaped like ``rows``
+        (for the constant fit, shape (frames, 1, tones), which broadcasts against ``rows``),
         and the residual energy ``sum |y - h_n x|^2`` per frame and tone.
 
     Notes
@@ -225,11 +242,12 @@ def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, line
     xp = as_pairs(x)
     sq = xp * xp
     if not linear:
-        ones = np.ones(nrow, np.float32)
+        if ones is None:
+            ones = np.ones(nrow, np.float32)
         a = np.maximum(pair_sum(ones @ sq), 1e-30)
         h = as_complex(ones @ as_pairs(corr)) / a
-        h_rows = np.broadcast_to(h[..., None, :], rows.shape)
-        err = rows - h[..., None, :] * x
+        h_rows = h[..., None, :]  # the same channel in every row
+        err = rows - h_rows * x
     else:
         o = design[1]
         moments = pair_sum(design @ sq)  # (frames, 3, tones)

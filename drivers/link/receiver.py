@@ -341,7 +341,10 @@ class Receiver:
         starts = [offset + point.start for offset, point in found]
         eps = [point.fraction_tones for _, point in found]
         spectra = self.sync.spectra(r, starts, eps)
-        offsets = self._offsets(spectra, eps)
+        # One frame drops the frame axis: every step takes arrays with or without it, and a
+        # numpy call costs more per added dimension (a one-frame call is mostly such costs).
+        work = spectra[0] if len(found) == 1 else spectra
+        offsets = self._offsets(work, eps)
         redo = [k for k, fine in enumerate(offsets.eps_fine) if abs(fine) > _REFINE_TONES]
         if redo:
             # The sync offset was off (an interferer's share of the sync correlation biases
@@ -354,45 +357,49 @@ class Receiver:
             again = np.empty((len(redo),) + spectra.shape[1:], np.complex64)
             spectra[redo] = self.sync.spectra(r, [starts[k] for k in redo],
                                               [eps[k] for k in redo], out=again)
-            offsets = self._offsets(spectra, eps)
-        return self._frames(r, found, starts, eps, spectra, offsets, lookup, demodulate)
+            offsets = self._offsets(work, eps)  # ``work`` is ``spectra`` or a view of it
+        return self._frames(r, found, starts, eps, work, offsets, lookup, demodulate)
 
     def _offsets(self, spectra: np.ndarray, eps: list[float]) -> "_Offsets":
-        """Integer and fine offset, interferer-hit tones and the training and header rows."""
+        """Integer and fine offset, interferer-hit tones and the training and header rows.
+
+        ``spectra`` has shape ([frames,] symbols, fft_size): without the frame axis for one
+        frame, and so has every array this and :meth:`_frames` make per frame.
+        """
         t = self.plan.train_symbols
-        shifts = self.sync.integer_shift(spectra).tolist()
+        shifts = self.sync.integer_shift(spectra).reshape(-1).tolist()
         # Per-symbol phase step from the identical training symbols (all offsets together).
         head = self._gather(spectra, slice(1, t + 2), 0, shifts)  # training rows, header
         if t == 2:
-            step = np.conj(head[:, 0])
-            step *= head[:, 1]
+            step = np.conj(head[..., 0, :])
+            step *= head[..., 1, :]
         else:
-            step = (np.conj(head[:, :t - 1]) * head[:, 1:t]).sum(axis=1)
+            step = np.add.reduce(np.conj(head[..., :t - 1, :]) * head[..., 1:t, :], axis=-2)
         # Tones a narrowband interferer dominates take no part: its own phase step would bias
         # the offset (and, through the time-domain correction, cost every tone some ICI).
         mag = np.abs(step)  # |H|^2 n per tone
         level = local_level(mag)
         hit = mag > 2.0 * level  # 3 dB above the local level
         step[hit] = 0.0
-        total = step.sum(axis=1)
+        total = np.add.reduce(step, axis=-1)  # the sum without its Python wrapper
         theta = np.arctan2(total.imag, total.real)  # np.angle without its wrapper
-        thetas = theta.tolist()
         eps_fine = [self.sync.fine_offset_tones(th, e, shift)
-                    for th, e, shift in zip(thetas, eps, shifts)]
-        return _Offsets(shifts, head, hit, level, thetas, eps_fine)
+                    for th, e, shift in zip(theta.reshape(-1).tolist(), eps, shifts)]
+        return _Offsets(shifts, head, hit, level, theta, eps_fine)
 
     def _gather(self, spectra: np.ndarray, rows: slice, which: int,
                 shifts: list[int]) -> np.ndarray:
-        """``spectra[k, rows, bins]`` for every frame ``k``, with the used (``which`` 0), pilot
-        (1) or data (2) bins of each frame's integer offset.
+        """``spectra[k, rows, bins]`` for every frame ``k`` (``spectra[rows, bins]`` without the
+        frame axis), with the used (``which`` 0), pilot (1) or data (2) bins of each frame's
+        integer offset.
 
         Gathers in mode "clip" (the bins are always in range, and the default mode checks
         every index and buffers an ``out``), each from a contiguous source: ``take`` copies a
         strided one first, and ``spectra[:, rows]`` of several frames is strided.
         """
-        part = spectra[:, rows]
-        if part.shape[0] == 1:  # one frame: contiguous
-            return part.take(self._bins_for(shifts[0])[which], axis=2, mode="clip")
+        part = spectra[..., rows, :]
+        if len(shifts) == 1:  # one frame: contiguous
+            return part.take(self._bins_for(shifts[0])[which], axis=-1, mode="clip")
         out = np.empty(part.shape[:2] + (self._bins_for(shifts[0])[which].size,), np.complex64)
         for k, shift in enumerate(shifts):
             part[k].take(self._bins_for(shift)[which], axis=1, mode="clip", out=out[k])
@@ -404,44 +411,54 @@ class Receiver:
         plan, fmt = self.plan, self.format
         n, t = plan.fft_size, plan.train_symbols
         count = len(found)
+        single = spectra.ndim == 2  # one frame, without the frame axis
         shifts, head, hit = offsets.shifts, offsets.head, offsets.hit
-        phase = self.sync.symbol_phase(offsets.thetas)
-        head *= phase[:, 1:t + 2, None]
-        h_train = head[:, 0] + head[:, 1] if t == 2 else head[:, :t].sum(axis=1)
+        phase = self.sync.symbol_phase(offsets.theta)
+        head *= phase[..., 1:t + 2, None]
+        h_train = (head[..., 0, :] + head[..., 1, :] if t == 2
+                   else np.add.reduce(head[..., :t, :], axis=-2))
         h_train *= self._train_mean  # training sign / t
         # Header: maximal-ratio combining of the repeated BPSK bits, robust to a narrowband
         # interferer (which would otherwise outvote the good copies of its bit).
         soft_bits = self.header.soft(head, h_train, hit, offsets.level * (1.0 / n))
         header_bits = (soft_bits < 0).astype(np.uint8)
-        headers = [decode_header(bits) for bits in header_bits]
-        header_ok = np.array([ok for ok, _, _ in headers], bool)
+        headers = [decode_header(bits) for bits in header_bits.reshape(count, -1)]
+        oks = [ok for ok, _, _ in headers]
         # Data symbols: remove the residual phase drift measured on the pilots.
         y_pilot = self._gather(spectra, slice(t + 2, None), 1, shifts)
-        row_phase = self.sync.row_phase(y_pilot, h_train.take(fmt.pilot_pos, axis=1,
+        row_phase = self.sync.row_phase(y_pilot, h_train.take(fmt.pilot_pos, axis=-1,
                                                               mode="clip"), phase)
         # Least squares over every symbol with known tone values: training, header, data.
         dp = fmt.data_pos
-        rows = self._gather(spectra, slice(1, None), 2, shifts)  # (frames, rows, tones)
-        rows *= row_phase[:, :, None]
+        rows = self._gather(spectra, slice(1, None), 2, shifts)  # ([frames,] rows, tones)
+        rows *= row_phase[..., None]
         x = self._work_rows(count)  # training rows preset; data rows are filled by decisions
-        if header_ok.all():  # the header row is known once its CRC passes
-            x[:, t] = self.header.known_row(soft_bits)
+        if single:
+            x = x[0]
+        if all(oks):  # the header row is known once its CRC passes
+            x[..., t, :] = self.header.known_row(soft_bits)
+        elif single:
+            x[t] = 0.0
+            rows[t] = 0.0  # an unknown header row takes no part
         else:
+            header_ok = np.array(oks, bool)
             x[:, t] = 0.0
             if header_ok.any():
                 x[header_ok, t] = self.header.known_row(soft_bits[header_ok])
             rows[~header_ok, t] = 0.0  # an unknown header row takes no part
-        hit_data = hit.take(dp, axis=1, mode="clip")
+        hit_data = hit.take(dp, axis=-1, mode="clip")
         # Frames fitted alike, in groups: one per map (data-aided), and the known-rows fits.
-        groups: dict[tuple, list[int]] = {}
-        table_of = []
-        for k, (ok, seq, _) in enumerate(headers):
-            tables = self.maps.tables_for(seq if ok else None, lookup)
-            table_of.append(tables)
-            known = t + int(ok)
-            key = ("data", id(tables)) if tables is not None else (
-                ("rows", known) if known < 3 else ("constant", known))
-            groups.setdefault(key, []).append(k)
+        table_of = [self.maps.tables_for(seq if ok else None, lookup)
+                    for ok, seq, _ in headers]
+        keys = [("data", id(tables)) if tables is not None else (
+            ("rows", ok) if t + ok < 3 else ("constant", ok))
+            for tables, ok in zip(table_of, oks)]
+        if keys.count(keys[0]) == count:  # one group (always so for one frame): no lists
+            groups = {keys[0]: range(count)}
+        else:
+            groups = {}
+            for k, key in enumerate(keys):
+                groups.setdefault(key, []).append(k)
         channel: list = [None] * count
         noise: list = [None] * count
         snr: list = [None] * count
@@ -449,20 +466,26 @@ class Receiver:
         used: list = [0] * count
         for (kind, _), members in groups.items():
             whole = len(members) == count  # views, not copies, when every frame is alike
+            if not whole:
+                members = list(members)
             rows_g = rows if whole else rows[members]
             x_g = x if whole else x[members]
             hit_g = hit_data if whole else hit_data[members]
-            known = t + int(header_ok[members[0]])
+            known = t + int(oks[members[0]])
             if kind == "data":
                 tables = table_of[members[0]]
                 # Decide with the training channel; fit level and slope with those decisions
                 # (the estimate); decide again with the leave-one-out channel (the data).
-                h_data = (h_train if whole else h_train[members]).take(dp, axis=1, mode="clip")
-                decide(rows_g[:, t + 1:], h_data[:, None, :], tables, points=x_g[:, t + 1:])
+                h_data = (h_train if whole else h_train[members]).take(dp, axis=-1, mode="clip")
+                decide(rows_g[..., t + 1:, :], h_data[..., None, :], tables,
+                       points=x_g[..., t + 1:, :])
                 h, h_rows, noise_var, pooled = self.fit.data_aided(
                     rows_g, x_g, known, tables.reliable_snr, hit_g, leave_one_out=demodulate)
                 if demodulate:
-                    idx = decide(rows_g[:, t + 1:], h_rows[:, t + 1:], tables).astype(np.uint8)
+                    idx = decide(rows_g[..., t + 1:, :], h_rows[..., t + 1:, :],
+                                 tables).astype(np.uint8)
+                    if single:
+                        idx = idx[None]
                     for j, k in enumerate(members):
                         decided[k] = (idx[j, ..., 0], idx[j, ..., 1], tables.b_q)
                 group_used = known + plan.data_symbols
@@ -472,15 +495,20 @@ class Receiver:
                 # tones up to 46 dB high). The noise pooled over neighbouring tones has ~17
                 # and is unbiased.
                 h, noise_var = self.fit.known_rows(rows_g, x_g, known, hit_g)
-                pooled = np.ones(len(members), bool)
                 group_used = known
             else:
                 h, noise_var = self.fit.known_constant(rows_g, x_g, known)
-                pooled = np.zeros(len(members), bool)
                 group_used = known
             # The SNR in the type of each frame's noise (float64 where tones were pooled).
-            for wide in (False, True):
-                part = [j for j in range(len(members)) if pooled[j] == wide]
+            if kind == "rows":
+                parts = ((True, range(len(members))),)
+            elif noise_var.dtype == np.float32:  # no tone pooled (the common case)
+                parts = ((False, range(len(members))),)
+            else:
+                wide_of = pooled.reshape(-1).tolist()
+                parts = tuple((wide, [j for j, w in enumerate(wide_of) if w == wide])
+                              for wide in (False, True))
+            for wide, part in parts:
                 if not part:
                     continue
                 every = len(part) == len(members)
@@ -493,6 +521,9 @@ class Receiver:
                 np.maximum(snr_db, 1e-30, out=snr_db)
                 np.log10(snr_db, out=snr_db)
                 snr_db *= 10.0
+                if single:
+                    channel[0], noise[0], snr[0], used[0] = h_p, noise_p, snr_db, group_used
+                    continue
                 for i, j in enumerate(part):
                     k = members[j]
                     channel[k], noise[k], snr[k] = h_p[i], noise_p[i], snr_db[i]
@@ -540,10 +571,10 @@ class _Offsets(NamedTuple):
     """What :meth:`Receiver._offsets` finds per frame."""
 
     shifts: list  # integer offset (tones)
-    head: np.ndarray  # training and header rows on the used tones, (frames, t + 1, used)
+    head: np.ndarray  # training and header rows on the used tones, ([frames,] t + 1, used)
     hit: np.ndarray  # used tones a narrowband interferer hits
     level: np.ndarray  # local level of the phase step's magnitude
-    thetas: list  # per-symbol phase step (radians)
+    theta: np.ndarray  # per-symbol phase step (radians)
     eps_fine: list  # offset left after the fraction and the integer part (tones)
 
 

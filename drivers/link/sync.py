@@ -107,13 +107,15 @@ class FrameSync:
         self._diff_conj = np.conj(fmt.differential).astype(np.complex64)
         # Per-frame operands in the type the arithmetic runs in (the same casts, made once).
         self._pilots = fmt.pilots.astype(np.float32).astype(np.complex64)
-        self._sym_index = np.arange(plan.n_symbols).astype(np.complex128)
+        # -i k per symbol k: a frame's phase ramp is one outer product with its step.
+        self._minus_j_index = -1j * np.arange(plan.n_symbols).astype(np.complex128)
+        self._sqrt_n = math.sqrt(n)
+        self._turns = np.empty((1, plan.data_symbols), np.complex64)
         index = np.arange(plan.data_symbols, dtype=np.float64)
         self._data_offsets = index - index.mean()
         self._row_offsets = (np.arange(1 + plan.train_symbols + plan.data_symbols)
                              - (1 + plan.train_symbols) - index.mean())
         self._data_index_spread = max(float(np.sum(self._data_offsets ** 2)), 1.0)
-        self._turns = np.empty((1, plan.data_symbols), np.complex64)
         # The frames' derotated symbols and their spectra, reused by every call and grown to
         # the most frames asked for at once (a fresh 32 x 1024 complex64 array is above
         # glibc's first mmap threshold: page faults).
@@ -255,22 +257,22 @@ class FrameSync:
             self._windows = np.empty((count,) + self._windows.shape[1:], np.complex64)
             self._spectra = np.empty_like(self._windows)
         windows = self._windows[:count]
-        # The ramps of every frame at once; each factor as a Python complex, as one frame's
-        # ``1j * eps`` would be.
-        coef = np.array([1j * eps for eps in eps_fracs], np.complex128)[:, None]
-        coarse = np.exp(coef * self._ramp_coarse).astype(np.complex64)
-        fine = np.exp(coef * self._ramp_fine).astype(np.complex64)
-        derotate = np.multiply(coarse[:, :, None], fine[:, None, :]).reshape(count, n)
         if out is None:
             out = self._spectra[:count]
-        for k, d0 in enumerate(starts):
+        for k, (d0, eps) in enumerate(zip(starts, eps_fracs)):
             if d0 + span <= r.size:  # a reshaped view costs less than as_strided
                 frame = r[d0:d0 + span].reshape(plan.n_symbols, s)[:, :n]
             else:
                 frame = np.lib.stride_tricks.as_strided(
                     r[d0:], shape=(plan.n_symbols, n), strides=(s * r.itemsize, r.itemsize),
                     writeable=False)
-            np.multiply(frame, derotate[k], out=windows[k])
+            # The ramp of this frame (a few short calls: cheaper per frame than the
+            # bookkeeping of one batched ramp when a call holds one frame).
+            coef = 1j * eps
+            derotate = np.multiply.outer(
+                np.exp(coef * self._ramp_coarse).astype(np.complex64),
+                np.exp(coef * self._ramp_fine).astype(np.complex64)).ravel()
+            np.multiply(frame, derotate, out=windows[k])
             # Each frame's FFT right after its derotation, while its symbols are in the cache
             # (a frame's symbols fill about half of a core's L2 here; a batch, several).
             np.fft.fft(windows[k], axis=1, out=out[k])
@@ -278,10 +280,11 @@ class FrameSync:
 
     def integer_shift(self, spectra: np.ndarray) -> np.ndarray:
         """Integer offset per frame (an even number of tones) maximizing the correlation of the
-        sync/training differential with its known pattern, from :meth:`spectra`."""
-        cross = np.conj(spectra[:, 0]) * spectra[:, 1]
-        score = np.abs(cross.take(self._int_bins, axis=1, mode="clip") @ self._diff_conj)
-        return self._shifts[score.argmax(axis=1)]
+        sync/training differential with its known pattern, from :meth:`spectra` (shape
+        ([frames,] symbols, fft_size); without the frame axis, one offset as a 0-d value)."""
+        cross = np.conj(spectra[..., 0, :]) * spectra[..., 1, :]
+        score = np.abs(cross.take(self._int_bins, axis=-1, mode="clip") @ self._diff_conj)
+        return self._shifts[score.argmax(axis=-1)]
 
     def fine_offset_tones(self, theta: float, eps_frac: float, shift: int) -> float:
         """Offset (tone spacings) left after ``eps_frac`` and ``shift``, from the measured
@@ -295,11 +298,12 @@ class FrameSync:
 
     def symbol_phase(self, thetas) -> np.ndarray:
         """Per-symbol correction ``exp(-i theta k) / sqrt(n)`` (complex64) for every symbol
-        ``k`` of each frame (one ``theta`` per frame): removes the phase step and normalizes
-        the FFT. Shape (frames, symbols)."""
-        n = self.plan.fft_size
-        coef = np.array([-1j * theta for theta in thetas], np.complex128)[:, None]
-        return (np.exp(coef * self._sym_index) / math.sqrt(n)).astype(np.complex64)
+        ``k`` of each frame (one ``theta`` per frame, a sequence or an array of float): removes
+        the phase step and normalizes the FFT. Shape (frames, symbols)."""
+        coef = np.multiply.outer(thetas, self._minus_j_index)
+        np.exp(coef, out=coef)
+        coef /= self._sqrt_n
+        return coef.astype(np.complex64)
 
     def row_phase(self, y_pilot: np.ndarray, h_pilot: np.ndarray,
                   phase: np.ndarray) -> np.ndarray:
@@ -307,41 +311,48 @@ class FrameSync:
 
         Parameters
         ----------
-        y_pilot : ndarray of complex, shape (frames, data symbols, pilots)
-            Received pilot tones of the data symbols (uncorrected spectra).
-        h_pilot : ndarray of complex, shape (frames, pilots)
+        y_pilot : ndarray of complex, shape ([frames,] data symbols, pilots)
+            Received pilot tones of the data symbols (uncorrected spectra); the frame axis is
+            left out for one frame, here and in the other arguments.
+        h_pilot : ndarray of complex, shape ([frames,] pilots)
             Training-symbol channel at the pilot tones.
-        phase : ndarray of complex64, shape (frames, symbols)
+        phase : ndarray of complex64, shape ([frames,] symbols)
             :meth:`symbol_phase` of the frames.
 
         Returns
         -------
-        ndarray of complex64, shape (frames, rows after the sync symbol)
+        ndarray of complex64, shape ([frames,] rows after the sync symbol)
             ``phase`` times a straight line through the data symbols' common phases: a line
             follows a residual offset with far less noise than each symbol's own phase, and,
             extended over the training and header rows, also removes an error of the training
             phase step (which shows up as a slope).
         """
         t = self.plan.train_symbols
-        ref = np.conj(h_pilot[:, None, :]) * self._pilots
+        ref = np.conj(h_pilot[..., None, :]) * self._pilots
         np.multiply(y_pilot, ref, out=ref)
-        common = ref.sum(axis=-1)
-        common *= phase[:, t + 2:]
+        common = np.add.reduce(ref, axis=-1)  # the sum without its Python wrapper
+        common *= phase[..., t + 2:]
         # The first symbol's phase, then the phase differences of neighbours (unwrapped),
         # all in one arctan2 call; their running sum is the common phase per symbol.
-        turns = self._turns[:common.shape[0]]
-        if turns.shape[0] < common.shape[0]:
-            turns = self._turns = np.empty_like(common)
-        turns[:, 0] = common[:, 0]
-        np.multiply(common[:, 1:], np.conj(common[:, :-1]), out=turns[:, 1:])
+        if common.ndim == 1:
+            turns = self._turns[0]
+        else:
+            turns = self._turns[:common.shape[0]]
+            if turns.shape[0] < common.shape[0]:
+                turns = self._turns = np.empty_like(common)
+        turns[..., 0] = common[..., 0]
+        np.multiply(common[..., 1:], np.conj(common[..., :-1]), out=turns[..., 1:])
         cpe = np.arctan2(turns.imag, turns.real).cumsum(axis=-1)
         cpe_wide = cpe.astype(np.float64)
         # One dot product per frame (a matrix-vector product may sum in another order).
-        slope = np.array([np.dot(self._data_offsets, row) for row in cpe_wide])
-        slope /= self._data_index_spread
-        line = self._row_offsets * slope[:, None]
-        line += (cpe.sum(axis=-1) / cpe.shape[-1])[:, None]  # mean (float32), no wrapper
-        return phase[:, 1:] * np.exp(-1j * line).astype(np.complex64)
+        if cpe_wide.ndim == 1:
+            slope = np.dot(self._data_offsets, cpe_wide)
+        else:
+            slope = np.array([np.dot(self._data_offsets, row) for row in cpe_wide])
+        slope = slope / self._data_index_spread
+        line = np.multiply.outer(slope, self._row_offsets)
+        line += (np.add.reduce(cpe, axis=-1) / cpe.shape[-1])[..., None]  # mean (float32)
+        return phase[..., 1:] * np.exp(-1j * line).astype(np.complex64)
 
 
 def sliding_sums(a: np.ndarray, width: int) -> np.ndarray:

@@ -10,9 +10,12 @@ the FFT and the ratio of the two receivers, and first checks that both give the 
 estimates and decisions bit for bit, one frame and streamed (``tests/test_receiver_digest.py``
 is the wider check). Not a timed test: run it by hand.
 
+``--fft-size 128`` runs the same on the small plan of the simulator tests (128-point FFT,
+64 used tones, 4 data symbols), where the fixed cost of the numpy calls is most of a frame.
+
 Usage::
 
-    python tests/bench/compare_rx.py [REV] [--repeats N] [--rounds K]
+    python tests/bench/compare_rx.py [REV] [--repeats N] [--rounds K] [--fft-size {1024,128}]
 """
 
 from __future__ import annotations
@@ -35,6 +38,9 @@ from brimline.drivers.link.receiver import Receiver
 
 ROOT = Path(__file__).resolve().parents[2]
 PACKAGE = "_rev_link"
+#: Plans by FFT size: the benchmark's, and the small plan of the simulator tests.
+PLANS = {1024: PLAN, 128: dict(fft_size=128, cp_len=16, sample_rate_hz=1.92e6,
+                               used_tones_half=40, pilot_spacing=8, data_symbols=4)}
 
 
 def load_revision(rev: str, folder: Path):
@@ -59,14 +65,17 @@ def main(argv=None) -> int:
     parser.add_argument("rev", nargs="?", default="main", help="git revision (default: main)")
     parser.add_argument("--repeats", type=int, default=300, help="calls of each per round")
     parser.add_argument("--rounds", type=int, default=3, help="rounds, each printed")
+    parser.add_argument("--fft-size", type=int, default=1024, choices=sorted(PLANS),
+                        help="plan: the benchmark's (1024) or the simulator tests' (128)")
     args = parser.parse_args(argv)
     warm_allocator()
     with tempfile.TemporaryDirectory() as tmp:
         rev_frame, rev_receiver = load_revision(args.rev, Path(tmp))
         rng = np.random.default_rng(20261201)
-        plan = make_plan(**PLAN)
+        plan_keys = PLANS[args.fft_size]
+        plan = make_plan(**plan_keys)
         new = Receiver(plan)
-        old = rev_receiver.Receiver(rev_frame.make_plan(**PLAN))  # the revision's own plan type
+        old = rev_receiver.Receiver(rev_frame.make_plan(**plan_keys))  # the revision's own plan type
         bits = np.full(plan.data_tones.size, 4)
         lookup = {1: (bits, np.ones(bits.size))}.get
         channel = LinkChannel(plan, profile="awgn", snr_db=20.0, cfo_hz=4.1e3,
