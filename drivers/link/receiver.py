@@ -422,7 +422,8 @@ class Receiver:
         # interferer (which would otherwise outvote the good copies of its bit).
         soft_bits = self.header.soft(head, h_train, hit, offsets.level * (1.0 / n))
         header_bits = (soft_bits < 0).astype(np.uint8)
-        headers = [decode_header(bits) for bits in header_bits.reshape(count, -1)]
+        headers = ([decode_header(header_bits)] if single
+                   else [decode_header(bits) for bits in header_bits])
         oks = [ok for ok, _, _ in headers]
         # Data symbols: remove the residual phase drift measured on the pilots.
         y_pilot = self._gather(spectra, slice(t + 2, None), 1, shifts)

@@ -269,9 +269,9 @@ class FrameSync:
             # The ramp of this frame (a few short calls: cheaper per frame than the
             # bookkeeping of one batched ramp when a call holds one frame).
             coef = 1j * eps
-            derotate = np.multiply.outer(
-                np.exp(coef * self._ramp_coarse).astype(np.complex64),
-                np.exp(coef * self._ramp_fine).astype(np.complex64)).ravel()
+            coarse = np.exp(coef * self._ramp_coarse).astype(np.complex64)
+            derotate = coarse[:, None] * np.exp(coef * self._ramp_fine).astype(np.complex64)
+            derotate = derotate.reshape(n)  # the outer product (ufunc.outer costs more)
             np.multiply(frame, derotate, out=windows[k])
             # Each frame's FFT right after its derotation, while its symbols are in the cache
             # (a frame's symbols fill about half of a core's L2 here; a batch, several).
@@ -300,7 +300,9 @@ class FrameSync:
         """Per-symbol correction ``exp(-i theta k) / sqrt(n)`` (complex64) for every symbol
         ``k`` of each frame (one ``theta`` per frame, a sequence or an array of float): removes
         the phase step and normalizes the FFT. Shape (frames, symbols)."""
-        coef = np.multiply.outer(thetas, self._minus_j_index)
+        theta = np.asarray(thetas)
+        # -i theta k by broadcasting (ufunc.outer costs more per call).
+        coef = (theta[:, None] if theta.ndim else theta) * self._minus_j_index
         np.exp(coef, out=coef)
         coef /= self._sqrt_n
         return coef.astype(np.complex64)
@@ -345,13 +347,16 @@ class FrameSync:
         cpe = np.arctan2(turns.imag, turns.real).cumsum(axis=-1)
         cpe_wide = cpe.astype(np.float64)
         # One dot product per frame (a matrix-vector product may sum in another order).
+        mean = np.add.reduce(cpe, axis=-1) / cpe.shape[-1]  # float32, without the wrapper
         if cpe_wide.ndim == 1:
-            slope = np.dot(self._data_offsets, cpe_wide)
+            line = self._row_offsets * (np.dot(self._data_offsets, cpe_wide)
+                                        / self._data_index_spread)
+            line += float(mean)
         else:
             slope = np.array([np.dot(self._data_offsets, row) for row in cpe_wide])
-        slope = slope / self._data_index_spread
-        line = np.multiply.outer(slope, self._row_offsets)
-        line += (np.add.reduce(cpe, axis=-1) / cpe.shape[-1])[..., None]  # mean (float32)
+            slope /= self._data_index_spread
+            line = self._row_offsets * slope[:, None]
+            line += mean[:, None]
         return phase[..., 1:] * np.exp(-1j * line).astype(np.complex64)
 
 
