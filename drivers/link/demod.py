@@ -268,7 +268,7 @@ class HeaderDemod:
         (shape ([frames,] HEADER_BITS)) whose CRC passed: they join the known rows of the
         channel fit. Returns shape ([frames,] data tones)."""
         signs = np.ones(soft_bits.shape[:-1] + (HEADER_BITS + 1,), np.float32)  # last: fillers
-        np.copyto(signs[..., :HEADER_BITS], np.float32(-1.0), where=soft_bits < 0)
+        signs[..., :HEADER_BITS][soft_bits < 0] = -1.0
         # A gather along the tone axis (a fancy index with a leading slice costs more).
         signs = signs.take(self._header_bit_data, axis=-1, mode="clip")
         signs *= self._scramble_data

@@ -30,7 +30,11 @@ step over a leading frame axis (:meth:`Receiver.receive` is the two for one fram
 :class:`FrameScanner`, which the streaming sources (radio, recorded IQ, IQ over ZeroMQ) feed,
 locates the frames of each feed one window after another and then estimates them together.
 No step mixes frames, so a frame's outputs are the same alone or in a batch, bit for bit
-(``tests/test_receiver_batch.py``), and a frame that fails is flagged on its own.
+(``tests/test_receiver_batch.py``), and a frame that fails is flagged on its own. A call with
+one frame (``receive``, which the simulator and the lockstep paths call per frame) drops the
+frame axis: every step takes ``([frames,] ...)`` arrays (index with ``...`` and ``axis=-1``,
+never ``[:, k]``), since each numpy call costs more per added dimension and a one-frame call is
+mostly such fixed costs. Per-call Python lists and groups are built only when frames differ.
 
 Speed: a frame costs a few hundred numpy calls, and their fixed cost, not the FFT, is much of
 its time; a batch pays them once. Hence also work arrays built once per plan, operands
