@@ -342,14 +342,21 @@ class Receiver:
         """
         if not found:
             return []
-        starts = [offset + point.start for offset, point in found]
-        eps = [point.fraction_tones for _, point in found]
+        if len(found) == 1:  # no comprehensions (each is a function call)
+            offset, point = found[0]
+            starts, eps = [offset + point.start], [point.fraction_tones]
+        else:
+            starts = [offset + point.start for offset, point in found]
+            eps = [point.fraction_tones for _, point in found]
         spectra = self.sync.spectra(r, starts, eps)
         # One frame drops the frame axis: every step takes arrays with or without it, and a
         # numpy call costs more per added dimension (a one-frame call is mostly such costs).
         work = spectra[0] if len(found) == 1 else spectra
         offsets = self._offsets(work, eps)
-        redo = [k for k, fine in enumerate(offsets.eps_fine) if abs(fine) > _REFINE_TONES]
+        if len(found) == 1:
+            redo = [0] if abs(offsets.eps_fine[0]) > _REFINE_TONES else []
+        else:
+            redo = [k for k, fine in enumerate(offsets.eps_fine) if abs(fine) > _REFINE_TONES]
         if redo:
             # The sync offset was off (an interferer's share of the sync correlation biases
             # it): transform those frames again with the fine offset, or the residual leaks
@@ -371,7 +378,8 @@ class Receiver:
         frame, and so has every array this and :meth:`_frames` make per frame.
         """
         t = self.plan.train_symbols
-        shifts = self.sync.integer_shift(spectra).reshape(-1).tolist()
+        shift = self.sync.integer_shift(spectra)
+        shifts = shift.tolist() if spectra.ndim == 3 else [int(shift)]
         # Per-symbol phase step from the identical training symbols (all offsets together).
         head = self._gather(spectra, slice(1, t + 2), 0, shifts)  # training rows, header
         if t == 2:
@@ -387,8 +395,11 @@ class Receiver:
         step[hit] = 0.0
         total = np.add.reduce(step, axis=-1)  # the sum without its Python wrapper
         theta = np.arctan2(total.imag, total.real)  # np.angle without its wrapper
-        eps_fine = [self.sync.fine_offset_tones(th, e, shift)
-                    for th, e, shift in zip(theta.reshape(-1).tolist(), eps, shifts)]
+        if theta.ndim:
+            eps_fine = [self.sync.fine_offset_tones(th, e, shift)
+                        for th, e, shift in zip(theta.tolist(), eps, shifts)]
+        else:
+            eps_fine = [self.sync.fine_offset_tones(float(theta), eps[0], shifts[0])]
         return _Offsets(shifts, head, hit, level, theta, eps_fine)
 
     def _gather(self, spectra: np.ndarray, rows: slice, which: int,
@@ -428,7 +439,7 @@ class Receiver:
         header_bits = (soft_bits < 0).astype(np.uint8)
         headers = ([decode_header(header_bits)] if single
                    else [decode_header(bits) for bits in header_bits])
-        oks = [ok for ok, _, _ in headers]
+        oks = [headers[0][0]] if single else [ok for ok, _, _ in headers]
         # Data symbols: remove the residual phase drift measured on the pilots.
         y_pilot = self._gather(spectra, slice(t + 2, None), 1, shifts)
         row_phase = self.sync.row_phase(y_pilot, h_train.take(fmt.pilot_pos, axis=-1,
@@ -437,9 +448,8 @@ class Receiver:
         dp = fmt.data_pos
         rows = self._gather(spectra, slice(1, None), 2, shifts)  # ([frames,] rows, tones)
         rows *= row_phase[..., None]
-        x = self._work_rows(count)  # training rows preset; data rows are filled by decisions
-        if single:
-            x = x[0]
+        # Training rows preset; data rows are filled by decisions.
+        x = self._x[0] if single else self._work_rows(count)
         if all(oks):  # the header row is known once its CRC passes
             x[..., t, :] = self.header.known_row(soft_bits)
         elif single:
@@ -458,7 +468,7 @@ class Receiver:
         keys = [("data", id(tables)) if tables is not None else (
             ("rows", ok) if t + ok < 3 else ("constant", ok))
             for tables, ok in zip(table_of, oks)]
-        if keys.count(keys[0]) == count:  # one group (always so for one frame): no lists
+        if single or keys.count(keys[0]) == count:  # one group: no lists
             groups = {keys[0]: range(count)}
         else:
             groups = {}
@@ -533,12 +543,12 @@ class Receiver:
                     k = members[j]
                     channel[k], noise[k], snr[k] = h_p[i], noise_p[i], snr_db[i]
                     used[k] = group_used
-        clipped = self._clipped(r, found, starts)
+        clipped = self._clipped(r, found, starts) if self.clip_level is not None else None
         out = []
         for k, (offset, point) in enumerate(found):
             ok, seq, counter = headers[k]
             start = point.start
-            reason = "clipped" if clipped[k] else ("" if ok else "crc_failed")
+            reason = "clipped" if clipped and clipped[k] else ("" if ok else "crc_failed")
             cfo_tones = eps[k] + shifts[k] + offsets.eps_fine[k]
             out.append(RxFrame(
                 reason=reason, start=start, end=start + self.frame_span,
