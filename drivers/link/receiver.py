@@ -412,9 +412,11 @@ class Receiver:
         every index and buffers an ``out``), each from a contiguous source: ``take`` copies a
         strided one first, and ``spectra[:, rows]`` of several frames is strided.
         """
-        part = spectra[..., rows, :]
+        if spectra.ndim == 2:  # one frame without the frame axis: contiguous
+            return spectra[rows].take(self._bins_for(shifts[0])[which], axis=1, mode="clip")
+        part = spectra[:, rows]
         if len(shifts) == 1:  # one frame: contiguous
-            return part.take(self._bins_for(shifts[0])[which], axis=-1, mode="clip")
+            return part.take(self._bins_for(shifts[0])[which], axis=2, mode="clip")
         out = np.empty(part.shape[:2] + (self._bins_for(shifts[0])[which].size,), np.complex64)
         for k, shift in enumerate(shifts):
             part[k].take(self._bins_for(shift)[which], axis=1, mode="clip", out=out[k])
@@ -463,8 +465,11 @@ class Receiver:
             rows[~header_ok, t] = 0.0  # an unknown header row takes no part
         hit_data = hit.take(dp, axis=-1, mode="clip")
         # Frames fitted alike, in groups: one per map (data-aided), and the known-rows fits.
-        table_of = [self.maps.tables_for(seq if ok else None, lookup)
-                    for ok, seq, _ in headers]
+        if single:
+            table_of = [self.maps.tables_for(headers[0][1] if oks[0] else None, lookup)]
+        else:
+            table_of = [self.maps.tables_for(seq if ok else None, lookup)
+                        for ok, seq, _ in headers]
         keys = [("data", id(tables)) if tables is not None else (
             ("rows", ok) if t + ok < 3 else ("constant", ok))
             for tables, ok in zip(table_of, oks)]
