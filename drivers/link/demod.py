@@ -160,10 +160,11 @@ def decide(y: np.ndarray, h: np.ndarray, tables: MapTables,
 
     Parameters
     ----------
-    y : ndarray of complex64, shape (symbols, tones)
-        Phase-corrected received values.
+    y : ndarray of complex64, shape (..., symbols, tones)
+        Phase-corrected received values (a leading axis for several frames).
     h : ndarray of complex64
-        One channel per tone (shape (tones,)) or one per element of ``y``.
+        One channel per element of ``y`` (the same shape), or one per tone that broadcasts
+        against it (shape (tones,), or (frames, 1, tones)).
     tables : MapTables
         The map the values were sent with.
     points : ndarray of complex64, optional
@@ -171,7 +172,7 @@ def decide(y: np.ndarray, h: np.ndarray, tables: MapTables,
 
     Returns
     -------
-    ndarray of float32, shape (symbols, tones, 2)
+    ndarray of float32, shape (..., symbols, tones, 2)
         The decided I and Q level indices.
 
     Notes
@@ -181,7 +182,7 @@ def decide(y: np.ndarray, h: np.ndarray, tables: MapTables,
     on both axes). ``fmax``/``fmin`` rather than ``clip`` so that a NaN sample decides to a
     valid index.
     """
-    if h.ndim == 1:
+    if h.shape != y.shape:  # one channel per tone
         z = y * (tables.half_inv_gain_c64 / h)
     else:  # y conj(h) / |h|^2: a complex division is several times slower
         z = np.conj(h)
@@ -225,22 +226,23 @@ class HeaderDemod:
 
     def soft(self, head: np.ndarray, h_train: np.ndarray, hit: np.ndarray,
              level: np.ndarray) -> np.ndarray:
-        """Combined soft values of the header bits (negative: bit 1).
+        """Combined soft values of the header bits (negative: bit 1), per frame.
 
         Parameters
         ----------
-        head : ndarray of complex, shape (train_symbols + 1, used tones)
-            Phase-corrected training rows and the header row.
-        h_train : ndarray of complex
+        head : ndarray of complex, shape ([frames,] train_symbols + 1, used tones)
+            Phase-corrected training rows and the header row (the frame axis may be left out,
+            here and in the other arguments).
+        h_train : ndarray of complex, shape ([frames,] used tones)
             Channel per used tone from the training symbols.
-        hit : ndarray of bool
+        hit : ndarray of bool, shape ([frames,] used tones)
             Used tones a narrowband interferer hits (erased).
-        level : ndarray of float
+        level : ndarray of float, shape ([frames,] used tones)
             Local channel power per used tone (each vote is clipped to 1.5 times it).
 
         Returns
         -------
-        ndarray of float, shape (HEADER_BITS,)
+        ndarray of float, shape ([frames,] HEADER_BITS)
 
         Notes
         -----
@@ -250,18 +252,24 @@ class HeaderDemod:
         symbols differ was tried and dropped: in deep fades it erased good copies.)
         """
         t = self.train_symbols
-        soft = (head[t] * np.conj(h_train)).real * self._scramble  # contiguous from here
+        soft = (head[..., t, :] * np.conj(h_train)).real * self._scramble  # contiguous now
         bound = 1.5 * level
         np.minimum(soft, bound, out=soft)  # a clip to [-bound, bound] without np.clip's checks
         np.negative(bound, out=bound)
         np.maximum(soft, bound, out=soft)
         soft[hit] = 0.0
         reps = self._reps * HEADER_BITS
-        return soft[:reps].reshape(self._reps, HEADER_BITS).sum(axis=0)
+        # The sum over the copies without its Python wrapper.
+        return np.add.reduce(
+            soft[..., :reps].reshape(soft.shape[:-1] + (self._reps, HEADER_BITS)), axis=-2)
 
     def known_row(self, soft_bits: np.ndarray) -> np.ndarray:
         """The header row's values on the data tones (float32), from decided ``soft_bits``
-        whose CRC passed: they join the known rows of the channel fit."""
-        signs = np.ones(HEADER_BITS + 1, np.float32)  # the last: filler tones
-        signs[:HEADER_BITS][soft_bits < 0] = -1.0
-        return signs[self._header_bit_data] * self._scramble_data
+        (shape ([frames,] HEADER_BITS)) whose CRC passed: they join the known rows of the
+        channel fit. Returns shape ([frames,] data tones)."""
+        signs = np.ones(soft_bits.shape[:-1] + (HEADER_BITS + 1,), np.float32)  # last: fillers
+        signs[..., :HEADER_BITS][soft_bits < 0] = -1.0
+        # A gather along the tone axis (a fancy index with a leading slice costs more).
+        signs = signs.take(self._header_bit_data, axis=-1, mode="clip")
+        signs *= self._scramble_data
+        return signs

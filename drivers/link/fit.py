@@ -62,22 +62,27 @@ class ChannelFit:
         lo = np.maximum(tone - NOISE_POOL_HALF, 0)
         hi = np.minimum(tone + NOISE_POOL_HALF + 1, tone.size)
         self._pool = (lo, hi, hi - lo)  # noise pool per data tone: [lo, hi) and its size
+        # Built once rather than per frame: the ones row of the constant fit over the known
+        # rows, and the pooled noise divisor per degrees of freedom (filled as they occur).
+        self._known_ones = np.ones(1 + plan.train_symbols, np.float32)
+        self._pool_divisor: dict[int, np.ndarray] = {}
 
     def data_aided(self, rows: np.ndarray, x: np.ndarray, known: int,
                    reliable_snr: np.ndarray, hit: np.ndarray, *,
-                   leave_one_out: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                   leave_one_out: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Channel (level and slope in time) and noise over every row, data decisions included.
 
         Parameters
         ----------
-        rows, x : ndarray of complex64, shape (rows, data tones)
-            Phase-corrected received rows and their known or decided values.
+        rows, x : ndarray of complex64, shape ([frames,] rows, data tones)
+            Phase-corrected received rows and their known or decided values, per frame (the
+            frame axis may be left out, here, in ``hit`` and in what is returned).
         known : int
             Rows known without decisions (training, plus the header when its CRC passed).
         reliable_snr : ndarray
             Per tone, the channel SNR ``|H|^2 / noise`` above which its decisions count
             (``demod.MapTables.reliable_snr``).
-        hit : ndarray of bool
+        hit : ndarray of bool, shape ([frames,] data tones)
             Tones a narrowband interferer hits (kept out of the other tones' noise pools).
         leave_one_out : bool
             Make the data rows' channel the fit without that row (for the final decisions).
@@ -85,8 +90,15 @@ class ChannelFit:
         Returns
         -------
         tuple of ndarray
-            ``(channel, channel_rows, noise_var)``: the channel at each tone's energy centroid
-            in time, the channel per row and the noise variance per tone.
+            ``(channel, channel_rows, noise_var, pooled)``: the channel at each tone's energy
+            centroid in time, the channel per row, the noise variance per tone and, per frame,
+            whether some of its tones took the known-symbol estimate. ``noise_var`` is float32
+            unless some frame's tones did, then float64 (a frame whose ``pooled`` is false holds
+            float32 values there, exactly).
+
+        Notes
+        -----
+        Each frame's result is the same as its fit on its own: frames only share the calls.
         """
         t = self.train_symbols
         h, h_rows, residual = fit_rows(rows, x, self.design, linear=True,
@@ -97,23 +109,29 @@ class ChannelFit:
         # Where a tone's decisions are unreliable, wrong decisions make the residual look
         # small (the SNR reads high): such tones keep the known-symbol estimate instead.
         # A tone whose decision-directed SNR reads 3 dB above the need is reliable: the
-        # upward bias of unreliable decisions stays below that (a cheap pre-test).
+        # upward bias of unreliable decisions stays below that (a cheap pre-test, per frame).
         need = (2.0 * reliable_snr) * noise_var
-        if (squared_magnitude(h) < need).any():
+        below = squared_magnitude(h) < need
+        pooled = np.zeros(h.shape[:-1], bool)
+        if below.any():
+            doubtful = below.any(axis=-1)
             h_known, noise_known = self.known_rows(rows, x, known, hit)
             weak = squared_magnitude(h_known) < reliable_snr * noise_known
-            if weak.any():
+            weak &= doubtful[..., None]
+            pooled = weak.any(axis=-1)
+            if pooled.any():
                 h = np.where(weak, h_known, h)
                 noise_var = np.where(weak, noise_known, noise_var)
-        return h, h_rows, noise_var
+        return h, h_rows, noise_var, pooled
 
     def known_constant(self, rows: np.ndarray, x: np.ndarray,
                        known: int) -> tuple[np.ndarray, np.ndarray]:
         """Constant channel per tone over the known rows, each tone's noise from its own
-        residual (``known - 2`` in the divisor, see the module notes); returns
-        ``(channel, noise_var)``."""
+        residual (``known - 2`` in the divisor, see the module notes); ``rows`` and ``x`` as for
+        :meth:`data_aided`; returns ``(channel, noise_var)`` per frame and tone."""
         t = self.train_symbols
-        h, _, residual = fit_rows(rows[:t + 1], x[:t + 1], None, linear=False)
+        h, _, residual = fit_rows(rows[..., :t + 1, :], x[..., :t + 1, :], None, linear=False,
+                                  ones=self._known_ones)
         return h, residual * (1.0 / max(known - 2, 1))
 
     def known_rows(self, rows: np.ndarray, x: np.ndarray, known: int,
@@ -122,17 +140,17 @@ class ChannelFit:
 
         Parameters
         ----------
-        rows, x : ndarray of complex64, shape (rows, data tones)
+        rows, x : ndarray of complex64, shape ([frames,] rows, data tones)
             As for :meth:`data_aided`; only the training and header rows are used.
         known : int
             Rows known without decisions (training, plus the header when its CRC passed).
-        hit : ndarray of bool, optional
+        hit : ndarray of bool, shape ([frames,] data tones), optional
             Tones a narrowband interferer hits.
 
         Returns
         -------
         tuple of ndarray
-            ``(channel, noise_var)`` per data tone.
+            ``(channel, noise_var)`` per frame and data tone (noise float64).
 
         Notes
         -----
@@ -148,31 +166,45 @@ class ChannelFit:
         included.
         """
         t = self.train_symbols
-        h, _, residual = fit_rows(rows[:t + 1], x[:t + 1], None, linear=False)
+        h, _, residual = fit_rows(rows[..., :t + 1, :], x[..., :t + 1, :], None, linear=False,
+                                  ones=self._known_ones)
         dof = max(known - 1, 1)
         lo, hi, count = self._pool
-        c = np.zeros(residual.size + 1, np.float64)
-        np.cumsum(residual, out=c[1:])
-        noise = c[hi] - c[lo]
-        noise /= np.maximum(count * dof - 1, 1)
+        divisor = self._pool_divisor.get(dof)
+        if divisor is None:
+            divisor = self._pool_divisor[dof] = np.maximum(count * dof - 1, 1)
+        lead = residual.shape[:-1]  # (frames,), or () without the frame axis
+        # Gathers along the tone axis with take (a 2-D fancy index costs more per call).
+        c = np.zeros(lead + (residual.shape[-1] + 1,), np.float64)
+        residual.cumsum(axis=-1, out=c[..., 1:])
+        noise = c.take(hi, axis=-1)
+        noise -= c.take(lo, axis=-1)
+        noise /= divisor
         if hit is not None and hit.any():
+            struck = hit.any(axis=-1)
             clean = ~hit
-            np.cumsum(np.where(clean, residual, 0.0), out=c[1:])
-            n_clean = np.concatenate(([0], np.cumsum(clean)))
-            n_clean = n_clean[hi] - n_clean[lo]
-            pooled = (c[hi] - c[lo]) / np.maximum(n_clean * dof - 1, 1)
-            noise = np.where(clean & (n_clean * dof > 1), pooled, noise)
+            np.where(clean, residual, 0.0).cumsum(axis=-1, out=c[..., 1:])
+            n_clean = np.zeros(lead + (residual.shape[-1] + 1,), np.int64)
+            clean.cumsum(axis=-1, out=n_clean[..., 1:])
+            n_clean = n_clean.take(hi, axis=-1) - n_clean.take(lo, axis=-1)
+            pooled = ((c.take(hi, axis=-1) - c.take(lo, axis=-1))
+                      / np.maximum(n_clean * dof - 1, 1))
+            take = clean & (n_clean * dof > 1)
+            take &= struck[..., None]  # a frame with no hit tone keeps the first pool
+            noise = np.where(take, pooled, noise)
         return h, noise
 
 
 def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, linear: bool,
-             leave_one_out: int | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-tone least-squares channel ``h0 + slope * o[n]`` over symbol rows.
+             leave_one_out: int | None = None,
+             ones: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-tone least-squares channel ``h0 + slope * o[n]`` over symbol rows, per frame.
 
     Parameters
     ----------
-    rows, x : ndarray of complex64, shape (rows, tones)
-        Received values and the known (or decided) values sent.
+    rows, x : ndarray of complex64, shape ([frames,] rows, tones)
+        Received values and the known (or decided) values sent, for one or more frames (the
+        frame axis may be left out, and then is in what is returned).
     design : ndarray of float32, shape (3, rows), or None
         The rows ``(1, o, o^2)`` with ``o`` the row times about their mean (None with
         ``linear=False``, which fits a constant).
@@ -180,56 +212,65 @@ def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, line
         Fit level and slope in time rather than a constant.
     leave_one_out : int, optional
         With ``k``, the channel of rows ``k:`` is the fit *without* that row.
+    ones : ndarray of float32, shape (rows,), optional
+        For the constant fit: a ones vector the caller keeps (default: made on each call).
 
     Returns
     -------
     tuple of ndarray
         ``(h, h_rows, residual)``: the channel at each tone's energy centroid in time (what the
-        estimate reports), the channel per row and the residual energy ``sum |y - h_n x|^2`` per
-        tone.
+        estimate reports), shape (frames, tones), the channel per row, shaped like ``rows``
+        (for the constant fit, shape (frames, 1, tones), which broadcasts against ``rows``),
+        and the residual energy ``sum |y - h_n x|^2`` per frame and tone.
 
     Notes
     -----
     The leave-one-out channel is exact from the leverage ``q_i = |x_i|^2 w_i``:
     ``H_-i = (H_i - w_i conj(x_i) y_i) / (1 - q_i)``, so a symbol's own, possibly wrong,
     decision cannot pull the channel it is decided with.
+
+    Frames share the calls, not the arithmetic: the sums over rows are one small matrix product
+    per frame (a stacked ``matmul``), every other step is elementwise, so a frame's outputs are
+    the same alone or among others.
     """
     # Weighted sums over rows are small matrix products against the (rows x 1, o, o^2) design
     # on float32 views of the complex arrays (same-type BLAS loops, no casts); squared
     # magnitudes are I^2 + Q^2 on the interleaved pairs (one pass, no square root).
-    nrow = rows.shape[0]
+    nrow = rows.shape[-2]
     corr = np.conj(x)
     corr *= rows
     xp = as_pairs(x)
     sq = xp * xp
     if not linear:
-        ones = np.ones(nrow, np.float32)
+        if ones is None:
+            ones = np.ones(nrow, np.float32)
         a = np.maximum(pair_sum(ones @ sq), 1e-30)
         h = as_complex(ones @ as_pairs(corr)) / a
-        h_rows = np.broadcast_to(h, rows.shape)
-        err = rows - h * x
+        h_rows = h[..., None, :]  # the same channel in every row
+        err = rows - h_rows * x
     else:
         o = design[1]
-        moments = pair_sum(design @ sq)
-        a, b, c = np.maximum(moments[0], 1e-30), moments[1], moments[2]
+        moments = pair_sum(design @ sq)  # (frames, 3, tones)
+        a, b, c = (np.maximum(moments[..., 0, :], 1e-30), moments[..., 1, :],
+                   moments[..., 2, :])
         uv = as_complex(design[:2] @ as_pairs(corr))  # (sum conj(x) y, sum o conj(x) y)
-        u, v = uv[0], uv[1]
+        u, v = uv[..., 0, :], uv[..., 1, :]
         det = np.maximum(a * c - b * b, 1e-30)
         inv_det = 1.0 / det
         # The real factors c/det, b/det, a/det and b/a, cast once to the complex type that
         # multiplying them with complex values casts them to (a mixed-type multiply buffers).
-        factors = np.empty((4, a.size), np.float32)
+        factors = np.empty((4,) + a.shape, np.float32)
         np.multiply(c, inv_det, out=factors[0])
         np.multiply(b, inv_det, out=factors[1])
         np.multiply(a, inv_det, out=factors[2])
         np.divide(b, a, out=factors[3])
         factors = factors.astype(np.complex64)
-        coef = np.empty_like(uv)  # (h0, slope) per tone
-        np.multiply(factors[0], u, out=coef[0])
-        coef[0] -= factors[1] * v
-        np.multiply(factors[2], v, out=coef[1])
-        coef[1] -= factors[1] * u
-        h0, slope = coef[0], coef[1]
+        coef = np.empty_like(uv)  # (h0, slope) per frame and tone
+        np.multiply(factors[0], u, out=coef[..., 0, :])
+        coef[..., 0, :] -= factors[1] * v
+        np.multiply(factors[2], v, out=coef[..., 1, :])
+        coef[..., 1, :] -= factors[1] * u
+        h0, slope = coef[..., 0, :], coef[..., 1, :]
         # Channel per row in one product: [1, o] (rows x 2) times [h0; slope] (2 x tones).
         h_rows = as_complex(design[:2].T @ as_pairs(coef))
         h = slope * factors[3]
@@ -242,12 +283,13 @@ def fit_rows(rows: np.ndarray, x: np.ndarray, design: np.ndarray | None, *, line
     residual = pair_sum((design[0] if linear else ones) @ ep)
     if linear and leave_one_out is not None:
         k = leave_one_out
-        w = np.multiply.outer(o[k:] * o[k:], a * inv_det)
-        w -= np.multiply.outer(o[k:], 2.0 * b * inv_det)
-        w += c * inv_det
-        part = h_rows[k:]
-        part -= corr[k:] * w.astype(np.complex64)
-        w *= pair_sum(sq[k:])  # leverage |x|^2 w
+        scale = (a * inv_det)[..., None, :]
+        w = (o[k:] * o[k:])[:, None] * scale  # (frames, rows - k, tones)
+        w -= o[k:, None] * (2.0 * b * inv_det)[..., None, :]
+        w += (c * inv_det)[..., None, :]
+        part = h_rows[..., k:, :]
+        part -= corr[..., k:, :] * w.astype(np.complex64)
+        w *= pair_sum(sq[..., k:, :])  # leverage |x|^2 w
         np.subtract(1.0, w, out=w)
         np.maximum(w, 1e-6, out=w)
         np.divide(1.0, w, out=w)
@@ -260,8 +302,8 @@ def local_level(g: np.ndarray) -> np.ndarray:
 
     Parameters
     ----------
-    g : ndarray of float
-        A non-negative value per tone (at least one tone).
+    g : ndarray of float, shape (..., tones)
+        A non-negative value per tone (at least one tone), for one or more frames.
 
     Returns
     -------
@@ -270,10 +312,10 @@ def local_level(g: np.ndarray) -> np.ndarray:
         the end values); a tone above twice this level is taken as hit by a narrowband
         interferer.
     """
-    m = g.size
-    pad = np.concatenate([g[:3], g, g[-3:]])
-    left = np.maximum(pad[0:m], pad[1:m + 1])
-    return np.minimum(left, np.maximum(pad[5:m + 5], pad[6:m + 6]))
+    m = g.shape[-1]
+    pad = np.concatenate([g[..., :3], g, g[..., -3:]], axis=-1)
+    left = np.maximum(pad[..., 0:m], pad[..., 1:m + 1])
+    return np.minimum(left, np.maximum(pad[..., 5:m + 5], pad[..., 6:m + 6]))
 
 
 def as_pairs(z: np.ndarray) -> np.ndarray:

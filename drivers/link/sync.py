@@ -107,16 +107,19 @@ class FrameSync:
         self._diff_conj = np.conj(fmt.differential).astype(np.complex64)
         # Per-frame operands in the type the arithmetic runs in (the same casts, made once).
         self._pilots = fmt.pilots.astype(np.float32).astype(np.complex64)
-        self._sym_index = np.arange(plan.n_symbols).astype(np.complex128)
+        # -i k per symbol k: a frame's phase ramp is one outer product with its step.
+        self._minus_j_index = -1j * np.arange(plan.n_symbols).astype(np.complex128)
+        self._sqrt_n = math.sqrt(n)
+        self._turns = np.empty((1, plan.data_symbols), np.complex64)
         index = np.arange(plan.data_symbols, dtype=np.float64)
         self._data_offsets = index - index.mean()
         self._row_offsets = (np.arange(1 + plan.train_symbols + plan.data_symbols)
                              - (1 + plan.train_symbols) - index.mean())
         self._data_index_spread = max(float(np.sum(self._data_offsets ** 2)), 1.0)
-        self._turns = np.empty(plan.data_symbols, np.complex64)
-        # The frame's derotated symbols and their spectra, reused by every frame (a fresh
-        # 32 x 1024 complex64 array is above glibc's first mmap threshold: page faults).
-        self._windows = np.empty((plan.n_symbols, n), np.complex64)
+        # The frames' derotated symbols and their spectra, reused by every call and grown to
+        # the most frames asked for at once (a fresh 32 x 1024 complex64 array is above
+        # glibc's first mmap threshold: page faults).
+        self._windows = np.empty((1, plan.n_symbols, n), np.complex64)
         self._spectra = np.empty_like(self._windows)
 
     # ------------------------------------------------------------------ timing
@@ -224,45 +227,64 @@ class FrameSync:
 
     # ------------------------------------------------------------------ frequency offset
 
-    def spectra(self, r: np.ndarray, d0: int, eps_frac: float) -> np.ndarray:
-        """Unnormalized spectra of every symbol of the frame starting at ``d0``.
+    def spectra(self, r: np.ndarray, starts, eps_fracs,
+                out: np.ndarray | None = None) -> np.ndarray:
+        """Unnormalized spectra of every symbol of the frames starting at ``starts``.
 
         Parameters
         ----------
         r : ndarray of complex64
             Baseband samples.
-        d0 : int
-            Start of the sync symbol's FFT window.
-        eps_frac : float
-            Frequency offset (tone spacings) removed in the time domain first.
+        starts : sequence of int
+            Start of each frame's sync symbol FFT window in ``r``.
+        eps_fracs : sequence of float
+            Each frame's frequency offset (tone spacings), removed in the time domain first.
+        out : ndarray of complex64, optional
+            Where to write the spectra (default: this object's work array, which the next
+            call overwrites).
 
         Returns
         -------
-        ndarray of complex64, shape (symbols, fft_size)
-            One batched FFT over the frame's symbols (cyclic prefixes dropped). The array is
-            this object's work array: the next call overwrites it.
+        ndarray of complex64, shape (frames, symbols, fft_size)
+            The spectra of every symbol of each frame (cyclic prefixes dropped): one batched
+            FFT per frame.
         """
         plan = self.plan
         n, s = plan.fft_size, plan.symbol_len
         span = plan.n_symbols * s
-        if d0 + span <= r.size:  # a reshaped view costs less than as_strided
-            windows = r[d0:d0 + span].reshape(plan.n_symbols, s)[:, :n]
-        else:
-            windows = np.lib.stride_tricks.as_strided(
-                r[d0:], shape=(plan.n_symbols, n), strides=(s * r.itemsize, r.itemsize),
-                writeable=False)
-        derotate = np.multiply.outer(
-            np.exp(1j * eps_frac * self._ramp_coarse).astype(np.complex64),
-            np.exp(1j * eps_frac * self._ramp_fine).astype(np.complex64)).ravel()
-        np.multiply(windows, derotate, out=self._windows)
-        return np.fft.fft(self._windows, axis=1, out=self._spectra)
+        count = len(starts)
+        if self._windows.shape[0] < count:
+            self._windows = np.empty((count,) + self._windows.shape[1:], np.complex64)
+            self._spectra = np.empty_like(self._windows)
+        windows = self._windows[:count]
+        if out is None:
+            out = self._spectra[:count]
+        for k, (d0, eps) in enumerate(zip(starts, eps_fracs)):
+            if d0 + span <= r.size:  # a reshaped view costs less than as_strided
+                frame = r[d0:d0 + span].reshape(plan.n_symbols, s)[:, :n]
+            else:
+                frame = np.lib.stride_tricks.as_strided(
+                    r[d0:], shape=(plan.n_symbols, n), strides=(s * r.itemsize, r.itemsize),
+                    writeable=False)
+            # The ramp of this frame (a few short calls: cheaper per frame than the
+            # bookkeeping of one batched ramp when a call holds one frame).
+            coef = 1j * eps
+            coarse = np.exp(coef * self._ramp_coarse).astype(np.complex64)
+            derotate = coarse[:, None] * np.exp(coef * self._ramp_fine).astype(np.complex64)
+            derotate = derotate.reshape(n)  # the outer product (ufunc.outer costs more)
+            np.multiply(frame, derotate, out=windows[k])
+            # Each frame's FFT right after its derotation, while its symbols are in the cache
+            # (a frame's symbols fill about half of a core's L2 here; a batch, several).
+            np.fft.fft(windows[k], axis=1, out=out[k])
+        return out
 
-    def integer_shift(self, spectra: np.ndarray) -> int:
-        """Integer offset (an even number of tones) maximizing the correlation of the
-        sync/training differential with its known pattern, from :meth:`spectra`."""
-        cross = np.conj(spectra[0]) * spectra[1]
-        score = np.abs(cross.take(self._int_bins, mode="clip") @ self._diff_conj)
-        return int(self._shifts[int(score.argmax())])
+    def integer_shift(self, spectra: np.ndarray) -> np.ndarray:
+        """Integer offset per frame (an even number of tones) maximizing the correlation of the
+        sync/training differential with its known pattern, from :meth:`spectra` (shape
+        ([frames,] symbols, fft_size); without the frame axis, one offset as a 0-d value)."""
+        cross = np.conj(spectra[..., 0, :]) * spectra[..., 1, :]
+        score = np.abs(cross.take(self._int_bins, axis=-1, mode="clip") @ self._diff_conj)
+        return self._shifts[score.argmax(axis=-1)]
 
     def fine_offset_tones(self, theta: float, eps_frac: float, shift: int) -> float:
         """Offset (tone spacings) left after ``eps_frac`` and ``shift``, from the measured
@@ -274,11 +296,16 @@ class FrameSync:
 
     # ------------------------------------------------------------------ phase tracking
 
-    def symbol_phase(self, theta: float) -> np.ndarray:
+    def symbol_phase(self, thetas) -> np.ndarray:
         """Per-symbol correction ``exp(-i theta k) / sqrt(n)`` (complex64) for every symbol
-        ``k`` of the frame: removes the phase step and normalizes the FFT."""
-        n = self.plan.fft_size
-        return (np.exp(-1j * theta * self._sym_index) / math.sqrt(n)).astype(np.complex64)
+        ``k`` of each frame (one ``theta`` per frame, a sequence or an array of float): removes
+        the phase step and normalizes the FFT. Shape (frames, symbols)."""
+        theta = np.asarray(thetas)
+        # -i theta k by broadcasting (ufunc.outer costs more per call).
+        coef = (theta[:, None] if theta.ndim else theta) * self._minus_j_index
+        np.exp(coef, out=coef)
+        coef /= self._sqrt_n
+        return coef.astype(np.complex64)
 
     def row_phase(self, y_pilot: np.ndarray, h_pilot: np.ndarray,
                   phase: np.ndarray) -> np.ndarray:
@@ -286,36 +313,51 @@ class FrameSync:
 
         Parameters
         ----------
-        y_pilot : ndarray of complex, shape (data symbols, pilots)
-            Received pilot tones of the data symbols (uncorrected spectra).
-        h_pilot : ndarray of complex
+        y_pilot : ndarray of complex, shape ([frames,] data symbols, pilots)
+            Received pilot tones of the data symbols (uncorrected spectra); the frame axis is
+            left out for one frame, here and in the other arguments.
+        h_pilot : ndarray of complex, shape ([frames,] pilots)
             Training-symbol channel at the pilot tones.
-        phase : ndarray of complex64
-            :meth:`symbol_phase` of the frame.
+        phase : ndarray of complex64, shape ([frames,] symbols)
+            :meth:`symbol_phase` of the frames.
 
         Returns
         -------
-        ndarray of complex64, one per row after the sync symbol
+        ndarray of complex64, shape ([frames,] rows after the sync symbol)
             ``phase`` times a straight line through the data symbols' common phases: a line
             follows a residual offset with far less noise than each symbol's own phase, and,
             extended over the training and header rows, also removes an error of the training
             phase step (which shows up as a slope).
         """
         t = self.plan.train_symbols
-        ref = np.conj(h_pilot) * self._pilots
+        ref = np.conj(h_pilot[..., None, :]) * self._pilots
         np.multiply(y_pilot, ref, out=ref)
-        common = ref.sum(axis=1)
-        common *= phase[t + 2:]
+        common = np.add.reduce(ref, axis=-1)  # the sum without its Python wrapper
+        common *= phase[..., t + 2:]
         # The first symbol's phase, then the phase differences of neighbours (unwrapped),
         # all in one arctan2 call; their running sum is the common phase per symbol.
-        turns = self._turns
-        turns[0] = common[0]
-        np.multiply(common[1:], np.conj(common[:-1]), out=turns[1:])
-        cpe = np.arctan2(turns.imag, turns.real).cumsum()
-        slope = np.dot(self._data_offsets, cpe.astype(np.float64)) / self._data_index_spread
-        line = self._row_offsets * slope
-        line += float(cpe.sum() / cpe.size)  # cpe.mean() (float32) without its wrapper
-        return phase[1:] * np.exp(-1j * line).astype(np.complex64)
+        if common.ndim == 1:
+            turns = self._turns[0]
+        else:
+            turns = self._turns[:common.shape[0]]
+            if turns.shape[0] < common.shape[0]:
+                turns = self._turns = np.empty_like(common)
+        turns[..., 0] = common[..., 0]
+        np.multiply(common[..., 1:], np.conj(common[..., :-1]), out=turns[..., 1:])
+        cpe = np.arctan2(turns.imag, turns.real).cumsum(axis=-1)
+        cpe_wide = cpe.astype(np.float64)
+        # One dot product per frame (a matrix-vector product may sum in another order).
+        mean = np.add.reduce(cpe, axis=-1) / cpe.shape[-1]  # float32, without the wrapper
+        if cpe_wide.ndim == 1:
+            line = self._row_offsets * (np.dot(self._data_offsets, cpe_wide)
+                                        / self._data_index_spread)
+            line += float(mean)
+        else:
+            slope = np.array([np.dot(self._data_offsets, row) for row in cpe_wide])
+            slope /= self._data_index_spread
+            line = self._row_offsets * slope[:, None]
+            line += mean[:, None]
+        return phase[..., 1:] * np.exp(-1j * line).astype(np.complex64)
 
 
 def sliding_sums(a: np.ndarray, width: int) -> np.ndarray:

@@ -7,7 +7,10 @@ the checksum) live in :mod:`brimline.daemon.wire.sigmf`; this module re-exports
 
 The receiver runs over each capture segment on its own (a gap, an overflow or a retune breaks
 the sample stream, so no frame is searched across one), and an estimate's ``time_s`` counts the
-samples lost before its segment (``core:global_index``).
+samples lost before its segment (``core:global_index``). A segment is read in spans of 16
+frames, and the frames located in a span are estimated together, several per pass
+(:class:`~brimline.drivers.link.receiver.FrameScanner`); a frame that fails is counted under
+its reason on its own.
 
 IQ capture while running: given a :class:`CaptureWriter` (``capture=``, opened by the runtime
 from the ``record.iq`` section), the driver copies every block it reads into it through a

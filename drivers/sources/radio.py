@@ -3,7 +3,9 @@
 pyadi-iio (``import adi``) is optional and imported only when a RadioDriver is built without a
 device factory; without it the driver raises ``SourceError("... install with pip install
 'brimline[sdr]'")``. The radio's receive buffers go through the same receiver DSP as recordings
-and the simulator.
+and the simulator, by a :class:`~brimline.drivers.link.receiver.FrameScanner`: the frames
+located in a buffer are estimated together, in one pass (``buffer_frames`` sets how many), and
+one that fails (no sync, a failed header, clipping) is counted under its reason on its own.
 
 Supervision
 -----------
