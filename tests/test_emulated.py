@@ -195,6 +195,20 @@ class TestFaults:
             open_device(backend="usrp", where="driver.radio", error=SourceError)
 
 
+def _ping(sender) -> None:
+    """The same 4 silent samples at index 0, a few milliseconds apart (not a flood that fills
+    the high-water marks while the subscription is being made)."""
+    sender.send(0, np.zeros(4, np.complex64))
+    time.sleep(0.005)
+
+
+def _quiet(receiver, still_s: float = 0.2) -> bool:
+    """Empty the queue; true once nothing has arrived for ``still_s`` seconds."""
+    receiver.take(receiver.drain())
+    time.sleep(0.01)
+    return time.monotonic() - receiver.last_arrival_s >= still_s
+
+
 class TestAir:
     def test_malformed_messages_are_counted(self, ctx):
         import zmq
@@ -211,9 +225,10 @@ class TestAir:
     def test_samples_arrive_in_order(self, ctx):
         with AirSender(ANY_PORT, context=ctx) as sender, \
                 AirReceiver(sender.endpoint, context=ctx) as receiver:
-            assert until(lambda: receiver.drain() > 0,
-                         step=lambda: sender.send(0, np.zeros(4, np.complex64)))
-            receiver.take(receiver.drain())
+            assert until(lambda: receiver.drain() > 0, step=lambda: _ping(sender))
+            # pings still in flight (a busy machine) arrive first: start from a quiet, empty
+            # queue so the two messages below are not behind them (or dropped at the HWM)
+            assert until(lambda: _quiet(receiver))
             sender.send(4, np.arange(3, dtype=np.complex64))
             sender.send(7, np.arange(3, 6, dtype=np.complex64))
             assert until(lambda: receiver.drain() >= 6)
@@ -226,9 +241,8 @@ class TestAir:
         new start."""
         with AirSender(ANY_PORT, context=ctx) as sender, \
                 AirReceiver(sender.endpoint, context=ctx) as receiver:
-            assert until(lambda: receiver.drain() > 0,
-                         step=lambda: sender.send(0, np.zeros(4, np.complex64)))
-            receiver.take(receiver.drain())
+            assert until(lambda: receiver.drain() > 0, step=lambda: _ping(sender))
+            assert until(lambda: _quiet(receiver))
             sender.send(10, np.arange(1, 4, dtype=np.complex64))
             sender.send(15, np.arange(4, 6, dtype=np.complex64))
             sender.send(0, np.arange(6, 8, dtype=np.complex64))
