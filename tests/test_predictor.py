@@ -149,6 +149,35 @@ class TestBandBasis:
         assert share == pytest.approx(basis.shape[1] / tones.size, rel=0.1)
 
 
+    def test_a_step_across_the_band_keeps_the_tones_inside_it(self, rng):
+        """A fade of a band of tones (a 20 dB step, as a filter edge or a band fade makes) lies
+        outside any delay window, so the projection smears it over its neighbours. A tone the
+        projection moves by more than its noise variance keeps its own estimate, so no tone is
+        predicted above its own SNR |H|^2 / noise_var (the definition of per-tone SNR) by more
+        than its estimation noise (0.5 dB on strong tones) plus a few noise variances (4 in
+        linear SNR: a tone below the 9.8 dB gap of one bit stays unloadable), whereas the smeared
+        projection alone raises tones inside the step by tens of noise variances."""
+        tones = np.arange(-100, 101)
+        tones = tones[tones != 0]
+        delays = np.array([0.0, 2.0, 5.0]) / 256
+        taps = np.array([1.0, 0.5j, 0.25])
+        h = np.exp(-2j * np.pi * np.outer(tones, delays)) @ taps
+        h[(tones >= -60) & (tones < -25)] *= 0.1                     # -20 dB on 35 tones
+        noise_var = np.full(tones.size, np.mean(np.abs(h) ** 2) / 10 ** 2.5)  # 25 dB mean
+        p = ChannelPredictor(horizon_s=0.1, delay_width=0.075)
+        for i in range(30):
+            est = h + np.sqrt(noise_var / 30) * (rng.standard_normal(h.size)
+                                                 + 1j * rng.standard_normal(h.size))
+            p.update(i / FPS, est, tones, noise_var)
+        worst = p.worst_snr_db()
+        assert worst is not None
+        true_lin = np.abs(h) ** 2 / noise_var
+        assert np.all(10 ** (worst / 10) < true_lin * 10 ** (0.5 / 10) + 4.0)
+        smeared = band_basis(tones, 0.075)
+        proj = smeared @ (smeared.T @ h.real) + 1j * smeared @ (smeared.T @ h.imag)
+        assert np.max(np.abs(proj) ** 2 / noise_var - true_lin) > 40.0
+
+
 class TestStatic:
     def test_static_channel_predicts_the_held_value(self, rng):
         """A channel that does not move is predicted as itself (the window's average, shrunk

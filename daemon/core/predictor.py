@@ -25,7 +25,10 @@ tone passing through a notch is a smooth path through (or near) zero rather than
    the half-width of that window: the default 0.075 cycles per tone covers the 5 us of the
    3GPP ETU profile at 15 kHz tones (TS 36.101 Annex B.2), centred. An estimate that loses
    more than 5 % of its power to the projection (a longer delay spread, a synthetic channel
-   of independent tones) is kept as it came.
+   of independent tones) is kept as it came; so is each tone the projection moves by more
+   than its noise variance (a channel estimate over N known symbols errs by about
+   ``noise_var / N``): a step across the band (a filter edge, a fade of a band of tones) is
+   outside every delay window, and its smear would raise the tones inside the step by many dB.
 3. **Prediction under Clarke's model.** Per tone, the next frames are a linear combination of
    the last ``window`` estimates, with the Wiener-Hopf weights of a process whose
    autocorrelation is ``J0(2 pi f_D tau)`` (:func:`clarke_weights`; Jakes 1974;
@@ -465,7 +468,7 @@ class ChannelPredictor:
             dt = t - self._last_t
             self._dt = dt if math.isnan(self._dt) else 0.9 * self._dt + 0.1 * dt
         if self.delay_width > 0 and n > 8:
-            h = self._project(h, tone_index)
+            h = self._project(h, tone_index, noise_var)
         if noise_var is not None:
             nv = self._last_noise = np.array(noise_var, dtype=np.float64)
             if self._noise is None or self._noise.shape != nv.shape or not self._dt > 0:
@@ -478,8 +481,10 @@ class ChannelPredictor:
             self._score()
         self._predict()
 
-    def _project(self, h: np.ndarray, tone_index: np.ndarray) -> np.ndarray:
-        """``h`` projected on the channels of the delay window around its delay centre."""
+    def _project(self, h: np.ndarray, tone_index: np.ndarray,
+                 noise_var: np.ndarray | None = None) -> np.ndarray:
+        """``h`` projected on the channels of the delay window around its delay centre; a tone
+        the projection moves by more than its noise variance keeps its own estimate."""
         if self._basis is None:
             self._basis = band_basis(tone_index, self.delay_width)
             self._basis_t = np.ascontiguousarray(self._basis.T)
@@ -501,6 +506,16 @@ class ChannelPredictor:
         rest = h - g
         if np.vdot(rest, rest).real > _PROJECTION_LOSS * np.vdot(h, h).real:
             return h
+        if noise_var is not None:
+            # Per tone: a channel estimate over N known symbols errs by about noise_var / N, so
+            # a tone moved by more than noise_var is not denoised but misfitted: a step across
+            # the band (a filter edge, a fade of a band of tones) that the delay window smears
+            # over its neighbours, raising the tones inside the step by many dB. Those tones
+            # keep their own estimate.
+            rest = rest.view(np.float64).reshape(-1, 2)
+            misfit = np.einsum("ij,ij->i", rest, rest) > noise_var
+            if misfit.any():
+                g[misfit] = h[misfit]
         return g
 
     def _push(self, h: np.ndarray) -> None:
