@@ -153,15 +153,21 @@ def test_failed_frame_is_flagged_alone():
     assert all(np.isfinite(res.snr_db).all() for res in frames)
 
 
-def test_clipped_frame_among_clean_ones():
-    """The clip check counts each frame's own samples (from its cyclic prefix on)."""
-    rng = np.random.default_rng(7)
+def flat_blocks(rng, count: int) -> list[np.ndarray]:
+    """``count`` frames (2 bits on every tone, default map, counters 0, 1, ...) through a flat
+    channel at 25 dB, each received block with its tail."""
     n = PLAN.data_tones.size
     tx = Transmitter(PLAN)
     ch = LinkChannel(PLAN, profile="flat", snr_db=25.0, lead_max_samples=30, rng=rng)
-    blocks = [ch.transmit(tx.frame(bits=np.full(n, 2), power_lin=np.ones(n), map_seq=-1,
-                                   counter=i, rng=rng).samples, 0.0, tail_samples=100)
-              for i in range(3)]
+    return [ch.transmit(tx.frame(bits=np.full(n, 2), power_lin=np.ones(n), map_seq=-1,
+                                 counter=i, rng=rng).samples, 0.0, tail_samples=100)
+            for i in range(count)]
+
+
+def test_clipped_frame_among_clean_ones():
+    """The clip check counts each frame's own samples (from its cyclic prefix on)."""
+    rng = np.random.default_rng(7)
+    blocks = flat_blocks(rng, 3)
     level = 0.5 * float(np.abs(blocks[1].real).max())
     blocks[0] *= 0.2  # well below the clip level: only the middle frame is clipped
     blocks[2] *= 0.2
@@ -190,12 +196,7 @@ def test_non_finite_samples_stay_in_their_frame():
     """NaN samples in one frame's data symbols spoil that frame's estimate alone: the frames
     batched with it are the same as without the damage, and nothing raises."""
     rng = np.random.default_rng(13)
-    n = PLAN.data_tones.size
-    tx = Transmitter(PLAN)
-    ch = LinkChannel(PLAN, profile="flat", snr_db=25.0, lead_max_samples=30, rng=rng)
-    blocks = [ch.transmit(tx.frame(bits=np.full(n, 2), power_lin=np.ones(n), map_seq=-1,
-                                   counter=i, rng=rng).samples, 0.0, tail_samples=100)
-              .astype(np.complex64) for i in range(4)]
+    blocks = [b.astype(np.complex64) for b in flat_blocks(rng, 4)]
     clean = np.concatenate(blocks)
     damaged = [b.copy() for b in blocks]
     damaged[1][-5 * PLAN.symbol_len:-4 * PLAN.symbol_len] = np.nan  # a data symbol
